@@ -1,0 +1,5 @@
+import sys
+
+from shardtrain.cli import main
+
+sys.exit(main())
