@@ -105,3 +105,16 @@ def normalized_adjacency(graph: Graph) -> sp.csr_matrix:
     rows = np.repeat(np.arange(n), np.diff(a_hat.indptr))
     a_hat.data = inv_sqrt[rows] * inv_sqrt[a_hat.indices]
     return a_hat
+
+
+def fingerprint(graph: Graph) -> str:
+    """A short content hash of the structure and vertex data, to tell graphs apart (for
+    shard manifests and checkpoints). Not cryptographic in purpose, just collision-averse."""
+    import hashlib
+
+    h = hashlib.sha256()
+    for arr in (graph.indptr, graph.indices, graph.features, graph.labels,
+                graph.train_mask, graph.val_mask, graph.test_mask):
+        h.update(b"none" if arr is None else
+                 f"{arr.dtype.str}{arr.shape}".encode() + np.ascontiguousarray(arr).tobytes())
+    return h.hexdigest()[:16]
