@@ -1,0 +1,397 @@
+"""GCN maths written out: Glorot init, dropout masks, forward, backward, loss, Adam.
+
+The model knows nothing of shards or transports. It multiplies by Â only through two
+functions it is handed:
+- `propagate(layer, M)`: M holds the rows this process owns (n_rows, w); returns
+  Â_P [M; M_halo] (n_rows, w). The reference passes `Â @ M`.
+- `propagate_t(layer, G)`: returns the owned rows of Â^T G summed over all processes
+  (n_rows, w). The reference passes `Â.T @ G`.
+Each layer follows `schedule.layer_hops(dims)`: transform-first (T = H W, Z = propagate(T))
+or aggregate-first (A = propagate(H), Z = A W). The worker and the reference call the very
+same `train_step`, which is why partitioned training equals single-process training.
+
+Layer l (Kipf & Welling, ICLR 2017): H_l' = drop_l(H_l), Z_l = Â H_l' W_l (+ b_l),
+H_{l+1} = ReLU(Z_l); no ReLU on the last layer; softmax cross-entropy on the training rows.
+"""
+from __future__ import annotations
+
+from typing import Callable
+
+import numpy as np
+
+from shardtrain.errors import InputError
+from shardtrain.schedule import LayerHop
+
+Params = list[tuple[np.ndarray, "np.ndarray | None"]]
+Grads = list[tuple[np.ndarray, "np.ndarray | None"]]
+Propagate = Callable[[int, np.ndarray], np.ndarray]
+Drop = Callable[[int, np.ndarray], np.ndarray]
+
+
+# ---------------------------------------------------------------- initialisation
+
+def glorot_init(dims: list[tuple[int, int]], seed: int, dtype, bias: bool = False) -> Params:
+    """Glorot & Bengio (2010) uniform weights, limit sqrt(6 / (d_in + d_out)); zero biases.
+
+    Drawn in float64 from one numpy Generator, layer by layer, then cast: float32 and float64
+    runs start from the same weights up to rounding.
+    """
+    rng = np.random.default_rng(seed)
+    params: Params = []
+    for d_in, d_out in dims:
+        limit = np.sqrt(6.0 / (d_in + d_out))
+        w = rng.uniform(-limit, limit, size=(d_in, d_out)).astype(dtype)
+        b = np.zeros(d_out, dtype=dtype) if bias else None
+        params.append((w, b))
+    return params
+
+
+def param_names(params: Params) -> list[str]:
+    """Names in flatten order: w0, b0 (when biased), w1, ... (keys of the weights .npz)."""
+    names = []
+    for l, (_, b) in enumerate(params):
+        names.append(f"w{l}")
+        if b is not None:
+            names.append(f"b{l}")
+    return names
+
+
+def params_to_arrays(params: Params) -> dict[str, np.ndarray]:
+    """{name: array} for saving (see `param_names`)."""
+    return dict(zip(param_names(params), _leaves(params)))
+
+
+def params_from_arrays(arrays, dims: list[tuple[int, int]], bias: bool, dtype,
+                       source: str = "weights") -> Params:
+    """Check names and shapes against the model and return Params in `dtype`.
+
+    `arrays` is any mapping name -> array (e.g. an opened .npz). Errors name `source`.
+    """
+    params: Params = []
+    expected = set()
+    for l, (d_in, d_out) in enumerate(dims):
+        shapes = {f"w{l}": (d_in, d_out)}
+        if bias:
+            shapes[f"b{l}"] = (d_out,)
+        got = {}
+        for key, shape in shapes.items():
+            expected.add(key)
+            if key not in arrays:
+                raise InputError(f"{source}: missing array '{key}' (expected shape {shape})")
+            a = np.asarray(arrays[key])
+            if a.shape != shape:
+                raise InputError(f"{source}: array '{key}' has shape {a.shape}, "
+                                 f"the model needs {shape}")
+            if not np.issubdtype(a.dtype, np.floating) or not np.all(np.isfinite(a)):
+                raise InputError(f"{source}: array '{key}' must be finite floating point")
+            got[key] = a.astype(dtype, copy=True)
+        params.append((got[f"w{l}"], got.get(f"b{l}")))
+    extra = sorted(set(arrays.keys()) - expected)
+    if extra:
+        raise InputError(f"{source}: unexpected array '{extra[0]}' for a {len(dims)}-layer "
+                         f"model {'with' if bias else 'without'} bias")
+    return params
+
+
+# ---------------------------------------------------------------- dropout masks
+
+_GOLDEN64 = 0x9E3779B97F4A7C15
+_MASK64 = (1 << 64) - 1
+
+
+def _splitmix64(x: int) -> int:
+    """SplitMix64 finaliser (Steele, Lea & Flood 2014) on a Python int, mod 2^64."""
+    x = (x + _GOLDEN64) & _MASK64
+    x = ((x ^ (x >> 30)) * 0xBF58476D1CE4E5B9) & _MASK64
+    x = ((x ^ (x >> 27)) * 0x94D049BB133111EB) & _MASK64
+    return x ^ (x >> 31)
+
+
+def _row_keys(seed: int, epoch: int, layer: int, global_ids: np.ndarray) -> np.ndarray:
+    """One 32-bit key per vertex: SplitMix64 of (key of (seed, epoch, layer)) + id * golden."""
+    base = _splitmix64(_splitmix64(_splitmix64(int(seed) & _MASK64) ^ (int(epoch) & _MASK64))
+                       ^ (int(layer) & _MASK64))
+    x = np.asarray(global_ids).astype(np.uint64)
+    x *= np.uint64(_GOLDEN64)
+    x += np.uint64(base)
+    x ^= x >> np.uint64(30)
+    x *= np.uint64(0xBF58476D1CE4E5B9)
+    x ^= x >> np.uint64(27)
+    x *= np.uint64(0x94D049BB133111EB)
+    x ^= x >> np.uint64(31)
+    return (x >> np.uint64(32)).astype(np.uint32)
+
+
+def dropout_mask(seed: int, epoch: int, layer: int, global_ids: np.ndarray, width: int,
+                 rate: float, dtype) -> np.ndarray | None:
+    """Inverted-dropout mask (len(global_ids), width) of 0 or 1/(1-rate); None when rate is 0.
+
+    Counter-based: entry (v, c) depends only on (seed, epoch, layer, global id v, column c),
+    so any subset of vertices in any order gets exactly the rows the full graph gets.
+    Each vertex gets a 64-bit SplitMix64 key; each pair of columns one 32-bit MurmurHash3
+    finaliser (Appleby) of key + pair * constant, split into two 16-bit uniforms. The kept
+    probability is therefore 1 - rate rounded to a multiple of 2^-16 (exact for 0.5), and the
+    scale is the inverse of that kept probability. Little-endian machines assumed (the split
+    of a 32-bit hash into its 16-bit halves).
+    """
+    if rate == 0:
+        return None
+    ids = np.asarray(global_ids)
+    n = ids.shape[0]
+    half = (width + 1) // 2
+    x = np.empty((n, half), dtype=np.uint32)
+    pair_keys = np.arange(half, dtype=np.uint32) * np.uint32(0x85EBCA77)
+    np.add(_row_keys(seed, epoch, layer, ids)[:, None], pair_keys[None, :], out=x)
+    t = np.empty_like(x)
+    # MurmurHash3 fmix32, in place (one temporary)
+    np.right_shift(x, 16, out=t); x ^= t; x *= np.uint32(0x85EBCA6B)
+    np.right_shift(x, 13, out=t); x ^= t; x *= np.uint32(0xC2B2AE35)
+    np.right_shift(x, 16, out=t); x ^= t
+    del t
+    uniform16 = x.view(np.uint16)[:, :width]
+    threshold = min(int(round(rate * 65536)), 65535)
+    mask = np.empty((n, width), dtype=dtype)
+    np.greater_equal(uniform16, np.uint16(threshold), out=mask, casting="unsafe")
+    mask *= mask.dtype.type(65536.0 / (65536 - threshold))
+    return mask
+
+
+class Dropout:
+    """drop(layer, h) for one epoch of one process: h * mask, masks drawn once per layer.
+
+    Inverted dropout is an elementwise linear map, so it is its own adjoint: `backward`
+    calls the same drop on the gradient, and the memoised mask makes that second call cheap.
+    A rate of 0 makes it the identity.
+    """
+
+    def __init__(self, seed: int, epoch: int, rate: float, global_ids: np.ndarray):
+        self.seed, self.epoch, self.rate = seed, epoch, rate
+        self.global_ids = global_ids
+        self._masks: dict[int, np.ndarray] = {}
+
+    def __call__(self, layer: int, h: np.ndarray) -> np.ndarray:
+        if self.rate == 0:
+            return h
+        mask = self._masks.get(layer)
+        if mask is None or mask.shape != h.shape or mask.dtype != h.dtype:
+            mask = dropout_mask(self.seed, self.epoch, layer, self.global_ids, h.shape[1],
+                                self.rate, h.dtype)
+            self._masks[layer] = mask
+        return h * mask
+
+
+def no_dropout(layer: int, h: np.ndarray) -> np.ndarray:
+    """The evaluation drop: identity."""
+    return h
+
+
+# ---------------------------------------------------------------- forward and backward
+
+def forward(params: Params, x: np.ndarray, hops: list[LayerHop], propagate: Propagate,
+            drop: Drop) -> tuple[np.ndarray, dict]:
+    """Logits of the rows this process owns, and what backward needs.
+
+    `drop(layer, h)` must be elementwise and linear in h (h * mask, or the identity);
+    backward applies the same drop to the gradient of the dropped input.
+    """
+    h = x
+    cache = {"drop": drop, "h": [], "hd": [], "a": []}
+    last = len(params) - 1
+    for l, ((w, b), hop) in enumerate(zip(params, hops)):
+        hd = drop(l, h)
+        if hop.transform_first:
+            a = None
+            z = propagate(l, hd @ w)
+        else:
+            a = propagate(l, hd)
+            z = a @ w
+        if b is not None:
+            z += b
+        cache["h"].append(h)
+        cache["hd"].append(hd)
+        cache["a"].append(a)
+        h = np.maximum(z, 0) if l < last else z
+    return h, cache
+
+
+def backward(params: Params, cache: dict, dlogits: np.ndarray, hops: list[LayerHop],
+             propagate_t: Propagate) -> Grads:
+    """Weight (and bias) gradients per layer; partial sums over this process's rows.
+
+    Transform-first:  dT = Âᵀ dZ,  dW = H'ᵀ dT,  dH' = dT Wᵀ.
+    Aggregate-first:  dW = Aᵀ dZ,  dA = dZ Wᵀ,  dH' = Âᵀ dA (skipped for layer 0:
+    the features need no gradient, so layer 0 then has no backward exchange).
+    Dropout: dH = drop(dH'); ReLU: dZ_{l-1} = dH * [H > 0].
+    """
+    drop = cache["drop"]
+    grads: Grads = [None] * len(params)  # type: ignore[list-item]
+    dz = dlogits
+    for l in range(len(params) - 1, -1, -1):
+        (w, b), hop = params[l], hops[l]
+        hd, a = cache["hd"][l], cache["a"][l]
+        db = dz.sum(axis=0) if b is not None else None
+        if hop.transform_first:
+            dt = propagate_t(l, dz)
+            dw = hd.T @ dt
+            dhd = dt @ w.T if l > 0 else None
+        else:
+            dw = a.T @ dz
+            dhd = propagate_t(l, dz @ w.T) if l > 0 else None
+        grads[l] = (dw, db)
+        if l > 0:
+            dz = drop(l, dhd) * (cache["h"][l] > 0)   # not in place: may be the caller's buffer
+    return grads
+
+
+# ---------------------------------------------------------------- objective
+
+def loss_and_grad(logits: np.ndarray, labels: np.ndarray, train_mask: np.ndarray,
+                  n_train_global: int) -> tuple[float, np.ndarray]:
+    """This process's part of the mean softmax cross-entropy over all training vertices.
+
+    Sum over the masked rows divided by the GLOBAL training count, so the parts of all
+    processes add up to the mean. Log-sum-exp for stability. dlogits is 0 off the mask.
+    """
+    dlogits = np.zeros_like(logits)
+    rows = np.flatnonzero(train_mask)
+    if rows.size == 0:
+        return 0.0, dlogits
+    z = logits[rows]
+    z = z - z.max(axis=1, keepdims=True)
+    lse = np.log(np.exp(z).sum(axis=1, keepdims=True))
+    logp = z - lse
+    y = np.asarray(labels)[rows]
+    loss = -float(logp[np.arange(rows.size), y].sum()) / n_train_global
+    p = np.exp(logp)
+    p[np.arange(rows.size), y] -= 1
+    dlogits[rows] = p / np.asarray(n_train_global, dtype=logits.dtype)
+    return loss, dlogits
+
+
+def weight_decay_penalty(params: Params, wd: float) -> float:
+    """wd * 0.5 * ||W0||^2: first layer's weights only (Kipf & Welling 2017)."""
+    w0 = params[0][0]
+    return float(wd) * 0.5 * float(np.dot(w0.ravel(), w0.ravel()))
+
+
+def add_weight_decay(grads: Grads, params: Params, wd: float) -> None:
+    """dW0 += wd * W0, in place (after the all-reduce, so it is added once)."""
+    if wd:
+        grads[0][0][...] += params[0][0].dtype.type(wd) * params[0][0]
+
+
+# ---------------------------------------------------------------- flat gradient vector
+
+def _leaves(tree) -> list[np.ndarray]:
+    out = []
+    for w, b in tree:
+        out.append(w)
+        if b is not None:
+            out.append(b)
+    return out
+
+
+def flatten(grads: Grads) -> np.ndarray:
+    """One contiguous 1-D array in the order w0, b0, w1, ... (what the all-reduce sums)."""
+    return np.concatenate([g.ravel() for g in _leaves(grads)])
+
+
+def unflatten(flat: np.ndarray, like_params: Params) -> Grads:
+    """Split a flat vector back into per-layer (dw, db) shaped like `like_params` (views)."""
+    out: Grads = []
+    pos = 0
+    for w, b in like_params:
+        dw = flat[pos:pos + w.size].reshape(w.shape)
+        pos += w.size
+        db = None
+        if b is not None:
+            db = flat[pos:pos + b.size].reshape(b.shape)
+            pos += b.size
+        out.append((dw, db))
+    if pos != flat.size:
+        raise ValueError(f"flat gradient has {flat.size} entries, the model {pos}")
+    return out
+
+
+# ---------------------------------------------------------------- Adam
+
+class Adam:
+    """Adam (Kingma & Ba 2015, Algorithm 1) with bias correction, updating params in place."""
+
+    def __init__(self, params: Params, lr: float, beta1: float = 0.9, beta2: float = 0.999,
+                 eps: float = 1e-8):
+        self.lr, self.beta1, self.beta2, self.eps = lr, beta1, beta2, eps
+        self.names = param_names(params)
+        self.m = [np.zeros_like(p) for p in _leaves(params)]
+        self.v = [np.zeros_like(p) for p in _leaves(params)]
+        self.t = 0
+
+    def step(self, params: Params, grads: Grads) -> None:
+        self.t += 1
+        b1, b2, t = self.beta1, self.beta2, self.t
+        c1 = 1.0 - b1 ** t
+        c2 = 1.0 - b2 ** t
+        for p, g, m, v in zip(_leaves(params), _leaves(grads), self.m, self.v):
+            dt = p.dtype.type
+            m *= dt(b1)
+            m += dt(1.0 - b1) * g                      # m_t = b1 m + (1 - b1) g
+            v *= dt(b2)
+            v += dt(1.0 - b2) * (g * g)                # v_t = b2 v + (1 - b2) g^2
+            m_hat = m / dt(c1)
+            v_hat = v / dt(c2)
+            p -= dt(self.lr) * m_hat / (np.sqrt(v_hat) + dt(self.eps))
+
+    def state(self) -> dict[str, np.ndarray]:
+        """Checkpoint arrays: adam_t, adam_m_<name>, adam_v_<name>."""
+        d = {"adam_t": np.asarray(self.t, dtype=np.int64)}
+        for name, m, v in zip(self.names, self.m, self.v):
+            d[f"adam_m_{name}"] = m.copy()
+            d[f"adam_v_{name}"] = v.copy()
+        return d
+
+    def load_state(self, d, source: str = "checkpoint") -> None:
+        if "adam_t" not in d:
+            raise InputError(f"{source}: missing array 'adam_t'")
+        t = int(np.asarray(d["adam_t"]))
+        for i, name in enumerate(self.names):
+            for kind, store in (("m", self.m), ("v", self.v)):
+                key = f"adam_{kind}_{name}"
+                if key not in d:
+                    raise InputError(f"{source}: missing array '{key}'")
+                a = np.asarray(d[key])
+                if a.shape != store[i].shape:
+                    raise InputError(f"{source}: array '{key}' has shape {a.shape}, "
+                                     f"expected {store[i].shape}")
+                store[i][...] = a
+        self.t = t
+
+
+# ---------------------------------------------------------------- one training step
+
+def train_step(params: Params, adam: Adam, x: np.ndarray, labels: np.ndarray,
+               train_mask: np.ndarray, n_train_global: int, hops: list[LayerHop],
+               propagate: Propagate, propagate_t: Propagate, drop: Drop,
+               allreduce: Callable[[np.ndarray], None], weight_decay: float) -> float:
+    """Forward, loss, backward, all-reduce of the flat gradient, weight decay, Adam step.
+
+    Returns this process's loss part (without the weight-decay penalty; compute that with
+    `weight_decay_penalty` BEFORE the step, at the weights this forward used).
+    """
+    logits, cache = forward(params, x, hops, propagate, drop)
+    loss_part, dlogits = loss_and_grad(logits, labels, train_mask, n_train_global)
+    del logits
+    grads = backward(params, cache, dlogits, hops, propagate_t)
+    del cache
+    flat = flatten(grads)
+    allreduce(flat)
+    grads = unflatten(flat, params)
+    add_weight_decay(grads, params, weight_decay)
+    adam.step(params, grads)
+    return loss_part
+
+
+def correct_counts(logits: np.ndarray, labels: np.ndarray, masks: list) -> list[int]:
+    """Correct argmax predictions inside each mask (0 for a None mask)."""
+    pred = np.argmax(logits, axis=1)
+    hit = pred == np.asarray(labels)
+    return [0 if m is None else int(np.count_nonzero(hit & m)) for m in masks]
