@@ -1,0 +1,316 @@
+"""Survey: metrics, predicted traffic and predicted memory of partition plans.
+
+A plan is (graph, partition method, worker count). The survey builds the plan's shards
+(structure only, no vertex data) and reads everything off them and off the exchange
+schedule (`schedule.layer_hops`) — the same two things the worker follows — so the
+predicted payload equals what the trainer measures, byte for byte. It starts no processes,
+so it can compare plans for clusters far larger than this machine (k up to 1024 and more):
+per plan the Python work is O(k) loops over workers; the k x k traffic matrix is numpy.
+"""
+from __future__ import annotations
+
+import gc
+import time
+from dataclasses import dataclass
+
+import numpy as np
+
+from shardtrain.errors import InputError
+from shardtrain.schedule import LayerHop, layer_dims, layer_hops
+
+# Resident memory of an idle worker interpreter with numpy and scipy.sparse imported,
+# before it loads anything: measured on this machine (Python 3, numpy 2.4, scipy 1.17) as
+# VmRSS = 44.5 MiB; rounded up to 45 MiB. It is the floor under every predicted worker.
+BASELINE_RSS_BYTES = 45 * 2**20
+
+# Byte-accounting keys, as the trainer's profile counts them.
+KIND_HALO = "halo"
+KIND_ALLREDUCE = "allreduce"
+ALLREDUCE_LAYER = -1          # the all-reduce is one flat array of all gradients, no layer
+
+
+@dataclass(frozen=True)
+class SurveySettings:
+    """The model shape and partition options a survey compares plans under."""
+
+    layers: int = 2
+    hidden: int = 16
+    dtype: str = "float32"
+    classes: int | None = None      # needed when the graph has no labels
+    input_dim: int | None = None    # needed when the graph has no features
+    bias: bool = False
+    imbalance: float = 0.03
+    seed: int = 0
+
+
+def parameter_elements(hops: list[LayerHop], *, bias: bool = False) -> int:
+    """Number of trainable scalars: W_l (d_in x d_out) per layer, plus b_l (d_out) with bias.
+    The worker all-reduces exactly these gradients as one flat array each epoch."""
+    return int(sum(h.d_in * h.d_out + (h.d_out if bias else 0) for h in hops))
+
+
+def _ring_send_elements(size: int, k: int) -> np.ndarray:
+    from shardtrain.transport.ring import ring_send_elements
+
+    if k == 1:
+        return np.zeros(1, dtype=np.int64)
+    return np.asarray(ring_send_elements(size, k), dtype=np.int64)
+
+
+def _peer_rows(shards) -> tuple[np.ndarray, np.ndarray]:
+    """(send_rows, halo_rows), both k x k int64: send_rows[p, q] = rows p sends q in a
+    forward exchange; halo_rows[p, q] = rows of p's halo owned by q."""
+    send_rows = np.stack([np.diff(s.send_ptr) for s in shards]).astype(np.int64)
+    halo_rows = np.stack([np.diff(s.halo_ptr) for s in shards]).astype(np.int64)
+    return send_rows, halo_rows
+
+
+def predict_traffic(shards, hops: list[LayerHop], itemsize: int, *,
+                    param_elements: int) -> dict:
+    """Payload bytes (array data only, no framing) of one training epoch.
+
+    Forward, layer l, p -> q: len(shard_p.send_to(q)) * forward_width_l * itemsize.
+    Backward, layer l, p -> q: len(shard_p.halo_from(q)) * backward_width_l * itemsize
+    (the gradients of p's halo rows owned by q go back to q).
+    All-reduce: rank r sends ring_send_elements(param_elements, k)[r] * itemsize
+    (ring all-reduce, Patarasuk & Yuan 2009: about 2(k-1)/k of the gradient each).
+    `eval_forward_bytes`: one evaluation forward pass (the forward exchanges, no backward).
+    `pair_bytes[p][q]`: halo bytes p sends q per epoch, forward + backward.
+    """
+    k = len(shards)
+    send_rows, halo_rows = _peer_rows(shards)
+    rows_sent = int(send_rows.sum())        # == halo_rows.sum() on consistent shards
+    rows_back = int(halo_rows.sum())
+    per_layer = []
+    for h in hops:
+        per_layer.append({
+            "layer": h.layer, "transform_first": h.transform_first,
+            "forward_width": h.forward_width, "backward_width": h.backward_width,
+            "forward_bytes": rows_sent * h.forward_width * itemsize,
+            "backward_bytes": rows_back * h.backward_width * itemsize,
+        })
+    fwd_width = sum(h.forward_width for h in hops)
+    bwd_width = sum(h.backward_width for h in hops)
+    pair = (send_rows * (fwd_width * itemsize) + halo_rows * (bwd_width * itemsize))
+    allreduce = _ring_send_elements(param_elements, k) * itemsize
+    forward = sum(p["forward_bytes"] for p in per_layer)
+    return {
+        "forward_bytes": forward,
+        "backward_bytes": sum(p["backward_bytes"] for p in per_layer),
+        "allreduce_bytes": int(allreduce.sum()),
+        "eval_forward_bytes": forward,
+        "allreduce_bytes_per_worker": allreduce.tolist(),
+        "per_layer": per_layer,
+        "pair_bytes": pair.tolist(),
+    }
+
+
+def epoch_payload_bytes(traffic: dict) -> int:
+    """Payload of one training step: forward + backward halo exchanges + all-reduce."""
+    return int(traffic["forward_bytes"] + traffic["backward_bytes"] + traffic["allreduce_bytes"])
+
+
+def predict_run_payload(traffic: dict, epochs: int, evals: int) -> int:
+    """Payload of a whole run: `epochs` training steps and `evals` evaluation forwards.
+    This is the number the trainer compares with what it measured."""
+    return int(epochs * epoch_payload_bytes(traffic) + evals * traffic["eval_forward_bytes"])
+
+
+def predict_payload_breakdown(shards, hops: list[LayerHop], itemsize: int, *,
+                              param_elements: int, epochs: int, evals: int) -> dict:
+    """Predicted payload of a run per (src, dst, kind, layer, direction), the trainer's
+    counter keys: kind "halo" with direction "forward" / "backward" / "eval", and kind
+    "allreduce" with layer -1 and direction "backward" (rank r sends to r+1 in the ring).
+    Pairs that exchange nothing are left out. Sums to `predict_run_payload`.
+    Loops over workers and their peers: meant for training-sized k, not for k = 1024.
+    """
+    k = len(shards)
+    out: dict[tuple, int] = {}
+    for s in shards:
+        p = s.worker
+        for q in s.peers():
+            n_send = int(s.send_ptr[q + 1] - s.send_ptr[q])
+            n_halo = int(s.halo_ptr[q + 1] - s.halo_ptr[q])
+            for h in hops:
+                fwd = n_send * h.forward_width * itemsize
+                bwd = n_halo * h.backward_width * itemsize
+                if fwd:
+                    out[(p, q, KIND_HALO, h.layer, "forward")] = epochs * fwd
+                    if evals:
+                        out[(p, q, KIND_HALO, h.layer, "eval")] = evals * fwd
+                if bwd and epochs:
+                    out[(p, q, KIND_HALO, h.layer, "backward")] = epochs * bwd
+    allreduce = _ring_send_elements(param_elements, k) * itemsize
+    for r in range(k):
+        if allreduce[r] and epochs:
+            out[(r, (r + 1) % k, KIND_ALLREDUCE, ALLREDUCE_LAYER, "backward")] = \
+                epochs * int(allreduce[r])
+    return out
+
+
+def predict_memory(shard, hops: list[LayerHop], itemsize: int, *, param_elements: int,
+                   input_dim: int) -> int:
+    """Predicted peak training memory (bytes) of one worker, from the arrays it holds.
+
+    n = owned rows, h = halo rows, s = rows it sends (all peers), nnz = entries of its
+    local Â, b = itemsize of the training dtype. Terms:
+    - baseline: `BASELINE_RSS_BYTES`, the idle interpreter with numpy + scipy;
+    - local CSR: indptr (n+1) x 8, indices nnz x (their int width), data nnz x b;
+    - vertex data: features n x input_dim x b, labels n x 8, three split masks n x 1;
+    - per layer (kept for the whole step): forward send buffer s x fw x b and halo receive
+      buffer h x fw x b; backward send buffer h x bw x b and receive buffer s x bw x b;
+      the layer input after dropout n x d_in x b and its dropout mask n x d_in x 1; the
+      [owned | halo] stack (n+h) x fw x b; aggregate-first layers also keep Â[H] for dW,
+      n x d_in x b; the pre-activation Z, n x d_out x b;
+    - softmax probabilities of the last layer, n x classes x b;
+    - gradient working set: the largest over layers of dZ (n x d_out) + d[stack]
+      ((n+h) x fw) + dH (n x d_in), times b — a layer's gradients die before the next;
+    - parameters: weights, their gradients, Adam m and v, and the flat all-reduce buffer,
+      5 x param_elements x b.
+    """
+    n, h = shard.num_owned, shard.num_halo
+    s = int(shard.send_ptr[-1])
+    adj = shard.adj
+    nnz = int(adj.nnz)
+    b = int(itemsize)
+    total = BASELINE_RSS_BYTES
+    total += (n + 1) * 8 + nnz * adj.indices.dtype.itemsize + nnz * b
+    total += n * input_dim * b + n * 8 + 3 * n
+    grad_peak = 0
+    for hop in hops:
+        fw, bw = hop.forward_width, hop.backward_width
+        total += (s + h) * fw * b + (h + s) * bw * b            # wire buffers
+        total += n * hop.d_in * (b + 1)                          # dropped-out input + mask
+        total += (n + h) * fw * b                                # [owned | halo] stack
+        total += 0 if hop.transform_first else n * hop.d_in * b  # Â[H] kept for dW
+        total += n * hop.d_out * b                               # Z
+        grad_peak = max(grad_peak, (n * hop.d_out + (n + h) * fw + n * hop.d_in) * b)
+    total += n * hops[-1].d_out * b + grad_peak
+    total += 5 * param_elements * b
+    return int(total)
+
+
+def _max_over_mean(values: np.ndarray) -> dict:
+    values = np.asarray(values, dtype=np.float64)
+    mean = float(values.mean()) if values.size else 0.0
+    ratio = float(values.max()) / mean if mean > 0 else 1.0
+    return {"max_over_mean": ratio, "max": float(values.max()), "mean": mean}
+
+
+def survey_plan(graph, method: str, k: int, *, hops: list[LayerHop], itemsize: int,
+                seed: int, imbalance: float, assignment: np.ndarray | None = None,
+                bias: bool = False) -> dict:
+    """Partition (or take `assignment`), build the shards without vertex data, and report
+    the plan: edge cut, replication factor, per-worker sizes, memory and bytes, traffic per
+    epoch, and max/mean imbalances. Shards are freed before returning."""
+    from shardtrain.shards import build_shards, edge_cut, shard_stats
+
+    t0 = time.perf_counter()
+    if assignment is None:
+        from shardtrain.partition import partition
+
+        assignment = partition(graph, method, k, seed=seed, imbalance=imbalance)
+    t1 = time.perf_counter()
+    shards = build_shards(graph, assignment, k, with_vertex_data=False)
+    t2 = time.perf_counter()
+    params = parameter_elements(hops, bias=bias)
+    traffic = predict_traffic(shards, hops, itemsize, param_elements=params)
+    stats = shard_stats(shards)
+    owned, halo, local_edges = stats["owned"], stats["halo"], stats["local_edges"]
+    memory = np.array([predict_memory(s, hops, itemsize, param_elements=params,
+                                      input_dim=hops[0].d_in) for s in shards])
+    del shards
+    gc.collect()
+    pair = np.asarray(traffic["pair_bytes"], dtype=np.int64)
+    ring = np.asarray(traffic["allreduce_bytes_per_worker"], dtype=np.int64)
+    # a ring rank receives what its predecessor sends
+    sent = pair.sum(axis=1) + ring
+    received = pair.sum(axis=0) + np.roll(ring, 1)
+    cut = int(edge_cut(graph, assignment))
+    shard_rows = [{"worker": w, "owned": int(owned[w]), "halo": int(halo[w]),
+                   "local_edges": int(local_edges[w]), "memory_bytes": int(memory[w]),
+                   "bytes_sent": int(sent[w]), "bytes_received": int(received[w])}
+                  for w in range(k)]
+    return {
+        "method": method,
+        "workers": k,
+        "edge_cut": cut,
+        "replication_factor": float((owned.sum() + halo.sum()) / graph.num_vertices),
+        "max_memory_bytes": int(memory.max()),
+        "epoch_payload_bytes": epoch_payload_bytes(traffic),
+        "shards": shard_rows,
+        "traffic": traffic,
+        "imbalance": {"owned": _max_over_mean(owned),
+                      "local_edges": _max_over_mean(local_edges),
+                      "halo": _max_over_mean(halo),
+                      "bytes_sent": _max_over_mean(sent)},
+        "partition_s": t1 - t0,
+        "build_s": t2 - t1,
+    }
+
+
+def model_shape(graph, settings: SurveySettings) -> tuple[list[tuple[int, int]], list[LayerHop]]:
+    """(dims, hops) of the model the settings describe on this graph."""
+    input_dim = graph.input_dim if graph.input_dim is not None else settings.input_dim
+    classes = graph.num_classes if graph.num_classes > 0 else settings.classes
+    if input_dim is None or input_dim < 1:
+        raise InputError("--input-dim: the graph has no features; give the input width D >= 1")
+    if classes is None or classes < 1:
+        raise InputError("--classes: the graph has no labels; give the number of classes C >= 1")
+    dims = layer_dims(int(input_dim), settings.hidden, int(classes), settings.layers)
+    return dims, layer_hops(dims)
+
+
+def check_plans(graph, methods: list[str], workers_list: list[int],
+                settings: SurveySettings) -> None:
+    """Reject bad options (InputError naming the option) before any work starts."""
+    from shardtrain.partition import METHODS
+
+    for m in methods:
+        if m not in METHODS:
+            raise InputError(f"--method: unknown method {m!r} (choose from {', '.join(METHODS)})")
+    for k in workers_list:
+        if k < 1 or k > graph.num_vertices:
+            raise InputError(f"--workers: {k} is not between 1 and the graph's "
+                             f"{graph.num_vertices} vertices")
+    if settings.layers < 1:
+        raise InputError(f"--layers: must be >= 1, got {settings.layers}")
+    if settings.hidden < 1:
+        raise InputError(f"--hidden: must be >= 1, got {settings.hidden}")
+    if settings.dtype not in ("float32", "float64"):
+        raise InputError(f"--dtype: must be float32 or float64, got {settings.dtype!r}")
+    if not 0.0 <= settings.imbalance < 1.0:
+        raise InputError(f"--imbalance: must be in [0, 1), got {settings.imbalance}")
+    model_shape(graph, settings)
+
+
+def survey(graph, methods: list[str], workers_list: list[int], settings: SurveySettings,
+           *, assignment: np.ndarray | None = None, on_plan=None) -> dict:
+    """Survey every (method, workers) plan. With `assignment` (a user's own partition),
+    `methods` should be one label and `workers_list` its worker count.
+    `on_plan(plan)` is called after each plan (progress reporting in the CLI)."""
+    check_plans(graph, [] if assignment is not None else methods, workers_list, settings)
+    dims, hops = model_shape(graph, settings)
+    itemsize = np.dtype(settings.dtype).itemsize
+    plans = []
+    for method in methods:
+        for k in workers_list:
+            plan = survey_plan(graph, method, k, hops=hops, itemsize=itemsize,
+                               seed=settings.seed, imbalance=settings.imbalance,
+                               assignment=assignment, bias=settings.bias)
+            plans.append(plan)
+            if on_plan is not None:
+                on_plan(plan)
+    return {
+        "graph": {"vertices": graph.num_vertices, "edges": graph.num_edges,
+                  "input_dim": dims[0][0], "classes": dims[-1][1]},
+        "model": {"layers": settings.layers, "hidden": settings.hidden,
+                  "dtype": settings.dtype, "bias": settings.bias,
+                  "parameters": parameter_elements(hops, bias=settings.bias),
+                  "dims": [list(d) for d in dims],
+                  "hops": [{"layer": h.layer, "d_in": h.d_in, "d_out": h.d_out,
+                            "transform_first": h.transform_first,
+                            "forward_width": h.forward_width,
+                            "backward_width": h.backward_width} for h in hops]},
+        "plans": plans,
+    }

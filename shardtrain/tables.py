@@ -1,0 +1,59 @@
+"""Readable plain-text tables and byte sizes, for the commands' terminal output.
+
+`format_table(rows, columns)`: columns are (key, header, fmt) where fmt is a format spec
+("{:,}", "{:.2f}") or a callable value -> str. Numbers are right-aligned, text left-aligned.
+"""
+from __future__ import annotations
+
+from numbers import Number
+from typing import Callable, Union
+
+Fmt = Union[str, Callable[[object], str], None]
+
+_UNITS = ("B", "KiB", "MiB", "GiB", "TiB", "PiB")
+
+
+def human_bytes(n: float) -> str:
+    """Binary units with three significant figures: 0 B, 512 B, 1.50 KiB, 12.3 MiB, 456 GiB."""
+    n = float(n)
+    sign = "-" if n < 0 else ""
+    n = abs(n)
+    for unit in _UNITS:
+        if n < 1024 or unit == _UNITS[-1]:
+            break
+        n /= 1024
+    if unit == "B":
+        return f"{sign}{int(n)} B"
+    text = f"{n:.3g}" if n >= 1 else f"{n:.2f}"
+    if "." not in text and "e" not in text and n < 100:
+        text = f"{n:.{3 - len(text)}f}"
+    return f"{sign}{text} {unit}"
+
+
+def _cell(value, fmt: Fmt) -> str:
+    if value is None:
+        return "-"
+    if callable(fmt):
+        return fmt(value)
+    if fmt:
+        return fmt.format(value)
+    return str(value)
+
+
+def format_table(rows: list[dict], columns: list[tuple[str, str, Fmt]]) -> str:
+    """Aligned text: a header line, a rule, one line per row; missing keys show '-'."""
+    headers = [header for _, header, _ in columns]
+    cells = [[_cell(row.get(key), fmt) for key, _, fmt in columns] for row in rows]
+    numeric = [all(isinstance(row.get(key), Number) or row.get(key) is None for row in rows)
+               and any(isinstance(row.get(key), Number) for row in rows)
+               for key, _, _ in columns]
+    widths = [max([len(h)] + [len(r[i]) for r in cells]) for i, h in enumerate(headers)]
+
+    def line(values):
+        parts = [v.rjust(w) if num else v.ljust(w)
+                 for v, w, num in zip(values, widths, numeric)]
+        return "  ".join(parts).rstrip()
+
+    out = [line(headers), "  ".join("-" * w for w in widths)]
+    out.extend(line(r) for r in cells)
+    return "\n".join(out)
