@@ -14,7 +14,7 @@ _UNITS = ("B", "KiB", "MiB", "GiB", "TiB", "PiB")
 
 
 def human_bytes(n: float) -> str:
-    """Binary units with three significant figures: 0 B, 512 B, 1.50 KiB, 12.3 MiB, 456 GiB."""
+    """Binary units, about three significant figures: 0 B, 512 B, 1.50 KiB, 12.3 MiB, 456 GiB."""
     n = float(n)
     sign = "-" if n < 0 else ""
     n = abs(n)
@@ -24,9 +24,7 @@ def human_bytes(n: float) -> str:
         n /= 1024
     if unit == "B":
         return f"{sign}{int(n)} B"
-    text = f"{n:.3g}" if n >= 1 else f"{n:.2f}"
-    if "." not in text and "e" not in text and n < 100:
-        text = f"{n:.{3 - len(text)}f}"
+    text = f"{n:.0f}" if n >= 100 else f"{n:.1f}" if n >= 10 else f"{n:.2f}"
     return f"{sign}{text} {unit}"
 
 

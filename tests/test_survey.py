@@ -236,3 +236,31 @@ def test_cli_bad_options(run_cli, small_npz, tmp_path, args, option):
     lines = r.stderr.strip().splitlines()
     assert len(lines) == 1 and option in lines[0], r.stderr
     assert list(tmp_path.iterdir()) == [small_npz]
+
+
+# -- text tables ----------------------------------------------------------------------
+
+def test_human_bytes_uses_binary_prefixes():
+    # IEC 80000-13 binary prefixes: 1 KiB = 1024 B, 1 MiB = 1024 KiB, 1 GiB = 1024 MiB
+    from shardtrain.tables import human_bytes
+
+    assert human_bytes(0) == "0 B"
+    assert human_bytes(1023) == "1023 B"
+    assert human_bytes(1024) == "1.00 KiB"
+    assert human_bytes(1536) == "1.50 KiB"
+    assert human_bytes(5 * 2**30) == "5.00 GiB"
+    assert human_bytes(123 * 2**20) == "123 MiB"
+
+
+def test_format_table_aligns_columns():
+    from shardtrain.tables import format_table
+
+    text = format_table([{"m": "random", "k": 1024, "r": 1.5}, {"m": "range", "k": 2}],
+                        [("m", "method", None), ("k", "workers", "{:,}"), ("r", "repl", "{:.2f}")])
+    lines = text.splitlines()
+    assert lines[0].split() == ["method", "workers", "repl"]
+    assert lines[2].split() == ["random", "1,024", "1.50"]
+    assert lines[3].split() == ["range", "2", "-"]
+    # numbers right-aligned under their header: same end column
+    end = lines[0].index("workers") + len("workers")
+    assert lines[2][:end].endswith("1,024") and lines[3][:end].endswith("2")
