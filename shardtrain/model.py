@@ -395,3 +395,8 @@ def correct_counts(logits: np.ndarray, labels: np.ndarray, masks: list) -> list[
     pred = np.argmax(logits, axis=1)
     hit = pred == np.asarray(labels)
     return [0 if m is None else int(np.count_nonzero(hit & m)) for m in masks]
+
+
+def accuracy(correct: int, total: int) -> float | None:
+    """correct / total, or None (JSON null) for an empty or missing split."""
+    return None if total == 0 else correct / total

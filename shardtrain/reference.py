@@ -1,0 +1,102 @@
+"""Single-process, full-graph GCN training: the oracle partitioned training must equal.
+
+No shards, no workers, no transport: propagate is Â @ M and the all-reduce is a no-op.
+It calls the same `model.train_step` as the worker, with the same dropout keys (global
+vertex ids, epoch numbers 1..epochs), so the two differ only by the order of sums.
+"""
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass
+from typing import Callable
+
+import numpy as np
+
+from shardtrain import model
+from shardtrain.errors import InputError
+from shardtrain.graph import Graph, normalized_adjacency
+from shardtrain.schedule import layer_dims, layer_hops
+from shardtrain.settings import TrainSettings
+
+
+@dataclass
+class RunResult:
+    epochs: list[dict]          # {"epoch", "loss", "train_acc", "val_acc", "test_acc", "epoch_s"}
+    params: model.Params        # final weights
+    predictions: np.ndarray     # (n,) int64, argmax of the final weights' evaluation forward
+
+
+def check_trainable(graph: Graph) -> None:
+    """The graph must carry features, labels and at least one labelled training vertex."""
+    if graph.features is None:
+        raise InputError("graph: no vertex features (give --features)")
+    if graph.labels is None:
+        raise InputError("graph: no vertex labels (give --labels)")
+    if graph.train_mask is None or not np.any(graph.train_mask):
+        raise InputError("graph: no training vertices (the training split is empty)")
+    if np.any(graph.labels[graph.train_mask] < 0):
+        raise InputError("graph: some training vertices have no label")
+
+
+def model_dims(graph: Graph, settings: TrainSettings) -> list[tuple[int, int]]:
+    return layer_dims(graph.input_dim, settings.hidden, graph.num_classes, settings.layers)
+
+
+def _noop_allreduce(flat: np.ndarray) -> None:
+    """One process: its partial sums are already the totals."""
+
+
+def train_reference(graph: Graph, settings: TrainSettings, *, init_params=None,
+                    on_epoch: Callable[[dict], None] | None = None) -> RunResult:
+    """Train for settings.epochs steps; record the loss and accuracies of every epoch.
+
+    loss = the objective of that step's forward pass (cross-entropy + weight-decay penalty
+    at the weights that forward used); accuracies come from an evaluation forward (no
+    dropout) after the step. `init_params` (Params of the right shapes) replaces Glorot.
+    """
+    settings.validate()
+    check_trainable(graph)
+    dtype = settings.np_dtype
+    x = np.ascontiguousarray(graph.features, dtype=dtype)
+    labels = graph.labels
+    a_hat = normalized_adjacency(graph).astype(dtype)
+    n = graph.num_vertices
+    dims = model_dims(graph, settings)
+    hops = layer_hops(dims)
+    if init_params is None:
+        params = model.glorot_init(dims, settings.seed, dtype, settings.bias)
+    else:
+        params = model.params_from_arrays(model.params_to_arrays(init_params), dims,
+                                          settings.bias, dtype, source="initial weights")
+    adam = model.Adam(params, settings.lr)
+    masks = [graph.train_mask, graph.val_mask, graph.test_mask]
+    totals = [0 if m is None else int(np.count_nonzero(m)) for m in masks]
+    n_train = totals[0]
+    global_ids = np.arange(n, dtype=np.int64)
+
+    def propagate(layer, m):
+        return a_hat @ m
+
+    def propagate_t(layer, g):
+        return a_hat @ g            # Â is symmetric (bit for bit: d_i^-1/2 d_j^-1/2)
+
+    records = []
+    logits = None
+    for epoch in range(1, settings.epochs + 1):
+        start = time.perf_counter()
+        penalty = model.weight_decay_penalty(params, settings.weight_decay)
+        drop = model.Dropout(settings.seed, epoch, settings.dropout, global_ids)
+        loss_part = model.train_step(params, adam, x, labels, graph.train_mask, n_train, hops,
+                                     propagate, propagate_t, drop, _noop_allreduce,
+                                     settings.weight_decay)
+        epoch_s = time.perf_counter() - start
+        logits, _ = model.forward(params, x, hops, propagate, model.no_dropout)
+        acc = [model.accuracy(c, t) for c, t in
+               zip(model.correct_counts(logits, labels, masks), totals)]
+        record = {"epoch": epoch, "loss": loss_part + penalty, "train_acc": acc[0],
+                  "val_acc": acc[1], "test_acc": acc[2], "epoch_s": epoch_s}
+        records.append(record)
+        if on_epoch is not None:
+            on_epoch(record)
+    predictions = np.argmax(logits, axis=1).astype(np.int64)
+    return RunResult(records, params, predictions)

@@ -1,0 +1,74 @@
+"""Training settings: one value shared by the reference, the workers and the CLI.
+
+Defaults are the GCN paper's setup (Kipf & Welling, ICLR 2017): 2 layers, 16 hidden units,
+dropout 0.5, learning rate 0.01, weight decay 5e-4 on the first layer, 200 epochs, no bias.
+"""
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass, fields
+
+import numpy as np
+
+from shardtrain.errors import InputError
+
+DTYPES = ("float32", "float64")
+
+
+@dataclass
+class TrainSettings:
+    layers: int = 2
+    hidden: int = 16
+    dropout: float = 0.5
+    lr: float = 0.01
+    weight_decay: float = 5e-4
+    epochs: int = 200
+    seed: int = 0
+    dtype: str = "float32"
+    bias: bool = False
+
+    def validate(self) -> "TrainSettings":
+        """Raise InputError naming the command-line option of the first bad value."""
+        def need(ok, option, rule, value):
+            if not ok:
+                raise InputError(f"{option}: must be {rule} (got {value!r})")
+
+        need(_is_int(self.layers) and self.layers >= 1, "--layers", "an integer >= 1",
+             self.layers)
+        need(_is_int(self.hidden) and self.hidden >= 1, "--hidden", "an integer >= 1",
+             self.hidden)
+        need(_is_real(self.dropout) and 0 <= self.dropout < 1, "--dropout",
+             "a number in [0, 1)", self.dropout)
+        need(_is_real(self.lr) and self.lr > 0, "--lr", "a number > 0", self.lr)
+        need(_is_real(self.weight_decay) and self.weight_decay >= 0, "--weight-decay",
+             "a number >= 0", self.weight_decay)
+        need(_is_int(self.epochs) and self.epochs >= 1, "--epochs", "an integer >= 1",
+             self.epochs)
+        need(_is_int(self.seed) and self.seed >= 0, "--seed", "an integer >= 0", self.seed)
+        need(self.dtype in DTYPES, "--dtype", "one of " + ", ".join(DTYPES), self.dtype)
+        need(isinstance(self.bias, (bool, np.bool_)), "--bias", "true or false", self.bias)
+        return self
+
+    @property
+    def np_dtype(self) -> np.dtype:
+        return np.dtype(self.dtype)
+
+    def to_dict(self) -> dict:
+        return asdict(self)
+
+    @classmethod
+    def from_dict(cls, d: dict, source: str = "settings") -> "TrainSettings":
+        """Build and validate; unknown keys are an error naming `source`."""
+        known = {f.name for f in fields(cls)}
+        unknown = sorted(set(d) - known)
+        if unknown:
+            raise InputError(f"{source}: unknown training setting '{unknown[0]}'")
+        return cls(**d).validate()
+
+
+def _is_int(v) -> bool:
+    return isinstance(v, (int, np.integer)) and not isinstance(v, (bool, np.bool_))
+
+
+def _is_real(v) -> bool:
+    return (isinstance(v, (int, float, np.integer, np.floating))
+            and not isinstance(v, (bool, np.bool_)) and bool(np.isfinite(v)))
