@@ -76,6 +76,7 @@ def predict_traffic(shards, hops: list[LayerHop], itemsize: int, *,
     (ring all-reduce, Patarasuk & Yuan 2009: about 2(k-1)/k of the gradient each).
     `eval_forward_bytes`: one evaluation forward pass (the forward exchanges, no backward).
     `pair_bytes[p][q]`: halo bytes p sends q per epoch, forward + backward.
+    `send_rows[p][q]`: rows p sends q in one forward exchange (= len(shard_p.send_to(q))).
     """
     k = len(shards)
     send_rows, halo_rows = _peer_rows(shards)
@@ -102,6 +103,7 @@ def predict_traffic(shards, hops: list[LayerHop], itemsize: int, *,
         "allreduce_bytes_per_worker": allreduce.tolist(),
         "per_layer": per_layer,
         "pair_bytes": pair.tolist(),
+        "send_rows": send_rows.tolist(),
     }
 
 

@@ -40,7 +40,7 @@ def brute_force_traffic(g: nx.Graph, assignment, k, dims, itemsize):
     return {"forward": int(fwd_rows.sum()) * fwd_w * itemsize,
             "backward": int(bwd_rows.sum()) * bwd_w * itemsize,
             "pair": (fwd_rows * fwd_w + bwd_rows * bwd_w) * itemsize,
-            "halo": np.array([len(h) for h in halo])}
+            "halo": np.array([len(h) for h in halo]), "send_rows": fwd_rows}
 
 
 @pytest.mark.parametrize("seed", [0, 1, 2])
@@ -63,6 +63,7 @@ def test_traffic_equals_brute_force(seed, k, input_dim, layers):
         assert t["backward_bytes"] == ref["backward"]
         assert t["eval_forward_bytes"] == ref["forward"]
         np.testing.assert_array_equal(np.array(t["pair_bytes"]), ref["pair"])
+        np.testing.assert_array_equal(np.array(t["send_rows"]), ref["send_rows"])
         assert sum(p["forward_bytes"] for p in t["per_layer"]) == ref["forward"]
         assert [p["transform_first"] for p in t["per_layer"]] == \
             [b < a_ for a_, b in dims]
