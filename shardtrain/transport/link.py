@@ -1,0 +1,62 @@
+"""Link emulation: make the local pipes behave no faster than a described network link.
+
+What is emulated, exactly (a forecast that models the same thing can be compared with a
+measured run):
+- Each worker has one full-duplex network interface of `gbps` Gbit/s. The frames a worker
+  sends in one transport call (one `exchange`, or one all-reduce step) leave through it one
+  after the other, in increasing peer rank; the whole frame counts (framing + payload).
+- Frame i of a call may not finish arriving before
+      t_start + latency_us * 1e-6 + 8 * (bytes of frames 0..i) / (gbps * 1e9)
+  where t_start is when the call began. The sender holds back the frame's last byte until
+  then (it sleeps the difference; if the real pipe was slower, nothing is added).
+- Not emulated: contention at the receiver (several senders into one interface), switch
+  queues, packet loss, or any cost of the pipe itself beyond the max() above.
+So for a call that sends B bytes in total, the sender's part ends no earlier than
+latency + 8 B / bandwidth after it started, and a receiver cannot finish before its slowest
+sender's frame is due.
+"""
+from __future__ import annotations
+
+import re
+from dataclasses import dataclass
+
+from shardtrain.errors import InputError
+
+
+@dataclass(frozen=True)
+class LinkModel:
+    gbps: float            # bandwidth of each worker's interface, Gbit/s (1e9 bit/s)
+    latency_us: float = 0.0
+
+    def __post_init__(self):
+        if not self.gbps > 0 or not self.latency_us >= 0:
+            raise ValueError(f"link needs gbps > 0 and latency_us >= 0, got {self}")
+
+    def seconds(self, nbytes: int) -> float:
+        """Serialisation time of `nbytes` on this link, without the latency."""
+        return nbytes * 8 / (self.gbps * 1e9)
+
+    def due_times(self, start: float, frame_bytes: list[int]) -> list[float]:
+        """When each of the frames (sent back to back from `start`) may complete."""
+        due, sent = [], 0
+        for n in frame_bytes:
+            sent += n
+            due.append(start + self.latency_us * 1e-6 + self.seconds(sent))
+        return due
+
+
+_NUMBER = r"(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][-+]?\d+)?"
+_LINK = re.compile(rf"^\s*({_NUMBER})\s*(?::\s*({_NUMBER})\s*)?$")
+
+
+def parse_link(text: str, option: str = "--emulate-link") -> LinkModel:
+    """'GBPS[:LATENCY_US]' (e.g. '10', '0.1:50') -> LinkModel; InputError naming the option."""
+    m = _LINK.match(text or "")
+    if not m:
+        raise InputError(f"{option}: expected GBPS[:LATENCY_US] such as 10 or 0.1:50, "
+                         f"got {text!r}")
+    gbps = float(m.group(1))
+    latency = float(m.group(2)) if m.group(2) is not None else 0.0
+    if gbps <= 0:
+        raise InputError(f"{option}: bandwidth must be above 0 Gbit/s, got {text!r}")
+    return LinkModel(gbps, latency)

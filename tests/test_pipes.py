@@ -1,0 +1,328 @@
+"""The pipes transport: large frames in all directions at once, exact data, exact byte
+counts, deadlines, dead peers and bad frames named."""
+from __future__ import annotations
+
+import multiprocessing
+import os
+import threading
+import time
+
+import msgpack
+import numpy as np
+import pytest
+
+from shardtrain.errors import RunError
+from shardtrain.profile import Profile, merge
+from shardtrain.transport import frames
+from shardtrain.transport.frames import FrameError
+from shardtrain.transport.link import LinkModel
+from shardtrain.transport.pipes import PipeTransport, make_pipe_mesh, ring_pairs
+from shardtrain.transport.ring import ring_send_elements
+
+CTX = multiprocessing.get_context("spawn")
+PIPE_BUFFER = 1 << 20        # frames below are several times this
+
+
+def _rows(p: int, q: int) -> int:
+    """Rows of the frame p sends to q: distinct per ordered pair, several MB each."""
+    return 40_000 + 7_919 * p + 104_729 * q % 50_000
+
+
+def _payload(p: int, q: int, epoch: int, width: int, dtype) -> np.ndarray:
+    n = _rows(p, q)
+    base = np.arange(n * width, dtype=np.float64).reshape(n, width)
+    return (base * (p + 1) + q * 0.5 + epoch).astype(dtype)
+
+
+def _allreduce_input(rank: int, size: int) -> np.ndarray:
+    rng = np.random.default_rng(rank)
+    return rng.standard_normal(size).astype(np.float32)
+
+
+def _worker(rank, k, ends, width, result_conn):
+    """One worker: two exchanges with every peer (forward, then backward) and an all-reduce."""
+    try:
+        profile = Profile(rank)
+        t = PipeTransport(rank, k, ends, profile, timeout_s=30)
+        peers = [q for q in range(k) if q != rank]
+        ok = True
+        for epoch, direction, dtype in ((0, "forward", np.float32), (1, "backward", np.float64)):
+            out = {q: _payload(rank, q, epoch, width, dtype) for q in peers}
+            inc = {q: np.empty((_rows(q, rank), width), dtype) for q in peers}
+            with profile.phase("exchange"):
+                t.exchange(out, inc, kind="halo", epoch=epoch, layer=1, direction=direction)
+            ok &= all(np.array_equal(inc[q], _payload(q, rank, epoch, width, dtype))
+                      for q in peers)
+        buf = _allreduce_input(rank, 1_000_003)
+        with profile.phase("allreduce"):
+            t.allreduce_sum(buf, epoch=2)
+        t.close()
+        result_conn.send_bytes(msgpack.packb({"ok": bool(ok), "profile": profile.to_dict(),
+                                              "sum": buf.tobytes()}))
+    except BaseException as exc:  # report, do not hang the test
+        result_conn.send_bytes(msgpack.packb({"error": f"{type(exc).__name__}: {exc}"}))
+
+
+def _run_workers(k, pairs, width):
+    ends = make_pipe_mesh(k, pairs)
+    conns, procs = [], []
+    for r in range(k):
+        reader, writer = CTX.Pipe(duplex=False)
+        p = CTX.Process(target=_worker, args=(r, k, ends[r], width, writer))
+        p.start()
+        writer.close()
+        conns.append(reader)
+        procs.append(p)
+    for e in ends:
+        e.close()
+    results = []
+    for r, c in enumerate(conns):
+        assert c.poll(60), f"worker {r} sent no result"
+        results.append(msgpack.unpackb(c.recv_bytes()))
+    for p in procs:
+        p.join(10)
+    return results
+
+
+def test_four_processes_exchange_large_frames_all_at_once_and_count_exactly():
+    k, width = 4, 8
+    pairs = {(p, q) for p in range(k) for q in range(p + 1, k)} | ring_pairs(k)
+    results = _run_workers(k, pairs, width)
+    assert all("error" not in r for r in results), [r.get("error") for r in results]
+    assert all(r["ok"] for r in results)
+
+    # Every frame is larger than the pipe buffer, both ways, all pairs at once.
+    assert min(_rows(p, q) for p in range(k) for q in range(k)) * width * 4 > PIPE_BUFFER
+
+    # All-reduce: the sum of the inputs, identical bits on every rank.
+    sums = [np.frombuffer(r["sum"], dtype=np.float32) for r in results]
+    assert all(s.tobytes() == sums[0].tobytes() for s in sums)
+    exact = np.sum([_allreduce_input(r, sums[0].size).astype(np.float64) for r in range(k)],
+                   axis=0)
+    np.testing.assert_allclose(sums[0], exact, rtol=1e-5, atol=1e-5)
+
+    totals = merge([r["profile"] for r in results])
+    assert totals["consistent"], totals["mismatches"]      # receivers counted what was sent
+    halo = sum(_rows(p, q) * width * (4 + 8) for p in range(k) for q in range(k) if p != q)
+    assert totals["by_kind"]["halo"]["payload_bytes"] == halo
+    framing = sum(len(frames.encode_header(kind="halo", epoch=e, layer=1, direction=d, source=p,
+                                           dtype=dt, shape=(_rows(p, q), width)))
+                  for e, d, dt in ((0, "forward", np.float32), (1, "backward", np.float64))
+                  for p in range(k) for q in range(k) if p != q)
+    assert totals["by_kind"]["halo"]["framing_bytes"] == framing
+    # Ring traffic per rank exactly as ring_send_elements predicts (float32: 4 bytes).
+    per_rank = np.zeros(k, dtype=np.int64)
+    for r in results:
+        for row in r["profile"]["bytes"]:
+            if row["kind"] == "allreduce" and row["src"] == r["profile"]["rank"]:
+                per_rank[row["src"]] += row["payload_bytes"]
+    np.testing.assert_array_equal(per_rank, 4 * ring_send_elements(1_000_003, k))
+    assert totals["by_kind"]["allreduce"]["frames"] == k * 2 * (k - 1)
+
+
+# --- in one process: rank 0 is the test, the peer is driven by hand or by a thread ---------
+
+def _pair(timeout_s=1.0, **kw):
+    ends = make_pipe_mesh(2, {(0, 1)})
+    return ends, PipeTransport(0, 2, ends[0], Profile(0), timeout_s=timeout_s, **kw)
+
+
+def test_silent_peer_times_out_naming_it():
+    ends, t = _pair(timeout_s=0.5)
+    t0 = time.perf_counter()
+    with pytest.raises(RunError, match=r"timed out after 0.5 s waiting for worker 1 "
+                                       r"\(halo forward, layer 1, epoch 5\)"):
+        t.exchange({}, {1: np.empty(3)}, kind="halo", epoch=5, layer=1, direction="forward")
+    assert time.perf_counter() - t0 < 5
+    ends[1].close()
+    t.close()
+
+
+def test_peer_that_never_reads_times_out_naming_it():
+    ends, t = _pair(timeout_s=0.5)
+    big = np.zeros(4 * PIPE_BUFFER // 8)     # cannot fit the pipe buffer
+    with pytest.raises(RunError, match=r"waiting for worker 1 to read"):
+        t.exchange({1: big}, {}, kind="halo", epoch=0, layer=0, direction="forward")
+    ends[1].close()
+    t.close()
+
+
+def test_peer_death_before_sending_is_named():
+    ends = make_pipe_mesh(2, {(0, 1)})
+    # A worker that dies at once; after the parent closes its copy, the child held ends[1].
+    p = CTX.Process(target=_die, args=(ends[1],))
+    p.start()
+    ends[1].close()
+    t = PipeTransport(0, 2, ends[0], Profile(0), timeout_s=20)
+    with pytest.raises(RunError, match=r"worker 1 closed its pipe .*before sending halo"):
+        t.exchange({}, {1: np.empty(10)}, kind="halo", epoch=0, layer=0, direction="forward")
+    p.join(10)
+    t.close()
+
+
+def _die(ends):
+    os._exit(1)
+
+
+def test_peer_death_while_receiving_is_named():
+    ends, t = _pair(timeout_s=5)
+    ends[1].close()
+    with pytest.raises(RunError, match=r"worker 1 closed its pipe"):
+        t.exchange({1: np.zeros(4 * PIPE_BUFFER // 8)}, {}, kind="halo", epoch=0, layer=0,
+                   direction="forward")
+    t.close()
+
+
+def _raw(ends, data: bytes, close=True):
+    fd = ends[1].send[0].fileno()
+    os.write(fd, data)
+    if close:
+        ends[1].close()
+
+
+def test_truncated_payload_is_a_frame_error_naming_the_peer():
+    ends, t = _pair()
+    frame = frames.encode_frame(np.arange(512.0), kind="halo", epoch=0, layer=0,
+                                direction="forward", source=1)
+    _raw(ends, frame[:-100])
+    with pytest.raises(FrameError, match=r"frame from worker 1: truncated after 3996 of 4096 "
+                                         r"payload bytes"):
+        t.exchange({}, {1: np.empty(512)}, kind="halo", epoch=0, layer=0, direction="forward")
+    t.close()
+
+
+def test_truncated_header_is_a_frame_error_naming_the_peer():
+    ends, t = _pair()
+    frame = frames.encode_frame(np.arange(4.0), kind="halo", epoch=0, layer=0,
+                                direction="forward", source=1)
+    _raw(ends, frame[:20])
+    with pytest.raises(FrameError, match=r"frame from worker 1: truncated after 16 of \d+ "
+                                         r"header bytes"):
+        t.exchange({}, {1: np.empty(4)}, kind="halo", epoch=0, layer=0, direction="forward")
+    t.close()
+
+
+@pytest.mark.parametrize("field,value,message", [
+    ("epoch", 6, r"expected epoch 5, got 6"),
+    ("kind", "grad", r"expected kind 'halo', got 'grad'"),
+    ("direction", "backward", r"expected direction 'forward'"),
+    ("layer", 2, r"expected layer 1, got 2"),
+    ("source", 0, r"header names worker 0 as its source"),
+])
+def test_unexpected_frame_is_named(field, value, message):
+    ends, t = _pair()
+    meta = {"kind": "halo", "epoch": 5, "layer": 1, "direction": "forward", "source": 1}
+    meta[field] = value
+    _raw(ends, frames.encode_frame(np.arange(4.0), **meta), close=False)
+    with pytest.raises(FrameError, match="frame from worker 1: " + message):
+        t.exchange({}, {1: np.empty(4)}, kind="halo", epoch=5, layer=1, direction="forward")
+    ends[1].close()
+    t.close()
+
+
+@pytest.mark.parametrize("buf,message", [
+    (np.empty(5), r"shape \(4,\) does not match the receive buffer's \(5,\)"),
+    (np.empty(4, np.float32), r"dtype float64 does not match the receive buffer's float32"),
+])
+def test_frame_that_does_not_fit_the_buffer_is_named(buf, message):
+    ends, t = _pair()
+    _raw(ends, frames.encode_frame(np.arange(4.0), kind="halo", epoch=0, layer=0,
+                                   direction="forward", source=1), close=False)
+    with pytest.raises(FrameError, match="frame from worker 1: " + message):
+        t.exchange({}, {1: buf}, kind="halo", epoch=0, layer=0, direction="forward")
+    ends[1].close()
+    t.close()
+
+
+def test_oversized_frame_is_refused_before_its_payload():
+    ends, t = _pair(max_frame_bytes=1000)
+    _raw(ends, frames.encode_header(kind="halo", epoch=0, layer=0, direction="forward",
+                                    source=1, dtype=np.float64, shape=(1000,)), close=False)
+    with pytest.raises(FrameError, match=r"frame from worker 1: payload of 8000 bytes exceeds "
+                                         r"the limit of 1000 bytes"):
+        t.exchange({}, {1: np.empty(1000)}, kind="halo", epoch=0, layer=0, direction="forward")
+    ends[1].close()
+    t.close()
+
+
+def _threads_pair(link=None):
+    """Two transports in two threads of this process (the poll loop releases the GIL)."""
+    ends = make_pipe_mesh(2, {(0, 1)})
+    ts = [PipeTransport(r, 2, ends[r], Profile(r), timeout_s=20, link=link) for r in range(2)]
+    return ts
+
+
+def _both(ts, fn):
+    errors = []
+
+    def run(r):
+        try:
+            fn(r, ts[r])
+        except BaseException as exc:
+            errors.append(exc)
+    threads = [threading.Thread(target=run, args=(r,)) for r in range(2)]
+    for th in threads:
+        th.start()
+    for th in threads:
+        th.join(30)
+    if errors:
+        raise errors[0]
+
+
+def test_consecutive_frames_from_one_peer_are_not_mixed_up():
+    ts = _threads_pair()
+    got = {}
+
+    def fn(r, t):
+        for epoch in range(3):
+            inc = {1 - r: np.empty((100 + epoch, 3))}
+            t.exchange({1 - r: np.full((100 + epoch, 3), 10.0 * r + epoch)}, inc, kind="halo",
+                       epoch=epoch, layer=0, direction="forward")
+            got[r, epoch] = inc[1 - r]
+    _both(ts, fn)
+    for (r, epoch), a in got.items():
+        assert np.all(a == 10.0 * (1 - r) + epoch)
+    for t in ts:
+        t.close()
+
+
+def test_non_contiguous_and_empty_arrays_are_sent():
+    ts = _threads_pair()
+    src = np.arange(60.0).reshape(6, 10)
+    got = {}
+
+    def fn(r, t):
+        inc = {1 - r: np.empty((6, 5))}
+        t.exchange({1 - r: src[:, ::2]}, inc, kind="halo", epoch=0, layer=0, direction="forward")
+        empty = {1 - r: np.empty((0, 7), np.float32)}
+        t.exchange({1 - r: np.zeros((0, 7), np.float32)}, empty, kind="halo", epoch=1, layer=0,
+                   direction="forward")
+        got[r] = inc[1 - r]
+    _both(ts, fn)
+    assert np.array_equal(got[0], src[:, ::2]) and np.array_equal(got[1], src[:, ::2])
+    for t in ts:
+        t.close()
+
+
+def test_emulated_link_is_no_faster_than_its_bandwidth():
+    # 0.1 Gbit/s: a frame of B bytes cannot arrive before B * 8 / 1e8 s (a lower bound only).
+    link = LinkModel(gbps=0.1, latency_us=0)
+    ts = _threads_pair(link=link)
+    payload = np.zeros(250_000 // 8)                    # 250 kB payload: at least 20 ms
+    B = payload.nbytes + len(frames.encode_header(kind="halo", epoch=0, layer=0,
+                                                  direction="forward", source=0,
+                                                  dtype=payload.dtype, shape=payload.shape))
+    stamps = {}
+
+    def fn(r, t):
+        inc = {1 - r: np.empty_like(payload)} if r == 1 else {}
+        out = {1 - r: payload} if r == 0 else {}
+        stamps["start", r] = time.perf_counter()
+        t.exchange(out, inc, kind="halo", epoch=0, layer=0, direction="forward")
+        stamps["end", r] = time.perf_counter()
+    _both(ts, fn)
+    link_s = B * 8 / 1e8
+    assert stamps["end", 0] - stamps["start", 0] >= link_s      # the sender's call
+    assert stamps["end", 1] - stamps["start", 0] >= link_s      # arrival at the receiver
+    for t in ts:
+        t.close()
