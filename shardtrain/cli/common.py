@@ -1,0 +1,71 @@
+"""Options shared by the commands: the GRAPH argument with its vertex-data files, and
+comma-separated lists of numbers or names."""
+from __future__ import annotations
+
+import argparse
+import re
+
+from shardtrain.errors import InputError
+from shardtrain.io import LoadedGraph, load_graph
+
+
+def add_graph_arguments(parser: argparse.ArgumentParser) -> None:
+    """GRAPH, --features, --labels, --input-dim, --seed."""
+    parser.add_argument("graph", metavar="GRAPH",
+                        help="graph file: .npz bundle, .mtx, or edge list (.csv .tsv .txt .edges)")
+    parser.add_argument("--features", metavar="FILE",
+                        help="vertex features, .npy or .csv (one row per vertex)")
+    parser.add_argument("--labels", metavar="FILE",
+                        help="vertex labels, .npy or text with one integer per line (-1 = none)")
+    parser.add_argument("--input-dim", metavar="D", type=_positive_int("--input-dim"),
+                        help="feature width to plan for when the graph has no features")
+    parser.add_argument("--seed", metavar="S", type=_int("--seed"), default=0,
+                        help="seed for split masks the graph file does not give (default 0)")
+
+
+def load_graph_from_args(args: argparse.Namespace) -> LoadedGraph:
+    return load_graph(args.graph, features=args.features, labels=args.labels,
+                      input_dim=args.input_dim, seed=args.seed)
+
+
+def _int(option: str):
+    def convert(text: str) -> int:
+        try:
+            return int(text)
+        except ValueError:
+            raise InputError(f"{option} {text!r}: not an integer") from None
+    return convert
+
+
+def _positive_int(option: str):
+    as_int = _int(option)
+
+    def convert(text: str) -> int:
+        value = as_int(text)
+        if value < 1:
+            raise InputError(f"{option} {text!r}: must be at least 1")
+        return value
+    return convert
+
+
+def parse_int_list(text: str, option: str) -> list[int]:
+    """'2,4,8' -> [2, 4, 8]; spaces allowed, duplicates kept in order given."""
+    parts = [p.strip() for p in str(text).split(",")]
+    if not parts or any(not p for p in parts):
+        raise InputError(f"{option} {text!r}: expected comma-separated integers, e.g. 2,4,8")
+    try:
+        return [int(p) for p in parts]
+    except ValueError:
+        bad = next(p for p in parts if not re.fullmatch(r"[+-]?\d+", p))
+        raise InputError(f"{option} {text!r}: {bad!r} is not an integer") from None
+
+
+def parse_name_list(text: str, option: str) -> list[str]:
+    """'metis,random' -> ['metis', 'random']; names are [A-Za-z0-9_.-]+."""
+    parts = [p.strip() for p in str(text).split(",")]
+    if not parts or any(not p for p in parts):
+        raise InputError(f"{option} {text!r}: expected comma-separated names, e.g. metis,random")
+    for p in parts:
+        if not re.fullmatch(r"[A-Za-z0-9_.\-]+", p):
+            raise InputError(f"{option} {text!r}: {p!r} is not a valid name")
+    return parts
