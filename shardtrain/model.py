@@ -139,29 +139,45 @@ def dropout_mask(seed: int, epoch: int, layer: int, global_ids: np.ndarray, widt
     ids = np.asarray(global_ids)
     n = ids.shape[0]
     half = (width + 1) // 2
-    x = np.empty((n, half), dtype=np.uint32)
+    keys = _row_keys(seed, epoch, layer, ids)
     pair_keys = np.arange(half, dtype=np.uint32) * np.uint32(0x85EBCA77)
-    np.add(_row_keys(seed, epoch, layer, ids)[:, None], pair_keys[None, :], out=x)
-    t = np.empty_like(x)
-    # MurmurHash3 fmix32, in place (one temporary)
-    np.right_shift(x, 16, out=t); x ^= t; x *= np.uint32(0x85EBCA6B)
-    np.right_shift(x, 13, out=t); x ^= t; x *= np.uint32(0xC2B2AE35)
-    np.right_shift(x, 16, out=t); x ^= t
-    del t
-    uniform16 = x.view(np.uint16)[:, :width]
     threshold = min(int(round(rate * 65536)), 65535)
+    scale = np.dtype(dtype).type(65536.0 / (65536 - threshold))
     mask = np.empty((n, width), dtype=dtype)
-    np.greater_equal(uniform16, np.uint16(threshold), out=mask, casting="unsafe")
-    mask *= mask.dtype.type(65536.0 / (65536 - threshold))
+    # Blocks of rows small enough (~256 KiB) that the hash passes stay in cache: twice as
+    # fast as whole-array passes. The loop runs over blocks, not vertices.
+    block = max(1, _BLOCK_WORDS // max(half, 1))
+    x = np.empty((min(block, n), half), dtype=np.uint32)
+    t = np.empty_like(x)
+    for start in range(0, n, block):
+        stop = min(start + block, n)
+        xs, ts = x[:stop - start], t[:stop - start]
+        np.add(keys[start:stop, None], pair_keys[None, :], out=xs)
+        _fmix32(xs, ts)
+        ms = mask[start:stop]
+        np.greater_equal(xs.view(np.uint16)[:, :width], np.uint16(threshold), out=ms,
+                         casting="unsafe")
+        ms *= scale
     return mask
 
 
+_BLOCK_WORDS = 1 << 16
+
+
+def _fmix32(x: np.ndarray, t: np.ndarray) -> None:
+    """MurmurHash3's 32-bit finaliser (Appleby), in place; t is scratch of x's shape."""
+    np.right_shift(x, 16, out=t); x ^= t; x *= np.uint32(0x85EBCA6B)
+    np.right_shift(x, 13, out=t); x ^= t; x *= np.uint32(0xC2B2AE35)
+    np.right_shift(x, 16, out=t); x ^= t
+
+
 class Dropout:
-    """drop(layer, h) for one epoch of one process: h * mask, masks drawn once per layer.
+    """drop(layer, h) for one epoch of one process: h * mask.
 
     Inverted dropout is an elementwise linear map, so it is its own adjoint: `backward`
-    calls the same drop on the gradient, and the memoised mask makes that second call cheap.
-    A rate of 0 makes it the identity.
+    calls the same drop on the gradient. Masks of layers >= 1 are kept for that second
+    call; layer 0's is not (nothing differentiates through the features). A rate of 0 makes
+    it the identity. `global_ids` are the global ids of the rows, in row order.
     """
 
     def __init__(self, seed: int, epoch: int, rate: float, global_ids: np.ndarray):
@@ -176,7 +192,8 @@ class Dropout:
         if mask is None or mask.shape != h.shape or mask.dtype != h.dtype:
             mask = dropout_mask(self.seed, self.epoch, layer, self.global_ids, h.shape[1],
                                 self.rate, h.dtype)
-            self._masks[layer] = mask
+            if layer > 0:
+                self._masks[layer] = mask
         return h * mask
 
 

@@ -110,3 +110,73 @@ def test_missing_labels_is_an_input_error():
     bare = Graph(graph.indptr, graph.indices, graph.features)
     with pytest.raises(InputError, match="labels"):
         train_reference(bare, TrainSettings(epochs=1))
+
+
+def test_model_api_partitioned_in_threads_equals_the_reference():
+    """The model contract is enough for partitioned training: K threads, each owning a
+    shuffled block of rows, with propagate = Â[P, :] @ (rows gathered from all),
+    propagate_t = Â[:, P]ᵀ @ (rows gathered from all), a summing all-reduce and dropout
+    keyed by global ids, reproduce the reference's losses and weights in float64."""
+    import threading
+
+    from shardtrain.graph import normalized_adjacency
+    from shardtrain.schedule import layer_dims, layer_hops
+
+    _, graph = _small_graph(n=50, dim=9)
+    settings = TrainSettings(layers=3, hidden=6, epochs=6, dtype="float64", bias=True,
+                             seed=2, weight_decay=0.01)
+    ref = train_reference(graph, settings)
+
+    k, n = 3, graph.num_vertices
+    owned = np.array_split(np.random.default_rng(1).permutation(n), k)
+    a_hat = normalized_adjacency(graph)
+    dims = layer_dims(9, 6, graph.num_classes, 3)
+    hops = layer_hops(dims)
+    assert {h.transform_first for h in hops} == {True, False}
+    barrier = threading.Barrier(k)
+    board = {}
+    n_train = int(graph.train_mask.sum())
+    losses = np.zeros((k, settings.epochs))
+    finals = [None] * k
+
+    def gather(p, rows):
+        board[p] = rows
+        barrier.wait()
+        full = np.zeros((n, rows.shape[1]))
+        for q in range(k):
+            full[owned[q]] = board[q]
+        barrier.wait()
+        return full
+
+    def worker(p):
+        ids = owned[p]
+        params = model.glorot_init(dims, settings.seed, np.float64, True)
+        adam = model.Adam(params, settings.lr)
+        prop = lambda l, m: a_hat[ids] @ gather(p, m)
+        prop_t = lambda l, g: a_hat[:, ids].T @ gather(p, g)
+
+        def allreduce(flat):
+            board[("g", p)] = flat.copy()
+            barrier.wait()
+            flat[...] = sum(board[("g", q)] for q in range(k))
+            barrier.wait()
+
+        for e in range(1, settings.epochs + 1):
+            pen = model.weight_decay_penalty(params, settings.weight_decay)
+            part = model.train_step(params, adam, graph.features[ids], graph.labels[ids],
+                                    graph.train_mask[ids], n_train, hops, prop, prop_t,
+                                    model.Dropout(settings.seed, e, settings.dropout, ids),
+                                    allreduce, settings.weight_decay)
+            losses[p, e - 1] = part + pen / k
+        finals[p] = params
+
+    threads = [threading.Thread(target=worker, args=(p,)) for p in range(k)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    np.testing.assert_allclose(losses.sum(axis=0), [r["loss"] for r in ref.epochs], rtol=1e-12)
+    for params in finals:
+        for (w, b), (rw, rb) in zip(params, ref.params):
+            np.testing.assert_allclose(w, rw, rtol=1e-9, atol=1e-12)
+            np.testing.assert_allclose(b, rb, rtol=1e-9, atol=1e-12)
