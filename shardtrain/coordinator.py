@@ -1,0 +1,451 @@
+"""Starting, watching and stopping the worker processes of one partitioned training run.
+
+The coordinator starts one "spawn" process per shard (a spawned child holds only the pipe
+ends it is given, see `transport/pipes.py`), with BLAS pinned to one thread in the child's
+environment before it imports numpy. The workers run their epochs on their own and report
+each epoch over a control pipe (msgpack, no pickle); the coordinator adds the reports up,
+watches every worker's liveness (its process sentinel) while it waits, and stops them all
+on the first failure: a dead or failing worker becomes a RunError naming it, its exit
+status or signal and the last thing it was doing, never a hang.
+
+epoch_s of a record is the slowest worker's wall time of that training step (forward,
+backward, all-reduce, Adam; without the evaluation forward): the same span the reference
+times, and what a cluster would wait for, since the all-reduce makes every step end at the
+pace of the slowest worker.
+"""
+from __future__ import annotations
+
+import logging
+import multiprocessing
+import os
+import signal
+import time
+from contextlib import contextmanager
+from dataclasses import dataclass, field
+from multiprocessing.connection import wait
+from typing import Callable
+
+import numpy as np
+
+from shardtrain import model, worker
+from shardtrain.errors import InputError, RunError
+from shardtrain.settings import TrainSettings
+
+log = logging.getLogger(__name__)
+
+START_METHOD = "spawn"
+JOIN_S = 5.0                 # how long stopped workers get before they are killed
+ERROR_GRACE_S = 0.5          # after a reported error, time to notice a silent death
+
+
+@dataclass
+class PartitionedRunResult:
+    """What `train_partitioned` returns: the reference's RunResult fields plus the account
+    of the run (traffic measured and predicted, per-worker rows, merged profile)."""
+
+    epochs: list[dict]
+    params: model.Params
+    predictions: np.ndarray
+    traffic: dict = field(default_factory=dict)
+    workers: list[dict] = field(default_factory=list)
+    profile: dict = field(default_factory=dict)
+    labels: np.ndarray | None = None     # the shards' labels by global id (-1: none)
+
+
+# ---------------------------------------------------------------- worker logs
+
+class _Dispatch(logging.Handler):
+    """Hand a worker's record to this process's logging tree, as if logged here."""
+
+    def emit(self, record: logging.LogRecord) -> None:
+        logging.getLogger(record.name).handle(record)
+
+
+def _worker_log_handler(ctx):
+    """multiprocessing-logging's receiving handler, with its queue made in `ctx`: the library
+    builds its queue in the default ('fork') context, which spawned children cannot share."""
+    import multiprocessing_logging
+
+    class WorkerLogs(multiprocessing_logging.MultiProcessingHandler):
+        @property
+        def queue(self):
+            return self._queue
+
+        @queue.setter
+        def queue(self, library_queue):
+            library_queue.close()
+            self._queue = ctx.Queue(-1)
+
+    return WorkerLogs("shardtrain-worker-logs", sub_handler=_Dispatch())
+
+
+# ---------------------------------------------------------------- shard directory facts
+
+@dataclass(frozen=True)
+class ShardDirFacts:
+    workers: int
+    num_vertices: int
+    num_classes: int
+    input_dim: int
+
+
+def shard_dir_facts(shard_dir) -> ShardDirFacts:
+    """Worker count, graph size, classes and feature width from the shard manifest."""
+    from shardtrain.shards import load_manifest
+
+    m = load_manifest(shard_dir)
+    get = m.get if isinstance(m, dict) else (lambda key, default=None: getattr(m, key, default))
+    meta = get("meta", None) or {}
+
+    def pick(*names):
+        for name in names:
+            for source in (get, meta.get):
+                value = source(name, None)
+                if value is not None:
+                    return int(value)
+        raise InputError(f"{shard_dir}: shard manifest lacks '{names[0]}'")
+
+    return ShardDirFacts(workers=pick("workers", "k"),
+                         num_vertices=pick("num_vertices", "vertices"),
+                         num_classes=pick("num_classes", "classes"),
+                         input_dim=pick("input_dim", "features"))
+
+
+# ---------------------------------------------------------------- process handling
+
+@contextmanager
+def _blas_env_pinned():
+    """Spawned children copy the environment at start: pin BLAS before they import numpy."""
+    saved = {name: os.environ.get(name) for name in worker.BLAS_ENV}
+    os.environ.update({name: "1" for name in worker.BLAS_ENV})
+    try:
+        yield
+    finally:
+        for name, value in saved.items():
+            if value is None:
+                os.environ.pop(name, None)
+            else:
+                os.environ[name] = value
+
+
+def describe_exit(code: int | None) -> str:
+    if code is None:
+        return "still running"
+    if code < 0:
+        try:
+            return f"killed by signal {signal.Signals(-code).name}"
+        except ValueError:
+            return f"killed by signal {-code}"
+    return f"exit status {code}"
+
+
+def stop_workers(procs: list, join_s: float = JOIN_S) -> None:
+    """Terminate whatever still runs, wait, kill stragglers: no orphan survives."""
+    for p in procs:
+        if p.is_alive():
+            p.terminate()
+    deadline = time.monotonic() + join_s
+    for p in procs:
+        p.join(max(0.0, deadline - time.monotonic()))
+    for p in procs:
+        if p.is_alive():
+            p.kill()
+            p.join(join_s)
+
+
+def mesh_pairs(k: int, peer_sets: list[set[int]] | None = None) -> set[tuple[int, int]]:
+    """Pipe pairs: halo peers (all pairs when unknown) plus ring neighbours."""
+    from shardtrain.transport.pipes import ring_pairs
+
+    pairs = set(ring_pairs(k))
+    if peer_sets is None:
+        pairs |= {(p, q) for p in range(k) for q in range(p + 1, k)}
+    else:
+        pairs |= {(min(p, q), max(p, q)) for p in range(k) for q in peer_sets[p] if q != p}
+    return pairs
+
+
+# ---------------------------------------------------------------- epoch aggregation
+
+class _EpochBook:
+    """Collects the per-worker reports of each epoch; a record is complete with k reports."""
+
+    def __init__(self, k: int):
+        self.k = k
+        self.pending: dict[int, dict[int, dict]] = {}
+        self.last_epoch = [None] * k
+
+    def add(self, rep: dict) -> dict | None:
+        w, e = int(rep["worker"]), int(rep["epoch"])
+        self.last_epoch[w] = e
+        bucket = self.pending.setdefault(e, {})
+        bucket[w] = rep
+        if len(bucket) < self.k:
+            return None
+        del self.pending[e]
+        return epoch_record(e, [bucket[r] for r in range(self.k)])
+
+
+def epoch_record(epoch: int, reports: list[dict]) -> dict:
+    """Sum the workers' parts (in rank order) into the reference's epoch record."""
+    loss = sum(r["loss_part"] for r in reports) + reports[0]["penalty"]
+    correct = np.sum([r["correct"] for r in reports], axis=0)
+    totals = np.sum([r["totals"] for r in reports], axis=0)
+    acc = [model.accuracy(int(c), int(t)) for c, t in zip(correct, totals)]
+    return {"epoch": epoch, "loss": loss, "train_acc": acc[0], "val_acc": acc[1],
+            "test_acc": acc[2], "epoch_s": max(r["step_s"] for r in reports)}
+
+
+# ---------------------------------------------------------------- the run
+
+def train_partitioned(shard_dir, settings: TrainSettings, *, timeout_s: float = 60.0,
+                      init_params=None, on_epoch: Callable[[dict], None] | None = None,
+                      link=None, max_frame_bytes: int | None = None,
+                      load_shard=None, facts: "ShardDirFacts | None" = None
+                      ) -> PartitionedRunResult:
+    """Train on the shards in `shard_dir`, one process per shard, over pipes.
+
+    `init_params`: {name: array} or model Params to start from (validated by every worker
+    against the model shape). `link`: a transport.link.LinkModel to emulate a network.
+    `timeout_s`: deadline of every receive; the coordinator itself gives up when no worker
+    has said anything for 4 x timeout_s + 30 s. `load_shard` (a module-level function
+    (dir, worker) -> Shard) and `facts` replace reading the shard directory, for tests.
+    """
+    from shardtrain.transport import frames
+    from shardtrain.transport.pipes import make_pipe_mesh
+
+    settings.validate()
+    facts = facts or shard_dir_facts(shard_dir)
+    k = facts.workers
+    if init_params is not None and not isinstance(init_params, dict):
+        init_params = model.params_to_arrays(init_params)
+    options = {"timeout_s": float(timeout_s), "link": link, "init_params": init_params,
+               "load_shard": load_shard,
+               "max_frame_bytes": int(max_frame_bytes or frames.DEFAULT_MAX_FRAME_BYTES)}
+    ctx = multiprocessing.get_context(START_METHOD)
+    logs = _worker_log_handler(ctx)
+    log_level = logging.getLogger("shardtrain").getEffectiveLevel()
+    ends = make_pipe_mesh(k, mesh_pairs(k))
+    procs, ctrls = [], []
+    try:
+        with _blas_env_pinned():
+            for r in range(k):
+                mine, theirs = ctx.Pipe(duplex=True)
+                p = ctx.Process(target=worker.process_main, name=f"shardtrain-worker-{r}",
+                                args=(r, k, str(shard_dir), settings.to_dict(),
+                                      facts.num_classes, ends[r], theirs, logs.queue,
+                                      log_level, options), daemon=True)
+                p.start()
+                theirs.close()
+                ends[r].close()          # the child has its own copies now
+                procs.append(p)
+                ctrls.append(mine)
+        records, summaries = _watch(procs, ctrls, k, settings.epochs, on_epoch,
+                                    4 * float(timeout_s) + 30.0)
+        for p in procs:
+            p.join(JOIN_S)
+    finally:
+        for e in ends:
+            e.close()
+        stop_workers(procs)
+        for c in ctrls:
+            c.close()
+        logs.close()
+    return _result(records, summaries, facts, settings)
+
+
+def _watch(procs, ctrls, k, epochs, on_epoch, stall_s):
+    """Read reports until every worker is done; a failure stops the run with a RunError.
+
+    A worker that exits without a word (a signal, os._exit) is the cause and is named at
+    once. A reported error waits ERROR_GRACE_S for such a silent death, because the peers of
+    a dead worker report "closed its pipe" errors that are only the consequence.
+    """
+    book = _EpochBook(k)
+    records: list[dict] = []
+    summaries: list[dict | None] = [None] * k
+    errors: list[str] = []
+    error_deadline = None
+    open_conns = {c: r for r, c in enumerate(ctrls)}
+    sentinels = {p.sentinel: r for r, p in enumerate(procs)}
+    last_news = time.monotonic()
+    while any(s is None for s in summaries):
+        if error_deadline is not None and time.monotonic() >= error_deadline:
+            raise RunError(errors[0])
+        ready = wait(list(open_conns) + list(sentinels), timeout=0.2)
+        if not ready and time.monotonic() - last_news > stall_s:
+            raise RunError(f"no worker reported anything for {stall_s:g} s (epochs reported: "
+                           f"{_epochs_text(book.last_epoch)})")
+        for obj in ready:
+            if obj in open_conns:
+                r = open_conns[obj]
+                try:
+                    msg = worker.decode_message(obj.recv_bytes())
+                except (EOFError, OSError):
+                    del open_conns[obj]        # the death shows up on its sentinel
+                    continue
+                last_news = time.monotonic()
+                errors += _handle(msg, r, book, records, summaries, on_epoch)
+            elif obj in sentinels:
+                r = sentinels.pop(obj)
+                errors += _drain(ctrls[r], r, book, records, summaries, on_epoch)
+                if summaries[r] is None and not any(e.startswith(f"worker {r} ")
+                                                    for e in errors):
+                    procs[r].join(1.0)
+                    raise RunError(f"worker {r} died ({describe_exit(procs[r].exitcode)}) "
+                                   f"{_where(book.last_epoch[r])}")
+        if errors and error_deadline is None:
+            error_deadline = time.monotonic() + ERROR_GRACE_S
+    if errors:
+        raise RunError(errors[0])
+    if len(records) != epochs:
+        raise RunError(f"workers finished after {len(records)} of {epochs} epochs")
+    return records, summaries
+
+
+def _drain(conn, r, book, records, summaries, on_epoch) -> list[str]:
+    """Messages a worker sent just before it exited."""
+    errors = []
+    try:
+        while conn.poll():
+            errors += _handle(worker.decode_message(conn.recv_bytes()), r, book, records,
+                              summaries, on_epoch)
+    except (EOFError, OSError):
+        pass
+    return errors
+
+
+def _handle(msg, r, book, records, summaries, on_epoch) -> list[str]:
+    """Apply one control message; returns the error it reports, if any."""
+    kind = msg.get("type")
+    if kind == "epoch":
+        rec = book.add(msg)
+        if rec is not None:
+            records.append(rec)
+            if on_epoch is not None:
+                on_epoch(rec)
+    elif kind == "done":
+        summaries[r] = worker.decode_summary(msg)
+    elif kind == "error":
+        return [f"worker {r} failed during {msg.get('phase')}: {msg.get('message')}"]
+    else:
+        return [f"worker {r} sent an unknown control message {kind!r}"]
+    return []
+
+
+def _where(epoch) -> str:
+    return "before reporting any epoch" if epoch is None else f"after reporting epoch {epoch}"
+
+
+def _epochs_text(last: list) -> str:
+    return ", ".join(f"worker {r}: {'-' if e is None else e}" for r, e in enumerate(last))
+
+
+# ---------------------------------------------------------------- results
+
+class _Structure:
+    """What the survey reads off a shard, rebuilt from a worker's summary."""
+
+    def __init__(self, w: int, send_ptr, halo_ptr):
+        self.worker = w
+        self.send_ptr = np.asarray(send_ptr, dtype=np.int64)
+        self.halo_ptr = np.asarray(halo_ptr, dtype=np.int64)
+
+    def peers(self) -> list[int]:
+        recv = np.diff(self.halo_ptr) > 0
+        send = np.diff(self.send_ptr) > 0
+        return [int(q) for q in np.flatnonzero(recv | send)]
+
+
+def _result(records, summaries, facts: ShardDirFacts, settings: TrainSettings):
+    from shardtrain.profile import merge
+
+    k = facts.workers
+    predictions = np.full(facts.num_vertices, -1, dtype=np.int64)
+    labels = np.full(facts.num_vertices, -1, dtype=np.int64)
+    for s in summaries:
+        predictions[s["owned"]] = s["predictions"]
+        labels[s["owned"]] = s["labels"]
+    dims = model_dims_of(facts, settings)
+    params = model.params_from_arrays(summaries[0]["params"], dims, settings.bias,
+                                      settings.np_dtype, source="worker 0")
+    merged = merge([s["profile"] for s in summaries])
+    traffic = traffic_account(merged, [s["profile"] for s in summaries], [_Structure(s["worker"], s["send_ptr"], s["halo_ptr"])
+                                       for s in summaries], dims, settings)
+    rows = []
+    for row, s in zip(merged["per_worker"], summaries):
+        rows.append({"worker": row["rank"], "compute_s": row["compute_s"],
+                     "exchange_s": row["exchange_s"], "allreduce_s": row["allreduce_s"],
+                     "wait_s": row["wait_s"], "bytes_sent": row["bytes_sent"],
+                     "bytes_received": row["bytes_received"], "cpu_s": row["cpu_s"],
+                     "process_cpu_s": s["cpu_s"], "peak_rss_bytes": s["peak_rss_bytes"]})
+    assert len(rows) == k
+    profile = {key: v for key, v in merged.items() if key != "per_worker"}
+    return PartitionedRunResult(records, params, predictions, traffic, rows, profile, labels)
+
+
+def model_dims_of(facts: ShardDirFacts, settings: TrainSettings) -> list[tuple[int, int]]:
+    from shardtrain.schedule import layer_dims
+
+    return layer_dims(facts.input_dim, settings.hidden, facts.num_classes, settings.layers)
+
+
+def traffic_account(merged: dict, profiles: list[dict], structures, dims, settings: TrainSettings) -> dict:
+    """Measured payload and framing (from the merged profile) against the survey's
+    prediction, in total and per (src, dst, kind, layer, direction). The all-reduce is
+    compared per (src, dst): its steps' direction names are the transport's own."""
+    from shardtrain import survey
+    from shardtrain.schedule import layer_hops
+
+    hops = layer_hops(dims)
+    itemsize = settings.np_dtype.itemsize
+    elements = survey.parameter_elements(hops, bias=settings.bias)
+    predicted = survey.predict_traffic(structures, hops, itemsize, param_elements=elements)
+    epochs = settings.epochs
+    predicted_total = survey.predict_run_payload(predicted, epochs, epochs)
+    breakdown_pred = survey.predict_payload_breakdown(structures, hops, itemsize,
+                                                      param_elements=elements, epochs=epochs,
+                                                      evals=epochs)
+
+    def key_of(src, dst, kind, layer, direction):
+        if kind == survey.KIND_ALLREDUCE:
+            return (src, dst, kind, layer, "all")
+        return (src, dst, kind, layer, direction)
+
+    table: dict[tuple, list[int]] = {}
+    for key, b in breakdown_pred.items():
+        table.setdefault(key_of(*key), [0, 0, 0])[1] += int(b)
+    measured_rows = _sender_rows(profiles)
+    for key, (pay, framing) in measured_rows.items():
+        row = table.setdefault(key_of(*key), [0, 0, 0])
+        row[0] += pay
+        row[2] += framing
+    breakdown = [{"src": s, "dst": d, "kind": kind, "layer": layer, "direction": direction,
+                  "measured_payload_bytes": v[0], "predicted_payload_bytes": v[1],
+                  "framing_bytes": v[2]}
+                 for (s, d, kind, layer, direction), v in sorted(table.items())]
+    by_kind = merged["by_kind"]
+    return {
+        "measured_payload_bytes": int(merged["payload_bytes"]),
+        "predicted_payload_bytes": int(predicted_total),
+        "measured_framing_bytes": int(merged["framing_bytes"]),
+        "frames": int(merged["frames"]),
+        "halo_payload_bytes": int(by_kind.get(survey.KIND_HALO, {}).get("payload_bytes", 0)),
+        "allreduce_payload_bytes": int(by_kind.get(survey.KIND_ALLREDUCE, {})
+                                       .get("payload_bytes", 0)),
+        "predicted_allreduce_payload_bytes": int(epochs * predicted["allreduce_bytes"]),
+        "predicted_per_epoch": predicted,
+        "sender_receiver_consistent": bool(merged["consistent"]),
+        "pair_payload_bytes": merged["pair_payload_bytes"],
+        "by_layer_direction": merged["by_layer_direction"],
+        "breakdown": breakdown,
+        "breakdown_matches": all(r["measured_payload_bytes"] == r["predicted_payload_bytes"]
+                                 for r in breakdown),
+    }
+
+
+def _sender_rows(profiles: list[dict]) -> dict[tuple, tuple[int, int]]:
+    """(src, dst, kind, layer, direction) -> (payload, framing), from the senders' side."""
+    return {(r["src"], r["dst"], r["kind"], r["layer"], r["direction"]):
+            (r["payload_bytes"], r["framing_bytes"])
+            for d in profiles for r in d["bytes"] if r["src"] == d["rank"]}

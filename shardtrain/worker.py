@@ -1,0 +1,332 @@
+"""The training loop on one shard, driven through a transport.
+
+`run_worker` is the whole of a worker's job and knows nothing of processes: the pipes
+coordinator runs it in a child process (`process_main`), an MPI entry point can run it on a
+rank; both hand it a transport, a profile and a `report` callable for per-epoch records.
+
+Per layer, the model calls two closures built here from the shard (see the layout CONTRACT
+in `shardtrain/shards.py`) and the transport:
+- propagate(l, M): send M[send_to(q)] to every peer q, receive q's rows straight into the
+  bottom rows of a preallocated [M; M_halo] buffer, return Â_P [M; M_halo];
+- propagate_t(l, G): local = Â_Pᵀ G has a row per owned AND halo column; the halo rows
+  belong to their owners, so send local[n_owned + halo_from(q)] back to q and add what each
+  peer sends for my send rows at send_to(q) (indices are unique per peer).
+The model code is the reference's (`model.train_step`), so the run equals the reference.
+
+Control messages (`encode_message`/`decode_message`) are msgpack maps; arrays travel as
+{"dtype", "shape", "data": raw bytes}. No pickle.
+"""
+from __future__ import annotations
+
+import logging
+import os
+import resource
+import time
+from typing import Callable
+
+import msgpack
+import numpy as np
+
+from shardtrain import model
+from shardtrain.schedule import layer_dims, layer_hops
+from shardtrain.settings import TrainSettings
+
+log = logging.getLogger(__name__)
+
+KIND_HALO = "halo"          # the survey's key for halo frames
+FORWARD, BACKWARD, EVAL = "forward", "backward", "eval"
+BLAS_ENV = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS")
+
+
+# ---------------------------------------------------------------- control messages
+
+def pack_array(a: np.ndarray) -> dict:
+    a = np.ascontiguousarray(a)
+    return {"dtype": a.dtype.str, "shape": list(a.shape), "data": a.tobytes()}
+
+
+def unpack_array(d: dict) -> np.ndarray:
+    dt = np.dtype(d["dtype"])
+    if dt.hasobject:
+        raise ValueError("object arrays are not accepted in control messages")
+    return np.frombuffer(d["data"], dtype=dt).reshape(d["shape"]).copy()
+
+
+def encode_message(msg: dict) -> bytes:
+    return msgpack.packb(msg, use_bin_type=True)
+
+
+def decode_message(raw: bytes) -> dict:
+    return msgpack.unpackb(raw, raw=False, strict_map_key=False)
+
+
+# ---------------------------------------------------------------- halo products
+
+class HaloOps:
+    """propagate / propagate_t of one shard over a transport, with buffers reused per
+    (layer, width): the stacked [M; M_halo] matrix, the send blocks and the receive blocks."""
+
+    def __init__(self, shard, transport, profile, dtype):
+        self.shard, self.transport, self.profile = shard, transport, profile
+        self.n_owned = shard.num_owned
+        self.n_local = shard.num_owned + shard.num_halo
+        with profile.phase("compute"):
+            self.adj = shard.adj.astype(dtype)          # (n_owned, n_owned + n_halo)
+            self.adj_t = self.adj.T.tocsr()              # once, not per hop
+        self.peers = shard.peers()
+        self.send_idx = {q: shard.send_to(q) for q in self.peers}
+        self.halo_rows = {q: shard.halo_from(q) for q in self.peers}
+        self.dtype = np.dtype(dtype)
+        self.epoch = 0
+        self._stacked: dict[tuple, np.ndarray] = {}
+        self._blocks: dict[tuple, np.ndarray] = {}
+        self.on_phase: Callable[[str], None] = lambda text: None
+
+    def _block(self, key: tuple, rows: int, width: int) -> np.ndarray:
+        buf = self._blocks.get(key)
+        if buf is None or buf.shape != (rows, width):
+            buf = self._blocks[key] = np.empty((rows, width), dtype=self.dtype)
+        return buf
+
+    def propagate(self, direction: str) -> Callable[[int, np.ndarray], np.ndarray]:
+        def propagate(layer: int, m: np.ndarray) -> np.ndarray:
+            self.on_phase(f"epoch {self.epoch} {direction} exchange, layer {layer}")
+            width = m.shape[1]
+            with self.profile.phase("compute"):
+                stacked = self._stacked.get((layer, width))
+                if stacked is None:
+                    stacked = np.empty((self.n_local, width), dtype=self.dtype)
+                    self._stacked[(layer, width)] = stacked
+                stacked[:self.n_owned] = m
+                outgoing = {}
+                for q in self.peers:
+                    idx = self.send_idx[q]
+                    buf = self._block(("send", layer, width, q), idx.shape[0], width)
+                    outgoing[q] = np.take(m, idx, axis=0, out=buf)
+                halo = stacked[self.n_owned:]
+                incoming = {q: halo[self.halo_rows[q]] for q in self.peers}
+            with self.profile.phase("exchange"):
+                self.transport.exchange(outgoing, incoming, kind=KIND_HALO, epoch=self.epoch,
+                                        layer=layer, direction=direction)
+            with self.profile.phase("compute"):
+                return self.adj @ stacked
+        return propagate
+
+    def propagate_t(self, layer: int, g: np.ndarray) -> np.ndarray:
+        self.on_phase(f"epoch {self.epoch} backward exchange, layer {layer}")
+        width = g.shape[1]
+        with self.profile.phase("compute"):
+            local = self.adj_t @ np.ascontiguousarray(g)   # (n_owned + n_halo, width)
+            halo = local[self.n_owned:]
+            outgoing = {q: halo[self.halo_rows[q]] for q in self.peers}
+            incoming = {q: self._block(("recv", layer, width, q), self.send_idx[q].shape[0],
+                                       width) for q in self.peers}
+        with self.profile.phase("exchange"):
+            self.transport.exchange(outgoing, incoming, kind=KIND_HALO, epoch=self.epoch,
+                                    layer=layer, direction=BACKWARD)
+        with self.profile.phase("compute"):
+            out = local[:self.n_owned]
+            for q in self.peers:
+                out[self.send_idx[q]] += incoming[q]
+            return np.ascontiguousarray(out)
+
+
+# ---------------------------------------------------------------- the training loop
+
+def shard_dims(shard, settings: TrainSettings, num_classes: int) -> list[tuple[int, int]]:
+    return layer_dims(int(shard.features.shape[1]), settings.hidden, num_classes,
+                      settings.layers)
+
+
+def _split_masks(shard) -> list:
+    return [shard.train_mask, shard.val_mask, shard.test_mask]
+
+
+def run_worker(shard, settings: TrainSettings, transport, profile, report: Callable[[dict], None],
+               *, num_classes: int, init_params=None, epochs_range: range | None = None,
+               on_phase: Callable[[str], None] | None = None) -> dict:
+    """Train on `shard` for the epochs of `epochs_range` (default 1..settings.epochs).
+
+    After every step an evaluation forward (no dropout, halo frames with direction "eval")
+    gives the correct counts; `report` receives {"worker", "epoch", "loss_part", "penalty",
+    "correct": [train, val, test], "totals": [...], "step_s", "eval_s"} (the coordinator
+    adds the parts and the penalty once, since every worker computes the same penalty).
+    Returns {"worker", "owned", "predictions", "labels", "params" (dict name -> array), "profile",
+    "peak_rss_bytes", "cpu_s", "send_ptr", "halo_ptr"}.
+    `num_classes` is the whole graph's (a shard may lack some classes).
+    """
+    dtype = settings.np_dtype
+    on_phase = on_phase or (lambda text: None)
+    dims = shard_dims(shard, settings, num_classes)
+    hops = layer_hops(dims)
+    if init_params is None:
+        params = model.glorot_init(dims, settings.seed, dtype, settings.bias)
+    else:
+        arrays = init_params if isinstance(init_params, dict) else \
+            model.params_to_arrays(init_params)
+        params = model.params_from_arrays(arrays, dims, settings.bias, dtype,
+                                          source="initial weights")
+    adam = model.Adam(params, settings.lr)
+    epochs = epochs_range if epochs_range is not None else range(1, settings.epochs + 1)
+
+    with profile.phase("compute"):
+        x = np.ascontiguousarray(shard.features, dtype=dtype)
+    labels = shard.labels
+    masks = _split_masks(shard)
+    totals = [0 if m is None else int(np.count_nonzero(m)) for m in masks]
+    train_mask = shard.train_mask if shard.train_mask is not None \
+        else np.zeros(shard.num_owned, dtype=bool)
+    ops = HaloOps(shard, transport, profile, dtype)
+    ops.on_phase = on_phase
+    propagate_train, propagate_eval = ops.propagate(FORWARD), ops.propagate(EVAL)
+
+    def allreduce(flat: np.ndarray) -> None:
+        on_phase(f"epoch {ops.epoch} all-reduce")
+        with profile.phase("allreduce"):
+            transport.allreduce_sum(flat, epoch=ops.epoch)
+
+    logits = None
+    for epoch in epochs:
+        ops.epoch = epoch
+        on_phase(f"epoch {epoch} forward")
+        start = time.perf_counter()
+        with profile.phase("compute"):
+            penalty = model.weight_decay_penalty(params, settings.weight_decay)
+            drop = model.Dropout(settings.seed, epoch, settings.dropout, shard.owned)
+            loss_part = model.train_step(params, adam, x, labels, train_mask,
+                                         shard.num_train_global, hops, propagate_train,
+                                         ops.propagate_t, drop, allreduce,
+                                         settings.weight_decay)
+        step_s = time.perf_counter() - start
+        on_phase(f"epoch {epoch} evaluation")
+        with profile.phase("compute"):
+            logits, _ = model.forward(params, x, hops, propagate_eval, model.no_dropout)
+            correct = model.correct_counts(logits, labels, masks)
+        eval_s = time.perf_counter() - start - step_s
+        report({"worker": shard.worker, "epoch": epoch, "loss_part": float(loss_part),
+                "penalty": float(penalty), "correct": correct, "totals": totals,
+                "step_s": step_s, "eval_s": eval_s})
+
+    on_phase("finished")
+    predictions = (np.argmax(logits, axis=1).astype(np.int64) if logits is not None
+                   else np.zeros(0, dtype=np.int64))
+    usage = resource.getrusage(resource.RUSAGE_SELF)
+    return {
+        "worker": shard.worker,
+        "owned": np.asarray(shard.owned, dtype=np.int64),
+        "predictions": predictions,
+        "labels": (np.asarray(shard.labels, dtype=np.int64) if shard.labels is not None
+                   else np.full(shard.num_owned, -1, dtype=np.int64)),
+        "params": model.params_to_arrays(params) if shard.worker == 0 else None,
+        "profile": profile.to_dict(),
+        "peak_rss_bytes": int(usage.ru_maxrss) * 1024,   # Linux reports KiB
+        "cpu_s": float(usage.ru_utime + usage.ru_stime),
+        "send_ptr": [int(v) for v in shard.send_ptr],
+        "halo_ptr": [int(v) for v in shard.halo_ptr],
+    }
+
+
+def encode_summary(summary: dict) -> dict:
+    """The `run_worker` result as a msgpack-friendly map."""
+    out = dict(summary)
+    out["owned"] = pack_array(summary["owned"])
+    out["predictions"] = pack_array(summary["predictions"])
+    out["labels"] = pack_array(summary["labels"])
+    if summary["params"] is not None:
+        out["params"] = {k: pack_array(v) for k, v in summary["params"].items()}
+    return out
+
+
+def decode_summary(msg: dict) -> dict:
+    out = dict(msg)
+    out["owned"] = unpack_array(msg["owned"])
+    out["predictions"] = unpack_array(msg["predictions"])
+    out["labels"] = unpack_array(msg["labels"])
+    if msg.get("params") is not None:
+        out["params"] = {k: unpack_array(v) for k, v in msg["params"].items()}
+    return out
+
+
+# ---------------------------------------------------------------- the worker process
+
+def pin_blas_threads() -> None:
+    """One BLAS thread per worker: the workers are the parallelism."""
+    for name in BLAS_ENV:
+        os.environ[name] = "1"
+    from threadpoolctl import threadpool_limits
+    threadpool_limits(1)
+
+
+def _install_log_queue(log_queue, level: int) -> None:
+    """Send this process's log records to the coordinator's multiprocessing-logging handler."""
+    import logging.handlers
+
+    root = logging.getLogger()
+    for h in list(root.handlers):
+        root.removeHandler(h)
+    if log_queue is not None:
+        root.addHandler(logging.handlers.QueueHandler(log_queue))
+    root.setLevel(level)
+
+
+def process_main(rank: int, size: int, shard_dir: str, settings_dict: dict, num_classes: int,
+                 ends, ctrl, log_queue, log_level: int, options: dict) -> None:
+    """Entry point of worker process `rank` (started by the coordinator, "spawn" method).
+
+    Loads only its own shard, trains, and talks to the coordinator over `ctrl` with msgpack
+    messages: {"type": "epoch", ...} per epoch, then {"type": "done", ...}, or
+    {"type": "error", "worker", "phase", "message"} on failure (exit status 1).
+    options: timeout_s, max_frame_bytes, link (LinkModel or None), init_params (dict or
+    None), load_shard (a module-level function (dir, worker) -> Shard, or None for
+    `shards.load_shard`; tests and fault injection pass their own).
+    """
+    pin_blas_threads()
+    _install_log_queue(log_queue, log_level)
+    phase = ["starting"]
+
+    def on_phase(text: str) -> None:
+        phase[0] = text
+
+    def send(msg: dict) -> None:
+        ctrl.send_bytes(encode_message(msg))
+
+    transport = None
+    status = 0
+    try:
+        from shardtrain.profile import Profile
+        from shardtrain.transport.pipes import PipeTransport
+
+        on_phase("loading shard")
+        load = options.get("load_shard")
+        if load is None:
+            from shardtrain.shards import load_shard as load
+        shard = load(shard_dir, rank)
+        settings = TrainSettings.from_dict(settings_dict)
+        profile = Profile(rank)
+        transport = PipeTransport(rank, size, ends, profile, timeout_s=options["timeout_s"],
+                                  max_frame_bytes=options["max_frame_bytes"],
+                                  link=options.get("link"))
+        log.debug("worker %d: %d owned, %d halo rows, peers %s", rank, shard.num_owned,
+                  shard.num_halo, shard.peers())
+        summary = run_worker(shard, settings, transport, profile,
+                             lambda rec: send({"type": "epoch", **rec}),
+                             num_classes=num_classes, init_params=options.get("init_params"),
+                             on_phase=on_phase)
+        send({"type": "done", **encode_summary(summary)})
+    except BaseException as exc:  # noqa: BLE001 - everything must reach the coordinator
+        status = 1
+        log.debug("worker %d failed", rank, exc_info=True)
+        try:
+            send({"type": "error", "worker": rank, "phase": phase[0],
+                  "message": f"{type(exc).__name__}: {exc}" if not str(exc) == "" else
+                  type(exc).__name__})
+        except (OSError, ValueError):
+            pass
+    finally:
+        if transport is not None:
+            transport.close()
+        elif ends is not None:
+            ends.close()
+        ctrl.close()
+    if status:
+        raise SystemExit(status)
