@@ -38,6 +38,12 @@ def _fsync_file(path: Path) -> None:
         os.fsync(fh.fileno())
 
 
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
+
+
 def _check_folder(path: Path) -> None:
     folder = path.parent
     if not folder.is_dir():
@@ -59,6 +65,7 @@ def atomic_output(path: str | os.PathLike) -> Iterator[Path]:
                                     dir=path.parent)
     os.close(fd)
     tmp = Path(tmp_name)
+    os.chmod(tmp, 0o666 & ~_umask())   # mkstemp makes 0600; give the usual permissions
     try:
         yield tmp
         _fsync_file(tmp)
@@ -106,6 +113,7 @@ def atomic_directory(path: str | os.PathLike, *, overwrite: bool = False) -> Ite
     if path.is_dir() and any(path.iterdir()) and not overwrite:
         raise InputError(f"{path}: directory exists and is not empty (use an overwrite option)")
     tmp = Path(tempfile.mkdtemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent))
+    os.chmod(tmp, 0o777 & ~_umask())
     try:
         yield tmp
         for child in tmp.rglob("*"):

@@ -1,0 +1,169 @@
+"""The demo scenario: an invented regional parcel-delivery network.
+
+Depots are vertices, daily truck routes between depots are undirected edges, each depot has a
+vector of weekly volume and facility statistics (features), and its label is its role in the
+network (ROLE_NAMES). The structure is a degree-corrected stochastic block model (Karrer &
+Newman 2011) with power-law degree propensities; the features are a contextual SBM (Deshpande
+et al. 2018): a class mean plus Gaussian noise, weak enough that a depot's own statistics only
+moderately predict its role, while its routes (mostly to depots of the same role) reveal it.
+
+Vertex ids are drawn independently of roles, so ids carry no community order: a partitioner
+has to find the structure itself.
+"""
+from __future__ import annotations
+
+import numpy as np
+
+from shardtrain.errors import InputError
+from shardtrain.graph import Graph, csr_from_edges
+from shardtrain.io import make_splits
+
+ROLE_NAMES = ("hub", "urban", "suburban", "rural", "cross-dock", "returns", "airport",
+              "port", "rail-terminal", "pickup-point", "cold-chain", "bulk")
+
+_EDGE_CHUNK = 1 << 21    # routes drawn per batch: bounds scratch memory
+_TOP_UP_ROUNDS = 8       # extra batches to replace self-loops and repeats
+
+
+def role_name(label: int) -> str:
+    """Role names cycle for more classes than names: 'hub', ..., 'bulk', 'hub-2', ..."""
+    base = ROLE_NAMES[label % len(ROLE_NAMES)]
+    lap = label // len(ROLE_NAMES)
+    return base if lap == 0 else f"{base}-{lap + 1}"
+
+
+def degree_propensities(n: int, avg_degree: float, exponent: float,
+                        rng: np.random.Generator) -> np.ndarray:
+    """Pareto(exponent - 1) propensities, so the degree tail P(k) ~ k^-exponent, capped at
+    sqrt(sum theta) (the Chung & Lu 2002 condition that keeps edge probabilities <= 1)."""
+    theta = (1.0 - rng.random(n)) ** (-1.0 / (exponent - 1.0))
+    theta *= avg_degree / theta.mean()
+    np.minimum(theta, np.sqrt(theta.sum()), out=theta)
+    return theta
+
+
+def _check(vertices, avg_degree, classes, features, homophily, degree_exponent, signal):
+    if vertices < 2:
+        raise InputError(f"--vertices {vertices}: need at least 2")
+    if not 0 < avg_degree <= vertices - 1:
+        raise InputError(f"--avg-degree {avg_degree}: must be > 0 and at most vertices - 1 "
+                         f"({vertices - 1})")
+    if not 1 <= classes <= vertices:
+        raise InputError(f"--classes {classes}: must be between 1 and the number of vertices")
+    if features < 1:
+        raise InputError(f"--features {features}: need at least 1")
+    if not 0.0 <= homophily <= 1.0:
+        raise InputError(f"--homophily {homophily}: must be between 0 and 1")
+    if degree_exponent <= 2.0:
+        raise InputError(f"--degree-exponent {degree_exponent}: must be > 2 (finite mean degree)")
+    if signal < 0:
+        raise InputError(f"--signal {signal}: must be >= 0")
+
+
+class _RouteSampler:
+    """Draws route endpoints: u with probability ~ theta; v from u's role with probability
+    `homophily`, else from another role chosen by its share of theta; within a role, ~ theta."""
+
+    def __init__(self, labels, theta, classes, homophily, rng):
+        self.rng, self.classes, self.homophily = rng, classes, homophily
+        self.by_class = np.argsort(labels, kind="stable")
+        self.label_sorted = labels[self.by_class]
+        self.cum = np.cumsum(theta[self.by_class])
+        mass = np.bincount(labels, weights=theta, minlength=classes)
+        self.class_end = np.cumsum(mass)
+        self.class_start = self.class_end - mass
+        self.class_cum = self.class_end / self.class_end[-1]
+
+    def _pick(self, lo, width):
+        pos = np.searchsorted(self.cum, lo + self.rng.random(lo.shape[0]) * width, side="right")
+        return np.minimum(pos, self.cum.shape[0] - 1)
+
+    def draw(self, count: int) -> tuple[np.ndarray, np.ndarray]:
+        rng = self.rng
+        pos_u = self._pick(np.zeros(count), self.cum[-1])
+        cu = self.label_sorted[pos_u]
+        cv = cu.copy()
+        cross = rng.random(count) >= self.homophily if self.classes > 1 else np.zeros(count, bool)
+        other = np.flatnonzero(cross)
+        # another role, by theta share: redraw the few that hit u's own role (a loop over
+        # attempts, not over routes); stragglers take the next role
+        pick = np.searchsorted(self.class_cum, rng.random(other.shape[0]), side="right")
+        for _ in range(16):
+            same = np.flatnonzero(pick == cu[other])
+            if same.shape[0] == 0:
+                break
+            pick[same] = np.searchsorted(self.class_cum, rng.random(same.shape[0]), side="right")
+        pick = np.minimum(pick, self.classes - 1)
+        clash = pick == cu[other]
+        pick[clash] = (pick[clash] + 1) % self.classes
+        cv[other] = pick
+        pos_v = self._pick(self.class_start[cv], self.class_end[cv] - self.class_start[cv])
+        return self.by_class[pos_u], self.by_class[pos_v]
+
+
+def _route_keys(sampler: _RouteSampler, n: int, target: int, rng) -> np.ndarray:
+    """Exactly `target` distinct undirected routes (fewer only if the model cannot give more),
+    as sorted keys lo * n + hi."""
+    keys = np.zeros(0, dtype=np.int64)
+    want = target
+    for _ in range(_TOP_UP_ROUNDS + 1):
+        batch = []
+        for start in range(0, want, _EDGE_CHUNK):
+            u, v = sampler.draw(min(_EDGE_CHUNK, want - start))
+            keep = u != v
+            lo, hi = np.minimum(u[keep], v[keep]), np.maximum(u[keep], v[keep])
+            batch.append(lo * np.int64(n) + hi)
+        keys = np.sort(np.concatenate([keys, *batch]))
+        keys = keys[np.concatenate([[True], keys[1:] != keys[:-1]])] if keys.shape[0] else keys
+        missing = target - keys.shape[0]
+        if missing <= 0:
+            break
+        want = int(missing * 1.2) + 16
+    if keys.shape[0] > target:
+        keys = np.sort(rng.choice(keys, size=target, replace=False))
+    return keys
+
+
+def parcel_network(vertices: int, avg_degree: float, classes: int, features: int, seed: int,
+                   *, homophily: float = 0.8, degree_exponent: float = 2.5,
+                   signal: float = 1.5) -> Graph:
+    """The parcel network as a Graph with features (float32), labels and split masks.
+
+    About vertices * avg_degree / 2 distinct routes; `homophily` is the expected fraction of
+    routes joining depots of the same role; class means have Euclidean norm about `signal`
+    against unit-variance noise per feature. Deterministic for a seed.
+    """
+    _check(vertices, avg_degree, classes, features, homophily, degree_exponent, signal)
+    rng = np.random.default_rng(seed)
+    n = int(vertices)
+    # role shares are unequal (a few hubs, many local depots), drawn from the seed
+    share = rng.dirichlet(np.full(classes, 4.0))
+    labels = rng.choice(classes, size=n, p=share).astype(np.int64)
+    theta = degree_propensities(n, avg_degree, degree_exponent, rng)
+    sampler = _RouteSampler(labels, theta, classes, homophily, rng)
+    target = min(int(round(n * avg_degree / 2)), n * (n - 1) // 2)
+    keys = _route_keys(sampler, n, target, rng)
+    lo, hi = np.divmod(keys, np.int64(n))
+    del keys
+    indptr, indices, _ = csr_from_edges(lo, hi, n)
+    del lo, hi
+    means = rng.standard_normal((classes, features)) * (signal / np.sqrt(features))
+    x = rng.standard_normal((n, features), dtype=np.float32)
+    x += means.astype(np.float32)[labels]
+    train, val, test = make_splits(labels, seed)
+    return Graph(indptr, indices, x, labels, train, val, test)
+
+
+def edge_array(graph: Graph) -> np.ndarray:
+    """Each undirected edge once, as an (m, 2) int64 array with u < v."""
+    rows = np.repeat(np.arange(graph.num_vertices, dtype=np.int64), graph.degrees)
+    upper = rows < graph.indices
+    return np.stack([rows[upper], graph.indices[upper]], axis=1)
+
+
+def same_role_fraction(graph: Graph) -> float:
+    """Fraction of edges joining vertices of the same label (edge homophily)."""
+    rows = np.repeat(np.arange(graph.num_vertices), graph.degrees)
+    if rows.shape[0] == 0:
+        return 0.0
+    return float(np.mean(graph.labels[rows] == graph.labels[graph.indices]))
