@@ -45,6 +45,19 @@ def ring_send_elements(size: int, k: int) -> np.ndarray:
     return 2 * size - lengths[(r + 1) % k] - lengths[(r + 2) % k]
 
 
+def ring_steps(size: int, k: int, rank: int) -> list[tuple[str, int, int, int]]:
+    """(direction, step, elements sent to the right, elements received from the left) of
+    every step of `rank`, in order: what `ring_allreduce` does, without doing it."""
+    if k == 1:
+        return []
+    lengths = np.diff(ring_chunks(size, k))
+    steps = [(REDUCE_SCATTER, s, int(lengths[(rank - s) % k]), int(lengths[(rank - s - 1) % k]))
+             for s in range(k - 1)]
+    steps += [(ALL_GATHER, s, int(lengths[(rank + 1 - s) % k]), int(lengths[(rank - s) % k]))
+              for s in range(k - 1)]
+    return steps
+
+
 def ring_frames(k: int) -> int:
     """Frames each rank sends in one all-reduce."""
     return 2 * (k - 1)

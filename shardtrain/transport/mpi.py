@@ -1,0 +1,210 @@
+"""The same transport over MPI (mpi4py), for ranks on one machine or many.
+
+Buffers only: every message is a uppercase Isend/Irecv of raw bytes, nothing is pickled.
+A frame is two messages between the same pair, in order (MPI does not let messages with the
+same source, tag and communicator overtake each other):
+- tag 1: the frame header exactly as the pipes send it (length prefix + msgpack, see
+  frames.py), so it is validated the same way and counted as the same framing bytes;
+- tag 2: the raw array bytes, received straight into the caller's buffer.
+MPI itself refuses a payload larger than the posted buffer (truncation); after both
+messages arrive the header is checked against the expectation and the buffer.
+
+Waiting: requests are polled (Testall) until done, with a deadline of `timeout_s` seconds
+without any request completing; a missed deadline or a failed request raises RunError
+naming the rank waited for. MPI collectives cannot time out on their own, so the caller
+must turn a RunError into `transport.abort()` (comm.Abort) after reporting it, or the other
+ranks would wait for ever; mpiexec also ends the job when a rank dies.
+
+All-reduce: `allreduce_sum` uses MPI's own all-reduce (non-blocking Iallreduce, polled with
+the same deadline) by default, or the ring of ring.py over point-to-point messages with
+`allreduce="ring"`. Either way the profile counts the LOGICAL traffic of the ring all-reduce
+(Patarasuk & Yuan 2009): per step, the chunk sent to the right neighbour and the one received
+from the left, with the framing bytes the pipes transport would send. So MPI and pipes
+profiles compare row by row, and the survey's prediction (ring_send_elements) holds for both;
+what the MPI library moves internally (its algorithm depends on size and rank count) is not
+what is counted. MPI's all-reduce is not promised to give identical bits on every rank;
+MPICH's algorithms for a commutative sum do (tests check it for 2 and 3 ranks); "ring"
+guarantees it by construction.
+
+Wait time: the time spent polling for requests to complete, which with MPI includes the
+copying itself (MPI moves data inside the test calls).
+"""
+from __future__ import annotations
+
+import time
+
+import numpy as np
+
+from shardtrain.errors import RunError
+from shardtrain.profile import Profile
+from shardtrain.transport import frames
+from shardtrain.transport.frames import FrameError
+from shardtrain.transport.pipes import ALLREDUCE, NO_LAYER, _bytes_view, _wire_array, _workers
+from shardtrain.transport.ring import ring_allreduce, ring_steps
+
+TAG_HEADER = 1
+TAG_PAYLOAD = 2
+HEADER_BUFFER = frames.PREFIX_BYTES + frames.MAX_HEADER_BYTES
+SPIN_S = 0.002         # poll without sleeping this long (short exchanges finish here)
+NAP_S = 0.0002         # then sleep this long between polls, to leave the core to others
+
+
+def _mpi():
+    from mpi4py import MPI       # imported late: the pipes path must not need mpi4py
+    return MPI
+
+
+class MpiTransport:
+    """exchange / allreduce_sum / close over an MPI communicator (one rank per worker)."""
+
+    def __init__(self, comm, profile: Profile, *, timeout_s: float = 60.0,
+                 max_frame_bytes: int = frames.DEFAULT_MAX_FRAME_BYTES,
+                 allreduce: str = "mpi"):
+        if allreduce not in ("mpi", "ring"):
+            raise ValueError(f"allreduce must be 'mpi' or 'ring', not {allreduce!r}")
+        self.MPI = _mpi()
+        self.comm = comm
+        self.rank, self.size = comm.Get_rank(), comm.Get_size()
+        self.profile = profile
+        self.timeout_s = float(timeout_s)
+        self.max_frame_bytes = int(max_frame_bytes)
+        self.allreduce = allreduce
+
+    # -- public API --------------------------------------------------------------------
+    def exchange(self, outgoing: dict[int, np.ndarray], incoming: dict[int, np.ndarray], *,
+                 kind: str, epoch: int, layer: int, direction: str) -> None:
+        """Send outgoing[q] to every q and fill the preallocated incoming[q] from every q."""
+        meta = {"kind": kind, "epoch": int(epoch), "layer": int(layer), "direction": direction}
+        self._transfer({q: outgoing[q] for q in sorted(outgoing)},
+                       {q: incoming[q] for q in sorted(incoming)}, meta)
+
+    def allreduce_sum(self, buf: np.ndarray, *, epoch: int) -> None:
+        """Sum the 1-D contiguous `buf` over all ranks in place."""
+        if buf.ndim != 1 or not buf.flags.c_contiguous or not buf.flags.writeable:
+            raise ValueError("allreduce_sum needs a writeable, contiguous 1-D array")
+        frames.dtype_name(buf.dtype)
+        if self.allreduce == "ring":
+            def step(dst, send_view, src, recv_view, direction, _step):
+                meta = {"kind": ALLREDUCE, "epoch": int(epoch), "layer": NO_LAYER,
+                        "direction": direction}
+                self._transfer({dst: send_view}, {src: recv_view}, meta)
+            ring_allreduce(buf, self.rank, self.size, step)
+            return
+        if self.size > 1:
+            MPI = self.MPI
+            req = self.comm.Iallreduce(MPI.IN_PLACE, buf, op=MPI.SUM)
+            self._wait([req], lambda pending: "all ranks", {
+                "kind": ALLREDUCE, "direction": "sum", "layer": NO_LAYER, "epoch": epoch})
+        self._count_ring(buf, int(epoch))
+
+    def abort(self, code: int = 3) -> None:
+        """End the whole MPI job (after the caller has reported its RunError)."""
+        self.comm.Abort(code)
+
+    def close(self) -> None:
+        """Nothing to release: the communicator belongs to the caller."""
+
+    # -- internals ---------------------------------------------------------------------
+    def _count_ring(self, buf: np.ndarray, epoch: int) -> None:
+        """Count what the ring all-reduce would have sent and received, frame by frame."""
+        k, item = self.size, buf.dtype.itemsize
+        right, left = (self.rank + 1) % k, (self.rank - 1) % k
+        for direction, _s, n_send, n_recv in ring_steps(buf.size, k, self.rank):
+            for src, dst, n in ((self.rank, right, n_send), (left, self.rank, n_recv)):
+                framing = len(frames.encode_header(kind=ALLREDUCE, epoch=epoch, layer=NO_LAYER,
+                                                   direction=direction, source=src,
+                                                   dtype=buf.dtype, shape=(n,)))
+                self.profile.count(src, dst, ALLREDUCE, NO_LAYER, direction, n * item, framing)
+
+    def _transfer(self, outgoing: dict, incoming: dict, meta: dict) -> None:
+        MPI = self.MPI
+        for q in (*outgoing, *incoming):
+            if not 0 <= q < self.size or q == self.rank:
+                raise ValueError(f"rank {self.rank} cannot exchange with rank {q} "
+                                 f"(communicator of {self.size})")
+        keep, recv_reqs, send_reqs, owners = [], [], [], []
+        heads = {}
+        for q, dest in incoming.items():
+            if not (isinstance(dest, np.ndarray) and dest.flags.c_contiguous
+                    and dest.flags.writeable):
+                raise ValueError(f"receive buffer for worker {q} must be a writeable "
+                                 f"C-contiguous numpy array")
+            frames.dtype_name(dest.dtype)
+            heads[q] = bytearray(HEADER_BUFFER)
+            recv_reqs.append(self.comm.Irecv([heads[q], MPI.BYTE], source=q, tag=TAG_HEADER))
+            recv_reqs.append(self.comm.Irecv([_bytes_view(dest), MPI.BYTE], source=q,
+                                             tag=TAG_PAYLOAD))
+            owners += [q, q]
+        sent = []
+        for q, array in outgoing.items():
+            array = _wire_array(array)
+            if array.nbytes > self.max_frame_bytes:
+                raise RunError(f"frame to worker {q} of {array.nbytes} bytes exceeds the "
+                               f"limit of {self.max_frame_bytes} bytes ({frames.describe(meta)})")
+            header = frames.encode_header(source=self.rank, dtype=array.dtype,
+                                          shape=array.shape, **meta)
+            keep += [header, array]
+            send_reqs.append(self.comm.Isend([header, MPI.BYTE], dest=q, tag=TAG_HEADER))
+            send_reqs.append(self.comm.Isend([_bytes_view(array), MPI.BYTE], dest=q,
+                                             tag=TAG_PAYLOAD))
+            owners += [q, q]
+            sent.append((q, array.nbytes, len(header)))
+        reqs = recv_reqs + send_reqs
+        statuses = self._wait(reqs, lambda pending: _workers([owners[i] for i in pending]),
+                              meta)
+        for i, (q, dest) in enumerate(incoming.items()):
+            got_head = statuses[2 * i].Get_count(MPI.BYTE)
+            got_pay = statuses[2 * i + 1].Get_count(MPI.BYTE)
+            head = bytes(heads[q][:got_head])
+            n = frames.header_length(head[:frames.PREFIX_BYTES], peer=q)
+            if got_head != frames.PREFIX_BYTES + n:
+                raise FrameError(q, f"header message of {got_head} bytes announces {n} "
+                                    f"header bytes")
+            header = frames.decode_header(head[frames.PREFIX_BYTES:], peer=q,
+                                          max_frame_bytes=self.max_frame_bytes)
+            frames.check_expected(header, peer=q, dtype=dest.dtype, shape=dest.shape, **meta)
+            if got_pay != header["nbytes"]:
+                raise FrameError(q, f"truncated after {got_pay} of {header['nbytes']} "
+                                    f"payload bytes")
+            self.profile.count(q, self.rank, meta["kind"], meta["layer"], meta["direction"],
+                               got_pay, got_head)
+        for q, nbytes, framing in sent:
+            self.profile.count(self.rank, q, meta["kind"], meta["layer"], meta["direction"],
+                               nbytes, framing)
+        del keep
+
+    def _wait(self, reqs: list, who, meta: dict) -> list:
+        """Poll until every request is done; deadline timeout_s without any completion."""
+        MPI = self.MPI
+        statuses = [MPI.Status() for _ in reqs]
+        done = [False] * len(reqs)
+        t_start = last = time.perf_counter()
+        try:
+            while True:
+                progressed = False
+                for i, req in enumerate(reqs):
+                    if not done[i] and req.Test(statuses[i]):
+                        done[i] = progressed = True
+                now = time.perf_counter()
+                if all(done):
+                    break
+                if progressed:
+                    last = now
+                elif now - last > self.timeout_s:
+                    pending = [i for i, d in enumerate(done) if not d]
+                    for i in pending:
+                        try:
+                            reqs[i].Cancel()
+                        except MPI.Exception:
+                            pass
+                    raise RunError(f"timed out after {self.timeout_s:g} s waiting for "
+                                   f"{who(pending)} ({frames.describe(meta)})")
+                if now - last > SPIN_S:
+                    time.sleep(NAP_S)
+        except MPI.Exception as exc:
+            pending = [i for i, d in enumerate(done) if not d]
+            raise RunError(f"MPI failed while waiting for {who(pending)} "
+                           f"({frames.describe(meta)}): {exc.Get_error_string()}") from None
+        finally:
+            self.profile.add_wait(time.perf_counter() - t_start)
+        return statuses
