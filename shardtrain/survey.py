@@ -151,43 +151,52 @@ def predict_payload_breakdown(shards, hops: list[LayerHop], itemsize: int, *,
 
 
 def predict_memory(shard, hops: list[LayerHop], itemsize: int, *, param_elements: int,
-                   input_dim: int) -> int:
+                   input_dim: int, feature_itemsize: int | None = None,
+                   dropout: bool = True) -> int:
     """Predicted peak training memory (bytes) of one worker, from the arrays it holds.
 
     n = owned rows, h = halo rows, s = rows it sends (all peers), nnz = entries of its
-    local Â, b = itemsize of the training dtype. Terms:
+    local Â, b = itemsize of the training dtype, P = `param_elements`; CSR index widths are
+    the shard's own. Terms, following `worker.HaloOps` and `model.train_step`:
     - baseline: `BASELINE_RSS_BYTES`, the idle interpreter with numpy + scipy;
-    - local CSR: indptr (n+1) x 8, indices nnz x (their int width), data nnz x b;
-    - vertex data: features n x input_dim x b, labels n x 8, three split masks n x 1;
-    - per layer (kept for the whole step): forward send buffer s x fw x b and halo receive
-      buffer h x fw x b; backward send buffer h x bw x b and receive buffer s x bw x b;
-      the layer input after dropout n x d_in x b and its dropout mask n x d_in x 1; the
-      [owned | halo] stack (n+h) x fw x b; aggregate-first layers also keep Â[H] for dW,
-      n x d_in x b; the pre-activation Z, n x d_out x b;
-    - softmax probabilities of the last layer, n x classes x b;
-    - gradient working set: the largest over layers of dZ (n x d_out) + d[stack]
-      ((n+h) x fw) + dH (n x d_in), times b — a layer's gradients die before the next;
-    - parameters: weights, their gradients, Adam m and v, and the flat all-reduce buffer,
-      5 x param_elements x b.
+    - shard structure: owned n x 8, halo h x 8, send_idx s x 8, the two k+1 pointer arrays;
+    - Â three times: the shard's float64 CSR, its copy in the training dtype, and the
+      transpose (indptr of n + h + 1) for the backward products;
+    - vertex data: the features n x input_dim in the training dtype, plus the stored copy
+      when it is of another width (`feature_itemsize`), labels n x 8, three masks n x 1;
+    - per layer, reused every epoch: the [owned | halo] stack (n+h) x fw (the halo part is
+      the forward receive buffer), the forward send blocks s x fw, the backward receive
+      blocks s x bw (all x b);
+    - the forward cache of the training step, per layer: input h (layers > 0), the
+      dropped-out input and its mask (same dtype) when `dropout`, Â[H] in aggregate-first
+      order, each n x d_in x b; the logits and their gradient, 2 x n x classes x b;
+    - the backward working set, the largest over layers of Âᵀ G ((n+h) x fw) and dZ
+      (n x d_out), plus for layers > 0 the input gradient dH, its dropped-out copy and the
+      ReLU-masked product (3 x n x d_in, times b) and the ReLU mask (n x d_in x 1);
+    - parameters, Adam m and v, the per-layer gradients and their flat copy: 5 x P x b.
     """
     n, h = shard.num_owned, shard.num_halo
     s = int(shard.send_ptr[-1])
     adj = shard.adj
     nnz = int(adj.nnz)
     b = int(itemsize)
+    ip, ix = adj.indptr.dtype.itemsize, adj.indices.dtype.itemsize
+    fb = b if feature_itemsize is None else int(feature_itemsize)
     total = BASELINE_RSS_BYTES
-    total += (n + 1) * 8 + nnz * adj.indices.dtype.itemsize + nnz * b
-    total += n * input_dim * b + n * 8 + 3 * n
-    grad_peak = 0
+    total += (n + h + s) * 8 + 2 * shard.send_ptr.nbytes
+    total += (n + 1) * ip + nnz * (ix + adj.data.dtype.itemsize)     # shard's Â
+    total += (n + 1) * ip + nnz * (ix + b)                           # Â in training dtype
+    total += (n + h + 1) * ip + nnz * (ix + b)                       # Âᵀ
+    total += n * input_dim * b + (n * input_dim * fb if fb != b else 0) + n * 8 + 3 * n
+    backward_peak = 0
     for hop in hops:
         fw, bw = hop.forward_width, hop.backward_width
-        total += (s + h) * fw * b + (h + s) * bw * b            # wire buffers
-        total += n * hop.d_in * (b + 1)                          # dropped-out input + mask
-        total += (n + h) * fw * b                                # [owned | halo] stack
-        total += 0 if hop.transform_first else n * hop.d_in * b  # Â[H] kept for dW
-        total += n * hop.d_out * b                               # Z
-        grad_peak = max(grad_peak, (n * hop.d_out + (n + h) * fw + n * hop.d_in) * b)
-    total += n * hops[-1].d_out * b + grad_peak
+        total += ((n + h) * fw + s * fw + s * bw) * b                # stack, send, recv
+        cache = (hop.layer > 0) + 2 * dropout + (not hop.transform_first)
+        total += cache * n * hop.d_in * b
+        d_h = 3 * n * hop.d_in * b + n * hop.d_in if hop.layer > 0 else 0
+        backward_peak = max(backward_peak, ((n + h) * fw + n * hop.d_out) * b + d_h)
+    total += 2 * n * hops[-1].d_out * b + backward_peak
     total += 5 * param_elements * b
     return int(total)
 
@@ -219,8 +228,10 @@ def survey_plan(graph, method: str, k: int, *, hops: list[LayerHop], itemsize: i
     traffic = predict_traffic(shards, hops, itemsize, param_elements=params)
     stats = shard_stats(shards)
     owned, halo, local_edges = stats["owned"], stats["halo"], stats["local_edges"]
+    fsize = None if graph.features is None else graph.features.dtype.itemsize
     memory = np.array([predict_memory(s, hops, itemsize, param_elements=params,
-                                      input_dim=hops[0].d_in) for s in shards])
+                                      input_dim=hops[0].d_in, feature_itemsize=fsize)
+                       for s in shards])
     del shards
     gc.collect()
     pair = np.asarray(traffic["pair_bytes"], dtype=np.int64)

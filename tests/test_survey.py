@@ -195,6 +195,7 @@ def test_survey_up_to_1024_workers():
 @pytest.fixture
 def small_npz(tmp_path):
     pytest.importorskip("shardtrain.cli.common")
+    pytest.importorskip("shardtrain.partition")
     g = nx.connected_watts_strogatz_graph(300, 6, 0.1, seed=2)
     rng = np.random.default_rng(0)
     path = tmp_path / "depots.npz"

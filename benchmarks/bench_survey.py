@@ -1,0 +1,239 @@
+"""Benchmark: the full survey on a synthesized parcel network (default 1 M depots, 10 M routes).
+
+Per plan (method x workers): partition time, shard build time, survey time, build rate
+(directed edges per second), and the process's peak RSS during that plan (the kernel's
+high-water mark is reset before each plan). Goal (issue 2): 4 methods x workers
+{2,4,8,16} in under 3 minutes in total; shard build >= 5 M edges/s.
+
+Memory check: `survey.predict_memory` against the measured peak RSS of a real worker
+(`worker.run_worker`, one worker, so no peers: a transport that has nothing to send) on a
+smaller random graph, in a fresh process per dtype.
+
+    python benchmarks/bench_survey.py --out benchmarks/results/bench_survey.json
+"""
+from __future__ import annotations
+
+import argparse
+import os
+import platform
+import sys
+import time
+
+import numpy as np
+
+os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+os.environ.setdefault("OMP_NUM_THREADS", "1")
+
+from shardtrain import survey as sv          # noqa: E402
+from shardtrain.files import write_json_atomic  # noqa: E402
+from shardtrain.schedule import layer_dims, layer_hops  # noqa: E402
+
+GOAL_TOTAL_S = 180.0
+GOAL_BUILD_EDGES_PER_S = 5e6
+
+
+def _status_kib(field: str) -> int:
+    with open("/proc/self/status") as fh:
+        for line in fh:
+            if line.startswith(field + ":"):
+                return int(line.split()[1])
+    return -1
+
+
+def _reset_peak_rss() -> None:
+    """Reset VmHWM to the current RSS (Linux: write 5 to /proc/self/clear_refs)."""
+    try:
+        with open("/proc/self/clear_refs", "w") as fh:
+            fh.write("5")
+    except OSError:
+        pass
+
+
+def _default_methods() -> list[str]:
+    from shardtrain.partition import METHODS
+
+    base = ["metis", "metis-volume", "random"]
+    streaming = [m for m in METHODS if m not in base + ["range"]]
+    return [m for m in base if m in METHODS] + streaming[:1]
+
+
+class _NoPeers:
+    """The transport of a single worker: no halo, no all-reduce partners."""
+
+    def exchange(self, outgoing, incoming, **kw):
+        assert not outgoing and not incoming
+
+    def allreduce_sum(self, flat, **kw):
+        pass
+
+
+SHARD_ARRAYS = ("owned", "halo", "halo_ptr", "send_idx", "send_ptr", "features", "labels",
+                "train_mask", "val_mask", "test_mask")
+
+
+def _write_memory_shard(path: str, vertices: int, edges: int, features: int) -> None:
+    """One worker's shard of a random graph, saved as plain arrays (as a worker loads it)."""
+    from shardtrain.graph import Graph, csr_from_edges
+    from shardtrain.shards import build_shards
+
+    rng = np.random.default_rng(0)
+    ip, ix, _ = csr_from_edges(rng.integers(0, vertices, edges), rng.integers(0, vertices, edges),
+                               vertices)
+    train = np.zeros(vertices, dtype=bool)
+    train[:1000] = True
+    graph = Graph(ip, ix, features=rng.normal(size=(vertices, features)).astype(np.float32),
+                  labels=rng.integers(0, 6, vertices), train_mask=train, val_mask=~train,
+                  test_mask=~train)
+    shard = build_shards(graph, np.zeros(vertices, dtype=np.int64), 1)[0]
+    arrays = {name: getattr(shard, name) for name in SHARD_ARRAYS}
+    np.savez(path, adj_indptr=shard.adj.indptr, adj_indices=shard.adj.indices,
+             adj_data=shard.adj.data, num_train=shard.num_train_global, **arrays)
+
+
+def _memory_check_child(path: str, hidden: int, dtype: str) -> None:
+    """Run in a fresh process: load the shard, predict, train 3 epochs, report peak RSS."""
+    import json
+
+    import scipy.sparse as sp
+
+    from shardtrain import worker
+    from shardtrain.profile import Profile
+    from shardtrain.settings import TrainSettings
+    from shardtrain.shards import Shard
+
+    with np.load(path, allow_pickle=False) as z:
+        a = {key: z[key] for key in z.files}
+    n, h = a["owned"].shape[0], a["halo"].shape[0]
+    adj = sp.csr_matrix((a["adj_data"], a["adj_indices"], a["adj_indptr"]), shape=(n, n + h))
+    shard = Shard(worker=0, workers=1, num_vertices_global=n, adj=adj,
+                  num_train_global=int(a["num_train"]), **{k: a[k] for k in SHARD_ARRAYS})
+    del a
+    features, classes = shard.features.shape[1], 6
+    hops = layer_hops(layer_dims(features, hidden, classes, 2))
+    predicted = sv.predict_memory(shard, hops, np.dtype(dtype).itemsize,
+                                  param_elements=sv.parameter_elements(hops),
+                                  input_dim=features, feature_itemsize=shard.features.itemsize)
+    settings = TrainSettings(layers=2, hidden=hidden, epochs=3, dtype=dtype)
+    worker.run_worker(shard, settings, _NoPeers(), Profile(0), lambda r: None,
+                      num_classes=classes)
+    measured = _status_kib("VmHWM") * 1024
+    print(json.dumps({"dtype": dtype, "owned": n, "nnz": int(adj.nnz), "features": features,
+                      "hidden": hidden, "predicted_bytes": predicted,
+                      "measured_peak_rss_bytes": measured,
+                      "predicted_over_measured": predicted / measured}))
+
+
+# (features, hidden, dtype): transform-first in both layers, in both dtypes, and
+# aggregate-first in layer 0 (features < hidden)
+MEMORY_CONFIGS = ((128, 64, "float32"), (128, 64, "float64"), (16, 64, "float32"))
+
+
+def _memory_check(configs=MEMORY_CONFIGS, vertices=200_000, edges=1_000_000) -> list[dict]:
+    import json
+    import subprocess
+    import tempfile
+
+    out = []
+    with tempfile.TemporaryDirectory() as tmp:
+        for features, hidden, dtype in configs:
+            path = os.path.join(tmp, f"shard{features}.npz")
+            if not os.path.exists(path):
+                _write_memory_shard(path, vertices, edges, features)
+            r = subprocess.run([sys.executable, __file__, "--memory-check-child", path,
+                                "--hidden", str(hidden), "--dtype", dtype, "--out", "-"],
+                               capture_output=True, text=True, check=True)
+            row = json.loads(r.stdout.strip().splitlines()[-1])
+            out.append(row)
+            print(f"  memory {features}-{hidden} {dtype}: predicted "
+                  f"{row['predicted_bytes'] / 2**20:.0f} MiB, measured "
+                  f"{row['measured_peak_rss_bytes'] / 2**20:.0f} MiB", file=sys.stderr)
+    return out
+
+
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--out", required=True)
+    ap.add_argument("--vertices", type=int, default=1_000_000)
+    ap.add_argument("--avg-degree", type=float, default=20.0)
+    ap.add_argument("--classes", type=int, default=6)
+    ap.add_argument("--features", type=int, default=32)
+    ap.add_argument("--workers", default="2,4,8,16")
+    ap.add_argument("--methods", default=None, help="default: metis, metis-volume, random, "
+                                                    "the streaming method")
+    ap.add_argument("--hidden", type=int, default=16)
+    ap.add_argument("--seed", type=int, default=0)
+    ap.add_argument("--dtype", default="float32", help=argparse.SUPPRESS)
+    ap.add_argument("--skip-memory-check", action="store_true")
+    ap.add_argument("--memory-check-child", default=None, help=argparse.SUPPRESS)
+    args = ap.parse_args(argv)
+    if args.memory_check_child:
+        _memory_check_child(args.memory_check_child, args.hidden, args.dtype)
+        return 0
+    workers = [int(x) for x in args.workers.split(",")]
+    methods = args.methods.split(",") if args.methods else _default_methods()
+
+    from shardtrain.synth import parcel_network
+
+    t = time.perf_counter()
+    graph = parcel_network(vertices=args.vertices, avg_degree=args.avg_degree,
+                           classes=args.classes, features=args.features, seed=args.seed)
+    synth_s = time.perf_counter() - t
+    print(f"graph: {graph.num_vertices:,} vertices, {graph.num_edges:,} edges "
+          f"({synth_s:.1f} s)", file=sys.stderr)
+    dims = layer_dims(graph.input_dim, args.hidden, graph.num_classes, 2)
+    hops = layer_hops(dims)
+    directed = int(graph.indices.shape[0])
+    graph_facts = {"vertices": graph.num_vertices, "edges": graph.num_edges,
+                   "directed_entries": directed, "input_dim": graph.input_dim,
+                   "classes": graph.num_classes, "synth_s": synth_s}
+
+    plans = []
+    t_all = time.perf_counter()
+    for method in methods:
+        for k in workers:
+            _reset_peak_rss()
+            t = time.perf_counter()
+            plan = sv.survey_plan(graph, method, k, hops=hops, itemsize=4, seed=args.seed,
+                                  imbalance=0.03)
+            total = time.perf_counter() - t
+            row = {"method": method, "workers": k, "total_s": total,
+                   "partition_s": plan["partition_s"], "build_s": plan["build_s"],
+                   "survey_s": total - plan["partition_s"] - plan["build_s"],
+                   "build_edges_per_s": directed / plan["build_s"] if plan["build_s"] else None,
+                   "peak_rss_bytes": _status_kib("VmHWM") * 1024,
+                   "edge_cut": plan["edge_cut"],
+                   "replication_factor": plan["replication_factor"],
+                   "epoch_payload_bytes": plan["epoch_payload_bytes"],
+                   "max_memory_bytes": plan["max_memory_bytes"]}
+            plans.append(row)
+            print(f"  {method:<13} k={k:<3} partition {row['partition_s']:6.2f} s  build "
+                  f"{row['build_s']:5.2f} s  survey {row['survey_s']:5.2f} s  "
+                  f"rss {row['peak_rss_bytes'] / 2**30:.2f} GiB", file=sys.stderr)
+            del plan
+    total_s = time.perf_counter() - t_all
+    del graph
+    memory_check = [] if args.skip_memory_check else _memory_check()
+    build_rates = [p["build_edges_per_s"] for p in plans if p["build_edges_per_s"]]
+    result = {
+        "benchmark": "survey",
+        "machine": {"python": platform.python_version(), "cpus": os.cpu_count()},
+        "graph": graph_facts,
+        "model": {"dims": dims, "dtype": "float32"},
+        "methods": methods, "workers": workers,
+        "plans": plans,
+        "survey_total_s": total_s,
+        "peak_rss_bytes": max(p["peak_rss_bytes"] for p in plans),
+        "memory_check": memory_check,
+        "goals": {"survey_total_s": GOAL_TOTAL_S, "met_total": total_s <= GOAL_TOTAL_S,
+                  "build_edges_per_s": GOAL_BUILD_EDGES_PER_S,
+                  "min_build_edges_per_s": min(build_rates) if build_rates else None,
+                  "met_build": bool(build_rates) and min(build_rates) >= GOAL_BUILD_EDGES_PER_S},
+    }
+    write_json_atomic(args.out, result)
+    print(f"survey of {len(plans)} plans: {total_s:.1f} s (goal {GOAL_TOTAL_S:.0f} s)",
+          file=sys.stderr)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

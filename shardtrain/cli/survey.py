@@ -1,0 +1,168 @@
+"""Compare partition plans: halo, replication, traffic per epoch and memory per worker.
+
+For every method x worker count, the graph is partitioned and its shards built (structure
+only); nothing is trained and no process is started, so worker counts far beyond this
+machine (up to 1024 and more) can be compared. Traffic is the payload the trainer will
+measure: forward and backward halo exchanges and the ring all-reduce of one epoch.
+"""
+from __future__ import annotations
+
+import csv
+import io
+import sys
+from pathlib import Path
+
+from shardtrain.cli.common import (add_graph_arguments, load_graph_from_args, parse_int_list,
+                                   parse_name_list)
+from shardtrain.errors import InputError
+from shardtrain.files import write_json_atomic, write_text_atomic
+from shardtrain.survey import SurveySettings, check_plans, survey
+from shardtrain.tables import format_table, human_bytes
+
+DEFAULT_METHODS = "metis,metis-volume,random,range"
+
+# One flat row per plan: (CSV column, value of a plan).
+CSV_COLUMNS = [
+    ("method", lambda p: p["method"]),
+    ("workers", lambda p: p["workers"]),
+    ("edge_cut", lambda p: p["edge_cut"]),
+    ("replication_factor", lambda p: f"{p['replication_factor']:.6f}"),
+    ("halo_max", lambda p: int(p["imbalance"]["halo"]["max"])),
+    ("halo_mean", lambda p: f"{p['imbalance']['halo']['mean']:.3f}"),
+    ("forward_bytes", lambda p: p["traffic"]["forward_bytes"]),
+    ("backward_bytes", lambda p: p["traffic"]["backward_bytes"]),
+    ("allreduce_bytes", lambda p: p["traffic"]["allreduce_bytes"]),
+    ("eval_forward_bytes", lambda p: p["traffic"]["eval_forward_bytes"]),
+    ("epoch_payload_bytes", lambda p: p["epoch_payload_bytes"]),
+    ("max_memory_bytes", lambda p: p["max_memory_bytes"]),
+    ("owned_max_over_mean", lambda p: f"{p['imbalance']['owned']['max_over_mean']:.4f}"),
+    ("local_edges_max_over_mean",
+     lambda p: f"{p['imbalance']['local_edges']['max_over_mean']:.4f}"),
+    ("halo_max_over_mean", lambda p: f"{p['imbalance']['halo']['max_over_mean']:.4f}"),
+    ("bytes_sent_max_over_mean",
+     lambda p: f"{p['imbalance']['bytes_sent']['max_over_mean']:.4f}"),
+    ("partition_s", lambda p: f"{p['partition_s']:.3f}"),
+    ("build_s", lambda p: f"{p['build_s']:.3f}"),
+]
+
+TABLE_COLUMNS = [
+    ("method", "method", None),
+    ("workers", "workers", "{:,}"),
+    ("edge_cut", "edge cut", "{:,}"),
+    ("replication", "replication", "{:.3f}"),
+    ("halo", "halo max/mean", None),
+    ("forward", "fwd/epoch", human_bytes),
+    ("backward", "bwd/epoch", human_bytes),
+    ("allreduce", "all-reduce", human_bytes),
+    ("memory", "max mem/worker", human_bytes),
+    ("owned_imb", "owned imb", "{:.3f}"),
+    ("edges_imb", "edges imb", "{:.3f}"),
+    ("sent_imb", "sent imb", "{:.3f}"),
+]
+
+
+def add_arguments(parser) -> None:
+    add_graph_arguments(parser)
+    existing = set(parser._option_string_actions)  # options the shared graph arguments own
+
+    def add(flag, **kw):
+        if flag not in existing:
+            parser.add_argument(flag, **kw)
+
+    add("--workers", default="2,4,8", metavar="K,K,...",
+        help="worker counts to compare (default 2,4,8)")
+    add("--method", default=DEFAULT_METHODS, metavar="M,M,...",
+        help=f"partition methods to compare (default {DEFAULT_METHODS})")
+    add("--layers", type=int, default=2, help="GCN layers (default 2)")
+    add("--hidden", type=int, default=16, help="hidden width (default 16)")
+    add("--dtype", default="float32", help="training dtype, float32 or float64 (default float32)")
+    add("--bias", action="store_true", help="the model has biases (more to all-reduce)")
+    add("--classes", type=int, default=None, metavar="C",
+        help="number of classes, when the graph has no labels")
+    add("--input-dim", type=int, default=None, metavar="D",
+        help="feature width, when the graph has no features")
+    add("--imbalance", type=float, default=0.03, help="METIS load imbalance tolerance (0.03)")
+    add("--seed", type=int, default=0, help="seed of the seeded methods (default 0)")
+    add("--json", default=None, metavar="OUT.json", help="write the full survey as JSON")
+    add("--csv", default=None, metavar="OUT.csv", help="write one row per plan as CSV")
+    # Hook: `--plot DIR` (plots.survey_plots(survey_dict, DIR)) is added here once
+    # shardtrain.plots exists; see `_write_outputs`.
+
+
+def _check_output(path: str | None, option: str) -> None:
+    if path is not None and not Path(path).parent.is_dir():
+        raise InputError(f"{option}: folder {Path(path).parent} does not exist")
+
+
+def _settings(args) -> SurveySettings:
+    return SurveySettings(layers=args.layers, hidden=args.hidden, dtype=args.dtype,
+                          classes=args.classes, input_dim=args.input_dim, bias=args.bias,
+                          imbalance=args.imbalance, seed=args.seed)
+
+
+def table_rows(result: dict) -> list[dict]:
+    rows = []
+    for p in result["plans"]:
+        imb = p["imbalance"]
+        rows.append({
+            "method": p["method"], "workers": p["workers"], "edge_cut": p["edge_cut"],
+            "replication": p["replication_factor"],
+            "halo": f"{imb['halo']['max']:,.0f}/{imb['halo']['mean']:,.0f}",
+            "forward": p["traffic"]["forward_bytes"],
+            "backward": p["traffic"]["backward_bytes"],
+            "allreduce": p["traffic"]["allreduce_bytes"],
+            "memory": p["max_memory_bytes"],
+            "owned_imb": imb["owned"]["max_over_mean"],
+            "edges_imb": imb["local_edges"]["max_over_mean"],
+            "sent_imb": imb["bytes_sent"]["max_over_mean"],
+        })
+    return rows
+
+
+def csv_text(result: dict) -> str:
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\n")
+    w.writerow([name for name, _ in CSV_COLUMNS])
+    for p in result["plans"]:
+        w.writerow([value(p) for _, value in CSV_COLUMNS])
+    return buf.getvalue()
+
+
+def _write_outputs(args, result: dict) -> None:
+    if args.json:
+        write_json_atomic(args.json, result)
+    if args.csv:
+        write_text_atomic(args.csv, csv_text(result))
+    plot_dir = getattr(args, "plot", None)
+    if plot_dir:  # the plotting engineer's hook
+        from shardtrain.plots import survey_plots
+
+        survey_plots(result, plot_dir)
+
+
+def run(args) -> int:
+    # cheap option checks first, then the graph, then the checks that need the graph
+    workers = parse_int_list(args.workers, "--workers")
+    methods = parse_name_list(args.method, "--method")
+    _check_output(args.json, "--json")
+    _check_output(args.csv, "--csv")
+    settings = _settings(args)
+    loaded = load_graph_from_args(args)
+    graph = loaded.graph
+    check_plans(graph, methods, workers, settings)
+    for note in getattr(loaded, "notes", None) or []:
+        print(note, file=sys.stderr)
+
+    def progress(plan):
+        print(f"  {plan['method']:<14} k={plan['workers']:<5} partition "
+              f"{plan['partition_s']:.2f} s, shards {plan['build_s']:.2f} s", file=sys.stderr)
+
+    result = survey(graph, methods, workers, settings, on_plan=progress)
+    result["graph"]["source"] = str(getattr(loaded, "source", args.graph))
+    m = result["model"]
+    print(f"{result['graph']['vertices']:,} vertices, {result['graph']['edges']:,} edges; "
+          f"GCN {' -> '.join(str(d) for d in [m['dims'][0][0]] + [d[1] for d in m['dims']])} "
+          f"({m['dtype']}); traffic is payload per training epoch")
+    print(format_table(table_rows(result), TABLE_COLUMNS))
+    _write_outputs(args, result)
+    return 0
