@@ -266,3 +266,18 @@ def test_format_table_aligns_columns():
     # numbers right-aligned under their header: same end column
     end = lines[0].index("workers") + len("workers")
     assert lines[2][:end].endswith("1,024") and lines[3][:end].endswith("2")
+
+
+def test_cli_surveys_a_given_assignment(run_cli, small_npz, tmp_path):
+    import networkx as nx_  # the fixture's graph, rebuilt for the reference count
+
+    g = nx_.connected_watts_strogatz_graph(300, 6, 0.1, seed=2)
+    a = np.arange(300) * 3 // 300
+    np.save(tmp_path / "mine.npy", a)
+    out_json = tmp_path / "mine.json"
+    r = run_cli("survey", small_npz, "--assignment", tmp_path / "mine.npy", "--json", out_json)
+    assert r.returncode == 0, r.stderr
+    (plan,) = json.loads(out_json.read_text())["plans"]
+    assert plan["workers"] == 3
+    # networkx: edges whose ends lie in different parts
+    assert plan["edge_cut"] == sum(1 for u, v in g.edges() if a[u] != a[v])

@@ -19,7 +19,8 @@ from shardtrain.files import write_json_atomic, write_text_atomic
 from shardtrain.survey import SurveySettings, check_plans, survey
 from shardtrain.tables import format_table, human_bytes
 
-DEFAULT_METHODS = "metis,metis-volume,random,range"
+DEFAULT_METHODS = "metis,metis-volume,fennel,random,range"
+DEFAULT_WORKERS = "2,4,8"
 
 # One flat row per plan: (CSV column, value of a plan).
 CSV_COLUMNS = [
@@ -69,10 +70,13 @@ def add_arguments(parser) -> None:
         if flag not in existing:
             parser.add_argument(flag, **kw)
 
-    add("--workers", default="2,4,8", metavar="K,K,...",
-        help="worker counts to compare (default 2,4,8)")
-    add("--method", default=DEFAULT_METHODS, metavar="M,M,...",
+    add("--workers", default=None, metavar="K,K,...",
+        help=f"worker counts to compare (default {DEFAULT_WORKERS})")
+    add("--method", default=None, metavar="M,M,...",
         help=f"partition methods to compare (default {DEFAULT_METHODS})")
+    add("--assignment", default=None, metavar="FILE",
+        help="survey a partition made elsewhere (.npy, or one worker id per line in vertex "
+             "order) in place of --method and --workers")
     add("--layers", type=int, default=2, help="GCN layers (default 2)")
     add("--hidden", type=int, default=16, help="hidden width (default 16)")
     add("--dtype", default="float32", help="training dtype, float32 or float64 (default float32)")
@@ -142,14 +146,24 @@ def _write_outputs(args, result: dict) -> None:
 
 def run(args) -> int:
     # cheap option checks first, then the graph, then the checks that need the graph
-    workers = parse_int_list(args.workers, "--workers")
-    methods = parse_name_list(args.method, "--method")
+    if args.assignment is not None and (args.method is not None or args.workers is not None):
+        raise InputError("--assignment: give it in place of --method and --workers, not with them")
+    workers = parse_int_list(args.workers or DEFAULT_WORKERS, "--workers")
+    methods = parse_name_list(args.method or DEFAULT_METHODS, "--method")
     _check_output(args.json, "--json")
     _check_output(args.csv, "--csv")
     settings = _settings(args)
     loaded = load_graph_from_args(args)
     graph = loaded.graph
-    check_plans(graph, methods, workers, settings)
+    assignment = None
+    if args.assignment is not None:
+        from shardtrain.partition import load_assignment
+
+        assignment, k = load_assignment(args.assignment, graph.num_vertices)
+        methods, workers = [f"file:{Path(args.assignment).name}"], [k]
+        check_plans(graph, [], workers, settings)
+    else:
+        check_plans(graph, methods, workers, settings)
     for note in getattr(loaded, "notes", None) or []:
         print(note, file=sys.stderr)
 
@@ -157,7 +171,7 @@ def run(args) -> int:
         print(f"  {plan['method']:<14} k={plan['workers']:<5} partition "
               f"{plan['partition_s']:.2f} s, shards {plan['build_s']:.2f} s", file=sys.stderr)
 
-    result = survey(graph, methods, workers, settings, on_plan=progress)
+    result = survey(graph, methods, workers, settings, assignment=assignment, on_plan=progress)
     result["graph"]["source"] = str(getattr(loaded, "source", args.graph))
     m = result["model"]
     print(f"{result['graph']['vertices']:,} vertices, {result['graph']['edges']:,} edges; "
