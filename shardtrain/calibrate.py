@@ -1,0 +1,257 @@
+"""Calibration: time this machine's own kernels once, so compute is forecast from measurement.
+
+Each worker runs with its BLAS pinned to one thread, so the kernels are timed the same way.
+Three speeds are measured, in the training dtype:
+- sparse CSR @ dense: non-zeros x columns per second, at a few widths and two matrix sizes
+  (one that fits in cache and one that does not: locality changes the speed a lot);
+- dense GEMM: flop/s (2 flops per multiply-add), at a few inner widths;
+- elementwise passes (ReLU, dropout, an Adam-like update): bytes touched per second;
+- the model's own dropout-mask generator: mask elements per second;
+- one OS pipe: bytes per second (only used to check a forecast against a run on pipes).
+
+The result is a plain dict (JSON-ready). `speed(...)` helpers look values up with log-linear
+interpolation in width and size.
+"""
+from __future__ import annotations
+
+import json
+import time
+from pathlib import Path
+
+import numpy as np
+import scipy.sparse as sp
+from threadpoolctl import threadpool_limits
+
+from shardtrain.errors import InputError
+
+CALIBRATION_VERSION = 1
+SPARSE_WIDTHS = (8, 32, 128)
+SPARSE_SIZES = ((20_000, 10), (200_000, 10))   # (rows, non-zeros per row)
+DENSE_SHAPES = ((20_000, 16, 16), (20_000, 128, 16), (20_000, 128, 128))  # rows, d_in, d_out
+ELEMENTWISE_ELEMENTS = 2_000_000
+
+
+def _best_time(fn, *, repeats: int, budget_s: float) -> float:
+    """Fastest of up to `repeats` runs (the minimum is the least disturbed by other load),
+    stopping early once `budget_s` is spent."""
+    fn()  # warm up caches and lazy allocations
+    best = float("inf")
+    spent = 0.0
+    for _ in range(repeats):
+        t0 = time.perf_counter()
+        fn()
+        dt = time.perf_counter() - t0
+        best = min(best, dt)
+        spent += dt
+        if spent > budget_s:
+            break
+    return max(best, 1e-9)
+
+
+def _local_csr(rows: int, per_row: int, rng: np.random.Generator, dtype) -> sp.csr_matrix:
+    """A square CSR whose neighbours mostly sit close to the row (as in a shard numbered
+    for locality), with a tenth of the entries anywhere."""
+    nnz = rows * per_row
+    src = np.repeat(np.arange(rows, dtype=np.int64), per_row)
+    near = src + rng.integers(-64, 65, size=nnz)
+    far = rng.integers(0, rows, size=nnz)
+    dst = np.where(rng.random(nnz) < 0.1, far, near) % rows
+    data = np.ones(nnz, dtype=dtype)
+    m = sp.csr_matrix((data, (src, dst)), shape=(rows, rows))
+    m.sum_duplicates()
+    return m
+
+
+def _time_sparse(dtype, rng) -> list[dict]:
+    out = []
+    for rows, per_row in SPARSE_SIZES:
+        a = _local_csr(rows, per_row, rng, dtype)
+        for width in SPARSE_WIDTHS:
+            x = rng.standard_normal((rows, width)).astype(dtype)
+            t = _best_time(lambda: a @ x, repeats=5, budget_s=0.3)
+            out.append({"nnz": int(a.nnz), "width": width, "seconds": t,
+                        "nnz_cols_per_s": a.nnz * width / t})
+    return out
+
+
+def _time_dense(dtype, rng) -> list[dict]:
+    out = []
+    for rows, d_in, d_out in DENSE_SHAPES:
+        h = rng.standard_normal((rows, d_in)).astype(dtype)
+        w = rng.standard_normal((d_in, d_out)).astype(dtype)
+        t = _best_time(lambda: h @ w, repeats=5, budget_s=0.3)
+        out.append({"rows": rows, "d_in": d_in, "d_out": d_out, "seconds": t,
+                    "flops_per_s": 2.0 * rows * d_in * d_out / t})
+    return out
+
+
+def _time_elementwise(dtype, rng) -> dict:
+    """Bytes touched per second over passes like the ones training does."""
+    n = ELEMENTWISE_ELEMENTS
+    x = rng.standard_normal(n).astype(dtype)
+    y = np.empty_like(x)
+    keep = rng.random(n) < 0.5
+    m = np.zeros_like(x)
+    v = np.zeros_like(x)
+    item = np.dtype(dtype).itemsize
+
+    def passes():
+        np.maximum(x, 0, out=y)                   # ReLU: read x, write y
+        np.multiply(x, keep, out=y)               # dropout: read x + mask, write y
+        np.multiply(y, 2.0, out=y)                # scale: read + write y
+        np.multiply(m, 0.9, out=m)
+        np.add(m, 0.1 * x, out=m)                 # Adam first moment
+        np.multiply(v, 0.999, out=v)
+        np.add(v, 0.001 * (x * x), out=v)         # Adam second moment
+        np.divide(m, np.sqrt(v) + 1e-8, out=y)    # Adam step
+
+    # bytes per pass: relu 2n, dropout 2n + mask n/item, scale 2n, m: 2n + 3n (tmp), v: 2n + 4n,
+    # step: 5n -- counted roughly as element reads + writes
+    touched = n * item * (2 + 2 + 2 + 2 + 3 + 2 + 4 + 5) + n
+    t = _best_time(passes, repeats=5, budget_s=0.4)
+    return {"elements": n, "seconds": t, "bytes_per_s": touched / t}
+
+
+def _time_dropout_masks(dtype, rng) -> dict:
+    """Mask elements drawn per second by the model's own counter-based generator."""
+    from shardtrain.model import dropout_mask
+
+    ids = rng.permutation(200_000).astype(np.int64)
+    width = 16
+    t = _best_time(lambda: dropout_mask(1, 2, 0, ids, width, 0.5, dtype), repeats=3,
+                   budget_s=0.3)
+    return {"elements": ids.size * width, "seconds": t,
+            "elements_per_s": ids.size * width / t}
+
+
+def _time_pipe() -> dict:
+    """Bytes per second through one OS pipe (writer thread, reader here): the local
+    transport's own ceiling, which a link emulated on pipes cannot beat."""
+    import os
+    import threading
+
+    total, block = 64 * 2**20, 2**20
+    data = bytes(block)
+    r, w = os.pipe()
+
+    def writer():
+        view = memoryview(data)
+        for _ in range(total // block):
+            sent = 0
+            while sent < block:
+                sent += os.write(w, view[sent:])
+        os.close(w)
+
+    t0 = time.perf_counter()
+    th = threading.Thread(target=writer)
+    th.start()
+    got = 0
+    buf = bytearray(block)
+    while True:
+        n = os.readv(r, [buf])
+        if n == 0:
+            break
+        got += n
+    th.join()
+    os.close(r)
+    dt = max(time.perf_counter() - t0, 1e-9)
+    return {"bytes": got, "seconds": dt, "bytes_per_s": got / dt}
+
+
+def calibrate(dtype: str = "float32", *, seed: int = 0) -> dict:
+    """Time sparse, dense and elementwise kernels with BLAS on one thread (about 2-4 s)."""
+    if dtype not in ("float32", "float64"):
+        raise InputError(f"--dtype: {dtype!r} is not float32 or float64")
+    rng = np.random.default_rng(seed)
+    t0 = time.perf_counter()
+    with threadpool_limits(limits=1):
+        sparse = _time_sparse(np.dtype(dtype), rng)
+        dense = _time_dense(np.dtype(dtype), rng)
+        elementwise = _time_elementwise(np.dtype(dtype), rng)
+        masks = _time_dropout_masks(np.dtype(dtype), rng)
+    pipe = _time_pipe()
+    return {"version": CALIBRATION_VERSION, "dtype": dtype, "threads": 1,
+            "sparse": sparse, "dense": dense, "elementwise": elementwise,
+            "dropout_masks": masks, "pipe": pipe,
+            "calibration_s": time.perf_counter() - t0}
+
+
+def from_flops(flops_per_s: float, dtype: str = "float32") -> dict:
+    """A calibration from one user-given speed: dense at `flops_per_s`, sparse at the same
+    rate in multiply-adds counted as 2 flops each, memory passes at 4 bytes per flop
+    (common practice: sparse and elementwise kernels are bound by memory, not arithmetic)."""
+    if not (flops_per_s > 0 and np.isfinite(flops_per_s)):
+        raise InputError("--flops-per-worker: must be a positive number")
+    return {"version": CALIBRATION_VERSION, "dtype": dtype, "threads": 1,
+            "sparse": [{"nnz": 1, "width": 1, "seconds": 0.0,
+                        "nnz_cols_per_s": flops_per_s / 2.0}],
+            "dense": [{"rows": 1, "d_in": 1, "d_out": 1, "seconds": 0.0,
+                       "flops_per_s": flops_per_s}],
+            "elementwise": {"elements": 0, "seconds": 0.0, "bytes_per_s": 4.0 * flops_per_s},
+            "dropout_masks": {"elements": 0, "seconds": 0.0,
+                              "elements_per_s": flops_per_s / 20.0},
+            "calibration_s": 0.0, "from_flops": flops_per_s}
+
+
+def _interp_log(x: float, xs: np.ndarray, ys: np.ndarray) -> float:
+    """Linear interpolation in log(x), clamped at the ends."""
+    order = np.argsort(xs)
+    xs, ys = np.log(np.asarray(xs, float)[order]), np.asarray(ys, float)[order]
+    return float(np.interp(np.log(max(x, 1.0)), xs, ys))
+
+
+def sparse_speed(calibration: dict, nnz: int, width: int) -> float:
+    """Non-zeros x columns per second for a product of that size and width."""
+    rows = calibration["sparse"]
+    sizes = sorted({r["nnz"] for r in rows})
+    # per size: interpolate in width; then interpolate those speeds in size
+    per_size = []
+    for s in sizes:
+        at = [r for r in rows if r["nnz"] == s]
+        per_size.append(_interp_log(width, np.array([r["width"] for r in at]),
+                                    np.array([r["nnz_cols_per_s"] for r in at])))
+    if len(sizes) == 1:
+        return per_size[0]
+    return _interp_log(nnz, np.array(sizes), np.array(per_size))
+
+
+def dense_speed(calibration: dict, d_in: int, d_out: int) -> float:
+    """flop/s of an (rows x d_in) @ (d_in x d_out) product, interpolated in d_in * d_out."""
+    rows = calibration["dense"]
+    return _interp_log(d_in * d_out, np.array([r["d_in"] * r["d_out"] for r in rows]),
+                       np.array([r["flops_per_s"] for r in rows]))
+
+
+def elementwise_speed(calibration: dict) -> float:
+    return float(calibration["elementwise"]["bytes_per_s"])
+
+
+def mask_speed(calibration: dict) -> float:
+    """Dropout-mask elements generated per second."""
+    return float(calibration["dropout_masks"]["elements_per_s"])
+
+
+def pipe_speed(calibration: dict) -> float | None:
+    """Bytes/s through one local pipe, or None when not measured."""
+    pipe = calibration.get("pipe")
+    return float(pipe["bytes_per_s"]) if pipe else None
+
+
+def load_or_calibrate(path: str | None, dtype: str) -> dict:
+    """Read a cached calibration from `path` when it exists and matches; else time one and,
+    when `path` is given, write it there (atomically)."""
+    if path:
+        p = Path(path)
+        if p.exists():
+            try:
+                cal = json.loads(p.read_text(encoding="utf-8"))
+            except (OSError, ValueError) as exc:
+                raise InputError(f"{p}:1: not a readable calibration JSON ({exc})") from None
+            if isinstance(cal, dict) and cal.get("version") == CALIBRATION_VERSION \
+                    and cal.get("dtype") == dtype:
+                return cal
+    cal = calibrate(dtype)
+    if path:
+        from shardtrain.files import write_json_atomic
+        write_json_atomic(path, cal)
+    return cal

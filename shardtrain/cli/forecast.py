@@ -1,0 +1,272 @@
+"""Forecast the epoch time of partition plans on a described cluster (link speed, latency, CPUs).
+
+GRAPH_OR_JSON is a graph (surveyed first, as `shardtrain survey` would) or a survey JSON
+(used as is; --workers/--method then pick plans from it). Compute is forecast from this
+machine's kernels, timed once (a few seconds; --calibration FILE keeps the timing), scaled
+by --speed-factor for the target CPUs, or from --flops-per-worker. Each link speed in
+--link-gbps (Gbit/s per worker; default the presets 1,10,25,100) is forecast for every plan.
+The table marks the fastest plan and the plan with the fewest workers meeting
+--target-epoch-s.
+"""
+from __future__ import annotations
+
+import json
+import math
+import sys
+from pathlib import Path
+
+from shardtrain.errors import InputError
+from shardtrain.tables import format_table
+
+try:
+    from shardtrain.cli.common import (add_graph_arguments, load_graph_from_args,
+                                       parse_int_list, parse_name_list)
+except ImportError:  # pragma: no cover - until the shared CLI helpers exist
+    add_graph_arguments = load_graph_from_args = parse_int_list = parse_name_list = None
+
+DEFAULT_LINKS = "1,10,25,100"
+DEFAULT_WORKERS = "2,4,8,16"
+DEFAULT_METHODS = "metis,metis-volume,random,range"
+
+
+def add_arguments(parser) -> None:
+    if add_graph_arguments is not None:
+        add_graph_arguments(parser)
+    else:
+        parser.add_argument("graph", metavar="GRAPH_OR_JSON")
+    existing = set(parser._option_string_actions)
+
+    def add(flag, **kw):
+        if flag not in existing:
+            parser.add_argument(flag, **kw)
+
+    add("--workers", default=None, metavar="K,K,...",
+        help=f"worker counts (default {DEFAULT_WORKERS}; with a survey JSON: all of its plans)")
+    add("--method", default=None, metavar="M,M,...",
+        help=f"partition methods (default {DEFAULT_METHODS}; with a survey JSON: all)")
+    add("--link-gbps", default=DEFAULT_LINKS, metavar="G,G,...",
+        help=f"link speeds per worker in Gbit/s (default the presets {DEFAULT_LINKS})")
+    add("--latency-us", type=float, default=20.0, metavar="US",
+        help="one-way latency of a link call in microseconds (default 20)")
+    add("--flops-per-worker", type=float, default=None, metavar="F",
+        help="dense flop/s of one target worker core, instead of timing this machine")
+    add("--calibration", default=None, metavar="FILE.json",
+        help="read this machine's kernel timing from FILE, or time it and write it there")
+    add("--speed-factor", type=float, default=1.0, metavar="X",
+        help="target CPU speed relative to this machine's calibrated core (default 1)")
+    add("--target-epoch-s", type=float, default=None, metavar="T",
+        help="mark the plan with the fewest workers whose epoch takes at most T seconds")
+    add("--cores", type=int, default=None, metavar="C",
+        help="forecast for C cores on ONE machine: more workers than cores share them")
+    add("--dropout", type=float, default=0.5, help="dropout rate of training (default 0.5)")
+    add("--layers", type=int, default=2, help="GCN layers, when surveying a graph (default 2)")
+    add("--hidden", type=int, default=16, help="hidden width, when surveying a graph (16)")
+    add("--dtype", default="float32", help="training dtype, float32 or float64 (float32)")
+    add("--bias", action="store_true", help="the model has biases")
+    add("--classes", type=int, default=None, metavar="C",
+        help="number of classes, when the graph has no labels")
+    add("--input-dim", type=int, default=None, metavar="D",
+        help="feature width, when the graph has no features")
+    add("--imbalance", type=float, default=0.03, help="METIS load imbalance tolerance (0.03)")
+    add("--seed", type=int, default=0, help="seed of the seeded methods (default 0)")
+    add("--json", default=None, metavar="OUT.json", help="write the forecast as JSON")
+    add("--plot", default=None, metavar="DIR", help="write PNG pictures of the forecast to DIR")
+
+
+def parse_float_list(text: str, option: str) -> list[float]:
+    values = []
+    for part in (text or "").split(","):
+        part = part.strip()
+        try:
+            v = float(part)
+        except ValueError:
+            raise InputError(f"{option}: {part!r} is not a number") from None
+        if not (math.isfinite(v) and v > 0):
+            raise InputError(f"{option}: {part!r} must be a positive number")
+        values.append(v)
+    if not values:
+        raise InputError(f"{option}: give at least one value")
+    return values
+
+
+def _int_list(text: str, option: str) -> list[int]:
+    if parse_int_list is not None:
+        return parse_int_list(text, option)
+    try:
+        return [int(x) for x in text.split(",")]
+    except ValueError:
+        raise InputError(f"{option}: expected integers separated by commas") from None
+
+
+def _name_list(text: str, option: str) -> list[str]:
+    if parse_name_list is not None:
+        return parse_name_list(text, option)
+    return [x.strip() for x in text.split(",") if x.strip()]
+
+
+def _check_options(args) -> None:
+    """Every option check that needs no file, before any work."""
+    _check_positive_opt(args.latency_us, "--latency-us", allow_zero=True)
+    _check_positive_opt(args.speed_factor, "--speed-factor")
+    if args.target_epoch_s is not None:
+        _check_positive_opt(args.target_epoch_s, "--target-epoch-s")
+    if args.flops_per_worker is not None:
+        _check_positive_opt(args.flops_per_worker, "--flops-per-worker")
+        if args.calibration:
+            raise InputError("--flops-per-worker: give it or --calibration, not both")
+    if args.cores is not None and args.cores < 1:
+        raise InputError(f"--cores: must be >= 1, got {args.cores}")
+    if not 0.0 <= args.dropout < 1.0:
+        raise InputError(f"--dropout: must be in [0, 1), got {args.dropout}")
+    if args.dtype not in ("float32", "float64"):
+        raise InputError(f"--dtype: must be float32 or float64, got {args.dtype!r}")
+    for path, option in ((args.json, "--json"),):
+        if path is not None and not Path(path).parent.is_dir():
+            raise InputError(f"{option}: folder {Path(path).parent} does not exist")
+    if args.plot is not None and Path(args.plot).exists() and not Path(args.plot).is_dir():
+        raise InputError(f"--plot: {args.plot} exists and is not a folder")
+    if args.calibration and Path(args.calibration).exists() is False \
+            and not Path(args.calibration).parent.is_dir():
+        raise InputError(f"--calibration: folder {Path(args.calibration).parent} does not exist")
+
+
+def _check_positive_opt(value, option, allow_zero=False) -> None:
+    if value is None or not math.isfinite(value) or value < 0 or (value == 0 and not allow_zero):
+        raise InputError(f"{option}: must be a {'non-negative' if allow_zero else 'positive'}"
+                         f" number, got {value}")
+
+
+def read_survey_json(path: str) -> dict:
+    """A survey JSON written by `shardtrain survey --json`; InputError naming the file."""
+    try:
+        text = Path(path).read_text(encoding="utf-8")
+    except OSError as exc:
+        raise InputError(f"{path}: cannot read ({exc.strerror or exc})") from None
+    try:
+        data = json.loads(text)
+    except ValueError as exc:
+        line = getattr(exc, "lineno", 1)
+        raise InputError(f"{path}:{line}: not valid JSON ({exc.msg if hasattr(exc, 'msg') else exc})") from None
+    if not isinstance(data, dict) or "plans" not in data or "model" not in data:
+        raise InputError(f"{path}:1: not a survey JSON (needs 'model' and 'plans'; "
+                         f"write one with `shardtrain survey GRAPH --json OUT.json`)")
+    for i, plan in enumerate(data["plans"]):
+        for key in ("method", "workers", "shards", "traffic"):
+            if key not in plan:
+                raise InputError(f"{path}:1: plan {i} has no {key!r}")
+    if not data["plans"]:
+        raise InputError(f"{path}:1: the survey has no plans")
+    return data
+
+
+def _select(survey: dict, workers, methods, source: str) -> dict:
+    plans = [p for p in survey["plans"]
+             if (workers is None or p["workers"] in workers)
+             and (methods is None or p["method"] in methods)]
+    if not plans:
+        raise InputError(f"--workers/--method: no plan of {source} matches")
+    return dict(survey, plans=plans)
+
+
+def _seconds(value: float) -> str:
+    if value >= 1:
+        return f"{value:.2f} s"
+    if value >= 1e-3:
+        return f"{value * 1e3:.1f} ms"
+    return f"{value * 1e6:.0f} us"
+
+
+TABLE_COLUMNS = [
+    ("method", "method", None), ("workers", "workers", "{:,}"),
+    ("link", "link", None),
+    ("epoch_s", "epoch", _seconds), ("compute_s", "compute", _seconds),
+    ("exchange_s", "exchange", _seconds), ("allreduce_s", "all-reduce", _seconds),
+    ("wait_s", "wait (mean)", _seconds), ("eval_s", "+eval", _seconds),
+    ("bottleneck", "bound by", None), ("mark", "", None),
+]
+
+
+def _link_name(gbps: float) -> str:
+    return f"{gbps:g} Gbit/s"
+
+
+def table_rows(result: dict) -> list[dict]:
+    rows = []
+    for p in result["plans"]:
+        marks = []
+        if p.get("fastest"):
+            marks.append("<- fastest")
+        if p.get("fewest_meeting_target"):
+            marks.append("<- fewest workers meeting target")
+        rows.append(dict(p, link=_link_name(p["link_gbps"]), mark="; ".join(marks)))
+    return rows
+
+
+def summary_lines(result: dict) -> list[str]:
+    out = []
+    f = result["fastest"]
+    if f:
+        out.append(f"fastest: {f['method']} on {f['workers']} workers at "
+                   f"{_link_name(f['link_gbps'])}, {_seconds(f['epoch_s'])} per epoch")
+    t = result.get("target_epoch_s")
+    if t is not None:
+        m = result["fewest_meeting_target"]
+        if m:
+            out.append(f"fewest workers meeting {_seconds(t)}: {m['method']} on {m['workers']}"
+                       f" workers at {_link_name(m['link_gbps'])} ({_seconds(m['epoch_s'])})")
+        else:
+            out.append(f"no plan meets the target of {_seconds(t)} per epoch")
+    return out
+
+
+def run(args) -> int:
+    from shardtrain.calibrate import from_flops, load_or_calibrate
+    from shardtrain.files import write_json_atomic
+    from shardtrain.forecast import forecast
+
+    links = parse_float_list(args.link_gbps, "--link-gbps")
+    workers = _int_list(args.workers, "--workers") if args.workers is not None else None
+    methods = _name_list(args.method, "--method") if args.method is not None else None
+    _check_options(args)
+    source = str(args.graph)
+    if source.lower().endswith(".json"):
+        survey_dict = _select(read_survey_json(source), workers, methods, source)
+    else:
+        from shardtrain.survey import SurveySettings, check_plans, survey
+
+        settings = SurveySettings(layers=args.layers, hidden=args.hidden, dtype=args.dtype,
+                                  classes=args.classes, input_dim=args.input_dim,
+                                  bias=args.bias, imbalance=args.imbalance, seed=args.seed)
+        workers = workers or _int_list(DEFAULT_WORKERS, "--workers")
+        methods = methods or _name_list(DEFAULT_METHODS, "--method")
+        loaded = load_graph_from_args(args)
+        check_plans(loaded.graph, methods, workers, settings)
+        print(f"surveying {len(methods)} methods x {len(workers)} worker counts ...",
+              file=sys.stderr)
+        survey_dict = survey(loaded.graph, methods, workers, settings)
+    dtype = survey_dict["model"].get("dtype", "float32")
+    if args.flops_per_worker is not None:
+        calibration = from_flops(args.flops_per_worker, dtype)
+    else:
+        print("timing this machine's kernels (one thread) ...", file=sys.stderr)
+        calibration = load_or_calibrate(args.calibration, dtype)
+    result = forecast(survey_dict, link_gbps_list=links, latency_us=args.latency_us,
+                      calibration=calibration, speed_factor=args.speed_factor,
+                      target_epoch_s=args.target_epoch_s, cores=args.cores,
+                      dropout=args.dropout)
+    result["source"] = source
+    g = result["graph"]
+    print(f"{g.get('vertices', 0):,} vertices, {g.get('edges', 0):,} edges; latency "
+          f"{args.latency_us:g} us; speed factor {args.speed_factor:g}; one training epoch "
+          f"(+eval: the evaluation forward, not included in epoch)")
+    print(format_table(table_rows(result), TABLE_COLUMNS))
+    for line in summary_lines(result):
+        print(line)
+    if args.json:
+        write_json_atomic(args.json, result)
+    if args.plot:
+        from shardtrain.plots import forecast_plots
+
+        Path(args.plot).mkdir(parents=True, exist_ok=True)
+        forecast_plots(result, args.plot)
+    return 0

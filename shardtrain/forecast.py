@@ -1,0 +1,340 @@
+"""Forecast: one training epoch's time of a surveyed plan on hardware the user describes.
+
+Inputs are a survey plan (per-worker sizes and the k x k traffic), the model shape, a link
+(bandwidth per worker, latency) and a calibration of this machine's kernels
+(`shardtrain.calibrate`), scaled by a speed factor for the target CPUs.
+
+The epoch follows the worker's schedule, step by step, for every worker at once:
+- compute: counted work of each kernel (sparse products nnz x width forward and backward;
+  dense products rows x d_in x d_out x 2 flops; dropout masks; elementwise passes over the
+  bytes they touch) divided by the calibrated speed of that kernel;
+- halo exchange, one per layer and direction that moves bytes: the link model of
+  `shardtrain.transport.link` -- each worker has one full-duplex interface; the frames it
+  sends in one exchange leave one after the other, so it is done after
+  latency + 8 * (its payload + framing bytes) / bandwidth. An exchange is a barrier for the
+  workers that take part, so the hop takes as long as its busiest sender;
+- all-reduce: ring (Patarasuk & Yuan 2009), 2(k-1) steps, each one link call carrying one
+  chunk of about size/k elements: 2(k-1) x (latency + 8 * chunk bytes / bandwidth);
+- waiting: exchanges synchronise, so between two of them every worker waits for the
+  slowest: wait = max - own, per compute phase and per exchange.
+
+`epoch_s` is the critical path of one training step (forward, loss, backward, all-reduce,
+Adam step). The evaluation forward (no dropout, forward exchanges only) that the trainer
+runs for the accuracies is forecast apart as `eval_s`; `epoch_with_eval_s` adds it.
+With `cores` (checking on this machine), more busy workers than cores share them: every
+worker's compute is stretched by workers / cores.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from shardtrain.calibrate import (dense_speed, elementwise_speed, mask_speed, pipe_speed,
+                                  sparse_speed)
+from shardtrain.errors import InputError
+
+LINK_PRESETS_GBPS = (1.0, 10.0, 25.0, 100.0)
+DEFAULT_LATENCY_US = 20.0
+# Python and numpy overhead of one kernel call (common practice: a few microseconds).
+CALL_OVERHEAD_S = 5e-6
+
+
+def frame_header_bytes(dtype: str, shape, *, kind: str = "halo", layer: int = 0,
+                       direction: str = "backward") -> int:
+    """Framing bytes of one frame as the transport encodes it (length prefix + header)."""
+    try:
+        from shardtrain.transport.frames import encode_header
+    except ImportError:   # the transport is optional for a forecast
+        return 112
+    return len(encode_header(kind=kind, epoch=0, layer=layer, direction=direction, source=0,
+                             dtype=dtype, shape=[max(int(d), 1) for d in shape]))
+
+
+def link_seconds(nbytes, gbps: float):
+    """Serialisation time of nbytes on a gbps link: bytes * 8 / (gbps * 1e9)."""
+    return np.asarray(nbytes, dtype=np.float64) * 8.0 / (gbps * 1e9)
+
+
+def ring_allreduce_seconds(size_bytes: float, k: int, gbps: float, latency_us: float) -> float:
+    """Ring all-reduce of `size_bytes` among k workers: 2(k-1) steps of size/k bytes
+    (Patarasuk & Yuan 2009), each costing one latency plus its serialisation."""
+    if k <= 1:
+        return 0.0
+    steps = 2 * (k - 1)
+    return steps * (latency_us * 1e-6 + float(link_seconds(size_bytes / k, gbps)))
+
+
+@dataclass
+class _Timeline:
+    """The epoch as a sequence of per-worker compute phases and synchronising exchanges."""
+
+    k: int
+    steps: list = field(default_factory=list)   # ("compute", s[k]) | ("exchange", label, s[k])
+
+    def compute(self, seconds) -> None:
+        s = np.broadcast_to(np.asarray(seconds, dtype=np.float64), (self.k,))
+        if self.steps and self.steps[-1][0] == "compute":
+            self.steps[-1] = ("compute", self.steps[-1][1] + s)
+        else:
+            self.steps.append(("compute", s.copy()))
+
+    def exchange(self, label: str, seconds, kind: str = "exchange") -> None:
+        s = np.broadcast_to(np.asarray(seconds, dtype=np.float64), (self.k,))
+        self.steps.append((kind, label, s.copy()))
+
+    def totals(self) -> dict:
+        """Critical path and per-worker split: compute + exchange + allreduce + wait = total."""
+        own = {"compute": np.zeros(self.k), "exchange": np.zeros(self.k),
+               "allreduce": np.zeros(self.k)}
+        wait = np.zeros(self.k)
+        path = {"compute": 0.0, "exchange": 0.0, "allreduce": 0.0}
+        hops = []
+        for step in self.steps:
+            kind, s = step[0], step[-1]
+            slowest = float(s.max()) if s.size else 0.0
+            own[kind] += s
+            wait += slowest - s
+            path[kind] += slowest
+            if kind != "compute":
+                hops.append({"step": step[1], "seconds": slowest,
+                             "busiest_worker": int(np.argmax(s))})
+        total = sum(path.values())
+        return {"total": total, "path": path, "own": own, "wait": wait, "hops": hops}
+
+
+def _send_rows(plan: dict, hops: list[dict], itemsize: int) -> np.ndarray:
+    """send_rows[p, q]: rows p sends q in one forward exchange.
+
+    Taken from the plan when it lists them; otherwise solved from pair_bytes, which is
+    S * F + S^T * B with F, B the summed forward and backward widths in bytes (an undirected
+    graph: q's halo rows owned by p are the rows p sends q). When F == B only S + S^T is
+    known, and S is taken symmetric.
+    """
+    traffic = plan["traffic"]
+    if "send_rows" in traffic:
+        return np.asarray(traffic["send_rows"], dtype=np.float64)
+    k = int(plan["workers"])
+    pair = np.asarray(traffic.get("pair_bytes", np.zeros((k, k))), dtype=np.float64)
+    if pair.shape != (k, k):
+        raise InputError(f"plan {plan.get('method')}/{k}: pair_bytes is not {k} x {k}")
+    f = sum(h["forward_width"] for h in hops) * itemsize
+    b = sum(h["backward_width"] for h in hops) * itemsize
+    if f == b:
+        return pair / (2.0 * f) if f else np.zeros((k, k))
+    s = (f * pair - b * pair.T) / (f * f - b * b)
+    return np.clip(np.rint(s), 0, None)
+
+
+def _check_positive(name: str, value, *, allow_zero=False) -> None:
+    ok = value is not None and math.isfinite(value) and (value >= 0 if allow_zero else value > 0)
+    if not ok:
+        raise InputError(f"{name}: must be a {'non-negative' if allow_zero else 'positive'} "
+                         f"number, got {value!r}")
+
+
+def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: float,
+                  calibration: dict, speed_factor: float = 1.0, cores: int | None = None,
+                  dropout: float = 0.5, local_pipes: bool = False,
+                  classes: int | None = None) -> dict:
+    """Forecast one training epoch (and one evaluation forward) of a survey plan.
+
+    `model`: the survey's "model" (dtype, hops). `cores`: the plan runs on one machine with
+    that many cores (compute stretched by workers / cores when there are more workers).
+    `local_pipes`: the link is emulated on local pipes, whose own speed (calibrated) also
+    caps the bandwidth. Returns the plan-level critical path and a per-worker split.
+    """
+    _check_positive("--link-gbps", link_gbps)
+    _check_positive("--latency-us", latency_us, allow_zero=True)
+    _check_positive("--speed-factor", speed_factor)
+    if cores is not None and cores < 1:
+        raise InputError(f"--cores: must be >= 1, got {cores}")
+    k = int(plan["workers"])
+    dtype = model["dtype"]
+    b = np.dtype(dtype).itemsize
+    hops = model["hops"]
+    shards = sorted(plan["shards"], key=lambda s: s["worker"])
+    n = np.array([s["owned"] for s in shards], dtype=np.float64)
+    halo = np.array([s["halo"] for s in shards], dtype=np.float64)
+    nnz = np.array([s["local_edges"] for s in shards], dtype=np.float64) + n  # + self-loops
+    S = _send_rows(plan, hops, b)
+    sent_rows = S.sum(axis=1)          # rows p sends, summed over its peers
+    back_rows = S.sum(axis=0)          # p's halo rows: gradients p sends back to owners
+    fwd_msgs = (S > 0).sum(axis=1)
+    bwd_msgs = (S > 0).sum(axis=0)
+    classes = classes or hops[-1]["d_out"]
+    params = int(model.get("parameters") or sum(h["d_in"] * h["d_out"] for h in hops))
+
+    stretch = max(1.0, k / cores) if cores else 1.0
+    slow = stretch / speed_factor
+    elem = elementwise_speed(calibration)
+    masks = mask_speed(calibration)
+    bandwidth = link_gbps
+    if local_pipes and pipe_speed(calibration):
+        bandwidth = min(link_gbps, pipe_speed(calibration) * 8 / 1e9)
+    latency = latency_us * 1e-6
+
+    def sparse(width):
+        speeds = np.array([sparse_speed(calibration, int(z), int(width)) for z in nnz])
+        return (nnz * width / speeds + CALL_OVERHEAD_S) * slow
+
+    def gemm(rows, d_in, d_out):
+        return (2.0 * rows * d_in * d_out / dense_speed(calibration, d_in, d_out)
+                + CALL_OVERHEAD_S) * slow
+
+    def passes(nbytes):
+        return (np.asarray(nbytes, dtype=np.float64) / elem + CALL_OVERHEAD_S) * slow
+
+    def link(rows, width, msgs):
+        if k == 1:
+            return np.zeros(k)
+        payload = rows * width * b
+        framing = msgs * frame_header_bytes(dtype, (rows.max() / max(msgs.max(), 1), width))
+        t = np.where(msgs > 0, latency + link_seconds(payload + framing, bandwidth), 0.0)
+        return t
+
+    def forward(tl: _Timeline, train: bool) -> None:
+        for h in hops:
+            l, d_in, d_out, fw = h["layer"], h["d_in"], h["d_out"], h["forward_width"]
+            if train and dropout > 0:
+                tl.compute(n * d_in / masks * slow + passes(n * d_in * 3 * b))  # mask, h*mask
+            if h["transform_first"]:
+                tl.compute(gemm(n, d_in, d_out))
+            if k > 1 and fw:
+                tl.compute(passes(sent_rows * fw * 2 * b))                     # gather rows
+                tl.exchange(f"forward {l}", link(sent_rows, fw, fwd_msgs))
+                tl.compute(passes((n + halo) * fw * 2 * b))                    # [own | halo]
+            tl.compute(sparse(fw))
+            if not h["transform_first"]:
+                tl.compute(gemm(n, d_in, d_out))
+            if l < len(hops) - 1:
+                tl.compute(passes(n * d_out * 2 * b))                          # ReLU
+        tl.compute(passes(n * classes * 8 * b))                                # softmax, loss
+
+    def backward(tl: _Timeline) -> None:
+        for h in reversed(hops):
+            l, d_in, d_out = h["layer"], h["d_in"], h["d_out"]
+            fw, bw = h["forward_width"], h["backward_width"]
+            if h["transform_first"]:
+                tl.compute(sparse(d_out))                                      # dT = Â^T dZ
+                if k > 1 and bw:
+                    tl.exchange(f"backward {l}", link(back_rows, bw, bwd_msgs))
+                    tl.compute(passes(sent_rows * bw * 3 * b))                 # add received
+                tl.compute(gemm(n, d_in, d_out))                               # dW
+                if l > 0:
+                    tl.compute(gemm(n, d_out, d_in))                           # dH
+            else:
+                tl.compute(gemm(n, d_in, d_out))                               # dW
+                if l > 0:
+                    tl.compute(gemm(n, d_out, d_in))                           # dA
+                    tl.compute(sparse(d_in))                                   # Â^T dA
+                    if k > 1 and bw:
+                        tl.exchange(f"backward {l}", link(back_rows, bw, bwd_msgs))
+                        tl.compute(passes(sent_rows * bw * 3 * b))
+            if l > 0:
+                tl.compute(passes(n * d_in * 5 * b))                           # dropout, ReLU'
+
+    train = _Timeline(k)
+    forward(train, train=True)
+    backward(train)
+    if k > 1:
+        ring = np.asarray(plan["traffic"].get("allreduce_bytes_per_worker", [0] * k),
+                          dtype=np.float64)
+        size_bytes = params * b
+        steps = 2 * (k - 1)
+        framing = steps * frame_header_bytes(dtype, (math.ceil(params / k),), kind="allreduce",
+                                             layer=-1, direction="reduce-scatter")
+        per_rank = steps * latency + link_seconds(ring + framing, bandwidth)
+        train.compute(0.0)
+        train.exchange("all-reduce", per_rank, kind="allreduce")
+        train.compute(passes(np.full(k, size_bytes * (k - 1) / k * 3)))     # chunk adds
+    train.compute(passes(np.full(k, params * b * 16.0)))                       # Adam step
+    t = train.totals()
+    ev = _Timeline(k)
+    forward(ev, train=False)
+    e = ev.totals()
+
+    workers = [{"worker": w, "compute_s": float(t["own"]["compute"][w]),
+                "exchange_s": float(t["own"]["exchange"][w]),
+                "allreduce_s": float(t["own"]["allreduce"][w]),
+                "wait_s": float(t["wait"][w])} for w in range(k)]
+    path = t["path"]
+    return {
+        "method": plan["method"], "workers": k, "link_gbps": float(link_gbps),
+        "latency_us": float(latency_us),
+        "epoch_s": t["total"],
+        "compute_s": path["compute"], "exchange_s": path["exchange"],
+        "allreduce_s": path["allreduce"],
+        "wait_s": float(t["wait"].mean()),
+        "max_wait_s": float(t["wait"].max()),
+        "eval_s": e["total"], "epoch_with_eval_s": t["total"] + e["total"],
+        "bottleneck": max(path, key=path.get),
+        "compute_stretch": stretch,
+        "effective_gbps": float(bandwidth),
+        "steps": t["hops"],
+        "per_worker": workers,
+    }
+
+
+def _meets(plans: list[dict], target: float | None) -> dict | None:
+    """Fewest workers meeting the target; ties go to the slower (cheaper) link, then the
+    shorter epoch."""
+    if target is None:
+        return None
+    ok = [p for p in plans if p["epoch_s"] <= target]
+    if not ok:
+        return None
+    return min(ok, key=lambda p: (p["workers"], p["link_gbps"], p["epoch_s"]))
+
+
+def _pick(p: dict | None) -> dict | None:
+    if p is None:
+        return None
+    return {key: p[key] for key in ("method", "workers", "link_gbps", "epoch_s")}
+
+
+def forecast(survey_dict: dict, *, link_gbps_list, latency_us: float, calibration: dict,
+             speed_factor: float = 1.0, target_epoch_s: float | None = None,
+             cores: int | None = None, dropout: float = 0.5) -> dict:
+    """Forecast every plan of a survey on every link speed; mark the fastest plan and the
+    plan with the fewest workers whose epoch meets `target_epoch_s`."""
+    if not link_gbps_list:
+        raise InputError("--link-gbps: give at least one speed")
+    for g in link_gbps_list:
+        _check_positive("--link-gbps", g)
+    _check_positive("--latency-us", latency_us, allow_zero=True)
+    _check_positive("--speed-factor", speed_factor)
+    if target_epoch_s is not None:
+        _check_positive("--target-epoch-s", target_epoch_s)
+    model = survey_dict["model"]
+    plans = []
+    for plan in survey_dict["plans"]:
+        for g in link_gbps_list:
+            plans.append(forecast_plan(plan, model, link_gbps=g, latency_us=latency_us,
+                                       calibration=calibration, speed_factor=speed_factor,
+                                       cores=cores, dropout=dropout,
+                                       classes=survey_dict.get("graph", {}).get("classes")))
+    fastest = min(plans, key=lambda p: (p["epoch_s"], p["workers"])) if plans else None
+    meeting = _meets(plans, target_epoch_s)
+    for p in plans:
+        p["fastest"] = p is fastest
+        p["meets_target"] = None if target_epoch_s is None else p["epoch_s"] <= target_epoch_s
+        p["fewest_meeting_target"] = p is meeting
+    return {
+        "kind": "forecast",
+        "graph": survey_dict.get("graph", {}),
+        "model": model,
+        "latency_us": float(latency_us),
+        "speed_factor": float(speed_factor),
+        "target_epoch_s": target_epoch_s,
+        "cores": cores,
+        "dropout": dropout,
+        "calibration": {key: calibration.get(key) for key in
+                        ("dtype", "threads", "calibration_s", "from_flops")
+                        if key in calibration},
+        "includes_eval": False,
+        "plans": plans,
+        "fastest": _pick(fastest),
+        "fewest_meeting_target": _pick(meeting),
+    }

@@ -1,0 +1,324 @@
+"""PNG pictures of a survey, a training run and a forecast (matplotlib, headless Agg).
+
+Each function takes the JSON-ready dict the matching command writes and a folder, writes its
+PNGs there atomically, and returns their paths. Pictures a dict has no data for are skipped.
+"""
+from __future__ import annotations
+
+from pathlib import Path
+
+import matplotlib
+
+matplotlib.use("Agg")
+
+import matplotlib.pyplot as plt  # noqa: E402
+import numpy as np  # noqa: E402
+from matplotlib.colors import LogNorm, Normalize  # noqa: E402
+from matplotlib.ticker import FuncFormatter, LogLocator, MaxNLocator, NullFormatter  # noqa: E402
+
+from shardtrain.files import atomic_output  # noqa: E402
+from shardtrain.tables import human_bytes  # noqa: E402
+
+PHASES = (("compute_s", "compute", "#4c72b0"), ("exchange_s", "halo exchange", "#dd8452"),
+          ("allreduce_s", "all-reduce", "#55a868"), ("wait_s", "waiting", "#c7c7c7"))
+DPI = 110
+_BYTES_FMT = FuncFormatter(lambda v, _pos: human_bytes(v))
+
+
+def _log_bytes_axis(axis) -> None:
+    """Byte ticks at powers of two (1 KiB, 4 KiB, 16 KiB ...): round binary labels."""
+    axis.set_major_locator(LogLocator(base=2, numticks=8))
+    axis.set_major_formatter(_BYTES_FMT)
+    axis.set_minor_formatter(NullFormatter())
+
+
+def _log_seconds_axis(axis) -> None:
+    """Time ticks at 1, 2 and 5 times powers of ten, labelled in s, ms or us."""
+    axis.set_major_locator(LogLocator(base=10, subs=(1.0, 2.0, 5.0), numticks=12))
+    axis.set_major_formatter(FuncFormatter(_seconds_label))
+    axis.set_minor_formatter(NullFormatter())
+
+
+def _save(fig, out_dir, name: str) -> str:
+    path = Path(out_dir) / name
+    with atomic_output(path) as tmp:
+        fig.savefig(tmp, dpi=DPI, format="png")
+    plt.close(fig)
+    return str(path)
+
+
+def _seconds_label(v: float, _pos=None) -> str:
+    if v == 0:
+        return "0"
+    if abs(v) >= 1:
+        return f"{v:g} s"
+    if abs(v) >= 1e-3:
+        return f"{v * 1e3:g} ms"
+    return f"{v * 1e6:g} us"
+
+
+def _worker_ticks(ax, k: int, axis: str = "x") -> None:
+    """Readable worker ticks: every worker up to 16, otherwise about 16 evenly spaced."""
+    step = 1 if k <= 16 else int(np.ceil(k / 16))
+    ticks = np.arange(0, k, step)
+    (ax.set_xticks if axis == "x" else ax.set_yticks)(ticks)
+
+
+def _workers_axis(ax, counts) -> None:
+    """Worker counts on a log2 axis labelled with the counts themselves."""
+    counts = sorted(set(int(c) for c in counts))
+    if len(counts) > 1 and counts[0] > 0:
+        ax.set_xscale("log", base=2)
+    ax.set_xticks(counts)
+    ax.set_xticklabels([str(c) for c in counts])
+    ax.minorticks_off()
+    ax.set_xlabel("workers")
+
+
+# ---------------------------------------------------------------- heat map
+
+def traffic_heatmap(pair_bytes, title: str, out_dir, name: str) -> str:
+    """k x k bytes sent from row worker to column worker; no traffic shows white."""
+    m = np.asarray(pair_bytes, dtype=np.float64)
+    k = m.shape[0]
+    side = 4.2 + min(k, 64) * 0.04
+    fig, ax = plt.subplots(figsize=(side + 1.4, side))
+    positive = m[m > 0]
+    cmap = plt.get_cmap("viridis").with_extremes(bad="white")
+    if positive.size == 0:
+        norm = Normalize(0, 1)
+    elif positive.max() / positive.min() > 50:
+        norm = LogNorm(positive.min(), positive.max())
+    else:
+        norm = Normalize(0, positive.max())
+    img = ax.imshow(np.ma.masked_where(m <= 0, m), cmap=cmap, norm=norm,
+                    interpolation="nearest", origin="upper")
+    _worker_ticks(ax, k, "x")
+    _worker_ticks(ax, k, "y")
+    if k > 16:
+        ax.tick_params(labelsize=8)
+    ax.set_xlabel("receiving worker")
+    ax.set_ylabel("sending worker")
+    ax.set_title(title, fontsize=10)
+    bar = fig.colorbar(img, ax=ax, fraction=0.046, pad=0.04)
+    if isinstance(norm, LogNorm):
+        _log_bytes_axis(bar.ax.yaxis)
+    else:
+        bar.ax.yaxis.set_major_formatter(_BYTES_FMT)
+    bar.set_label("bytes per epoch (white: none)")
+    fig.tight_layout()
+    return _save(fig, out_dir, name)
+
+
+# ---------------------------------------------------------------- per-worker time bars
+
+def time_bars(workers: list[dict], title: str, out_dir, name: str) -> str:
+    """Stacked bars per worker: compute / halo exchange / all-reduce / waiting."""
+    workers = sorted(workers, key=lambda w: w["worker"])
+    k = len(workers)
+    x = np.arange(k)
+    fig, ax = plt.subplots(figsize=(max(5.5, 0.35 * min(k, 64) + 3), 4))
+    bottom = np.zeros(k)
+    for key, label, colour in PHASES:
+        v = np.array([float(w.get(key) or 0.0) for w in workers])
+        ax.bar(x, v, bottom=bottom, color=colour, label=label, width=0.75)
+        bottom += v
+    ax.set_xticks(x if k <= 16 else x[:: int(np.ceil(k / 16))])
+    ax.set_xlabel("worker")
+    ax.set_ylabel("seconds")
+    ax.yaxis.set_major_formatter(FuncFormatter(_seconds_label))
+    ax.set_title(title, fontsize=10)
+    ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), fontsize=9, frameon=False)
+    ax.set_ylim(0, max(bottom.max() * 1.1, 1e-9))
+    fig.tight_layout()
+    return _save(fig, out_dir, name)
+
+
+# ---------------------------------------------------------------- survey
+
+def _by_method(plans: list[dict]) -> dict[str, list[dict]]:
+    out: dict[str, list[dict]] = {}
+    for p in plans:
+        out.setdefault(p["method"], []).append(p)
+    return {m: sorted(ps, key=lambda p: p["workers"]) for m, ps in out.items()}
+
+
+def _plan_traffic(plan: dict) -> float:
+    t = plan["traffic"]
+    return float(t["forward_bytes"] + t["backward_bytes"] + t["allreduce_bytes"])
+
+
+def pick_heatmap_plan(plans: list[dict], max_workers: int = 64) -> dict | None:
+    """The plan to draw as a heat map: the most workers (up to max_workers), and among
+    those the least traffic."""
+    fit = [p for p in plans if 1 < p["workers"] <= max_workers and "pair_bytes" in p["traffic"]]
+    if not fit:
+        return None
+    k = max(p["workers"] for p in fit)
+    return min((p for p in fit if p["workers"] == k), key=_plan_traffic)
+
+
+def survey_plots(survey: dict, out_dir, plan: dict | None = None) -> list[str]:
+    """Traffic heat map of one plan; traffic and replication factor against workers."""
+    Path(out_dir).mkdir(parents=True, exist_ok=True)
+    paths = []
+    plans = survey["plans"]
+    chosen = plan or pick_heatmap_plan(plans)
+    if chosen is not None:
+        paths.append(traffic_heatmap(
+            chosen["traffic"]["pair_bytes"],
+            f"predicted halo traffic, {chosen['method']} on {chosen['workers']} workers",
+            out_dir, "survey_traffic_heatmap.png"))
+    groups = _by_method(plans)
+    counts = [p["workers"] for p in plans]
+    fig, (ax1, ax2) = plt.subplots(1, 2, figsize=(10, 4))
+    for method, ps in groups.items():
+        k = [p["workers"] for p in ps]
+        ax1.plot(k, [max(_plan_traffic(p), 1.0) for p in ps], marker="o", label=method)
+        ax2.plot(k, [p["replication_factor"] for p in ps], marker="o", label=method)
+    for ax in (ax1, ax2):
+        _workers_axis(ax, counts)
+        ax.grid(True, which="major", alpha=0.3)
+    ax1.set_yscale("log")
+    _log_bytes_axis(ax1.yaxis)
+    ax1.set_ylabel("payload per training epoch (all workers)")
+    ax1.set_title("traffic per epoch", fontsize=10)
+    ax2.set_ylabel("replication factor ((owned + halo) / vertices)")
+    ax2.set_title("replication factor", fontsize=10)
+    ax2.legend(title="method", fontsize=9)
+    fig.tight_layout()
+    paths.append(_save(fig, out_dir, "survey_traffic_replication.png"))
+    return paths
+
+
+# ---------------------------------------------------------------- run
+
+def measured_pair_bytes(run: dict) -> np.ndarray | None:
+    """k x k payload bytes of the halo exchanges the run measured, from whichever form the
+    run JSON holds: a matrix under traffic['pair_bytes'] or a list of per-pair counters."""
+    traffic = run.get("traffic") or {}
+    for key in ("measured_pair_bytes", "pair_bytes"):
+        if key in traffic:
+            return np.asarray(traffic[key], dtype=np.float64)
+    rows = traffic.get("breakdown") or traffic.get("pairs") or traffic.get("counters")
+    k = len(run.get("workers") or [])
+    if not rows or not k:
+        return None
+    m = np.zeros((k, k))
+    for r in rows:
+        if not isinstance(r, dict) or r.get("kind", "halo") != "halo":
+            continue
+        src, dst = r.get("src", r.get("source")), r.get("dst", r.get("destination"))
+        nbytes = r.get("payload_bytes", r.get("bytes"))
+        if src is None or dst is None or nbytes is None or not (0 <= src < k and 0 <= dst < k):
+            continue
+        m[src, dst] += nbytes
+    return m if m.any() else None
+
+
+def run_plots(run: dict, out_dir) -> list[str]:
+    """Per-worker time bars, loss and accuracy curves, measured traffic heat map."""
+    Path(out_dir).mkdir(parents=True, exist_ok=True)
+    paths = []
+    workers = run.get("workers") or []
+    if workers:
+        paths.append(time_bars(workers, f"measured time per worker over the run "
+                                        f"({len(workers)} workers)", out_dir,
+                               "run_worker_times.png"))
+    epochs = run.get("epochs") or []
+    if epochs:
+        e = [r["epoch"] for r in epochs]
+        fig, (ax1, ax2) = plt.subplots(1, 2, figsize=(10, 3.8))
+        ax1.plot(e, [r["loss"] for r in epochs], color="#4c72b0")
+        ax1.set_xlabel("epoch")
+        ax1.set_ylabel("training loss (cross-entropy)")
+        ax1.set_title("loss", fontsize=10)
+        for key, label in (("train_acc", "training"), ("val_acc", "validation"),
+                           ("test_acc", "test")):
+            vals = [r.get(key) for r in epochs]
+            if any(v is not None for v in vals):
+                ax2.plot(e, [np.nan if v is None else v for v in vals], label=label)
+        ax2.set_ylim(0, 1.02)
+        ax2.set_xlabel("epoch")
+        ax2.set_ylabel("accuracy")
+        ax2.set_title("accuracy", fontsize=10)
+        ax2.legend(fontsize=9)
+        for ax in (ax1, ax2):
+            ax.grid(True, alpha=0.3)
+            ax.xaxis.set_major_locator(MaxNLocator(integer=True))
+        fig.tight_layout()
+        paths.append(_save(fig, out_dir, "run_loss_accuracy.png"))
+    pair = measured_pair_bytes(run)
+    if pair is not None and pair.shape[0] > 1:
+        n_epochs = max(len(epochs), 1)
+        paths.append(traffic_heatmap(pair / n_epochs,
+                                     "measured halo traffic (average epoch)",
+                                     out_dir, "run_traffic_heatmap.png"))
+    return paths
+
+
+# ---------------------------------------------------------------- forecast
+
+def forecast_plots(forecast: dict, out_dir) -> list[str]:
+    """Forecast epoch time against workers, one panel per link speed, one line per method;
+    and the per-worker split of the fastest plan."""
+    Path(out_dir).mkdir(parents=True, exist_ok=True)
+    plans = forecast["plans"]
+    paths = []
+    if not plans:
+        return paths
+    links = sorted({p["link_gbps"] for p in plans})
+    methods = list(dict.fromkeys(p["method"] for p in plans))
+    colours = {m: plt.get_cmap("tab10")(i % 10) for i, m in enumerate(methods)}
+    n = len(links)
+    cols = min(n, 4)
+    rows = int(np.ceil(n / cols))
+    fig, axes = plt.subplots(rows, cols, figsize=(3.4 * cols + 1.2, 3.3 * rows + 0.4),
+                             sharey=True, squeeze=False)
+    epochs = [p["epoch_s"] for p in plans if p["epoch_s"] > 0]
+    lo, hi = (min(epochs), max(epochs)) if epochs else (1e-3, 1)
+    target = forecast.get("target_epoch_s")
+    for i, g in enumerate(links):
+        ax = axes[i // cols][i % cols]
+        for m in methods:
+            ps = sorted((p for p in plans if p["link_gbps"] == g and p["method"] == m),
+                        key=lambda p: p["workers"])
+            if ps:
+                ax.plot([p["workers"] for p in ps], [p["epoch_s"] for p in ps], marker="o",
+                        color=colours[m], label=m)
+        for p in plans:
+            if p["link_gbps"] == g and p.get("fastest"):
+                ax.plot(p["workers"], p["epoch_s"], marker="*", markersize=16, color="gold",
+                        markeredgecolor="black", linestyle="none", label="fastest")
+        if target:
+            ax.axhline(target, color="crimson", linestyle="--", linewidth=1,
+                       label=f"target {_seconds_label(target)}")
+        ax.set_yscale("log")
+        ax.set_ylim(lo / 1.5, max(hi, target or 0) * 1.5)
+        _log_seconds_axis(ax.yaxis)
+        _workers_axis(ax, [p["workers"] for p in plans])
+        ax.set_title(f"link {g:g} Gbit/s", fontsize=10)
+        ax.grid(True, which="major", alpha=0.3)
+        if i % cols == 0:
+            ax.set_ylabel("forecast time of one training epoch")
+    for j in range(n, rows * cols):
+        axes[j // cols][j % cols].set_visible(False)
+    handles, labels = {}, []
+    for ax in axes.flat:
+        for h, lab in zip(*ax.get_legend_handles_labels()):
+            handles.setdefault(lab, h)
+    fig.legend(list(handles.values()), list(handles.keys()), loc="lower center",
+               ncol=min(len(handles), 6), fontsize=9, frameon=False)
+    lat = forecast.get("latency_us")
+    fig.suptitle(f"forecast epoch time (latency {lat:g} us, speed factor "
+                 f"{forecast.get('speed_factor', 1):g})" if lat is not None
+                 else "forecast epoch time", fontsize=11)
+    fig.tight_layout(rect=(0, 0.08, 1, 1))
+    paths.append(_save(fig, out_dir, "forecast_epoch_time.png"))
+    fastest = next((p for p in plans if p.get("fastest")), None)
+    if fastest and fastest.get("per_worker"):
+        paths.append(time_bars(fastest["per_worker"],
+                               f"forecast epoch per worker: {fastest['method']}, "
+                               f"{fastest['workers']} workers, {fastest['link_gbps']:g} Gbit/s",
+                               out_dir, "forecast_worker_times.png"))
+    return paths

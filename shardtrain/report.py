@@ -1,0 +1,299 @@
+"""The HTML report: one self-contained page with the tables and pictures of a survey, a
+training run and/or a forecast.
+
+Self-contained means: inline CSS, PNGs embedded as base64 data URIs, no scripts, no links
+to anything outside the page. Which kind a JSON is, is read off its keys (`document_kind`).
+"""
+from __future__ import annotations
+
+import base64
+import html
+import json
+import tempfile
+from pathlib import Path
+
+from shardtrain.errors import InputError
+from shardtrain.tables import human_bytes
+
+KINDS = ("survey", "run", "forecast")
+
+CSS = """
+body { font: 15px/1.45 Georgia, 'DejaVu Serif', serif; color: #1d2330; background: #fbfaf7;
+       max-width: 1180px; margin: 2em auto; padding: 0 1.2em; }
+h1 { font-size: 1.7em; border-bottom: 3px double #8a7f6a; padding-bottom: .2em; }
+h2 { font-size: 1.3em; margin-top: 2.2em; color: #3b3426; }
+h3 { font-size: 1.05em; margin-top: 1.4em; color: #5b5140; }
+p.note { color: #5c5c5c; font-size: .92em; }
+table { border-collapse: collapse; margin: .6em 0 1.2em; font: 13px/1.3 'DejaVu Sans Mono',
+        Menlo, Consolas, monospace; }
+th { background: #ece6d9; text-align: left; padding: .35em .7em; border-bottom: 2px solid #8a7f6a; }
+td { padding: .25em .7em; border-bottom: 1px solid #e2dccf; }
+td.num { text-align: right; }
+tr.mark td { background: #fff2c4; font-weight: bold; }
+figure { margin: 1em 0 1.6em; }
+figure img { max-width: 100%; border: 1px solid #e2dccf; background: white; }
+figcaption { font-size: .88em; color: #5c5c5c; }
+dl.facts { display: grid; grid-template-columns: max-content auto; gap: .15em 1.2em; }
+dl.facts dt { color: #5b5140; }
+dl.facts dd { margin: 0; }
+"""
+
+
+def document_kind(doc) -> str | None:
+    """'survey', 'run' or 'forecast' by the keys a JSON has; None when it is none of these."""
+    if not isinstance(doc, dict):
+        return None
+    if doc.get("kind") in KINDS:
+        return doc["kind"]
+    plans = doc.get("plans")
+    if isinstance(plans, list) and plans and isinstance(plans[0], dict):
+        if "link_gbps" in plans[0] and "epoch_s" in plans[0]:
+            return "forecast"
+        if "shards" in plans[0] and "traffic" in plans[0]:
+            return "survey"
+    if isinstance(doc.get("epochs"), list) or (isinstance(doc.get("workers"), list)
+                                               and "traffic" in doc):
+        return "run"
+    return None
+
+
+def read_document(path) -> tuple[str, dict]:
+    """(kind, dict) of a JSON file; InputError naming the file when it is not one we know."""
+    path = Path(path)
+    try:
+        doc = json.loads(path.read_text(encoding="utf-8"))
+    except OSError as exc:
+        raise InputError(f"{path}: cannot read ({exc.strerror or exc})") from None
+    except ValueError as exc:
+        raise InputError(f"{path}:{getattr(exc, 'lineno', 1)}: not valid JSON") from None
+    kind = document_kind(doc)
+    if kind is None:
+        raise InputError(f"{path}:1: neither a survey, a run nor a forecast JSON")
+    return kind, doc
+
+
+def collect_documents(paths) -> list[tuple[str, str, dict]]:
+    """(name, kind, doc) for each JSON given, and for the JSONs inside each folder given
+    (files that are none of the three kinds are skipped there). Surveys first, then runs,
+    then forecasts, as the work flows."""
+    found = []
+    for p in map(Path, paths):
+        if p.is_dir():
+            for f in sorted(p.glob("*.json")):
+                try:
+                    kind, doc = read_document(f)
+                except InputError:
+                    continue
+                found.append((f.name, kind, doc))
+        elif p.exists():
+            kind, doc = read_document(p)
+            found.append((p.name, kind, doc))
+        else:
+            raise InputError(f"{p}: no such file or folder")
+    if not found:
+        raise InputError(f"{', '.join(map(str, paths))}: no survey, run or forecast JSON found")
+    found.sort(key=lambda t: KINDS.index(t[1]))
+    return found
+
+
+# ---------------------------------------------------------------- HTML pieces
+
+def _esc(v) -> str:
+    return html.escape(str(v), quote=True)
+
+
+def _seconds(v) -> str:
+    if v is None:
+        return "-"
+    v = float(v)
+    if v >= 1:
+        return f"{v:.2f} s"
+    if v >= 1e-3:
+        return f"{v * 1e3:.1f} ms"
+    return f"{v * 1e6:.0f} us"
+
+
+def _table(rows: list[dict], columns: list[tuple], mark_key: str | None = None) -> str:
+    """columns: (key, header, fmt callable or None). Numbers are right-aligned."""
+    out = ["<table><thead><tr>"]
+    out += [f"<th>{_esc(h)}</th>" for _, h, _ in columns]
+    out.append("</tr></thead><tbody>")
+    for r in rows:
+        cls = ' class="mark"' if mark_key and r.get(mark_key) else ""
+        out.append(f"<tr{cls}>")
+        for key, _, fmt in columns:
+            v = r.get(key)
+            text = "-" if v is None else (fmt(v) if fmt else str(v))
+            num = isinstance(v, (int, float)) and not isinstance(v, bool)
+            out.append(f'<td{" class=num" if num else ""}>{_esc(text)}</td>')
+        out.append("</tr>")
+    out.append("</tbody></table>")
+    return "".join(out)
+
+
+def _facts(pairs: list[tuple[str, object]]) -> str:
+    items = "".join(f"<dt>{_esc(k)}</dt><dd>{_esc(v)}</dd>" for k, v in pairs if v is not None)
+    return f'<dl class="facts">{items}</dl>'
+
+
+def _figures(paths: list[str]) -> str:
+    out = []
+    for p in paths:
+        data = base64.b64encode(Path(p).read_bytes()).decode("ascii")
+        caption = Path(p).stem.replace("_", " ")
+        out.append(f'<figure><img alt="{_esc(caption)}" src="data:image/png;base64,{data}">'
+                   f"<figcaption>{_esc(caption)}</figcaption></figure>")
+    return "".join(out)
+
+
+# ---------------------------------------------------------------- sections
+
+def _fmt_int(v) -> str:
+    return f"{int(v):,}"
+
+
+def survey_section(doc: dict, plot_dir: Path) -> str:
+    from shardtrain.plots import survey_plots
+
+    g, m = doc.get("graph", {}), doc.get("model", {})
+    rows = []
+    for p in doc["plans"]:
+        t, imb = p["traffic"], p.get("imbalance", {})
+        rows.append({"method": p["method"], "workers": p["workers"],
+                     "edge_cut": p.get("edge_cut"),
+                     "replication": p.get("replication_factor"),
+                     "halo": imb.get("halo", {}).get("max"),
+                     "forward": t.get("forward_bytes"), "backward": t.get("backward_bytes"),
+                     "allreduce": t.get("allreduce_bytes"),
+                     "memory": p.get("max_memory_bytes"),
+                     "owned_imb": imb.get("owned", {}).get("max_over_mean")})
+    cols = [("method", "method", None), ("workers", "workers", _fmt_int),
+            ("edge_cut", "edge cut", _fmt_int), ("replication", "replication", "{:.3f}".format),
+            ("halo", "max halo", _fmt_int), ("forward", "forward/epoch", human_bytes),
+            ("backward", "backward/epoch", human_bytes),
+            ("allreduce", "all-reduce/epoch", human_bytes),
+            ("memory", "max memory/worker", human_bytes),
+            ("owned_imb", "owned max/mean", "{:.3f}".format)]
+    dims = m.get("dims") or []
+    shape = " -> ".join(str(d) for d in ([dims[0][0]] + [d[1] for d in dims])) if dims else None
+    return (_facts([("vertices", f"{g.get('vertices', 0):,}"), ("edges", f"{g.get('edges', 0):,}"),
+                    ("GCN widths", shape), ("dtype", m.get("dtype"))])
+            + '<p class="note">Traffic is predicted payload per training epoch (array bytes, '
+              "no framing), summed over all workers.</p>"
+            + _table(rows, cols) + _figures(survey_plots(doc, plot_dir)))
+
+
+def run_section(doc: dict, plot_dir: Path) -> str:
+    from shardtrain.plots import run_plots
+
+    s, g, t = doc.get("settings", {}), doc.get("graph", {}), doc.get("traffic", {})
+    epochs = doc.get("epochs") or []
+    facts = [("vertices", f"{g['vertices']:,}" if "vertices" in g else None),
+             ("edges", f"{g['edges']:,}" if "edges" in g else None)]
+    facts += [(k, s[k]) for k in ("method", "workers", "layers", "hidden", "dtype", "epochs",
+                                  "lr", "dropout", "link") if k in s]
+    if "measured_payload_bytes" in t:
+        facts.append(("measured payload", human_bytes(t["measured_payload_bytes"])
+                      + f" ({t['measured_payload_bytes']:,} bytes)"))
+    if "predicted_payload_bytes" in t:
+        facts.append(("predicted payload", human_bytes(t["predicted_payload_bytes"])
+                      + f" ({t['predicted_payload_bytes']:,} bytes)"))
+    if epochs:
+        last = epochs[-1]
+        facts.append(("final test accuracy", f"{last.get('test_acc', float('nan')):.4f}"))
+        times = sorted(e["epoch_s"] for e in epochs if e.get("epoch_s") is not None)
+        if times:
+            facts.append(("median epoch", _seconds(times[len(times) // 2])))
+    out = [_facts(facts)]
+    if epochs:
+        step = max(1, len(epochs) // 12)
+        shown = epochs[::step]
+        if shown[-1] is not epochs[-1]:
+            shown.append(epochs[-1])
+        out.append("<h3>epochs</h3>")
+        out.append(_table(shown, [("epoch", "epoch", str), ("loss", "loss", "{:.4f}".format),
+                                  ("train_acc", "train acc", "{:.3f}".format),
+                                  ("val_acc", "val acc", "{:.3f}".format),
+                                  ("test_acc", "test acc", "{:.3f}".format),
+                                  ("epoch_s", "epoch time", _seconds)]))
+    workers = doc.get("workers") or []
+    if workers:
+        out.append("<h3>workers (whole run)</h3>")
+        out.append(_table(workers, [
+            ("worker", "worker", str), ("compute_s", "compute", _seconds),
+            ("exchange_s", "exchange", _seconds), ("allreduce_s", "all-reduce", _seconds),
+            ("wait_s", "wait", _seconds), ("cpu_s", "CPU", _seconds),
+            ("bytes_sent", "sent", human_bytes), ("bytes_received", "received", human_bytes),
+            ("peak_rss_bytes", "peak memory", human_bytes)]))
+    out.append(_figures(run_plots(doc, plot_dir)))
+    return "".join(out)
+
+
+def forecast_section(doc: dict, plot_dir: Path) -> str:
+    from shardtrain.plots import forecast_plots
+
+    rows = []
+    for p in doc["plans"]:
+        marks = []
+        if p.get("fastest"):
+            marks.append("fastest")
+        if p.get("fewest_meeting_target"):
+            marks.append("fewest workers meeting target")
+        rows.append(dict(p, link=f"{p['link_gbps']:g} Gbit/s", mark=", ".join(marks),
+                         marked=bool(marks)))
+    cols = [("method", "method", None), ("workers", "workers", _fmt_int),
+            ("link", "link", None), ("epoch_s", "epoch", _seconds),
+            ("compute_s", "compute", _seconds), ("exchange_s", "exchange", _seconds),
+            ("allreduce_s", "all-reduce", _seconds), ("wait_s", "wait (mean)", _seconds),
+            ("eval_s", "+eval", _seconds), ("bottleneck", "bound by", None),
+            ("mark", "", None)]
+    target = doc.get("target_epoch_s")
+    facts = [("latency", f"{doc.get('latency_us', 0):g} us"),
+             ("speed factor", doc.get("speed_factor")),
+             ("target epoch", _seconds(target) if target else None),
+             ("cores shared", doc.get("cores"))]
+    f = doc.get("fastest")
+    if f:
+        facts.append(("fastest", f"{f['method']}, {f['workers']} workers, "
+                                 f"{f['link_gbps']:g} Gbit/s: {_seconds(f['epoch_s'])}"))
+    m = doc.get("fewest_meeting_target")
+    if target:
+        facts.append(("fewest meeting target", f"{m['method']}, {m['workers']} workers, "
+                                               f"{m['link_gbps']:g} Gbit/s: "
+                                               f"{_seconds(m['epoch_s'])}" if m else "none"))
+    return (_facts(facts)
+            + '<p class="note">Epoch: the critical path of one training step (forward, loss, '
+              "backward, all-reduce, Adam step). +eval: the evaluation forward, not included. "
+              "Wait: mean time a worker waits for the slowest at the exchanges.</p>"
+            + _table(rows, cols, mark_key="marked") + _figures(forecast_plots(doc, plot_dir)))
+
+
+SECTIONS = {"survey": ("Survey of partition plans", survey_section),
+            "run": ("Training run", run_section),
+            "forecast": ("Forecast", forecast_section)}
+
+
+def build_html(documents: list[tuple[str, str, dict]], title: str = "shardtrain report") -> str:
+    """The page for (name, kind, doc) triples."""
+    parts = ["<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
+             f"<title>{_esc(title)}</title><style>{CSS}</style></head><body>",
+             f"<h1>{_esc(title)}</h1>"]
+    with tempfile.TemporaryDirectory(prefix="shardtrain-report-") as tmp:
+        for i, (name, kind, doc) in enumerate(documents):
+            heading, section = SECTIONS[kind]
+            plot_dir = Path(tmp) / f"{i}"
+            plot_dir.mkdir()
+            parts.append(f"<h2>{_esc(heading)} <small>({_esc(name)})</small></h2>")
+            parts.append(section(doc, plot_dir))
+    parts.append("</body></html>")
+    return "\n".join(parts) + "\n"
+
+
+def write_report(paths, out_html) -> list[tuple[str, str]]:
+    """Write the report of the JSONs (or folders of them) to out_html, atomically.
+    Returns (name, kind) of what went in."""
+    from shardtrain.files import write_text_atomic
+
+    docs = collect_documents(paths)
+    write_text_atomic(out_html, build_html(docs))
+    return [(name, kind) for name, kind, _ in docs]

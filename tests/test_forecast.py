@@ -1,0 +1,285 @@
+"""Forecast: link and ring arithmetic on hand-worked plans, monotonicity, plan marking, CLI."""
+from __future__ import annotations
+
+import importlib
+import json
+import sys
+import types
+
+import networkx as nx
+import numpy as np
+import pytest
+
+from shardtrain import forecast as fc
+from shardtrain.calibrate import from_flops, sparse_speed
+from shardtrain.errors import InputError
+from shardtrain.transport.frames import encode_header
+from shardtrain.transport.link import LinkModel
+from shardtrain.transport.ring import ring_send_elements
+
+
+# ---------------------------------------------------------------- helpers
+
+def _hop(layer, d_in, d_out):
+    from shardtrain.schedule import layer_hops
+    h = layer_hops([(d_in, d_out)])[0]
+    return {"layer": layer, "d_in": d_in, "d_out": d_out, "transform_first": h.transform_first,
+            "forward_width": h.forward_width, "backward_width": h.backward_width}
+
+
+def _model(dims, dtype="float32"):
+    from shardtrain.schedule import layer_hops
+    hops = layer_hops(dims)
+    return {"dtype": dtype, "dims": [list(d) for d in dims],
+            "parameters": sum(a * b for a, b in dims),
+            "hops": [{"layer": h.layer, "d_in": h.d_in, "d_out": h.d_out,
+                      "transform_first": h.transform_first, "forward_width": h.forward_width,
+                      "backward_width": h.backward_width} for h in hops]}
+
+
+def _plan(send_rows, owned, local_edges, params, itemsize=4):
+    """A survey-shaped plan from its send matrix (halo of p = rows others send p)."""
+    s = np.asarray(send_rows, dtype=np.int64)
+    k = s.shape[0]
+    halo = s.sum(axis=0)
+    return {"method": "hand", "workers": k,
+            "shards": [{"worker": w, "owned": int(owned[w]), "halo": int(halo[w]),
+                        "local_edges": int(local_edges[w])} for w in range(k)],
+            "traffic": {"send_rows": s.tolist(),
+                        "allreduce_bytes_per_worker":
+                            (ring_send_elements(params, k) * itemsize).tolist()}}
+
+
+def _no_overhead(monkeypatch):
+    monkeypatch.setattr(fc, "CALL_OVERHEAD_S", 0.0)
+
+
+FAST = from_flops(1e9)
+
+
+def _header(dtype, shape, kind="halo", layer=0, direction="backward"):
+    """Framing bytes of one frame, as the transport's own encoder makes them."""
+    return len(encode_header(kind=kind, epoch=0, layer=layer, direction=direction, source=0,
+                             dtype=dtype, shape=list(shape)))
+
+
+# ---------------------------------------------------------------- arithmetic
+
+def test_link_time_is_bits_over_bandwidth_plus_latency():
+    # Bandwidth definition (common practice): 1 Gbit/s moves 1e9 bits per second, so
+    # 125 MB take 1 s; 10 frames of latency 20 us add 200 us.
+    assert fc.link_seconds(125_000_000, 1.0) == pytest.approx(1.0)
+    assert fc.link_seconds(125_000_000, 10.0) == pytest.approx(0.1)
+
+
+def test_ring_allreduce_is_2_k_minus_1_steps_of_size_over_k():
+    # Patarasuk & Yuan 2009: ring all-reduce of S bytes on k ranks is 2(k-1) steps, each
+    # moving S/k bytes per rank. Worked: S = 8 MB, k = 4, 1 Gbit/s, 10 us:
+    # 6 steps x (2 MB x 8 / 1e9 + 10 us) = 6 x 16.01 ms = 96.06 ms.
+    assert fc.ring_allreduce_seconds(8e6, 4, 1.0, 10.0) == pytest.approx(6 * (0.016 + 1e-5))
+    assert fc.ring_allreduce_seconds(8e6, 1, 1.0, 10.0) == 0.0
+
+
+def test_hand_worked_two_worker_plan(monkeypatch):
+    """One GCN layer 8 -> 2 (transform first), 2 workers, worker 0 sends 30 rows, worker 1
+    sends 10; float32. Forward exchange: busiest sender is worker 0 with 30 x 2 x 4 = 240
+    payload bytes + one header; backward: worker 1 returns the gradients of its 30 halo
+    rows, also 240 bytes. Ring: 16 parameters, 2 steps of 8 elements (32 bytes) each."""
+    _no_overhead(monkeypatch)
+    model = _model([(8, 2)])
+    plan = _plan([[0, 30], [10, 0]], owned=[100, 100], local_edges=[300, 300], params=16)
+    gbps, lat = 0.01, 50.0
+    out = fc.forecast_plan(plan, model, link_gbps=gbps, latency_us=lat, calibration=FAST,
+                           dropout=0.0)
+    hdr = _header("float32", (30, 2))
+    one_hop = lat * 1e-6 + (240 + hdr) * 8 / (gbps * 1e9)
+    assert out["exchange_s"] == pytest.approx(2 * one_hop, rel=1e-12)
+    # the same number the link emulation gives for that sender's one frame
+    due = LinkModel(gbps, lat).due_times(0.0, [240 + hdr])[-1]
+    assert one_hop == pytest.approx(due, rel=1e-12)
+    ring_hdr = _header("float32", (8,), kind="allreduce", layer=-1, direction="reduce-scatter")
+    ring = 2 * (lat * 1e-6 + (32 + ring_hdr) * 8 / (gbps * 1e9))
+    assert out["allreduce_s"] == pytest.approx(ring, rel=1e-12)
+    # every worker's parts add up to the epoch
+    for w in out["per_worker"]:
+        total = w["compute_s"] + w["exchange_s"] + w["allreduce_s"] + w["wait_s"]
+        assert total == pytest.approx(out["epoch_s"], rel=1e-12)
+    # worker 0 is the busiest sender forward, worker 1 backward (it returns 30 rows)
+    hops = {s["step"]: s["busiest_worker"] for s in out["steps"]}
+    assert hops == {"forward 0": 0, "backward 0": 1, "all-reduce": 0}
+    assert out["epoch_s"] == pytest.approx(out["compute_s"] + out["exchange_s"]
+                                           + out["allreduce_s"], rel=1e-12)
+
+
+def test_compute_counts_sparse_work(monkeypatch):
+    """With dense, elementwise and mask kernels made free, compute is the sparse work:
+    nnz x width forward plus nnz x width backward, nnz = local edges + self-loops."""
+    _no_overhead(monkeypatch)
+    cal = from_flops(1e9)
+    cal["dense"][0]["flops_per_s"] = 1e30
+    cal["elementwise"]["bytes_per_s"] = 1e30
+    cal["dropout_masks"]["elements_per_s"] = 1e30
+    model = _model([(8, 2)])
+    plan = _plan([[0, 5], [5, 0]], owned=[100, 50], local_edges=[400, 100], params=16)
+    out = fc.forecast_plan(plan, model, link_gbps=10, latency_us=0, calibration=cal)
+    speed = sparse_speed(cal, 500, 2)
+    c0, c1 = (w["compute_s"] for w in out["per_worker"])
+    assert c0 == pytest.approx(2 * 500 * 2 / speed, rel=1e-9)
+    assert c1 == pytest.approx(2 * 150 * 2 / speed, rel=1e-9)
+    assert out["compute_s"] == pytest.approx(c0, rel=1e-9)   # the critical path
+
+
+def test_speed_factor_and_core_sharing_scale_compute():
+    model = _model([(16, 8), (8, 3)])
+    plan = _plan([[0, 40], [35, 0]], owned=[500, 480], local_edges=[2500, 2400], params=152)
+    base = fc.forecast_plan(plan, model, link_gbps=10, latency_us=5, calibration=FAST)
+    fast = fc.forecast_plan(plan, model, link_gbps=10, latency_us=5, calibration=FAST,
+                            speed_factor=2.0)
+    shared = fc.forecast_plan(plan, model, link_gbps=10, latency_us=5, calibration=FAST,
+                              cores=1)
+    assert fast["compute_s"] == pytest.approx(base["compute_s"] / 2, rel=1e-12)
+    assert shared["compute_s"] == pytest.approx(base["compute_s"] * 2, rel=1e-12)
+    assert shared["compute_stretch"] == 2.0
+    assert fast["exchange_s"] == pytest.approx(base["exchange_s"], rel=1e-12)
+
+
+def test_send_rows_solved_from_pair_bytes():
+    """Without send_rows, pair_bytes = S F + S^T B is solved back for S when F != B."""
+    model = _model([(4, 8), (8, 2)])     # layer 0 aggregate first: no backward exchange
+    f = sum(h["forward_width"] for h in model["hops"]) * 4
+    b = sum(h["backward_width"] for h in model["hops"]) * 4
+    s = np.array([[0, 7, 0], [3, 0, 9], [1, 4, 0]])
+    plan = {"workers": 3, "method": "x", "traffic": {"pair_bytes": (s * f + s.T * b).tolist()}}
+    assert np.array_equal(fc._send_rows(plan, model["hops"], 4), s)
+
+
+# ---------------------------------------------------------------- on a real survey
+
+def _survey_of_graph(graph, ks, settings=None):
+    """Survey 'range' plans (contiguous blocks) of `graph` for each k."""
+    if importlib.util.find_spec("shardtrain.partition") is None:   # until it lands
+        sys.modules.setdefault("shardtrain.partition", types.SimpleNamespace(METHODS={}))
+    from shardtrain.survey import SurveySettings, survey
+    settings = settings or SurveySettings(layers=2, hidden=16)
+    plans, head = [], None
+    n = graph.num_vertices
+    for k in ks:
+        a = (np.arange(n) * k // n).astype(np.int64)
+        head = survey(graph, ["range"], [k], settings, assignment=a)
+        plans += head["plans"]
+    return dict(head, plans=plans)
+
+
+@pytest.fixture(scope="module")
+def grid_survey():
+    # a 40 x 40 grid from networkx (a reference library), 4 classes, 12 features
+    from shardtrain.graph import Graph, csr_from_edges
+    g = nx.convert_node_labels_to_integers(nx.grid_2d_graph(40, 40))
+    e = np.array(g.edges(), dtype=np.int64)
+    n = g.number_of_nodes()
+    indptr, indices, _ = csr_from_edges(e[:, 0], e[:, 1], n)
+    rng = np.random.default_rng(1)
+    graph = Graph(indptr, indices, features=rng.standard_normal((n, 12)).astype(np.float32),
+                  labels=rng.integers(0, 4, n))
+    return _survey_of_graph(graph, [1, 2, 4, 8])
+
+
+def test_forecast_is_monotonic_in_link_speed(grid_survey):
+    links = [0.05, 0.5, 1, 5, 10, 25, 100]
+    out = fc.forecast(grid_survey, link_gbps_list=links, latency_us=20, calibration=FAST)
+    for k in (2, 4, 8):
+        ts = [p["epoch_s"] for p in out["plans"] if p["workers"] == k]
+        xs = [p["exchange_s"] for p in out["plans"] if p["workers"] == k]
+        assert all(a > b for a, b in zip(ts, ts[1:])), ts
+        assert all(a > b for a, b in zip(xs, xs[1:])), xs
+    one = [p for p in out["plans"] if p["workers"] == 1]
+    assert all(p["exchange_s"] == 0 and p["allreduce_s"] == 0 for p in one)
+
+
+def test_fastest_and_fewest_meeting_target_are_marked(grid_survey):
+    out = fc.forecast(grid_survey, link_gbps_list=[0.05, 100], latency_us=20,
+                      calibration=FAST)
+    times = sorted(p["epoch_s"] for p in out["plans"])
+    target = times[len(times) // 2]
+    out = fc.forecast(grid_survey, link_gbps_list=[0.05, 100], latency_us=20,
+                      calibration=FAST, target_epoch_s=target)
+    fastest = [p for p in out["plans"] if p["fastest"]]
+    assert len(fastest) == 1 and fastest[0]["epoch_s"] == times[0]
+    assert out["fastest"]["epoch_s"] == times[0]
+    meeting = [p for p in out["plans"] if p["epoch_s"] <= target]
+    fewest = min(p["workers"] for p in meeting)
+    marked = [p for p in out["plans"] if p["fewest_meeting_target"]]
+    assert len(marked) == 1 and marked[0]["workers"] == fewest
+    assert marked[0]["link_gbps"] == min(p["link_gbps"] for p in meeting
+                                         if p["workers"] == fewest)
+    none = fc.forecast(grid_survey, link_gbps_list=[1], latency_us=20, calibration=FAST,
+                       target_epoch_s=times[0] / 1e6)
+    assert none["fewest_meeting_target"] is None
+
+
+def test_bad_arguments_are_input_errors(grid_survey):
+    for kw in ({"link_gbps_list": [0]}, {"link_gbps_list": []},
+               {"latency_us": -1}, {"speed_factor": 0}, {"target_epoch_s": -2}):
+        args = dict(link_gbps_list=[1], latency_us=1, calibration=FAST)
+        args.update(kw)
+        with pytest.raises(InputError):
+            fc.forecast(grid_survey, **args)
+
+
+# ---------------------------------------------------------------- command line
+
+@pytest.fixture(scope="module")
+def survey_json(grid_survey, tmp_path_factory):
+    path = tmp_path_factory.mktemp("fc") / "survey.json"
+    path.write_text(json.dumps(grid_survey))
+    return path
+
+
+def test_cli_forecast_of_survey_json(run_cli, survey_json, tmp_path):
+    out = tmp_path / "forecast.json"
+    r = run_cli("forecast", survey_json, "--link-gbps", "1,10", "--latency-us", "20",
+                "--flops-per-worker", "2e9", "--target-epoch-s", "1", "--json", out,
+                "--workers", "2,4")
+    assert r.returncode == 0, r.stderr
+    doc = json.loads(out.read_text())
+    assert {(p["workers"], p["link_gbps"]) for p in doc["plans"]} == \
+        {(2, 1.0), (2, 10.0), (4, 1.0), (4, 10.0)}
+    for p in doc["plans"]:
+        assert set(p) >= {"method", "workers", "link_gbps", "epoch_s", "compute_s",
+                          "exchange_s", "allreduce_s", "wait_s"}
+    assert "fastest" in r.stdout and "fewest workers meeting" in r.stdout
+
+
+def test_cli_forecast_calibrates_and_keeps_the_timing(run_cli, survey_json, tmp_path):
+    cal = tmp_path / "cal.json"
+    r = run_cli("forecast", survey_json, "--link-gbps", "10", "--calibration", cal)
+    assert r.returncode == 0, r.stderr
+    first = json.loads(cal.read_text())
+    assert first["sparse"] and first["dense"] and first["threads"] == 1
+    r = run_cli("forecast", survey_json, "--link-gbps", "10", "--calibration", cal)
+    assert r.returncode == 0 and json.loads(cal.read_text()) == first
+
+
+@pytest.mark.parametrize("opts, option", [
+    (["--link-gbps", "0"], "--link-gbps"),
+    (["--link-gbps", "1,fast"], "--link-gbps"),
+    (["--latency-us", "-3"], "--latency-us"),
+    (["--speed-factor", "0"], "--speed-factor"),
+    (["--target-epoch-s", "-1"], "--target-epoch-s"),
+    (["--workers", "3"], "--workers"),
+    (["--cores", "0"], "--cores"),
+])
+def test_cli_bad_options_exit_2_with_one_line(run_cli, survey_json, tmp_path, opts, option):
+    out = tmp_path / "f.json"
+    r = run_cli("forecast", survey_json, "--flops-per-worker", "1e9", "--json", out, *opts)
+    assert r.returncode == 2
+    lines = r.stderr.strip().splitlines()
+    assert len(lines) == 1 and option in lines[0] and "Traceback" not in r.stderr
+    assert not out.exists() and list(tmp_path.iterdir()) == []
+
+
+def test_cli_rejects_a_json_that_is_not_a_survey(run_cli, tmp_path):
+    bad = tmp_path / "x.json"
+    bad.write_text('{"epochs": []}')
+    r = run_cli("forecast", bad, "--flops-per-worker", "1e9")
+    assert r.returncode == 2 and str(bad) in r.stderr and len(r.stderr.splitlines()) == 1

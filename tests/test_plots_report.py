@@ -1,0 +1,156 @@
+"""Pictures are real PNGs; the HTML report is one self-contained page."""
+from __future__ import annotations
+
+import base64
+import json
+import re
+
+import numpy as np
+import pytest
+
+from shardtrain import plots, report
+from shardtrain.calibrate import from_flops
+from shardtrain.forecast import forecast
+
+PNG_MAGIC = b"\x89PNG\r\n\x1a\n"   # the PNG signature (PNG specification, W3C/ISO 15948)
+
+
+def _survey(k_list=(2, 4, 16), methods=("range", "random")):
+    """A survey-shaped dict (the schema `shardtrain survey --json` writes) for a ring-like
+    graph of 64 vertices per worker: rows sent to the two ring neighbours (range) or to
+    everyone (random)."""
+    rng = np.random.default_rng(0)
+    plans = []
+    for m in methods:
+        for k in k_list:
+            if m == "range":
+                s = np.zeros((k, k), dtype=np.int64)
+                for p in range(k):
+                    s[p, (p + 1) % k] += 8
+                    s[p, (p - 1) % k] += 8
+            else:
+                s = rng.integers(1, 20, size=(k, k))
+            np.fill_diagonal(s, 0)
+            pair = (s * 16 * 4 + s.T * 16 * 4).tolist()
+            halo = s.sum(axis=0)
+            plans.append({
+                "method": m, "workers": k, "edge_cut": int(s.sum()),
+                "replication_factor": float(1 + halo.sum() / (64 * k)),
+                "max_memory_bytes": 50 * 2**20,
+                "shards": [{"worker": w, "owned": 64, "halo": int(halo[w]), "local_edges": 256,
+                            "memory_bytes": 50 * 2**20} for w in range(k)],
+                "traffic": {"forward_bytes": int(s.sum() * 64), "backward_bytes": int(s.sum() * 64),
+                            "allreduce_bytes": 1000 * k, "send_rows": s.tolist(),
+                            "pair_bytes": pair,
+                            "allreduce_bytes_per_worker": [1000] * k},
+                "imbalance": {"owned": {"max_over_mean": 1.0}, "halo": {"max": float(halo.max())}}})
+    hops = [{"layer": 0, "d_in": 32, "d_out": 16, "transform_first": True, "forward_width": 16,
+             "backward_width": 16},
+            {"layer": 1, "d_in": 16, "d_out": 4, "transform_first": True, "forward_width": 4,
+             "backward_width": 4}]
+    return {"graph": {"vertices": 64 * max(k_list), "edges": 1000, "classes": 4},
+            "model": {"layers": 2, "hidden": 16, "dtype": "float32", "dims": [[32, 16], [16, 4]],
+                      "parameters": 32 * 16 + 16 * 4, "hops": hops},
+            "plans": plans}
+
+
+def _run(k=4, epochs=30):
+    rng = np.random.default_rng(2)
+    loss = np.exp(-np.arange(epochs) / 10) + 0.2
+    return {"settings": {"workers": k, "method": "range", "epochs": epochs},
+            "graph": {"vertices": 1000, "edges": 5000},
+            "epochs": [{"epoch": e, "loss": float(loss[e]), "train_acc": 0.5 + e / 80,
+                        "val_acc": 0.45 + e / 90, "test_acc": 0.44 + e / 95, "epoch_s": 0.01}
+                       for e in range(epochs)],
+            "traffic": {"measured_payload_bytes": 123456, "predicted_payload_bytes": 123456,
+                        "pair_bytes": (rng.integers(0, 1000, (k, k)) * (1 - np.eye(k))).tolist()},
+            "workers": [{"worker": w, "compute_s": 1.0 + 0.1 * w, "exchange_s": 0.3,
+                         "allreduce_s": 0.1, "wait_s": 0.2 - 0.05 * w, "bytes_sent": 1000,
+                         "bytes_received": 900, "cpu_s": 1.4, "peak_rss_bytes": 80 * 2**20}
+                        for w in range(k)]}
+
+
+def _forecast():
+    return forecast(_survey(), link_gbps_list=[1, 10, 100], latency_us=20,
+                    calibration=from_flops(2e9), target_epoch_s=1e-3)
+
+
+def _assert_pngs(paths, n):
+    assert len(paths) == n
+    for p in paths:
+        with open(p, "rb") as fh:
+            data = fh.read()
+        assert data.startswith(PNG_MAGIC) and len(data) > 5000, p
+
+
+def test_survey_plots_write_pngs(tmp_path):
+    _assert_pngs(plots.survey_plots(_survey(), tmp_path), 2)
+
+
+def test_heatmap_plan_is_the_largest_with_least_traffic():
+    chosen = plots.pick_heatmap_plan(_survey()["plans"])
+    assert chosen["workers"] == 16 and chosen["method"] == "range"
+
+
+def test_heatmap_for_64_workers(tmp_path):
+    m = np.random.default_rng(0).integers(0, 10**6, (64, 64))
+    np.fill_diagonal(m, 0)
+    _assert_pngs([plots.traffic_heatmap(m, "64 workers", tmp_path, "h.png")], 1)
+
+
+def test_run_plots_write_pngs(tmp_path):
+    _assert_pngs(plots.run_plots(_run(), tmp_path), 3)
+
+
+def test_forecast_plots_write_pngs(tmp_path):
+    _assert_pngs(plots.forecast_plots(_forecast(), tmp_path), 2)
+
+
+def test_document_kinds_are_detected_by_keys():
+    assert report.document_kind(_survey()) == "survey"
+    assert report.document_kind(_run()) == "run"
+    assert report.document_kind(_forecast()) == "forecast"
+    assert report.document_kind({"something": 1}) is None
+
+
+def _check_self_contained(text: str) -> None:
+    # no link to anything outside the page: no URLs, no external src/href, no scripts
+    # (searched outside the embedded base64 data, where any letters may occur)
+    markup = re.sub(r"data:image/png;base64,[A-Za-z0-9+/=]+", "data:", text)
+    assert not re.search(r"https?:|ftp:|//[a-z]|url\(|@import", markup, flags=re.I)
+    assert "<script" not in text.lower() and "href=" not in text.lower()
+    srcs = re.findall(r'src="([^"]*)"', text)
+    assert srcs and all(s.startswith("data:image/png;base64,") for s in srcs)
+    for s in srcs:
+        assert base64.b64decode(s.split(",", 1)[1]).startswith(PNG_MAGIC)
+
+
+def test_report_of_a_folder_is_self_contained(run_cli, tmp_path):
+    folder = tmp_path / "run"
+    folder.mkdir()
+    (folder / "survey.json").write_text(json.dumps(_survey()))
+    (folder / "run.json").write_text(json.dumps(_run()))
+    (folder / "forecast.json").write_text(json.dumps(_forecast()))
+    (folder / "other.json").write_text("{}")   # not ours: skipped in a folder
+    out = tmp_path / "report.html"
+    r = run_cli("report", folder, "--html", out)
+    assert r.returncode == 0, r.stderr
+    text = out.read_text()
+    _check_self_contained(text)
+    assert len(re.findall(r"<img ", text)) == 2 + 3 + 2
+    for heading in ("Survey of partition plans", "Training run", "Forecast"):
+        assert heading in text
+    # the survey comes first, then the run, then the forecast
+    assert text.index("Survey of") < text.index("Training run") < text.index("<h2>Forecast")
+
+
+def test_report_bad_inputs_exit_2(run_cli, tmp_path):
+    out = tmp_path / "r.html"
+    bad = tmp_path / "bad.json"
+    bad.write_text("{not json")
+    for args in ([bad], [tmp_path / "missing.json"], [tmp_path]):
+        r = run_cli("report", *args, "--html", out)
+        assert r.returncode == 2 and len(r.stderr.strip().splitlines()) == 1, r.stderr
+        assert not out.exists()
+    r = run_cli("report", bad, "--html", tmp_path / "nofolder" / "r.html")
+    assert r.returncode == 2 and "--html" in r.stderr
