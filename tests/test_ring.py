@@ -8,14 +8,16 @@ import threading
 import numpy as np
 import pytest
 
-from shardtrain.transport.ring import ring_allreduce, ring_chunks, ring_send_elements
+from shardtrain.transport.ring import (ring_allreduce, ring_chunks, ring_frames,
+                                      ring_send_elements, ring_steps)
 
 KS = (1, 2, 3, 5, 8)
 SIZES = (0, 1, 2, 4, 7, 1000, 10_007)     # odd sizes, and sizes below k
 
 
-def simulate(inputs: list[np.ndarray]) -> tuple[list[np.ndarray], np.ndarray]:
-    """Run ring_allreduce on k threads joined by queues; return results and elements sent."""
+def simulate(inputs: list[np.ndarray], steps=None) -> tuple[list[np.ndarray], np.ndarray]:
+    """Run ring_allreduce on k threads joined by queues; return results and elements sent.
+    `steps`, when given, collects (direction, step, sent, received) per rank."""
     k = len(inputs)
     bufs = [x.copy() for x in inputs]
     links = {(r, (r + 1) % k): queue.Queue() for r in range(k)}
@@ -25,6 +27,9 @@ def simulate(inputs: list[np.ndarray]) -> tuple[list[np.ndarray], np.ndarray]:
     def run(rank):
         def sendrecv(dst, send_view, src, recv_view, direction, step):
             sent[rank] += send_view.size
+            if steps is not None:
+                steps.setdefault(rank, []).append((direction, step, send_view.size,
+                                                   recv_view.size))
             links[rank, dst].put((direction, step, send_view.copy()))
             got_dir, got_step, data = links[src, rank].get(timeout=10)
             assert (got_dir, got_step) == (direction, step)
@@ -85,6 +90,16 @@ def test_traffic_is_two_k_minus_one_over_k_and_predicted_exactly(k, size):
     # Patarasuk & Yuan 2009: 2(k-1)/k of the vector per rank; the two chunks a rank does not
     # send differ from size/k by less than one element each.
     assert np.all(np.abs(sent - 2 * (k - 1) / k * size) < 2)
+
+
+@pytest.mark.parametrize("k", KS)
+@pytest.mark.parametrize("size", (3, 1000, 10_007))
+def test_ring_steps_describe_what_the_algorithm_does(k, size):
+    steps = {}
+    simulate([np.ones(size) for _ in range(k)], steps)
+    for r in range(k):
+        assert steps.get(r, []) == ring_steps(size, k, r)
+        assert len(ring_steps(size, k, r)) == ring_frames(k)
 
 
 def test_rejects_non_contiguous_buffers():
