@@ -7,6 +7,7 @@ best of --repeat rounds is kept (cases interleaved). Cases:
   raw_1mib      the same with the buffer raised to 1 MiB (F_SETPIPE_SZ)
   transport     PipeTransport.exchange of one float32 array (pipes made by make_pipe_mesh)
   transport_bidirectional  both ranks send 64 MiB at once; aggregate payload throughput
+  small_exchange_us  mean time of one exchange call of 64 bytes each way (fixed cost)
 Goal (issue 3): transport payload throughput >= 80% of the raw pipe's (ratio_transport_vs_raw,
 measured against the better raw case).
 
@@ -29,6 +30,7 @@ from shardtrain.profile import Profile
 from shardtrain.transport.pipes import PIPE_BYTES, PipeTransport, _grow_pipe, make_pipe_mesh
 
 MIB = 1 << 20
+SMALL_CALLS = 2000
 BUFFERS = (("default", 0), ("256kib", MIB // 4), ("1mib", MIB))   # transport pipe buffers
 
 
@@ -77,6 +79,15 @@ def _run(rank, plan, nbytes, repeat, raw_pipes, meshes, barrier, result_conn):
                 transports[case.rsplit("_", 1)[1]].exchange(
                     out, inc, kind="bench", epoch=0, layer=0, direction="forward")
             times[case] = min(times[case], time.perf_counter() - t0)
+    # Small frames: the fixed cost of one exchange call (both ways, 64 bytes each).
+    small, small_in = np.ones(8), np.empty(8)
+    t = transports["1mib"]
+    barrier.wait()
+    t0 = time.perf_counter()
+    for i in range(SMALL_CALLS):
+        t.exchange({peer: small}, {peer: small_in}, kind="bench", epoch=i, layer=0,
+                   direction="forward")
+    times["small_exchange"] = (time.perf_counter() - t0) / SMALL_CALLS
     if rank == 1:
         result_conn.send_bytes(json.dumps(times).encode())
     for t in transports.values():
@@ -113,6 +124,7 @@ def main(argv=None) -> int:
     times = json.loads(result_reader.recv_bytes())
     child.join(60)
 
+    small_us = times.pop("small_exchange") * 1e6
     gbps = {case: nbytes / t / 1e9 for case, t in times.items()}
     for name, _ in BUFFERS:
         gbps[f"transport_bidirectional_{name}"] *= 2      # payload moved both ways at once
@@ -130,6 +142,7 @@ def main(argv=None) -> int:
         "ratio_bidirectional_vs_raw": gbps[chosen.replace("transport", "transport_bidirectional")]
                                       / raw_best,
         "goal_ratio": 0.8,
+        "small_exchange_us": small_us,
         "machine": {"cpus": os.cpu_count(), "python": platform.python_version()},
     }
     out = Path(args.out)

@@ -245,11 +245,13 @@ def test_oversized_frame_is_refused_before_its_payload():
     t.close()
 
 
-def _threads_pair(link=None):
-    """Two transports in two threads of this process (the poll loop releases the GIL)."""
-    ends = make_pipe_mesh(2, {(0, 1)})
-    ts = [PipeTransport(r, 2, ends[r], Profile(r), timeout_s=20, link=link) for r in range(2)]
-    return ts
+def _threads(k=2, link=None):
+    """k transports in k threads of this process (the poll loop releases the GIL)."""
+    ends = make_pipe_mesh(k, {(p, q) for p in range(k) for q in range(p + 1, k)})
+    return [PipeTransport(r, k, ends[r], Profile(r), timeout_s=20, link=link) for r in range(k)]
+
+
+_threads_pair = _threads
 
 
 def _both(ts, fn):
@@ -260,7 +262,7 @@ def _both(ts, fn):
             fn(r, ts[r])
         except BaseException as exc:
             errors.append(exc)
-    threads = [threading.Thread(target=run, args=(r,)) for r in range(2)]
+    threads = [threading.Thread(target=run, args=(r,)) for r in range(len(ts))]
     for th in threads:
         th.start()
     for th in threads:
@@ -324,5 +326,55 @@ def test_emulated_link_is_no_faster_than_its_bandwidth():
     link_s = B * 8 / 1e8
     assert stamps["end", 0] - stamps["start", 0] >= link_s      # the sender's call
     assert stamps["end", 1] - stamps["start", 0] >= link_s      # arrival at the receiver
+    for t in ts:
+        t.close()
+
+
+def _frame_bytes(array, **meta):
+    return array.nbytes + len(frames.encode_header(dtype=array.dtype, shape=array.shape,
+                                                   **meta))
+
+
+def test_emulated_link_serialises_a_workers_frames_and_adds_latency():
+    # One interface per worker (see link.py): worker 0's frames to 1 and 2 leave one after
+    # the other, so the second (in peer order) cannot arrive before latency + both frames'
+    # bytes at 0.2 Gbit/s. Lower bounds only.
+    link = LinkModel(gbps=0.2, latency_us=30_000)
+    ts = _threads(3, link=link)
+    a, b = np.zeros(50_000 // 8), np.zeros(100_000 // 8)
+    meta = {"kind": "halo", "epoch": 0, "layer": 0, "direction": "forward", "source": 0}
+    stamps = {}
+
+    def fn(r, t):
+        out = {1: a, 2: b} if r == 0 else {}
+        inc = {0: np.empty_like(a if r == 1 else b)} if r else {}
+        stamps["start", r] = time.perf_counter()
+        t.exchange(out, inc, kind="halo", epoch=0, layer=0, direction="forward")
+        stamps["end", r] = time.perf_counter()
+    _both(ts, fn)
+    first = 0.03 + _frame_bytes(a, **meta) * 8 / 2e8
+    second = 0.03 + (_frame_bytes(a, **meta) + _frame_bytes(b, **meta)) * 8 / 2e8
+    assert stamps["end", 1] - stamps["start", 0] >= first
+    assert stamps["end", 2] - stamps["start", 0] >= second
+    assert stamps["end", 0] - stamps["start", 0] >= second
+    for t in ts:
+        t.close()
+
+
+def test_emulated_link_delays_every_all_reduce_step():
+    # Ring all-reduce of k = 3: 2(k-1) = 4 steps, each one frame to the right neighbour, so
+    # at least 4 latencies (Patarasuk & Yuan 2009 step count).
+    link = LinkModel(gbps=10, latency_us=20_000)
+    ts = _threads(3, link=link)
+    stamps = {}
+
+    def fn(r, t):
+        buf = np.full(30, float(r))
+        stamps["start", r] = time.perf_counter()
+        t.allreduce_sum(buf, epoch=0)
+        stamps["end", r] = time.perf_counter()
+        assert np.all(buf == 3.0)
+    _both(ts, fn)
+    assert min(stamps["end", r] - stamps["start", r] for r in range(3)) >= 4 * 0.02 * 0.999
     for t in ts:
         t.close()

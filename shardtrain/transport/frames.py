@@ -49,7 +49,13 @@ def encode_header(*, kind: str, epoch: int, layer: int, direction: str, source: 
                   dtype, shape) -> bytes:
     """Length prefix + msgpack header for an array of `dtype` and `shape`: the framing bytes."""
     name = dtype_name(dtype)
+    for key, value in (("kind", kind), ("direction", direction)):
+        if not isinstance(value, str) or not 0 < len(value) <= MAX_NAME_CHARS:
+            raise ValueError(f"frame {key} must be a string of 1..{MAX_NAME_CHARS} "
+                             f"characters, got {value!r:.80}")
     shape = [int(s) for s in shape]
+    if len(shape) > MAX_DIMS or min(shape, default=0) < 0:
+        raise ValueError(f"frame shape {shape} must have at most {MAX_DIMS} non-negative sizes")
     nbytes = int(np.prod(shape, dtype=np.int64)) * DTYPES[name].itemsize
     body = msgpack.packb({"kind": str(kind), "epoch": int(epoch), "layer": int(layer),
                           "direction": str(direction), "source": int(source), "dtype": name,

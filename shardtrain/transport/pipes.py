@@ -219,6 +219,7 @@ class PipeTransport:
         pending = len(by_fd)
         held: list[_Send] = []
         last_progress = start
+        first = True
         while pending:
             now = time.perf_counter()
             if held:                              # emulated link time is not idleness
@@ -229,7 +230,10 @@ class PipeTransport:
             link_left = min(s.due for s in held) - now if held else math.inf
             limit = min(idle_left, link_left)
             t0 = time.perf_counter()
-            events = poller.poll(max(0, math.ceil(limit * 1000)))
+            if first:                             # try everything once before sleeping
+                events, first = [(fd, 0) for fd in by_fd], False
+            else:
+                events = poller.poll(max(0, math.ceil(limit * 1000)))
             t1 = time.perf_counter()
             if events or link_left > idle_left:
                 self.profile.add_wait(t1 - t0)
