@@ -1,0 +1,335 @@
+"""Train a GCN: on the whole graph in one process, or partitioned over worker processes.
+
+`shardtrain train GRAPH --reference` trains single-process (the oracle).
+`shardtrain train GRAPH --workers K --method M` partitions the graph, builds the shards in a
+temporary directory and trains with one process per shard, exchanging halo rows over pipes;
+`shardtrain train SHARD_DIR` trains on the shards written by `shardtrain split`.
+Per epoch: loss, train/val/test accuracy; at the end a per-worker table of time, traffic and
+memory, and the measured payload against the survey's prediction. --seed seeds the split
+masks the graph does not give, the initial weights and the dropout masks.
+"""
+from __future__ import annotations
+
+import shutil
+import sys
+import tempfile
+from pathlib import Path
+
+import numpy as np
+
+from shardtrain.cli.common import add_graph_arguments, load_graph_from_args
+from shardtrain.errors import InputError
+from shardtrain.settings import DTYPES, TrainSettings
+
+MANIFEST_NAME = "shards.json"
+WORKER_COLUMNS = [
+    ("worker", "worker", None),
+    ("compute_s", "compute s", "{:.3f}"),
+    ("exchange_s", "exchange s", "{:.3f}"),
+    ("allreduce_s", "all-reduce s", "{:.3f}"),
+    ("wait_s", "wait s", "{:.3f}"),
+    ("bytes_sent", "sent", None),
+    ("bytes_received", "received", None),
+    ("cpu_s", "CPU s", "{:.3f}"),
+    ("peak_rss_bytes", "peak RSS", None),
+]
+
+
+def _number(option: str, kind):
+    def convert(text: str):
+        try:
+            return kind(text)
+        except ValueError:
+            raise InputError(f"{option} {text!r}: not {'an integer' if kind is int else 'a number'}"
+                             ) from None
+    return convert
+
+
+def add_arguments(parser) -> None:
+    add_graph_arguments(parser)
+    mode = parser.add_mutually_exclusive_group()
+    mode.add_argument("--reference", action="store_true",
+                      help="train on the whole graph in one process (no shards, no workers)")
+    mode.add_argument("--workers", type=_number("--workers", int), metavar="K",
+                      help="partition GRAPH into K shards and train with K worker processes")
+    split = parser.add_mutually_exclusive_group()
+    split.add_argument("--method", metavar="M", help="partition method (with --workers)")
+    split.add_argument("--assignment", metavar="FILE",
+                       help="vertex -> worker file to partition by (with --workers)")
+    parser.add_argument("--imbalance", type=_number("--imbalance", float), default=0.03,
+                        help="allowed partition imbalance (default 0.03)")
+    d = TrainSettings()
+    parser.add_argument("--layers", type=_number("--layers", int), default=d.layers,
+                        help=f"GCN layers (default {d.layers})")
+    parser.add_argument("--hidden", type=_number("--hidden", int), default=d.hidden,
+                        help=f"hidden width (default {d.hidden})")
+    parser.add_argument("--dropout", type=_number("--dropout", float), default=d.dropout,
+                        help=f"dropout rate on every layer's input (default {d.dropout})")
+    parser.add_argument("--lr", type=_number("--lr", float), default=d.lr,
+                        help=f"Adam learning rate (default {d.lr})")
+    parser.add_argument("--weight-decay", type=_number("--weight-decay", float),
+                        default=d.weight_decay,
+                        help=f"L2 penalty on the first layer's weights (default {d.weight_decay})")
+    parser.add_argument("--epochs", type=_number("--epochs", int), default=d.epochs,
+                        help=f"training epochs (default {d.epochs})")
+    parser.add_argument("--dtype", default=d.dtype,
+                        help=f"{' or '.join(DTYPES)} (default {d.dtype})")
+    parser.add_argument("--bias", action="store_true", help="add a bias to every layer")
+    parser.add_argument("--timeout", type=_number("--timeout", float), default=60.0,
+                        metavar="S", help="deadline of every halo/all-reduce receive (default 60)")
+    parser.add_argument("--json", metavar="OUT", help="write the run's account as JSON")
+    parser.add_argument("--weights", metavar="OUT.npz", help="write the final weights")
+    parser.add_argument("--init-weights", metavar="IN.npz", help="start from these weights")
+    parser.add_argument("--predictions", metavar="OUT.csv",
+                        help="write vertex,predicted,label (label empty where unknown)")
+    parser.add_argument("--quiet", action="store_true", help="no per-epoch output")
+
+
+# ---------------------------------------------------------------- validation
+
+def _settings(args) -> TrainSettings:
+    return TrainSettings(layers=args.layers, hidden=args.hidden, dropout=args.dropout,
+                         lr=args.lr, weight_decay=args.weight_decay, epochs=args.epochs,
+                         seed=args.seed, dtype=args.dtype, bias=bool(args.bias)).validate()
+
+
+def _check_output(path, option: str, suffix: str | None = None) -> None:
+    if path is None:
+        return
+    p = Path(path)
+    if suffix and p.suffix.lower() != suffix:
+        raise InputError(f"{option} {path}: the file name must end in {suffix}")
+    if p.is_dir():
+        raise InputError(f"{option} {path}: is a directory")
+    if not p.parent.is_dir():
+        raise InputError(f"{option} {path}: folder {p.parent} does not exist")
+
+
+def _is_shard_dir(path: str) -> bool:
+    return Path(path).is_dir() and (Path(path) / MANIFEST_NAME).is_file()
+
+
+def _check_options(args) -> tuple[TrainSettings, bool]:
+    """Everything that can be checked without reading the graph; returns (settings,
+    whether the positional argument is a shard directory)."""
+    settings = _settings(args)
+    if not args.timeout > 0:
+        raise InputError(f"--timeout {args.timeout:g}: must be > 0")
+    if not 0 <= args.imbalance < 1:
+        raise InputError(f"--imbalance {args.imbalance:g}: must lie in [0, 1)")
+    _check_output(args.json, "--json", ".json")
+    _check_output(args.weights, "--weights", ".npz")
+    _check_output(args.predictions, "--predictions", ".csv")
+    if args.init_weights is not None and not Path(args.init_weights).is_file():
+        raise InputError(f"--init-weights {args.init_weights}: no such file")
+    shard_dir = _is_shard_dir(args.graph)
+    if shard_dir:
+        for flag, given in (("--reference", args.reference), ("--method", args.method),
+                            ("--assignment", args.assignment),
+                            ("--features", args.features), ("--labels", args.labels)):
+            if given:
+                raise InputError(f"{flag}: not allowed with a shard directory ({args.graph})")
+    elif Path(args.graph).is_dir():
+        raise InputError(f"{args.graph}: a directory without {MANIFEST_NAME} "
+                         f"(not a shard directory)")
+    elif not args.reference:
+        if args.workers is None:
+            raise InputError("--workers: give --workers K (or --reference) to train on a graph")
+        if args.method is None and args.assignment is None:
+            raise InputError("--method: give --method M or --assignment FILE with --workers")
+    if args.workers is not None and args.workers < 1:
+        raise InputError(f"--workers {args.workers}: must be at least 1")
+    if args.method is not None:
+        from shardtrain.partition import METHODS
+        if args.method not in METHODS:
+            raise InputError(f"--method {args.method!r}: expected one of {', '.join(METHODS)}")
+    if args.assignment is not None and not Path(args.assignment).is_file():
+        raise InputError(f"--assignment {args.assignment}: no such file")
+    return settings, shard_dir
+
+
+def load_init_weights(path, dims, settings: TrainSettings):
+    """Params from an .npz (no pickle), checked against the model: InputError naming it."""
+    from shardtrain import model
+
+    try:
+        with np.load(path, allow_pickle=False) as bundle:
+            arrays = {key: bundle[key] for key in bundle.files}
+    except (OSError, ValueError) as exc:
+        raise InputError(f"{path}: not a readable .npz of weights: "
+                         f"{' '.join(str(exc).split())}") from None
+    return model.params_from_arrays(arrays, dims, settings.bias, settings.np_dtype,
+                                    source=str(path))
+
+
+# ---------------------------------------------------------------- progress
+
+class _Progress:
+    """A tqdm bar on a terminal, one line per epoch otherwise, nothing with --quiet."""
+
+    def __init__(self, epochs: int, quiet: bool):
+        self.bar = None
+        self.quiet = quiet
+        if not quiet and sys.stderr.isatty():
+            from tqdm import tqdm
+            self.bar = tqdm(total=epochs, unit="epoch", file=sys.stderr)
+        self.epochs = epochs
+
+    def __call__(self, rec: dict) -> None:
+        if self.bar is not None:
+            self.bar.update(1)
+            self.bar.set_postfix(loss=f"{rec['loss']:.4f}", val=_acc(rec["val_acc"]))
+        elif not self.quiet:
+            print(epoch_line(rec, self.epochs), flush=True)
+
+    def close(self) -> None:
+        if self.bar is not None:
+            self.bar.close()
+
+
+def _acc(v) -> str:
+    return "-" if v is None else f"{v:.3f}"
+
+
+def epoch_line(rec: dict, epochs: int) -> str:
+    return (f"epoch {rec['epoch']:>{len(str(epochs))}}/{epochs}  loss {rec['loss']:.6f}  "
+            f"train {_acc(rec['train_acc'])}  val {_acc(rec['val_acc'])}  "
+            f"test {_acc(rec['test_acc'])}  {rec['epoch_s']:.3f} s")
+
+
+# ---------------------------------------------------------------- outputs
+
+def predictions_csv(predicted: np.ndarray, labels: np.ndarray | None) -> str:
+    """vertex,predicted,label lines, label empty where unknown (vectorised text)."""
+    n = predicted.shape[0]
+    ids = np.arange(n).astype(str)
+    pred = predicted.astype(str)
+    if labels is None:
+        lab = np.full(n, "", dtype="<U1")
+    else:
+        lab = np.where(labels >= 0, labels.astype(str), "")
+    rows = np.char.add(np.char.add(np.char.add(np.char.add(ids, ","), pred), ","), lab)
+    return "vertex,predicted,label\n" + ("\n".join(rows.tolist()) + "\n" if n else "")
+
+
+def write_outputs(args, result, labels, doc: dict) -> None:
+    from shardtrain import model
+    from shardtrain.files import save_npz_atomic, write_json_atomic, write_text_atomic
+
+    if args.weights:
+        save_npz_atomic(args.weights, **model.params_to_arrays(result.params))
+    if args.predictions:
+        write_text_atomic(args.predictions, predictions_csv(result.predictions, labels))
+    if args.json:
+        write_json_atomic(args.json, doc)
+
+
+def _worker_table(rows: list[dict]) -> str:
+    from shardtrain.tables import format_table, human_bytes
+
+    cols = [(key, head, human_bytes if key in ("bytes_sent", "bytes_received",
+                                               "peak_rss_bytes") else fmt)
+            for key, head, fmt in WORKER_COLUMNS]
+    return format_table(rows, cols)
+
+
+def _traffic_lines(traffic: dict) -> list[str]:
+    from shardtrain.tables import human_bytes
+
+    m, p = traffic["measured_payload_bytes"], traffic["predicted_payload_bytes"]
+    verdict = "equal" if m == p else f"DIFFERENT by {m - p:+,} bytes"
+    return [f"payload: measured {m:,} bytes ({human_bytes(m)}), predicted {p:,} bytes "
+            f"({verdict}); framing {traffic['measured_framing_bytes']:,} bytes in "
+            f"{traffic['frames']:,} frames"]
+
+
+# ---------------------------------------------------------------- the command
+
+def run(args) -> int:
+    settings, from_shards = _check_options(args)
+    from shardtrain import model
+
+    progress = None
+    tmp_dir = None
+    try:
+        if from_shards:
+            from shardtrain.coordinator import model_dims_of, shard_dir_facts
+
+            facts = shard_dir_facts(args.graph)
+            if args.workers is not None and args.workers != facts.workers:
+                raise InputError(f"--workers {args.workers}: {args.graph} holds "
+                                 f"{facts.workers} shards")
+            dims = model_dims_of(facts, settings)
+            init = (load_init_weights(args.init_weights, dims, settings)
+                    if args.init_weights else None)
+            graph_doc = {"shard_dir": str(args.graph), "num_vertices": facts.num_vertices,
+                         "workers": facts.workers}
+            shard_dir, labels = args.graph, None
+        else:
+            from shardtrain.reference import check_trainable, model_dims
+
+            loaded = load_graph_from_args(args)
+            graph = loaded.graph
+            check_trainable(graph)
+            dims = model_dims(graph, settings)
+            init = (load_init_weights(args.init_weights, dims, settings)
+                    if args.init_weights else None)
+            assignment = None
+            if args.assignment is not None:
+                from shardtrain.partition import load_assignment
+                assignment = load_assignment(args.assignment, graph.num_vertices)
+            graph_doc = {"source": loaded.source, "num_vertices": graph.num_vertices,
+                         "num_edges": graph.num_edges, "notes": list(loaded.notes)}
+            labels = graph.labels
+            if not args.reference:
+                tmp_dir = tempfile.mkdtemp(prefix="shardtrain-shards-")
+                shard_dir = str(Path(tmp_dir) / "shards")
+                _build_shard_dir(graph, args, assignment, shard_dir, dims)
+        progress = _Progress(settings.epochs, args.quiet)
+        if args.reference:
+            from shardtrain.reference import train_reference
+            result = train_reference(graph, settings, init_params=init, on_epoch=progress)
+        else:
+            from shardtrain.coordinator import train_partitioned
+            result = train_partitioned(shard_dir, settings, timeout_s=args.timeout,
+                                       init_params=init, on_epoch=progress)
+            if labels is None:
+                labels = result.labels
+        progress.close()
+        progress = None
+    finally:
+        if progress is not None:
+            progress.close()
+        if tmp_dir is not None:
+            shutil.rmtree(tmp_dir, ignore_errors=True)
+
+    doc = {"settings": settings.to_dict(), "graph": graph_doc,
+           "mode": "reference" if args.reference else "partitioned",
+           "epochs": result.epochs}
+    if not args.reference:
+        doc["traffic"] = result.traffic
+        doc["workers"] = result.workers
+        doc["profile"] = result.profile
+    write_outputs(args, result, labels, doc)
+    if not args.quiet:
+        last = result.epochs[-1]
+        print(f"final: loss {last['loss']:.6f}  train {_acc(last['train_acc'])}  "
+              f"val {_acc(last['val_acc'])}  test {_acc(last['test_acc'])}")
+        if not args.reference:
+            print(_worker_table(result.workers))
+            for line in _traffic_lines(result.traffic):
+                print(line)
+    return 0
+
+
+def _build_shard_dir(graph, args, assignment, shard_dir: str, dims) -> None:
+    """Partition (or take the given assignment) and save the shards for the workers."""
+    from shardtrain.shards import build_shards, save_shards
+
+    k = args.workers
+    if assignment is None:
+        from shardtrain.partition import partition
+        assignment = partition(graph, args.method, k, seed=args.seed, imbalance=args.imbalance)
+    shards = build_shards(graph, assignment, k)
+    save_shards(shard_dir, shards, meta={"num_classes": dims[-1][1], "input_dim": dims[0][0],
+                                         "method": args.method or "assignment"})

@@ -1,0 +1,182 @@
+"""Partitioned multi-process training equals single-process training.
+
+Source of truth: the single-process reference trainer (`shardtrain.reference`), whose own
+tests check its gradients against central finite differences and its setup against the
+GCN paper (Kipf & Welling 2017). In float64 the partitioned run differs from it only by
+the order of floating-point sums, so every epoch's loss and the final weights must agree
+to a relative 1e-9 (DESIGN.md), with dropout on.
+"""
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from shardtrain import model
+from shardtrain.coordinator import ShardDirFacts, train_partitioned
+from shardtrain.graph import Graph, csr_from_edges
+from shardtrain.reference import train_reference
+from shardtrain.settings import TrainSettings
+from shardtrain.shards import Shard, build_shards
+
+RTOL = 1e-9
+WORKER_COUNTS = (2, 3, 7)      # and 1, below: with one worker every method is the same
+
+
+# ---------------------------------------------------------------- shard files for the workers
+
+def save_shards_npz(folder, shards) -> None:
+    """Plain .npz per shard (no pickle), read back by `load_shard_npz` in the worker."""
+    for s in shards:
+        np.savez(folder / f"{s.worker}.npz", worker=s.worker, workers=s.workers,
+                 num_vertices_global=s.num_vertices_global, num_train_global=s.num_train_global,
+                 owned=s.owned, halo=s.halo, halo_ptr=s.halo_ptr, send_idx=s.send_idx,
+                 send_ptr=s.send_ptr, adj_data=s.adj.data, adj_indices=s.adj.indices,
+                 adj_indptr=s.adj.indptr, adj_shape=np.asarray(s.adj.shape),
+                 features=s.features, labels=s.labels, train_mask=s.train_mask,
+                 val_mask=s.val_mask, test_mask=s.test_mask)
+
+
+def load_shard_npz(folder, worker: int) -> Shard:
+    import scipy.sparse as sp
+    from pathlib import Path
+
+    with np.load(Path(folder) / f"{worker}.npz", allow_pickle=False) as z:
+        adj = sp.csr_matrix((z["adj_data"], z["adj_indices"], z["adj_indptr"]),
+                            shape=tuple(z["adj_shape"]))
+        ints = {k: int(z[k]) for k in ("worker", "workers", "num_vertices_global",
+                                        "num_train_global")}
+        arrays = {k: z[k] for k in ("owned", "halo", "halo_ptr", "send_idx", "send_ptr",
+                                    "features", "labels", "train_mask", "val_mask", "test_mask")}
+    return Shard(adj=adj, **ints, **arrays)
+
+
+def run_partitioned(tmp_path, graph, assignment, k, settings, **kw):
+    shards = build_shards(graph, assignment, k)
+    save_shards_npz(tmp_path, shards)
+    facts = ShardDirFacts(k, graph.num_vertices, graph.num_classes, graph.input_dim)
+    return train_partitioned(tmp_path, settings, facts=facts, load_shard=load_shard_npz,
+                             timeout_s=30, **kw), shards
+
+
+# ---------------------------------------------------------------- data
+
+def depot_graph(n=300, classes=4, features=24, seed=3) -> Graph:
+    """A small random delivery network: routes mostly between depots of the same role."""
+    rng = np.random.default_rng(seed)
+    role = rng.integers(0, classes, n)
+    src = rng.integers(0, n, 6 * n)
+    dst = np.where(rng.random(6 * n) < 0.7,
+                   rng.permutation(n)[np.searchsorted(np.sort(role), role[src]) % n],
+                   rng.integers(0, n, 6 * n))
+    indptr, indices, _ = csr_from_edges(src, dst, n)
+    x = rng.normal(size=(n, features)) + 0.5 * np.eye(classes, features)[role]
+    train = np.zeros(n, bool)
+    train[rng.choice(n, 40, replace=False)] = True
+    rest = np.flatnonzero(~train)
+    val = np.zeros(n, bool)
+    val[rest[:80]] = True
+    test = ~(train | val)
+    labels = role.astype(np.int64)
+    labels[rng.choice(rest[80:], 10, replace=False)] = -1     # some depots without a role
+    test &= labels >= 0
+    return Graph(indptr, indices, x, labels, train, val, test)
+
+
+_ASSIGNMENTS: dict = {}
+
+
+def assignments(graph: Graph, k: int) -> dict[str, np.ndarray]:
+    if k not in _ASSIGNMENTS:
+        _ASSIGNMENTS[k] = _assignments(graph, k)
+    return _ASSIGNMENTS[k]
+
+
+def _assignments(graph: Graph, k: int) -> dict[str, np.ndarray]:
+    """Every partition method the package offers (and a random and a range split)."""
+    n = graph.num_vertices
+    out = {"random": np.random.default_rng(k).integers(0, k, n),
+           "range": np.arange(n) * k // n}
+    try:
+        from shardtrain.partition import METHODS, partition
+    except ImportError:
+        return out
+    for name in METHODS:
+        out[name] = np.asarray(partition(graph, name, k, seed=0, imbalance=0.03))
+    return out
+
+
+def _method_names():
+    try:
+        from shardtrain.partition import METHODS
+        return sorted(set(METHODS) | {"random", "range"})
+    except ImportError:
+        return ["random", "range"]
+
+
+SETTINGS = TrainSettings(layers=3, hidden=16, dropout=0.5, lr=0.01, weight_decay=5e-4,
+                         epochs=3, seed=7, dtype="float64", bias=True)
+
+
+@pytest.fixture(scope="module")
+def graph():
+    return depot_graph()
+
+
+@pytest.fixture(scope="module")
+def reference(graph):
+    return train_reference(graph, SETTINGS)
+
+
+def _assert_same_run(run, ref):
+    assert len(run.epochs) == len(ref.epochs)
+    for got, want in zip(run.epochs, ref.epochs):
+        assert got["epoch"] == want["epoch"]
+        assert got["loss"] == pytest.approx(want["loss"], rel=RTOL, abs=0)
+        for split in ("train_acc", "val_acc", "test_acc"):
+            assert got[split] == want[split]
+    want_w = model.params_to_arrays(ref.params)
+    got_w = model.params_to_arrays(run.params)
+    assert sorted(got_w) == sorted(want_w)
+    for name, w in want_w.items():
+        scale = np.max(np.abs(w))
+        assert np.max(np.abs(got_w[name] - w)) <= RTOL * scale, name
+    np.testing.assert_array_equal(run.predictions, ref.predictions)
+
+
+@pytest.mark.parametrize("method", _method_names())
+@pytest.mark.parametrize("k", WORKER_COUNTS)
+def test_partitioned_equals_reference(tmp_path, graph, reference, method, k):
+    # reference: single-process trainer (checked against finite differences in its tests)
+    assignment = assignments(graph, k)[method]
+    run, _ = run_partitioned(tmp_path, graph, assignment, k, SETTINGS)
+    _assert_same_run(run, reference)
+    assert run.traffic["measured_payload_bytes"] == run.traffic["predicted_payload_bytes"]
+    assert [w["worker"] for w in run.workers] == list(range(k))
+
+
+def test_one_worker_equals_reference(tmp_path, graph, reference):
+    # reference: single-process trainer; one shard, no halo, all-reduce of one rank
+    run, _ = run_partitioned(tmp_path, graph, np.zeros(graph.num_vertices, np.int64), 1,
+                             SETTINGS)
+    _assert_same_run(run, reference)
+    assert run.traffic["measured_payload_bytes"] == 0 == run.traffic["predicted_payload_bytes"]
+
+
+def test_warm_start_equals_reference_warm_start(tmp_path, graph):
+    # reference: the single-process trainer started from the same weights
+    settings = TrainSettings(**{**SETTINGS.to_dict(), "epochs": 2, "bias": False})
+    dims = [(24, 16), (16, 16), (16, 4)]
+    rng = np.random.default_rng(11)
+    init = [(rng.normal(size=d) * 0.1, None) for d in dims]
+    ref = train_reference(graph, settings, init_params=init)
+    run, _ = run_partitioned(tmp_path, graph, np.arange(graph.num_vertices) % 2, 2, settings,
+                             init_params=init)
+    _assert_same_run(run, ref)
+
+
+def test_two_layer_paper_shape_without_dropout_equals_reference(tmp_path, graph):
+    # reference: the single-process trainer; 2 layers and 16 hidden as in Kipf & Welling 2017
+    settings = TrainSettings(layers=2, hidden=16, dropout=0.0, epochs=2, dtype="float64")
+    ref = train_reference(graph, settings)
+    run, _ = run_partitioned(tmp_path, graph, np.arange(graph.num_vertices) % 3, 3, settings)
+    _assert_same_run(run, ref)
