@@ -131,3 +131,43 @@ def test_wrong_buffer_shape_or_dtype_is_named():
 def test_unsendable_dtype_is_refused_at_the_sender():
     with pytest.raises(ValueError, match="cannot be sent"):
         frames.encode_frame(np.zeros(3, dtype=object), **META)
+
+
+# Property checks (hypothesis): any array survives the round trip, and any truncation or
+# single flipped byte in the framing is either caught as a FrameError naming the peer or
+# decodes to a frame that is still self-consistent (flips inside values are not detectable).
+from hypothesis import given, settings, strategies as st  # noqa: E402
+
+_shapes = st.lists(st.integers(0, 5), min_size=0, max_size=3)
+
+
+@settings(max_examples=60, deadline=None)
+@given(shape=_shapes, dtype=st.sampled_from(sorted(frames.DTYPES)), seed=st.integers(0, 99))
+def test_any_array_round_trips(shape, dtype, seed):
+    a = (np.random.default_rng(seed).standard_normal(shape) * 100).astype(dtype)
+    header, b = frames.decode_frame(_frame(a), peer=3)
+    assert b.shape == a.shape and b.tobytes() == a.tobytes()
+
+
+@settings(max_examples=60, deadline=None)
+@given(data=st.data())
+def test_any_truncation_is_a_frame_error(data):
+    buf = _frame(np.arange(7.0))
+    cut = data.draw(st.integers(0, len(buf) - 1))
+    with pytest.raises(FrameError, match=r"^frame from worker 3: "):
+        frames.decode_frame(buf[:cut], peer=3)
+
+
+@settings(max_examples=80, deadline=None)
+@given(data=st.data())
+def test_any_corrupt_framing_byte_is_caught_or_consistent(data):
+    buf = bytearray(_frame(np.arange(7.0)))
+    (n,) = struct.unpack("<I", buf[:4])
+    pos = data.draw(st.integers(0, 4 + n - 1))
+    buf[pos] ^= data.draw(st.integers(1, 255))
+    try:
+        header, array = frames.decode_frame(bytes(buf), peer=3)
+    except FrameError as exc:
+        assert str(exc).startswith("frame from worker 3: ")
+    else:
+        assert array.nbytes == header["nbytes"] and header["source"] == 3

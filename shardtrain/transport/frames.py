@@ -154,7 +154,9 @@ def encode_frame(array: np.ndarray, *, kind: str, epoch: int, layer: int, direct
                  source: int) -> bytes:
     """A whole frame as one bytes object (tests and small messages; the pipes send without
     building it)."""
-    array = np.ascontiguousarray(array)
+    array = np.asarray(array)
+    if not array.flags.c_contiguous:          # (np.ascontiguousarray would make 0-d 1-d)
+        array = np.ascontiguousarray(array)
     head = encode_header(kind=kind, epoch=epoch, layer=layer, direction=direction,
                          source=source, dtype=array.dtype, shape=array.shape)
     return head + array.tobytes()

@@ -11,6 +11,9 @@ measured run):
   then (it sleeps the difference; if the real pipe was slower, nothing is added).
 - Not emulated: contention at the receiver (several senders into one interface), switch
   queues, packet loss, or any cost of the pipe itself beyond the max() above.
+- Profile: the sender's held-back time counts in its "exchange"/"allreduce" phase (it is
+  transfer time on the emulated link); a receiver blocked waiting for a frame that is not yet
+  due counts it as "wait", as it would for any slow peer.
 So for a call that sends B bytes in total, the sender's part ends no earlier than
 latency + 8 B / bandwidth after it started, and a receiver cannot finish before its slowest
 sender's frame is due.

@@ -20,7 +20,8 @@ single poll loop over non-blocking descriptors: it writes from memoryviews of th
 reads straight into the caller's buffers, so there is no copy in user space and no deadlock
 however large a frame is against the pipe buffer. A peer that neither sends nor reads for
 `timeout_s` seconds, that closes its pipe, or that sends a frame other than the one expected
-raises a RunError (FrameError for bad frames) naming it.
+raises a RunError (FrameError for bad frames) naming it. After a RunError the pipes may hold
+part of a frame: the transport is not usable any more, and the run must stop.
 """
 from __future__ import annotations
 
@@ -103,7 +104,9 @@ def _wire_array(array) -> np.ndarray:
     frames.dtype_name(array.dtype)           # ValueError for a dtype that may not be sent
     if array.dtype.byteorder == ">":
         array = array.astype(array.dtype.newbyteorder("<"))
-    return np.ascontiguousarray(array)
+    if not array.flags.c_contiguous:          # copy only when needed (and keep 0-d 0-d)
+        array = np.ascontiguousarray(array)
+    return array
 
 
 class _Send:
