@@ -135,21 +135,22 @@ def _check_positive(name: str, value, *, allow_zero=False) -> None:
 
 
 def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: float,
-                  calibration: dict, speed_factor: float = 1.0, cores: int | None = None,
+                  calibration: dict, speed_factor: float = 1.0, cores: float | None = None,
                   dropout: float = 0.5, local_pipes: bool = False,
                   classes: int | None = None) -> dict:
     """Forecast one training epoch (and one evaluation forward) of a survey plan.
 
     `model`: the survey's "model" (dtype, hops). `cores`: the plan runs on one machine with
-    that many cores (compute stretched by workers / cores when there are more workers).
+    that many cores (compute stretched by workers / cores when there are more workers; a
+    fraction models cores that other processes share).
     `local_pipes`: the link is emulated on local pipes, whose own speed (calibrated) also
     caps the bandwidth. Returns the plan-level critical path and a per-worker split.
     """
     _check_positive("--link-gbps", link_gbps)
     _check_positive("--latency-us", latency_us, allow_zero=True)
     _check_positive("--speed-factor", speed_factor)
-    if cores is not None and cores < 1:
-        raise InputError(f"--cores: must be >= 1, got {cores}")
+    if cores is not None and not cores > 0:
+        raise InputError(f"--cores: must be above 0, got {cores}")
     k = int(plan["workers"])
     dtype = model["dtype"]
     b = np.dtype(dtype).itemsize

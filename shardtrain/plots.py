@@ -197,9 +197,10 @@ def measured_pair_bytes(run: dict) -> np.ndarray | None:
     """k x k payload bytes of the halo exchanges the run measured, from whichever form the
     run JSON holds: a matrix under traffic['pair_bytes'] or a list of per-pair counters."""
     traffic = run.get("traffic") or {}
-    for key in ("measured_pair_bytes", "pair_bytes"):
-        if key in traffic:
-            return np.asarray(traffic[key], dtype=np.float64)
+    for where in (traffic, run.get("profile") or {}):
+        for key in ("measured_pair_bytes", "pair_payload_bytes", "pair_bytes"):
+            if key in where:
+                return np.asarray(where[key], dtype=np.float64)
     rows = traffic.get("breakdown") or traffic.get("pairs") or traffic.get("counters")
     k = len(run.get("workers") or [])
     if not rows or not k:
