@@ -180,3 +180,18 @@ def test_model_api_partitioned_in_threads_equals_the_reference():
         for (w, b), (rw, rb) in zip(params, ref.params):
             np.testing.assert_allclose(w, rw, rtol=1e-9, atol=1e-12)
             np.testing.assert_allclose(b, rb, rtol=1e-9, atol=1e-12)
+
+
+def test_locality_order_changes_only_the_order_of_sums():
+    """Reverse Cuthill-McKee numbering inside the reference is invisible in float64."""
+    _, graph = _small_graph(n=80)
+    settings = TrainSettings(epochs=8, dtype="float64", bias=True, seed=5)
+    a = train_reference(graph, settings, reorder=True)
+    b = train_reference(graph, settings, reorder=False)
+    np.testing.assert_allclose([r["loss"] for r in a.epochs], [r["loss"] for r in b.epochs],
+                               rtol=1e-12)
+    for (wa, ba), (wb, bb) in zip(a.params, b.params):
+        np.testing.assert_allclose(wa, wb, rtol=1e-10, atol=1e-13)
+        np.testing.assert_allclose(ba, bb, rtol=1e-10, atol=1e-13)
+    assert np.array_equal(a.predictions, b.predictions)
+    assert [r["val_acc"] for r in a.epochs] == [r["val_acc"] for r in b.epochs]
