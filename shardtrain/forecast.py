@@ -176,16 +176,27 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
         bandwidth = min(link_gbps, pipe_speed(calibration) * 8 / 1e9)
     latency = latency_us * 1e-6
 
+    parts = {}   # seconds per kind of kernel, per worker, of the timeline being built
+
+    def count(kind, seconds):
+        seconds = np.broadcast_to(np.asarray(seconds, dtype=np.float64), (k,))
+        parts[kind] = parts.get(kind, np.zeros(k)) + seconds
+        return seconds
+
     def sparse(width):
         speeds = np.array([sparse_speed(calibration, int(z), int(width)) for z in nnz])
-        return (nnz * width / speeds + CALL_OVERHEAD_S) * slow
+        return count("sparse", (nnz * width / speeds + CALL_OVERHEAD_S) * slow)
 
     def gemm(rows, d_in, d_out):
-        return (2.0 * rows * d_in * d_out / dense_speed(calibration, d_in, d_out)
-                + CALL_OVERHEAD_S) * slow
+        return count("dense", (2.0 * rows * d_in * d_out / dense_speed(calibration, d_in, d_out)
+                               + CALL_OVERHEAD_S) * slow)
 
     def passes(nbytes):
-        return (np.asarray(nbytes, dtype=np.float64) / elem + CALL_OVERHEAD_S) * slow
+        return count("elementwise",
+                     (np.asarray(nbytes, dtype=np.float64) / elem + CALL_OVERHEAD_S) * slow)
+
+    def draw_masks(elements):
+        return count("dropout_masks", elements / masks * slow)
 
     def link(rows, width, msgs):
         if k == 1:
@@ -199,7 +210,7 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
         for h in hops:
             l, d_in, d_out, fw = h["layer"], h["d_in"], h["d_out"], h["forward_width"]
             if train and dropout > 0:
-                tl.compute(n * d_in / masks * slow + passes(n * d_in * 3 * b))  # mask, h*mask
+                tl.compute(draw_masks(n * d_in) + passes(n * d_in * 3 * b))     # mask, h*mask
             if h["transform_first"]:
                 tl.compute(gemm(n, d_in, d_out))
             if k > 1 and fw:
@@ -221,7 +232,7 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
                 tl.compute(sparse(d_out))                                      # dT = Â^T dZ
                 if k > 1 and bw:
                     tl.exchange(f"backward {l}", link(back_rows, bw, bwd_msgs))
-                    tl.compute(passes(sent_rows * bw * 3 * b))                 # add received
+                    tl.compute(passes(sent_rows * bw * 3 * b + n * bw * 2 * b))  # add, copy
                 tl.compute(gemm(n, d_in, d_out))                               # dW
                 if l > 0:
                     tl.compute(gemm(n, d_out, d_in))                           # dH
@@ -232,7 +243,7 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
                     tl.compute(sparse(d_in))                                   # Â^T dA
                     if k > 1 and bw:
                         tl.exchange(f"backward {l}", link(back_rows, bw, bwd_msgs))
-                        tl.compute(passes(sent_rows * bw * 3 * b))
+                        tl.compute(passes(sent_rows * bw * 3 * b + n * bw * 2 * b))
             if l > 0:
                 tl.compute(passes(n * d_in * 5 * b))                           # dropout, ReLU'
 
@@ -252,6 +263,7 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
         train.compute(passes(np.full(k, size_bytes * (k - 1) / k * 3)))     # chunk adds
     train.compute(passes(np.full(k, params * b * 16.0)))                       # Adam step
     t = train.totals()
+    train_parts, parts = parts, {}
     ev = _Timeline(k)
     forward(ev, train=False)
     e = ev.totals()
@@ -271,6 +283,7 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
         "max_wait_s": float(t["wait"].max()),
         "eval_s": e["total"], "epoch_with_eval_s": t["total"] + e["total"],
         "bottleneck": max(path, key=path.get),
+        "compute_parts_s": {kind: float(v.max()) for kind, v in train_parts.items()},
         "compute_stretch": stretch,
         "effective_gbps": float(bandwidth),
         "steps": t["hops"],
