@@ -289,3 +289,187 @@ def shard_stats(shards: list[Shard]) -> dict[str, np.ndarray]:
         local_edges[s.worker] = s.adj.nnz - s.num_owned   # every owned row stores one loop
         send_rows[s.worker] = np.diff(s.send_ptr)
     return {"owned": owned, "halo": halo, "local_edges": local_edges, "send_rows": send_rows}
+
+
+# ----------------------------------------------------------------------------- shard directories
+
+MANIFEST = "shards.json"
+FORMAT = "shardtrain-shards"
+FORMAT_VERSION = 1
+_VERTEX_DATA = ("features", "labels", "train_mask", "val_mask", "test_mask")
+_INDEX_ARRAYS = ("owned", "halo", "halo_ptr", "send_idx", "send_ptr")
+
+
+def shard_file_name(worker: int) -> str:
+    return f"shard-{worker:04d}.npz"
+
+
+def save_shards(path, shards: list[Shard], *, meta: dict, overwrite: bool = False) -> dict:
+    """Write a shard directory atomically: `shards.json` plus one `shard-NNNN.npz` per worker.
+
+    `meta` carries what the shards do not know: method, seed, graph_fingerprint, and
+    optionally num_edges, input_dim and num_classes (else taken from the shards). Every
+    file is written into a temporary sibling directory that is renamed into place at the
+    end (shardtrain.files.atomic_directory). Returns the manifest.
+    """
+    from shardtrain.files import atomic_directory, save_npz_atomic, write_json_atomic
+
+    if not shards:
+        raise InputError(f"{path}: no shards to save")
+    k = shards[0].workers
+    if [s.worker for s in shards] != list(range(k)):
+        raise InputError(f"{path}: expected the shards of workers 0..{k - 1} in order")
+    first = shards[0]
+    features = [s.features for s in shards if s.features is not None]
+    labels = [s.labels for s in shards if s.labels is not None and s.labels.size]
+    local_edges = sum(s.adj.nnz - s.num_owned for s in shards)
+    input_dim = features[0].shape[1] if features else meta.get("input_dim")
+    num_classes = meta.get("num_classes")
+    if num_classes is None:
+        num_classes = max(int(l.max()) for l in labels) + 1 if labels else 0
+    manifest = {
+        "format": FORMAT,
+        "version": FORMAT_VERSION,
+        "workers": k,
+        "num_vertices": first.num_vertices_global,
+        "num_edges": int(meta.get("num_edges", local_edges // 2)),
+        "num_train_global": first.num_train_global,
+        "input_dim": None if input_dim is None else int(input_dim),
+        "num_classes": int(num_classes),
+        "feature_dtype": features[0].dtype.str if features else None,
+        "graph_fingerprint": meta.get("graph_fingerprint"),
+        "method": meta.get("method"),
+        "seed": meta.get("seed"),
+        "files": [shard_file_name(s.worker) for s in shards],
+        "meta": {key: value for key, value in meta.items()},
+    }
+    with atomic_directory(path, overwrite=overwrite) as tmp:
+        for s in shards:
+            arrays = {name: getattr(s, name) for name in _INDEX_ARRAYS}
+            arrays.update(adj_indptr=s.adj.indptr, adj_indices=s.adj.indices,
+                          adj_data=s.adj.data, adj_shape=np.asarray(s.adj.shape, dtype=np.int64),
+                          header=np.asarray([s.worker, s.workers, s.num_vertices_global,
+                                             s.num_train_global], dtype=np.int64))
+            for name in _VERTEX_DATA:
+                value = getattr(s, name)
+                if value is not None:
+                    arrays[name] = value
+            save_npz_atomic(tmp / shard_file_name(s.worker), **arrays)
+        write_json_atomic(tmp / MANIFEST, manifest)
+    return manifest
+
+
+def load_manifest(path) -> dict:
+    """The manifest of a shard directory, checked for format and basic consistency."""
+    import json
+    from pathlib import Path
+
+    file = Path(path) / MANIFEST
+    if not file.is_file():
+        raise InputError(f"{file}: no such file (not a shard directory)")
+    try:
+        manifest = json.loads(file.read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, ValueError) as exc:
+        raise InputError(f"{file}: not a readable JSON manifest ({exc})") from None
+    if not isinstance(manifest, dict) or manifest.get("format") != FORMAT:
+        raise InputError(f"{file}: not a shard manifest (format is not {FORMAT!r})")
+    if manifest.get("version") != FORMAT_VERSION:
+        raise InputError(f"{file}: manifest version {manifest.get('version')!r}, "
+                         f"this shardtrain reads version {FORMAT_VERSION}")
+    k = manifest.get("workers")
+    files = manifest.get("files")
+    if not isinstance(k, int) or k < 1 or not isinstance(files, list) or len(files) != k:
+        raise InputError(f"{file}: 'workers' and 'files' disagree or are missing")
+    for key in ("num_vertices", "num_train_global"):
+        if not isinstance(manifest.get(key), int) or manifest[key] < 0:
+            raise InputError(f"{file}: '{key}' missing or not a non-negative integer")
+    return manifest
+
+
+def load_shard(path, worker: int) -> Shard:
+    """Load one worker's shard from a shard directory, without reading the others."""
+    from pathlib import Path
+
+    manifest = load_manifest(path)
+    k = manifest["workers"]
+    if not 0 <= worker < k:
+        raise InputError(f"{Path(path) / MANIFEST}: has workers 0..{k - 1}, not {worker}")
+    file = Path(path) / manifest["files"][worker]
+    if Path(manifest["files"][worker]).name != manifest["files"][worker]:
+        raise InputError(f"{Path(path) / MANIFEST}: file name {manifest['files'][worker]!r} "
+                         f"is not a plain name")
+    try:
+        with np.load(file, allow_pickle=False) as z:
+            arrays = {name: z[name] for name in z.files}
+    except FileNotFoundError:
+        raise InputError(f"{file}: no such file (shard {worker} missing)") from None
+    except (OSError, ValueError, EOFError) as exc:
+        raise InputError(f"{file}: not a readable shard ({exc})") from None
+    return _shard_from_arrays(file, arrays, manifest, worker)
+
+
+def _shard_from_arrays(file, arrays: dict, manifest: dict, worker: int) -> Shard:
+    def need(name: str) -> np.ndarray:
+        if name not in arrays:
+            raise InputError(f"{file}: array '{name}' missing")
+        return arrays[name]
+
+    def bad(what: str):
+        return InputError(f"{file}: {what}")
+
+    header = need("header")
+    if header.shape != (4,) or header.dtype != np.int64:
+        raise bad("'header' must be 4 int64 values")
+    w, k, n, n_train = (int(x) for x in header)
+    if (w, k, n, n_train) != (worker, manifest["workers"], manifest["num_vertices"],
+                              manifest["num_train_global"]):
+        raise bad(f"header (worker {w}, workers {k}, vertices {n}, train {n_train}) "
+                  f"does not match the manifest")
+    for name in _INDEX_ARRAYS + ("adj_indptr", "adj_indices"):
+        arr = need(name)
+        if arr.ndim != 1 or not np.issubdtype(arr.dtype, np.integer):
+            raise bad(f"'{name}' must be a 1-D integer array")
+    owned, halo = need("owned"), need("halo")
+    n_own, n_halo = owned.shape[0], halo.shape[0]
+    for ptr_name, target, size in (("halo_ptr", "halo", n_halo),
+                                   ("send_ptr", "send_idx", need("send_idx").shape[0])):
+        ptr = need(ptr_name)
+        if ptr.shape != (k + 1,) or ptr[0] != 0 or ptr[-1] != size or np.any(np.diff(ptr) < 0):
+            raise bad(f"'{ptr_name}' must be {k + 1} non-decreasing offsets from 0 to "
+                      f"len({target}) = {size}")
+    ids = np.concatenate([owned, halo])
+    if ids.size and (ids.min() < 0 or ids.max() >= n):
+        raise bad(f"vertex ids outside 0..{n - 1}")
+    send_idx = need("send_idx")
+    if send_idx.size and (send_idx.min() < 0 or send_idx.max() >= n_own):
+        raise bad(f"'send_idx' entries outside the {n_own} owned rows")
+    shape = need("adj_shape")
+    if shape.shape != (2,) or tuple(int(x) for x in shape) != (n_own, n_own + n_halo):
+        raise bad(f"'adj_shape' must be ({n_own}, {n_own + n_halo})")
+    indptr, indices, data = need("adj_indptr"), need("adj_indices"), need("adj_data")
+    if (indptr.shape != (n_own + 1,) or indptr[0] != 0 or indptr[-1] != indices.shape[0]
+            or data.shape != indices.shape or data.dtype != np.float64
+            or np.any(np.diff(indptr) < 0)):
+        raise bad("adjacency arrays (adj_indptr, adj_indices, adj_data float64) are inconsistent")
+    if indices.size and (indices.min() < 0 or indices.max() >= n_own + n_halo):
+        raise bad("'adj_indices' outside the local columns")
+    adj = sp.csr_matrix((data, indices, indptr), shape=(n_own, n_own + n_halo))
+    if not adj.has_sorted_indices:
+        raise bad("'adj_indices' are not sorted within each row")
+    shard = Shard(worker=w, workers=k, num_vertices_global=n, num_train_global=n_train,
+                  owned=owned.astype(np.int64, copy=False), halo=halo.astype(np.int64, copy=False),
+                  halo_ptr=need("halo_ptr").astype(np.int64, copy=False), adj=adj,
+                  send_idx=send_idx.astype(np.int64, copy=False),
+                  send_ptr=need("send_ptr").astype(np.int64, copy=False))
+    for name in _VERTEX_DATA:
+        if name in arrays:
+            value = arrays[name]
+            if value.shape[:1] != (n_own,):
+                raise bad(f"'{name}' has {value.shape[:1]} rows, expected {n_own}")
+            if name.endswith("_mask") and value.dtype != np.bool_:
+                raise bad(f"'{name}' must be boolean")
+            setattr(shard, name, value)
+    if shard.features is not None and manifest.get("input_dim") not in (None, shard.features.shape[1]):
+        raise bad(f"features are {shard.features.shape[1]} wide, the manifest says "
+                  f"{manifest['input_dim']}")
+    return shard

@@ -127,3 +127,97 @@ def test_bad_assignment_rejected():
         build_shards(g, np.array([0, 1, 2, 0, 0]), 2)
     with pytest.raises(InputError):
         build_shards(g, np.zeros(4, dtype=np.int64), 1)
+
+
+# ----------------------------------------------------------------------------- shard directories
+
+def _small_graph():
+    G = nx.gnp_random_graph(60, 0.1, seed=11)
+    rng = np.random.default_rng(4)
+    g = graph_from_nx(G, features=rng.normal(size=(60, 5)).astype(np.float32),
+                      labels=rng.integers(0, 3, 60), train_mask=rng.random(60) < 0.3,
+                      val_mask=rng.random(60) < 0.3, test_mask=rng.random(60) < 0.3)
+    return g, rng.integers(0, 3, 60)
+
+
+def _same(a: Shard, b: Shard) -> bool:
+    arrays = ("owned", "halo", "halo_ptr", "send_idx", "send_ptr") + VERTEX_DATA
+    return (all(np.array_equal(getattr(a, f), getattr(b, f)) for f in arrays)
+            and (a.adj != b.adj).nnz == 0 and a.adj.has_sorted_indices and b.adj.has_sorted_indices
+            and (a.worker, a.workers, a.num_vertices_global, a.num_train_global)
+            == (b.worker, b.workers, b.num_vertices_global, b.num_train_global))
+
+
+VERTEX_DATA = ("features", "labels", "train_mask", "val_mask", "test_mask")
+
+
+def test_shard_directory_round_trip(tmp_path):
+    from shardtrain.graph import fingerprint
+    from shardtrain.shards import load_manifest, load_shard, save_shards
+    g, a = _small_graph()
+    shards = build_shards(g, a, 3)
+    out = tmp_path / "shards"
+    save_shards(out, shards, meta={"method": "random", "seed": 4,
+                                   "graph_fingerprint": fingerprint(g)})
+    assert sorted(p.name for p in out.iterdir()) == [
+        "shard-0000.npz", "shard-0001.npz", "shard-0002.npz", "shards.json"]
+    assert [p.name for p in tmp_path.iterdir()] == ["shards"]     # no temporary left behind
+    m = load_manifest(out)
+    assert (m["workers"], m["num_vertices"], m["num_edges"], m["input_dim"], m["num_classes"]) \
+        == (3, 60, g.num_edges, 5, int(g.labels.max()) + 1)
+    assert m["graph_fingerprint"] == fingerprint(g) and m["feature_dtype"] == "<f4"
+    for s in shards:
+        assert _same(load_shard(out, s.worker), s)
+
+
+def test_shard_directory_refuses_bad_content(tmp_path):
+    from shardtrain.errors import InputError
+    from shardtrain.shards import load_shard, save_shards
+    g, a = _small_graph()
+    out = tmp_path / "shards"
+    save_shards(out, build_shards(g, a, 3), meta={"method": "random"})
+    with pytest.raises(InputError, match="not empty"):
+        save_shards(out, build_shards(g, a, 3), meta={})
+    with pytest.raises(InputError, match="workers 0..2, not 3"):
+        load_shard(out, 3)
+    z = dict(np.load(out / "shard-0001.npz"))
+    z["halo_ptr"] = z["halo_ptr"][:-1]
+    np.savez(out / "shard-0001.npz", **z)
+    with pytest.raises(InputError, match=r"shard-0001\.npz: 'halo_ptr'"):
+        load_shard(out, 1)
+    (out / "shard-0002.npz").write_bytes(b"not a zip")
+    with pytest.raises(InputError, match=r"shard-0002\.npz: not a readable shard"):
+        load_shard(out, 2)
+    (out / "shard-0000.npz").unlink()
+    with pytest.raises(InputError, match=r"shard-0000\.npz: no such file"):
+        load_shard(out, 0)
+    (out / "shards.json").write_text("{")
+    with pytest.raises(InputError, match=r"shards\.json: not a readable JSON"):
+        load_shard(out, 0)
+
+
+def test_split_command_writes_a_loadable_directory(tmp_path, run_cli):
+    from shardtrain.shards import load_manifest, load_shard
+    g, a = _small_graph()
+    src = np.repeat(np.arange(60), np.diff(g.indptr))
+    graph_file = tmp_path / "depots.npz"
+    np.savez(graph_file, edges=np.stack([src, g.indices], axis=1), features=g.features,
+             labels=g.labels, train_mask=g.train_mask, val_mask=g.val_mask, test_mask=g.test_mask)
+    out = tmp_path / "out"
+    r = run_cli("split", graph_file, "--workers", 3, "--method", "metis", "--out", out)
+    assert r.returncode == 0, r.stderr
+    assert "edge cut" in r.stdout and "replication factor" in r.stdout
+    assert load_manifest(out)["method"] == "metis"
+    assert load_shard(out, 2).num_owned > 0
+    # bad inputs: exit status 2, one line on stderr naming the option or file, no output
+    assignment = tmp_path / "parts.txt"
+    assignment.write_text("0\n" * 59 + "zz\n")
+    for args, needle in [(["--workers", 3, "--method", "nope"], "--method"),
+                         (["--workers", 61, "--method", "metis"], "--workers"),
+                         (["--assignment", assignment], "parts.txt:60")]:
+        bad_out = tmp_path / "bad"
+        r = run_cli("split", graph_file, *args, "--out", bad_out)
+        assert r.returncode == 2 and needle in r.stderr, r.stderr
+        assert len(r.stderr.strip().splitlines()) == 1 and "Traceback" not in r.stderr
+        assert not bad_out.exists()
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["depots.npz", "out", "parts.txt"]
