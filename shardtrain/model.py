@@ -209,7 +209,8 @@ def forward(params: Params, x: np.ndarray, hops: list[LayerHop], propagate: Prop
     """Logits of the rows this process owns, and what backward needs.
 
     `drop(layer, h)` must be elementwise and linear in h (h * mask, or the identity);
-    backward applies the same drop to the gradient of the dropped input.
+    backward applies the same drop to the gradient of the dropped input. `propagate` must
+    return a fresh array (the bias is added to it in place).
     """
     h = x
     cache = {"drop": drop, "h": [], "hd": [], "a": []}
