@@ -128,8 +128,9 @@ def dropout_mask(seed: int, epoch: int, layer: int, global_ids: np.ndarray, widt
 
     Counter-based: entry (v, c) depends only on (seed, epoch, layer, global id v, column c),
     so any subset of vertices in any order gets exactly the rows the full graph gets.
-    Each vertex gets a 64-bit SplitMix64 key; each pair of columns one 32-bit MurmurHash3
-    finaliser (Appleby) of key + pair * constant, split into two 16-bit uniforms. The kept
+    Each vertex gets a 32-bit key (high half of SplitMix64 of a key of (seed, epoch, layer)
+    plus id * golden ratio); each pair of columns one 32-bit MurmurHash3 finaliser (Appleby)
+    of vertex key + pair * constant, split into two 16-bit uniforms. The kept
     probability is therefore 1 - rate rounded to a multiple of 2^-16 (exact for 0.5), and the
     scale is the inverse of that kept probability. Little-endian machines assumed (the split
     of a 32-bit hash into its 16-bit halves).

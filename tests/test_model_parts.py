@@ -106,3 +106,11 @@ def test_glorot_limit_and_determinism():
     assert w.var() == pytest.approx(2 / 500, rel=0.02)
     (w2, _), = model.glorot_init([(300, 200)], 5, np.float64)
     assert w.tobytes() == w2.tobytes()
+
+
+def test_mask_bits_are_pinned():
+    """Regression pin (common practice): saved runs replay only if the mask bits never
+    change; a change of the hash must be deliberate and fail here first."""
+    m = model.dropout_mask(0, 1, 0, np.array([0, 1, 123456789]), 16, 0.5, np.float32)
+    bits = ["".join("1" if v else "0" for v in row) for row in m]
+    assert bits == ["0101100110111100", "0100101001011000", "0010110010011010"]
