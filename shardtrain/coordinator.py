@@ -251,7 +251,7 @@ def train_partitioned(shard_dir, settings: TrainSettings, *, timeout_s: float = 
         for c in ctrls:
             c.close()
         logs.close()
-    return _result(records, summaries, facts, settings)
+    return assemble_result(records, summaries, facts, settings)
 
 
 def _watch(procs, ctrls, k, epochs, on_epoch, stall_s):
@@ -357,7 +357,12 @@ class _Structure:
         return [int(q) for q in np.flatnonzero(recv | send)]
 
 
-def _result(records, summaries, facts: ShardDirFacts, settings: TrainSettings):
+def assemble_result(records, summaries, facts: ShardDirFacts, settings: TrainSettings
+                    ) -> PartitionedRunResult:
+    """One result from the epoch records and every worker's `run_worker` summary (in rank
+    order): predictions and labels by global id, worker 0's weights, merged profile,
+    traffic measured against predicted, per-worker rows. Transport-agnostic (pipes or MPI).
+    """
     from shardtrain.profile import merge
 
     k = facts.workers

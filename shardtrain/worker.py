@@ -143,7 +143,8 @@ def _split_masks(shard) -> list:
 
 
 def run_worker(shard, settings: TrainSettings, transport, profile, report: Callable[[dict], None],
-               *, num_classes: int, init_params=None, epochs_range: range | None = None,
+               *, num_classes: int, init_params=None, init_adam: dict | None = None,
+               epochs_range: range | None = None,
                on_phase: Callable[[str], None] | None = None) -> dict:
     """Train on `shard` for the epochs of `epochs_range` (default 1..settings.epochs).
 
@@ -153,7 +154,9 @@ def run_worker(shard, settings: TrainSettings, transport, profile, report: Calla
     adds the parts and the penalty once, since every worker computes the same penalty).
     Returns {"worker", "owned", "predictions", "labels", "params" (dict name -> array), "profile",
     "peak_rss_bytes", "cpu_s", "send_ptr", "halo_ptr"}.
-    `num_classes` is the whole graph's (a shard may lack some classes).
+    `num_classes` is the whole graph's (a shard may lack some classes). To resume, give
+    `init_params`, `init_adam` (`model.Adam.state()` arrays) and the remaining
+    `epochs_range`: the dropout keys are the epoch numbers, so the run continues exactly.
     """
     dtype = settings.np_dtype
     on_phase = on_phase or (lambda text: None)
@@ -167,6 +170,8 @@ def run_worker(shard, settings: TrainSettings, transport, profile, report: Calla
         params = model.params_from_arrays(arrays, dims, settings.bias, dtype,
                                           source="initial weights")
     adam = model.Adam(params, settings.lr)
+    if init_adam is not None:
+        adam.load_state(init_adam, source="initial optimiser state")
     epochs = epochs_range if epochs_range is not None else range(1, settings.epochs + 1)
 
     with profile.phase("compute"):

@@ -331,5 +331,8 @@ def _build_shard_dir(graph, args, assignment, shard_dir: str, dims) -> None:
         from shardtrain.partition import partition
         assignment = partition(graph, args.method, k, seed=args.seed, imbalance=args.imbalance)
     shards = build_shards(graph, assignment, k)
+    from shardtrain.graph import fingerprint
     save_shards(shard_dir, shards, meta={"num_classes": dims[-1][1], "input_dim": dims[0][0],
-                                         "method": args.method or "assignment"})
+                                         "method": args.method or "assignment",
+                                         "seed": args.seed,
+                                         "graph_fingerprint": fingerprint(graph)})
