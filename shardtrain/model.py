@@ -5,7 +5,7 @@ functions it is handed:
 - `propagate(layer, M)`: M holds the rows this process owns (n_rows, w); returns
   Â_P [M; M_halo] (n_rows, w). The reference passes `Â @ M`.
 - `propagate_t(layer, G)`: returns the owned rows of Â^T G summed over all processes
-  (n_rows, w). The reference passes `Â.T @ G`.
+  (n_rows, w). The reference passes `Â.T @ G` (= `Â @ G`: Â is symmetric).
 Each layer follows `schedule.layer_hops(dims)`: transform-first (T = H W, Z = propagate(T))
 or aggregate-first (A = propagate(H), Z = A W). The worker and the reference call the very
 same `train_step`, which is why partitioned training equals single-process training.
