@@ -341,6 +341,8 @@ class _TextTable:
             lengths = newlines - line_starts + 1
             b[np.repeat(skip, lengths)] = ord(" ")
         expected = int(data_line.sum()) * int(self.columns or 0)
+        if expected == 0:   # np.fromstring reads an all-blank string as [-1.0]
+            return np.zeros(0, dtype=np.float64)
         try:
             values = np.fromstring(b.tobytes(), sep=" ", dtype=np.float64)
         except ValueError:
