@@ -17,9 +17,9 @@ def add_graph_arguments(parser: argparse.ArgumentParser) -> None:
                         help="vertex features, .npy or .csv (one row per vertex)")
     parser.add_argument("--labels", metavar="FILE",
                         help="vertex labels, .npy or text with one integer per line (-1 = none)")
-    parser.add_argument("--input-dim", metavar="D", type=_positive_int("--input-dim"),
+    parser.add_argument("--input-dim", metavar="D", type=positive_int_type("--input-dim"),
                         help="feature width to plan for when the graph has no features")
-    parser.add_argument("--seed", metavar="S", type=_int("--seed"), default=0,
+    parser.add_argument("--seed", metavar="S", type=int_type("--seed"), default=0,
                         help="seed for split masks the graph file does not give (default 0)")
 
 
@@ -28,7 +28,8 @@ def load_graph_from_args(args: argparse.Namespace) -> LoadedGraph:
                       input_dim=args.input_dim, seed=args.seed)
 
 
-def _int(option: str):
+def int_type(option: str):
+    """An argparse `type=` that turns bad text into an InputError naming the option."""
     def convert(text: str) -> int:
         try:
             return int(text)
@@ -37,14 +38,24 @@ def _int(option: str):
     return convert
 
 
-def _positive_int(option: str):
-    as_int = _int(option)
+def positive_int_type(option: str):
+    as_int = int_type(option)
 
     def convert(text: str) -> int:
-        value = as_int(text)
+        value = asint_type(text)
         if value < 1:
             raise InputError(f"{option} {text!r}: must be at least 1")
         return value
+    return convert
+
+
+def float_type(option: str):
+    """An argparse `type=` for numbers, with an InputError naming the option."""
+    def convert(text: str) -> float:
+        try:
+            return float(text)
+        except ValueError:
+            raise InputError(f"{option} {text!r}: not a number") from None
     return convert
 
 
@@ -69,3 +80,8 @@ def parse_name_list(text: str, option: str) -> list[str]:
         if not re.fullmatch(r"[A-Za-z0-9_.\-]+", p):
             raise InputError(f"{option} {text!r}: {p!r} is not a valid name")
     return parts
+
+
+# earlier private names, still imported by some commands
+_int = int_type
+_positive_int = positive_int_type

@@ -9,38 +9,30 @@ from __future__ import annotations
 import time
 from pathlib import Path
 
-from shardtrain.cli.common import _int
+from shardtrain.cli.common import float_type, int_type
 from shardtrain.errors import InputError
 from shardtrain.files import save_npz_atomic
 from shardtrain.synth import edge_array, parcel_network, same_role_fraction
 
 
-def _float(option: str):
-    def convert(text: str) -> float:
-        try:
-            return float(text)
-        except ValueError:
-            raise InputError(f"{option} {text!r}: not a number") from None
-    return convert
-
 
 def add_arguments(parser) -> None:
     parser.add_argument("out", metavar="OUT.npz", help="bundle to write")
-    parser.add_argument("--vertices", type=_int("--vertices"), default=10_000,
+    parser.add_argument("--vertices", type=int_type("--vertices"), default=10_000,
                         help="depots (default 10000)")
-    parser.add_argument("--avg-degree", type=_float("--avg-degree"), default=10.0,
+    parser.add_argument("--avg-degree", type=float_type("--avg-degree"), default=10.0,
                         help="mean routes per depot (default 10)")
-    parser.add_argument("--classes", type=_int("--classes"), default=6,
+    parser.add_argument("--classes", type=int_type("--classes"), default=6,
                         help="depot roles (default 6: hub, urban, suburban, rural, cross-dock, "
                              "returns)")
-    parser.add_argument("--features", type=_int("--features"), default=32,
+    parser.add_argument("--features", type=int_type("--features"), default=32,
                         help="statistics per depot (default 32)")
-    parser.add_argument("--seed", type=_int("--seed"), default=0, help="random seed (default 0)")
-    parser.add_argument("--homophily", type=_float("--homophily"), default=0.8,
+    parser.add_argument("--seed", type=int_type("--seed"), default=0, help="random seed (default 0)")
+    parser.add_argument("--homophily", type=float_type("--homophily"), default=0.8,
                         help="fraction of routes between depots of the same role (default 0.8)")
-    parser.add_argument("--degree-exponent", type=_float("--degree-exponent"), default=2.5,
+    parser.add_argument("--degree-exponent", type=float_type("--degree-exponent"), default=2.5,
                         help="power-law exponent of the degree tail (default 2.5)")
-    parser.add_argument("--signal", type=_float("--signal"), default=1.5,
+    parser.add_argument("--signal", type=float_type("--signal"), default=1.5,
                         help="strength of the role signal in the features (default 1.5)")
 
 
