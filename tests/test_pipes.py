@@ -378,3 +378,19 @@ def test_emulated_link_delays_every_all_reduce_step():
     assert min(stamps["end", r] - stamps["start", r] for r in range(3)) >= 4 * 0.02 * 0.999
     for t in ts:
         t.close()
+
+
+@pytest.mark.parametrize("text,want", [("10", (10.0, 0.0)), ("0.05:250", (0.05, 250.0)),
+                                       (" 2.5 : 0 ", (2.5, 0.0)), ("1e-1:5", (0.1, 5.0))])
+def test_link_option_parses(text, want):
+    from shardtrain.transport.link import parse_link
+    m = parse_link(text)
+    assert (m.gbps, m.latency_us) == want
+
+
+@pytest.mark.parametrize("text", ["", "fast", "0", "-1", "1:", "1:-5", "1:2:3", "10gbps"])
+def test_bad_link_option_names_the_option(text):
+    from shardtrain.errors import InputError
+    from shardtrain.transport.link import parse_link
+    with pytest.raises(InputError, match=r"^--emulate-link: "):
+        parse_link(text)
