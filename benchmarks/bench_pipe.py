@@ -81,7 +81,7 @@ def _run(rank, plan, nbytes, repeat, raw_pipes, meshes, barrier, result_conn):
             times[case] = min(times[case], time.perf_counter() - t0)
     # Small frames: the fixed cost of one exchange call (both ways, 64 bytes each).
     small, small_in = np.ones(8), np.empty(8)
-    t = transports["1mib"]
+    t = transports[{size: name for name, size in BUFFERS}[PIPE_BYTES]]
     barrier.wait()
     t0 = time.perf_counter()
     for i in range(SMALL_CALLS):
@@ -129,7 +129,7 @@ def main(argv=None) -> int:
     for name, _ in BUFFERS:
         gbps[f"transport_bidirectional_{name}"] *= 2      # payload moved both ways at once
     raw_best = max(gbps["raw_default"], gbps["raw_1mib"])
-    chosen = f"transport_{dict((s, n) for n, s in BUFFERS)[PIPE_BYTES]}"
+    chosen = f"transport_{ {size: name for name, size in BUFFERS}[PIPE_BYTES]}"
     result = {
         "transfer_bytes": nbytes,
         "repeat": args.repeat,

@@ -16,11 +16,11 @@ from shardtrain.profile import Profile, merge
 from shardtrain.transport import frames
 from shardtrain.transport.frames import FrameError
 from shardtrain.transport.link import LinkModel
-from shardtrain.transport.pipes import PipeTransport, make_pipe_mesh, ring_pairs
+from shardtrain.transport.pipes import PIPE_BYTES, PipeTransport, make_pipe_mesh, ring_pairs
 from shardtrain.transport.ring import ring_send_elements
 
 CTX = multiprocessing.get_context("spawn")
-PIPE_BUFFER = 1 << 20        # frames below are several times this
+PIPE_BUFFER = 1 << 20        # frames below are several times this (and PIPE_BYTES)
 
 
 def _rows(p: int, q: int) -> int:
@@ -92,6 +92,7 @@ def test_four_processes_exchange_large_frames_all_at_once_and_count_exactly():
     assert all(r["ok"] for r in results)
 
     # Every frame is larger than the pipe buffer, both ways, all pairs at once.
+    assert PIPE_BYTES <= PIPE_BUFFER
     assert min(_rows(p, q) for p in range(k) for q in range(k)) * width * 4 > PIPE_BUFFER
 
     # All-reduce: the sum of the inputs, identical bits on every rank.

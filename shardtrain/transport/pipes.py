@@ -43,7 +43,10 @@ from shardtrain.transport.frames import FrameError
 from shardtrain.transport.link import LinkModel
 from shardtrain.transport.ring import ring_allreduce
 
-PIPE_BYTES = 1 << 20          # kernel buffer per pipe; benchmarks/bench_pipe.py measures why
+# Kernel buffer per pipe. benchmarks/bench_pipe.py measures 64 KiB (the default), 256 KiB
+# and 1 MiB: the default is clearly slower, 256 KiB as fast as 1 MiB or faster (it stays in
+# the cache) while pinning a quarter of the kernel memory for the k(k-1) pipes.
+PIPE_BYTES = 1 << 18
 ALLREDUCE = "allreduce"
 NO_LAYER = -1
 
