@@ -22,9 +22,15 @@ os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 import numpy as np  # noqa: E402
 
 
+_CPU = {}
+
+
 def _timed(fn, *args, **kwargs):
-    start = time.perf_counter()
+    """(result, wall seconds); the CPU seconds of the call go to _CPU[fn.__name__] (the
+    machine is shared, so the wall clock alone overstates the cost)."""
+    start, cpu = time.perf_counter(), time.process_time()
     result = fn(*args, **kwargs)
+    _CPU[fn.__name__] = time.process_time() - cpu
     return result, time.perf_counter() - start
 
 
@@ -68,11 +74,15 @@ def main(argv=None) -> int:
         for k in (int(x) for x in args.workers.split(",")):
             assignment, part_s = _timed(partition, graph, method, k, seed=args.seed)
             shards, build_s = _timed(build_shards, graph, assignment, k, with_vertex_data=False)
+            build_cpu_s = _CPU["build_shards"]
+            part_cpu_s = _CPU["partition"]
             stats = shard_stats(shards)
             sizes = stats["owned"]
             plan = {"method": method, "workers": k, "partition_s": round(part_s, 3),
-                    "build_s": round(build_s, 3),
+                    "partition_cpu_s": round(part_cpu_s, 3),
+                    "build_s": round(build_s, 3), "build_cpu_s": round(build_cpu_s, 3),
                     "build_edges_per_s": round(m / build_s),
+                    "build_edges_per_cpu_s": round(m / build_cpu_s),
                     "edge_cut": edge_cut(graph, assignment),
                     "largest_over_mean": round(float(sizes.max() / sizes.mean()), 4),
                     "halo_total": int(stats["halo"].sum()),
@@ -83,6 +93,8 @@ def main(argv=None) -> int:
                 t_id = _product_seconds(id_shards, 64)
                 t_loc = _product_seconds(shards, 64)
                 order_check = {"plan": args.order_check_plan, "build_s_id_order": round(id_s, 3),
+                               "build_cpu_s_id_order": round(_CPU["build_shards"], 3),
+                               "build_cpu_s_locality_order": round(build_cpu_s, 3),
                                "build_s_locality_order": round(build_s, 3),
                                "product_s_id_order": round(t_id, 4),
                                "product_s_locality_order": round(t_loc, 4),
@@ -92,10 +104,11 @@ def main(argv=None) -> int:
             del shards
             plans.append(plan)
             print(f"  {method:<13} k={k:<3} partition {part_s:7.2f} s  build {build_s:6.2f} s "
-                  f"({m / build_s / 1e6:5.2f} M edges/s)  cut {plan['edge_cut'] / m:.3f}  "
+                  f"({m / build_s / 1e6:5.2f} M edges/s; CPU {build_cpu_s:6.2f} s)  cut {plan['edge_cut'] / m:.3f}  "
                   f"max/mean {plan['largest_over_mean']:.3f}", flush=True)
 
     rates = [p["build_edges_per_s"] for p in plans]
+    cpu_rates = [p["build_edges_per_cpu_s"] for p in plans]
     doc = {
         "benchmark": "bench_shards",
         "machine": {"python": platform.python_version(), "cpus": os.cpu_count()},
@@ -106,6 +119,7 @@ def main(argv=None) -> int:
         "build_edges_per_s_min": min(rates),
         "build_edges_per_s_median": float(np.median(rates)),
         "goal_build_edges_per_s": 5_000_000,
+        "build_edges_per_cpu_s_min": min(cpu_rates),
         "goal_met": bool(min(rates) >= 5_000_000),
         "peak_rss_bytes": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024,
         "note": "edges/s counts undirected edges of the whole graph over the whole "
