@@ -175,6 +175,46 @@ def calibrate(dtype: str = "float32", *, seed: int = 0) -> dict:
             "calibration_s": time.perf_counter() - t0}
 
 
+def sparse_on_matrix(adj, dtype: str = "float32", *, widths=SPARSE_WIDTHS,
+                     parts: int = 8, seed: int = 0) -> list[dict]:
+    """Sparse-product speeds measured on a real matrix (a graph's Â in shard order), at its
+    full size and on its first 1/parts of rows (about one shard of `parts`): the locality
+    of the user's own graph, which a synthetic matrix only approximates."""
+    import scipy.sparse as sps
+
+    rng = np.random.default_rng(seed)
+    dt = np.dtype(dtype)
+    full = sps.csr_matrix(adj, dtype=dt)
+    n = full.shape[0]
+    blocks = [full]
+    if parts > 1 and n >= 2 * parts:
+        top = full[: n // parts]
+        cols = np.unique(top.indices)
+        remap = np.zeros(full.shape[1], dtype=np.int64)
+        remap[cols] = np.arange(cols.size)
+        blocks.append(sps.csr_matrix((top.data, remap[top.indices], top.indptr),
+                                     shape=(top.shape[0], cols.size)))
+    out = []
+    with threadpool_limits(limits=1):
+        for a in blocks:
+            for width in widths:
+                x = rng.standard_normal((a.shape[1], width)).astype(dt)
+                t = _best_time(lambda: a @ x, repeats=4, budget_s=0.3)
+                out.append({"nnz": int(a.nnz), "width": int(width), "seconds": t,
+                            "nnz_cols_per_s": a.nnz * width / t, "source": "graph"})
+    return out
+
+
+def with_graph_sparse(calibration: dict, graph, dtype: str = "float32") -> dict:
+    """The calibration with its sparse speeds measured on `graph`'s own Â, numbered the
+    way one shard numbers its vertices (shards.build_shards with one worker)."""
+    from shardtrain.shards import build_shards
+
+    shard = build_shards(graph, np.zeros(graph.num_vertices, dtype=np.int64), 1,
+                         with_vertex_data=False)[0]
+    return dict(calibration, sparse=sparse_on_matrix(shard.adj, dtype), sparse_source="graph")
+
+
 def from_flops(flops_per_s: float, dtype: str = "float32") -> dict:
     """A calibration from one user-given speed: dense at `flops_per_s`, sparse at the same
     rate in multiply-adds counted as 2 flops each, memory passes at 4 bytes per flop

@@ -345,7 +345,7 @@ def forecast(survey_dict: dict, *, link_gbps_list, latency_us: float, calibratio
         "cores": cores,
         "dropout": dropout,
         "calibration": {key: calibration.get(key) for key in
-                        ("dtype", "threads", "calibration_s", "from_flops")
+                        ("dtype", "threads", "calibration_s", "from_flops", "sparse_source")
                         if key in calibration},
         "includes_eval": False,
         "plans": plans,

@@ -3,7 +3,8 @@
 GRAPH_OR_JSON is a graph (surveyed first, as `shardtrain survey` would) or a survey JSON
 (used as is; --workers/--method then pick plans from it). Compute is forecast from this
 machine's kernels, timed once (a few seconds; --calibration FILE keeps the timing), scaled
-by --speed-factor for the target CPUs, or from --flops-per-worker. Each link speed in
+by --speed-factor for the target CPUs, or from --flops-per-worker. Given a GRAPH, the
+sparse products are timed on the graph's own adjacency. Each link speed in
 --link-gbps (Gbit/s per worker; default the presets 1,10,25,100) is forecast for every plan.
 The table marks the fastest plan and the plan with the fewest workers meeting
 --target-epoch-s.
@@ -229,6 +230,7 @@ def run(args) -> int:
     methods = _name_list(args.method, "--method") if args.method is not None else None
     _check_options(args)
     source = str(args.graph)
+    graph = None
     if source.lower().endswith(".json"):
         survey_dict = _select(read_survey_json(source), workers, methods, source)
     else:
@@ -244,12 +246,17 @@ def run(args) -> int:
         print(f"surveying {len(methods)} methods x {len(workers)} worker counts ...",
               file=sys.stderr)
         survey_dict = survey(loaded.graph, methods, workers, settings)
+        graph = loaded.graph
     dtype = survey_dict["model"].get("dtype", "float32")
     if args.flops_per_worker is not None:
         calibration = from_flops(args.flops_per_worker, dtype)
     else:
         print("timing this machine's kernels (one thread) ...", file=sys.stderr)
         calibration = load_or_calibrate(args.calibration, dtype)
+        if graph is not None:   # sparse speeds on the graph's own structure
+            from shardtrain.calibrate import with_graph_sparse
+
+            calibration = with_graph_sparse(calibration, graph, dtype)
     result = forecast(survey_dict, link_gbps_list=links, latency_us=args.latency_us,
                       calibration=calibration, speed_factor=args.speed_factor,
                       target_epoch_s=args.target_epoch_s, cores=args.cores,
