@@ -224,11 +224,27 @@ def run_worker(shard, settings: TrainSettings, transport, profile, report: Calla
                    else np.full(shard.num_owned, -1, dtype=np.int64)),
         "params": model.params_to_arrays(params) if shard.worker == 0 else None,
         "profile": profile.to_dict(),
-        "peak_rss_bytes": int(usage.ru_maxrss) * 1024,   # Linux reports KiB
+        "peak_rss_bytes": peak_rss_bytes(),
         "cpu_s": float(usage.ru_utime + usage.ru_stime),
         "send_ptr": [int(v) for v in shard.send_ptr],
         "halo_ptr": [int(v) for v in shard.halo_ptr],
     }
+
+
+def peak_rss_bytes() -> int:
+    """High-water resident memory of this process image.
+
+    VmHWM from /proc (Linux) rather than getrusage's ru_maxrss: a spawned child starts as a
+    fork of the coordinator, and ru_maxrss keeps the parent's peak across the exec.
+    """
+    try:
+        with open("/proc/self/status", "rb") as fh:
+            for line in fh:
+                if line.startswith(b"VmHWM:"):
+                    return int(line.split()[1]) * 1024
+    except OSError:
+        pass
+    return int(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss) * 1024
 
 
 def encode_summary(summary: dict) -> dict:
@@ -276,7 +292,7 @@ def _install_log_queue(log_queue, level: int) -> None:
 
 def process_main(rank: int, size: int, shard_dir: str, settings_dict: dict, num_classes: int,
                  ends, ctrl, log_queue, log_level: int, options: dict) -> None:
-    """Entry point of worker process `rank` (started by the coordinator, "spawn" method).
+    """Entry point of worker process `rank` (started by the coordinator, forkserver/spawn).
 
     Loads only its own shard, trains, and talks to the coordinator over `ctrl` with msgpack
     messages: {"type": "epoch", ...} per epoch, then {"type": "done", ...}, or
