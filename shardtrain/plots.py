@@ -193,28 +193,29 @@ def survey_plots(survey: dict, out_dir, plan: dict | None = None) -> list[str]:
 
 # ---------------------------------------------------------------- run
 
-def measured_pair_bytes(run: dict) -> np.ndarray | None:
-    """k x k payload bytes of the halo exchanges the run measured, from whichever form the
-    run JSON holds: a matrix under traffic['pair_bytes'] or a list of per-pair counters."""
+def measured_pair_bytes(run: dict) -> tuple[np.ndarray | None, str]:
+    """(k x k payload bytes the run measured, what they cover). Halo exchanges only when the
+    run lists its counters per (src, dst, kind, ...); else the whole per-pair matrix."""
     traffic = run.get("traffic") or {}
+    k = len(run.get("workers") or [])
+    rows = traffic.get("breakdown")
+    if isinstance(rows, list) and rows and k:
+        m = np.zeros((k, k))
+        for r in rows:
+            if not isinstance(r, dict) or r.get("kind") != "halo":
+                continue
+            src, dst = r.get("src"), r.get("dst")
+            nbytes = r.get("measured_payload_bytes", r.get("payload_bytes"))
+            if isinstance(src, int) and isinstance(dst, int) and nbytes is not None \
+                    and 0 <= src < k and 0 <= dst < k:
+                m[src, dst] += nbytes
+        if m.any():
+            return m, "halo exchanges, training and evaluation"
     for where in (traffic, run.get("profile") or {}):
         for key in ("measured_pair_bytes", "pair_payload_bytes", "pair_bytes"):
             if key in where:
-                return np.asarray(where[key], dtype=np.float64)
-    rows = traffic.get("breakdown") or traffic.get("pairs") or traffic.get("counters")
-    k = len(run.get("workers") or [])
-    if not rows or not k:
-        return None
-    m = np.zeros((k, k))
-    for r in rows:
-        if not isinstance(r, dict) or r.get("kind", "halo") != "halo":
-            continue
-        src, dst = r.get("src", r.get("source")), r.get("dst", r.get("destination"))
-        nbytes = r.get("payload_bytes", r.get("bytes"))
-        if src is None or dst is None or nbytes is None or not (0 <= src < k and 0 <= dst < k):
-            continue
-        m[src, dst] += nbytes
-    return m if m.any() else None
+                return np.asarray(where[key], dtype=np.float64), "halo and all-reduce"
+    return None, ""
 
 
 def run_plots(run: dict, out_dir) -> list[str]:
@@ -249,11 +250,11 @@ def run_plots(run: dict, out_dir) -> list[str]:
             ax.xaxis.set_major_locator(MaxNLocator(integer=True))
         fig.tight_layout()
         paths.append(_save(fig, out_dir, "run_loss_accuracy.png"))
-    pair = measured_pair_bytes(run)
-    if pair is not None and pair.shape[0] > 1:
+    pair, what = measured_pair_bytes(run)
+    if pair is not None and pair.ndim == 2 and pair.shape[0] > 1:
         n_epochs = max(len(epochs), 1)
         paths.append(traffic_heatmap(pair / n_epochs,
-                                     "measured halo traffic (average epoch)",
+                                     f"measured traffic per epoch ({what})",
                                      out_dir, "run_traffic_heatmap.png"))
     return paths
 
@@ -291,6 +292,11 @@ def forecast_plots(forecast: dict, out_dir) -> list[str]:
             if p["link_gbps"] == g and p.get("fastest"):
                 ax.plot(p["workers"], p["epoch_s"], marker="*", markersize=16, color="gold",
                         markeredgecolor="black", linestyle="none", label="fastest")
+            if p["link_gbps"] == g and p.get("fewest_meeting_target"):
+                ax.plot(p["workers"], p["epoch_s"], marker="D", markersize=11,
+                        markerfacecolor="none", markeredgecolor="crimson",
+                        markeredgewidth=2, linestyle="none",
+                        label="fewest workers meeting target")
         if target:
             ax.axhline(target, color="crimson", linestyle="--", linewidth=1,
                        label=f"target {_seconds_label(target)}")

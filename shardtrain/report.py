@@ -188,10 +188,15 @@ def run_section(doc: dict, plot_dir: Path) -> str:
 
     s, g, t = doc.get("settings", {}), doc.get("graph", {}), doc.get("traffic", {})
     epochs = doc.get("epochs") or []
-    facts = [("vertices", f"{g['vertices']:,}" if "vertices" in g else None),
-             ("edges", f"{g['edges']:,}" if "edges" in g else None)]
-    facts += [(k, s[k]) for k in ("method", "workers", "layers", "hidden", "dtype", "epochs",
-                                  "lr", "dropout", "link") if k in s]
+    vertices = g.get("vertices", g.get("num_vertices"))
+    edges = g.get("edges", g.get("num_edges"))
+    facts = [("graph", g.get("source")),
+             ("vertices", f"{vertices:,}" if vertices is not None else None),
+             ("edges", f"{edges:,}" if edges is not None else None),
+             ("mode", doc.get("mode")),
+             ("workers", len(doc["workers"]) if doc.get("workers") else None)]
+    facts += [(k, s[k]) for k in ("method", "layers", "hidden", "dtype", "epochs",
+                                  "lr", "dropout", "weight_decay", "link") if k in s]
     if "measured_payload_bytes" in t:
         facts.append(("measured payload", human_bytes(t["measured_payload_bytes"])
                       + f" ({t['measured_payload_bytes']:,} bytes)"))
@@ -239,8 +244,10 @@ def forecast_section(doc: dict, plot_dir: Path) -> str:
             marks.append("fastest")
         if p.get("fewest_meeting_target"):
             marks.append("fewest workers meeting target")
+        bound = {"allreduce": "all-reduce", "exchange": "halo exchange"}.get(
+            p.get("bottleneck"), p.get("bottleneck"))
         rows.append(dict(p, link=f"{p['link_gbps']:g} Gbit/s", mark=", ".join(marks),
-                         marked=bool(marks)))
+                         marked=bool(marks), bottleneck=bound))
     cols = [("method", "method", None), ("workers", "workers", _fmt_int),
             ("link", "link", None), ("epoch_s", "epoch", _seconds),
             ("compute_s", "compute", _seconds), ("exchange_s", "exchange", _seconds),

@@ -154,3 +154,16 @@ def test_report_bad_inputs_exit_2(run_cli, tmp_path):
         assert not out.exists()
     r = run_cli("report", bad, "--html", tmp_path / "nofolder" / "r.html")
     assert r.returncode == 2 and "--html" in r.stderr
+
+
+def test_run_heatmap_counts_halo_rows_only():
+    run = _run(k=2)
+    run["traffic"]["breakdown"] = [
+        {"src": 0, "dst": 1, "kind": "halo", "layer": 0, "direction": "forward",
+         "measured_payload_bytes": 100},
+        {"src": 0, "dst": 1, "kind": "halo", "layer": 0, "direction": "eval",
+         "measured_payload_bytes": 50},
+        {"src": 1, "dst": 0, "kind": "allreduce", "layer": -1, "direction": "all",
+         "measured_payload_bytes": 999}]
+    m, what = plots.measured_pair_bytes(run)
+    assert m.tolist() == [[0, 150], [0, 0]] and "halo" in what

@@ -148,6 +148,12 @@ def read_survey_json(path: str) -> dict:
     except ValueError as exc:
         line = getattr(exc, "lineno", 1)
         raise InputError(f"{path}:{line}: not valid JSON ({exc.msg if hasattr(exc, 'msg') else exc})") from None
+    from shardtrain.report import document_kind
+
+    kind = document_kind(data)
+    if kind in ("run", "forecast"):
+        raise InputError(f"{path}:1: this is a {kind} JSON; give a survey JSON "
+                         f"(`shardtrain survey GRAPH --json OUT.json`) or the graph itself")
     if not isinstance(data, dict) or "plans" not in data or "model" not in data:
         raise InputError(f"{path}:1: not a survey JSON (needs 'model' and 'plans'; "
                          f"write one with `shardtrain survey GRAPH --json OUT.json`)")
@@ -187,6 +193,9 @@ TABLE_COLUMNS = [
 ]
 
 
+BOUND_NAMES = {"compute": "compute", "exchange": "halo exchange", "allreduce": "all-reduce"}
+
+
 def _link_name(gbps: float) -> str:
     return f"{gbps:g} Gbit/s"
 
@@ -199,7 +208,8 @@ def table_rows(result: dict) -> list[dict]:
             marks.append("<- fastest")
         if p.get("fewest_meeting_target"):
             marks.append("<- fewest workers meeting target")
-        rows.append(dict(p, link=_link_name(p["link_gbps"]), mark="; ".join(marks)))
+        rows.append(dict(p, link=_link_name(p["link_gbps"]), mark="; ".join(marks),
+                         bottleneck=BOUND_NAMES.get(p["bottleneck"], p["bottleneck"])))
     return rows
 
 
