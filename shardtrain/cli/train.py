@@ -4,6 +4,7 @@
 `shardtrain train GRAPH --workers K --method M` partitions the graph, builds the shards in a
 temporary directory and trains with one process per shard, exchanging halo rows over pipes;
 `shardtrain train SHARD_DIR` trains on the shards written by `shardtrain split`.
+`mpiexec -n K shardtrain train SHARD_DIR --transport mpi` runs one MPI rank per shard.
 Per epoch: loss, train/val/test accuracy; at the end a per-worker table of time, traffic and
 memory, and the measured payload against the survey's prediction. --seed seeds the split
 masks the graph does not give, the initial weights and the dropout masks.
@@ -83,6 +84,9 @@ def add_arguments(parser) -> None:
     parser.add_argument("--predictions", metavar="OUT.csv",
                         help="write vertex,predicted,label (label empty where unknown)")
     parser.add_argument("--quiet", action="store_true", help="no per-epoch output")
+    parser.add_argument("--transport", choices=("pipes", "mpi"), default="pipes",
+                        help="pipes: worker processes on this machine (default); mpi: one "
+                             "rank per shard of SHARD_DIR, under mpiexec")
 
 
 # ---------------------------------------------------------------- validation
@@ -246,6 +250,9 @@ def _traffic_lines(traffic: dict) -> list[str]:
 # ---------------------------------------------------------------- the command
 
 def run(args) -> int:
+    if args.transport == "mpi":
+        from shardtrain.cli.train_mpi import run_mpi
+        return run_mpi(args)
     settings, from_shards = _check_options(args)
     from shardtrain import model
 
