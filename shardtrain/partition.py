@@ -11,7 +11,7 @@ from pathlib import Path
 
 import numpy as np
 
-from shardtrain.errors import InputError
+from shardtrain.errors import InputError, RunError
 from shardtrain.graph import Graph
 
 
@@ -26,9 +26,19 @@ def _metis(graph: Graph, k: int, *, seed: int, imbalance: float, volume: bool) -
     adjacency = pymetis.CSRAdjacency(adj_starts=graph.indptr, adjacent=graph.indices)
     # METIS minimises communication volume only in its k-way scheme (recursive bisection
     # refuses that objective); for the edge cut pymetis picks recursive bisection for k <= 8.
-    result = pymetis.part_graph(k, adjacency=adjacency, options=options,
-                                recursive=False if volume else None)
-    return np.asarray(result.vertex_part, dtype=np.int64)
+    schemes = [False] if volume else [k <= 8, k > 8]
+    n = graph.num_vertices
+    limit = 1.02 * (1.0 + imbalance) * n / k + 2     # METIS overshoots its tolerance a little
+    for recursive in schemes:
+        result = pymetis.part_graph(k, adjacency=adjacency, options=options, recursive=recursive)
+        part = np.asarray(result.vertex_part, dtype=np.int64)
+        largest = int(np.bincount(part, minlength=k).max())
+        if largest <= limit:
+            return part
+    # one bench run on a 1 M-vertex graph once got a part of n/2 from METIS at k = 16:
+    # never hand such a plan on silently
+    raise RunError(f"METIS returned a part of {largest} vertices for {k} workers "
+                   f"(mean {n / k:.0f}, tolerance {imbalance}); try another --seed or method")
 
 
 def metis(graph: Graph, k: int, *, seed: int = 0, imbalance: float = 0.03) -> np.ndarray:

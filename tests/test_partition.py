@@ -127,3 +127,28 @@ def test_load_assignment_bad_npy(tmp_path):
             load_assignment(tmp_path / name, 2)
     with pytest.raises(InputError, match="--assignment .*no such file"):
         load_assignment(tmp_path / "missing.txt", 2)
+
+
+def test_metis_result_far_off_balance_is_retried_then_refused(blocks, monkeypatch):
+    # common practice: a partitioner's output is checked, not trusted. Fake METIS answers.
+    import pymetis
+    from shardtrain.errors import RunError
+    _, g = blocks
+    n, calls = g.num_vertices, []
+    lopsided = np.zeros(n, dtype=np.int64)
+    lopsided[:4] = [1, 2, 3, 3]
+    balanced = np.arange(n) % 4
+
+    def fake(k, adjacency=None, options=None, recursive=None):
+        calls.append(recursive)
+        answer = lopsided if len(calls) == 1 or fail_always else balanced
+        return pymetis.GraphPartition(0, list(answer))
+
+    monkeypatch.setattr(pymetis, "part_graph", fake)
+    fail_always = False
+    assert np.array_equal(partition(g, "metis", 4), balanced) and calls == [True, False]
+    fail_always = True
+    calls.clear()
+    with pytest.raises(RunError, match="METIS returned a part of"):
+        partition(g, "metis-volume", 4)
+    assert calls == [False]
