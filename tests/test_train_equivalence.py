@@ -186,3 +186,34 @@ def test_two_layer_paper_shape_without_dropout_equals_reference(tmp_path, graph)
     ref = train_reference(graph, settings)
     run, _ = run_partitioned(tmp_path, graph, np.arange(graph.num_vertices) % 3, 3, settings)
     _assert_same_run(run, ref)
+
+
+def load_shard_then_die(folder, worker: int):
+    """A shard loader for worker processes: worker 1 is killed right after loading."""
+    import os
+    import signal
+    from shardtrain.shards import load_shard
+
+    shard = load_shard(folder, worker)
+    if worker == 1:
+        os.kill(os.getpid(), signal.SIGKILL)
+    return shard
+
+
+def test_a_killed_worker_is_named_and_nothing_survives(tmp_path, graph):
+    # common practice: a dead worker must end the run with its name and signal, not a hang
+    import multiprocessing
+
+    from shardtrain.errors import RunError
+
+    try:
+        from shardtrain.shards import save_shards
+    except ImportError:
+        pytest.skip("the shard directory format is not there yet")
+
+    save_shards(tmp_path / "s", build_shards(graph, np.arange(graph.num_vertices) % 3, 3),
+                meta={"method": "test", "seed": 0})
+    with pytest.raises(RunError, match=r"worker 1 died \(killed by signal SIGKILL\)"):
+        train_partitioned(tmp_path / "s", SETTINGS, timeout_s=30,
+                          load_shard=load_shard_then_die)
+    assert multiprocessing.active_children() == []
