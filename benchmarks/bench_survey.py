@@ -150,6 +150,28 @@ def _memory_check(configs=MEMORY_CONFIGS, vertices=200_000, edges=1_000_000) -> 
     return out
 
 
+def _summary(graph_facts, dims, methods, workers, plans, total_s, memory_check, *,
+             complete: bool) -> dict:
+    build_rates = [p["build_edges_per_s"] for p in plans if p["build_edges_per_s"]]
+    return {
+        "benchmark": "survey",
+        "complete": complete,
+        "machine": {"python": platform.python_version(), "cpus": os.cpu_count(),
+                    "load_average_1min": os.getloadavg()[0]},
+        "graph": graph_facts,
+        "model": {"dims": dims, "dtype": "float32"},
+        "methods": methods, "workers": workers,
+        "plans": plans,
+        "survey_total_s": total_s,
+        "peak_rss_bytes": max(p["peak_rss_bytes"] for p in plans),
+        "memory_check": memory_check,
+        "goals": {"survey_total_s": GOAL_TOTAL_S, "met_total": total_s <= GOAL_TOTAL_S,
+                  "build_edges_per_s": GOAL_BUILD_EDGES_PER_S,
+                  "min_build_edges_per_s": min(build_rates) if build_rates else None,
+                  "met_build": bool(build_rates) and min(build_rates) >= GOAL_BUILD_EDGES_PER_S},
+    }
+
+
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--out", required=True)
@@ -210,25 +232,15 @@ def main(argv=None) -> int:
                   f"{row['build_s']:5.2f} s  survey {row['survey_s']:5.2f} s  "
                   f"rss {row['peak_rss_bytes'] / 2**30:.2f} GiB", file=sys.stderr)
             del plan
+            # partial results survive an interrupted run
+            write_json_atomic(args.out, _summary(graph_facts, dims, methods, workers, plans,
+                                                 time.perf_counter() - t_all, [],
+                                                 complete=False))
     total_s = time.perf_counter() - t_all
     del graph
     memory_check = [] if args.skip_memory_check else _memory_check()
-    build_rates = [p["build_edges_per_s"] for p in plans if p["build_edges_per_s"]]
-    result = {
-        "benchmark": "survey",
-        "machine": {"python": platform.python_version(), "cpus": os.cpu_count()},
-        "graph": graph_facts,
-        "model": {"dims": dims, "dtype": "float32"},
-        "methods": methods, "workers": workers,
-        "plans": plans,
-        "survey_total_s": total_s,
-        "peak_rss_bytes": max(p["peak_rss_bytes"] for p in plans),
-        "memory_check": memory_check,
-        "goals": {"survey_total_s": GOAL_TOTAL_S, "met_total": total_s <= GOAL_TOTAL_S,
-                  "build_edges_per_s": GOAL_BUILD_EDGES_PER_S,
-                  "min_build_edges_per_s": min(build_rates) if build_rates else None,
-                  "met_build": bool(build_rates) and min(build_rates) >= GOAL_BUILD_EDGES_PER_S},
-    }
+    result = _summary(graph_facts, dims, methods, workers, plans, total_s, memory_check,
+                      complete=True)
     write_json_atomic(args.out, result)
     print(f"survey of {len(plans)} plans: {total_s:.1f} s (goal {GOAL_TOTAL_S:.0f} s)",
           file=sys.stderr)
