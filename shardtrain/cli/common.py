@@ -42,7 +42,7 @@ def positive_int_type(option: str):
     as_int = int_type(option)
 
     def convert(text: str) -> int:
-        value = asint_type(text)
+        value = as_int(text)
         if value < 1:
             raise InputError(f"{option} {text!r}: must be at least 1")
         return value

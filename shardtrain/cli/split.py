@@ -10,7 +10,7 @@ from __future__ import annotations
 import time
 from pathlib import Path
 
-from shardtrain.cli.common import _positive_int, add_graph_arguments, load_graph_from_args
+from shardtrain.cli.common import add_graph_arguments, load_graph_from_args, positive_int_type
 from shardtrain.errors import InputError
 
 
@@ -28,7 +28,7 @@ def add_arguments(parser) -> None:
     from shardtrain.partition import METHODS
 
     add_graph_arguments(parser)
-    parser.add_argument("--workers", metavar="K", type=_positive_int("--workers"),
+    parser.add_argument("--workers", metavar="K", type=positive_int_type("--workers"),
                         help="number of shards (optional with --assignment)")
     how = parser.add_mutually_exclusive_group(required=True)
     how.add_argument("--method", metavar="M", help=f"partition method: {', '.join(METHODS)}")
