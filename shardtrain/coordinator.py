@@ -28,7 +28,7 @@ from typing import Callable
 import numpy as np
 
 from shardtrain import model, worker
-from shardtrain.errors import InputError, RunError
+from shardtrain.errors import InputError, Interrupted, RunError
 from shardtrain.settings import TrainSettings
 
 log = logging.getLogger(__name__)
@@ -42,6 +42,8 @@ PRELOAD = ["numpy", "scipy.sparse", "msgpack", "threadpoolctl", "shardtrain.work
            "shardtrain.transport.pipes"]
 JOIN_S = 5.0                 # how long stopped workers get before they are killed
 ERROR_GRACE_S = 0.5          # after a reported error, time to notice a silent death
+POLL_S = 0.2                 # the watch loop wakes at least this often
+PHASE_CHARS = 160            # room for a worker's phase text in shared memory
 
 
 @dataclass
@@ -180,10 +182,13 @@ class _EpochBook:
         self.k = k
         self.pending: dict[int, dict[int, dict]] = {}
         self.last_epoch = [None] * k
+        self.checkpoint = None           # the epoch of the latest checkpoint written
 
     def add(self, rep: dict) -> dict | None:
         w, e = int(rep["worker"]), int(rep["epoch"])
         self.last_epoch[w] = e
+        if rep.get("checkpoint") is not None:
+            self.checkpoint = int(rep["checkpoint"])
         bucket = self.pending.setdefault(e, {})
         bucket[w] = rep
         if len(bucket) < self.k:
@@ -207,7 +212,9 @@ def epoch_record(epoch: int, reports: list[dict]) -> dict:
 def train_partitioned(shard_dir, settings: TrainSettings, *, timeout_s: float = 60.0,
                       init_params=None, on_epoch: Callable[[dict], None] | None = None,
                       link=None, max_frame_bytes: int | None = None,
-                      load_shard=None, facts: "ShardDirFacts | None" = None
+                      load_shard=None, facts: "ShardDirFacts | None" = None,
+                      checkpoint: dict | None = None, resume=None,
+                      slow: dict[int, float] | None = None, fault: dict | None = None
                       ) -> PartitionedRunResult:
     """Train on the shards in `shard_dir`, one process per shard, over pipes.
 
@@ -216,7 +223,18 @@ def train_partitioned(shard_dir, settings: TrainSettings, *, timeout_s: float = 
     `timeout_s`: deadline of every receive; the coordinator itself gives up when no worker
     has said anything for 4 x timeout_s + 30 s. `load_shard` (a module-level function
     (dir, worker) -> Shard) and `facts` replace reading the shard directory, for tests.
+    `checkpoint`: {"folder", "every", "identity" (checkpoint.run_identity)}: worker 0
+    writes a checkpoint every `every` epochs and after the last (the folder is created).
+    `resume`: a checkpoint.Checkpoint to continue from (checked by the caller with
+    checkpoint.check_resumable); the run then does the epochs after it. `slow`: {worker:
+    factor} stragglers (worker.SlowCompute). `fault`: test-only (shardtrain.faults;
+    default: from the environment).
+
+    A worker that dies or fails is a RunError naming it, its exit status or signal and its
+    last phase; Ctrl-C (KeyboardInterrupt) stops every worker and becomes Interrupted,
+    naming the latest checkpoint and the `--resume DIR` that continues from it.
     """
+    from shardtrain import faults
     from shardtrain.transport import frames
     from shardtrain.transport.pipes import make_pipe_mesh
 
@@ -227,7 +245,16 @@ def train_partitioned(shard_dir, settings: TrainSettings, *, timeout_s: float = 
         init_params = model.params_to_arrays(init_params)
     options = {"timeout_s": float(timeout_s), "link": link, "init_params": init_params,
                "load_shard": load_shard,
-               "max_frame_bytes": int(max_frame_bytes or frames.DEFAULT_MAX_FRAME_BYTES)}
+               "max_frame_bytes": int(max_frame_bytes or frames.DEFAULT_MAX_FRAME_BYTES),
+               "checkpoint": checkpoint, "fault": fault or faults.from_environment()}
+    first = 1
+    if resume is not None:
+        options["resume"] = {"epoch": resume.epoch, "params": resume.params,
+                             "adam": resume.adam}
+        first = resume.epoch + 1
+    if checkpoint is not None:
+        os.makedirs(checkpoint["folder"], exist_ok=True)
+    slow = slow or {}
     ctx = multiprocessing.get_context(START_METHOD)
     if START_METHOD == "forkserver":
         ctx.set_forkserver_preload(PRELOAD)
@@ -235,23 +262,29 @@ def train_partitioned(shard_dir, settings: TrainSettings, *, timeout_s: float = 
     log_level = logging.getLogger("shardtrain").getEffectiveLevel()
     ends = make_pipe_mesh(k, mesh_pairs(k))
     procs, ctrls = [], []
+    phases = [ctx.RawArray("c", PHASE_CHARS) for _ in range(k)]
+    book = _EpochBook(k)
     try:
         with _blas_env_pinned():
             for r in range(k):
                 mine, theirs = ctx.Pipe(duplex=True)
+                mine_opts = {**options, "phase": phases[r], "slow": slow.get(r, 1.0)}
                 p = ctx.Process(target=worker.process_main, name=f"shardtrain-worker-{r}",
                                 args=(r, k, str(shard_dir), settings.to_dict(),
                                       facts.num_classes, ends[r], theirs, logs.queue,
-                                      log_level, options), daemon=True)
+                                      log_level, mine_opts), daemon=True)
                 p.start()
                 theirs.close()
                 ends[r].close()          # the child has its own copies now
                 procs.append(p)
                 ctrls.append(mine)
-        records, summaries = _watch(procs, ctrls, k, settings.epochs, on_epoch,
-                                    4 * float(timeout_s) + 30.0)
+        records, summaries = _watch(procs, ctrls, k, settings.epochs - first + 1, on_epoch,
+                                    4 * float(timeout_s) + 30.0, book, phases)
         for p in procs:
             p.join(JOIN_S)
+    except KeyboardInterrupt:
+        stop_workers(procs)
+        raise Interrupted(_interrupted_text(book, checkpoint)) from None
     finally:
         for e in ends:
             e.close()
@@ -259,17 +292,49 @@ def train_partitioned(shard_dir, settings: TrainSettings, *, timeout_s: float = 
         for c in ctrls:
             c.close()
         logs.close()
-    return assemble_result(records, summaries, facts, settings)
+    return assemble_result(records, summaries, facts, settings, epochs_run=len(records))
 
 
-def _watch(procs, ctrls, k, epochs, on_epoch, stall_s):
+def _interrupted_text(book: _EpochBook, plan: dict | None) -> str:
+    """What an interrupted run says: where it stopped and how to go on."""
+    done = [e for e in book.last_epoch if e is not None]
+    where = (f"after epoch {min(done)}" if len(done) == book.k else "before the first epoch "
+             "ended")
+    if plan is None:
+        return (f"workers stopped {where}; no checkpoint was written (add --checkpoint DIR "
+                f"to be able to resume)")
+    from shardtrain.checkpoint import INDEX
+
+    epoch = book.checkpoint
+    try:                       # worker 0 may have committed one after its last report
+        import json
+        with open(os.path.join(plan["folder"], INDEX), encoding="utf-8") as fh:
+            epoch = int(json.load(fh)["epoch"])
+    except (OSError, ValueError, KeyError, TypeError):
+        pass
+    if epoch is None:
+        return (f"workers stopped {where}; no checkpoint was written yet in "
+                f"{plan['folder']} (nothing to resume)")
+    return (f"workers stopped {where}; the latest checkpoint (epoch {epoch}) is intact in "
+            f"{plan['folder']}: run the same command with --resume {plan['folder']} to "
+            f"continue")
+
+
+def _phase_text(buf) -> str:
+    try:
+        return buf.value.decode(errors="replace") or "starting"
+    except (AttributeError, ValueError):
+        return "an unknown phase"
+
+
+def _watch(procs, ctrls, k, epochs, on_epoch, stall_s, book=None, phases=None):
     """Read reports until every worker is done; a failure stops the run with a RunError.
 
     A worker that exits without a word (a signal, os._exit) is the cause and is named at
     once. A reported error waits ERROR_GRACE_S for such a silent death, because the peers of
     a dead worker report "closed its pipe" errors that are only the consequence.
     """
-    book = _EpochBook(k)
+    book = book if book is not None else _EpochBook(k)
     records: list[dict] = []
     summaries: list[dict | None] = [None] * k
     errors: list[str] = []
@@ -280,7 +345,7 @@ def _watch(procs, ctrls, k, epochs, on_epoch, stall_s):
     while any(s is None for s in summaries):
         if error_deadline is not None and time.monotonic() >= error_deadline:
             raise RunError(errors[0])
-        ready = wait(list(open_conns) + list(sentinels), timeout=0.2)
+        ready = wait(list(open_conns) + list(sentinels), timeout=POLL_S)
         if not ready and time.monotonic() - last_news > stall_s:
             raise RunError(f"no worker reported anything for {stall_s:g} s (epochs reported: "
                            f"{_epochs_text(book.last_epoch)})")
@@ -300,8 +365,10 @@ def _watch(procs, ctrls, k, epochs, on_epoch, stall_s):
                 if summaries[r] is None and not any(e.startswith(f"worker {r} ")
                                                     for e in errors):
                     procs[r].join(1.0)
+                    during = (f"during {_phase_text(phases[r])}, " if phases is not None
+                              else "")
                     raise RunError(f"worker {r} died ({describe_exit(procs[r].exitcode)}) "
-                                   f"{_where(book.last_epoch[r])}")
+                                   f"{during}{_where(book.last_epoch[r])}")
         if errors and error_deadline is None:
             error_deadline = time.monotonic() + ERROR_GRACE_S
     if errors:
@@ -365,8 +432,8 @@ class _Structure:
         return [int(q) for q in np.flatnonzero(recv | send)]
 
 
-def assemble_result(records, summaries, facts: ShardDirFacts, settings: TrainSettings
-                    ) -> PartitionedRunResult:
+def assemble_result(records, summaries, facts: ShardDirFacts, settings: TrainSettings,
+                    epochs_run: int | None = None) -> PartitionedRunResult:
     """One result from the epoch records and every worker's `run_worker` summary (in rank
     order): predictions and labels by global id, worker 0's weights, merged profile,
     traffic measured against predicted, per-worker rows. Transport-agnostic (pipes or MPI).
@@ -383,8 +450,9 @@ def assemble_result(records, summaries, facts: ShardDirFacts, settings: TrainSet
     params = model.params_from_arrays(summaries[0]["params"], dims, settings.bias,
                                       settings.np_dtype, source="worker 0")
     merged = merge([s["profile"] for s in summaries])
-    traffic = traffic_account(merged, [s["profile"] for s in summaries], [_Structure(s["worker"], s["send_ptr"], s["halo_ptr"])
-                                       for s in summaries], dims, settings)
+    traffic = traffic_account(merged, [s["profile"] for s in summaries],
+                              [_Structure(s["worker"], s["send_ptr"], s["halo_ptr"])
+                               for s in summaries], dims, settings, epochs=epochs_run)
     rows = []
     for row, s in zip(merged["per_worker"], summaries):
         rows.append({"worker": row["rank"], "compute_s": row["compute_s"],
@@ -403,10 +471,12 @@ def model_dims_of(facts: ShardDirFacts, settings: TrainSettings) -> list[tuple[i
     return layer_dims(facts.input_dim, settings.hidden, facts.num_classes, settings.layers)
 
 
-def traffic_account(merged: dict, profiles: list[dict], structures, dims, settings: TrainSettings) -> dict:
+def traffic_account(merged: dict, profiles: list[dict], structures, dims,
+                    settings: TrainSettings, epochs: int | None = None) -> dict:
     """Measured payload and framing (from the merged profile) against the survey's
     prediction, in total and per (src, dst, kind, layer, direction). The all-reduce is
-    compared per (src, dst): its steps' direction names are the transport's own."""
+    compared per (src, dst): its steps' direction names are the transport's own.
+    `epochs`: the epochs this run did (fewer than settings.epochs after a resume)."""
     from shardtrain import survey
     from shardtrain.schedule import layer_hops
 
@@ -414,7 +484,7 @@ def traffic_account(merged: dict, profiles: list[dict], structures, dims, settin
     itemsize = settings.np_dtype.itemsize
     elements = survey.parameter_elements(hops, bias=settings.bias)
     predicted = survey.predict_traffic(structures, hops, itemsize, param_elements=elements)
-    epochs = settings.epochs
+    epochs = settings.epochs if epochs is None else int(epochs)
     predicted_total = survey.predict_run_payload(predicted, epochs, epochs)
     breakdown_pred = survey.predict_payload_breakdown(structures, hops, itemsize,
                                                       param_elements=elements, epochs=epochs,

@@ -21,7 +21,9 @@ from __future__ import annotations
 import logging
 import os
 import resource
+import signal
 import time
+from contextlib import contextmanager
 from typing import Callable
 
 import msgpack
@@ -108,6 +110,7 @@ class HaloOps:
             with self.profile.phase("exchange"):
                 self.transport.exchange(outgoing, incoming, kind=KIND_HALO, epoch=self.epoch,
                                         layer=layer, direction=direction)
+            self.on_phase(f"epoch {self.epoch} compute")
             with self.profile.phase("compute"):
                 return self.adj @ stacked
         return propagate
@@ -124,11 +127,41 @@ class HaloOps:
         with self.profile.phase("exchange"):
             self.transport.exchange(outgoing, incoming, kind=KIND_HALO, epoch=self.epoch,
                                     layer=layer, direction=BACKWARD)
+        self.on_phase(f"epoch {self.epoch} compute")
         with self.profile.phase("compute"):
             out = local[:self.n_owned]
             for q in self.peers:
                 out[self.send_idx[q]] += incoming[q]
             return np.ascontiguousarray(out)
+
+
+# ---------------------------------------------------------------- a straggler on purpose
+
+class SlowCompute:
+    """A profile whose compute phases take `factor` times as long: after each one it
+    sleeps (factor - 1) x the compute time it measured (its own, without nested phases),
+    inside the phase, so the profile books the delay as compute and the other workers'
+    waits show what a straggler costs them (--slow-worker)."""
+
+    def __init__(self, profile, factor: float):
+        self._profile, self.factor = profile, float(factor)
+        self._inner = 0.0                  # time spent in phases nested in the current one
+
+    def __getattr__(self, name):
+        return getattr(self._profile, name)
+
+    @contextmanager
+    def phase(self, name: str):
+        start = time.perf_counter()
+        outer_inner, self._inner = self._inner, 0.0
+        try:
+            with self._profile.phase(name):
+                yield
+                own = time.perf_counter() - start - self._inner
+                if name == "compute" and own > 0:
+                    time.sleep((self.factor - 1.0) * own)
+        finally:
+            self._inner = outer_inner + (time.perf_counter() - start)
 
 
 # ---------------------------------------------------------------- the training loop
@@ -145,7 +178,9 @@ def _split_masks(shard) -> list:
 def run_worker(shard, settings: TrainSettings, transport, profile, report: Callable[[dict], None],
                *, num_classes: int, init_params=None, init_adam: dict | None = None,
                epochs_range: range | None = None,
-               on_phase: Callable[[str], None] | None = None) -> dict:
+               on_phase: Callable[[str], None] | None = None,
+               on_epoch_end: Callable[[int, model.Params, model.Adam], dict | None]
+               | None = None, slow_factor: float = 1.0) -> dict:
     """Train on `shard` for the epochs of `epochs_range` (default 1..settings.epochs).
 
     After every step an evaluation forward (no dropout, halo frames with direction "eval")
@@ -157,9 +192,14 @@ def run_worker(shard, settings: TrainSettings, transport, profile, report: Calla
     `num_classes` is the whole graph's (a shard may lack some classes). To resume, give
     `init_params`, `init_adam` (`model.Adam.state()` arrays) and the remaining
     `epochs_range`: the dropout keys are the epoch numbers, so the run continues exactly.
+    `on_epoch_end(epoch, params, adam)` runs after each epoch's evaluation and before its
+    report (worker 0 writes checkpoints there); a dict it returns is added to the report.
+    `slow_factor` > 1 makes every compute phase that many times longer (`SlowCompute`).
     """
     dtype = settings.np_dtype
     on_phase = on_phase or (lambda text: None)
+    if slow_factor > 1.0:
+        profile = SlowCompute(profile, slow_factor)
     dims = shard_dims(shard, settings, num_classes)
     hops = layer_hops(dims)
     if init_params is None:
@@ -189,11 +229,12 @@ def run_worker(shard, settings: TrainSettings, transport, profile, report: Calla
         on_phase(f"epoch {ops.epoch} all-reduce")
         with profile.phase("allreduce"):
             transport.allreduce_sum(flat, epoch=ops.epoch)
+        on_phase(f"epoch {ops.epoch} compute")
 
     logits = None
     for epoch in epochs:
         ops.epoch = epoch
-        on_phase(f"epoch {epoch} forward")
+        on_phase(f"epoch {epoch} compute")
         start = time.perf_counter()
         with profile.phase("compute"):
             penalty = model.weight_decay_penalty(params, settings.weight_decay)
@@ -208,9 +249,10 @@ def run_worker(shard, settings: TrainSettings, transport, profile, report: Calla
             logits, _ = model.forward(params, x, hops, propagate_eval, model.no_dropout)
             correct = model.correct_counts(logits, labels, masks)
         eval_s = time.perf_counter() - start - step_s
+        extra = on_epoch_end(epoch, params, adam) if on_epoch_end is not None else None
         report({"worker": shard.worker, "epoch": epoch, "loss_part": float(loss_part),
                 "penalty": float(penalty), "correct": correct, "totals": totals,
-                "step_s": step_s, "eval_s": eval_s})
+                "step_s": step_s, "eval_s": eval_s, **(extra or {})})
 
     on_phase("finished")
     predictions = (np.argmax(logits, axis=1).astype(np.int64) if logits is not None
@@ -223,7 +265,7 @@ def run_worker(shard, settings: TrainSettings, transport, profile, report: Calla
         "labels": (np.asarray(shard.labels, dtype=np.int64) if shard.labels is not None
                    else np.full(shard.num_owned, -1, dtype=np.int64)),
         "params": model.params_to_arrays(params) if shard.worker == 0 else None,
-        "profile": profile.to_dict(),
+        "profile": profile.to_dict(),     # (SlowCompute passes to_dict through)
         "peak_rss_bytes": peak_rss_bytes(),
         "cpu_s": float(usage.ru_utime + usage.ru_stime),
         "send_ptr": [int(v) for v in shard.send_ptr],
@@ -297,16 +339,29 @@ def process_main(rank: int, size: int, shard_dir: str, settings_dict: dict, num_
     Loads only its own shard, trains, and talks to the coordinator over `ctrl` with msgpack
     messages: {"type": "epoch", ...} per epoch, then {"type": "done", ...}, or
     {"type": "error", "worker", "phase", "message"} on failure (exit status 1).
+    SIGINT is ignored: on a terminal Ctrl-C reaches every process of the group, and the
+    coordinator decides (it stops the workers with SIGTERM).
     options: timeout_s, max_frame_bytes, link (LinkModel or None), init_params (dict or
     None), load_shard (a module-level function (dir, worker) -> Shard, or None for
-    `shards.load_shard`; tests and fault injection pass their own).
+    `shards.load_shard`; tests and fault injection pass their own), phase (a shared
+    char buffer the coordinator reads when this process dies without a word), checkpoint
+    ({"folder", "every", "identity"} or None; worker 0 writes), resume ({"epoch",
+    "params", "adam"} or None), slow (compute factor), fault (see `shardtrain.faults`).
     """
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
     pin_blas_threads()
     _install_log_queue(log_queue, log_level)
+    from shardtrain.faults import Fault
+
     phase = ["starting"]
+    phase_buf = options.get("phase")
+    fault = Fault(options.get("fault"), rank)
 
     def on_phase(text: str) -> None:
         phase[0] = text
+        if phase_buf is not None:
+            phase_buf.value = text.encode()[:len(phase_buf) - 1]
+        fault(text)
 
     def send(msg: dict) -> None:
         ctrl.send_bytes(encode_message(msg))
@@ -327,12 +382,22 @@ def process_main(rank: int, size: int, shard_dir: str, settings_dict: dict, num_
         transport = PipeTransport(rank, size, ends, profile, timeout_s=options["timeout_s"],
                                   max_frame_bytes=options["max_frame_bytes"],
                                   link=options.get("link"))
+        fault.transport = transport
         log.debug("worker %d: %d owned, %d halo rows, peers %s", rank, shard.num_owned,
                   shard.num_halo, shard.peers())
+        resume = options.get("resume")
+        init_params, init_adam, epochs = options.get("init_params"), None, None
+        if resume is not None:
+            init_params, init_adam = resume["params"], resume["adam"]
+            epochs = range(int(resume["epoch"]) + 1, settings.epochs + 1)
+        plan = options.get("checkpoint") if rank == 0 else None
         summary = run_worker(shard, settings, transport, profile,
                              lambda rec: send({"type": "epoch", **rec}),
-                             num_classes=num_classes, init_params=options.get("init_params"),
-                             on_phase=on_phase)
+                             num_classes=num_classes, init_params=init_params,
+                             init_adam=init_adam, epochs_range=epochs, on_phase=on_phase,
+                             on_epoch_end=(_checkpoint_writer(plan, settings.epochs, on_phase)
+                                           if plan else None),
+                             slow_factor=float(options.get("slow") or 1.0))
         send({"type": "done", **encode_summary(summary)})
     except BaseException as exc:  # noqa: BLE001 - everything must reach the coordinator
         status = 1
@@ -351,3 +416,23 @@ def process_main(rank: int, size: int, shard_dir: str, settings_dict: dict, num_
         ctrl.close()
     if status:
         raise SystemExit(status)
+
+
+def _checkpoint_writer(plan: dict, last_epoch: int, on_phase: Callable[[str], None]):
+    """Worker 0's end-of-epoch hook: every plan["every"] epochs and at the last one, write
+    the weights and Adam state (identical on every worker after the all-reduce, so one
+    writer is enough and nothing large crosses the control pipe)."""
+    from shardtrain import checkpoint
+
+    def write(epoch: int, params, adam) -> dict | None:
+        if epoch % plan["every"] and epoch != last_epoch:
+            return None
+        on_phase(f"epoch {epoch} checkpoint write")
+        checkpoint.write_checkpoint(
+            plan["folder"], epoch, model.params_to_arrays(params), adam.state(),
+            plan["identity"], every=plan["every"],
+            before_commit=lambda: on_phase(f"epoch {epoch} checkpoint write, index not yet "
+                                           f"renamed"))
+        on_phase(f"epoch {epoch} compute")
+        return {"checkpoint": epoch}
+    return write

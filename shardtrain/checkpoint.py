@@ -1,0 +1,209 @@
+"""Checkpoints of a partitioned run: write them atomically, read them back, refuse a
+resume that contradicts them.
+
+A checkpoint folder holds two kinds of file:
+- `state-EEEEEE.npz`: the weights (`w0`, `b0`, ...) and the Adam state (`adam_t`,
+  `adam_m_<name>`, `adam_v_<name>`) after the step of epoch E; plain arrays, read back
+  with allow_pickle=False;
+- `checkpoint.json`: the index: the epoch, the state file's name and SHA-256, and the
+  run's identity (settings, model dims, worker count, graph and shard-directory
+  fingerprints) that a resume must match.
+Both are written through `shardtrain.files` (temporary name, fsync, rename). The state file
+is written first under a new name, then the index is renamed onto the old one: that
+rename is the commit. A crash at any moment leaves the previous index and the state file
+it names untouched, so the latest committed checkpoint is always readable. Older state
+files are removed only after the commit.
+
+The random stream needs no saved position: dropout masks come from a counter-based
+generator keyed by (seed, epoch, layer, global vertex id), so the epoch IS the position;
+the index records the seed and the next epoch to make that explicit.
+"""
+from __future__ import annotations
+
+import hashlib
+import json
+import re
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+
+from shardtrain.errors import InputError
+
+FORMAT = "shardtrain-checkpoint"
+VERSION = 1
+INDEX = "checkpoint.json"
+_STATE_RE = re.compile(r"state-\d{6}\.npz")
+# settings a resume may change: only how long the run goes on
+_FREE_SETTINGS = ("epochs",)
+_OPTION_OF = {"layers": "--layers", "hidden": "--hidden", "dropout": "--dropout",
+              "lr": "--lr", "weight_decay": "--weight-decay", "seed": "--seed",
+              "dtype": "--dtype", "bias": "--bias"}
+
+
+def state_file_name(epoch: int) -> str:
+    return f"state-{epoch:06d}.npz"
+
+
+def file_sha256(path) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
+def shard_dir_fingerprint(shard_dir) -> str:
+    """SHA-256 (16 hex digits) of the manifest and every shard file, in manifest order."""
+    from shardtrain.shards import MANIFEST, load_manifest
+
+    manifest = load_manifest(shard_dir)
+    h = hashlib.sha256()
+    for name in [MANIFEST, *manifest["files"]]:
+        h.update(name.encode() + b"\0")
+        with open(Path(shard_dir) / name, "rb") as fh:
+            for block in iter(lambda: fh.read(1 << 20), b""):
+                h.update(block)
+    return h.hexdigest()[:16]
+
+
+def run_identity(settings, *, workers: int, dims, graph_fingerprint, shards_fingerprint
+                 ) -> dict:
+    """What a checkpoint must share with the run that resumes it."""
+    return {"settings": {k: v for k, v in settings.to_dict().items()
+                         if k not in _FREE_SETTINGS},
+            "workers": int(workers), "dims": [list(map(int, d)) for d in dims],
+            "graph_fingerprint": graph_fingerprint, "shards_fingerprint": shards_fingerprint}
+
+
+def write_checkpoint(folder, epoch: int, params: dict, adam_state: dict, identity: dict, *,
+                     every: int, before_commit: Callable[[], None] | None = None) -> Path:
+    """Write the checkpoint of `epoch` into `folder` (which must exist); returns the index.
+
+    `before_commit` runs after the state file is on disk and before the index is renamed
+    (a place for tests to stop the process at the worst moment).
+    """
+    from shardtrain.files import save_npz_atomic, write_json_atomic
+
+    folder = Path(folder)
+    state_name = state_file_name(epoch)
+    save_npz_atomic(folder / state_name, **params, **adam_state)
+    doc = {"format": FORMAT, "version": VERSION, "epoch": int(epoch),
+           "state_file": state_name, "state_sha256": file_sha256(folder / state_name),
+           "checkpoint_every": int(every),
+           "random_stream": {"generator": "counter-based, keyed by (seed, epoch, layer, "
+                                          "vertex)", "seed": identity["settings"]["seed"],
+                             "next_epoch": int(epoch) + 1},
+           **identity}
+    if before_commit is not None:
+        before_commit()
+    write_json_atomic(folder / INDEX, doc)
+    for old in folder.iterdir():          # superseded state files and stray temporaries
+        if old.name != state_name and (_STATE_RE.fullmatch(old.name)
+                                       or (old.name.startswith(".state-")
+                                           and ".tmp" in old.name)):
+            old.unlink(missing_ok=True)
+    return folder / INDEX
+
+
+@dataclass
+class Checkpoint:
+    folder: Path
+    epoch: int
+    doc: dict                    # the index
+    params: dict                 # w0, b0, ... -> array
+    adam: dict                   # adam_t, adam_m_*, adam_v_* -> array
+
+
+def has_checkpoint(folder) -> bool:
+    return (Path(folder) / INDEX).is_file()
+
+
+def read_checkpoint(folder, option: str = "--resume") -> Checkpoint:
+    """The committed checkpoint in `folder`; InputError naming the option and file."""
+    folder = Path(folder)
+    index = folder / INDEX
+    where = f"{option} {folder}"
+    if not folder.is_dir():
+        raise InputError(f"{where}: no such folder")
+    if not index.is_file():
+        raise InputError(f"{where}: no {INDEX} (not a checkpoint folder)")
+    try:
+        doc = json.loads(index.read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, ValueError) as exc:
+        raise InputError(f"{index}: not readable JSON ({' '.join(str(exc).split())})") from None
+    if not isinstance(doc, dict) or doc.get("format") != FORMAT:
+        raise InputError(f"{index}: not a shardtrain checkpoint (format is not {FORMAT!r})")
+    if doc.get("version") != VERSION:
+        raise InputError(f"{index}: checkpoint version {doc.get('version')!r}, this "
+                         f"shardtrain reads version {VERSION}")
+    epoch, state_name = doc.get("epoch"), doc.get("state_file")
+    if not isinstance(epoch, int) or epoch < 1:
+        raise InputError(f"{index}: 'epoch' missing or not a positive integer")
+    if not isinstance(state_name, str) or not _STATE_RE.fullmatch(state_name):
+        raise InputError(f"{index}: 'state_file' missing or not a state-NNNNNN.npz name")
+    for key in ("settings", "workers", "dims"):
+        if key not in doc:
+            raise InputError(f"{index}: missing key {key!r}")
+    state = folder / state_name
+    if not state.is_file():
+        raise InputError(f"{state}: no such file (named by {index})")
+    if file_sha256(state) != doc.get("state_sha256"):
+        raise InputError(f"{state}: contents differ from the SHA-256 recorded in {index}")
+    try:
+        with np.load(state, allow_pickle=False) as z:
+            arrays = {k: z[k] for k in z.files}
+    except (OSError, ValueError, EOFError) as exc:
+        raise InputError(f"{state}: not a readable .npz ({' '.join(str(exc).split())})"
+                         ) from None
+    params = {k: v for k, v in arrays.items() if not k.startswith("adam_")}
+    adam = {k: v for k, v in arrays.items() if k.startswith("adam_")}
+    if int(np.asarray(adam.get("adam_t", -1))) != epoch:
+        raise InputError(f"{state}: Adam step count differs from the epoch {epoch} in {index}")
+    return Checkpoint(folder, epoch, doc, params, adam)
+
+
+def check_resumable(ckpt: Checkpoint, identity: dict, *, epochs: int,
+                    graph_label: str = "GRAPH") -> None:
+    """Refuse (InputError naming the option and what differs) a resume that contradicts
+    the checkpoint: another graph, shard layout, model shape, worker count or setting."""
+    doc, src = ckpt.doc, f"--resume {ckpt.folder}"
+    for key, mine in identity["settings"].items():
+        theirs = doc["settings"].get(key)
+        if theirs != mine:
+            raise InputError(f"{_OPTION_OF.get(key, key)}: this run asks for {mine!r}, the "
+                             f"checkpoint in {ckpt.folder} was written with {theirs!r} "
+                             f"({src} needs the same settings)")
+    if doc["workers"] != identity["workers"]:
+        raise InputError(f"--workers: this run has {identity['workers']} workers, the "
+                         f"checkpoint in {ckpt.folder} was written by {doc['workers']} "
+                         f"(resume on the same worker count)")
+    if doc["dims"] != identity["dims"]:
+        raise InputError(f"{graph_label}: model layers {identity['dims']} differ from the "
+                         f"checkpoint's {doc['dims']} ({src}): another feature width or "
+                         f"class count")
+    for key, what in (("graph_fingerprint", "graph"), ("shards_fingerprint", "shards")):
+        mine, theirs = identity.get(key), doc.get(key)
+        if mine is not None and theirs is not None and mine != theirs:
+            raise InputError(f"{graph_label}: another {what} than the checkpoint's "
+                             f"(fingerprint {mine} against {theirs} in {ckpt.folder})")
+    if ckpt.epoch >= epochs:
+        raise InputError(f"--epochs {epochs}: the checkpoint in {ckpt.folder} is already at "
+                         f"epoch {ckpt.epoch}; ask for more epochs to continue")
+
+
+def check_folder(folder, *, resuming_from=None) -> Path:
+    """The --checkpoint folder: it may be missing (the run creates it; its parent must
+    exist); one holding another run's checkpoint is refused unless that run is the one
+    being resumed."""
+    folder = Path(folder)
+    if folder.exists() and not folder.is_dir():
+        raise InputError(f"--checkpoint {folder}: exists and is not a folder")
+    if not folder.parent.is_dir():
+        raise InputError(f"--checkpoint {folder}: folder {folder.parent} does not exist")
+    if has_checkpoint(folder) and (resuming_from is None or
+                                   Path(resuming_from).resolve() != folder.resolve()):
+        raise InputError(f"--checkpoint {folder}: holds a checkpoint already; continue it "
+                         f"with --resume {folder} or choose an empty folder")
+    return folder
