@@ -130,9 +130,9 @@ class _Outbox:
         self.pending.append((req, data))
         self.pending = [(r, d) for r, d in self.pending if not r.Test()]
 
-    def flush(self, timeout_s: float) -> None:
-        _poll(self.comm, [r for r, _ in self.pending], timeout_s, "rank 0 to take the "
-              "reports")
+    def flush(self, timeout_s: float, what: str) -> None:
+        """Wait until every message has been taken by its receiver."""
+        _poll(self.comm, [r for r, _ in self.pending], timeout_s, what)
         self.pending = []
 
 
@@ -192,7 +192,7 @@ def stop_job(comm, code: int, timeout_s: float = 60.0) -> None:
     out = _Outbox(comm)
     for q in range(1, comm.Get_size()):
         out.send(q, TAG_START, {"stop": int(code)})
-    out.flush(timeout_s)
+    out.flush(timeout_s, "the other ranks to take the stop message")
 
 
 def _start(comm, shard_dir, settings, init_params, timeout_s: float):
@@ -228,7 +228,7 @@ def _start(comm, shard_dir, settings, init_params, timeout_s: float):
     out = _Outbox(comm)
     for q in range(1, comm.Get_size()):
         out.send(q, TAG_START, msg)
-    out.flush(timeout_s)
+    out.flush(timeout_s, "the other ranks to take the start message")
     return settings, facts, init_params
 
 
@@ -281,7 +281,7 @@ def train_mpi(shard_dir, settings: TrainSettings | None, *, comm=None,
         transport.close()
     if book is None:
         outbox.send(ROOT, TAG_SUMMARY, worker.encode_summary(summary))
-        outbox.flush(timeout_s)
+        outbox.flush(timeout_s, "rank 0 to take the reports and the summary")
         return None
     book.wait_for(settings.epochs, timeout_s)
     summaries = [summary] + [None] * (size - 1)
