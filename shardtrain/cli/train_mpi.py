@@ -15,10 +15,11 @@ from shardtrain.errors import EXIT_BAD_INPUT, EXIT_INTERRUPTED, EXIT_RUN_FAILED,
     RunError
 
 STOP_TIMEOUT_S = 60.0
+UNSUPPORTED = ("checkpoint", "resume", "slow_worker", "emulate_link")
 
 
 def _prepare(args):
-    """Rank 0's checks: (settings, init weights); InputError otherwise."""
+    """Rank 0's checks: (settings, shard facts, init weights); InputError otherwise."""
     from shardtrain.cli import train
     from shardtrain.coordinator import model_dims_of, shard_dir_facts
 
@@ -26,6 +27,9 @@ def _prepare(args):
         raise InputError(f"--transport mpi: {args.graph} is not a shard directory (write one "
                          f"with `shardtrain split`; every rank must see it at this path)")
     settings, _ = train._check_options(args)
+    for name in UNSUPPORTED:                 # options of the pipes run only (if present)
+        if getattr(args, name, None):
+            raise InputError(f"--{name.replace('_', '-')}: not supported with --transport mpi")
     facts = shard_dir_facts(args.graph)
     if args.workers is not None and args.workers != facts.workers:
         raise InputError(f"--workers {args.workers}: {args.graph} holds {facts.workers} shards")
@@ -62,6 +66,7 @@ def run_mpi(args) -> int:
     progress = None
     try:
         settings = facts = init = None
+        max_frame = getattr(args, "max_frame_bytes", None)     # the same on every rank
         if rank == mpirun.ROOT:
             try:
                 settings, facts, init = _prepare(args)
@@ -70,7 +75,8 @@ def run_mpi(args) -> int:
                 raise mpirun.JobStopped(str(exc), EXIT_BAD_INPUT, report=True) from None
             progress = train._Progress(settings.epochs, args.quiet)
         result = mpirun.train_mpi(args.graph, settings, comm=comm, timeout_s=args.timeout,
-                                  init_params=init, on_epoch=progress)
+                                  init_params=init, on_epoch=progress,
+                                  max_frame_bytes=max_frame)
         if progress is not None:
             progress.close()
             progress = None
