@@ -8,17 +8,26 @@ temporary directory and trains with one process per shard, exchanging halo rows 
 Per epoch: loss, train/val/test accuracy; at the end a per-worker table of time, traffic and
 memory, and the measured payload against the survey's prediction. --seed seeds the split
 masks the graph does not give, the initial weights and the dropout masks.
+
+Faults: a worker that dies or fails ends the run (exit 3) with one line naming it, its
+exit status or signal and its last phase; Ctrl-C or SIGTERM stops every worker (exit 4)
+and names the `--resume DIR` that continues from the latest checkpoint
+(`--checkpoint DIR --checkpoint-every N`). In float64 a resumed run ends with the very
+same weights, bit for bit, as a run that was never interrupted.
 """
 from __future__ import annotations
 
+import math
 import shutil
+import signal
 import sys
 import tempfile
 from pathlib import Path
 
 import numpy as np
 
-from shardtrain.cli.common import add_graph_arguments, load_graph_from_args
+from shardtrain.cli.common import add_graph_arguments, load_graph_from_args, \
+    positive_int_type
 from shardtrain.errors import InputError
 from shardtrain.settings import DTYPES, TrainSettings
 
@@ -78,6 +87,21 @@ def add_arguments(parser) -> None:
     parser.add_argument("--bias", action="store_true", help="add a bias to every layer")
     parser.add_argument("--timeout", type=_number("--timeout", float), default=60.0,
                         metavar="S", help="deadline of every halo/all-reduce receive (default 60)")
+    parser.add_argument("--max-frame-bytes", type=positive_int_type("--max-frame-bytes"),
+                        metavar="N", help="refuse halo/all-reduce frames larger than N bytes "
+                                          "(default 2 GiB)")
+    parser.add_argument("--checkpoint", metavar="DIR",
+                        help="write checkpoints (weights, Adam state, epoch, run identity) "
+                             "into DIR, atomically")
+    parser.add_argument("--checkpoint-every", type=positive_int_type("--checkpoint-every"),
+                        metavar="N", help="epochs between checkpoints (default 10; one is "
+                                          "always written after the last epoch)")
+    parser.add_argument("--resume", metavar="DIR",
+                        help="continue the run whose checkpoint is in DIR (same graph, "
+                             "settings and workers; checkpoints go on into DIR)")
+    parser.add_argument("--slow-worker", metavar="W:FACTOR", action="append", default=[],
+                        help="make worker W's compute FACTOR (>= 1) times slower, to see the "
+                             "wait a straggler causes (repeatable)")
     parser.add_argument("--json", metavar="OUT", help="write the run's account as JSON")
     parser.add_argument("--weights", metavar="OUT.npz", help="write the final weights")
     parser.add_argument("--init-weights", metavar="IN.npz", help="start from these weights")
@@ -149,7 +173,70 @@ def _check_options(args) -> tuple[TrainSettings, bool]:
             raise InputError(f"--method {args.method!r}: expected one of {', '.join(METHODS)}")
     if args.assignment is not None and not Path(args.assignment).is_file():
         raise InputError(f"--assignment {args.assignment}: no such file")
+    _check_fault_options(args)
     return settings, shard_dir
+
+
+DEFAULT_CHECKPOINT_EVERY = 10
+
+
+def parse_slow_workers(items: list[str]) -> dict[int, float]:
+    """['1:3', '0:1.5'] -> {1: 3.0, 0: 1.5}; InputError naming --slow-worker."""
+    out: dict[int, float] = {}
+    for text in items:
+        who, sep, factor = text.partition(":")
+        try:
+            w, f = int(who), float(factor)
+        except ValueError:
+            raise InputError(f"--slow-worker {text!r}: expected W:FACTOR, e.g. 1:3") from None
+        if not sep or w < 0:
+            raise InputError(f"--slow-worker {text!r}: expected W:FACTOR with W >= 0")
+        if not (math.isfinite(f) and f >= 1):
+            raise InputError(f"--slow-worker {text!r}: FACTOR must be a number >= 1")
+        if w in out:
+            raise InputError(f"--slow-worker {text!r}: worker {w} given twice")
+        out[w] = f
+    return out
+
+
+def _check_fault_options(args) -> None:
+    """--checkpoint, --checkpoint-every, --resume, --slow-worker, --max-frame-bytes."""
+    from shardtrain import checkpoint
+
+    extras = [(flag, given) for flag, given in (
+        ("--checkpoint", args.checkpoint), ("--checkpoint-every", args.checkpoint_every),
+        ("--resume", args.resume), ("--slow-worker", args.slow_worker),
+        ("--max-frame-bytes", args.max_frame_bytes)) if given]
+    for flag, _ in extras:
+        if args.reference:
+            raise InputError(f"{flag}: not available with --reference (partitioned runs only)")
+        if args.transport == "mpi" and flag != "--max-frame-bytes":
+            raise InputError(f"{flag}: not available with --transport mpi")
+    if args.checkpoint_every is not None and not (args.checkpoint or args.resume):
+        raise InputError("--checkpoint-every: give --checkpoint DIR as well")
+    slow = parse_slow_workers(args.slow_worker)
+    if args.workers is not None:
+        _check_slow_range(slow, args.workers)
+    if args.resume and args.init_weights:
+        raise InputError("--init-weights: not allowed with --resume (the checkpoint holds "
+                         "the weights)")
+    args.resumed = checkpoint.read_checkpoint(args.resume) if args.resume else None
+    if args.resumed is not None and args.checkpoint is None:
+        args.checkpoint = args.resume
+    if args.checkpoint is not None:
+        checkpoint.check_folder(args.checkpoint, resuming_from=args.resume)
+        if args.checkpoint_every is None:
+            stored = (args.resumed.doc.get("checkpoint_every") if args.resumed is not None
+                      else None)
+            args.checkpoint_every = stored if isinstance(stored, int) and stored > 0 \
+                else DEFAULT_CHECKPOINT_EVERY
+
+
+def _check_slow_range(slow: dict[int, float], workers: int) -> None:
+    for w in slow:
+        if w >= workers:
+            raise InputError(f"--slow-worker {w}:{slow[w]:g}: worker {w} does not exist "
+                             f"(workers 0..{workers - 1})")
 
 
 def load_init_weights(path, dims, settings: TrainSettings):
@@ -171,12 +258,12 @@ def load_init_weights(path, dims, settings: TrainSettings):
 class _Progress:
     """A tqdm bar on a terminal, one line per epoch otherwise, nothing with --quiet."""
 
-    def __init__(self, epochs: int, quiet: bool):
+    def __init__(self, epochs: int, quiet: bool, done: int = 0):
         self.bar = None
         self.quiet = quiet
         if not quiet and sys.stderr.isatty():
             from tqdm import tqdm
-            self.bar = tqdm(total=epochs, unit="epoch", file=sys.stderr)
+            self.bar = tqdm(total=epochs, initial=done, unit="epoch", file=sys.stderr)
         self.epochs = epochs
 
     def __call__(self, rec: dict) -> None:
@@ -272,6 +359,7 @@ def run(args) -> int:
             graph_doc = {"shard_dir": str(args.graph), "num_vertices": facts.num_vertices,
                          "workers": facts.workers}
             shard_dir, labels = args.graph, None
+            graph_fp = _manifest_fingerprint(shard_dir)
         else:
             from shardtrain.reference import check_trainable, model_dims
 
@@ -288,20 +376,30 @@ def run(args) -> int:
             graph_doc = {"source": loaded.source, "num_vertices": graph.num_vertices,
                          "num_edges": graph.num_edges, "notes": list(loaded.notes)}
             labels = graph.labels
+            from shardtrain.graph import fingerprint
+            graph_fp = fingerprint(graph)
             if not args.reference:
                 tmp_dir = tempfile.mkdtemp(prefix="shardtrain-shards-")
                 shard_dir = str(Path(tmp_dir) / "shards")
                 _build_shard_dir(graph, args, assignment, shard_dir, dims)
-        progress = _Progress(settings.epochs, args.quiet)
-        if args.reference:
-            from shardtrain.reference import train_reference
-            result = train_reference(graph, settings, init_params=init, on_epoch=progress)
-        else:
-            from shardtrain.coordinator import train_partitioned
-            result = train_partitioned(shard_dir, settings, timeout_s=args.timeout,
-                                       init_params=init, on_epoch=progress)
-            if labels is None:
-                labels = result.labels
+        plan = None
+        if not args.reference:
+            plan = _checkpoint_plan(args, settings, shard_dir, dims, graph_fp)
+        progress = _Progress(settings.epochs, args.quiet,
+                             args.resumed.epoch if args.resumed is not None else 0)
+        with _sigterm_as_interrupt():
+            if args.reference:
+                from shardtrain.reference import train_reference
+                result = train_reference(graph, settings, init_params=init, on_epoch=progress)
+            else:
+                from shardtrain.coordinator import train_partitioned
+                result = train_partitioned(shard_dir, settings, timeout_s=args.timeout,
+                                           init_params=init, on_epoch=progress,
+                                           max_frame_bytes=args.max_frame_bytes,
+                                           checkpoint=plan, resume=args.resumed,
+                                           slow=parse_slow_workers(args.slow_worker))
+                if labels is None:
+                    labels = result.labels
         progress.close()
         progress = None
     finally:
@@ -313,6 +411,12 @@ def run(args) -> int:
     doc = {"settings": settings.to_dict(), "graph": graph_doc,
            "mode": "reference" if args.reference else "partitioned",
            "epochs": result.epochs}
+    if args.resumed is not None:
+        doc["resumed_from"] = {"folder": str(args.resume), "epoch": args.resumed.epoch}
+    if plan is not None:
+        doc["checkpoint"] = {"folder": plan["folder"], "every": plan["every"]}
+    if args.slow_worker:
+        doc["slow_workers"] = {str(w): f for w, f in parse_slow_workers(args.slow_worker).items()}
     if not args.reference:
         doc["traffic"] = result.traffic
         doc["workers"] = result.workers
@@ -327,6 +431,53 @@ def run(args) -> int:
             for line in _traffic_lines(result.traffic):
                 print(line)
     return 0
+
+
+def _manifest_fingerprint(shard_dir):
+    from shardtrain.shards import load_manifest
+
+    return load_manifest(shard_dir).get("graph_fingerprint")
+
+
+def _checkpoint_plan(args, settings, shard_dir, dims, graph_fp) -> dict | None:
+    """Check --slow-worker and --resume against the shards; the checkpoint plan or None."""
+    from shardtrain import checkpoint
+    from shardtrain.coordinator import shard_dir_facts
+
+    k = shard_dir_facts(shard_dir).workers
+    _check_slow_range(parse_slow_workers(args.slow_worker), k)
+    if args.checkpoint is None and args.resumed is None:
+        return None
+    identity = checkpoint.run_identity(settings, workers=k, dims=dims,
+                                       graph_fingerprint=graph_fp,
+                                       shards_fingerprint=checkpoint.shard_dir_fingerprint(
+                                           shard_dir))
+    if args.resumed is not None:
+        checkpoint.check_resumable(args.resumed, identity, epochs=settings.epochs)
+    return {"folder": str(args.checkpoint), "every": int(args.checkpoint_every),
+            "identity": identity}
+
+
+class _Terminated(KeyboardInterrupt):
+    """SIGTERM, handled like Ctrl-C: the coordinator stops the workers."""
+
+
+class _sigterm_as_interrupt:
+    """While training, SIGTERM raises in the main thread as Ctrl-C does."""
+
+    def __enter__(self):
+        def handler(signum, frame):
+            raise _Terminated()
+        try:
+            self.saved = signal.signal(signal.SIGTERM, handler)
+        except ValueError:           # not the main thread (embedded use): leave it alone
+            self.saved = None
+        return self
+
+    def __exit__(self, *exc):
+        if self.saved is not None:
+            signal.signal(signal.SIGTERM, self.saved)
+        return False
 
 
 def _build_shard_dir(graph, args, assignment, shard_dir: str, dims) -> None:
