@@ -344,7 +344,7 @@ def _watch(procs, ctrls, k, epochs, on_epoch, stall_s, book=None, phases=None):
     last_news = time.monotonic()
     while any(s is None for s in summaries):
         if error_deadline is not None and time.monotonic() >= error_deadline:
-            raise RunError(errors[0])
+            raise RunError(_root_cause(errors))
         ready = wait(list(open_conns) + list(sentinels), timeout=POLL_S)
         if not ready and time.monotonic() - last_news > stall_s:
             raise RunError(f"no worker reported anything for {stall_s:g} s (epochs reported: "
@@ -372,10 +372,18 @@ def _watch(procs, ctrls, k, epochs, on_epoch, stall_s, book=None, phases=None):
         if errors and error_deadline is None:
             error_deadline = time.monotonic() + ERROR_GRACE_S
     if errors:
-        raise RunError(errors[0])
+        raise RunError(_root_cause(errors))
     if len(records) != epochs:
         raise RunError(f"workers finished after {len(records)} of {epochs} epochs")
     return records, summaries
+
+
+CONSEQUENCE = "closed its pipe"     # the transport's words for a peer that went away
+
+
+def _root_cause(errors: list[str]) -> str:
+    """The first error that is not only the echo of another worker's exit."""
+    return next((e for e in errors if CONSEQUENCE not in e), errors[0])
 
 
 def _drain(conn, r, book, records, summaries, on_epoch) -> list[str]:

@@ -106,5 +106,6 @@ class Fault:
             else:
                 header["source"] = (t.rank + 1) % t.size if t.size > 1 else t.rank + 1
             os.write(fd, frames.encode_header(**header))
-        if mode == "truncated":
-            t.close()          # the pipe closes mid-frame: the reader sees a truncated frame
+        if mode == "truncated":     # the pipe closes mid-frame: the reader sees a truncated
+            for conn in t._ends.send.values():       # frame (reads stay open, so a peer's
+                conn.close()                          # send to us does not fail first)
