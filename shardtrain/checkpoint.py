@@ -183,10 +183,11 @@ def check_resumable(ckpt: Checkpoint, identity: dict, *, epochs: int,
         raise InputError(f"{graph_label}: model layers {identity['dims']} differ from the "
                          f"checkpoint's {doc['dims']} ({src}): another feature width or "
                          f"class count")
-    for key, what in (("graph_fingerprint", "graph"), ("shards_fingerprint", "shards")):
+    for key, what in (("graph_fingerprint", "graph"),
+                      ("shards_fingerprint", "shard layout")):
         mine, theirs = identity.get(key), doc.get(key)
         if mine is not None and theirs is not None and mine != theirs:
-            raise InputError(f"{graph_label}: another {what} than the checkpoint's "
+            raise InputError(f"{graph_label}: a different {what} from the checkpoint's "
                              f"(fingerprint {mine} against {theirs} in {ckpt.folder})")
     if ckpt.epoch >= epochs:
         raise InputError(f"--epochs {epochs}: the checkpoint in {ckpt.folder} is already at "

@@ -453,7 +453,8 @@ def _checkpoint_plan(args, settings, shard_dir, dims, graph_fp) -> dict | None:
                                        shards_fingerprint=checkpoint.shard_dir_fingerprint(
                                            shard_dir))
     if args.resumed is not None:
-        checkpoint.check_resumable(args.resumed, identity, epochs=settings.epochs)
+        checkpoint.check_resumable(args.resumed, identity, epochs=settings.epochs,
+                                   graph_label=str(args.graph))
     return {"folder": str(args.checkpoint), "every": int(args.checkpoint_every),
             "identity": identity}
 
