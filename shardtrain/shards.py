@@ -78,17 +78,6 @@ def edge_cut(graph: Graph, assignment: np.ndarray) -> int:
     return int(np.count_nonzero(a[rows] != a[graph.indices]) // 2)
 
 
-def _gather_positions(indptr: np.ndarray, rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Positions in `indices` of the CSR rows `rows`, concatenated in that order, and their lengths.
-
-    O(len(rows) + output), no loop: each row's range is an arange shifted by its start.
-    """
-    starts = indptr[rows]
-    lengths = indptr[rows + 1] - starts
-    shift = np.repeat(starts - (np.cumsum(lengths) - lengths), lengths)
-    return np.arange(shift.shape[0], dtype=np.int64) + shift, lengths
-
-
 def _unique_sorted(x: np.ndarray) -> np.ndarray:
     """np.unique(x) by a plain sort (much faster here than numpy's hash-based unique)."""
     s = np.sort(x)
@@ -97,101 +86,127 @@ def _unique_sorted(x: np.ndarray) -> np.ndarray:
     return s[keep]
 
 
-def _unique_inverse(x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """(sorted distinct values, index of each x in them), from one argsort."""
-    order = np.argsort(x)
-    s = x[order]
-    first = np.ones(s.shape[0], dtype=bool)
-    np.not_equal(s[1:], s[:-1], out=first[1:])
-    inverse = np.empty(x.shape[0], dtype=np.int64)
-    inverse[order] = np.cumsum(first) - 1
-    return s[first], inverse
-
-
 def _ptr_by_group(groups_sorted: np.ndarray, k: int) -> np.ndarray:
     """k+1 offsets of the runs of each group id 0..k-1 in an ascending array."""
     return np.searchsorted(groups_sorted, np.arange(k + 1)).astype(np.int64)
 
 
-def _locality_perm(n_own: int, sub_ptr: np.ndarray, sub_cols: np.ndarray) -> np.ndarray:
-    """new -> old permutation of the owned vertices: reverse Cuthill-McKee on the owned
-    subgraph (George & Liu 1981), which keeps neighbours in nearby rows and columns.
-    Measured here: Â @ dense runs ~1.8x faster on an RCM-ordered 1 M-vertex graph than in
-    random order (benchmarks/bench_shards.py)."""
-    if n_own <= 2 or sub_cols.shape[0] == 0:
+def _index_dtype(size: int):
+    """int32 when every index and offset below `size` fits: half the memory traffic, and
+    scipy's own choice for such matrices."""
+    return np.int32 if size < 2**31 - 1 else np.int64
+
+
+def _structure(graph: Graph, ix) -> sp.csr_matrix:
+    """The graph's adjacency pattern as CSR with index dtype `ix` (1-byte data): a worker's
+    rows are then one C-level row copy (`A[rows]`), much cheaper than numpy gathers."""
+    n = graph.num_vertices
+    return sp.csr_matrix((np.ones(graph.indices.shape[0], dtype=np.int8),
+                          graph.indices.astype(ix), graph.indptr.astype(ix)), shape=(n, n))
+
+
+def _locality_perm(indptr: np.ndarray, inside: np.ndarray, local_cols: np.ndarray
+                   ) -> np.ndarray:
+    """new -> old permutation of a worker's owned rows (given in id order, their entries
+    delimited by `indptr`): reverse Cuthill-McKee (George & Liu 1981) on the owned
+    subgraph, which keeps neighbours in nearby rows and columns. Measured here: Â_P @ X
+    runs ~1.8x faster in this order than in id order (benchmarks/bench_shards.py,
+    order_check). `inside` marks the entries whose neighbour is owned, `local_cols` are
+    those neighbours' id-order local indices."""
+    n_own = indptr.shape[0] - 1
+    if n_own <= 2 or local_cols.shape[0] == 0:
         return np.arange(n_own, dtype=np.int64)
-    sub = sp.csr_matrix((np.ones(sub_cols.shape[0], dtype=np.int8), sub_cols.astype(np.int32),
-                         sub_ptr), shape=(n_own, n_own))
-    return reverse_cuthill_mckee(sub, symmetric_mode=True).astype(np.int64)
+    inside_ptr = np.zeros(inside.shape[0] + 1, dtype=indptr.dtype)
+    np.cumsum(inside, out=inside_ptr[1:])
+    owned_sub = sp.csr_matrix((np.ones(local_cols.shape[0], dtype=np.int8), local_cols,
+                               inside_ptr[indptr]), shape=(n_own, n_own))
+    return reverse_cuthill_mckee(owned_sub, symmetric_mode=True).astype(np.int64)
 
 
-def _halo(nbr_out: np.ndarray, owner: np.ndarray, n: int, k: int
-          ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Distinct outside neighbours sorted by (owner, global id), their k+1 group offsets,
-    and the halo position of every entry of nbr_out."""
+def _halo(nbr_out: np.ndarray, owner: np.ndarray, n: int) -> np.ndarray:
+    """Distinct outside neighbours sorted by (owner, global id)."""
     if 4 * nbr_out.shape[0] >= n:
         # dense marks: O(n) work, which is O(this worker's edges) on this branch
         mark = np.zeros(n, dtype=bool)
         mark[nbr_out] = True
         ids = np.flatnonzero(mark)
-        halo = ids[np.argsort(owner[ids], kind="stable")]   # radix sort on small ints
-        slot = np.empty(n, dtype=np.int32 if n < 2**31 else np.int64)   # only halo read
-        slot[halo] = np.arange(halo.shape[0], dtype=slot.dtype)
-        col = slot[nbr_out]
     else:
-        key, col = _unique_inverse(owner[nbr_out].astype(np.int64) * n + nbr_out)
-        halo = key % n
-    return halo, _ptr_by_group(owner[halo], k), col
+        ids = _unique_sorted(nbr_out)
+    return ids[np.argsort(owner[ids], kind="stable")]   # radix sort on small ints, keeps id order
 
 
-def _build_one(graph: Graph, owner: np.ndarray, k: int, p: int, verts: np.ndarray,
-               pos: np.ndarray, inv_sqrt: np.ndarray, num_train: int,
+def _local_csr(rows_new: np.ndarray, lengths: np.ndarray, cols: np.ndarray, n_own: int,
+               ncols: int, ix) -> tuple[np.ndarray, np.ndarray]:
+    """(indptr, indices) of the local CSR from unordered entries: entry e lies in local row
+    rows_new[its id-order row] at column cols[e]; a self-loop is added to every row.
+
+    One sort of the int64 keys row * ncols + col (numpy's vectorised sort, far quicker than
+    an argsort or a per-row sort), then the columns are read back off the sorted keys.
+    """
+    nnz = cols.shape[0]
+    key = np.empty(nnz + n_own, dtype=np.int64)
+    key[:nnz] = np.repeat(rows_new.astype(np.int64) * ncols, lengths)
+    key[:nnz] += cols
+    key[nnz:] = np.arange(n_own, dtype=np.int64) * (ncols + 1)
+    key.sort()
+    new_lengths = np.empty(n_own, dtype=ix)
+    new_lengths[rows_new] = lengths
+    new_lengths += 1
+    indptr = np.zeros(n_own + 1, dtype=ix)
+    np.cumsum(new_lengths, out=indptr[1:])
+    key -= np.repeat(np.arange(n_own, dtype=np.int64) * ncols, new_lengths)
+    return indptr, key.astype(ix)
+
+
+def _scale_rows(adj: sp.csr_matrix, factor: np.ndarray) -> None:
+    """adj[i, :] *= factor[i] in place (scipy's C kernel; np.repeat of the factors is a
+    full extra pass over the entries)."""
+    try:
+        from scipy.sparse._sparsetools import csr_scale_rows
+    except ImportError:                      # private in scipy: keep a public fallback
+        adj.data *= np.repeat(factor, np.diff(adj.indptr))
+        return
+    csr_scale_rows(adj.shape[0], adj.shape[1], adj.indptr, adj.indices, adj.data, factor)
+
+
+def _build_one(graph: Graph, structure: sp.csr_matrix, owner: np.ndarray, k: int, p: int,
+               verts: np.ndarray, colmap: np.ndarray, inv_sqrt: np.ndarray, num_train: int,
                with_vertex_data: bool, order: str) -> tuple[Shard, np.ndarray]:
     """The shard of worker p (send lists still empty) and its map id-order -> local index.
 
-    `verts` are p's vertices in ascending id; pos[v] is v's index in its owner's ascending
-    list. Cost O(nnz_p log nnz_p + k), or O(n) when that is below a few times nnz_p.
+    `verts` are p's vertices in ascending id. `colmap` is scratch of n entries shared by
+    all workers: only the entries of p's owned and halo vertices are written and then read,
+    so it is never cleared. Cost O(nnz_p) plus one vectorised sort of nnz_p keys (and the
+    reverse Cuthill-McKee order for "locality"), or O(n) when that is below a few times nnz_p.
     """
     n = graph.num_vertices
     n_own = verts.shape[0]
-    edge_pos, lengths = _gather_positions(graph.indptr, verts)
-    nbr = graph.indices[edge_pos]
-    # local indices in int32 when they fit: half the memory traffic, and scipy's own choice
-    ix = np.int32 if max(n, nbr.shape[0] + n_own) < 2**31 - 1 else np.int64
+    ix = structure.indices.dtype
+    sub = structure[verts]                   # C-level copy of p's rows, global column ids
+    nbr = sub.indices
+    lengths = np.diff(sub.indptr)
     inside = owner[nbr] == p
-    old_ptr = np.zeros(n_own + 1, dtype=np.int64)
-    np.cumsum(lengths, out=old_ptr[1:])
-
+    halo = _halo(nbr[~inside], owner, n)
+    halo_ptr = _ptr_by_group(owner[halo], k)
+    colmap[verts] = np.arange(n_own, dtype=ix)
     if order == "locality":
-        inside_ptr = np.zeros(nbr.shape[0] + 1, dtype=np.int64)
-        np.cumsum(inside, out=inside_ptr[1:])
-        perm = _locality_perm(n_own, inside_ptr[old_ptr], pos[nbr[inside]])
-        src, lengths = _gather_positions(old_ptr, perm)   # entries regrouped in new row order
-        nbr, inside = nbr[src], inside[src]
+        perm = _locality_perm(sub.indptr, inside, colmap[nbr[inside]])
     else:
         perm = np.arange(n_own, dtype=np.int64)
     new_of = np.empty(n_own, dtype=ix)
     new_of[perm] = np.arange(n_own, dtype=ix)
     owned = verts[perm]
-
-    halo, halo_ptr, halo_col = _halo(nbr[~inside], owner, n, k)
-    col = np.empty(nbr.shape[0], dtype=ix)
-    col[inside] = new_of[pos[nbr[inside]]]
-    col[~inside] = n_own + halo_col
-    val = inv_sqrt[nbr] * np.repeat(inv_sqrt[owned], lengths)
-
-    # CSR with the self-loop first in each row; sort_indices puts it in column order
-    indptr = np.zeros(n_own + 1, dtype=ix)
-    np.cumsum(lengths + 1, out=indptr[1:])
-    dest = np.arange(nbr.shape[0], dtype=ix)
-    dest += np.repeat(np.arange(1, n_own + 1, dtype=ix), lengths)
-    cols = np.empty(indptr[-1], dtype=ix)
-    data = np.empty(indptr[-1], dtype=np.float64)
-    cols[dest], data[dest] = col, val
-    cols[indptr[:-1]] = np.arange(n_own, dtype=ix)
-    data[indptr[:-1]] = inv_sqrt[owned] ** 2
-    adj = sp.csr_matrix((data, cols, indptr), shape=(n_own, n_own + halo.shape[0]))
-    adj.sort_indices()
+    if order == "locality":
+        colmap[owned] = np.arange(n_own, dtype=ix)
+    colmap[halo] = np.arange(n_own, n_own + halo.shape[0], dtype=ix)
+    ncols = n_own + halo.shape[0]
+    indptr, cols = _local_csr(new_of, lengths, colmap[nbr], n_own, ncols, ix)
+    del sub, nbr, inside
+    # Â_vu = 1/sqrt(d̃_v d̃_u), read off the sorted columns (the same product as graph.py)
+    inv_col = inv_sqrt[np.concatenate([owned, halo])]
+    adj = sp.csr_matrix((inv_col[cols], cols, indptr), shape=(n_own, ncols))
+    adj.has_sorted_indices = True
+    _scale_rows(adj, inv_col[:n_own])
 
     empty = np.zeros(0, dtype=np.int64)
     shard = Shard(worker=p, workers=k, num_vertices_global=n, num_train_global=num_train,
@@ -245,9 +260,11 @@ def build_shards(graph: Graph, assignment: np.ndarray, k: int, *, with_vertex_da
                  order: str = "locality") -> list[Shard]:
     """One Shard per worker 0..k-1, laid out as the module CONTRACT says.
 
-    Vertices are grouped by owner with one sort, then each worker's rows are sliced from
-    the global CSR, so each worker costs O(its edges x log) and never O(n) more than a
-    small multiple of its edges; send lists come from one sort of all halo entries.
+    Vertices are grouped by owner with one radix sort and Â (self-loops included) is built
+    once; each worker's rows are then one C-level row copy of it, its columns renumbered
+    through one shared scratch map and sorted per row, so a worker costs O(its edges) plus
+    small sorts and never O(n) more than a small multiple of its edges; send lists come
+    from one radix sort of all halo entries.
     """
     if order not in ORDERS:
         raise InputError(f"order: expected one of {', '.join(ORDERS)}, got {order!r}")
@@ -257,16 +274,21 @@ def build_shards(graph: Graph, assignment: np.ndarray, k: int, *, with_vertex_da
     by_owner = np.argsort(owner, kind="stable")              # ascending ids within each owner
     owner_ptr = np.zeros(k + 1, dtype=np.int64)
     np.cumsum(np.bincount(a, minlength=k), out=owner_ptr[1:])
-    pos = np.empty(n, dtype=np.int32 if n < 2**31 else np.int64)
-    pos[by_owner] = np.arange(n, dtype=np.int64) - owner_ptr[a[by_owner]]
+    ix = _index_dtype(graph.indices.shape[0] + n)
+    pos = np.empty(n, dtype=ix)
+    pos[by_owner] = np.arange(n, dtype=ix) - owner_ptr[owner[by_owner]].astype(ix)
+    structure = _structure(graph, ix)
+    colmap = np.empty(n, dtype=ix)
     inv_sqrt = 1.0 / np.sqrt(gcn_degrees(graph))
     num_train = 0 if graph.train_mask is None else int(np.count_nonzero(graph.train_mask))
     shards, new_of = [], []
     for p in range(k):
-        shard, local = _build_one(graph, owner, k, p, by_owner[owner_ptr[p]:owner_ptr[p + 1]],
-                                  pos, inv_sqrt, num_train, with_vertex_data, order)
+        shard, local = _build_one(graph, structure, owner, k, p,
+                                  by_owner[owner_ptr[p]:owner_ptr[p + 1]], colmap, inv_sqrt,
+                                  num_train, with_vertex_data, order)
         shards.append(shard)
         new_of.append(local)
+    del structure, colmap
     _fill_send_lists(shards, new_of, pos, n)
     return shards
 

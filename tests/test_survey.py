@@ -281,3 +281,41 @@ def test_cli_surveys_a_given_assignment(run_cli, small_npz, tmp_path):
     assert plan["workers"] == 3
     # networkx: edges whose ends lie in different parts
     assert plan["edge_cut"] == sum(1 for u, v in g.edges() if a[u] != a[v])
+
+
+# -- the survey's id-order shards against the trainer's locality-order shards ----------
+
+def test_id_order_shards_predict_what_locality_order_shards_hold():
+    # Not an external check: the survey builds shards in id order, the trainer in reverse
+    # Cuthill-McKee order; every count the survey reads must be the same in both.
+    g = nx.connected_watts_strogatz_graph(400, 8, 0.2, seed=6)
+    graph = graph_from_nx(g)
+    a = np.random.default_rng(6).integers(0, 5, 400)
+    hops = layer_hops(layer_dims(24, 16, 4, 2))
+    by_id = build_shards(graph, a, 5, with_vertex_data=False, order="id")
+    by_locality = build_shards(graph, a, 5, with_vertex_data=False)
+    assert any(not np.array_equal(s.owned, np.sort(s.owned)) for s in by_locality)
+    t_id = sv.predict_traffic(by_id, hops, 4, param_elements=24 * 16 + 16 * 4)
+    t_loc = sv.predict_traffic(by_locality, hops, 4, param_elements=24 * 16 + 16 * 4)
+    assert t_id == t_loc
+    for s_id, s_loc in zip(by_id, by_locality):
+        assert (sv.predict_memory(s_id, hops, 4, param_elements=100, input_dim=24)
+                == sv.predict_memory(s_loc, hops, 4, param_elements=100, input_dim=24))
+
+
+def test_survey_plan_equals_the_trainers_measured_payload(tmp_path):
+    # The trained run's byte counters are the outside measurement here: the survey's plan
+    # (id-order shards, no process started) must predict them exactly.
+    pytest.importorskip("shardtrain.coordinator")
+    from shardtrain.settings import TrainSettings
+    from test_train_equivalence import depot_graph, run_partitioned
+
+    graph = depot_graph(n=300, classes=3, features=20, seed=8)
+    a = np.random.default_rng(8).integers(0, 3, 300)
+    settings = TrainSettings(layers=2, hidden=16, epochs=2, dtype="float32")
+    run, _ = run_partitioned(tmp_path, graph, a, 3, settings)
+    hops = layer_hops(layer_dims(20, 16, graph.num_classes, 2))
+    plan = sv.survey_plan(graph, "given", 3, hops=hops, itemsize=4, seed=0, imbalance=0.03,
+                          assignment=a)
+    predicted = sv.predict_run_payload(plan["traffic"], settings.epochs, settings.epochs)
+    assert run.traffic["measured_payload_bytes"] == predicted > 0
