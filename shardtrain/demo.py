@@ -289,14 +289,6 @@ def check_failure(check: dict) -> str | None:
     return "; ".join(problems) or None
 
 
-def run_document(run, settings, graph_doc: dict, plan: dict, check: dict) -> dict:
-    """run.json: the layout of `shardtrain train --json` (settings, graph, mode, epochs,
-    traffic, workers, profile), plus the demo's plan and check."""
-    return {"settings": settings.to_dict(), "graph": graph_doc, "mode": "partitioned",
-            "epochs": run.epochs, "traffic": run.traffic, "workers": run.workers,
-            "profile": run.profile, "plan": plan, "check": check}
-
-
 # ---------------------------------------------------------------- step 4: forecast
 
 def plan_forecasts(forecast_dict: dict, plan: dict) -> list[dict]:
@@ -321,23 +313,17 @@ def summary_html(result_facts: list[tuple[str, str]]) -> str:
 
 
 def write_demo_report(folder: Path, out_html: Path, facts: list[tuple[str, str]],
-                      plot_dir: Path, title: str = "shardtrain demo: a parcel-delivery network"
-                      ) -> None:
+                      plot_dir: Path, plan: dict | None = None,
+                      title: str = "shardtrain demo: a parcel-delivery network") -> None:
     """The page of `report.build_html` for the folder's survey, run and forecast JSONs, with
-    the demo's summary after the title, and its pictures drawn once, into `plot_dir`
-    (build_html would draw them again in a temporary folder)."""
+    the demo's summary after the title, the survey's heat map of the chosen `plan`, and
+    the pictures kept in `plot_dir`."""
     from shardtrain.files import write_text_atomic
-    from shardtrain.report import CSS, SECTIONS, collect_documents
+    from shardtrain.report import build_html, collect_documents
 
-    parts = ["<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
-             f"<title>{html.escape(title)}</title><style>{CSS}</style></head><body>",
-             f"<h1>{html.escape(title)}</h1>", summary_html(facts)]
-    for name, kind, doc in collect_documents([folder]):
-        heading, section = SECTIONS[kind]
-        parts.append(f"<h2>{html.escape(heading)} <small>({html.escape(name)})</small></h2>")
-        parts.append(section(doc, plot_dir))
-    parts.append("</body></html>")
-    write_text_atomic(out_html, "\n".join(parts) + "\n")
+    write_text_atomic(out_html, build_html(collect_documents([folder]), title,
+                                           plot_dir=plot_dir, intro_html=summary_html(facts),
+                                           survey_plan=plan))
 
 
 def summary_facts(r: "DemoResult", settings_doc: dict) -> list[tuple[str, str]]:
@@ -457,7 +443,7 @@ def run_demo(settings: DemoSettings, on_step: Callable[[str], None] | None = Non
         facts = summary_facts(result, result.settings_doc)
         t = time.perf_counter()
         say("[5/5] drawing the pictures and writing the HTML report")
-        write_demo_report(tmp, tmp / REPORT_FILE, facts, tmp / PLOT_DIR)
+        write_demo_report(tmp, tmp / REPORT_FILE, facts, tmp / PLOT_DIR, plan=result.plan)
         clock.step("report", t)
         result.seconds = dict(clock.seconds)
         result.total_s = time.perf_counter() - clock.start
@@ -485,6 +471,7 @@ def _run_steps(settings: DemoSettings, tmp: Path, say, clock: _Clock) -> DemoRes
     from shardtrain.coordinator import train_partitioned
     from shardtrain.files import write_json_atomic
     from shardtrain.forecast import forecast
+    from shardtrain.rundoc import graph_of_file, run_document
     from shardtrain.settings import TrainSettings
     from shardtrain.survey import SurveySettings, survey
 
@@ -541,9 +528,8 @@ def _run_steps(settings: DemoSettings, tmp: Path, say, clock: _Clock) -> DemoRes
         raise RunError(failure)
     say(f"      equal to the reference: max relative difference {check['max_rel_diff']:.2e}; "
         f"payload measured == predicted: {check['measured_payload_bytes']:,} bytes")
-    graph_doc = {"source": GRAPH_FILE, "num_vertices": graph.num_vertices,
-                 "num_edges": graph.num_edges, "notes": list(loaded.notes)}
-    run_doc = run_document(run, train_settings, graph_doc, plan, check)
+    run_doc = run_document(train_settings, graph_of_file(GRAPH_FILE, graph, loaded.notes),
+                           run, mode="partitioned", plan=plan, check=check)
     write_json_atomic(tmp / RUN_FILE, run_doc)
     t = clock.step("train", t)
 

@@ -14,15 +14,37 @@ matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 from matplotlib.colors import LogNorm, Normalize  # noqa: E402
-from matplotlib.ticker import FuncFormatter, LogLocator, MaxNLocator, NullFormatter  # noqa: E402
+from matplotlib.ticker import (FuncFormatter, LogLocator, MaxNLocator,  # noqa: E402
+                               MultipleLocator, NullFormatter)
 
+from shardtrain.errors import InputError  # noqa: E402
 from shardtrain.files import atomic_output  # noqa: E402
-from shardtrain.tables import human_bytes  # noqa: E402
 
 PHASES = (("compute_s", "compute", "#4c72b0"), ("exchange_s", "halo exchange", "#dd8452"),
           ("allreduce_s", "all-reduce", "#55a868"), ("wait_s", "waiting", "#c7c7c7"))
 DPI = 110
-_BYTES_FMT = FuncFormatter(lambda v, _pos: human_bytes(v))
+_UNITS = ("B", "KiB", "MiB", "GiB", "TiB")
+
+
+def _bytes_tick(v: float, _pos=None) -> str:
+    """Axis tick in binary units without padding zeros: 512 B, 8 KiB, 1 MiB, 1.5 MiB."""
+    if v <= 0:
+        return "0"
+    i = min(int(np.log2(v) // 10), len(_UNITS) - 1) if v >= 1 else 0
+    return f"{v / 1024 ** i:.3g} {_UNITS[i]}"
+
+
+_BYTES_FMT = FuncFormatter(_bytes_tick)
+
+
+def check_plot_dir(path, option: str = "--plot") -> None:
+    """Before any work: the picture folder may exist (as a folder) or be new in an
+    existing folder; InputError naming the option otherwise."""
+    p = Path(path)
+    if p.exists() and not p.is_dir():
+        raise InputError(f"{option} {path}: exists and is not a folder")
+    if not p.exists() and not p.absolute().parent.is_dir():
+        raise InputError(f"{option} {path}: folder {p.absolute().parent} does not exist")
 
 
 def _log_bytes_axis(axis) -> None:
@@ -30,6 +52,13 @@ def _log_bytes_axis(axis) -> None:
     axis.set_major_locator(LogLocator(base=2, numticks=8))
     axis.set_major_formatter(_BYTES_FMT)
     axis.set_minor_formatter(NullFormatter())
+
+
+def _linear_bytes_axis(axis, vmax: float) -> None:
+    """Byte ticks at multiples of a power of two (0, 8 KiB, 16 KiB ...), about 3 to 6."""
+    step = 2.0 ** np.ceil(np.log2(max(vmax, 1.0) / 6))
+    axis.set_major_locator(MultipleLocator(step))
+    axis.set_major_formatter(_BYTES_FMT)
 
 
 def _log_seconds_axis(axis) -> None:
@@ -75,6 +104,24 @@ def _workers_axis(ax, counts) -> None:
     ax.set_xlabel("workers")
 
 
+# One look per method, the same in every picture; marker and dash differ too, so that
+# methods whose lines coincide (random and range often do) stay visible one over another.
+_MARKERS = ("o", "s", "^", "D", "v", "P", "X", "<", ">", "*")
+_DASHES = ("-", "--", "-.", ":", (0, (5, 1, 1, 1)), (0, (3, 1, 1, 1, 1, 1)))
+
+
+def method_styles(methods) -> dict[str, dict]:
+    """{method: plot keywords} for the methods in the order given."""
+    cmap = plt.get_cmap("tab10")
+    styles = {}
+    for i, m in enumerate(dict.fromkeys(methods)):
+        styles[m] = {"color": cmap(i % 10), "marker": _MARKERS[i % len(_MARKERS)],
+                     "linestyle": _DASHES[i % len(_DASHES)], "markersize": 8 - 0.6 * (i % 5),
+                     "markerfacecolor": "none" if i % 2 else cmap(i % 10),
+                     "markeredgewidth": 1.5, "linewidth": 1.6}
+    return styles
+
+
 # ---------------------------------------------------------------- heat map
 
 def traffic_heatmap(pair_bytes, title: str, out_dir, name: str) -> str:
@@ -104,8 +151,8 @@ def traffic_heatmap(pair_bytes, title: str, out_dir, name: str) -> str:
     if isinstance(norm, LogNorm):
         _log_bytes_axis(bar.ax.yaxis)
     else:
-        bar.ax.yaxis.set_major_formatter(_BYTES_FMT)
-    bar.set_label("bytes per epoch (white: none)")
+        _linear_bytes_axis(bar.ax.yaxis, norm.vmax)
+    bar.set_label("payload per epoch (white: none)")
     fig.tight_layout()
     return _save(fig, out_dir, name)
 
@@ -125,7 +172,7 @@ def time_bars(workers: list[dict], title: str, out_dir, name: str) -> str:
         bottom += v
     ax.set_xticks(x if k <= 16 else x[:: int(np.ceil(k / 16))])
     ax.set_xlabel("worker")
-    ax.set_ylabel("seconds")
+    ax.set_ylabel("time")
     ax.yaxis.set_major_formatter(FuncFormatter(_seconds_label))
     ax.set_title(title, fontsize=10)
     ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), fontsize=9, frameon=False)
@@ -167,15 +214,17 @@ def survey_plots(survey: dict, out_dir, plan: dict | None = None) -> list[str]:
     if chosen is not None:
         paths.append(traffic_heatmap(
             chosen["traffic"]["pair_bytes"],
-            f"predicted halo traffic, {chosen['method']} on {chosen['workers']} workers",
+            f"predicted halo traffic per training epoch, {chosen['method']} on "
+            f"{chosen['workers']} workers",
             out_dir, "survey_traffic_heatmap.png"))
     groups = _by_method(plans)
+    styles = method_styles(groups)
     counts = [p["workers"] for p in plans]
     fig, (ax1, ax2) = plt.subplots(1, 2, figsize=(10, 4))
     for method, ps in groups.items():
         k = [p["workers"] for p in ps]
-        ax1.plot(k, [max(_plan_traffic(p), 1.0) for p in ps], marker="o", label=method)
-        ax2.plot(k, [p["replication_factor"] for p in ps], marker="o", label=method)
+        ax1.plot(k, [max(_plan_traffic(p), 1.0) for p in ps], label=method, **styles[method])
+        ax2.plot(k, [p["replication_factor"] for p in ps], label=method, **styles[method])
     for ax in (ax1, ax2):
         _workers_axis(ax, counts)
         ax.grid(True, which="major", alpha=0.3)
@@ -210,7 +259,7 @@ def measured_pair_bytes(run: dict) -> tuple[np.ndarray | None, str]:
                     and 0 <= src < k and 0 <= dst < k:
                 m[src, dst] += nbytes
         if m.any():
-            return m, "halo exchanges, training and evaluation"
+            return m, "halo exchanges of training and of the evaluation forward"
     for where in (traffic, run.get("profile") or {}):
         for key in ("measured_pair_bytes", "pair_payload_bytes", "pair_bytes"):
             if key in where:
@@ -254,7 +303,7 @@ def run_plots(run: dict, out_dir) -> list[str]:
     if pair is not None and pair.ndim == 2 and pair.shape[0] > 1:
         n_epochs = max(len(epochs), 1)
         paths.append(traffic_heatmap(pair / n_epochs,
-                                     f"measured traffic per epoch ({what})",
+                                     f"measured traffic per epoch\n({what})",
                                      out_dir, "run_traffic_heatmap.png"))
     return paths
 
@@ -271,7 +320,7 @@ def forecast_plots(forecast: dict, out_dir) -> list[str]:
         return paths
     links = sorted({p["link_gbps"] for p in plans})
     methods = list(dict.fromkeys(p["method"] for p in plans))
-    colours = {m: plt.get_cmap("tab10")(i % 10) for i, m in enumerate(methods)}
+    styles = method_styles(methods)
     n = len(links)
     cols = min(n, 4)
     rows = int(np.ceil(n / cols))
@@ -286,8 +335,8 @@ def forecast_plots(forecast: dict, out_dir) -> list[str]:
             ps = sorted((p for p in plans if p["link_gbps"] == g and p["method"] == m),
                         key=lambda p: p["workers"])
             if ps:
-                ax.plot([p["workers"] for p in ps], [p["epoch_s"] for p in ps], marker="o",
-                        color=colours[m], label=m)
+                ax.plot([p["workers"] for p in ps], [p["epoch_s"] for p in ps], label=m,
+                        **styles[m])
         for p in plans:
             if p["link_gbps"] == g and p.get("fastest"):
                 ax.plot(p["workers"], p["epoch_s"], marker="*", markersize=16, color="gold",

@@ -136,12 +136,33 @@ def _facts(pairs: list[tuple[str, object]]) -> str:
     return f'<dl class="facts">{items}</dl>'
 
 
+CAPTIONS = {
+    "survey_traffic_heatmap": "Predicted halo payload of one training epoch from each worker "
+                              "(row) to each other worker (column), for one plan.",
+    "survey_traffic_replication": "Predicted payload of one training epoch (halo exchanges and "
+                                  "all-reduce, all workers) and replication factor against "
+                                  "the worker count, one line per partition method.",
+    "run_worker_times": "Measured wall time of each worker over the whole run. Where workers "
+                        "share fewer cores than there are workers, waiting grows with the "
+                        "sharing.",
+    "run_loss_accuracy": "Training loss and accuracy of every epoch.",
+    "run_traffic_heatmap": "Measured payload per epoch from each worker (row) to each other "
+                           "worker (column).",
+    "forecast_epoch_time": "Forecast time of one training epoch against the worker count, one "
+                           "panel per link speed, one line per partition method.",
+    "forecast_worker_times": "Forecast split of one training epoch of the fastest plan, per "
+                             "worker.",
+}
+
+
 def _figures(paths: list[str]) -> str:
     out = []
     for p in paths:
         data = base64.b64encode(Path(p).read_bytes()).decode("ascii")
-        caption = Path(p).stem.replace("_", " ")
-        out.append(f'<figure><img alt="{_esc(caption)}" src="data:image/png;base64,{data}">'
+        stem = Path(p).stem
+        alt = stem.replace("_", " ")
+        caption = CAPTIONS.get(stem, alt)
+        out.append(f'<figure><img alt="{_esc(alt)}" src="data:image/png;base64,{data}">'
                    f"<figcaption>{_esc(caption)}</figcaption></figure>")
     return "".join(out)
 
@@ -152,7 +173,18 @@ def _fmt_int(v) -> str:
     return f"{int(v):,}"
 
 
-def survey_section(doc: dict, plot_dir: Path) -> str:
+def find_plan(plans: list[dict], plan: dict | None) -> dict | None:
+    """The survey plan with the method and worker count of `plan` (e.g. a run's chosen
+    plan); None when there is none or `plan` is None."""
+    if not plan:
+        return None
+    return next((p for p in plans if p.get("method") == plan.get("method")
+                 and p.get("workers") == plan.get("workers")), None)
+
+
+def survey_section(doc: dict, plot_dir: Path, plan: dict | None = None) -> str:
+    """Facts, the plan table and the pictures; the heat map shows `plan` (method and
+    workers of one surveyed plan) when given and surveyed, else `plots.pick_heatmap_plan`."""
     from shardtrain.plots import survey_plots
 
     g, m = doc.get("graph", {}), doc.get("model", {})
@@ -180,7 +212,8 @@ def survey_section(doc: dict, plot_dir: Path) -> str:
                     ("GCN widths", shape), ("dtype", m.get("dtype"))])
             + '<p class="note">Traffic is predicted payload per training epoch (array bytes, '
               "no framing), summed over all workers.</p>"
-            + _table(rows, cols) + _figures(survey_plots(doc, plot_dir)))
+            + _table(rows, cols)
+            + _figures(survey_plots(doc, plot_dir, plan=find_plan(doc["plans"], plan))))
 
 
 def run_section(doc: dict, plot_dir: Path) -> str:
@@ -188,7 +221,7 @@ def run_section(doc: dict, plot_dir: Path) -> str:
 
     s, g, t = doc.get("settings", {}), doc.get("graph", {}), doc.get("traffic", {})
     epochs = doc.get("epochs") or []
-    vertices = g.get("vertices", g.get("num_vertices"))
+    vertices = g.get("vertices", g.get("num_vertices"))   # num_*: run JSONs before rundoc
     edges = g.get("edges", g.get("num_edges"))
     facts = [("graph", g.get("source")),
              ("vertices", f"{vertices:,}" if vertices is not None else None),
@@ -280,20 +313,42 @@ SECTIONS = {"survey": ("Survey of partition plans", survey_section),
             "forecast": ("Forecast", forecast_section)}
 
 
-def build_html(documents: list[tuple[str, str, dict]], title: str = "shardtrain report") -> str:
-    """The page for (name, kind, doc) triples."""
+def run_plan(documents: list[tuple[str, str, dict]]) -> dict | None:
+    """The plan a run document says it trained ({"method", "workers", ...}; the demo's
+    run.json has one), for the survey's heat map; None when no run names one."""
+    for _, kind, doc in documents:
+        plan = doc.get("plan") if kind == "run" else None
+        if isinstance(plan, dict) and "method" in plan and "workers" in plan:
+            return plan
+    return None
+
+
+def build_html(documents: list[tuple[str, str, dict]], title: str = "shardtrain report", *,
+               plot_dir=None, intro_html: str = "", survey_plan: dict | None = None) -> str:
+    """The page for (name, kind, doc) triples. Pictures are drawn into `plot_dir` (kept;
+    a second document of a kind draws into a subfolder named after it) or, when None, into
+    a temporary folder. `intro_html` goes right after the title. The survey's heat map
+    shows `survey_plan` (method and workers), by default the plan a run document names."""
     parts = ["<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
              f"<title>{_esc(title)}</title><style>{CSS}</style></head><body>",
-             f"<h1>{_esc(title)}</h1>"]
+             f"<h1>{_esc(title)}</h1>", intro_html]
+    plan = survey_plan if survey_plan is not None else run_plan(documents)
     with tempfile.TemporaryDirectory(prefix="shardtrain-report-") as tmp:
+        root = Path(plot_dir) if plot_dir is not None else Path(tmp)
+        seen: set[str] = set()
         for i, (name, kind, doc) in enumerate(documents):
             heading, section = SECTIONS[kind]
-            plot_dir = Path(tmp) / f"{i}"
-            plot_dir.mkdir()
+            if plot_dir is None:
+                where = root / f"{i}"
+            else:
+                where = root / Path(name).stem if kind in seen else root
+            seen.add(kind)
+            where.mkdir(parents=True, exist_ok=True)
             parts.append(f"<h2>{_esc(heading)} <small>({_esc(name)})</small></h2>")
-            parts.append(section(doc, plot_dir))
+            parts.append(section(doc, where, plan) if kind == "survey"
+                         else section(doc, where))
     parts.append("</body></html>")
-    return "\n".join(parts) + "\n"
+    return "\n".join(p for p in parts if p) + "\n"
 
 
 def write_report(paths, out_html) -> list[tuple[str, str]]:

@@ -167,3 +167,89 @@ def test_run_heatmap_counts_halo_rows_only():
          "measured_payload_bytes": 999}]
     m, what = plots.measured_pair_bytes(run)
     assert m.tolist() == [[0, 150], [0, 0]] and "halo" in what
+
+
+# ---------------------------------------------------------------- --plot and the run JSON
+
+@pytest.fixture(scope="module")
+def small_graph_file(tmp_path_factory):
+    from test_train_cli import _save_graph
+    from test_train_equivalence import depot_graph
+
+    path = tmp_path_factory.mktemp("plotgraph") / "depots.npz"
+    _save_graph(path, depot_graph(n=200))
+    return path
+
+
+def test_train_and_survey_plot_option_write_pngs(run_cli, small_graph_file, tmp_path):
+    r = run_cli("train", small_graph_file, "--workers", "2", "--method", "random",
+                "--epochs", "3", "--quiet", "--json", tmp_path / "run.json",
+                "--plot", tmp_path / "run-plots")
+    assert r.returncode == 0, r.stderr
+    _assert_pngs(sorted(map(str, (tmp_path / "run-plots").glob("*.png"))), 3)
+    r = run_cli("survey", small_graph_file, "--workers", "2,4", "--method", "random,range",
+                "--plot", tmp_path / "survey-plots")
+    assert r.returncode == 0, r.stderr
+    _assert_pngs(sorted(map(str, (tmp_path / "survey-plots").glob("*.png"))), 2)
+
+
+def test_run_json_names_the_graph_size_as_the_survey_does(small_graph_file, tmp_path, run_cli):
+    # reference library: networkx counts the vertices and undirected edges of the bundle
+    import networkx as nx
+
+    r = run_cli("train", small_graph_file, "--reference", "--epochs", "2", "--quiet",
+                "--json", tmp_path / "ref.json")
+    assert r.returncode == 0, r.stderr
+    with np.load(small_graph_file, allow_pickle=False) as z:
+        g = nx.Graph()
+        g.add_nodes_from(range(int(z["num_vertices"])))
+        g.add_edges_from(z["edges"].tolist())
+    graph = json.loads((tmp_path / "ref.json").read_text())["graph"]
+    assert (graph["vertices"], graph["edges"]) == (g.number_of_nodes(), g.number_of_edges())
+    assert "num_vertices" not in graph and "num_edges" not in graph
+
+
+@pytest.mark.parametrize("command", ["train", "survey"])
+def test_bad_plot_folder_is_refused_before_work(run_cli, small_graph_file, tmp_path, command):
+    extra = ["--reference", "--epochs", "2"] if command == "train" else []
+    for bad in (tmp_path / "missing" / "plots", small_graph_file):
+        r = run_cli(command, small_graph_file, *extra, "--json", tmp_path / "out.json",
+                    "--plot", bad)
+        assert r.returncode == 2 and len(r.stderr.strip().splitlines()) == 1, r.stderr
+        assert "--plot" in r.stderr and "Traceback" not in r.stderr
+        assert not (tmp_path / "out.json").exists() and not (tmp_path / "missing").exists()
+
+
+def test_survey_heatmap_draws_the_plan_asked_for(tmp_path, monkeypatch):
+    doc = _survey()
+    drawn = []
+    real = plots.traffic_heatmap
+    monkeypatch.setattr(plots, "traffic_heatmap", lambda pair, title, *rest: (
+        drawn.append((pair, title)) or real(pair, title, *rest)))
+    html_text = report.survey_section(doc, tmp_path, plan={"method": "random", "workers": 4})
+    assert "survey traffic heatmap" in html_text
+    want = next(p for p in doc["plans"] if p["method"] == "random" and p["workers"] == 4)
+    assert drawn == [(want["traffic"]["pair_bytes"],
+                      "predicted halo traffic per training epoch, random on 4 workers")]
+    drawn.clear()
+    report.survey_section(doc, tmp_path)           # default: the largest, least traffic
+    assert drawn[0][1] == "predicted halo traffic per training epoch, range on 16 workers"
+    assert report.find_plan(doc["plans"], {"method": "random", "workers": 4}) is \
+        next(p for p in doc["plans"] if p["method"] == "random" and p["workers"] == 4)
+    assert report.find_plan(doc["plans"], {"method": "random", "workers": 3}) is None
+
+
+def test_build_html_keeps_pictures_in_plot_dir_and_puts_the_intro_first(tmp_path):
+    docs = [("survey.json", "survey", _survey()), ("run.json", "run", _run())]
+    page = report.build_html(docs, "t", plot_dir=tmp_path / "plots",
+                             intro_html="<p>INTRO</p>")
+    _check_self_contained(page)
+    assert page.index("<p>INTRO</p>") < page.index("Survey of partition plans")
+    assert len(list((tmp_path / "plots").glob("*.png"))) == 2 + 3
+
+
+def test_method_styles_differ_in_marker_and_dash():
+    styles = plots.method_styles(["metis", "metis-volume", "fennel", "random", "range"])
+    looks = {(s["marker"], str(s["linestyle"])) for s in styles.values()}
+    assert len({s["marker"] for s in styles.values()}) == 5
+    assert len({str(s["linestyle"]) for s in styles.values()}) == 5 and len(looks) == 5

@@ -89,8 +89,9 @@ def add_arguments(parser) -> None:
     add("--seed", type=int, default=0, help="seed of the seeded methods (default 0)")
     add("--json", default=None, metavar="OUT.json", help="write the full survey as JSON")
     add("--csv", default=None, metavar="OUT.csv", help="write one row per plan as CSV")
-    # Hook: `--plot DIR` (plots.survey_plots(survey_dict, DIR)) is added here once
-    # shardtrain.plots exists; see `_write_outputs`.
+    add("--plot", default=None, metavar="DIR",
+        help="write PNG pictures to DIR (traffic heat map; traffic and replication "
+             "against workers)")
 
 
 def _check_output(path: str | None, option: str) -> None:
@@ -137,11 +138,10 @@ def _write_outputs(args, result: dict) -> None:
         write_json_atomic(args.json, result)
     if args.csv:
         write_text_atomic(args.csv, csv_text(result))
-    plot_dir = getattr(args, "plot", None)
-    if plot_dir:  # the plotting engineer's hook
+    if args.plot:
         from shardtrain.plots import survey_plots
 
-        survey_plots(result, plot_dir)
+        survey_plots(result, args.plot)
 
 
 def run(args) -> int:
@@ -152,6 +152,10 @@ def run(args) -> int:
     methods = parse_name_list(args.method or DEFAULT_METHODS, "--method")
     _check_output(args.json, "--json")
     _check_output(args.csv, "--csv")
+    if args.plot is not None:
+        from shardtrain.plots import check_plot_dir
+
+        check_plot_dir(args.plot)
     settings = _settings(args)
     loaded = load_graph_from_args(args)
     graph = loaded.graph

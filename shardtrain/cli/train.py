@@ -26,6 +26,7 @@ from pathlib import Path
 
 import numpy as np
 
+from shardtrain import rundoc
 from shardtrain.cli.common import add_graph_arguments, load_graph_from_args, \
     positive_int_type
 from shardtrain.errors import InputError
@@ -103,6 +104,8 @@ def add_arguments(parser) -> None:
                         help="make worker W's compute FACTOR (>= 1) times slower, to see the "
                              "wait a straggler causes (repeatable)")
     parser.add_argument("--json", metavar="OUT", help="write the run's account as JSON")
+    parser.add_argument("--plot", metavar="DIR", help="write PNG pictures of the run to DIR "
+                                                      "(time per worker, loss/accuracy, traffic)")
     parser.add_argument("--weights", metavar="OUT.npz", help="write the final weights")
     parser.add_argument("--init-weights", metavar="IN.npz", help="start from these weights")
     parser.add_argument("--predictions", metavar="OUT.csv",
@@ -148,6 +151,9 @@ def _check_options(args) -> tuple[TrainSettings, bool]:
     _check_output(args.json, "--json", ".json")
     _check_output(args.weights, "--weights", ".npz")
     _check_output(args.predictions, "--predictions", ".csv")
+    if getattr(args, "plot", None) is not None:
+        from shardtrain.plots import check_plot_dir
+        check_plot_dir(args.plot)
     if args.init_weights is not None and not Path(args.init_weights).is_file():
         raise InputError(f"--init-weights {args.init_weights}: no such file")
     shard_dir = _is_shard_dir(args.graph)
@@ -313,6 +319,9 @@ def write_outputs(args, result, labels, doc: dict) -> None:
         write_text_atomic(args.predictions, predictions_csv(result.predictions, labels))
     if args.json:
         write_json_atomic(args.json, doc)
+    if getattr(args, "plot", None):
+        from shardtrain.plots import run_plots
+        run_plots(doc, args.plot)
 
 
 def _worker_table(rows: list[dict]) -> str:
@@ -356,8 +365,7 @@ def run(args) -> int:
             dims = model_dims_of(facts, settings)
             init = (load_init_weights(args.init_weights, dims, settings)
                     if args.init_weights else None)
-            graph_doc = {"shard_dir": str(args.graph), "num_vertices": facts.num_vertices,
-                         "workers": facts.workers}
+            graph_doc = rundoc.graph_of_shards(args.graph, facts)
             shard_dir, labels = args.graph, None
             graph_fp = _manifest_fingerprint(shard_dir)
         else:
@@ -373,8 +381,7 @@ def run(args) -> int:
             if args.assignment is not None:
                 from shardtrain.partition import load_assignment
                 assignment = load_assignment(args.assignment, graph.num_vertices)
-            graph_doc = {"source": loaded.source, "num_vertices": graph.num_vertices,
-                         "num_edges": graph.num_edges, "notes": list(loaded.notes)}
+            graph_doc = rundoc.graph_of_file(loaded.source, graph, loaded.notes)
             labels = graph.labels
             from shardtrain.graph import fingerprint
             graph_fp = fingerprint(graph)
@@ -408,19 +415,16 @@ def run(args) -> int:
         if tmp_dir is not None:
             shutil.rmtree(tmp_dir, ignore_errors=True)
 
-    doc = {"settings": settings.to_dict(), "graph": graph_doc,
-           "mode": "reference" if args.reference else "partitioned",
-           "epochs": result.epochs}
+    extra = {}
     if args.resumed is not None:
-        doc["resumed_from"] = {"folder": str(args.resume), "epoch": args.resumed.epoch}
+        extra["resumed_from"] = {"folder": str(args.resume), "epoch": args.resumed.epoch}
     if plan is not None:
-        doc["checkpoint"] = {"folder": plan["folder"], "every": plan["every"]}
+        extra["checkpoint"] = {"folder": plan["folder"], "every": plan["every"]}
     if args.slow_worker:
-        doc["slow_workers"] = {str(w): f for w, f in parse_slow_workers(args.slow_worker).items()}
-    if not args.reference:
-        doc["traffic"] = result.traffic
-        doc["workers"] = result.workers
-        doc["profile"] = result.profile
+        extra["slow_workers"] = {str(w): f
+                                 for w, f in parse_slow_workers(args.slow_worker).items()}
+    doc = rundoc.run_document(settings, graph_doc, result,
+                              mode="reference" if args.reference else "partitioned", **extra)
     write_outputs(args, result, labels, doc)
     if not args.quiet:
         last = result.epochs[-1]

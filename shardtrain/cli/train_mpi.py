@@ -40,13 +40,11 @@ def _prepare(args):
 
 def _finish(args, settings, facts, result) -> None:
     """The outputs and the closing lines of `shardtrain train`, written by rank 0."""
+    from shardtrain import rundoc
     from shardtrain.cli import train
 
-    graph_doc = {"shard_dir": str(args.graph), "num_vertices": facts.num_vertices,
-                 "workers": facts.workers}
-    doc = {"settings": settings.to_dict(), "graph": graph_doc, "mode": "partitioned",
-           "transport": "mpi", "epochs": result.epochs, "traffic": result.traffic,
-           "workers": result.workers, "profile": result.profile}
+    doc = rundoc.run_document(settings, rundoc.graph_of_shards(args.graph, facts), result,
+                              mode="partitioned", transport="mpi")
     train.write_outputs(args, result, result.labels, doc)
     if not args.quiet:
         last = result.epochs[-1]
