@@ -17,11 +17,20 @@ from shardtrain.graph import Graph
 
 # ----------------------------------------------------------------------------- METIS
 
+# Refinement passes per uncoarsening level (METIS's default is 10). Measured on the 1 M-vertex,
+# 10 M-edge parcel network (edge cut): 2 passes take 25.6 CPU s instead of 53.7 at k = 16
+# for a cut 0.3 % larger, and 15.9 s instead of 19.9 at k = 4 for a cut 0.05 % larger.
+# Random matching in coarsening (ctype RM) was no cheaper in recursive bisection and cut
+# 42 % more edges there; skipping 2-hop matching (no2hop) saved nothing.
+METIS_REFINE_ITERATIONS = 2
+
+
 def _metis(graph: Graph, k: int, *, seed: int, imbalance: float, volume: bool) -> np.ndarray:
     import pymetis
 
     # ufactor is the allowed imbalance in thousandths: 0.03 -> 30 (max part <= 1.03 x mean)
-    options = pymetis.Options(ufactor=max(1, int(round(imbalance * 1000))), seed=int(seed))
+    options = pymetis.Options(ufactor=max(1, int(round(imbalance * 1000))), seed=int(seed),
+                              niter=METIS_REFINE_ITERATIONS)
     options.objtype = int(pymetis.ObjType.VOL if volume else pymetis.ObjType.CUT)
     adjacency = pymetis.CSRAdjacency(adj_starts=graph.indptr, adjacent=graph.indices)
     # METIS minimises communication volume only in its k-way scheme (recursive bisection

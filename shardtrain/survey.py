@@ -218,17 +218,17 @@ def survey_plan(graph, method: str, k: int, *, hops: list[LayerHop], itemsize: i
     epoch, and max/mean imbalances. Shards are freed before returning."""
     from shardtrain.shards import build_shards, shard_stats
 
-    t0 = time.perf_counter()
+    t0, c0 = time.perf_counter(), time.process_time()
     if assignment is None:
         from shardtrain.partition import partition
 
         assignment = partition(graph, method, k, seed=seed, imbalance=imbalance)
-    t1 = time.perf_counter()
+    t1, c1 = time.perf_counter(), time.process_time()
     # Id order: every count read below (rows, halo, send lists, nnz, index widths) is the
     # same in any local order, and id order skips the trainer's reverse Cuthill-McKee pass
     # (tests/test_survey.py checks the prediction against a trained run's measurement).
     shards = build_shards(graph, assignment, k, with_vertex_data=False, order="id")
-    t2 = time.perf_counter()
+    t2, c2 = time.perf_counter(), time.process_time()
     params = parameter_elements(hops, bias=bias)
     traffic = predict_traffic(shards, hops, itemsize, param_elements=params)
     stats = shard_stats(shards)
@@ -265,6 +265,8 @@ def survey_plan(graph, method: str, k: int, *, hops: list[LayerHop], itemsize: i
                       "bytes_sent": _max_over_mean(sent)},
         "partition_s": t1 - t0,
         "build_s": t2 - t1,
+        "partition_cpu_s": c1 - c0,      # this process's CPU time: the machine may be shared
+        "build_cpu_s": c2 - c1,
     }
 
 
