@@ -167,10 +167,12 @@ def time_bars(workers: list[dict], title: str, out_dir, name: str) -> str:
     fig, ax = plt.subplots(figsize=(max(5.5, 0.35 * min(k, 64) + 3), 4))
     bottom = np.zeros(k)
     for key, label, colour in PHASES:
-        v = np.array([float(w.get(key) or 0.0) for w in workers])
+        # a phase cannot take negative time (a clock read out of order); draw it as none
+        v = np.clip([float(w.get(key) or 0.0) for w in workers], 0.0, None)
         ax.bar(x, v, bottom=bottom, color=colour, label=label, width=0.75)
         bottom += v
     ax.set_xticks(x if k <= 16 else x[:: int(np.ceil(k / 16))])
+    ax.set_xlim(-0.6, k - 0.4)
     ax.set_xlabel("worker")
     ax.set_ylabel("time")
     ax.yaxis.set_major_formatter(FuncFormatter(_seconds_label))
@@ -230,6 +232,9 @@ def survey_plots(survey: dict, out_dir, plan: dict | None = None) -> list[str]:
         ax.grid(True, which="major", alpha=0.3)
     ax1.set_yscale("log")
     _log_bytes_axis(ax1.yaxis)
+    traffic = [max(_plan_traffic(p), 1.0) for p in plans]
+    # limits at powers of two, so the highest and lowest lines sit between labelled ticks
+    ax1.set_ylim(2.0 ** np.floor(np.log2(min(traffic))), 2.0 ** np.ceil(np.log2(max(traffic))))
     ax1.set_ylabel("payload per training epoch (all workers)")
     ax1.set_title("traffic per epoch", fontsize=10)
     ax2.set_ylabel("replication factor ((owned + halo) / vertices)")
@@ -273,7 +278,7 @@ def run_plots(run: dict, out_dir) -> list[str]:
     paths = []
     workers = run.get("workers") or []
     if workers:
-        paths.append(time_bars(workers, f"measured time per worker over the run "
+        paths.append(time_bars(workers, f"measured wall time per worker over the run "
                                         f"({len(workers)} workers)", out_dir,
                                "run_worker_times.png"))
     epochs = run.get("epochs") or []
@@ -282,7 +287,7 @@ def run_plots(run: dict, out_dir) -> list[str]:
         fig, (ax1, ax2) = plt.subplots(1, 2, figsize=(10, 3.8))
         ax1.plot(e, [r["loss"] for r in epochs], color="#4c72b0")
         ax1.set_xlabel("epoch")
-        ax1.set_ylabel("training loss (cross-entropy)")
+        ax1.set_ylabel("training loss (cross-entropy + weight decay)")
         ax1.set_title("loss", fontsize=10)
         for key, label in (("train_acc", "training"), ("val_acc", "validation"),
                            ("test_acc", "test")):
@@ -296,7 +301,7 @@ def run_plots(run: dict, out_dir) -> list[str]:
         ax2.legend(fontsize=9)
         for ax in (ax1, ax2):
             ax.grid(True, alpha=0.3)
-            ax.xaxis.set_major_locator(MaxNLocator(integer=True))
+            ax.xaxis.set_major_locator(MaxNLocator(integer=True, steps=[1, 2, 5, 10]))
         fig.tight_layout()
         paths.append(_save(fig, out_dir, "run_loss_accuracy.png"))
     pair, what = measured_pair_bytes(run)

@@ -228,8 +228,11 @@ def run_section(doc: dict, plot_dir: Path) -> str:
              ("edges", f"{edges:,}" if edges is not None else None),
              ("mode", doc.get("mode")),
              ("workers", len(doc["workers"]) if doc.get("workers") else None)]
-    facts += [(k, s[k]) for k in ("method", "layers", "hidden", "dtype", "epochs",
-                                  "lr", "dropout", "weight_decay", "link") if k in s]
+    facts += [(label, s[k]) for k, label in (
+        ("method", "method"), ("layers", "layers"), ("hidden", "hidden width"),
+        ("dtype", "dtype"), ("epochs", "epochs"), ("lr", "learning rate"),
+        ("dropout", "dropout"), ("weight_decay", "weight decay (first layer)"),
+        ("link", "link")) if k in s]
     if "measured_payload_bytes" in t:
         facts.append(("measured payload", human_bytes(t["measured_payload_bytes"])
                       + f" ({t['measured_payload_bytes']:,} bytes)"))
