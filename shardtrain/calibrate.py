@@ -15,6 +15,7 @@ interpolation in width and size.
 from __future__ import annotations
 
 import json
+import math
 import time
 from pathlib import Path
 
@@ -276,19 +277,91 @@ def pipe_speed(calibration: dict) -> float | None:
     return float(pipe["bytes_per_s"]) if pipe else None
 
 
+def _positive_number(x) -> bool:
+    return isinstance(x, (int, float)) and not isinstance(x, bool) and math.isfinite(x) \
+        and x > 0
+
+
+def _positive_int(x) -> bool:
+    return isinstance(x, int) and not isinstance(x, bool) and x > 0
+
+
+# what the speed helpers read: {section: (is a list of rows?, {key: check})}
+_SHAPE = {
+    "sparse": (True, {"nnz": _positive_int, "width": _positive_int,
+                      "nnz_cols_per_s": _positive_number}),
+    "dense": (True, {"d_in": _positive_int, "d_out": _positive_int,
+                     "flops_per_s": _positive_number}),
+    "elementwise": (False, {"bytes_per_s": _positive_number}),
+    "dropout_masks": (False, {"elements_per_s": _positive_number}),
+}
+
+
+def _shape_error(cal: dict) -> str | None:
+    """What is wrong with a calibration of this version, or None."""
+    for section, (is_list, keys) in _SHAPE.items():
+        value = cal.get(section)
+        rows = value if is_list else [value]
+        if not isinstance(rows, list) or not rows or \
+                not all(isinstance(r, dict) for r in rows):
+            kind = "a non-empty list of objects" if is_list else "an object"
+            return f"{section!r} must be {kind}"
+        for i, row in enumerate(rows):
+            for key, ok in keys.items():
+                if not ok(row.get(key)):
+                    where = f"{section}[{i}]" if is_list else section
+                    return f"{where}.{key} must be a positive number, got {row.get(key)!r}"
+    pipe = cal.get("pipe")
+    if pipe is not None and not (isinstance(pipe, dict)
+                                 and _positive_number(pipe.get("bytes_per_s"))):
+        return "'pipe' must be an object with a positive 'bytes_per_s'"
+    return None
+
+
+def read_calibration(path, dtype: str, option: str = "--calibration") -> dict | None:
+    """The cached calibration in `path` for `dtype`, or None when one must be timed (and
+    then written there): the file does not exist yet, or it is a calibration of another
+    dtype or version (a stale cache, replaced). Anything else in its place is refused with
+    an InputError naming `option` and the file, so that a bad file costs no work and is
+    never overwritten."""
+    p = Path(path)
+    where = f"{option} {p}"
+    if not p.exists():
+        if not p.parent.is_dir():
+            raise InputError(f"{where}: folder {p.parent} does not exist")
+        return None
+    if p.is_dir():
+        raise InputError(f"{where}: is a directory")
+    try:
+        text = p.read_text(encoding="utf-8")
+    except OSError as exc:
+        raise InputError(f"{where}: cannot read ({exc.strerror or exc})") from None
+    except UnicodeDecodeError:
+        raise InputError(f"{where}:1: not a calibration JSON (not UTF-8 text)") from None
+    try:
+        cal = json.loads(text)
+    except json.JSONDecodeError as exc:
+        raise InputError(f"{where}:{exc.lineno}: not valid JSON ({exc.msg})") from None
+    version = cal.get("version") if isinstance(cal, dict) else None
+    if not (_positive_int(version) and cal.get("dtype") in ("float32", "float64")):
+        raise InputError(f"{where}:1: not a calibration file (needs 'version' and 'dtype'; "
+                         f"give a new file name and forecast writes one there)")
+    if version != CALIBRATION_VERSION:
+        return None
+    problem = _shape_error(cal)
+    if problem is not None:
+        raise InputError(f"{where}:1: not a usable calibration: {problem}")
+    return cal if cal["dtype"] == dtype else None
+
+
 def load_or_calibrate(path: str | None, dtype: str) -> dict:
-    """Read a cached calibration from `path` when it exists and matches; else time one and,
-    when `path` is given, write it there (atomically)."""
+    """Read a cached calibration from `path` when it exists and matches (see
+    `read_calibration`); else time one and, when `path` is given, write it there
+    (atomically)."""
     if path:
-        p = Path(path)
-        if p.exists():
-            try:
-                cal = json.loads(p.read_text(encoding="utf-8"))
-            except (OSError, ValueError) as exc:
-                raise InputError(f"{p}:1: not a readable calibration JSON ({exc})") from None
-            if isinstance(cal, dict) and cal.get("version") == CALIBRATION_VERSION \
-                    and cal.get("dtype") == dtype:
-                return cal
+        cal = read_calibration(path, dtype)
+        if cal is not None:
+            return cal
     cal = calibrate(dtype)
     if path:
         from shardtrain.files import write_json_atomic

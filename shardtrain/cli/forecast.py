@@ -241,9 +241,16 @@ def run(args) -> int:
     _check_options(args)
     source = str(args.graph)
     graph = None
-    if source.lower().endswith(".json"):
+    is_survey = source.lower().endswith(".json")
+    if is_survey:
         survey_dict = _select(read_survey_json(source), workers, methods, source)
-    else:
+    cached = None
+    if args.flops_per_worker is None and args.calibration:   # a bad file costs no work
+        from shardtrain.calibrate import read_calibration
+
+        cached = read_calibration(args.calibration, survey_dict["model"].get(
+            "dtype", "float32") if is_survey else args.dtype)
+    if not is_survey:
         from shardtrain.survey import SurveySettings, check_plans, survey
 
         settings = SurveySettings(layers=args.layers, hidden=args.hidden, dtype=args.dtype,
@@ -261,8 +268,11 @@ def run(args) -> int:
     if args.flops_per_worker is not None:
         calibration = from_flops(args.flops_per_worker, dtype)
     else:
-        print("timing this machine's kernels (one thread) ...", file=sys.stderr)
-        calibration = load_or_calibrate(args.calibration, dtype)
+        if cached is not None and cached["dtype"] == dtype:
+            calibration = cached
+        else:
+            print("timing this machine's kernels (one thread) ...", file=sys.stderr)
+            calibration = load_or_calibrate(args.calibration, dtype)
         if graph is not None:   # sparse speeds on the graph's own structure
             from shardtrain.calibrate import with_graph_sparse
 
