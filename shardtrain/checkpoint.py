@@ -14,6 +14,11 @@ rename is the commit. A crash at any moment leaves the previous index and the st
 it names untouched, so the latest committed checkpoint is always readable. Older state
 files are removed only after the commit.
 
+The same format serves a reference run (`reference.train_reference`, one process, the whole
+graph): its identity records mode "reference" (workers 1, no shard fingerprint), and a
+resume refuses a checkpoint of the other mode, since the two runs sum in different orders
+and cannot continue each other bit for bit.
+
 The random stream needs no saved position: dropout masks come from a counter-based
 generator keyed by (seed, epoch, layer, global vertex id), so the epoch IS the position;
 the index records the seed and the next epoch to make that explicit.
@@ -68,13 +73,24 @@ def shard_dir_fingerprint(shard_dir) -> str:
     return h.hexdigest()[:16]
 
 
-def run_identity(settings, *, workers: int, dims, graph_fingerprint, shards_fingerprint
-                 ) -> dict:
+MODES = ("partitioned", "reference")
+
+
+def run_identity(settings, *, workers: int, dims, graph_fingerprint, shards_fingerprint,
+                 mode: str = "partitioned") -> dict:
     """What a checkpoint must share with the run that resumes it."""
-    return {"settings": {k: v for k, v in settings.to_dict().items()
+    if mode not in MODES:
+        raise ValueError(f"mode {mode!r} is not one of {MODES}")
+    return {"mode": mode,
+            "settings": {k: v for k, v in settings.to_dict().items()
                          if k not in _FREE_SETTINGS},
             "workers": int(workers), "dims": [list(map(int, d)) for d in dims],
             "graph_fingerprint": graph_fingerprint, "shards_fingerprint": shards_fingerprint}
+
+
+def mode_of(doc: dict) -> str:
+    """The run mode a checkpoint index records (written before modes were: partitioned)."""
+    return doc.get("mode", "partitioned")
 
 
 def write_checkpoint(folder, epoch: int, params: dict, adam_state: dict, identity: dict, *,
@@ -105,6 +121,36 @@ def write_checkpoint(folder, epoch: int, params: dict, adam_state: dict, identit
                                            and ".tmp" in old.name)):
             old.unlink(missing_ok=True)
     return folder / INDEX
+
+
+def epoch_writer(plan: dict, last_epoch: int, *,
+                 before_commit: Callable[[int], None] | None = None):
+    """An end-of-epoch hook `(epoch, params, adam) -> {"checkpoint": epoch} | None` that
+    writes a checkpoint every plan["every"] epochs and after `last_epoch` into
+    plan["folder"] (created here; its parent must exist). `plan` is {"folder", "every",
+    "identity"} as for the partitioned run; `before_commit(epoch)` as in
+    `write_checkpoint`."""
+    from shardtrain import model
+
+    Path(plan["folder"]).mkdir(exist_ok=True)
+
+    def write(epoch: int, params, adam) -> dict | None:
+        if epoch % plan["every"] and epoch != last_epoch:
+            return None
+        write_checkpoint(plan["folder"], epoch, model.params_to_arrays(params), adam.state(),
+                         plan["identity"], every=plan["every"],
+                         before_commit=(None if before_commit is None
+                                        else lambda: before_commit(epoch)))
+        return {"checkpoint": epoch}
+    return write
+
+
+def latest_epoch(folder) -> int | None:
+    """The epoch of the committed checkpoint in `folder`, or None (none, or unreadable)."""
+    try:
+        return int(json.loads((Path(folder) / INDEX).read_text(encoding="utf-8"))["epoch"])
+    except (OSError, ValueError, KeyError, TypeError):
+        return None
 
 
 @dataclass
@@ -169,6 +215,11 @@ def check_resumable(ckpt: Checkpoint, identity: dict, *, epochs: int,
     """Refuse (InputError naming the option and what differs) a resume that contradicts
     the checkpoint: another graph, shard layout, model shape, worker count or setting."""
     doc, src = ckpt.doc, f"--resume {ckpt.folder}"
+    mine_mode, their_mode = identity.get("mode", "partitioned"), mode_of(doc)
+    if mine_mode != their_mode:
+        raise InputError(f"{src}: the checkpoint was written by a {their_mode} run, this is a "
+                         f"{mine_mode} run (resume it in the mode that wrote it"
+                         f"{', with --reference' if their_mode == 'reference' else ''})")
     for key, mine in identity["settings"].items():
         theirs = doc["settings"].get(key)
         if theirs != mine:

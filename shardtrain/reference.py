@@ -58,17 +58,26 @@ def locality_order(a_hat) -> np.ndarray:
 
 
 def train_reference(graph: Graph, settings: TrainSettings, *, init_params=None,
+                    init_adam: dict | None = None, first_epoch: int = 1,
                     on_epoch: Callable[[dict], None] | None = None,
+                    on_epoch_end: Callable | None = None,
                     reorder: bool = True) -> RunResult:
-    """Train for settings.epochs steps; record the loss and accuracies of every epoch.
+    """Train epochs first_epoch..settings.epochs; record the loss and accuracies of each.
 
     loss = the objective of that step's forward pass (cross-entropy + weight-decay penalty
     at the weights that forward used); accuracies come from an evaluation forward (no
-    dropout) after the step. `init_params` (Params of the right shapes) replaces Glorot.
+    dropout) after the step. `init_params` (Params or {name: array} of the right shapes)
+    replaces Glorot. To resume after epoch E, give the weights and `init_adam`
+    (`model.Adam.state()` arrays, e.g. a checkpoint's) and `first_epoch=E + 1`: the epoch
+    keys the dropout stream, so the run goes on exactly as if never stopped.
+    `on_epoch_end(epoch, params, adam)` runs after each epoch's evaluation and before
+    `on_epoch(record)` (a place to write checkpoints, as worker 0 does).
     `reorder=False` keeps rows in id order (same maths, slower products).
     """
     settings.validate()
     check_trainable(graph)
+    if not 1 <= first_epoch <= settings.epochs:
+        raise ValueError(f"first_epoch {first_epoch} is not in 1..{settings.epochs}")
     dtype = settings.np_dtype
     n = graph.num_vertices
     a_hat = normalized_adjacency(graph)
@@ -84,9 +93,13 @@ def train_reference(graph: Graph, settings: TrainSettings, *, init_params=None,
     if init_params is None:
         params = model.glorot_init(dims, settings.seed, dtype, settings.bias)
     else:
-        params = model.params_from_arrays(model.params_to_arrays(init_params), dims,
-                                          settings.bias, dtype, source="initial weights")
+        arrays = init_params if isinstance(init_params, dict) \
+            else model.params_to_arrays(init_params)
+        params = model.params_from_arrays(arrays, dims, settings.bias, dtype,
+                                          source="initial weights")
     adam = model.Adam(params, settings.lr)
+    if init_adam is not None:
+        adam.load_state(init_adam, source="initial optimiser state")
     masks = [None if m is None else m[order]
              for m in (graph.train_mask, graph.val_mask, graph.test_mask)]
     totals = [0 if m is None else int(np.count_nonzero(m)) for m in masks]
@@ -101,7 +114,7 @@ def train_reference(graph: Graph, settings: TrainSettings, *, init_params=None,
 
     records = []
     logits = None
-    for epoch in range(1, settings.epochs + 1):
+    for epoch in range(first_epoch, settings.epochs + 1):
         start = time.perf_counter()
         penalty = model.weight_decay_penalty(params, settings.weight_decay)
         drop = model.Dropout(settings.seed, epoch, settings.dropout, global_ids)
@@ -115,6 +128,8 @@ def train_reference(graph: Graph, settings: TrainSettings, *, init_params=None,
         record = {"epoch": epoch, "loss": loss_part + penalty, "train_acc": acc[0],
                   "val_acc": acc[1], "test_acc": acc[2], "epoch_s": epoch_s}
         records.append(record)
+        if on_epoch_end is not None:
+            on_epoch_end(epoch, params, adam)
         if on_epoch is not None:
             on_epoch(record)
     predictions = np.empty(n, dtype=np.int64)

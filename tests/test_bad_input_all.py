@@ -38,6 +38,14 @@ def inputs(tmp_path_factory):
     (d / "assign_short.txt").write_text("0\n1\n")
     (d / "garbage.json").write_text("{not json\n")
     (d / "unknown.json").write_text(json.dumps({"what": 1}) + "\n")
+    (d / "cal_bad_speed.json").write_text(json.dumps(
+        {"version": 1, "dtype": "float32", "threads": 1,
+         "sparse": [{"nnz": 10, "width": 8, "nnz_cols_per_s": -1.0}],
+         "dense": [{"d_in": 16, "d_out": 16, "flops_per_s": 1e9}],
+         "elementwise": {"bytes_per_s": 1e9}, "dropout_masks": {"elements_per_s": 1e8}}))
+    (d / "cal_no_dense.json").write_text(json.dumps(
+        {"version": 1, "dtype": "float32", "sparse": [], "elementwise": {}}))
+    assert main(["survey", str(d / "g.npz"), *W2, "--json", str(d / "survey.json")]) == 0
     return d
 
 
@@ -141,8 +149,11 @@ CASES = [
     ("train resume with init weights", ["train", "{g}", *W2, *TRAIN, "--resume", "{ck}",
                                         "--init-weights", "{w}"],
      r"--init-weights: not allowed with --resume"),
-    ("train resume reference", ["train", "{g}", "--reference", *TRAIN, "--resume", "{ck}"],
-     r"--resume: not available with --reference"),
+    ("train resume reference", ["train", "{g}", "--reference", *TRAIN, "--epochs", "6",
+                                "--resume", "{ck}"],
+     r"--resume .*ck: the checkpoint was written by a partitioned run, this is a reference"),
+    ("train reference slow worker", ["train", "{g}", "--reference", *TRAIN, "--slow-worker",
+                                     "0:2"], r"--slow-worker: not available with --reference"),
     ("train slow no colon", ["train", "{g}", *W2, *TRAIN, "--slow-worker", "1"],
      r"--slow-worker '1': expected W:FACTOR"),
     ("train slow factor", ["train", "{g}", *W2, *TRAIN, "--slow-worker", "1:0.5"],
@@ -172,6 +183,32 @@ CASES = [
                         "--cores", "0"], r"--cores"),
     ("forecast target", ["forecast", "{g}", "--workers", "2", "--method", "random",
                          "--target-epoch-s", "-1"], r"--target-epoch-s"),
+    # forecast --calibration: refused before surveying or timing anything
+    ("forecast calibration garbage", ["forecast", "{g}", *W2, "--calibration",
+                                      "{d}/garbage.json", "--json", "{out}/f.json"],
+     r"^shardtrain: error: --calibration .*garbage\.json:1: not valid JSON"),
+    ("forecast calibration garbage, survey input",
+     ["forecast", "{d}/survey.json", "--calibration", "{d}/garbage.json", "--json",
+      "{out}/f.json"], r"--calibration .*garbage\.json:1: not valid JSON"),
+    ("forecast calibration other JSON", ["forecast", "{g}", *W2, "--calibration",
+                                         "{d}/unknown.json", "--json", "{out}/f.json"],
+     r"--calibration .*unknown\.json:1: not a calibration file"),
+    ("forecast calibration a survey JSON", ["forecast", "{g}", *W2, "--calibration",
+                                           "{d}/survey.json", "--json", "{out}/f.json"],
+     r"--calibration .*survey\.json:1: not a calibration file"),
+    ("forecast calibration bad speed", ["forecast", "{g}", *W2, "--calibration",
+                                        "{d}/cal_bad_speed.json", "--json", "{out}/f.json"],
+     r"--calibration .*cal_bad_speed\.json:1: not a usable calibration: "
+     r"sparse\[0\]\.nnz_cols_per_s must be a positive number"),
+    ("forecast calibration no dense", ["forecast", "{g}", *W2, "--calibration",
+                                       "{d}/cal_no_dense.json", "--json", "{out}/f.json"],
+     r"--calibration .*cal_no_dense\.json:1: not a usable calibration: 'sparse' must be"),
+    ("forecast calibration directory", ["forecast", "{g}", *W2, "--calibration",
+                                        "{d}/empty", "--json", "{out}/f.json"],
+     r"--calibration .*empty: is a directory"),
+    ("forecast calibration folder missing", ["forecast", "{g}", *W2, "--calibration",
+                                             "{out}/no/cal.json", "--json", "{out}/f.json"],
+     r"--calibration.*folder .*no does not exist"),
     # report
     ("report missing", ["report", "{out}/none.json", "--html", "{out}/r.html"], r"none\.json"),
     ("report garbage", ["report", "{d}/garbage.json", "--html", "{out}/r.html"],
@@ -216,3 +253,20 @@ def test_bad_input_is_one_line_and_exit_2(inputs, tmp_path, capsys, case):
 
 def test_at_least_thirty_distinct_cases():
     assert len({c[0] for c in CASES}) == len(CASES) >= 30
+
+
+def test_a_calibration_cache_is_kept_replaced_or_refused(inputs, tmp_path):
+    """--calibration semantics: missing -> time and write; ours for this dtype -> used;
+    ours for another dtype or version -> re-timed and replaced; anything else refused
+    (the cases above). The calibration is a dict of our own making (no outside source)."""
+    from shardtrain.calibrate import CALIBRATION_VERSION, from_flops, read_calibration
+
+    assert read_calibration(tmp_path / "new.json", "float32") is None
+    cal = dict(from_flops(1e9, "float32"), pipe={"bytes_per_s": 1e9})
+    cal["sparse"][0]["nnz_cols_per_s"] = 5e8
+    (tmp_path / "cal.json").write_text(json.dumps(cal))
+    assert read_calibration(tmp_path / "cal.json", "float32") == cal
+    assert read_calibration(tmp_path / "cal.json", "float64") is None
+    (tmp_path / "old.json").write_text(json.dumps(dict(cal, version=CALIBRATION_VERSION + 1,
+                                                       sparse=None)))
+    assert read_calibration(tmp_path / "old.json", "float32") is None

@@ -13,7 +13,8 @@ Faults: a worker that dies or fails ends the run (exit 3) with one line naming i
 exit status or signal and its last phase; Ctrl-C or SIGTERM stops every worker (exit 4)
 and names the `--resume DIR` that continues from the latest checkpoint
 (`--checkpoint DIR --checkpoint-every N`). In float64 a resumed run ends with the very
-same weights, bit for bit, as a run that was never interrupted.
+same weights, bit for bit, as a run that was never interrupted. `--reference` runs take
+--checkpoint/--resume too (a checkpoint resumes only a run of the mode that wrote it).
 """
 from __future__ import annotations
 
@@ -214,7 +215,7 @@ def _check_fault_options(args) -> None:
         ("--resume", args.resume), ("--slow-worker", args.slow_worker),
         ("--max-frame-bytes", args.max_frame_bytes)) if given]
     for flag, _ in extras:
-        if args.reference:
+        if args.reference and flag in ("--slow-worker", "--max-frame-bytes"):
             raise InputError(f"{flag}: not available with --reference (partitioned runs only)")
         if args.transport == "mpi" and flag != "--max-frame-bytes":
             raise InputError(f"{flag}: not available with --transport mpi")
@@ -389,15 +390,13 @@ def run(args) -> int:
                 tmp_dir = tempfile.mkdtemp(prefix="shardtrain-shards-")
                 shard_dir = str(Path(tmp_dir) / "shards")
                 _build_shard_dir(graph, args, assignment, shard_dir, dims)
-        plan = None
-        if not args.reference:
-            plan = _checkpoint_plan(args, settings, shard_dir, dims, graph_fp)
+        plan = (_reference_plan(args, settings, dims, graph_fp) if args.reference
+                else _checkpoint_plan(args, settings, shard_dir, dims, graph_fp))
         progress = _Progress(settings.epochs, args.quiet,
                              args.resumed.epoch if args.resumed is not None else 0)
         with _sigterm_as_interrupt():
             if args.reference:
-                from shardtrain.reference import train_reference
-                result = train_reference(graph, settings, init_params=init, on_epoch=progress)
+                result = _train_reference(graph, settings, init, plan, args.resumed, progress)
             else:
                 from shardtrain.coordinator import train_partitioned
                 result = train_partitioned(shard_dir, settings, timeout_s=args.timeout,
@@ -461,6 +460,54 @@ def _checkpoint_plan(args, settings, shard_dir, dims, graph_fp) -> dict | None:
                                    graph_label=str(args.graph))
     return {"folder": str(args.checkpoint), "every": int(args.checkpoint_every),
             "identity": identity}
+
+
+def _reference_plan(args, settings, dims, graph_fp) -> dict | None:
+    """Check --resume against this reference run; the checkpoint plan or None."""
+    from shardtrain import checkpoint
+
+    if args.checkpoint is None and args.resumed is None:
+        return None
+    identity = checkpoint.run_identity(settings, workers=1, dims=dims,
+                                       graph_fingerprint=graph_fp, shards_fingerprint=None,
+                                       mode="reference")
+    if args.resumed is not None:
+        checkpoint.check_resumable(args.resumed, identity, epochs=settings.epochs,
+                                   graph_label=str(args.graph))
+    return {"folder": str(args.checkpoint), "every": int(args.checkpoint_every),
+            "identity": identity}
+
+
+def _train_reference(graph, settings, init, plan, resumed, progress):
+    """The single-process run, checkpointed per `plan`, continuing `resumed`; Ctrl-C
+    becomes Interrupted naming the checkpoint and the --resume that continues it."""
+    from shardtrain import checkpoint
+    from shardtrain.errors import Interrupted
+    from shardtrain.reference import train_reference
+
+    done = [resumed.epoch if resumed is not None else 0]
+
+    def on_epoch(rec):
+        done[0] = rec["epoch"]
+        progress(rec)
+    try:
+        return train_reference(
+            graph, settings, init_params=resumed.params if resumed is not None else init,
+            init_adam=resumed.adam if resumed is not None else None,
+            first_epoch=resumed.epoch + 1 if resumed is not None else 1, on_epoch=on_epoch,
+            on_epoch_end=None if plan is None else checkpoint.epoch_writer(plan,
+                                                                           settings.epochs))
+    except KeyboardInterrupt:
+        where = f"after epoch {done[0]}" if done[0] else "before the first epoch ended"
+        saved = None if plan is None else checkpoint.latest_epoch(plan["folder"])
+        if plan is None:
+            text = "no checkpoint was written (add --checkpoint DIR to be able to resume)"
+        elif saved is None:
+            text = f"no checkpoint was written yet in {plan['folder']} (nothing to resume)"
+        else:
+            text = (f"the latest checkpoint (epoch {saved}) is intact in {plan['folder']}: "
+                    f"run the same command with --resume {plan['folder']} to continue")
+        raise Interrupted(f"training stopped {where}; {text}") from None
 
 
 class _Terminated(KeyboardInterrupt):
