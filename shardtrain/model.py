@@ -137,17 +137,33 @@ def dropout_mask(seed: int, epoch: int, layer: int, global_ids: np.ndarray, widt
     """
     if rate == 0:
         return None
+    mask = keep_mask(seed, epoch, layer, global_ids, width, rate).astype(dtype)
+    mask *= mask_scale(rate, dtype)
+    return mask
+
+
+def mask_scale(rate: float, dtype):
+    """The inverted-dropout scale 1 / P(kept), P(kept) a multiple of 2^-16 (see dropout_mask)."""
+    return np.dtype(dtype).type(65536.0 / (65536 - _threshold(rate)))
+
+
+def _threshold(rate: float) -> int:
+    return min(int(round(rate * 65536)), 65535)
+
+
+def keep_mask(seed: int, epoch: int, layer: int, global_ids: np.ndarray, width: int,
+              rate: float) -> np.ndarray:
+    """Boolean (len(global_ids), width): True where `dropout_mask` is the scale, not 0."""
     ids = np.asarray(global_ids)
     n = ids.shape[0]
     half = (width + 1) // 2
     keys = _row_keys(seed, epoch, layer, ids)
     pair_keys = np.arange(half, dtype=np.uint32) * np.uint32(0x85EBCA77)
-    threshold = min(int(round(rate * 65536)), 65535)
-    scale = np.dtype(dtype).type(65536.0 / (65536 - threshold))
-    mask = np.empty((n, width), dtype=dtype)
+    threshold = np.uint16(_threshold(rate))
+    keep = np.empty((n, width), dtype=bool)
     # Blocks of rows small enough (~256 KiB) that the hash passes stay in cache: twice as
     # fast as whole-array passes. The loop runs over blocks, not vertices.
-    block = max(1, _BLOCK_WORDS // max(half, 1))
+    block = _block_rows(half)
     x = np.empty((min(block, n), half), dtype=np.uint32)
     t = np.empty_like(x)
     for start in range(0, n, block):
@@ -155,14 +171,15 @@ def dropout_mask(seed: int, epoch: int, layer: int, global_ids: np.ndarray, widt
         xs, ts = x[:stop - start], t[:stop - start]
         np.add(keys[start:stop, None], pair_keys[None, :], out=xs)
         _fmix32(xs, ts)
-        ms = mask[start:stop]
-        np.greater_equal(xs.view(np.uint16)[:, :width], np.uint16(threshold), out=ms,
-                         casting="unsafe")
-        ms *= scale
-    return mask
+        np.greater_equal(xs.view(np.uint16)[:, :width], threshold, out=keep[start:stop])
+    return keep
 
 
 _BLOCK_WORDS = 1 << 16
+
+
+def _block_rows(words_per_row: int) -> int:
+    return max(1, _BLOCK_WORDS // max(words_per_row, 1))
 
 
 def _fmix32(x: np.ndarray, t: np.ndarray) -> None:
@@ -172,30 +189,43 @@ def _fmix32(x: np.ndarray, t: np.ndarray) -> None:
     np.right_shift(x, 16, out=t); x ^= t
 
 
+def apply_keep(h: np.ndarray, keep: np.ndarray, scale) -> np.ndarray:
+    """h * dropout_mask, bit for bit (h * 1 * s == h * s, h * 0 * s == h * 0), without
+    building the float mask: block by block, so each block is written once while in cache."""
+    out = np.empty_like(h)
+    block = _block_rows(h.shape[1])
+    for start in range(0, h.shape[0], block):
+        o = out[start:start + block]
+        np.multiply(h[start:start + block], keep[start:start + block], out=o)
+        o *= scale
+    return out
+
+
 class Dropout:
     """drop(layer, h) for one epoch of one process: h * mask.
 
     Inverted dropout is an elementwise linear map, so it is its own adjoint: `backward`
-    calls the same drop on the gradient. Masks of layers >= 1 are kept for that second
-    call; layer 0's is not (nothing differentiates through the features). A rate of 0 makes
-    it the identity. `global_ids` are the global ids of the rows, in row order.
+    calls the same drop on the gradient. Masks are kept as booleans (a quarter of a float32
+    mask) and only for layers >= 1, which `backward` asks for a second time; layer 0's is
+    not kept (nothing differentiates through the features). A rate of 0 makes it the
+    identity. `global_ids` are the global ids of the rows, in row order.
     """
 
     def __init__(self, seed: int, epoch: int, rate: float, global_ids: np.ndarray):
         self.seed, self.epoch, self.rate = seed, epoch, rate
         self.global_ids = global_ids
-        self._masks: dict[int, np.ndarray] = {}
+        self._keep: dict[int, np.ndarray] = {}
 
     def __call__(self, layer: int, h: np.ndarray) -> np.ndarray:
         if self.rate == 0:
             return h
-        mask = self._masks.get(layer)
-        if mask is None or mask.shape != h.shape or mask.dtype != h.dtype:
-            mask = dropout_mask(self.seed, self.epoch, layer, self.global_ids, h.shape[1],
-                                self.rate, h.dtype)
+        keep = self._keep.get(layer)
+        if keep is None or keep.shape != h.shape:
+            keep = keep_mask(self.seed, self.epoch, layer, self.global_ids, h.shape[1],
+                             self.rate)
             if layer > 0:
-                self._masks[layer] = mask
-        return h * mask
+                self._keep[layer] = keep
+        return apply_keep(h, keep, mask_scale(self.rate, h.dtype))
 
 
 def no_dropout(layer: int, h: np.ndarray) -> np.ndarray:

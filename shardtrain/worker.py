@@ -64,23 +64,56 @@ def decode_message(raw: bytes) -> dict:
 
 # ---------------------------------------------------------------- halo products
 
+def _accumulate_product(a, x: np.ndarray, y: np.ndarray) -> None:
+    """y += a @ x for a CSR matrix `a` and C-contiguous 2-D x, y of a's dtype, in place.
+
+    scipy's own kernel (the one `a @ x` runs after zeroing a fresh output) when it is there:
+    no temporary, and row i sums its entries in column order exactly as `a @ x` does; else
+    the public product, added.
+    """
+    if _csr_matvecs is not None and x.shape[1] > 0:
+        _csr_matvecs(a.shape[0], a.shape[1], x.shape[1], a.indptr, a.indices, a.data,
+                     x.reshape(-1), y.reshape(-1))
+    else:
+        y += a @ x
+
+
+try:    # a private scipy module: guarded, with the public product as the fallback
+    from scipy.sparse._sparsetools import csr_matvecs as _csr_matvecs
+except ImportError:  # pragma: no cover - depends on the scipy build
+    _csr_matvecs = None
+
+
 class HaloOps:
     """propagate / propagate_t of one shard over a transport, with buffers reused per
-    (layer, width): the stacked [M; M_halo] matrix, the send blocks and the receive blocks."""
+    (layer, width): the halo rows received forward, the send blocks, the receive blocks.
+
+    Â_P is kept split by columns into its owned block A_oo (n_owned x n_owned) and halo
+    block A_oh (n_owned x n_halo), in the training dtype, with their transposes:
+    - forward:  Z = A_oo M + A_oh M_halo, both accumulated into one fresh output, so M is
+      never copied into a stacked [M; M_halo] and every row sums its entries in the same
+      column order as Â_P [M; M_halo] would (the same bits);
+    - backward: the halo rows A_ohᵀ G go to their owners first, then A_ooᵀ G is computed
+      and the peers' contributions are added at the send rows.
+    """
 
     def __init__(self, shard, transport, profile, dtype):
         self.shard, self.transport, self.profile = shard, transport, profile
         self.n_owned = shard.num_owned
         self.n_local = shard.num_owned + shard.num_halo
+        self.dtype = np.dtype(dtype)
         with profile.phase("compute"):
-            self.adj = shard.adj.astype(dtype)          # (n_owned, n_owned + n_halo)
-            self.adj_t = self.adj.T.tocsr()              # once, not per hop
+            adj = shard.adj.astype(self.dtype, copy=False)   # (n_owned, n_owned + n_halo)
+            adj = adj.tocsr() if adj.format != "csr" else adj
+            self.adj_own = _column_block(adj, 0, self.n_owned)
+            self.adj_halo = _column_block(adj, self.n_owned, self.n_local)
+            del adj
+            self.adj_own_t = self.adj_own.T.tocsr()          # once, not per hop
+            self.adj_halo_t = self.adj_halo.T.tocsr()
         self.peers = shard.peers()
         self.send_idx = {q: shard.send_to(q) for q in self.peers}
         self.halo_rows = {q: shard.halo_from(q) for q in self.peers}
-        self.dtype = np.dtype(dtype)
         self.epoch = 0
-        self._stacked: dict[tuple, np.ndarray] = {}
         self._blocks: dict[tuple, np.ndarray] = {}
         self.on_phase: Callable[[str], None] = lambda text: None
 
@@ -95,32 +128,34 @@ class HaloOps:
             self.on_phase(f"epoch {self.epoch} {direction} exchange, layer {layer}")
             width = m.shape[1]
             with self.profile.phase("compute"):
-                stacked = self._stacked.get((layer, width))
-                if stacked is None:
-                    stacked = np.empty((self.n_local, width), dtype=self.dtype)
-                    self._stacked[(layer, width)] = stacked
-                stacked[:self.n_owned] = m
+                m = np.ascontiguousarray(m, dtype=self.dtype)
                 outgoing = {}
                 for q in self.peers:
                     idx = self.send_idx[q]
                     buf = self._block(("send", layer, width, q), idx.shape[0], width)
                     outgoing[q] = np.take(m, idx, axis=0, out=buf)
-                halo = stacked[self.n_owned:]
+                halo = self._block(("halo", layer, width), self.n_local - self.n_owned,
+                                   width)
                 incoming = {q: halo[self.halo_rows[q]] for q in self.peers}
             with self.profile.phase("exchange"):
                 self.transport.exchange(outgoing, incoming, kind=KIND_HALO, epoch=self.epoch,
                                         layer=layer, direction=direction)
             self.on_phase(f"epoch {self.epoch} compute")
             with self.profile.phase("compute"):
-                return self.adj @ stacked
+                z = np.zeros((self.n_owned, width), dtype=self.dtype)   # fresh: the model's
+                _accumulate_product(self.adj_own, m, z)
+                _accumulate_product(self.adj_halo, halo, z)
+                return z
         return propagate
 
     def propagate_t(self, layer: int, g: np.ndarray) -> np.ndarray:
         self.on_phase(f"epoch {self.epoch} backward exchange, layer {layer}")
         width = g.shape[1]
         with self.profile.phase("compute"):
-            local = self.adj_t @ np.ascontiguousarray(g)   # (n_owned + n_halo, width)
-            halo = local[self.n_owned:]
+            g = np.ascontiguousarray(g, dtype=self.dtype)
+            halo = self._block(("halo_t", layer, width), self.n_local - self.n_owned, width)
+            halo.fill(0)
+            _accumulate_product(self.adj_halo_t, g, halo)          # rows owned by the peers
             outgoing = {q: halo[self.halo_rows[q]] for q in self.peers}
             incoming = {q: self._block(("recv", layer, width, q), self.send_idx[q].shape[0],
                                        width) for q in self.peers}
@@ -129,10 +164,18 @@ class HaloOps:
                                     layer=layer, direction=BACKWARD)
         self.on_phase(f"epoch {self.epoch} compute")
         with self.profile.phase("compute"):
-            out = local[:self.n_owned]
+            out = np.zeros((self.n_owned, width), dtype=self.dtype)
+            _accumulate_product(self.adj_own_t, g, out)
             for q in self.peers:
                 out[self.send_idx[q]] += incoming[q]
-            return np.ascontiguousarray(out)
+            return out
+
+
+def _column_block(adj, lo: int, hi: int):
+    """Columns lo..hi-1 of a CSR matrix with sorted indices, renumbered from 0 (CSR, the
+    row order of entries kept)."""
+    block = adj[:, lo:hi]
+    return block.tocsr() if block.format != "csr" else block
 
 
 # ---------------------------------------------------------------- a straggler on purpose

@@ -9,13 +9,17 @@ same source, tag and communicator overtake each other):
 MPI itself refuses a payload larger than the posted buffer (truncation); after both
 messages arrive the header is checked against the expectation and the buffer.
 
-Waiting: requests are polled (Testall) until done, with a deadline of `timeout_s` seconds
-without any request completing; a missed deadline or a failed request raises RunError
-naming the rank waited for. MPI collectives cannot time out on their own, so the caller
+Waiting: a helper thread blocks in MPI_Waitsome until every request of the call is done, so
+MPI moves the data at its own pace (a large message advances only while some thread is
+inside the MPI library: polling with naps between the polls stalls it). The calling thread
+waits for the helper with a deadline of `timeout_s` seconds without any request completing
+(mpi4py releases the GIL inside MPI calls and initialises MPI_THREAD_MULTIPLE); a missed
+deadline cancels what is pending and raises RunError naming the ranks waited for, as does a
+failed request. MPI collectives cannot time out on their own, so the caller
 must turn a RunError into `transport.abort()` (comm.Abort) after reporting it, or the other
 ranks would wait for ever; mpiexec also ends the job when a rank dies.
 
-All-reduce: `allreduce_sum` uses MPI's own all-reduce (non-blocking Iallreduce, polled with
+All-reduce: `allreduce_sum` uses MPI's own all-reduce (non-blocking Iallreduce, waited for with
 the same deadline) by default, or the ring of ring.py over point-to-point messages with
 `allreduce="ring"`. Either way the profile counts the LOGICAL traffic of the ring all-reduce
 (Patarasuk & Yuan 2009): per step, the chunk sent to the right neighbour and the one received
@@ -26,11 +30,13 @@ what is counted. MPI's all-reduce is not promised to give identical bits on ever
 MPICH's algorithms for a commutative sum do (tests check it for 2 and 3 ranks); "ring"
 guarantees it by construction.
 
-Wait time: the time spent polling for requests to complete, which with MPI includes the
-copying itself (MPI moves data inside the test calls).
+Wait time: the time spent waiting for requests to complete, which with MPI includes the
+copying itself (MPI moves data inside the wait). MPICH's progress engine spins while it
+waits, so the waiting counts as CPU time too.
 """
 from __future__ import annotations
 
+import threading
 import time
 
 import numpy as np
@@ -45,8 +51,6 @@ from shardtrain.transport.ring import ring_allreduce, ring_steps
 TAG_HEADER = 1
 TAG_PAYLOAD = 2
 HEADER_BUFFER = frames.PREFIX_BYTES + frames.MAX_HEADER_BYTES
-SPIN_S = 0.002         # poll without sleeping this long (short exchanges finish here)
-NAP_S = 0.0002         # then sleep this long between polls, to leave the core to others
 
 
 def _mpi():
@@ -174,24 +178,33 @@ class MpiTransport:
         del keep
 
     def _wait(self, reqs: list, who, meta: dict) -> list:
-        """Poll until every request is done; deadline timeout_s without any completion."""
+        """Wait until every request is done (statuses in request order); deadline timeout_s
+        without any completion. See the module docstring for why a helper thread waits."""
         MPI = self.MPI
-        statuses = [MPI.Status() for _ in reqs]
-        done = [False] * len(reqs)
-        t_start = last = time.perf_counter()
+        statuses: list = [None] * len(reqs)
+        state = {"last": time.perf_counter(), "error": None}
+        t_start = state["last"]
+
+        def drive() -> None:
+            scratch = [MPI.Status() for _ in reqs]
+            try:
+                while True:
+                    indices = MPI.Request.Waitsome(reqs, scratch)
+                    if indices is None:              # every request is done (or null)
+                        return
+                    for k, i in enumerate(indices):  # statuses come in completion order
+                        statuses[i] = MPI.Status(scratch[k])
+                    state["last"] = time.perf_counter()
+            except MPI.Exception as exc:
+                state["error"] = exc
+
+        helper = threading.Thread(target=drive, name="mpi-wait", daemon=True)
         try:
-            while True:
-                progressed = False
-                for i, req in enumerate(reqs):
-                    if not done[i] and req.Test(statuses[i]):
-                        done[i] = progressed = True
-                now = time.perf_counter()
-                if all(done):
-                    break
-                if progressed:
-                    last = now
-                elif now - last > self.timeout_s:
-                    pending = [i for i, d in enumerate(done) if not d]
+            helper.start()
+            while helper.is_alive():
+                left = state["last"] + self.timeout_s - time.perf_counter()
+                if left <= 0:
+                    pending = [i for i, st in enumerate(statuses) if st is None]
                     for i in pending:
                         try:
                             reqs[i].Cancel()
@@ -199,12 +212,12 @@ class MpiTransport:
                             pass
                     raise RunError(f"timed out after {self.timeout_s:g} s waiting for "
                                    f"{who(pending)} ({frames.describe(meta)})")
-                if now - last > SPIN_S:
-                    time.sleep(NAP_S)
-        except MPI.Exception as exc:
-            pending = [i for i, d in enumerate(done) if not d]
-            raise RunError(f"MPI failed while waiting for {who(pending)} "
-                           f"({frames.describe(meta)}): {exc.Get_error_string()}") from None
+                helper.join(left)
+            exc = state["error"]
+            if exc is not None:
+                pending = [i for i, st in enumerate(statuses) if st is None]
+                raise RunError(f"MPI failed while waiting for {who(pending)} "
+                               f"({frames.describe(meta)}): {exc.Get_error_string()}")
         finally:
             self.profile.add_wait(time.perf_counter() - t_start)
         return statuses
