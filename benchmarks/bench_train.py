@@ -8,9 +8,17 @@ Side by side on the same synthesized parcel network (float32, 2 layers, dropout 
 - 1, 2, 4 workers over pipes (metis shards), epoch_s = slowest worker's step;
 - peer: a hand-written full-graph GCN in PyTorch sparse on the CPU (same shapes, 2 threads),
   skipped with a note when torch is not installed (it is not a project dependency);
-- exchange payload throughput (halo bytes / exchange wall time) against a raw pipe measured
-  in the same run; total worker peak RSS against the reference's.
-Epoch times are medians over the epochs after the first (warm-up).
+- exchange payload throughput against a raw pipe measured in the same run: inside the
+  training runs (bytes each worker sent + received / its exchange time, with and without the
+  time blocked on a peer still computing), and the transport alone (two processes doing
+  nothing but `PipeTransport.exchange` of a training-sized halo frame);
+- memory: total worker peak RSS against 1.3 x the reference's plus the halo copies (the
+  halo, send and receive buffers that exist only because the graph is split).
+Wall epoch times are medians over the epochs after the first (warm-up). On a shared machine
+wall time measures the neighbours too, so CPU seconds per epoch sit beside it: for the
+reference and the peer the median per-epoch process CPU (training step + evaluation), for
+the workers each one's profiled CPU (all phases, shard loading excluded) / epochs, summed
+and maxed over the workers. The load average is recorded before and after each run.
 """
 from __future__ import annotations
 
@@ -52,8 +60,12 @@ def _reference_child(args, conn) -> None:
     graph = _graph(args)
     from shardtrain.worker import peak_rss_bytes
     base = peak_rss_bytes()
-    result = train_reference(graph, _settings(args))
+    marks = [time.process_time()]
+    result = train_reference(graph, _settings(args),
+                             on_epoch=lambda rec: marks.append(time.process_time()))
+    cpu = [b - a for a, b in zip(marks, marks[1:])]
     conn.send({"epoch_s": _median_epoch(result.epochs), "loss": result.epochs[-1]["loss"],
+               "cpu_s_per_epoch": statistics.median(cpu[1:] or cpu),
                "peak_rss_bytes": peak_rss_bytes(), "rss_after_graph_bytes": base})
 
 
@@ -68,7 +80,8 @@ def _torch_child(args, conn) -> None:
     torch.set_num_threads(2)
     graph = _graph(args)
     a = normalized_adjacency(graph).tocoo()
-    a_t = torch.sparse_coo_tensor(  # noqa: the beta-state warnings of torch are expectednp.vstack([a.row, a.col]), a.data.astype(np.float32),
+    # (torch warns that sparse CSR is in beta: expected)
+    a_t = torch.sparse_coo_tensor(np.vstack([a.row, a.col]), a.data.astype(np.float32),
                                   a.shape).coalesce().to_sparse_csr()
     x = torch.from_numpy(np.ascontiguousarray(graph.features, dtype=np.float32))
     y = torch.from_numpy(graph.labels)
@@ -76,9 +89,9 @@ def _torch_child(args, conn) -> None:
     w0 = torch.nn.init.xavier_uniform_(torch.empty(args.features, args.hidden)).requires_grad_()
     w1 = torch.nn.init.xavier_uniform_(torch.empty(args.hidden, CLASSES)).requires_grad_()
     opt = torch.optim.Adam([w0, w1], lr=0.01)
-    times = []
+    times, cpu = [], []
     for _ in range(args.epochs):
-        start = time.perf_counter()
+        start, c0 = time.perf_counter(), time.process_time()
         opt.zero_grad()
         h = torch.relu(a_t @ (torch.nn.functional.dropout(x, 0.5) @ w0))
         z = a_t @ (torch.nn.functional.dropout(h, 0.5) @ w1)
@@ -86,7 +99,10 @@ def _torch_child(args, conn) -> None:
         loss.backward()
         opt.step()
         times.append(time.perf_counter() - start)
+        cpu.append(time.process_time() - c0)
     conn.send({"epoch_s": statistics.median(times[1:] or times), "threads": 2,
+               "cpu_s_per_epoch": statistics.median(cpu[1:] or cpu),
+               "note": "training step only (no evaluation forward); CPU of both threads",
                "version": torch.__version__})
 
 
@@ -127,9 +143,60 @@ def _raw_pipe_gbps(nbytes: int = 256 << 20) -> float:
     return got / seconds
 
 
+def _exchange_child(rank: int, ends, rows: int, width: int, repeats: int, conn) -> None:
+    """One side of the transport-only exchange: both sides send and receive a frame."""
+    import numpy as np
+    from shardtrain.profile import Profile
+    from shardtrain.transport.pipes import PipeTransport
+    t = PipeTransport(rank, 2, ends, Profile(rank), timeout_s=60)
+    out = np.ones((rows, width), np.float32)
+    inc = np.empty_like(out)
+    seconds = []
+    for i in range(repeats):
+        start = time.perf_counter()
+        t.exchange({1 - rank: out}, {1 - rank: inc}, kind="halo", epoch=i, layer=0,
+                   direction="forward")
+        seconds.append(time.perf_counter() - start)
+    t.close()
+    conn.send(seconds)
+
+
+def _transport_only(rows: int, width: int, repeats: int = 12) -> dict:
+    """Two processes exchanging a (rows, width) float32 frame both ways, nothing else:
+    bytes each process moves (sent + received) per second, median over the repeats."""
+    from shardtrain.transport.pipes import make_pipe_mesh
+    ctx = multiprocessing.get_context("spawn")
+    ends = make_pipe_mesh(2, {(0, 1)})
+    pipes, procs = [], []
+    for r in range(2):
+        mine, theirs = ctx.Pipe()
+        p = ctx.Process(target=_exchange_child, args=(r, ends[r], rows, width, repeats, theirs))
+        p.start()
+        theirs.close()
+        ends[r].close()
+        pipes.append(mine)
+        procs.append(p)
+    seconds = [max(s) for s in zip(*[c.recv() for c in pipes])]
+    for p in procs:
+        p.join(60)
+    frame = rows * width * 4
+    best = statistics.median(seconds[1:])
+    return {"frame_bytes": frame, "repeats": repeats, "median_s": best,
+            "moved_bytes_per_s_per_process": 2 * frame / best}
+
+
+def _halo_copy_bytes(shards, dims, itemsize: int) -> int:
+    """Bytes of the buffers that exist only because the graph is split: per worker, the
+    received halo rows and the send rows, at every hop's forward and backward width."""
+    from shardtrain.schedule import layer_hops
+    widths = sum(h.forward_width + h.backward_width for h in layer_hops(dims))
+    return sum((s.num_halo + int(s.send_idx.shape[0])) * widths * itemsize for s in shards)
+
+
 def _partitioned(args, graph, k: int) -> dict:
     from shardtrain.coordinator import train_partitioned
     from shardtrain.partition import partition
+    from shardtrain.reference import model_dims
     from shardtrain.shards import build_shards, save_shards
 
     with tempfile.TemporaryDirectory(prefix="bench-train-") as tmp:
@@ -138,14 +205,23 @@ def _partitioned(args, graph, k: int) -> dict:
         shards = build_shards(graph, assignment, k)
         save_shards(Path(tmp) / "s", shards, meta={"method": "metis", "seed": 0})
         halo_rows = sum(s.num_halo for s in shards)
+        halo_copies = _halo_copy_bytes(shards, model_dims(graph, _settings(args)), 4)
         del shards
         prep = time.perf_counter() - t0
+        load_before = os.getloadavg()[0]
         result = train_partitioned(Path(tmp) / "s", _settings(args), timeout_s=300)
     ex = sum(w["exchange_s"] + w["wait_s"] for w in result.workers)
     active = sum(w["exchange_s"] for w in result.workers)
     halo = result.traffic["halo_payload_bytes"]
+    epochs = len(result.epochs)
+    cpu = [w["cpu_s"] / epochs for w in result.workers]
     return {"workers": k, "epoch_s": _median_epoch(result.epochs),
+            "epoch_s_all": [e["epoch_s"] for e in result.epochs],
+            "cpu_s_per_epoch_sum": sum(cpu), "cpu_s_per_epoch_max": max(cpu),
+            "cpu_s_per_epoch": cpu,
+            "load_average_1min": [load_before, os.getloadavg()[0]],
             "loss": result.epochs[-1]["loss"], "prepare_s": prep, "halo_rows": halo_rows,
+            "halo_copy_bytes": halo_copies,
             "measured_payload_bytes": result.traffic["measured_payload_bytes"],
             "predicted_payload_bytes": result.traffic["predicted_payload_bytes"],
             "halo_payload_bytes": halo,
@@ -155,6 +231,12 @@ def _partitioned(args, graph, k: int) -> dict:
             "exchange_active_throughput_bytes_per_s": (2 * halo / active) if active > 0 else None,
             "total_peak_rss_bytes": sum(w["peak_rss_bytes"] for w in result.workers),
             "per_worker": result.workers}
+
+
+def halo_rows_of(runs) -> int:
+    """Halo rows of the 2-worker run (else the first split one): the transport-only frame."""
+    split = [r for r in runs if r["workers"] == 2] or [r for r in runs if r["workers"] > 1]
+    return split[0]["halo_rows"] if split else 100_000
 
 
 def main() -> None:
@@ -168,7 +250,8 @@ def main() -> None:
     ap.add_argument("--workers", default="1,2,4")
     args = ap.parse_args()
 
-    out = {"settings": vars(args), "cpus": os.cpu_count()}
+    out = {"settings": vars(args), "cpus": os.cpu_count(),
+           "load_average_1min_start": os.getloadavg()[0]}
     out["raw_pipe_bytes_per_s"] = _raw_pipe_gbps()
     out["reference"] = _in_child(_reference_child, args)
     print("reference", out["reference"], file=sys.stderr)
@@ -177,21 +260,37 @@ def main() -> None:
     runs = []
     for k in [int(v) for v in args.workers.split(",")]:
         runs.append(_partitioned(args, graph, k))
-        print(f"{k} workers: {runs[-1]['epoch_s']:.3f} s/epoch", file=sys.stderr)
+        print(f"{k} workers: {runs[-1]['epoch_s']:.3f} s/epoch, CPU s/epoch sum "
+              f"{runs[-1]['cpu_s_per_epoch_sum']:.3f} max {runs[-1]['cpu_s_per_epoch_max']:.3f}",
+              file=sys.stderr)
     out["partitioned"] = runs
     del graph
     out["torch_peer"] = _in_child(_torch_child, args)
+    print("torch peer", out["torch_peer"], file=sys.stderr)
+    out["transport_only"] = _transport_only(max(1, halo_rows_of(runs) // 2), args.hidden)
     by_k = {r["workers"]: r for r in runs}
+    ref, peer = out["reference"], out["torch_peer"]
     ratios = {}
     if 1 in by_k and 2 in by_k:
         ratios["speedup_2_over_1"] = by_k[1]["epoch_s"] / by_k[2]["epoch_s"]
-    if 2 in by_k and "epoch_s" in out["torch_peer"]:
-        ratios["torch_over_2_workers"] = out["torch_peer"]["epoch_s"] / by_k[2]["epoch_s"]
-    if "epoch_s" in out["reference"]:
-        ratios["reference_over_1_worker"] = out["reference"]["epoch_s"] / by_k[1]["epoch_s"] \
+        # on 2 idle cores, 2 workers can be 1.7x faster only if this is <= ~1.15
+        ratios["cpu_sum_2_over_1"] = (by_k[2]["cpu_s_per_epoch_sum"]
+                                      / by_k[1]["cpu_s_per_epoch_sum"])
+        ratios["cpu_speedup_2_over_1"] = (by_k[1]["cpu_s_per_epoch_max"]
+                                          / by_k[2]["cpu_s_per_epoch_max"])
+    if 2 in by_k and "epoch_s" in peer:
+        ratios["torch_over_2_workers"] = peer["epoch_s"] / by_k[2]["epoch_s"]
+    if "epoch_s" in ref:
+        ratios["reference_over_1_worker"] = ref["epoch_s"] / by_k[1]["epoch_s"] \
             if 1 in by_k else None
+        ratios["cpu_reference_over_1_worker"] = (ref["cpu_s_per_epoch"]
+                                                 / by_k[1]["cpu_s_per_epoch_sum"]
+                                                 if 1 in by_k else None)
         ratios["memory_total_over_reference"] = {
-            k: r["total_peak_rss_bytes"] / out["reference"]["peak_rss_bytes"]
+            k: r["total_peak_rss_bytes"] / ref["peak_rss_bytes"] for k, r in by_k.items()}
+        # goal: total worker peak RSS <= 1.3 x reference peak + halo copies (<= 1 passes)
+        ratios["memory_total_over_goal"] = {
+            k: r["total_peak_rss_bytes"] / (1.3 * ref["peak_rss_bytes"] + r["halo_copy_bytes"])
             for k, r in by_k.items()}
     ratios["exchange_over_raw_pipe"] = {
         k: (r["exchange_throughput_bytes_per_s"] or 0) / out["raw_pipe_bytes_per_s"]
@@ -199,9 +298,13 @@ def main() -> None:
     ratios["exchange_active_over_raw_pipe"] = {
         k: (r["exchange_active_throughput_bytes_per_s"] or 0) / out["raw_pipe_bytes_per_s"]
         for k, r in by_k.items() if k > 1}
+    ratios["transport_only_over_raw_pipe"] = (
+        out["transport_only"]["moved_bytes_per_s_per_process"] / out["raw_pipe_bytes_per_s"])
     out["ratios"] = ratios
+    out["load_average_1min_end"] = os.getloadavg()[0]
     Path(args.out).parent.mkdir(parents=True, exist_ok=True)
-    Path(args.out).write_text(json.dumps(out, indent=1) + "\n")
+    from shardtrain.files import write_json_atomic
+    write_json_atomic(args.out, out)
     print(json.dumps(ratios, indent=1))
 
 
