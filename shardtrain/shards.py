@@ -27,7 +27,8 @@ from shardtrain.errors import InputError
 from shardtrain.graph import Graph, gcn_degrees
 
 # "locality": owned vertices renumbered by reverse Cuthill-McKee on the owned subgraph, so
-# neighbours sit close together in memory; "id": owned vertices in ascending global id.
+# neighbours sit close together in memory (the trainer's order); "id": owned vertices in
+# ascending global id (the survey's: every count is the same, the build is cheaper).
 ORDERS = ("locality", "id")
 
 
@@ -109,9 +110,10 @@ def _locality_perm(indptr: np.ndarray, inside: np.ndarray, local_cols: np.ndarra
                    ) -> np.ndarray:
     """new -> old permutation of a worker's owned rows (given in id order, their entries
     delimited by `indptr`): reverse Cuthill-McKee (George & Liu 1981) on the owned
-    subgraph, which keeps neighbours in nearby rows and columns. Measured here: Â_P @ X
-    runs ~1.8x faster in this order than in id order (benchmarks/bench_shards.py,
-    order_check). `inside` marks the entries whose neighbour is owned, `local_cols` are
+    subgraph, which keeps neighbours in nearby rows and columns. Measured here
+    (benchmarks/bench_shards.py, order_check, METIS k = 4 on 1 M vertices, loaded machine):
+    Â_P @ X 1.5x faster in wall time (1.1x in CPU time) than in id order, for about 1 CPU s
+    more build time, repaid within the first epochs of training. `inside` marks the entries whose neighbour is owned, `local_cols` are
     those neighbours' id-order local indices."""
     n_own = indptr.shape[0] - 1
     if n_own <= 2 or local_cols.shape[0] == 0:
