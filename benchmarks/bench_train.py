@@ -117,26 +117,38 @@ def _in_child(target, args):
     return out
 
 
-def _raw_pipe_gbps(nbytes: int = 256 << 20) -> float:
-    """One pipe between two processes, 1 MiB writes of one buffer: bytes per second."""
+def _raw_pipe_gbps(frame_bytes: int = 1 << 20, repeats: int = 0) -> float:
+    """One pipe between two processes (kernel buffer as the transport's), a frame-sized
+    source written as fast as the pipe takes it and read straight into a frame-sized
+    destination, `repeats` times (default: 256 MiB in all): bytes per second. With the
+    default 1 MiB frame both buffers stay in cache (a best case no exchange of halo-sized
+    frames can meet); with a halo-sized frame it is the same copy work as one side of one
+    exchange."""
     import numpy as np
+    from shardtrain.transport.pipes import PIPE_BYTES, _grow_pipe
+    repeats = repeats or max(1, (256 << 20) // frame_bytes)
     r, w = os.pipe()
+    _grow_pipe(w, PIPE_BYTES)
     pid = os.fork()
     if pid == 0:
         os.close(r)
-        buf = memoryview(np.zeros(1 << 20, np.uint8))
-        sent = 0
-        while sent < nbytes:
-            sent += os.write(w, buf)
+        src = memoryview(np.ones(frame_bytes, np.uint8))
+        for _ in range(repeats):
+            done = 0
+            while done < frame_bytes:
+                done += os.write(w, src[done:])
         os._exit(0)
     os.close(w)
-    buf = bytearray(1 << 20)
+    dest = memoryview(np.empty(frame_bytes, np.uint8))
     got, start = 0, time.perf_counter()
-    while got < nbytes:
-        n = os.readv(r, [buf])
-        if n == 0:
-            break
-        got += n
+    for _ in range(repeats):
+        pos = 0
+        while pos < frame_bytes:
+            n = os.readv(r, [dest[pos:]])
+            if n == 0:
+                break
+            pos += n
+        got += pos
     seconds = time.perf_counter() - start
     os.waitpid(pid, 0)
     os.close(r)
@@ -267,7 +279,9 @@ def main() -> None:
     del graph
     out["torch_peer"] = _in_child(_torch_child, args)
     print("torch peer", out["torch_peer"], file=sys.stderr)
-    out["transport_only"] = _transport_only(max(1, halo_rows_of(runs) // 2), args.hidden)
+    rows = max(1, halo_rows_of(runs) // 2)
+    out["transport_only"] = _transport_only(rows, args.hidden)
+    out["raw_pipe_frame_bytes_per_s"] = _raw_pipe_gbps(rows * args.hidden * 4, 12)
     by_k = {r["workers"]: r for r in runs}
     ref, peer = out["reference"], out["torch_peer"]
     ratios = {}
@@ -298,8 +312,16 @@ def main() -> None:
     ratios["exchange_active_over_raw_pipe"] = {
         k: (r["exchange_active_throughput_bytes_per_s"] or 0) / out["raw_pipe_bytes_per_s"]
         for k, r in by_k.items() if k > 1}
+    # per process, bytes moved per second: an exchange both writes and reads its frames,
+    # one side of the raw pipe only writes or only reads them
     ratios["transport_only_over_raw_pipe"] = (
         out["transport_only"]["moved_bytes_per_s_per_process"] / out["raw_pipe_bytes_per_s"])
+    ratios["transport_only_over_raw_pipe_same_frame"] = (
+        out["transport_only"]["moved_bytes_per_s_per_process"]
+        / out["raw_pipe_frame_bytes_per_s"])
+    ratios["exchange_active_over_raw_pipe_same_frame"] = {
+        k: (r["exchange_active_throughput_bytes_per_s"] or 0) / out["raw_pipe_frame_bytes_per_s"]
+        for k, r in by_k.items() if k > 1}
     out["ratios"] = ratios
     out["load_average_1min_end"] = os.getloadavg()[0]
     Path(args.out).parent.mkdir(parents=True, exist_ok=True)

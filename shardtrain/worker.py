@@ -108,7 +108,7 @@ class HaloOps:
             self.adj_own = _column_block(adj, 0, self.n_owned)
             self.adj_halo = _column_block(adj, self.n_owned, self.n_local)
             del adj
-            self.adj_own_t = self.adj_own.T.tocsr()          # once, not per hop
+            self.adj_own_t = _transpose(self.adj_own)        # once, not per hop
             self.adj_halo_t = self.adj_halo.T.tocsr()
         self.peers = shard.peers()
         self.send_idx = {q: shard.send_to(q) for q in self.peers}
@@ -169,6 +169,16 @@ class HaloOps:
             for q in self.peers:
                 out[self.send_idx[q]] += incoming[q]
             return out
+
+
+def _transpose(a):
+    """aᵀ as CSR, or `a` itself when a is symmetric bit for bit (Â's owned block is: its
+    values are d_i^-1/2 d_j^-1/2), which saves a copy of the largest block."""
+    t = a.T.tocsr()
+    t.sort_indices()
+    same = (np.array_equal(t.indptr, a.indptr) and np.array_equal(t.indices, a.indices)
+            and np.array_equal(t.data, a.data))
+    return a if same else t
 
 
 def _column_block(adj, lo: int, hi: int):
