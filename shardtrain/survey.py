@@ -159,23 +159,25 @@ def predict_memory(shard, hops: list[LayerHop], itemsize: int, *, param_elements
     the shard's own. Terms, following `worker.HaloOps` and `model.train_step`:
     - baseline: `BASELINE_RSS_BYTES`, the idle interpreter with numpy + scipy;
     - shard structure: owned n x 8, halo h x 8, send_idx s x 8, the two k+1 pointer arrays;
-    - Â three times: the shard's float64 CSR, its copy in the training dtype, and the
-      transpose (indptr of n + h + 1) for the backward products;
+    - Â three times: the shard's float64 CSR, its owned and halo column blocks in the
+      training dtype (two indptrs of n + 1), and their transposes (indptrs n + 1 and h + 1)
+      for the backward products;
     - vertex data: the features n x input_dim in the training dtype, plus the stored copy
       when it is of another width (`feature_itemsize`), labels n x 8, three masks n x 1;
-    - per layer, reused every epoch: the [owned | halo] stack (n+h) x fw (the halo part is
-      the forward receive buffer), the forward send blocks s x fw, the backward receive
-      blocks s x bw (all x b);
-    - the forward cache of the training step, per layer: input h (layers > 0), the
-      dropped-out input and its mask (same dtype) when `dropout`, Â[H] in aggregate-first
-      order, each n x d_in x b; the logits and their gradient, 2 x n x classes x b;
-    - the backward working set, the largest over layers of Âᵀ G ((n+h) x fw) and dZ
-      (n x d_out), plus for layers > 0 the input gradient dH, its dropped-out copy and the
-      ReLU-masked product (3 x n x d_in, times b) and the ReLU mask (n x d_in x 1);
+    - per layer, reused every epoch: the forward halo receive buffer h x fw, the forward
+      send blocks s x fw, the backward halo buffer h x bw and receive blocks s x bw (x b);
+    - the forward cache of the training step, per layer: input h (layers > 0), and when
+      `dropout` the dropped-out input (n x d_in x b) with its boolean keep mask (n x d_in,
+      kept for layers > 0, alive while applied for layer 0), Â[H] in aggregate-first order
+      (n x d_in x b); the logits and their gradient, 2 x n x classes x b;
+    - the backward working set, the largest over layers of the owned rows of Âᵀ G (n x fw)
+      and dZ (n x d_out), plus for layers > 0 the input gradient dH, its dropped-out copy
+      and the ReLU-masked product (3 x n x d_in, times b) and the ReLU mask (n x d_in x 1);
     - parameters, Adam m and v, the per-layer gradients and their flat copy: 5 x P x b.
 
     Checked in benchmarks/bench_survey.py against a real worker's peak RSS (200 k vertices,
-    2.2 M entries): +5 % (128-64-6, float32), +6 % (float64), -2 % (16-64-6, float32).
+    2.2 M entries; the worker of the split-block halo products and boolean dropout masks):
+    -4.5 % (128-64-6, float32), -4.8 % (float64), -1.5 % (16-64-6, float32).
     """
     n, h = shard.num_owned, shard.num_halo
     s = int(shard.send_ptr[-1])
@@ -187,17 +189,19 @@ def predict_memory(shard, hops: list[LayerHop], itemsize: int, *, param_elements
     total = BASELINE_RSS_BYTES
     total += (n + h + s) * 8 + 2 * shard.send_ptr.nbytes
     total += (n + 1) * ip + nnz * (ix + adj.data.dtype.itemsize)     # shard's Â
-    total += (n + 1) * ip + nnz * (ix + b)                           # Â in training dtype
-    total += (n + h + 1) * ip + nnz * (ix + b)                       # Âᵀ
+    total += 2 * (n + 1) * ip + nnz * (ix + b)       # owned and halo column blocks of Â
+    total += (n + 1 + h + 1) * ip + nnz * (ix + b)   # their transposes
     total += n * input_dim * b + (n * input_dim * fb if fb != b else 0) + n * 8 + 3 * n
     backward_peak = 0
     for hop in hops:
         fw, bw = hop.forward_width, hop.backward_width
-        total += ((n + h) * fw + s * fw + s * bw) * b                # stack, send, recv
-        cache = (hop.layer > 0) + 2 * dropout + (not hop.transform_first)
-        total += cache * n * hop.d_in * b
+        total += (h * fw + s * fw + h * bw + s * bw) * b             # halo, send, recv
+        # dropped-out input and its boolean keep mask (kept for layers > 0, alive while it
+        # is applied for layer 0), plus the input itself for layers > 0
+        cache = n * hop.d_in * ((hop.layer > 0) * b + dropout * (b + 1))
+        total += cache + (not hop.transform_first) * n * hop.d_in * b
         d_h = 3 * n * hop.d_in * b + n * hop.d_in if hop.layer > 0 else 0
-        backward_peak = max(backward_peak, ((n + h) * fw + n * hop.d_out) * b + d_h)
+        backward_peak = max(backward_peak, (n * fw + n * hop.d_out) * b + d_h)
     total += 2 * n * hops[-1].d_out * b + backward_peak
     total += 5 * param_elements * b
     return int(total)
