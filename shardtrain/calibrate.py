@@ -7,7 +7,11 @@ Three speeds are measured, in the training dtype:
 - dense GEMM: flop/s (2 flops per multiply-add), at a few inner widths;
 - elementwise passes (ReLU, dropout, an Adam-like update): bytes touched per second;
 - the model's own dropout-mask generator: mask elements per second;
-- one OS pipe: bytes per second (only used to check a forecast against a run on pipes).
+- one OS pipe: bytes per second (only used to check a forecast against a run on pipes);
+- one transport call's fixed cost (`exchange_call_seconds`), paid by every exchange and
+  every all-reduce step however few bytes it moves.
+A shard's whole training step can also be timed on the worker's own code
+(`shard_step_seconds`): the forecast then takes compute from that measurement.
 
 The result is a plain dict (JSON-ready). `speed(...)` helpers look values up with log-linear
 interpolation in width and size.
@@ -170,9 +174,10 @@ def calibrate(dtype: str = "float32", *, seed: int = 0) -> dict:
         elementwise = _time_elementwise(np.dtype(dtype), rng)
         masks = _time_dropout_masks(np.dtype(dtype), rng)
     pipe = _time_pipe()
+    call = exchange_call_seconds()
     return {"version": CALIBRATION_VERSION, "dtype": dtype, "threads": 1,
             "sparse": sparse, "dense": dense, "elementwise": elementwise,
-            "dropout_masks": masks, "pipe": pipe,
+            "dropout_masks": masks, "pipe": pipe, "exchange_call": call,
             "calibration_s": time.perf_counter() - t0}
 
 
@@ -367,3 +372,89 @@ def load_or_calibrate(path: str | None, dtype: str) -> dict:
         from shardtrain.files import write_json_atomic
         write_json_atomic(path, cal)
     return cal
+
+
+class _Loopback:
+    """A transport that moves nothing: receive buffers are zeroed, the all-reduce keeps the
+    local sum. A worker driven through it does all its own compute and no transfer."""
+
+    def exchange(self, outgoing, incoming, **meta) -> None:
+        for buf in incoming.values():
+            buf[...] = 0
+
+    def allreduce_sum(self, buf, *, epoch: int) -> None:
+        pass
+
+
+def shard_step_seconds(shard, settings, num_classes: int, *, epochs: int = 4) -> dict:
+    """CPU seconds of one training step and one evaluation forward of the worker's own code
+    on `shard` (BLAS on one thread, no transfer: see `_Loopback`), fastest of `epochs - 1`
+    epochs after a warm-up one. This is the shard's measured compute, the part of an epoch
+    a counted-work model misses most (Python per-call costs, gathers and scatters of the
+    halo rows, allocations); the transfer is forecast apart."""
+    from dataclasses import replace
+
+    from shardtrain.profile import Profile
+    from shardtrain.worker import run_worker
+
+    if epochs < 2:
+        raise ValueError("shard_step_seconds needs at least 2 epochs (one is a warm-up)")
+    marks = {"start": time.thread_time()}
+    step, evaluation = [], []
+
+    def on_phase(text: str) -> None:
+        if text.endswith(" evaluation"):
+            marks["eval"] = time.thread_time()
+
+    def report(_record: dict) -> None:
+        now = time.thread_time()
+        step.append(marks["eval"] - marks["start"])
+        evaluation.append(now - marks["eval"])
+        marks["start"] = now
+
+    with threadpool_limits(limits=1):
+        run_worker(shard, replace(settings, epochs=int(epochs)), _Loopback(),
+                   Profile(shard.worker), report, num_classes=num_classes,
+                   on_phase=on_phase)
+    return {"worker": int(shard.worker), "epochs": int(epochs),
+            "step_cpu_s": min(step[1:]), "eval_cpu_s": min(evaluation[1:]),
+            "step_cpu_s_all": step, "eval_cpu_s_all": evaluation}
+
+
+def exchange_call_seconds(calls: int = 50, batches: int = 8) -> dict:
+    """Fixed cost of one transport call: a worker and a peer (a thread here) swap one small
+    frame each way through `PipeTransport`; seconds per call of the fastest of `batches`
+    batches of `calls` calls (other processes on this machine only add to it). It covers
+    the header encode/decode, the poll loop and its wake-ups, the system calls and the
+    bookkeeping, which a call pays however few bytes it moves."""
+    import threading
+
+    from shardtrain.profile import Profile
+    from shardtrain.transport.pipes import PipeTransport, make_pipe_mesh
+
+    ends = make_pipe_mesh(2, {(0, 1)})
+    ts = [PipeTransport(r, 2, ends[r], Profile(r), timeout_s=30.0) for r in range(2)]
+    out = [np.ones((1, 8), np.float32) for _ in range(2)]
+    inc = [np.empty((1, 8), np.float32) for _ in range(2)]
+
+    def loop(r: int, n: int) -> None:
+        for _ in range(n):
+            ts[r].exchange({1 - r: out[r]}, {1 - r: inc[r]}, kind="halo", epoch=1, layer=0,
+                           direction="forward")
+
+    wall, cpu = [], []
+    try:
+        peer = threading.Thread(target=loop, args=(1, calls * (batches + 1)))
+        peer.start()
+        loop(0, calls)                                  # warm-up
+        for _ in range(batches):
+            w0, c0 = time.perf_counter(), time.thread_time()
+            loop(0, calls)
+            wall.append((time.perf_counter() - w0) / calls)
+            cpu.append((time.thread_time() - c0) / calls)
+        peer.join()
+    finally:
+        for t in ts:
+            t.close()
+    return {"calls": calls * batches, "seconds_per_call": min(wall),
+            "cpu_s_per_call": min(cpu)}

@@ -84,6 +84,14 @@ class _Timeline:
         s = np.broadcast_to(np.asarray(seconds, dtype=np.float64), (self.k,))
         self.steps.append((kind, label, s.copy()))
 
+    def scale_compute(self, factor) -> None:
+        """Stretch every worker's compute phases by its own factor (measured / counted)."""
+        f = np.asarray(factor, dtype=np.float64)
+        self.steps = [("compute", s[1] * f) if s[0] == "compute" else s for s in self.steps]
+
+    def own_compute(self) -> np.ndarray:
+        return sum((s[1] for s in self.steps if s[0] == "compute"), np.zeros(self.k))
+
     def totals(self) -> dict:
         """Critical path and per-worker split: compute + exchange + allreduce + wait = total."""
         own = {"compute": np.zeros(self.k), "exchange": np.zeros(self.k),
@@ -137,14 +145,20 @@ def _check_positive(name: str, value, *, allow_zero=False) -> None:
 def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: float,
                   calibration: dict, speed_factor: float = 1.0, cores: float | None = None,
                   dropout: float = 0.5, local_pipes: bool = False,
-                  classes: int | None = None) -> dict:
+                  classes: int | None = None, measured_compute: list[dict] | None = None
+                  ) -> dict:
     """Forecast one training epoch (and one evaluation forward) of a survey plan.
 
     `model`: the survey's "model" (dtype, hops). `cores`: the plan runs on one machine with
     that many cores (compute stretched by workers / cores when there are more workers; a
     fraction models cores that other processes share).
     `local_pipes`: the link is emulated on local pipes, whose own speed (calibrated) also
-    caps the bandwidth. Returns the plan-level critical path and a per-worker split.
+    caps the bandwidth. `measured_compute`: one `calibrate.shard_step_seconds` result per
+    worker (in worker order): each worker's compute phases are then scaled so that they add
+    up to its measured CPU seconds of a training step (and of an evaluation forward),
+    keeping the counted split between exchanges. The calibration's `exchange_call` (when
+    present) adds its fixed cost to every transport call.
+    Returns the plan-level critical path and a per-worker split.
     """
     _check_positive("--link-gbps", link_gbps)
     _check_positive("--latency-us", latency_us, allow_zero=True)
@@ -175,6 +189,10 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
     if local_pipes and pipe_speed(calibration):
         bandwidth = min(link_gbps, pipe_speed(calibration) * 8 / 1e9)
     latency = latency_us * 1e-6
+    call_s = float(calibration.get("exchange_call", {}).get("seconds_per_call", 0.0))
+    if measured_compute is not None and len(measured_compute) != k:
+        raise InputError(f"plan {plan.get('method')}/{k}: measured compute of "
+                         f"{len(measured_compute)} workers given")
 
     parts = {}   # seconds per kind of kernel, per worker, of the timeline being built
 
@@ -203,8 +221,8 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
             return np.zeros(k)
         payload = rows * width * b
         framing = msgs * frame_header_bytes(dtype, (rows.max() / max(msgs.max(), 1), width))
-        t = np.where(msgs > 0, latency + link_seconds(payload + framing, bandwidth), 0.0)
-        return t
+        return np.where(msgs > 0,
+                        call_s + latency + link_seconds(payload + framing, bandwidth), 0.0)
 
     def forward(tl: _Timeline, train: bool) -> None:
         for h in hops:
@@ -257,15 +275,20 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
         steps = 2 * (k - 1)
         framing = steps * frame_header_bytes(dtype, (math.ceil(params / k),), kind="allreduce",
                                              layer=-1, direction="reduce-scatter")
-        per_rank = steps * latency + link_seconds(ring + framing, bandwidth)
+        per_rank = steps * (call_s + latency) + link_seconds(ring + framing, bandwidth)
         train.compute(0.0)
         train.exchange("all-reduce", per_rank, kind="allreduce")
         train.compute(passes(np.full(k, size_bytes * (k - 1) / k * 3)))     # chunk adds
     train.compute(passes(np.full(k, params * b * 16.0)))                       # Adam step
-    t = train.totals()
     train_parts, parts = parts, {}
     ev = _Timeline(k)
     forward(ev, train=False)
+    counted = {"train": train.own_compute(), "eval": ev.own_compute()}
+    if measured_compute is not None:
+        for tl, key, name in ((train, "train", "step_cpu_s"), (ev, "eval", "eval_cpu_s")):
+            measured = np.array([float(m[name]) for m in measured_compute]) * slow
+            tl.scale_compute(measured / np.maximum(counted[key], 1e-12))
+    t = train.totals()
     e = ev.totals()
 
     workers = [{"worker": w, "compute_s": float(t["own"]["compute"][w]),
@@ -284,6 +307,9 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
         "eval_s": e["total"], "epoch_with_eval_s": t["total"] + e["total"],
         "bottleneck": max(path, key=path.get),
         "compute_parts_s": {kind: float(v.max()) for kind, v in train_parts.items()},
+        "counted_compute_s": float(counted["train"].max()),
+        "compute_source": "measured" if measured_compute is not None else "counted",
+        "transport_call_s": call_s,
         "compute_stretch": stretch,
         "effective_gbps": float(bandwidth),
         "steps": t["hops"],

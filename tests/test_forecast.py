@@ -283,3 +283,111 @@ def test_cli_rejects_a_json_that_is_not_a_survey(run_cli, tmp_path):
     bad.write_text('{"epochs": []}')
     r = run_cli("forecast", bad, "--flops-per-worker", "1e9")
     assert r.returncode == 2 and str(bad) in r.stderr and len(r.stderr.splitlines()) == 1
+
+
+# ---------------------------------------------------------------- measured compute, call cost
+
+def test_measured_compute_replaces_the_counted_compute():
+    """Hand-worked (common practice): with measured step CPU seconds 0.2 and 0.1 each
+    worker's own compute is exactly that (times the core stretch), split between the
+    exchanges as counted; the transfer part is the counted forecast's, untouched."""
+    model = _model([(16, 8), (8, 3)])
+    plan = _plan([[0, 40], [35, 0]], owned=[500, 480], local_edges=[2500, 2400], params=152)
+    measured = [{"step_cpu_s": 0.2, "eval_cpu_s": 0.05}, {"step_cpu_s": 0.1, "eval_cpu_s": 0.03}]
+    counted = fc.forecast_plan(plan, model, link_gbps=1, latency_us=5, calibration=FAST)
+    out = fc.forecast_plan(plan, model, link_gbps=1, latency_us=5, calibration=FAST,
+                           measured_compute=measured)
+    assert [w["compute_s"] for w in out["per_worker"]] == pytest.approx([0.2, 0.1], rel=1e-12)
+    assert out["compute_source"] == "measured" and counted["compute_source"] == "counted"
+    assert out["exchange_s"] == pytest.approx(counted["exchange_s"], rel=1e-12)
+    assert out["allreduce_s"] == pytest.approx(counted["allreduce_s"], rel=1e-12)
+    # the slower worker sets the pace: the faster one waits the 0.1 s difference in total
+    w0, w1 = out["per_worker"]
+    assert w1["wait_s"] - w0["wait_s"] == pytest.approx(0.1, rel=1e-9)
+    for w in out["per_worker"]:
+        total = w["compute_s"] + w["exchange_s"] + w["allreduce_s"] + w["wait_s"]
+        assert total == pytest.approx(out["epoch_s"], rel=1e-12)
+    # the evaluation forward: its compute is the measured one, its critical path no less
+    assert out["eval_s"] >= 0.05
+    shared = fc.forecast_plan(plan, model, link_gbps=1, latency_us=5, calibration=FAST,
+                              measured_compute=measured, cores=1)
+    assert [w["compute_s"] for w in shared["per_worker"]] == pytest.approx([0.4, 0.2])
+    with pytest.raises(InputError, match="measured compute of 1 workers"):
+        fc.forecast_plan(plan, model, link_gbps=1, latency_us=5, calibration=FAST,
+                         measured_compute=measured[:1])
+
+
+def test_every_transport_call_pays_the_calibrated_fixed_cost():
+    """One layer, 2 workers: one forward and one backward exchange plus 2(k-1) = 2 ring
+    steps (Patarasuk & Yuan 2009), so a 1 ms call cost adds 2 ms to the exchanges and 2 ms
+    to the all-reduce, and nothing to compute."""
+    model = _model([(8, 2)])
+    plan = _plan([[0, 30], [10, 0]], owned=[100, 100], local_edges=[300, 300], params=16)
+    base = fc.forecast_plan(plan, model, link_gbps=0.01, latency_us=50, calibration=FAST)
+    cal = dict(FAST, exchange_call={"seconds_per_call": 1e-3})
+    out = fc.forecast_plan(plan, model, link_gbps=0.01, latency_us=50, calibration=cal)
+    assert out["exchange_s"] - base["exchange_s"] == pytest.approx(2e-3, rel=1e-9)
+    assert out["allreduce_s"] - base["allreduce_s"] == pytest.approx(2e-3, rel=1e-9)
+    assert out["compute_s"] == pytest.approx(base["compute_s"], rel=1e-12)
+    assert out["transport_call_s"] == 1e-3
+
+
+def test_shard_step_is_measured_on_the_workers_own_code(grid_survey, tmp_path):
+    """calibrate.shard_step_seconds runs the worker's training loop on a shard of the
+    networkx 40 x 40 grid: one warm-up epoch dropped, positive CPU seconds for the step
+    and the evaluation forward (no timing claim, only the shape of the result)."""
+    from shardtrain.calibrate import shard_step_seconds
+    from shardtrain.settings import TrainSettings
+
+    shards = _grid_shards(2)
+    out = shard_step_seconds(shards[1], TrainSettings(hidden=16), 4, epochs=3)
+    assert out["worker"] == 1 and len(out["step_cpu_s_all"]) == 3
+    assert out["step_cpu_s"] == min(out["step_cpu_s_all"][1:]) > 0
+    assert out["eval_cpu_s"] == min(out["eval_cpu_s_all"][1:]) > 0
+    with pytest.raises(ValueError):
+        shard_step_seconds(shards[0], TrainSettings(hidden=16), 4, epochs=1)
+
+
+def _grid_graph():
+    # the 40 x 40 grid of networkx (a reference library), 4 classes, 12 features
+    from shardtrain.graph import Graph, csr_from_edges
+    g = nx.convert_node_labels_to_integers(nx.grid_2d_graph(40, 40))
+    e = np.array(g.edges(), dtype=np.int64)
+    n = g.number_of_nodes()
+    indptr, indices, _ = csr_from_edges(e[:, 0], e[:, 1], n)
+    rng = np.random.default_rng(1)
+    return Graph(indptr, indices, features=rng.standard_normal((n, 12)).astype(np.float32),
+                 labels=rng.integers(0, 4, n))
+
+
+def _grid_shards(k):
+    from shardtrain.shards import build_shards
+    graph = _grid_graph()
+    n = graph.num_vertices
+    return build_shards(graph, (np.arange(n) * k // n).astype(np.int64), k)
+
+
+def test_an_emulated_run_is_never_faster_than_its_link_alone(grid_survey, tmp_path):
+    """The link emulation holds every frame until latency + 8 bytes / bandwidth after its
+    call began (transport/link.py), so each worker's training step lasts at least the sum
+    of its own calls' link times: the forecast of the same plan with free compute and no
+    per-call cost is a lower bound of every measured epoch_s."""
+    from shardtrain.coordinator import train_partitioned
+    from shardtrain.graph import fingerprint
+    from shardtrain.settings import TrainSettings
+    from shardtrain.shards import save_shards
+
+    k, gbps, lat = 2, 0.02, 2000.0
+    graph = _grid_graph()
+    save_shards(tmp_path / "s", _grid_shards(k),
+                meta={"method": "range", "seed": 0, "graph_fingerprint": fingerprint(graph),
+                      "num_edges": graph.num_edges})
+    plan = next(p for p in grid_survey["plans"] if p["workers"] == k)
+    free = [{"step_cpu_s": 1e-12, "eval_cpu_s": 1e-12}] * k
+    bound = fc.forecast_plan(plan, grid_survey["model"], link_gbps=gbps, latency_us=lat,
+                             calibration=FAST, measured_compute=free, classes=4)
+    own_link = max(w["exchange_s"] + w["allreduce_s"] for w in bound["per_worker"])
+    assert own_link > 4 * lat * 1e-6             # 2 hops + 2 ring steps at least
+    res = train_partitioned(tmp_path / "s", TrainSettings(hidden=16, epochs=3),
+                            link=LinkModel(gbps, lat))
+    assert all(e["epoch_s"] >= own_link for e in res.epochs), (own_link, res.epochs)

@@ -238,6 +238,12 @@ class PipeTransport:
             t0 = time.perf_counter()
             if first:                             # try everything once before sleeping
                 events, first = [(fd, 0) for fd in by_fd], False
+            elif link_left < min(idle_left, 1e-3):
+                # poll() sleeps whole milliseconds: a frame due in 50 us would leave up to
+                # 1 ms late, making the emulated link slower than the one described
+                events = poller.poll(0)
+                if not events:
+                    time.sleep(max(link_left, 0.0))
             else:
                 events = poller.poll(max(0, math.ceil(limit * 1000)))
             t1 = time.perf_counter()
