@@ -9,15 +9,17 @@ same source, tag and communicator overtake each other):
 MPI itself refuses a payload larger than the posted buffer (truncation); after both
 messages arrive the header is checked against the expectation and the buffer.
 
-Waiting: a helper thread blocks in MPI_Waitsome until every request of the call is done, so
-MPI moves the data at its own pace (a large message advances only while some thread is
-inside the MPI library: polling with naps between the polls stalls it). The calling thread
-waits for the helper with a deadline of `timeout_s` seconds without any request completing
-(mpi4py releases the GIL inside MPI calls and initialises MPI_THREAD_MULTIPLE); a missed
-deadline cancels what is pending and raises RunError naming the ranks waited for, as does a
-failed request. MPI collectives cannot time out on their own, so the caller
-must turn a RunError into `transport.abort()` (comm.Abort) after reporting it, or the other
-ranks would wait for ever; mpiexec also ends the job when a rank dies.
+Waiting: the requests of a call are tested together (Testsome) in a tight loop, which is
+what lets MPI move the data (its progress engine runs inside the test calls); only when
+nothing has completed for SPIN_S does the loop nap between tests, the nap growing from
+NAP_MIN_S to NAP_MAX_S and falling back to no nap at the next completion. So transfers
+run at MPI's pace, a rank waiting for a straggler leaves the core to others (MPICH would
+spin inside a blocking wait), and the deadline of `timeout_s` seconds without any request
+completing is checked between tests: a missed deadline cancels what is pending and raises
+RunError naming the ranks waited for, as does a failed request. MPI collectives cannot time
+out on their own, so the caller must turn a RunError into `transport.abort()` (comm.Abort)
+after reporting it, or the other ranks would wait for ever; mpiexec also ends the job when
+a rank dies.
 
 All-reduce: `allreduce_sum` uses MPI's own all-reduce (non-blocking Iallreduce, waited for with
 the same deadline) by default, or the ring of ring.py over point-to-point messages with
@@ -32,11 +34,10 @@ guarantees it by construction.
 
 Wait time: the time spent waiting for requests to complete, which with MPI includes the
 copying itself (MPI moves data inside the wait). MPICH's progress engine spins while it
-waits, so the waiting counts as CPU time too.
+waits, so the spinning part of a wait counts as CPU time too.
 """
 from __future__ import annotations
 
-import threading
 import time
 
 import numpy as np
@@ -51,6 +52,9 @@ from shardtrain.transport.ring import ring_allreduce, ring_steps
 TAG_HEADER = 1
 TAG_PAYLOAD = 2
 HEADER_BUFFER = frames.PREFIX_BYTES + frames.MAX_HEADER_BYTES
+SPIN_S = 0.002         # test without napping this long after a completion (or the start)
+NAP_MIN_S = 2e-5       # then nap between tests, doubling from this ...
+NAP_MAX_S = 1e-3       # ... up to this (the worst added latency once data arrives)
 
 
 def _mpi():
@@ -178,32 +182,25 @@ class MpiTransport:
         del keep
 
     def _wait(self, reqs: list, who, meta: dict) -> list:
-        """Wait until every request is done (statuses in request order); deadline timeout_s
-        without any completion. See the module docstring for why a helper thread waits."""
+        """Test until every request is done (statuses in request order); deadline timeout_s
+        without any completion. See the module docstring for the backoff."""
         MPI = self.MPI
         statuses: list = [None] * len(reqs)
-        state = {"last": time.perf_counter(), "error": None}
-        t_start = state["last"]
-
-        def drive() -> None:
-            scratch = [MPI.Status() for _ in reqs]
-            try:
-                while True:
-                    indices = MPI.Request.Waitsome(reqs, scratch)
-                    if indices is None:              # every request is done (or null)
-                        return
+        scratch = [MPI.Status() for _ in reqs]
+        t_start = last = time.perf_counter()
+        nap = 0.0
+        try:
+            while True:
+                indices = MPI.Request.Testsome(reqs, scratch)
+                if indices is None:                  # every request is done (or null)
+                    break
+                now = time.perf_counter()
+                if indices:
                     for k, i in enumerate(indices):  # statuses come in completion order
                         statuses[i] = MPI.Status(scratch[k])
-                    state["last"] = time.perf_counter()
-            except MPI.Exception as exc:
-                state["error"] = exc
-
-        helper = threading.Thread(target=drive, name="mpi-wait", daemon=True)
-        try:
-            helper.start()
-            while helper.is_alive():
-                left = state["last"] + self.timeout_s - time.perf_counter()
-                if left <= 0:
+                    last, nap = now, 0.0
+                    continue
+                if now - last > self.timeout_s:
                     pending = [i for i, st in enumerate(statuses) if st is None]
                     for i in pending:
                         try:
@@ -212,12 +209,13 @@ class MpiTransport:
                             pass
                     raise RunError(f"timed out after {self.timeout_s:g} s waiting for "
                                    f"{who(pending)} ({frames.describe(meta)})")
-                helper.join(left)
-            exc = state["error"]
-            if exc is not None:
-                pending = [i for i, st in enumerate(statuses) if st is None]
-                raise RunError(f"MPI failed while waiting for {who(pending)} "
-                               f"({frames.describe(meta)}): {exc.Get_error_string()}")
+                if now - last > SPIN_S:
+                    nap = min(NAP_MAX_S, 2 * nap) if nap else NAP_MIN_S
+                    time.sleep(nap)
+        except MPI.Exception as exc:
+            pending = [i for i, st in enumerate(statuses) if st is None]
+            raise RunError(f"MPI failed while waiting for {who(pending)} "
+                           f"({frames.describe(meta)}): {exc.Get_error_string()}") from None
         finally:
             self.profile.add_wait(time.perf_counter() - t_start)
         return statuses
