@@ -3,8 +3,8 @@
 On a synthesized parcel network, 2 workers (no more than this machine's 2 cores) train over
 pipes with `LinkModel(gbps, latency)` emulated on every frame, for several link speeds.
 The forecast of the same plan (cores=2, pipes as the local transport) takes each worker's
-compute from `calibrate.shard_step_seconds` (the worker's own code on its shard, one
-thread, no transfer) and the transfer from the link model plus the calibrated fixed cost
+compute from `calibrate.shards_step_seconds` (the worker's own code on its shard, one
+thread, no transfer, the k workers at once as in the run) and the transfer from the link model plus the calibrated fixed cost
 of a transport call; it is compared with the measured median epoch time (`epoch_s`: the
 slowest worker's training step, the evaluation forward excluded). The forecast from
 counted work only (kernel speeds) is recorded beside it.
@@ -55,9 +55,12 @@ def main(argv=None) -> int:
                     help="rounds over all link speeds (alternating); best median is kept")
     ap.add_argument("--links", default="5,0.5,0.05", help="Gbit/s, comma-separated")
     ap.add_argument("--latency-us", type=float, default=50.0)
+    ap.add_argument("--compute-epochs", type=int, default=8,
+                    help="epochs of the compute measurement (the first is a warm-up)")
     args = ap.parse_args(argv)
 
-    from shardtrain.calibrate import calibrate, shard_step_seconds, with_graph_sparse
+    from shardtrain.calibrate import (calibrate, shard_step_seconds, shards_step_seconds,
+                                      with_graph_sparse)
     from shardtrain.files import write_json_atomic
     from shardtrain.forecast import forecast_plan
     from shardtrain.graph import fingerprint
@@ -94,10 +97,16 @@ def main(argv=None) -> int:
                           "num_edges": graph.num_edges})
         load_cal = os.getloadavg()
         cal = with_graph_sparse(calibrate("float32"), graph, "float32")
-        measured_compute = [shard_step_seconds(load_shard(shard_dir, w), settings,
-                                               args.classes, epochs=6) for w in range(k)]
+        # every worker's step timed with all k running at once (one machine's memory and
+        # caches shared, as in the run); each alone recorded beside
+        measured_compute = shards_step_seconds(shard_dir, settings, args.classes, k,
+                                               epochs=args.compute_epochs)
+        solo_compute = [shard_step_seconds(load_shard(shard_dir, w), settings,
+                                           args.classes, epochs=args.compute_epochs)
+                        for w in range(k)]
         result["calibration"] = cal
         result["measured_compute"] = measured_compute
+        result["measured_compute_alone"] = solo_compute
         result["load_average_calibration"] = [list(load_cal), list(os.getloadavg())]
         del graph
         speeds = [None] + links
@@ -115,6 +124,7 @@ def main(argv=None) -> int:
                       local_pipes=True, dropout=settings.dropout, classes=args.classes)
         fc = forecast_plan(plan, model, measured_compute=measured_compute, **common)
         counted = forecast_plan(plan, model, **common)
+        alone = forecast_plan(plan, model, measured_compute=solo_compute, **common)
         link_only = forecast_plan(plan, model, measured_compute=[
             {"step_cpu_s": 1e-12, "eval_cpu_s": 1e-12}] * k, **common)
         # the sharing of the cores modelled explicitly: the share of a core each worker
@@ -129,6 +139,8 @@ def main(argv=None) -> int:
                    fc["allreduce_s"], "forecast_wait_s": fc["max_wait_s"],
                "forecast_link_only_s": link_only["epoch_s"],
                "forecast_counted_epoch_s": counted["epoch_s"],
+               "forecast_compute_alone_epoch_s": alone["epoch_s"],
+               "ratio_compute_alone_over_measured": alone["epoch_s"] / measured,
                "forecast_with_core_share_s": shared["epoch_s"],
                "ratio_with_core_share": shared["epoch_s"] / measured,
                "ratio_forecast_over_measured": fc["epoch_s"] / measured,

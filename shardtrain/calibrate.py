@@ -128,6 +128,39 @@ def _time_dropout_masks(dtype, rng) -> dict:
             "elements_per_s": ids.size * width / t}
 
 
+def _time_row_moves(dtype, rng) -> dict:
+    """Bytes per second of the halo row moves a worker makes: gathering the rows it sends
+    (`np.take` of sorted scattered rows) and adding the gradients it gets back at those rows
+    (`out[idx] += rows`), on a quarter of 200 000 rows of width 16. Both are several times
+    slower per byte than a streaming pass."""
+    n, width = 200_000, 16
+    src = rng.standard_normal((n, width)).astype(dtype)
+    idx = np.sort(rng.choice(n, size=n // 4, replace=False)).astype(np.int64)
+    buf = np.empty((idx.size, width), dtype=dtype)
+    nbytes = buf.nbytes
+    gather = _best_time(lambda: np.take(src, idx, axis=0, out=buf), repeats=5, budget_s=0.2)
+
+    def scatter_add():
+        src[idx] += buf
+
+    scatter = _best_time(scatter_add, repeats=5, budget_s=0.2)
+    return {"rows": int(idx.size), "width": width, "gather_bytes_per_s": nbytes / gather,
+            "scatter_add_bytes_per_s": nbytes / scatter}
+
+
+def gather_speed(calibration: dict) -> float:
+    """Bytes/s of gathering scattered rows; a streaming pass when not measured."""
+    rows = calibration.get("row_moves")
+    return float(rows["gather_bytes_per_s"]) if rows else elementwise_speed(calibration) / 2
+
+
+def scatter_add_speed(calibration: dict) -> float:
+    """Bytes/s of adding rows at scattered indices; a streaming pass when not measured."""
+    rows = calibration.get("row_moves")
+    return float(rows["scatter_add_bytes_per_s"]) if rows else \
+        elementwise_speed(calibration) / 3
+
+
 def _time_pipe() -> dict:
     """Bytes per second through one OS pipe (writer thread, reader here): the local
     transport's own ceiling, which a link emulated on pipes cannot beat."""
@@ -173,11 +206,12 @@ def calibrate(dtype: str = "float32", *, seed: int = 0) -> dict:
         dense = _time_dense(np.dtype(dtype), rng)
         elementwise = _time_elementwise(np.dtype(dtype), rng)
         masks = _time_dropout_masks(np.dtype(dtype), rng)
+        rows = _time_row_moves(np.dtype(dtype), rng)
     pipe = _time_pipe()
     call = exchange_call_seconds()
     return {"version": CALIBRATION_VERSION, "dtype": dtype, "threads": 1,
             "sparse": sparse, "dense": dense, "elementwise": elementwise,
-            "dropout_masks": masks, "pipe": pipe, "exchange_call": call,
+            "dropout_masks": masks, "row_moves": rows, "pipe": pipe, "exchange_call": call,
             "calibration_s": time.perf_counter() - t0}
 
 
@@ -458,3 +492,29 @@ def exchange_call_seconds(calls: int = 50, batches: int = 8) -> dict:
             t.close()
     return {"calls": calls * batches, "seconds_per_call": min(wall),
             "cpu_s_per_call": min(cpu)}
+
+
+def _shard_step_in_process(shard_dir: str, worker: int, settings_dict: dict,
+                           num_classes: int, epochs: int) -> dict:
+    from shardtrain.settings import TrainSettings
+    from shardtrain.shards import load_shard
+    from shardtrain.worker import pin_blas_threads
+
+    pin_blas_threads()
+    return shard_step_seconds(load_shard(shard_dir, worker),
+                              TrainSettings.from_dict(settings_dict), num_classes,
+                              epochs=epochs)
+
+
+def shards_step_seconds(shard_dir, settings, num_classes: int, workers: int, *,
+                        epochs: int = 6) -> list[dict]:
+    """`shard_step_seconds` of every shard in `shard_dir`, all at once, one process per
+    shard (as the trainer runs them): the k workers of a plan checked on one machine share
+    its memory bandwidth and caches, which a shard timed alone does not see."""
+    import multiprocessing
+
+    ctx = multiprocessing.get_context("spawn")
+    args = [(str(shard_dir), w, settings.to_dict(), int(num_classes), int(epochs))
+            for w in range(int(workers))]
+    with ctx.Pool(len(args)) as pool:
+        return pool.starmap(_shard_step_in_process, args)

@@ -6,8 +6,12 @@ Inputs are a survey plan (per-worker sizes and the k x k traffic), the model sha
 
 The epoch follows the worker's schedule, step by step, for every worker at once:
 - compute: counted work of each kernel (sparse products nnz x width forward and backward;
-  dense products rows x d_in x d_out x 2 flops; dropout masks; elementwise passes over the
-  bytes they touch) divided by the calibrated speed of that kernel;
+  dense products rows x d_in x d_out x 2 flops; dropout masks; halo rows gathered into
+  send blocks and gradient rows added back at scattered rows; elementwise passes over the
+  bytes they touch) divided by the calibrated speed of that kernel -- or, with
+  `measured_compute`, each worker's measured CPU seconds of a training step (the worker's
+  own code on its shard, `calibrate.shard_step_seconds`), split between the exchanges in
+  the counted proportions;
 - halo exchange, one per layer and direction that moves bytes: the link model of
   `shardtrain.transport.link` -- each worker has one full-duplex interface; the frames it
   sends in one exchange leave one after the other, so it is done after
@@ -15,6 +19,8 @@ The epoch follows the worker's schedule, step by step, for every worker at once:
   workers that take part, so the hop takes as long as its busiest sender;
 - all-reduce: ring (Patarasuk & Yuan 2009), 2(k-1) steps, each one link call carrying one
   chunk of about size/k elements: 2(k-1) x (latency + 8 * chunk bytes / bandwidth);
+- every transport call (exchange or ring step) also pays the calibrated fixed cost of a
+  call (`calibrate.exchange_call_seconds`: header, poll loop, system calls);
 - waiting: exchanges synchronise, so between two of them every worker waits for the
   slowest: wait = max - own, per compute phase and per exchange.
 
@@ -31,8 +37,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from shardtrain.calibrate import (dense_speed, elementwise_speed, mask_speed, pipe_speed,
-                                  sparse_speed)
+from shardtrain.calibrate import (dense_speed, elementwise_speed, gather_speed, mask_speed,
+                                  pipe_speed, scatter_add_speed, sparse_speed)
 from shardtrain.errors import InputError
 
 LINK_PRESETS_GBPS = (1.0, 10.0, 25.0, 100.0)
@@ -213,6 +219,12 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
         return count("elementwise",
                      (np.asarray(nbytes, dtype=np.float64) / elem + CALL_OVERHEAD_S) * slow)
 
+    def row_moves(gathered, added):
+        """Rows gathered into send blocks, gradient rows added back at scattered rows."""
+        t = (np.asarray(gathered, dtype=np.float64) / gather_speed(calibration)
+             + np.asarray(added, dtype=np.float64) / scatter_add_speed(calibration))
+        return count("row_moves", (t + CALL_OVERHEAD_S) * slow)
+
     def draw_masks(elements):
         return count("dropout_masks", elements / masks * slow)
 
@@ -232,9 +244,9 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
             if h["transform_first"]:
                 tl.compute(gemm(n, d_in, d_out))
             if k > 1 and fw:
-                tl.compute(passes(sent_rows * fw * 2 * b))                     # gather rows
+                tl.compute(row_moves(sent_rows * fw * b, 0))                   # send rows
                 tl.exchange(f"forward {l}", link(sent_rows, fw, fwd_msgs))
-                tl.compute(passes((n + halo) * fw * 2 * b))                    # [own | halo]
+            tl.compute(passes(n * fw * b))                                     # fresh output
             tl.compute(sparse(fw))
             if not h["transform_first"]:
                 tl.compute(gemm(n, d_in, d_out))
@@ -250,7 +262,8 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
                 tl.compute(sparse(d_out))                                      # dT = Â^T dZ
                 if k > 1 and bw:
                     tl.exchange(f"backward {l}", link(back_rows, bw, bwd_msgs))
-                    tl.compute(passes(sent_rows * bw * 3 * b + n * bw * 2 * b))  # add, copy
+                    tl.compute(row_moves(0, sent_rows * bw * b)                  # add back
+                               + passes((n + halo) * bw * b))                    # zeroed
                 tl.compute(gemm(n, d_in, d_out))                               # dW
                 if l > 0:
                     tl.compute(gemm(n, d_out, d_in))                           # dH
@@ -261,7 +274,8 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
                     tl.compute(sparse(d_in))                                   # Â^T dA
                     if k > 1 and bw:
                         tl.exchange(f"backward {l}", link(back_rows, bw, bwd_msgs))
-                        tl.compute(passes(sent_rows * bw * 3 * b + n * bw * 2 * b))
+                        tl.compute(row_moves(0, sent_rows * bw * b)
+                                   + passes((n + halo) * bw * b))
             if l > 0:
                 tl.compute(passes(n * d_in * 5 * b))                           # dropout, ReLU'
 

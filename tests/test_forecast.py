@@ -391,3 +391,38 @@ def test_an_emulated_run_is_never_faster_than_its_link_alone(grid_survey, tmp_pa
     res = train_partitioned(tmp_path / "s", TrainSettings(hidden=16, epochs=3),
                             link=LinkModel(gbps, lat))
     assert all(e["epoch_s"] >= own_link for e in res.epochs), (own_link, res.epochs)
+
+
+def test_halo_row_moves_are_counted_at_their_own_speeds(monkeypatch):
+    """Hand-worked (common practice): one layer 8 -> 2, float32, worker 0 sends 30 rows
+    and gets 30 gradient rows back: 30 x 2 x 4 = 240 bytes gathered forward and 240 bytes
+    added at scattered rows backward; every other kernel free."""
+    _no_overhead(monkeypatch)
+    cal = from_flops(1e9)
+    for section, key in (("dense", "flops_per_s"), ("sparse", "nnz_cols_per_s")):
+        cal[section][0][key] = 1e30
+    cal["elementwise"]["bytes_per_s"] = 1e30
+    cal["dropout_masks"]["elements_per_s"] = 1e30
+    cal["row_moves"] = {"gather_bytes_per_s": 1e3, "scatter_add_bytes_per_s": 1e2}
+    model = _model([(8, 2)])
+    plan = _plan([[0, 30], [30, 0]], owned=[100, 100], local_edges=[300, 300], params=16)
+    out = fc.forecast_plan(plan, model, link_gbps=10, latency_us=0, calibration=cal)
+    assert out["compute_parts_s"]["row_moves"] == pytest.approx(240 / 1e3 + 240 / 1e2,
+                                                                rel=1e-6)
+
+
+def test_all_shards_are_timed_at_once_one_process_each(tmp_path):
+    """calibrate.shards_step_seconds: one result per shard of the networkx grid, in worker
+    order, each from its own process (structure only, no timing claim)."""
+    from shardtrain.calibrate import shards_step_seconds
+    from shardtrain.graph import fingerprint
+    from shardtrain.settings import TrainSettings
+    from shardtrain.shards import save_shards
+
+    graph = _grid_graph()
+    save_shards(tmp_path / "s", _grid_shards(2),
+                meta={"method": "range", "seed": 0, "graph_fingerprint": fingerprint(graph),
+                      "num_edges": graph.num_edges})
+    out = shards_step_seconds(tmp_path / "s", TrainSettings(hidden=16), 4, 2, epochs=2)
+    assert [r["worker"] for r in out] == [0, 1]
+    assert all(r["step_cpu_s"] > 0 and len(r["step_cpu_s_all"]) == 2 for r in out)
