@@ -28,6 +28,7 @@ from typing import Callable
 
 import msgpack
 import numpy as np
+import scipy.sparse as sp
 
 from shardtrain import model
 from shardtrain.schedule import layer_dims, layer_hops
@@ -113,6 +114,11 @@ class HaloOps:
         self.peers = shard.peers()
         self.send_idx = {q: shard.send_to(q) for q in self.peers}
         self.halo_rows = {q: shard.halo_from(q) for q in self.peers}
+        with profile.phase("compute"):
+            # out[send_to(q)] += received rows, as one pass of a 0/1 selection matrix (the
+            # send rows are unique per peer, so each output row gets at most one 1.0 * x)
+            self.scatter = {q: _selection(self.send_idx[q], self.n_owned, self.dtype)
+                            for q in self.peers}
         self.epoch = 0
         self._blocks: dict[tuple, np.ndarray] = {}
         self.on_phase: Callable[[str], None] = lambda text: None
@@ -167,8 +173,14 @@ class HaloOps:
             out = np.zeros((self.n_owned, width), dtype=self.dtype)
             _accumulate_product(self.adj_own_t, g, out)
             for q in self.peers:
-                out[self.send_idx[q]] += incoming[q]
+                _accumulate_product(self.scatter[q], incoming[q], out)
             return out
+
+
+def _selection(rows: np.ndarray, n: int, dtype):
+    """CSR (n, len(rows)) with a 1 at (rows[i], i): S @ X puts row i of X at rows[i]."""
+    m = rows.shape[0]
+    return sp.csr_matrix((np.ones(m, dtype=dtype), (rows, np.arange(m))), shape=(n, m))
 
 
 def _transpose(a):
