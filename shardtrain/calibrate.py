@@ -518,3 +518,13 @@ def shards_step_seconds(shard_dir, settings, num_classes: int, workers: int, *,
             for w in range(int(workers))]
     with ctx.Pool(len(args)) as pool:
         return pool.starmap(_shard_step_in_process, args)
+
+
+def plan_step_seconds(graph, assignment: np.ndarray, k: int, settings, num_classes: int, *,
+                      epochs: int = 3) -> list[dict]:
+    """`shard_step_seconds` of every shard of one plan, built as the trainer builds them,
+    each timed alone in this process (a worker with a machine of its own)."""
+    from shardtrain.shards import build_shards
+
+    return [shard_step_seconds(shard, settings, num_classes, epochs=epochs)
+            for shard in build_shards(graph, assignment, k)]

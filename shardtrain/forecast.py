@@ -350,9 +350,12 @@ def _pick(p: dict | None) -> dict | None:
 
 def forecast(survey_dict: dict, *, link_gbps_list, latency_us: float, calibration: dict,
              speed_factor: float = 1.0, target_epoch_s: float | None = None,
-             cores: int | None = None, dropout: float = 0.5) -> dict:
+             cores: int | None = None, dropout: float = 0.5,
+             measured_compute: dict | None = None) -> dict:
     """Forecast every plan of a survey on every link speed; mark the fastest plan and the
-    plan with the fewest workers whose epoch meets `target_epoch_s`."""
+    plan with the fewest workers whose epoch meets `target_epoch_s`. `measured_compute`:
+    {(method, workers): one `calibrate.shard_step_seconds` result per worker} for the
+    plans whose compute was measured on their shards."""
     if not link_gbps_list:
         raise InputError("--link-gbps: give at least one speed")
     for g in link_gbps_list:
@@ -368,7 +371,9 @@ def forecast(survey_dict: dict, *, link_gbps_list, latency_us: float, calibratio
             plans.append(forecast_plan(plan, model, link_gbps=g, latency_us=latency_us,
                                        calibration=calibration, speed_factor=speed_factor,
                                        cores=cores, dropout=dropout,
-                                       classes=survey_dict.get("graph", {}).get("classes")))
+                                       classes=survey_dict.get("graph", {}).get("classes"),
+                                       measured_compute=(measured_compute or {}).get(
+                                           (plan["method"], int(plan["workers"])))))
     fastest = min(plans, key=lambda p: (p["epoch_s"], p["workers"])) if plans else None
     meeting = _meets(plans, target_epoch_s)
     for p in plans:
@@ -388,6 +393,7 @@ def forecast(survey_dict: dict, *, link_gbps_list, latency_us: float, calibratio
                         ("dtype", "threads", "calibration_s", "from_flops", "sparse_source")
                         if key in calibration},
         "includes_eval": False,
+        "compute_measured": bool(measured_compute),
         "plans": plans,
         "fastest": _pick(fastest),
         "fewest_meeting_target": _pick(meeting),

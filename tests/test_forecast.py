@@ -426,3 +426,28 @@ def test_all_shards_are_timed_at_once_one_process_each(tmp_path):
     out = shards_step_seconds(tmp_path / "s", TrainSettings(hidden=16), 4, 2, epochs=2)
     assert [r["worker"] for r in out] == [0, 1]
     assert all(r["step_cpu_s"] > 0 and len(r["step_cpu_s_all"]) == 2 for r in out)
+
+
+def test_cli_forecast_measures_compute_on_the_plans_shards(run_cli, tmp_path):
+    """--measure-compute on Zachary's karate club (1977, shipped with networkx): every
+    plan's compute comes from its shards' measured training step."""
+    g = nx.karate_club_graph()
+    n = g.number_of_nodes()
+    labels = np.array([g.nodes[v]["club"] == "Officer" for v in range(n)], dtype=np.int64)
+    path = tmp_path / "karate.npz"
+    np.savez(path, edges=np.array(g.edges(), dtype=np.int64), num_vertices=n,
+             features=np.eye(n, dtype=np.float32), labels=labels)
+    out = tmp_path / "f.json"
+    r = run_cli("forecast", path, "--workers", "1,2", "--method", "range", "--link-gbps",
+                "1", "--flops-per-worker", "1e9", "--measure-compute", "--json", out)
+    assert r.returncode == 0, r.stderr
+    doc = json.loads(out.read_text())
+    assert doc["compute_measured"] is True
+    assert [(p["workers"], p["compute_source"]) for p in doc["plans"]] == \
+        [(1, "measured"), (2, "measured")]
+
+
+def test_cli_measure_compute_refuses_a_survey_json(run_cli, survey_json):
+    r = run_cli("forecast", survey_json, "--measure-compute", "--flops-per-worker", "1e9")
+    assert r.returncode == 2 and len(r.stderr.strip().splitlines()) == 1
+    assert "--measure-compute" in r.stderr

@@ -57,6 +57,9 @@ def add_arguments(parser) -> None:
         help="target CPU speed relative to this machine's calibrated core (default 1)")
     add("--target-epoch-s", type=float, default=None, metavar="T",
         help="mark the plan with the fewest workers whose epoch takes at most T seconds")
+    add("--measure-compute", action="store_true",
+        help="time each plan's training step on its own shards with the worker's code, "
+             "one shard at a time (a few epochs per plan; GRAPH input only)")
     add("--cores", type=int, default=None, metavar="C",
         help="forecast for C cores on ONE machine: more workers than cores share them")
     add("--dropout", type=float, default=0.5, help="dropout rate of training (default 0.5)")
@@ -103,6 +106,30 @@ def _name_list(text: str, option: str) -> list[str]:
     if parse_name_list is not None:
         return parse_name_list(text, option)
     return [x.strip() for x in text.split(",") if x.strip()]
+
+
+def _survey_and_measure(graph, methods, workers, settings, dropout):
+    """Survey plan by plan and time every plan's shards on the worker's own code."""
+    from shardtrain.calibrate import plan_step_seconds
+    from shardtrain.partition import partition
+    from shardtrain.settings import TrainSettings
+    from shardtrain.survey import survey
+
+    if graph.features is None or graph.labels is None:
+        raise InputError("--measure-compute: the graph needs features and labels to train")
+    train = TrainSettings(layers=settings.layers, hidden=settings.hidden, dropout=dropout,
+                          dtype=settings.dtype, bias=settings.bias, seed=settings.seed)
+    head, plans, measured = None, [], {}
+    for method in methods:
+        for k in workers:
+            a = partition(graph, method, k, seed=settings.seed, imbalance=settings.imbalance)
+            head = survey(graph, [method], [k], settings, assignment=a)
+            plans += head["plans"]
+            print(f"timing the training step of {method} x {k} on its shards ...",
+                  file=sys.stderr)
+            measured[(method, k)] = plan_step_seconds(graph, a, k, train,
+                                                      head["graph"]["classes"])
+    return dict(head, plans=plans), measured
 
 
 def _check_options(args) -> None:
@@ -240,9 +267,12 @@ def run(args) -> int:
     methods = _name_list(args.method, "--method") if args.method is not None else None
     _check_options(args)
     source = str(args.graph)
-    graph = None
+    graph, measured = None, None
     is_survey = source.lower().endswith(".json")
     if is_survey:
+        if args.measure_compute:
+            raise InputError("--measure-compute: needs the graph (its shards are trained), "
+                             f"not a survey JSON ({source})")
         survey_dict = _select(read_survey_json(source), workers, methods, source)
     cached = None
     if args.flops_per_worker is None and args.calibration:   # a bad file costs no work
@@ -262,8 +292,12 @@ def run(args) -> int:
         check_plans(loaded.graph, methods, workers, settings)
         print(f"surveying {len(methods)} methods x {len(workers)} worker counts ...",
               file=sys.stderr)
-        survey_dict = survey(loaded.graph, methods, workers, settings)
         graph = loaded.graph
+        if args.measure_compute:
+            survey_dict, measured = _survey_and_measure(graph, methods, workers, settings,
+                                                        args.dropout)
+        else:
+            survey_dict = survey(graph, methods, workers, settings)
     dtype = survey_dict["model"].get("dtype", "float32")
     if args.flops_per_worker is not None:
         calibration = from_flops(args.flops_per_worker, dtype)
@@ -280,7 +314,7 @@ def run(args) -> int:
     result = forecast(survey_dict, link_gbps_list=links, latency_us=args.latency_us,
                       calibration=calibration, speed_factor=args.speed_factor,
                       target_epoch_s=args.target_epoch_s, cores=args.cores,
-                      dropout=args.dropout)
+                      dropout=args.dropout, measured_compute=measured)
     result["source"] = source
     g = result["graph"]
     print(f"{g.get('vertices', 0):,} vertices, {g.get('edges', 0):,} edges; latency "
