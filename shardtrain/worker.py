@@ -6,11 +6,12 @@ rank; both hand it a transport, a profile and a `report` callable for per-epoch 
 
 Per layer, the model calls two closures built here from the shard (see the layout CONTRACT
 in `shardtrain/shards.py`) and the transport:
-- propagate(l, M): send M[send_to(q)] to every peer q, receive q's rows straight into the
-  bottom rows of a preallocated [M; M_halo] buffer, return Â_P [M; M_halo];
-- propagate_t(l, G): local = Â_Pᵀ G has a row per owned AND halo column; the halo rows
-  belong to their owners, so send local[n_owned + halo_from(q)] back to q and add what each
-  peer sends for my send rows at send_to(q) (indices are unique per peer).
+- propagate(l, M): send M[send_to(q)] to every peer q, receive q's rows straight into
+  their slice of a preallocated M_halo buffer, return Â_P [M; M_halo] (computed as
+  A_oo M + A_oh M_halo, see HaloOps);
+- propagate_t(l, G): Â_Pᵀ G has a row per owned AND halo column; the halo rows belong to
+  their owners, so send (A_ohᵀ G)[halo_from(q)] back to q and add what each peer sends for
+  my send rows at send_to(q) (indices are unique per peer) to A_ooᵀ G.
 The model code is the reference's (`model.train_step`), so the run equals the reference.
 
 Control messages (`encode_message`/`decode_message`) are msgpack maps; arrays travel as
