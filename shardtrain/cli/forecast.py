@@ -17,6 +17,7 @@ import sys
 from pathlib import Path
 
 from shardtrain.errors import InputError
+from shardtrain.partition import DEFAULT_COMPARED
 from shardtrain.tables import format_table
 
 try:
@@ -27,7 +28,7 @@ except ImportError:  # pragma: no cover - until the shared CLI helpers exist
 
 DEFAULT_LINKS = "1,10,25,100"
 DEFAULT_WORKERS = "2,4,8,16"
-DEFAULT_METHODS = "metis,metis-volume,random,range"
+DEFAULT_METHODS = ",".join(DEFAULT_COMPARED)
 
 
 def add_arguments(parser) -> None:

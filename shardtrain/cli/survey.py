@@ -15,11 +15,12 @@ from pathlib import Path
 from shardtrain.cli.common import (add_graph_arguments, load_graph_from_args, parse_int_list,
                                    parse_name_list)
 from shardtrain.errors import InputError
+from shardtrain.partition import DEFAULT_COMPARED
 from shardtrain.files import write_json_atomic, write_text_atomic
 from shardtrain.survey import SurveySettings, check_plans, survey
 from shardtrain.tables import format_table, human_bytes
 
-DEFAULT_METHODS = "metis,metis-volume,fennel,random,range"
+DEFAULT_METHODS = ",".join(DEFAULT_COMPARED)
 DEFAULT_WORKERS = "2,4,8"
 
 # One flat row per plan: (CSV column, value of a plan).
@@ -73,7 +74,9 @@ def add_arguments(parser) -> None:
     add("--workers", default=None, metavar="K,K,...",
         help=f"worker counts to compare (default {DEFAULT_WORKERS})")
     add("--method", default=None, metavar="M,M,...",
-        help=f"partition methods to compare (default {DEFAULT_METHODS})")
+        help=f"partition methods to compare (default {DEFAULT_METHODS}; metis-volume, the "
+             "communication-volume objective, is offered too but takes minutes per plan on "
+             "million-vertex power-law graphs)")
     add("--assignment", default=None, metavar="FILE",
         help="survey a partition made elsewhere (.npy, or one worker id per line in vertex "
              "order) in place of --method and --workers")
