@@ -342,8 +342,9 @@ def test_shard_step_is_measured_on_the_workers_own_code(grid_survey, tmp_path):
     shards = _grid_shards(2)
     out = shard_step_seconds(shards[1], TrainSettings(hidden=16), 4, epochs=3)
     assert out["worker"] == 1 and len(out["step_cpu_s_all"]) == 3
-    assert out["step_cpu_s"] == min(out["step_cpu_s_all"][1:]) > 0
-    assert out["eval_cpu_s"] == min(out["eval_cpu_s_all"][1:]) > 0
+    assert out["step_cpu_s"] == np.median(out["step_cpu_s_all"][1:]) > 0
+    assert out["eval_cpu_s"] == np.median(out["eval_cpu_s_all"][1:]) > 0
+    assert out["step_cpu_s_min"] == min(out["step_cpu_s_all"][1:])
     with pytest.raises(ValueError):
         shard_step_seconds(shards[0], TrainSettings(hidden=16), 4, epochs=1)
 
