@@ -129,19 +129,25 @@ def _time_dropout_masks(dtype, rng) -> dict:
 
 
 def _time_row_moves(dtype, rng) -> dict:
-    """Bytes per second of the halo row moves a worker makes: gathering the rows it sends
-    (`np.take` of sorted scattered rows) and adding the gradients it gets back at those rows
-    (`out[idx] += rows`), on a quarter of 200 000 rows of width 16. Both are several times
-    slower per byte than a streaming pass."""
+    """Bytes per second of the halo row moves a worker makes, the way `worker.HaloOps`
+    makes them: gathering the rows it sends (`np.take` of sorted scattered rows) and adding
+    the gradients it gets back at those rows (one product with a 0/1 selection matrix), on
+    a quarter of 200 000 rows of width 16. Both are slower per byte than a streaming pass."""
     n, width = 200_000, 16
     src = rng.standard_normal((n, width)).astype(dtype)
     idx = np.sort(rng.choice(n, size=n // 4, replace=False)).astype(np.int64)
     buf = np.empty((idx.size, width), dtype=dtype)
     nbytes = buf.nbytes
     gather = _best_time(lambda: np.take(src, idx, axis=0, out=buf), repeats=5, budget_s=0.2)
+    try:     # the worker's own way; a plain indexed add if the worker changes it
+        from shardtrain.worker import _accumulate_product, _selection
+        select = _selection(idx, n, dtype)
 
-    def scatter_add():
-        src[idx] += buf
+        def scatter_add():
+            _accumulate_product(select, buf, src)
+    except ImportError:
+        def scatter_add():
+            src[idx] += buf
 
     scatter = _best_time(scatter_add, repeats=5, budget_s=0.2)
     return {"rows": int(idx.size), "width": width, "gather_bytes_per_s": nbytes / gather,
