@@ -20,7 +20,20 @@ def add_graph_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--input-dim", metavar="D", type=positive_int_type("--input-dim"),
                         help="feature width to plan for when the graph has no features")
     parser.add_argument("--seed", metavar="S", type=int_type("--seed"), default=0,
-                        help="seed for split masks the graph file does not give (default 0)")
+                        help="seed of the split masks the graph file does not give, the seeded partition "
+                             "methods, the weights and dropout (default 0)")
+
+
+def add_plan_shape_arguments(parser: argparse.ArgumentParser) -> None:
+    """The model shape and partition options a survey or forecast plans for (not trained)."""
+    add = parser.add_argument
+    add("--layers", type=int, default=2, help="GCN layers (default 2)")
+    add("--hidden", type=int, default=16, help="hidden width (default 16)")
+    add("--dtype", default="float32", help="training dtype, float32 or float64 (default float32)")
+    add("--bias", action="store_true", help="the model has biases (more to all-reduce)")
+    add("--classes", type=int, default=None, metavar="C",
+        help="number of classes, when the graph has no labels")
+    add("--imbalance", type=float, default=0.03, help="METIS load imbalance tolerance (0.03)")
 
 
 def load_graph_from_args(args: argparse.Namespace) -> LoadedGraph:

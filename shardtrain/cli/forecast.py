@@ -20,11 +20,8 @@ from shardtrain.errors import InputError
 from shardtrain.partition import DEFAULT_COMPARED
 from shardtrain.tables import format_table
 
-try:
-    from shardtrain.cli.common import (add_graph_arguments, load_graph_from_args,
-                                       parse_int_list, parse_name_list)
-except ImportError:  # pragma: no cover - until the shared CLI helpers exist
-    add_graph_arguments = load_graph_from_args = parse_int_list = parse_name_list = None
+from shardtrain.cli.common import (add_graph_arguments, add_plan_shape_arguments,
+                                   load_graph_from_args, parse_int_list, parse_name_list)
 
 DEFAULT_LINKS = "1,10,25,100"
 DEFAULT_WORKERS = "2,4,8,16"
@@ -32,15 +29,8 @@ DEFAULT_METHODS = ",".join(DEFAULT_COMPARED)
 
 
 def add_arguments(parser) -> None:
-    if add_graph_arguments is not None:
-        add_graph_arguments(parser)
-    else:
-        parser.add_argument("graph", metavar="GRAPH_OR_JSON")
-    existing = set(parser._option_string_actions)
-
-    def add(flag, **kw):
-        if flag not in existing:
-            parser.add_argument(flag, **kw)
+    add_graph_arguments(parser)
+    add = parser.add_argument
 
     add("--workers", default=None, metavar="K,K,...",
         help=f"worker counts (default {DEFAULT_WORKERS}; with a survey JSON: all of its plans)")
@@ -64,16 +54,7 @@ def add_arguments(parser) -> None:
     add("--cores", type=int, default=None, metavar="C",
         help="forecast for C cores on ONE machine: more workers than cores share them")
     add("--dropout", type=float, default=0.5, help="dropout rate of training (default 0.5)")
-    add("--layers", type=int, default=2, help="GCN layers, when surveying a graph (default 2)")
-    add("--hidden", type=int, default=16, help="hidden width, when surveying a graph (16)")
-    add("--dtype", default="float32", help="training dtype, float32 or float64 (float32)")
-    add("--bias", action="store_true", help="the model has biases")
-    add("--classes", type=int, default=None, metavar="C",
-        help="number of classes, when the graph has no labels")
-    add("--input-dim", type=int, default=None, metavar="D",
-        help="feature width, when the graph has no features")
-    add("--imbalance", type=float, default=0.03, help="METIS load imbalance tolerance (0.03)")
-    add("--seed", type=int, default=0, help="seed of the seeded methods (default 0)")
+    add_plan_shape_arguments(parser)
     add("--json", default=None, metavar="OUT.json", help="write the forecast as JSON")
     add("--plot", default=None, metavar="DIR", help="write PNG pictures of the forecast to DIR")
 
@@ -92,21 +73,6 @@ def parse_float_list(text: str, option: str) -> list[float]:
     if not values:
         raise InputError(f"{option}: give at least one value")
     return values
-
-
-def _int_list(text: str, option: str) -> list[int]:
-    if parse_int_list is not None:
-        return parse_int_list(text, option)
-    try:
-        return [int(x) for x in text.split(",")]
-    except ValueError:
-        raise InputError(f"{option}: expected integers separated by commas") from None
-
-
-def _name_list(text: str, option: str) -> list[str]:
-    if parse_name_list is not None:
-        return parse_name_list(text, option)
-    return [x.strip() for x in text.split(",") if x.strip()]
 
 
 def _survey_and_measure(graph, methods, workers, settings, dropout):
@@ -264,8 +230,8 @@ def run(args) -> int:
     from shardtrain.forecast import forecast
 
     links = parse_float_list(args.link_gbps, "--link-gbps")
-    workers = _int_list(args.workers, "--workers") if args.workers is not None else None
-    methods = _name_list(args.method, "--method") if args.method is not None else None
+    workers = parse_int_list(args.workers, "--workers") if args.workers is not None else None
+    methods = parse_name_list(args.method, "--method") if args.method is not None else None
     _check_options(args)
     source = str(args.graph)
     graph, measured = None, None
@@ -287,8 +253,8 @@ def run(args) -> int:
         settings = SurveySettings(layers=args.layers, hidden=args.hidden, dtype=args.dtype,
                                   classes=args.classes, input_dim=args.input_dim,
                                   bias=args.bias, imbalance=args.imbalance, seed=args.seed)
-        workers = workers or _int_list(DEFAULT_WORKERS, "--workers")
-        methods = methods or _name_list(DEFAULT_METHODS, "--method")
+        workers = workers or parse_int_list(DEFAULT_WORKERS, "--workers")
+        methods = methods or parse_name_list(DEFAULT_METHODS, "--method")
         loaded = load_graph_from_args(args)
         check_plans(loaded.graph, methods, workers, settings)
         print(f"surveying {len(methods)} methods x {len(workers)} worker counts ...",

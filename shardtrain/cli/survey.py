@@ -12,8 +12,8 @@ import io
 import sys
 from pathlib import Path
 
-from shardtrain.cli.common import (add_graph_arguments, load_graph_from_args, parse_int_list,
-                                   parse_name_list)
+from shardtrain.cli.common import (add_graph_arguments, add_plan_shape_arguments,
+                                   load_graph_from_args, parse_int_list, parse_name_list)
 from shardtrain.errors import InputError
 from shardtrain.partition import DEFAULT_COMPARED
 from shardtrain.files import write_json_atomic, write_text_atomic
@@ -65,11 +65,7 @@ TABLE_COLUMNS = [
 
 def add_arguments(parser) -> None:
     add_graph_arguments(parser)
-    existing = set(parser._option_string_actions)  # options the shared graph arguments own
-
-    def add(flag, **kw):
-        if flag not in existing:
-            parser.add_argument(flag, **kw)
+    add = parser.add_argument
 
     add("--workers", default=None, metavar="K,K,...",
         help=f"worker counts to compare (default {DEFAULT_WORKERS})")
@@ -80,16 +76,7 @@ def add_arguments(parser) -> None:
     add("--assignment", default=None, metavar="FILE",
         help="survey a partition made elsewhere (.npy, or one worker id per line in vertex "
              "order) in place of --method and --workers")
-    add("--layers", type=int, default=2, help="GCN layers (default 2)")
-    add("--hidden", type=int, default=16, help="hidden width (default 16)")
-    add("--dtype", default="float32", help="training dtype, float32 or float64 (default float32)")
-    add("--bias", action="store_true", help="the model has biases (more to all-reduce)")
-    add("--classes", type=int, default=None, metavar="C",
-        help="number of classes, when the graph has no labels")
-    add("--input-dim", type=int, default=None, metavar="D",
-        help="feature width, when the graph has no features")
-    add("--imbalance", type=float, default=0.03, help="METIS load imbalance tolerance (0.03)")
-    add("--seed", type=int, default=0, help="seed of the seeded methods (default 0)")
+    add_plan_shape_arguments(parser)
     add("--json", default=None, metavar="OUT.json", help="write the full survey as JSON")
     add("--csv", default=None, metavar="OUT.csv", help="write one row per plan as CSV")
     add("--plot", default=None, metavar="DIR",
