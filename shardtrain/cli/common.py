@@ -20,8 +20,8 @@ def add_graph_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--input-dim", metavar="D", type=positive_int_type("--input-dim"),
                         help="feature width to plan for when the graph has no features")
     parser.add_argument("--seed", metavar="S", type=int_type("--seed"), default=0,
-                        help="seed of the split masks the graph file does not give, the seeded partition "
-                             "methods, the weights and dropout (default 0)")
+                        help="seed of the split masks the graph file does not give, the "
+                             "seeded partition methods, the weights and dropout (default 0)")
 
 
 def add_plan_shape_arguments(parser: argparse.ArgumentParser) -> None:
