@@ -124,23 +124,27 @@ def write_checkpoint(folder, epoch: int, params: dict, adam_state: dict, identit
 
 
 def epoch_writer(plan: dict, last_epoch: int, *,
-                 before_commit: Callable[[int], None] | None = None):
+                 before_commit: Callable[[int], None] | None = None,
+                 on_stage: Callable[[int, str], None] | None = None):
     """An end-of-epoch hook `(epoch, params, adam) -> {"checkpoint": epoch} | None` that
     writes a checkpoint every plan["every"] epochs and after `last_epoch` into
     plan["folder"] (created here; its parent must exist). `plan` is {"folder", "every",
-    "identity"} as for the partitioned run; `before_commit(epoch)` as in
-    `write_checkpoint`."""
+    "identity"}; `before_commit(epoch)` as in `write_checkpoint`; `on_stage(epoch, "write" |
+    "done")` brackets each write (the worker names its phase with it)."""
     from shardtrain import model
 
     Path(plan["folder"]).mkdir(exist_ok=True)
+    stage = on_stage or (lambda epoch, what: None)
 
     def write(epoch: int, params, adam) -> dict | None:
         if epoch % plan["every"] and epoch != last_epoch:
             return None
+        stage(epoch, "write")
         write_checkpoint(plan["folder"], epoch, model.params_to_arrays(params), adam.state(),
                          plan["identity"], every=plan["every"],
                          before_commit=(None if before_commit is None
                                         else lambda: before_commit(epoch)))
+        stage(epoch, "done")
         return {"checkpoint": epoch}
     return write
 

@@ -490,15 +490,10 @@ def _checkpoint_writer(plan: dict, last_epoch: int, on_phase: Callable[[str], No
     writer is enough and nothing large crosses the control pipe)."""
     from shardtrain import checkpoint
 
-    def write(epoch: int, params, adam) -> dict | None:
-        if epoch % plan["every"] and epoch != last_epoch:
-            return None
-        on_phase(f"epoch {epoch} checkpoint write")
-        checkpoint.write_checkpoint(
-            plan["folder"], epoch, model.params_to_arrays(params), adam.state(),
-            plan["identity"], every=plan["every"],
-            before_commit=lambda: on_phase(f"epoch {epoch} checkpoint write, index not yet "
-                                           f"renamed"))
-        on_phase(f"epoch {epoch} compute")
-        return {"checkpoint": epoch}
-    return write
+    def stage(epoch: int, what: str) -> None:
+        on_phase(f"epoch {epoch} checkpoint write" if what == "write" else f"epoch {epoch} compute")
+
+    return checkpoint.epoch_writer(
+        plan, last_epoch, on_stage=stage,
+        before_commit=lambda epoch: on_phase(f"epoch {epoch} checkpoint write, index not yet "
+                                             f"renamed"))
