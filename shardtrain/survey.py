@@ -159,9 +159,11 @@ def predict_memory(shard, hops: list[LayerHop], itemsize: int, *, param_elements
     the shard's own. Terms, following `worker.HaloOps` and `model.train_step`:
     - baseline: `BASELINE_RSS_BYTES`, the idle interpreter with numpy + scipy;
     - shard structure: owned n x 8, halo h x 8, send_idx s x 8, the two k+1 pointer arrays;
-    - Â three times: the shard's float64 CSR, its owned and halo column blocks in the
-      training dtype (two indptrs of n + 1), and their transposes (indptrs n + 1 and h + 1)
-      for the backward products;
+    - Â twice and a bit: the shard's float64 CSR, its owned and halo column blocks in the
+      training dtype (two indptrs of n + 1), and the halo block's transpose (indptr h + 1)
+      for the backward products (the owned block is symmetric and serves as its own);
+      the 0/1 selection matrices that add the peers' rows back (per peer an int32 indptr
+      of n + 1, and s entries of int32 index + value in all);
     - vertex data: the features n x input_dim in the training dtype, plus the stored copy
       when it is of another width (`feature_itemsize`), labels n x 8, three masks n x 1;
     - per layer, reused every epoch: the forward halo receive buffer h x fw, the forward
@@ -176,8 +178,9 @@ def predict_memory(shard, hops: list[LayerHop], itemsize: int, *, param_elements
     - parameters, Adam m and v, the per-layer gradients and their flat copy: 5 x P x b.
 
     Checked in benchmarks/bench_survey.py against a real worker's peak RSS (200 k vertices,
-    2.2 M entries; the worker of the split-block halo products and boolean dropout masks):
-    -4.5 % (128-64-6, float32), -4.8 % (float64), -1.5 % (16-64-6, float32).
+    2.2 M entries; the worker with the shared owned-block transpose and selection-matrix
+    scatter): -7.5 % (128-64-6, float32), -6.7 % (float64), -5.8 % (16-64-6, float32); the
+    rest is short-lived temporaries of the products and the loss, not modelled term by term.
     """
     n, h = shard.num_owned, shard.num_halo
     s = int(shard.send_ptr[-1])
@@ -190,7 +193,10 @@ def predict_memory(shard, hops: list[LayerHop], itemsize: int, *, param_elements
     total += (n + h + s) * 8 + 2 * shard.send_ptr.nbytes
     total += (n + 1) * ip + nnz * (ix + adj.data.dtype.itemsize)     # shard's Â
     total += 2 * (n + 1) * ip + nnz * (ix + b)       # owned and halo column blocks of Â
-    total += (n + 1 + h + 1) * ip + nnz * (ix + b)   # their transposes
+    nnz_halo = int(np.count_nonzero(adj.indices >= n))
+    total += (h + 1) * ip + nnz_halo * (ix + b)      # the halo block's transpose
+    peers = int(np.count_nonzero(np.diff(shard.send_ptr)))
+    total += peers * (n + 1) * 4 + s * (4 + b)       # selection matrices (scatter-add)
     total += n * input_dim * b + (n * input_dim * fb if fb != b else 0) + n * 8 + 3 * n
     backward_peak = 0
     for hop in hops:
