@@ -35,6 +35,7 @@ from typing import Callable
 import numpy as np
 
 from shardtrain.errors import InputError
+from shardtrain.files import read_json_document
 
 FORMAT = "shardtrain-checkpoint"
 VERSION = 1
@@ -179,15 +180,8 @@ def read_checkpoint(folder, option: str = "--resume") -> Checkpoint:
         raise InputError(f"{where}: no such folder")
     if not index.is_file():
         raise InputError(f"{where}: no {INDEX} (not a checkpoint folder)")
-    try:
-        doc = json.loads(index.read_text(encoding="utf-8"))
-    except (OSError, UnicodeDecodeError, ValueError) as exc:
-        raise InputError(f"{index}: not readable JSON ({' '.join(str(exc).split())})") from None
-    if not isinstance(doc, dict) or doc.get("format") != FORMAT:
-        raise InputError(f"{index}: not a shardtrain checkpoint (format is not {FORMAT!r})")
-    if doc.get("version") != VERSION:
-        raise InputError(f"{index}: checkpoint version {doc.get('version')!r}, this "
-                         f"shardtrain reads version {VERSION}")
+    doc = read_json_document(index, format=FORMAT, version=VERSION,
+                             what="shardtrain checkpoint")
     epoch, state_name = doc.get("epoch"), doc.get("state_file")
     if not isinstance(epoch, int) or epoch < 1:
         raise InputError(f"{index}: 'epoch' missing or not a positive integer")

@@ -139,3 +139,20 @@ def atomic_directory(path: str | os.PathLike, *, overwrite: bool = False) -> Ite
         shutil.rmtree(tmp, ignore_errors=True)
         raise
     _fsync_dir(path.parent)
+
+
+def read_json_document(file: str | os.PathLike, *, format: str, version: int, what: str) -> dict:
+    """A JSON file we wrote ourselves (`{"format": format, "version": version, ...}`), or an
+    InputError naming the file: unreadable, not JSON, another format, or another version.
+    `what` names the document in messages ("checkpoint", "shard manifest")."""
+    file = Path(file)
+    try:
+        doc = json.loads(file.read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, ValueError) as exc:
+        raise InputError(f"{file}: not readable JSON ({' '.join(str(exc).split())})") from None
+    if not isinstance(doc, dict) or doc.get("format") != format:
+        raise InputError(f"{file}: not a {what} (format is not {format!r})")
+    if doc.get("version") != version:
+        raise InputError(f"{file}: {what} version {doc.get('version')!r}, this shardtrain "
+                         f"reads version {version}")
+    return doc

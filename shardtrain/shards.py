@@ -385,21 +385,15 @@ def save_shards(path, shards: list[Shard], *, meta: dict, overwrite: bool = Fals
 
 def load_manifest(path) -> dict:
     """The manifest of a shard directory, checked for format and basic consistency."""
-    import json
     from pathlib import Path
+
+    from shardtrain.files import read_json_document
 
     file = Path(path) / MANIFEST
     if not file.is_file():
         raise InputError(f"{file}: no such file (not a shard directory)")
-    try:
-        manifest = json.loads(file.read_text(encoding="utf-8"))
-    except (OSError, UnicodeDecodeError, ValueError) as exc:
-        raise InputError(f"{file}: not a readable JSON manifest ({exc})") from None
-    if not isinstance(manifest, dict) or manifest.get("format") != FORMAT:
-        raise InputError(f"{file}: not a shard manifest (format is not {FORMAT!r})")
-    if manifest.get("version") != FORMAT_VERSION:
-        raise InputError(f"{file}: manifest version {manifest.get('version')!r}, "
-                         f"this shardtrain reads version {FORMAT_VERSION}")
+    manifest = read_json_document(file, format=FORMAT, version=FORMAT_VERSION,
+                                  what="shard manifest")
     k = manifest.get("workers")
     files = manifest.get("files")
     if not isinstance(k, int) or k < 1 or not isinstance(files, list) or len(files) != k:

@@ -207,7 +207,7 @@ def test_shard_directory_refuses_bad_content(tmp_path):
     with pytest.raises(InputError, match=r"shard-0000\.npz: no such file"):
         load_shard(out, 0)
     (out / "shards.json").write_text("{")
-    with pytest.raises(InputError, match=r"shards\.json: not a readable JSON"):
+    with pytest.raises(InputError, match=r"shards\.json: not readable JSON"):
         load_shard(out, 0)
 
 
