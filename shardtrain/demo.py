@@ -31,6 +31,7 @@ from typing import Callable
 import numpy as np
 
 from shardtrain.errors import InputError, RunError
+from shardtrain.tables import human_seconds
 
 GRAPH_FILE = "parcel-network.npz"
 SURVEY_FILE = "survey.json"
@@ -350,9 +351,9 @@ def summary_facts(r: "DemoResult", settings_doc: dict) -> list[tuple[str, str]]:
     ]
     for f in r.forecast:
         facts.append((f"forecast at {f['link_gbps']:g} Gbit/s",
-                      f"{_fmt_s(f['epoch_s'])} per epoch (compute {_fmt_s(f['compute_s'])}, "
-                      f"exchange {_fmt_s(f['exchange_s'])}, all-reduce "
-                      f"{_fmt_s(f['allreduce_s'])}; bound by {f['bottleneck']})"))
+                      f"{human_seconds(f['epoch_s'])} per epoch (compute {human_seconds(f['compute_s'])}, "
+                      f"exchange {human_seconds(f['exchange_s'])}, all-reduce "
+                      f"{human_seconds(f['allreduce_s'])}; bound by {f['bottleneck']})"))
     facts.append(("time until this report", f"{r.total_s:.1f} s on this machine (" + ", ".join(
         f"{k} {v:.1f} s" for k, v in r.seconds.items()) + ")"))
     return facts
@@ -360,14 +361,6 @@ def summary_facts(r: "DemoResult", settings_doc: dict) -> list[tuple[str, str]]:
 
 def _fmt_acc(v) -> str:
     return "-" if v is None else f"{v:.3f}"
-
-
-def _fmt_s(v: float) -> str:
-    if v >= 1:
-        return f"{v:.2f} s"
-    if v >= 1e-3:
-        return f"{v * 1e3:.1f} ms"
-    return f"{v * 1e6:.0f} us"
 
 
 def chance_levels(graph) -> dict:

@@ -257,7 +257,7 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
     def backward(tl: _Timeline) -> None:
         for h in reversed(hops):
             l, d_in, d_out = h["layer"], h["d_in"], h["d_out"]
-            fw, bw = h["forward_width"], h["backward_width"]
+            bw = h["backward_width"]
             if h["transform_first"]:
                 tl.compute(sparse(d_out))                                      # dT = Â^T dZ
                 if k > 1 and bw:

@@ -364,7 +364,7 @@ def forecast_plots(forecast: dict, out_dir) -> list[str]:
             ax.set_ylabel("forecast time of one training epoch")
     for j in range(n, rows * cols):
         axes[j // cols][j % cols].set_visible(False)
-    handles, labels = {}, []
+    handles = {}
     for ax in axes.flat:
         for h, lab in zip(*ax.get_legend_handles_labels()):
             handles.setdefault(lab, h)

@@ -13,6 +13,7 @@ import tempfile
 from pathlib import Path
 
 from shardtrain.errors import InputError
+from shardtrain.tables import human_seconds
 from shardtrain.tables import human_bytes
 
 KINDS = ("survey", "run", "forecast")
@@ -100,17 +101,6 @@ def collect_documents(paths) -> list[tuple[str, str, dict]]:
 
 def _esc(v) -> str:
     return html.escape(str(v), quote=True)
-
-
-def _seconds(v) -> str:
-    if v is None:
-        return "-"
-    v = float(v)
-    if v >= 1:
-        return f"{v:.2f} s"
-    if v >= 1e-3:
-        return f"{v * 1e3:.1f} ms"
-    return f"{v * 1e6:.0f} us"
 
 
 def _table(rows: list[dict], columns: list[tuple], mark_key: str | None = None) -> str:
@@ -244,7 +234,7 @@ def run_section(doc: dict, plot_dir: Path) -> str:
         facts.append(("final test accuracy", f"{last.get('test_acc', float('nan')):.4f}"))
         times = sorted(e["epoch_s"] for e in epochs if e.get("epoch_s") is not None)
         if times:
-            facts.append(("median epoch", _seconds(times[len(times) // 2])))
+            facts.append(("median epoch", human_seconds(times[len(times) // 2])))
     out = [_facts(facts)]
     if epochs:
         step = max(1, len(epochs) // 12)
@@ -256,14 +246,14 @@ def run_section(doc: dict, plot_dir: Path) -> str:
                                   ("train_acc", "train acc", "{:.3f}".format),
                                   ("val_acc", "val acc", "{:.3f}".format),
                                   ("test_acc", "test acc", "{:.3f}".format),
-                                  ("epoch_s", "epoch time", _seconds)]))
+                                  ("epoch_s", "epoch time", human_seconds)]))
     workers = doc.get("workers") or []
     if workers:
         out.append("<h3>workers (whole run)</h3>")
         out.append(_table(workers, [
-            ("worker", "worker", str), ("compute_s", "compute", _seconds),
-            ("exchange_s", "exchange", _seconds), ("allreduce_s", "all-reduce", _seconds),
-            ("wait_s", "wait", _seconds), ("cpu_s", "CPU", _seconds),
+            ("worker", "worker", str), ("compute_s", "compute", human_seconds),
+            ("exchange_s", "exchange", human_seconds), ("allreduce_s", "all-reduce", human_seconds),
+            ("wait_s", "wait", human_seconds), ("cpu_s", "CPU", human_seconds),
             ("bytes_sent", "sent", human_bytes), ("bytes_received", "received", human_bytes),
             ("peak_rss_bytes", "peak memory", human_bytes)]))
     out.append(_figures(run_plots(doc, plot_dir)))
@@ -285,25 +275,25 @@ def forecast_section(doc: dict, plot_dir: Path) -> str:
         rows.append(dict(p, link=f"{p['link_gbps']:g} Gbit/s", mark=", ".join(marks),
                          marked=bool(marks), bottleneck=bound))
     cols = [("method", "method", None), ("workers", "workers", _fmt_int),
-            ("link", "link", None), ("epoch_s", "epoch", _seconds),
-            ("compute_s", "compute", _seconds), ("exchange_s", "exchange", _seconds),
-            ("allreduce_s", "all-reduce", _seconds), ("wait_s", "wait (mean)", _seconds),
-            ("eval_s", "+eval", _seconds), ("bottleneck", "bound by", None),
+            ("link", "link", None), ("epoch_s", "epoch", human_seconds),
+            ("compute_s", "compute", human_seconds), ("exchange_s", "exchange", human_seconds),
+            ("allreduce_s", "all-reduce", human_seconds), ("wait_s", "wait (mean)", human_seconds),
+            ("eval_s", "+eval", human_seconds), ("bottleneck", "bound by", None),
             ("mark", "", None)]
     target = doc.get("target_epoch_s")
     facts = [("latency", f"{doc.get('latency_us', 0):g} us"),
              ("speed factor", doc.get("speed_factor")),
-             ("target epoch", _seconds(target) if target else None),
+             ("target epoch", human_seconds(target) if target else None),
              ("cores shared", doc.get("cores"))]
     f = doc.get("fastest")
     if f:
         facts.append(("fastest", f"{f['method']}, {f['workers']} workers, "
-                                 f"{f['link_gbps']:g} Gbit/s: {_seconds(f['epoch_s'])}"))
+                                 f"{f['link_gbps']:g} Gbit/s: {human_seconds(f['epoch_s'])}"))
     m = doc.get("fewest_meeting_target")
     if target:
         facts.append(("fewest meeting target", f"{m['method']}, {m['workers']} workers, "
                                                f"{m['link_gbps']:g} Gbit/s: "
-                                               f"{_seconds(m['epoch_s'])}" if m else "none"))
+                                               f"{human_seconds(m['epoch_s'])}" if m else "none"))
     return (_facts(facts)
             + '<p class="note">Epoch: the critical path of one training step (forward, loss, '
               "backward, all-reduce, Adam step). +eval: the evaluation forward, not included. "

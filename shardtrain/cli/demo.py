@@ -13,6 +13,7 @@ import sys
 from shardtrain.cli.common import int_type
 from shardtrain.demo import (DEFAULT_EPOCHS, DEFAULT_VERTICES, QUICK_EPOCHS, QUICK_VERTICES,
                              DemoSettings, run_demo)
+from shardtrain.tables import human_bytes, human_seconds
 
 
 def add_arguments(parser) -> None:
@@ -44,17 +45,8 @@ def _settings(args) -> DemoSettings:
     return (DemoSettings.quick(**given) if args.quick else DemoSettings(**given)).validate()
 
 
-def _seconds(v: float) -> str:
-    if v >= 1:
-        return f"{v:.2f} s"
-    if v >= 1e-3:
-        return f"{v * 1e3:.1f} ms"
-    return f"{v * 1e6:.0f} us"
-
-
 def summary_lines(r) -> list[str]:
     """The closing summary; its last line says where the report is."""
-    from shardtrain.tables import human_bytes
 
     c, p = r.check, r.plan
     acc = r.final.get("test_acc")
@@ -66,8 +58,8 @@ def summary_lines(r) -> list[str]:
         f"{c['max_rel_diff']:.2e} (allowed {c['rtol']:g})",
         f"payload measured == predicted: {c['measured_payload_bytes']:,} bytes "
         f"({human_bytes(c['measured_payload_bytes'])})",
-        "forecast epoch: " + ", ".join(f"{_seconds(f['epoch_s'])} at {f['link_gbps']:g} Gbit/s"
-                                       for f in r.forecast),
+        "forecast epoch: " + ", ".join(
+            f"{human_seconds(f['epoch_s'])} at {f['link_gbps']:g} Gbit/s" for f in r.forecast),
         f"done in {r.total_s:.1f} s; files in {r.out_dir}/",
         f"report: {r.report}",
     ]

@@ -18,7 +18,7 @@ from pathlib import Path
 
 from shardtrain.errors import InputError
 from shardtrain.partition import DEFAULT_COMPARED
-from shardtrain.tables import format_table
+from shardtrain.tables import format_table, human_seconds
 
 from shardtrain.cli.common import (add_graph_arguments, add_plan_shape_arguments,
                                    load_graph_from_args, parse_int_list, parse_name_list)
@@ -169,20 +169,12 @@ def _select(survey: dict, workers, methods, source: str) -> dict:
     return dict(survey, plans=plans)
 
 
-def _seconds(value: float) -> str:
-    if value >= 1:
-        return f"{value:.2f} s"
-    if value >= 1e-3:
-        return f"{value * 1e3:.1f} ms"
-    return f"{value * 1e6:.0f} us"
-
-
 TABLE_COLUMNS = [
     ("method", "method", None), ("workers", "workers", "{:,}"),
     ("link", "link", None),
-    ("epoch_s", "epoch", _seconds), ("compute_s", "compute", _seconds),
-    ("exchange_s", "exchange", _seconds), ("allreduce_s", "all-reduce", _seconds),
-    ("wait_s", "wait (mean)", _seconds), ("eval_s", "+eval", _seconds),
+    ("epoch_s", "epoch", human_seconds), ("compute_s", "compute", human_seconds),
+    ("exchange_s", "exchange", human_seconds), ("allreduce_s", "all-reduce", human_seconds),
+    ("wait_s", "wait (mean)", human_seconds), ("eval_s", "+eval", human_seconds),
     ("bottleneck", "bound by", None), ("mark", "", None),
 ]
 
@@ -212,15 +204,15 @@ def summary_lines(result: dict) -> list[str]:
     f = result["fastest"]
     if f:
         out.append(f"fastest: {f['method']} on {f['workers']} workers at "
-                   f"{_link_name(f['link_gbps'])}, {_seconds(f['epoch_s'])} per epoch")
+                   f"{_link_name(f['link_gbps'])}, {human_seconds(f['epoch_s'])} per epoch")
     t = result.get("target_epoch_s")
     if t is not None:
         m = result["fewest_meeting_target"]
         if m:
-            out.append(f"fewest workers meeting {_seconds(t)}: {m['method']} on {m['workers']}"
-                       f" workers at {_link_name(m['link_gbps'])} ({_seconds(m['epoch_s'])})")
+            out.append(f"fewest workers meeting {human_seconds(t)}: {m['method']} on {m['workers']}"
+                       f" workers at {_link_name(m['link_gbps'])} ({human_seconds(m['epoch_s'])})")
         else:
-            out.append(f"no plan meets the target of {_seconds(t)} per epoch")
+            out.append(f"no plan meets the target of {human_seconds(t)} per epoch")
     return out
 
 

@@ -351,7 +351,6 @@ def run(args) -> int:
         from shardtrain.cli.train_mpi import run_mpi
         return run_mpi(args)
     settings, from_shards = _check_options(args)
-    from shardtrain import model
 
     progress = None
     tmp_dir = None
