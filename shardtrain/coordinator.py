@@ -97,26 +97,17 @@ class ShardDirFacts:
     input_dim: int
 
 
-def shard_dir_facts(shard_dir) -> ShardDirFacts:
-    """Worker count, graph size, classes and feature width from the shard manifest."""
-    from shardtrain.shards import load_manifest
+def shard_dir_facts(shard_dir, manifest: dict | None = None) -> ShardDirFacts:
+    """Worker count, graph size, classes and feature width from the shard manifest
+    (checked by `shards.load_manifest`; pass `manifest` when it is already read)."""
+    from shardtrain.shards import MANIFEST, load_manifest
 
-    m = load_manifest(shard_dir)
-    get = m.get if isinstance(m, dict) else (lambda key, default=None: getattr(m, key, default))
-    meta = get("meta", None) or {}
-
-    def pick(*names):
-        for name in names:
-            for source in (get, meta.get):
-                value = source(name, None)
-                if value is not None:
-                    return int(value)
-        raise InputError(f"{shard_dir}: shard manifest lacks '{names[0]}'")
-
-    return ShardDirFacts(workers=pick("workers", "k"),
-                         num_vertices=pick("num_vertices", "vertices"),
-                         num_classes=pick("num_classes", "classes"),
-                         input_dim=pick("input_dim", "features"))
+    m = manifest if manifest is not None else load_manifest(shard_dir)
+    if m.get("input_dim") is None:
+        raise InputError(f"{os.path.join(str(shard_dir), MANIFEST)}: the shards have no "
+                         f"vertex features (input_dim null): nothing to train on")
+    return ShardDirFacts(workers=m["workers"], num_vertices=m["num_vertices"],
+                         num_classes=m["num_classes"], input_dim=m["input_dim"])
 
 
 # ---------------------------------------------------------------- process handling
@@ -239,7 +230,11 @@ def train_partitioned(shard_dir, settings: TrainSettings, *, timeout_s: float = 
     from shardtrain.transport.pipes import make_pipe_mesh
 
     settings.validate()
-    facts = facts or shard_dir_facts(shard_dir)
+    if facts is None:
+        from shardtrain.shards import check_shard_dir
+
+        # the whole set, before any process starts: a broken shard is one line, exit 2
+        facts = shard_dir_facts(shard_dir, check_shard_dir(shard_dir))
     k = facts.workers
     if init_params is not None and not isinstance(init_params, dict):
         init_params = model.params_to_arrays(init_params)

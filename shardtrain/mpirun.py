@@ -37,6 +37,8 @@ ROOT = 0
 TAG_START = 11          # rank 0 -> all: settings, shard facts, initial weights (or stop)
 TAG_REPORT = 12         # rank r -> 0: one epoch report
 TAG_SUMMARY = 13        # rank r -> 0: the run_worker summary
+TAG_CHECK = 14          # rank r -> 0: its shard check (error text or None)
+TAG_GO = 15             # rank 0 -> all: every shard checked (go) or stop
 NAP_S = 0.0005          # sleep between polls of control messages
 
 
@@ -232,6 +234,40 @@ def _start(comm, shard_dir, settings, init_params, timeout_s: float):
     return settings, facts, init_params
 
 
+def _check_shards(comm, shard_dir, timeout_s: float) -> None:
+    """Every rank checks the manifest and its own shard (`shards.check_shard_dir`, the
+    pipes coordinator's check, so the message is the same); rank 0 gathers the results in
+    rank order and tells every rank to go on or stop. A bad shard is one line from rank 0
+    and exit status 2 on every rank, before any training starts."""
+    from shardtrain.errors import EXIT_BAD_INPUT
+    from shardtrain.shards import check_shard_dir
+
+    rank = comm.Get_rank()
+    try:
+        check_shard_dir(shard_dir, workers=[rank])
+        mine = None
+    except InputError as exc:
+        mine = str(exc)
+    if rank != ROOT:
+        out = _Outbox(comm)
+        out.send(ROOT, TAG_CHECK, {"error": mine})
+        out.flush(timeout_s, "rank 0 to take the shard check")
+        msg = _recv_message(comm, ROOT, TAG_GO, timeout_s, "rank 0's word after the checks")
+        if "stop" in msg:
+            raise JobStopped("stopped by rank 0", int(msg["stop"]), report=False)
+        return
+    errors = [mine] + [_recv_message(comm, q, TAG_CHECK, timeout_s,
+                                     f"the shard check of rank {q}")["error"]
+                       for q in range(1, comm.Get_size())]
+    first = next((e for e in errors if e is not None), None)
+    out = _Outbox(comm)
+    for q in range(1, comm.Get_size()):
+        out.send(q, TAG_GO, {"go": True} if first is None else {"stop": EXIT_BAD_INPUT})
+    out.flush(timeout_s, "the other ranks to take rank 0's word")
+    if first is not None:
+        raise JobStopped(first, EXIT_BAD_INPUT, report=True)
+
+
 def train_mpi(shard_dir, settings: TrainSettings | None, *, comm=None,
               timeout_s: float = 60.0, init_params=None,
               on_epoch: Callable[[dict], None] | None = None, allreduce: str = "mpi",
@@ -255,6 +291,8 @@ def train_mpi(shard_dir, settings: TrainSettings | None, *, comm=None,
     comm = comm if comm is not None else world()
     rank, size = comm.Get_rank(), comm.Get_size()
     settings, facts, init_params = _start(comm, shard_dir, settings, init_params, timeout_s)
+    if load_shard is None:
+        _check_shards(comm, shard_dir, timeout_s)
     worker.pin_blas_threads()
     if load_shard is None:
         from shardtrain.shards import load_shard

@@ -319,9 +319,32 @@ def shard_stats(shards: list[Shard]) -> dict[str, np.ndarray]:
 
 MANIFEST = "shards.json"
 FORMAT = "shardtrain-shards"
-FORMAT_VERSION = 1
+# version 2: `split_id` and per-worker `owned` counts in the manifest; each shard's header
+# holds 8 values and its own copy of the split id (version 1 directories: re-run split)
+FORMAT_VERSION = 2
 _VERTEX_DATA = ("features", "labels", "train_mask", "val_mask", "test_mask")
 _INDEX_ARRAYS = ("owned", "halo", "halo_ptr", "send_idx", "send_ptr")
+# header of every shard file, int64: what the shard is and what it must agree with
+HEADER_FIELDS = ("worker", "workers", "num_vertices", "num_train_global", "owned", "halo",
+                 "input_dim", "num_classes")
+_MAX_SIZE = 2**62                 # any count above this is not a real graph (int64 room)
+_FEATURE_DTYPES = ("<f4", "<f8")
+
+
+def split_id_of(shards: list[Shard], graph_fingerprint=None) -> str:
+    """A content hash (32 hex digits) of one split: the graph's fingerprint when known, and
+    every shard's owned ids, halo and row structure, labels and masks. The same split of
+    the same graph always gets the same id (so checkpoints of a rebuilt temporary split
+    still match); a shard of any other split or graph carries another id."""
+    import hashlib
+
+    h = hashlib.sha256(f"{graph_fingerprint}|{len(shards)}".encode())
+    for s in shards:
+        for arr in (s.owned, s.halo, s.halo_ptr, s.adj.indptr, s.labels, s.train_mask,
+                    s.val_mask, s.test_mask):
+            h.update(b"none" if arr is None else
+                     f"{arr.dtype.str}{arr.shape}".encode() + np.ascontiguousarray(arr).tobytes())
+    return h.hexdigest()[:32]
 
 
 def shard_file_name(worker: int) -> str:
@@ -351,6 +374,7 @@ def save_shards(path, shards: list[Shard], *, meta: dict, overwrite: bool = Fals
     num_classes = meta.get("num_classes")
     if num_classes is None:
         num_classes = max(int(l.max()) for l in labels) + 1 if labels else 0
+    split_id = split_id_of(shards, meta.get("graph_fingerprint"))
     manifest = {
         "format": FORMAT,
         "version": FORMAT_VERSION,
@@ -364,6 +388,8 @@ def save_shards(path, shards: list[Shard], *, meta: dict, overwrite: bool = Fals
         "graph_fingerprint": meta.get("graph_fingerprint"),
         "method": meta.get("method"),
         "seed": meta.get("seed"),
+        "split_id": split_id,
+        "owned": [s.num_owned for s in shards],
         "files": [shard_file_name(s.worker) for s in shards],
         "meta": {key: value for key, value in meta.items()},
     }
@@ -373,7 +399,10 @@ def save_shards(path, shards: list[Shard], *, meta: dict, overwrite: bool = Fals
             arrays.update(adj_indptr=s.adj.indptr, adj_indices=s.adj.indices,
                           adj_data=s.adj.data, adj_shape=np.asarray(s.adj.shape, dtype=np.int64),
                           header=np.asarray([s.worker, s.workers, s.num_vertices_global,
-                                             s.num_train_global], dtype=np.int64))
+                                             s.num_train_global, s.num_owned, s.num_halo,
+                                             -1 if input_dim is None else int(input_dim),
+                                             int(num_classes)], dtype=np.int64),
+                          split_id=np.asarray(split_id))
             for name in _VERTEX_DATA:
                 value = getattr(s, name)
                 if value is not None:
@@ -384,7 +413,9 @@ def save_shards(path, shards: list[Shard], *, meta: dict, overwrite: bool = Fals
 
 
 def load_manifest(path) -> dict:
-    """The manifest of a shard directory, checked for format and basic consistency."""
+    """The manifest of a shard directory, every field checked for type and range (one
+    InputError naming the file otherwise): a hand-edited or foreign manifest never gets
+    as far as a traceback."""
     from pathlib import Path
 
     from shardtrain.files import read_json_document
@@ -392,15 +423,196 @@ def load_manifest(path) -> dict:
     file = Path(path) / MANIFEST
     if not file.is_file():
         raise InputError(f"{file}: no such file (not a shard directory)")
-    manifest = read_json_document(file, format=FORMAT, version=FORMAT_VERSION,
-                                  what="shard manifest")
-    k = manifest.get("workers")
-    files = manifest.get("files")
-    if not isinstance(k, int) or k < 1 or not isinstance(files, list) or len(files) != k:
-        raise InputError(f"{file}: 'workers' and 'files' disagree or are missing")
-    for key in ("num_vertices", "num_train_global"):
-        if not isinstance(manifest.get(key), int) or manifest[key] < 0:
-            raise InputError(f"{file}: '{key}' missing or not a non-negative integer")
+    try:
+        manifest = read_json_document(file, format=FORMAT, version=FORMAT_VERSION,
+                                      what="shard manifest")
+    except RecursionError:
+        raise InputError(f"{file}: not readable JSON (nested too deeply)") from None
+    except InputError:
+        _refuse_old_version(file)
+        raise
+    _check_manifest(file, manifest)
+    return manifest
+
+
+def _refuse_old_version(file) -> None:
+    """An older manifest version gets its own message: the remedy is to split again."""
+    import json
+
+    try:
+        doc = json.loads(file.read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, ValueError, RecursionError):
+        return
+    version = doc.get("version") if isinstance(doc, dict) else None
+    if (isinstance(doc, dict) and doc.get("format") == FORMAT and _is_count(version)
+            and version < FORMAT_VERSION):
+        raise InputError(f"{file}: shard manifest version {version} is older than this "
+                         f"shardtrain's version {FORMAT_VERSION}: re-run `shardtrain split` "
+                         f"to write this directory again")
+
+
+def _is_count(value) -> bool:
+    return isinstance(value, int) and not isinstance(value, bool) and 0 <= value < _MAX_SIZE
+
+
+def _check_manifest(file, m: dict) -> None:
+    def bad(key: str, rule: str):
+        return InputError(f"{file}: '{key}' must be {rule} (got {m.get(key)!r:.60})")
+
+    for key in ("workers", "num_vertices", "num_edges", "num_train_global", "num_classes"):
+        if key not in m:
+            raise InputError(f"{file}: missing key '{key}'")
+        if not _is_count(m[key]):
+            raise bad(key, "a non-negative integer")
+    k, n = m["workers"], m["num_vertices"]
+    if not 1 <= k <= max(n, 1):
+        raise bad("workers", f"an integer between 1 and num_vertices ({n})")
+    if m["num_train_global"] > n:
+        raise bad("num_train_global", f"at most num_vertices ({n})")
+    if m.get("input_dim") is not None and not (_is_count(m["input_dim"]) and m["input_dim"] > 0):
+        raise bad("input_dim", "a positive integer or null")
+    if m.get("feature_dtype") not in (None, *_FEATURE_DTYPES):
+        raise bad("feature_dtype", f"one of {', '.join(_FEATURE_DTYPES)} or null")
+    if (m.get("feature_dtype") is None) != (m.get("input_dim") is None):
+        raise InputError(f"{file}: 'input_dim' and 'feature_dtype' disagree (both are null "
+                         f"only when the shards have no features)")
+    if not isinstance(m.get("split_id"), str) or not 1 <= len(m["split_id"]) <= 64:
+        raise bad("split_id", "the split's id string")
+    if m.get("graph_fingerprint") is not None and not isinstance(m["graph_fingerprint"], str):
+        raise bad("graph_fingerprint", "a string or null")
+    owned = m.get("owned")
+    if (not isinstance(owned, list) or len(owned) != k
+            or not all(_is_count(c) for c in owned)):
+        raise bad("owned", f"a list of {k} vertex counts, one per worker")
+    if sum(owned) != n:
+        raise InputError(f"{file}: the workers' owned vertices add up to {sum(owned)}, not "
+                         f"num_vertices {n}")
+    files = m.get("files")
+    if not isinstance(files, list) or len(files) != k:
+        raise bad("files", f"a list of {k} shard file names, one per worker")
+    for name in files:
+        if (not isinstance(name, str) or name in ("", ".", "..") or "/" in name
+                or "\\" in name or "\0" in name):
+            raise InputError(f"{file}: 'files' entry {name!r:.60} is not a plain file name "
+                             f"inside the shard directory")
+    if len(set(files)) != k:
+        raise InputError(f"{file}: 'files' names the same shard file twice")
+    if "meta" in m and not isinstance(m["meta"], dict):
+        raise bad("meta", "an object")
+
+
+def _shard_file(path, manifest: dict, worker: int):
+    """The path of worker's shard file; InputError if it resolves outside the folder."""
+    from pathlib import Path
+
+    folder = Path(path)
+    file = folder / manifest["files"][worker]
+    try:
+        inside = file.resolve().parent == folder.resolve()
+    except (OSError, RuntimeError):
+        inside = False
+    if not inside:
+        raise InputError(f"{file}: lies outside the shard directory {folder} (a link?)")
+    return file
+
+
+def _member_header(z, name: str):
+    """(shape, dtype) of one .npy member of an open npz, reading only its header."""
+    with z.zip.open(f"{name}.npy") as fh:
+        version = np.lib.format.read_magic(fh)
+        if version == (1, 0):
+            shape, _, dtype = np.lib.format.read_array_header_1_0(fh)
+        else:
+            shape, _, dtype = np.lib.format.read_array_header_2_0(fh)
+    return shape, dtype
+
+
+def check_shard(path, manifest: dict, worker: int) -> None:
+    """Cheap check of one shard file against its manifest, reading only header members
+    (and the labels): present, a whole zip, shard `worker` of this very split, sizes and
+    vertex data as the manifest says. InputError naming the file otherwise. The same
+    check (and message) serves the pipes coordinator and every MPI rank."""
+    import os
+    import zipfile
+
+    file = _shard_file(path, manifest, worker)
+    if not file.is_file():
+        raise InputError(f"{file}: no such file (shard {worker} missing)")
+    k = manifest["workers"]
+    try:
+        size = os.path.getsize(file)
+        with np.load(file, allow_pickle=False) as z:
+            members = set(z.files)
+            for info in z.zip.infolist():
+                if info.header_offset + info.compress_size > size:
+                    raise InputError(f"{file}: truncated (member {info.filename} runs past "
+                                     f"the end of the file)")
+            for name in ("header", "split_id"):
+                if name not in members:
+                    raise InputError(f"{file}: not a shard of this format (no '{name}'); "
+                                     f"re-run `shardtrain split`")
+            header, split = z["header"], z["split_id"]
+            shapes = {name: _member_header(z, name) for name in
+                      ("owned", "features", "labels", "train_mask", "val_mask", "test_mask")
+                      if name in members}
+            labels = z["labels"] if "labels" in members else None
+    except InputError:
+        raise
+    except (OSError, ValueError, EOFError, zipfile.BadZipFile, KeyError) as exc:
+        raise InputError(f"{file}: not a readable shard, truncated or damaged "
+                         f"({' '.join(str(exc).split())})") from None
+    if header.shape != (len(HEADER_FIELDS),) or header.dtype != np.int64:
+        raise InputError(f"{file}: 'header' must be {len(HEADER_FIELDS)} int64 values")
+    got = dict(zip(HEADER_FIELDS, (int(x) for x in header)))
+    split_id = str(split) if split.ndim == 0 and split.dtype.kind == "U" else None
+    if split_id != manifest["split_id"] or got["workers"] != k:
+        raise InputError(f"{file}: belongs to another split (split {split_id}, "
+                         f"{got['workers']} workers) than {MANIFEST} ({manifest['split_id']}, "
+                         f"{k} workers)")
+    if got["worker"] != worker:
+        raise InputError(f"{file}: is shard {got['worker']} of the split, but {MANIFEST} "
+                         f"lists it as shard {worker} (files swapped or re-ordered?)")
+    want = {"num_vertices": manifest["num_vertices"],
+            "num_train_global": manifest["num_train_global"],
+            "owned": manifest["owned"][worker],
+            "input_dim": -1 if manifest.get("input_dim") is None else manifest["input_dim"],
+            "num_classes": manifest["num_classes"]}
+    for key, value in want.items():
+        if got[key] != value:
+            raise InputError(f"{file}: says {key} {got[key]}, {MANIFEST} says {value} (an "
+                             f"edited manifest?)")
+    n_own = got["owned"]
+    if shapes.get("owned", ((None,), None))[0] != (n_own,):
+        raise InputError(f"{file}: 'owned' does not hold the {n_own} ids of its header")
+    feat = shapes.get("features")
+    if (feat is None) != (want["input_dim"] == -1):
+        raise InputError(f"{file}: {'has' if feat is not None else 'lacks'} features, "
+                         f"{MANIFEST} says input_dim {manifest.get('input_dim')}")
+    if feat is not None and (feat[0] != (n_own, want["input_dim"])
+                             or feat[1].str != manifest.get("feature_dtype")):
+        raise InputError(f"{file}: features are {feat[0]} {feat[1]}, expected "
+                         f"({n_own}, {want['input_dim']}) {manifest.get('feature_dtype')}")
+    for name in ("labels", "train_mask", "val_mask", "test_mask"):
+        if name in shapes and shapes[name][0] != (n_own,):
+            raise InputError(f"{file}: '{name}' has shape {shapes[name][0]}, expected "
+                             f"({n_own},)")
+    if labels is not None and labels.size:
+        if not np.issubdtype(labels.dtype, np.integer):
+            raise InputError(f"{file}: 'labels' must be integers")
+        top = int(labels.max())
+        if top >= manifest["num_classes"] or int(labels.min()) < -1:
+            raise InputError(f"{file}: labels run from {int(labels.min())} to {top}, "
+                             f"{MANIFEST} says num_classes {manifest['num_classes']}")
+
+
+def check_shard_dir(path, workers=None) -> dict:
+    """Check the manifest and the shard files of `workers` (default: every one) before any
+    process starts; returns the manifest. With the manifest's owned counts summing to
+    num_vertices and each shard agreeing with its own count, checking every shard checks
+    the whole set; an MPI rank checks only its own."""
+    manifest = load_manifest(path)
+    for w in range(manifest["workers"]) if workers is None else workers:
+        check_shard(path, manifest, w)
     return manifest
 
 
@@ -412,10 +624,7 @@ def load_shard(path, worker: int) -> Shard:
     k = manifest["workers"]
     if not 0 <= worker < k:
         raise InputError(f"{Path(path) / MANIFEST}: has workers 0..{k - 1}, not {worker}")
-    file = Path(path) / manifest["files"][worker]
-    if Path(manifest["files"][worker]).name != manifest["files"][worker]:
-        raise InputError(f"{Path(path) / MANIFEST}: file name {manifest['files'][worker]!r} "
-                         f"is not a plain name")
+    file = _shard_file(path, manifest, worker)
     try:
         with np.load(file, allow_pickle=False) as z:
             arrays = {name: z[name] for name in z.files}
@@ -423,6 +632,9 @@ def load_shard(path, worker: int) -> Shard:
         raise InputError(f"{file}: no such file (shard {worker} missing)") from None
     except (OSError, ValueError, EOFError) as exc:
         raise InputError(f"{file}: not a readable shard ({exc})") from None
+    except Exception as exc:  # noqa: BLE001 - zipfile.BadZipFile and kin: a damaged file
+        raise InputError(f"{file}: not a readable shard ({' '.join(str(exc).split())})"
+                         ) from None
     return _shard_from_arrays(file, arrays, manifest, worker)
 
 
@@ -436,13 +648,15 @@ def _shard_from_arrays(file, arrays: dict, manifest: dict, worker: int) -> Shard
         return InputError(f"{file}: {what}")
 
     header = need("header")
-    if header.shape != (4,) or header.dtype != np.int64:
-        raise bad("'header' must be 4 int64 values")
-    w, k, n, n_train = (int(x) for x in header)
+    if header.shape != (len(HEADER_FIELDS),) or header.dtype != np.int64:
+        raise bad(f"'header' must be {len(HEADER_FIELDS)} int64 values")
+    w, k, n, n_train = (int(x) for x in header[:4])
+    split = need("split_id")
     if (w, k, n, n_train) != (worker, manifest["workers"], manifest["num_vertices"],
-                              manifest["num_train_global"]):
-        raise bad(f"header (worker {w}, workers {k}, vertices {n}, train {n_train}) "
-                  f"does not match the manifest")
+                              manifest["num_train_global"]) or \
+            str(split) != manifest["split_id"]:
+        raise bad(f"header (worker {w}, workers {k}, vertices {n}, train {n_train}, split "
+                  f"{split}) does not match the manifest")
     for name in _INDEX_ARRAYS + ("adj_indptr", "adj_indices"):
         arr = need(name)
         if arr.ndim != 1 or not np.issubdtype(arr.dtype, np.integer):

@@ -75,7 +75,8 @@ def add_arguments(parser) -> None:
              "million-vertex power-law graphs)")
     add("--assignment", default=None, metavar="FILE",
         help="survey a partition made elsewhere (.npy, or one worker id per line in vertex "
-             "order) in place of --method and --workers")
+             "order) in place of --method; the worker count follows from it (--workers, "
+             "if given, must agree)")
     add_plan_shape_arguments(parser)
     add("--json", default=None, metavar="OUT.json", help="write the full survey as JSON")
     add("--csv", default=None, metavar="OUT.csv", help="write one row per plan as CSV")
@@ -136,8 +137,8 @@ def _write_outputs(args, result: dict) -> None:
 
 def run(args) -> int:
     # cheap option checks first, then the graph, then the checks that need the graph
-    if args.assignment is not None and (args.method is not None or args.workers is not None):
-        raise InputError("--assignment: give it in place of --method and --workers, not with them")
+    if args.assignment is not None and args.method is not None:
+        raise InputError("--assignment: give it in place of --method, not with it")
     workers = parse_int_list(args.workers or DEFAULT_WORKERS, "--workers")
     methods = parse_name_list(args.method or DEFAULT_METHODS, "--method")
     _check_output(args.json, "--json")
@@ -154,6 +155,9 @@ def run(args) -> int:
         from shardtrain.partition import load_assignment
 
         assignment, k = load_assignment(args.assignment, graph.num_vertices)
+        if args.workers is not None and workers != [k]:
+            raise InputError(f"--workers {args.workers}: {args.assignment} assigns "
+                             f"vertices to {k} workers")
         methods, workers = [f"file:{Path(args.assignment).name}"], [k]
         check_plans(graph, [], workers, settings)
     else:

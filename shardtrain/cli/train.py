@@ -67,7 +67,9 @@ def add_arguments(parser) -> None:
     split = parser.add_mutually_exclusive_group()
     split.add_argument("--method", metavar="M", help="partition method (with --workers)")
     split.add_argument("--assignment", metavar="FILE",
-                       help="vertex -> worker file to partition by (with --workers)")
+                       help="vertex -> worker file to partition by (.npy, or one worker id "
+                            "per line); the worker count follows from it (--workers, if "
+                            "given, must agree)")
     parser.add_argument("--imbalance", type=_number("--imbalance", float), default=0.03,
                         help="allowed partition imbalance (default 0.03)")
     d = TrainSettings()
@@ -157,6 +159,8 @@ def _check_options(args) -> tuple[TrainSettings, bool]:
         check_plot_dir(args.plot)
     if args.init_weights is not None and not Path(args.init_weights).is_file():
         raise InputError(f"--init-weights {args.init_weights}: no such file")
+    if not Path(args.graph).exists():
+        raise InputError(f"{args.graph}: no such file or directory")
     shard_dir = _is_shard_dir(args.graph)
     if shard_dir:
         for flag, given in (("--reference", args.reference), ("--method", args.method),
@@ -167,9 +171,14 @@ def _check_options(args) -> tuple[TrainSettings, bool]:
     elif Path(args.graph).is_dir():
         raise InputError(f"{args.graph}: a directory without {MANIFEST_NAME} "
                          f"(not a shard directory)")
-    elif not args.reference:
-        if args.workers is None:
-            raise InputError("--workers: give --workers K (or --reference) to train on a graph")
+    elif args.reference:
+        for flag, given in (("--method", args.method), ("--assignment", args.assignment)):
+            if given:
+                raise InputError(f"{flag}: not allowed with --reference (no partition)")
+    else:
+        if args.workers is None and args.assignment is None:
+            raise InputError("--workers: give --workers K with --method M, --assignment "
+                             "FILE, or --reference to train on a graph")
         if args.method is None and args.assignment is None:
             raise InputError("--method: give --method M or --assignment FILE with --workers")
     if args.workers is not None and args.workers < 1:
@@ -357,8 +366,9 @@ def run(args) -> int:
     try:
         if from_shards:
             from shardtrain.coordinator import model_dims_of, shard_dir_facts
+            from shardtrain.shards import check_shard_dir
 
-            facts = shard_dir_facts(args.graph)
+            facts = shard_dir_facts(args.graph, check_shard_dir(args.graph))
             if args.workers is not None and args.workers != facts.workers:
                 raise InputError(f"--workers {args.workers}: {args.graph} holds "
                                  f"{facts.workers} shards")
@@ -366,6 +376,8 @@ def run(args) -> int:
             init = (load_init_weights(args.init_weights, dims, settings)
                     if args.init_weights else None)
             graph_doc = rundoc.graph_of_shards(args.graph, facts)
+            if not args.quiet:
+                print(_shard_dir_line(args.graph, facts), flush=True)
             shard_dir, labels = args.graph, None
             graph_fp = _manifest_fingerprint(shard_dir)
         else:
@@ -380,8 +392,17 @@ def run(args) -> int:
             assignment = None
             if args.assignment is not None:
                 from shardtrain.partition import load_assignment
-                assignment = load_assignment(args.assignment, graph.num_vertices)
+                assignment, k = load_assignment(args.assignment, graph.num_vertices)
+                if args.workers is not None and args.workers != k:
+                    raise InputError(f"--workers {args.workers}: {args.assignment} assigns "
+                                     f"vertices to {k} workers")
+                args.workers = k
+            elif not args.reference:
+                from shardtrain.partition import check_workers
+                check_workers(args.workers, graph.num_vertices)
             graph_doc = rundoc.graph_of_file(loaded.source, graph, loaded.notes)
+            if not args.quiet:
+                print(graph_line(graph), flush=True)
             labels = graph.labels
             from shardtrain.graph import fingerprint
             graph_fp = fingerprint(graph)
@@ -433,6 +454,30 @@ def run(args) -> int:
             for line in _traffic_lines(result.traffic):
                 print(line)
     return 0
+
+
+def _count(mask) -> str:
+    return "-" if mask is None else f"{int(np.count_nonzero(mask)):,}"
+
+
+def graph_line(graph) -> str:
+    """One line of the graph's size, printed before training."""
+    dim = graph.input_dim
+    return (f"graph: {graph.num_vertices:,} vertices, {graph.num_edges:,} edges, "
+            f"{'-' if dim is None else f'{dim:,}'} features, {graph.num_classes:,} classes; "
+            f"split: {_count(graph.train_mask)} train, {_count(graph.val_mask)} val, "
+            f"{_count(graph.test_mask)} test")
+
+
+def _shard_dir_line(shard_dir, facts) -> str:
+    """The same line for a shard directory, from its manifest (split sizes beyond the
+    training count live only in the shards)."""
+    from shardtrain.shards import load_manifest
+
+    m = load_manifest(shard_dir)
+    return (f"graph: {facts.num_vertices:,} vertices, {int(m.get('num_edges') or 0):,} "
+            f"edges, {facts.input_dim:,} features, {facts.num_classes:,} classes; split: "
+            f"{int(m['num_train_global']):,} train; {facts.workers} shards in {shard_dir}")
 
 
 def _manifest_fingerprint(shard_dir):

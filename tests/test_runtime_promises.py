@@ -1,0 +1,269 @@
+"""The training runtime keeps the README's promises in every phase: `--assignment` works
+end to end, a broken shard directory is one line and exit 2 before any worker starts (the
+same line under MPI), descriptors are counted before the start, signals outside the
+training loop still mean exit 4 with nothing left behind, a checkpoint folder serves one
+run at a time, and every numeric option either works in every mode or is refused at the
+option.
+
+Sources of truth: the `--method metis` run of the same graph (an assignment file holding
+the very partition METIS made must train identically, loss for loss); the kernel's own
+count of this process's descriptors (/proc/self/fd, Linux proc(5)); POSIX flock(2) and
+setrlimit(2) semantics; the rest is the README's exit-status table (common practice for
+this tool).
+"""
+from __future__ import annotations
+
+import json
+import multiprocessing
+import os
+import shutil
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from shardtrain.cli import main
+from test_train_cli import _save_graph
+from test_train_equivalence import depot_graph
+
+K = 3
+QUICK = ["--epochs", "2", "--hidden", "4", "--quiet", "--timeout", "30"]
+
+
+def _one_line_error(capsys, code: int = 2) -> str:
+    err = capsys.readouterr().err
+    lines = err.strip().splitlines()
+    assert len(lines) == 1 and "Traceback" not in err, err
+    return lines[0]
+
+
+def _cli(*args, env=None, **kw):
+    return subprocess.run([sys.executable, "-m", "shardtrain", *map(str, args)],
+                          capture_output=True, text=True, timeout=120,
+                          env={**os.environ, **(env or {})}, **kw)
+
+
+@pytest.fixture(scope="module")
+def graph():
+    return depot_graph(n=150)
+
+
+@pytest.fixture(scope="module")
+def graph_file(tmp_path_factory, graph):
+    path = tmp_path_factory.mktemp("g") / "depots.npz"
+    _save_graph(path, graph)
+    return path
+
+
+# ---------------------------------------------------------------- 1: --assignment
+
+@pytest.fixture(scope="module")
+def metis_file(tmp_path_factory, graph):
+    from shardtrain.partition import partition
+
+    path = tmp_path_factory.mktemp("a") / "parts.npy"
+    np.save(path, partition(graph, "metis", K, seed=0))
+    return path
+
+
+def test_assignment_file_trains_like_the_method_that_made_it(graph_file, metis_file, tmp_path):
+    # source of truth: the --method metis run; the file holds METIS's own partition
+    common = ["--epochs", "3", "--dtype", "float64", "--hidden", "8", "--quiet"]
+    by_file = _cli("train", graph_file, "--assignment", metis_file, *common,
+                   "--json", tmp_path / "file.json")
+    assert by_file.returncode == 0, by_file.stderr
+    by_method = _cli("train", graph_file, "--workers", K, "--method", "metis", *common,
+                     "--json", tmp_path / "metis.json")
+    assert by_method.returncode == 0, by_method.stderr
+    a, b = (json.loads((tmp_path / f"{n}.json").read_text()) for n in ("file", "metis"))
+    assert len(a["workers"]) == K
+    assert [e["loss"] for e in a["epochs"]] == [e["loss"] for e in b["epochs"]]
+    assert a["traffic"]["measured_payload_bytes"] == b["traffic"]["measured_payload_bytes"]
+
+
+def test_assignment_forms_agree_across_commands(capsys, graph_file, metis_file, tmp_path):
+    # --workers K with the file is fine when it agrees, one line naming both otherwise
+    assert main(["train", str(graph_file), "--assignment", str(metis_file), "--workers",
+                 str(K + 1), *QUICK]) == 2
+    line = _one_line_error(capsys)
+    assert f"--workers {K + 1}" in line and "parts.npy" in line and f"{K} workers" in line
+    for extra in (["--method", "metis"], ["--reference"]):
+        assert main(["train", str(graph_file), "--assignment", str(metis_file), *extra,
+                     *QUICK]) == 2
+        line = _one_line_error(capsys)
+        assert "--assignment" in line and "not allowed with" in line, line
+    assert main(["survey", str(graph_file), "--assignment", str(metis_file), "--workers",
+                 str(K)]) == 0
+    capsys.readouterr()
+    assert main(["survey", str(graph_file), "--assignment", str(metis_file), "--workers",
+                 str(K + 1)]) == 2
+    assert f"--workers {K + 1}" in _one_line_error(capsys)
+    for workers in ([], ["--workers", str(K)]):
+        out = tmp_path / f"split{len(workers)}"
+        assert main(["split", str(graph_file), "--assignment", str(metis_file), *workers,
+                     "--out", str(out)]) == 0
+        assert json.loads((out / "shards.json").read_text())["workers"] == K
+    capsys.readouterr()
+    assert main(["split", str(graph_file), "--assignment", str(metis_file), "--workers",
+                 str(K + 1), "--out", str(tmp_path / "bad")]) == 2
+    assert f"--workers {K + 1}" in _one_line_error(capsys)
+
+
+def test_missing_graph_says_no_such_file_and_the_size_line_is_printed(capsys, graph_file,
+                                                                      graph):
+    assert main(["train", "/no/such/path", "--reference"]) == 2
+    assert main(["train", "/no/such/path"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 2 and all("/no/such/path: no such file" in e for e in err), err
+    assert main(["train", str(graph_file), "--reference", "--epochs", "1"]) == 0
+    first = capsys.readouterr().out.splitlines()[0]
+    assert first.startswith(f"graph: {graph.num_vertices:,} vertices, "
+                            f"{graph.num_edges:,} edges, 24 features, 4 classes; split: "
+                            f"{int(graph.train_mask.sum())} train"), first
+
+
+# ---------------------------------------------------------------- 3: the shard set, checked
+
+_PRISTINE: dict = {}
+
+
+@pytest.fixture(scope="module")
+def pristine(tmp_path_factory, graph):
+    from shardtrain.graph import fingerprint
+    from shardtrain.shards import build_shards, save_shards
+
+    root = tmp_path_factory.mktemp("shards")
+    _PRISTINE["root"] = root
+    meta = {"method": "test", "seed": 0, "graph_fingerprint": fingerprint(graph)}
+    save_shards(root / "good", build_shards(graph, np.arange(graph.num_vertices) % K, K),
+                meta=meta)
+    # another split of the same graph, and a split of another graph
+    save_shards(root / "other-split",
+                build_shards(graph, (np.arange(graph.num_vertices) // 7) % K, K), meta=meta)
+    other = depot_graph(n=150, seed=11)
+    save_shards(root / "other-graph", build_shards(other, np.arange(150) % K, K),
+                meta={**meta, "graph_fingerprint": fingerprint(other)})
+    return root
+
+
+def _edit_manifest(d: Path, **changes):
+    m = json.loads((d / "shards.json").read_text())
+    m.update(changes)
+    (d / "shards.json").write_text(json.dumps(m))
+
+
+def _drop_key(d: Path, key: str):
+    m = json.loads((d / "shards.json").read_text())
+    del m[key]
+    (d / "shards.json").write_text(json.dumps(m))
+
+
+def _truncate(d: Path):
+    f = d / "shard-0002.npz"
+    f.write_bytes(f.read_bytes()[: f.stat().st_size // 2])
+
+
+def _swap(d: Path):
+    a, b = d / "shard-0000.npz", d / "shard-0001.npz"
+    tmp = d / "x"
+    a.rename(tmp), b.rename(a), tmp.rename(b)
+
+
+def _from(other: str):
+    def put(d: Path):
+        shutil.copy(_PRISTINE["root"] / other / "shard-0001.npz", d / "shard-0001.npz")
+    return put
+
+
+def _link_outside(d: Path):
+    outside = d.parent / "elsewhere.npz"
+    shutil.copy(d / "shard-0001.npz", outside)
+    (d / "shard-0001.npz").unlink()
+    (d / "shard-0001.npz").symlink_to(outside)
+
+
+def _deep(d: Path):
+    (d / "shards.json").write_text("[" * 100000 + "]" * 100000)
+
+
+BROKEN = {
+    "missing": (lambda d: (d / "shard-0001.npz").unlink(), "shard-0001.npz: no such file"),
+    "truncated": (_truncate, "shard-0002.npz: not a readable shard"),
+    "swapped": (_swap, "shard-0000.npz: is shard 1 of the split"),
+    "re-ordered": (lambda d: _edit_manifest(d, files=[f"shard-000{w}.npz" for w in (2, 1, 0)]),
+                   "shard-0002.npz: is shard 2 of the split, but shards.json lists it as "
+                   "shard 0"),
+    "other-split": (_from("other-split"), "shard-0001.npz: belongs to another split"),
+    "other-graph": (_from("other-graph"), "shard-0001.npz: belongs to another split"),
+    "workers": (lambda d: _edit_manifest(d, workers=2), "shards.json: 'owned' must be"),
+    "num_vertices": (lambda d: _edit_manifest(d, num_vertices=151),
+                     "shards.json: the workers' owned vertices add up to 150"),
+    "input_dim": (lambda d: _edit_manifest(d, input_dim=25),
+                  "shard-0000.npz: says input_dim 24, shards.json says 25"),
+    "num_classes": (lambda d: _edit_manifest(d, num_classes=3),
+                    "shard-0000.npz: says num_classes 4, shards.json says 3"),
+    "files-outside": (lambda d: _edit_manifest(d, files=["../good/shard-0000.npz",
+                                                         "shard-0001.npz", "shard-0002.npz"]),
+                      "shards.json: 'files' entry '../good/shard-0000.npz' is not a plain"),
+    "symlink-outside": (_link_outside, "shard-0001.npz: lies outside the shard directory"),
+    "string-count": (lambda d: _edit_manifest(d, num_vertices="150"),
+                     "shards.json: 'num_vertices' must be a non-negative integer"),
+    "nan": (lambda d: (d / "shards.json").write_text(
+        (d / "shards.json").read_text().replace('"num_edges": ', '"num_edges": NaN, "x": ')),
+        "shards.json: 'num_edges' must be a non-negative integer"),
+    "missing-key": (lambda d: _drop_key(d, "num_train_global"),
+                    "shards.json: missing key 'num_train_global'"),
+    "negative": (lambda d: _edit_manifest(d, num_classes=-4),
+                 "shards.json: 'num_classes' must be a non-negative integer"),
+    "absurd": (lambda d: _edit_manifest(d, workers=10**30),
+               "shards.json: 'workers' must be a non-negative integer"),
+    "bool": (lambda d: _edit_manifest(d, workers=True), "shards.json: 'workers' must be"),
+    "deep": (_deep, "shards.json: not readable JSON"),
+    "old-version": (lambda d: _edit_manifest(d, version=1), "re-run `shardtrain split`"),
+}
+
+
+@pytest.mark.parametrize("case", list(BROKEN))
+def test_a_broken_shard_directory_is_refused_before_any_worker(capsys, monkeypatch, pristine,
+                                                               tmp_path, case):
+    from shardtrain import faults
+
+    d = tmp_path / "case" / "shards"
+    d.parent.mkdir()
+    shutil.copytree(pristine / "good", d)
+    break_it, needle = BROKEN[case]
+    break_it(d)
+    # a worker that started would fail at once (exit 3): exit 2 proves none did
+    monkeypatch.setenv(faults.ENV, "0@loading shard=raise")
+    assert main(["train", str(d), *QUICK]) == 2
+    line = _one_line_error(capsys)
+    assert needle in line, line
+    assert str(d) in line
+    assert multiprocessing.active_children() == []
+
+
+def test_mpi_names_the_same_broken_shard_with_the_same_line(capsys, pristine, tmp_path):
+    from test_mpi_train import _launch
+
+    d = tmp_path / "shards"
+    shutil.copytree(pristine / "good", d)
+    _swap(d)
+    assert main(["train", str(d), *QUICK]) == 2
+    pipes_line = _one_line_error(capsys)
+    proc, _ = _launch(K, ["-m", "shardtrain", "train", str(d), "--transport", "mpi",
+                          "--epochs", "2", "--hidden", "4", "--quiet", "--timeout", "30"])
+    assert proc.returncode == 2, proc.stderr
+    assert proc.stderr.strip().splitlines() == [pipes_line]
+    _from("other-graph")(d)            # only rank 1's shard is wrong now
+    (d / "shard-0000.npz").unlink()
+    shutil.copy(pristine / "good" / "shard-0000.npz", d)
+    shutil.copy(pristine / "good" / "shard-0002.npz", d)
+    proc, _ = _launch(K, ["-m", "shardtrain", "train", str(d), "--transport", "mpi",
+                          "--epochs", "2", "--quiet"])
+    assert proc.returncode == 2, proc.stderr
+    lines = proc.stderr.strip().splitlines()
+    assert len(lines) == 1 and "shard-0001.npz: belongs to another split" in lines[0], lines
