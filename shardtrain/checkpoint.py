@@ -257,3 +257,54 @@ def check_folder(folder, *, resuming_from=None) -> Path:
         raise InputError(f"--checkpoint {folder}: holds a checkpoint already; continue it "
                          f"with --resume {folder} or choose an empty folder")
     return folder
+
+
+class FolderLock:
+    """An exclusive lock on a checkpoint folder, held for a whole run (see `lock_folder`)."""
+
+    def __init__(self, folder: Path, fd: int, created: bool):
+        self.folder, self.fd, self.created = folder, fd, created
+
+    def release(self) -> None:
+        """Unlock; a folder this lock created and nothing filled is removed again."""
+        import os
+
+        if self.fd is None:
+            return
+        os.close(self.fd)                    # closing the descriptor drops the flock
+        self.fd = None
+        if self.created:
+            try:
+                self.folder.rmdir()          # only when empty: a checkpoint stays
+            except OSError:
+                pass
+
+
+def lock_folder(folder, option: str = "--checkpoint") -> FolderLock:
+    """Take an exclusive, non-blocking flock(2) on the checkpoint folder itself (created
+    when missing; its parent must exist), so a second run writing or resuming it is refused
+    with one line naming the folder. The kernel drops the lock when the process ends, however
+    it ends; no lock file is left behind."""
+    import fcntl
+    import os
+
+    folder = Path(folder)
+    if folder.exists() and not folder.is_dir():
+        raise InputError(f"{option} {folder}: exists and is not a folder")
+    created = False
+    if not folder.exists():
+        if option == "--resume":
+            raise InputError(f"{option} {folder}: no such folder")
+        if not folder.parent.is_dir():
+            raise InputError(f"{option} {folder}: folder {folder.parent} does not exist")
+        folder.mkdir()
+        created = True
+    fd = os.open(folder, os.O_RDONLY | os.O_DIRECTORY | os.O_CLOEXEC)
+    try:
+        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+    except OSError:
+        os.close(fd)
+        raise InputError(f"{option} {folder}: another shardtrain run is using this "
+                         f"checkpoint folder (it holds the folder's lock); wait for it to "
+                         f"end or choose another folder") from None
+    return FolderLock(folder, fd, created)

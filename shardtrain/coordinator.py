@@ -152,6 +152,51 @@ def stop_workers(procs: list, join_s: float = JOIN_S) -> None:
             p.join(join_s)
 
 
+# descriptors of a run beyond the pipe mesh, measured with /proc/self/fd (k = 2..8): one
+# sentinel and one control-pipe end per worker stay open, plus the forkserver's socket,
+# the log queue and the resource tracker (tests/test_runtime_promises.py checks it)
+FDS_PER_PAIR = 4             # one pipe each way, both ends, until both workers started
+FDS_PER_WORKER = 2
+FDS_MARGIN = 32
+
+
+def descriptors_needed(k: int, open_now: int | None = None) -> int:
+    """Open files the coordinator holds at its peak (just after the first worker started,
+    every pipe of the mesh still open), on top of `open_now` (default: counted)."""
+    if open_now is None:
+        open_now = _open_descriptors()
+    return open_now + FDS_PER_PAIR * len(mesh_pairs(k)) + FDS_PER_WORKER * k + FDS_MARGIN
+
+
+def _open_descriptors() -> int:
+    try:
+        return len(os.listdir("/proc/self/fd")) - 1      # less the listing's own
+    except OSError:
+        return 64                                          # no /proc: a generous guess
+
+
+def ensure_descriptors(k: int) -> None:
+    """Make room for a run of k workers before anything starts: raise the soft limit of
+    open files up to the hard limit when that suffices, else an InputError naming
+    `ulimit -n`."""
+    import resource
+
+    need = descriptors_needed(k)
+    soft, hard = resource.getrlimit(resource.RLIMIT_NOFILE)
+    if soft == resource.RLIM_INFINITY or need <= soft:
+        return
+    if hard == resource.RLIM_INFINITY or need <= hard:
+        try:
+            resource.setrlimit(resource.RLIMIT_NOFILE,
+                               (need if hard == resource.RLIM_INFINITY else hard, hard))
+            return
+        except (OSError, ValueError):
+            pass
+    raise InputError(f"--workers {k}: {k} worker processes need about {need:,} open files, "
+                     f"but this shell allows {soft:,} (hard limit {hard:,}): raise it with "
+                     f"`ulimit -n {need}` or use fewer workers")
+
+
 def mesh_pairs(k: int, peer_sets: list[set[int]] | None = None) -> set[tuple[int, int]]:
     """Pipe pairs: halo peers (all pairs when unknown) plus ring neighbours."""
     from shardtrain.transport.pipes import ring_pairs
@@ -253,6 +298,7 @@ def train_partitioned(shard_dir, settings: TrainSettings, *, timeout_s: float = 
     ctx = multiprocessing.get_context(START_METHOD)
     if START_METHOD == "forkserver":
         ctx.set_forkserver_preload(PRELOAD)
+    ensure_descriptors(k)
     logs = _worker_log_handler(ctx)
     log_level = logging.getLogger("shardtrain").getEffectiveLevel()
     ends = make_pipe_mesh(k, mesh_pairs(k))

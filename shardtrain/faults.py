@@ -17,6 +17,10 @@ renamed", ...) starts with PHASE. ACTION is one of
     pause:S           sleep S seconds, then go on
     corrupt:MODE      send every halo peer a bad frame, MODE one of truncated, oversized,
                       kind, source; then stop answering
+SHARDTRAIN_TEST_PAUSE="PHASE=SECONDS" makes the train command itself sleep at one of its
+`pause_point`s ("partitioning", "building shards", "shards built", "training"), after
+writing "PHASE" into SHARDTRAIN_TEST_FAULT_STAMP when that is set, so a test can signal it
+there.
 With SHARDTRAIN_TEST_FAULT_STAMP=FILE the worker writes the wall-clock time (time.time())
 of the fault into FILE first, so a test can measure how long detection took.
 Never set these outside tests.
@@ -31,6 +35,7 @@ from shardtrain.errors import InputError
 
 ENV = "SHARDTRAIN_TEST_FAULT"
 ENV_STAMP = "SHARDTRAIN_TEST_FAULT_STAMP"
+ENV_PAUSE = "SHARDTRAIN_TEST_PAUSE"
 ACTIONS = ("kill", "raise", "exit", "hang", "pause", "corrupt")
 CORRUPT_MODES = ("truncated", "oversized", "kind", "source")
 HANG_S = 600.0                 # bounded even here: the coordinator stops it long before
@@ -109,3 +114,18 @@ class Fault:
         if mode == "truncated":     # the pipe closes mid-frame: the reader sees a truncated
             for conn in t._ends.send.values():       # frame (reads stay open, so a peer's
                 conn.close()                          # send to us does not fail first)
+
+
+def pause_point(phase: str) -> None:
+    """TEST ONLY: sleep here when SHARDTRAIN_TEST_PAUSE names this phase (see above)."""
+    text = os.environ.get(ENV_PAUSE)
+    if not text:
+        return
+    name, _, seconds = text.rpartition("=")
+    if name != phase:
+        return
+    stamp = os.environ.get(ENV_STAMP)
+    if stamp:
+        with open(stamp, "w") as fh:
+            fh.write(phase)
+    time.sleep(float(seconds))

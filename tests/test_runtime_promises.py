@@ -267,3 +267,160 @@ def test_mpi_names_the_same_broken_shard_with_the_same_line(capsys, pristine, tm
     assert proc.returncode == 2, proc.stderr
     lines = proc.stderr.strip().splitlines()
     assert len(lines) == 1 and "shard-0001.npz: belongs to another split" in lines[0], lines
+
+
+# ---------------------------------------------------------------- 7: open files, temp folders
+
+def test_descriptor_count_follows_the_mesh(monkeypatch, pristine, tmp_path, graph):
+    """The coordinator's peak of open descriptors (counted by the kernel in /proc/self/fd,
+    proc(5)) grows by FDS_PER_PAIR per pipe pair, and the prediction covers it."""
+    import multiprocessing.process as mpp
+
+    from shardtrain import coordinator
+    from shardtrain.settings import TrainSettings
+    from shardtrain.shards import build_shards, save_shards
+
+    peaks = {}
+    start = mpp.BaseProcess.start
+
+    def counting_start(self):
+        start(self)
+        peaks[current] = max(peaks.get(current, 0), len(os.listdir("/proc/self/fd")) - 1)
+    monkeypatch.setattr(mpp.BaseProcess, "start", counting_start)
+    predicted = {}
+    for current in (4, 8):
+        d = tmp_path / f"s{current}"
+        save_shards(d, build_shards(graph, np.arange(graph.num_vertices) % current, current),
+                    meta={"method": "test"})
+        open_now = len(os.listdir("/proc/self/fd")) - 1
+        predicted[current] = coordinator.descriptors_needed(current, open_now)
+        coordinator.train_partitioned(d, TrainSettings(epochs=1, hidden=4), timeout_s=30)
+        assert peaks[current] <= predicted[current]
+    pairs = {k: len(coordinator.mesh_pairs(k)) for k in (4, 8)}
+    growth = peaks[8] - peaks[4]
+    assert abs(growth - coordinator.FDS_PER_PAIR * (pairs[8] - pairs[4])) <= \
+        coordinator.FDS_PER_WORKER * 4, (peaks, pairs)
+
+
+def _limited(soft: int, hard: int):
+    import resource
+
+    def set_limit():
+        resource.setrlimit(resource.RLIMIT_NOFILE, (soft, hard))
+    return set_limit
+
+
+def test_open_files_limit_is_raised_or_refused_and_tmp_stays_clean(graph_file, tmp_path):
+    tmp = tmp_path / "tmp"
+    tmp.mkdir()
+    args = ["train", graph_file, "--workers", 8, "--method", "random", *QUICK]
+    # a limit of 100 is below what 8 workers need (~150): refused when it cannot be raised
+    refused = _cli(*args, env={"TMPDIR": str(tmp)}, preexec_fn=_limited(100, 100))
+    assert refused.returncode == 2, refused.stderr
+    lines = refused.stderr.strip().splitlines()
+    assert len(lines) == 1 and "--workers 8" in lines[0] and "ulimit -n" in lines[0], lines
+    assert list(tmp.iterdir()) == []
+    # the same soft limit under a higher hard limit is raised, and the run succeeds
+    ran = _cli(*args, env={"TMPDIR": str(tmp)}, preexec_fn=_limited(100, 4096))
+    assert ran.returncode == 0, ran.stderr
+    assert list(tmp.iterdir()) == []
+
+
+@pytest.mark.parametrize("case", ["exit 2 after the shards were built", "exit 3"])
+def test_temporary_shards_are_removed_on_failure(graph_file, metis_file, tmp_path, case):
+    from shardtrain import faults
+
+    tmp = tmp_path / "tmp"
+    tmp.mkdir()
+    if case == "exit 3":
+        run = _cli("train", graph_file, "--workers", 2, "--method", "random", *QUICK,
+                   env={"TMPDIR": str(tmp), faults.ENV: "1@epoch 1 compute=exit"})
+        code, needle = 3, "worker 1 died"
+    else:           # the worker count (and so this check) is known only from the file
+        run = _cli("train", graph_file, "--assignment", metis_file, "--slow-worker", "7:2",
+                   *QUICK, env={"TMPDIR": str(tmp)})
+        code, needle = 2, "--slow-worker 7:2: worker 7 does not exist"
+    assert run.returncode == code, run.stderr
+    lines = run.stderr.strip().splitlines()
+    assert len(lines) == 1 and needle in lines[0], lines
+    assert list(tmp.iterdir()) == []
+
+
+# ---------------------------------------------------------------- 8: signals in every phase
+
+def _descendants_with(token: str) -> list[int]:
+    from test_faults import processes_with_token
+    return processes_with_token(token)
+
+
+@pytest.mark.parametrize("where, sig", [
+    ("partitioning", signal.SIGTERM),
+    ("shards built", signal.SIGHUP),
+    ("training", signal.SIGHUP),
+])
+def test_a_signal_in_any_phase_is_exit_4_and_leaves_nothing(graph_file, tmp_path, where, sig):
+    import uuid
+
+    from shardtrain import faults
+
+    tmp = tmp_path / "tmp"
+    tmp.mkdir()
+    stamp = tmp_path / "stamp"
+    token = uuid.uuid4().hex
+    env = {"TMPDIR": str(tmp), faults.ENV_STAMP: str(stamp), "SHARDTRAIN_TEST_TOKEN": token}
+    if where == "training":          # workers are running: worker 0 waits in epoch 1
+        env[faults.ENV] = "0@epoch 1 compute=pause:30"
+    else:
+        env[faults.ENV_PAUSE] = f"{where}=30"
+    run = subprocess.Popen([sys.executable, "-m", "shardtrain", "train", str(graph_file),
+                            "--workers", "2", "--method", "random", *QUICK],
+                           stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+                           env={**os.environ, **env})
+    deadline = time.monotonic() + 60
+    while not stamp.exists():
+        assert run.poll() is None and time.monotonic() < deadline, run.communicate()
+        time.sleep(0.05)
+    if where != "training":
+        assert any(tmp.glob("shardtrain-shards-*")), list(tmp.iterdir())
+    run.send_signal(sig)
+    _, err = run.communicate(timeout=30)
+    assert run.returncode == 4, err
+    lines = err.strip().splitlines()
+    assert len(lines) == 1 and "Traceback" not in err, err
+    if where != "training":
+        assert f"stopped by {sig.name} while" in lines[0], lines[0]
+    deadline = time.monotonic() + 5
+    while _descendants_with(token) and time.monotonic() < deadline:
+        time.sleep(0.05)
+    assert _descendants_with(token) == []
+    assert list(tmp.iterdir()) == []
+
+
+# ---------------------------------------------------------------- 9: one run per checkpoint folder
+
+def test_a_checkpoint_folder_serves_one_run_at_a_time(capsys, graph_file, tmp_path):
+    from shardtrain import checkpoint
+
+    folder = tmp_path / "ck"
+    held = checkpoint.lock_folder(folder)        # another run holds it (flock(2) is per
+    try:                                         # open file, so this process counts too)
+        assert main(["train", str(graph_file), "--reference", "--epochs", "2", "--quiet",
+                     "--checkpoint", str(folder)]) == 2
+        line = _one_line_error(capsys)
+        assert line.startswith(f"shardtrain: error: --checkpoint {folder}: another shardtrain "
+                               f"run is using this checkpoint folder"), line
+    finally:
+        held.release()
+    assert main(["train", str(graph_file), "--reference", "--epochs", "2", "--quiet",
+                 "--checkpoint", str(folder)]) == 0
+    held = checkpoint.lock_folder(folder, "--resume")   # the finished run let go of it
+    try:
+        assert main(["train", str(graph_file), "--reference", "--epochs", "3", "--quiet",
+                     "--resume", str(folder)]) == 2
+        assert f"--resume {folder}: another shardtrain run" in _one_line_error(capsys)
+    finally:
+        held.release()
+    assert main(["train", str(graph_file), "--reference", "--epochs", "3", "--quiet",
+                 "--resume", str(folder)]) == 0
+    assert checkpoint.read_checkpoint(folder).epoch == 3
+    assert sorted(p.name for p in folder.iterdir()) == ["checkpoint.json", "state-000003.npz"]

@@ -30,7 +30,7 @@ import numpy as np
 from shardtrain import rundoc
 from shardtrain.cli.common import add_graph_arguments, load_graph_from_args, \
     positive_int_type
-from shardtrain.errors import InputError
+from shardtrain.errors import InputError, Interrupted
 from shardtrain.settings import DTYPES, TrainSettings
 
 MANIFEST_NAME = "shards.json"
@@ -236,6 +236,10 @@ def _check_fault_options(args) -> None:
     if args.resume and args.init_weights:
         raise InputError("--init-weights: not allowed with --resume (the checkpoint holds "
                          "the weights)")
+    if args.resume or args.checkpoint:
+        # held for the whole run (released by `run`): one run per checkpoint folder
+        args.lock = checkpoint.lock_folder(args.resume or args.checkpoint,
+                                           "--resume" if args.resume else "--checkpoint")
     args.resumed = checkpoint.read_checkpoint(args.resume) if args.resume else None
     if args.resumed is not None and args.checkpoint is None:
         args.checkpoint = args.resume
@@ -359,6 +363,23 @@ def run(args) -> int:
     if args.transport == "mpi":
         from shardtrain.cli.train_mpi import run_mpi
         return run_mpi(args)
+    phase = ["checking the options"]
+    args.lock = None
+    with _signals_as_interrupt():
+        try:
+            return _run(args, phase)
+        except KeyboardInterrupt as exc:     # a signal outside the training loop
+            raise Interrupted(f"stopped by {getattr(exc, 'signal_name', 'Ctrl-C')} while "
+                              f"{phase[0]}; no worker is left and no temporary file (start "
+                              f"the same command again)") from None
+        finally:
+            if args.lock is not None:
+                args.lock.release()
+
+
+def _run(args, phase: list) -> int:
+    from shardtrain.faults import pause_point
+
     settings, from_shards = _check_options(args)
 
     progress = None
@@ -368,10 +389,12 @@ def run(args) -> int:
             from shardtrain.coordinator import model_dims_of, shard_dir_facts
             from shardtrain.shards import check_shard_dir
 
+            phase[0] = "checking the shard directory"
             facts = shard_dir_facts(args.graph, check_shard_dir(args.graph))
             if args.workers is not None and args.workers != facts.workers:
                 raise InputError(f"--workers {args.workers}: {args.graph} holds "
                                  f"{facts.workers} shards")
+            _check_descriptors(facts.workers)
             dims = model_dims_of(facts, settings)
             init = (load_init_weights(args.init_weights, dims, settings)
                     if args.init_weights else None)
@@ -383,6 +406,7 @@ def run(args) -> int:
         else:
             from shardtrain.reference import check_trainable, model_dims
 
+            phase[0] = "reading the graph"
             loaded = load_graph_from_args(args)
             graph = loaded.graph
             check_trainable(graph)
@@ -407,25 +431,28 @@ def run(args) -> int:
             from shardtrain.graph import fingerprint
             graph_fp = fingerprint(graph)
             if not args.reference:
+                _check_descriptors(args.workers)
                 tmp_dir = tempfile.mkdtemp(prefix="shardtrain-shards-")
                 shard_dir = str(Path(tmp_dir) / "shards")
-                _build_shard_dir(graph, args, assignment, shard_dir, dims)
+                _build_shard_dir(graph, args, assignment, shard_dir, dims, phase)
         plan = (_reference_plan(args, settings, dims, graph_fp) if args.reference
                 else _checkpoint_plan(args, settings, shard_dir, dims, graph_fp))
         progress = _Progress(settings.epochs, args.quiet,
                              args.resumed.epoch if args.resumed is not None else 0)
-        with _sigterm_as_interrupt():
-            if args.reference:
-                result = _train_reference(graph, settings, init, plan, args.resumed, progress)
-            else:
-                from shardtrain.coordinator import train_partitioned
-                result = train_partitioned(shard_dir, settings, timeout_s=args.timeout,
-                                           init_params=init, on_epoch=progress,
-                                           max_frame_bytes=args.max_frame_bytes,
-                                           checkpoint=plan, resume=args.resumed,
-                                           slow=parse_slow_workers(args.slow_worker))
-                if labels is None:
-                    labels = result.labels
+        phase[0] = "starting the training"
+        pause_point("training")
+        if args.reference:
+            result = _train_reference(graph, settings, init, plan, args.resumed, progress)
+        else:
+            from shardtrain.coordinator import train_partitioned
+            result = train_partitioned(shard_dir, settings, timeout_s=args.timeout,
+                                       init_params=init, on_epoch=progress,
+                                       max_frame_bytes=args.max_frame_bytes,
+                                       checkpoint=plan, resume=args.resumed,
+                                       slow=parse_slow_workers(args.slow_worker))
+            if labels is None:
+                labels = result.labels
+        phase[0] = "writing the outputs"
         progress.close()
         progress = None
     finally:
@@ -555,38 +582,71 @@ def _train_reference(graph, settings, init, plan, resumed, progress):
 
 
 class _Terminated(KeyboardInterrupt):
-    """SIGTERM, handled like Ctrl-C: the coordinator stops the workers."""
+    """SIGTERM or SIGHUP, handled like Ctrl-C: the coordinator stops the workers."""
+
+    def __init__(self, signal_name: str):
+        super().__init__(signal_name)
+        self.signal_name = signal_name
 
 
-class _sigterm_as_interrupt:
-    """While training, SIGTERM raises in the main thread as Ctrl-C does."""
+STOP_SIGNALS = (signal.SIGINT, signal.SIGTERM, signal.SIGHUP)
+
+
+class _signals_as_interrupt:
+    """For the whole command, Ctrl-C, SIGTERM and SIGHUP raise in the main thread as Ctrl-C
+    does (exit 4 in every phase). Only the first one raises: later ones are ignored, so the
+    clean-up (stopping workers, removing temporary shards) is never cut short."""
 
     def __enter__(self):
+        fired = [False]
+
         def handler(signum, frame):
-            raise _Terminated()
+            if fired[0]:
+                return
+            fired[0] = True
+            if signum == signal.SIGINT:
+                raise KeyboardInterrupt()
+            raise _Terminated(signal.Signals(signum).name)
+        self.saved = {}
         try:
-            self.saved = signal.signal(signal.SIGTERM, handler)
-        except ValueError:           # not the main thread (embedded use): leave it alone
-            self.saved = None
+            for sig in STOP_SIGNALS:
+                self.saved[sig] = signal.signal(sig, handler)
+        except ValueError:           # not the main thread (embedded use): leave them alone
+            for sig, old in self.saved.items():
+                signal.signal(sig, old)
+            self.saved = {}
         return self
 
     def __exit__(self, *exc):
-        if self.saved is not None:
-            signal.signal(signal.SIGTERM, self.saved)
+        for sig, old in self.saved.items():
+            signal.signal(sig, old)
         return False
 
 
-def _build_shard_dir(graph, args, assignment, shard_dir: str, dims) -> None:
+def _check_descriptors(k: int) -> None:
+    """Enough open files for k workers, before anything is built (InputError otherwise)."""
+    from shardtrain.coordinator import ensure_descriptors
+
+    ensure_descriptors(k)
+
+
+def _build_shard_dir(graph, args, assignment, shard_dir: str, dims, phase: list) -> None:
     """Partition (or take the given assignment) and save the shards for the workers."""
+    from shardtrain.faults import pause_point
     from shardtrain.shards import build_shards, save_shards
 
     k = args.workers
     if assignment is None:
         from shardtrain.partition import partition
+        phase[0] = "partitioning"
+        pause_point("partitioning")
         assignment = partition(graph, args.method, k, seed=args.seed, imbalance=args.imbalance)
+    phase[0] = "building the shards"
+    pause_point("building shards")
     shards = build_shards(graph, assignment, k)
     from shardtrain.graph import fingerprint
     save_shards(shard_dir, shards, meta={"num_classes": dims[-1][1], "input_dim": dims[0][0],
                                          "method": args.method or "assignment",
                                          "seed": args.seed,
                                          "graph_fingerprint": fingerprint(graph)})
+    pause_point("shards built")
