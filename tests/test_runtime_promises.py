@@ -424,3 +424,43 @@ def test_a_checkpoint_folder_serves_one_run_at_a_time(capsys, graph_file, tmp_pa
                  "--resume", str(folder)]) == 0
     assert checkpoint.read_checkpoint(folder).epoch == 3
     assert sorted(p.name for p in folder.iterdir()) == ["checkpoint.json", "state-000003.npz"]
+
+
+# ---------------------------------------------------------------- 10: every accepted value works
+
+@pytest.mark.parametrize("args, needle", [
+    (["--seed", str(2**63)], "--seed '9223372036854775808': must be an integer from 0 to"),
+    (["--seed", "-1"], "--seed '-1': must be an integer from 0 to"),
+    (["--timeout", "inf"], "--timeout inf: must be a number of seconds > 0 and at most"),
+    (["--timeout", "nan"], "--timeout nan: must be"),
+    (["--timeout", "1e7"], "--timeout 1e+07: must be"),
+    (["--imbalance", "nan"], "--imbalance nan: must lie in [0, 1)"),
+    (["--lr", "inf"], "--lr: must be a number > 0"),
+    (["--dropout", "nan"], "--dropout: must be a number in [0, 1)"),
+    (["--weight-decay", "inf"], "--weight-decay: must be a number >= 0"),
+    (["--epochs", "1000000"], "--epochs 1000000: must be at most 999,999"),
+    (["--checkpoint-every", str(10**30), "--checkpoint", "ck"], "--checkpoint-every 1000"),
+    (["--max-frame-bytes", str(10**30)], "--max-frame-bytes 1000"),
+    (["--slow-worker", "1:1e300"], "--slow-worker '1:1e300': FACTOR must be a number from 1"),
+    (["--hidden", str(10**11)], "--hidden 100000000000 --layers 2: the weights and optimiser"),
+])
+def test_unusable_option_values_are_refused_at_the_option(capsys, graph_file, args, needle):
+    assert main(["train", str(graph_file), "--workers", "2", "--method", "random",
+                 *QUICK, *args]) == 2
+    line = _one_line_error(capsys)
+    assert needle in line, line
+
+
+def test_the_largest_seed_works_in_every_mode(capsys, graph_file, tmp_path):
+    from test_mpi_train import _launch
+
+    top = str(2**63 - 1)          # the largest --seed accepted
+    assert main(["train", str(graph_file), "--reference", "--seed", top, *QUICK]) == 0
+    for method in ("metis", "fennel", "random"):
+        assert main(["train", str(graph_file), "--workers", "2", "--method", method,
+                     "--seed", top, *QUICK, "--timeout", "1000000"]) == 0, method
+    assert main(["split", str(graph_file), "--workers", "2", "--method", "metis", "--seed",
+                 top, "--out", str(tmp_path / "s")]) == 0
+    proc, _ = _launch(2, ["-m", "shardtrain", "train", str(tmp_path / "s"), "--transport",
+                          "mpi", "--seed", top, *QUICK])
+    assert proc.returncode == 0, proc.stderr

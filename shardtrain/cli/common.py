@@ -19,7 +19,7 @@ def add_graph_arguments(parser: argparse.ArgumentParser) -> None:
                         help="vertex labels, .npy or text with one integer per line (-1 = none)")
     parser.add_argument("--input-dim", metavar="D", type=positive_int_type("--input-dim"),
                         help="feature width to plan for when the graph has no features")
-    parser.add_argument("--seed", metavar="S", type=int_type("--seed"), default=0,
+    parser.add_argument("--seed", metavar="S", type=seed_type("--seed"), default=0,
                         help="seed of the split masks the graph file does not give, the "
                              "seeded partition methods, the weights and dropout (default 0)")
 
@@ -48,6 +48,24 @@ def int_type(option: str):
             return int(text)
         except ValueError:
             raise InputError(f"{option} {text!r}: not an integer") from None
+    return convert
+
+
+# the partitioners (pymetis, fennel's and the split's numpy generators, the random
+# method's int64 hash key), the dropout stream and MPI's msgpack messages all take a seed
+# up to a signed 64-bit integer (checked in every mode by tests/test_runtime_promises.py)
+SEED_MAX = 2**63 - 1
+
+
+def seed_type(option: str):
+    """An integer seed in [0, 2**63 - 1], the range every consumer of --seed takes."""
+    as_int = int_type(option)
+
+    def convert(text: str) -> int:
+        value = as_int(text)
+        if not 0 <= value <= SEED_MAX:
+            raise InputError(f"{option} {text!r}: must be an integer from 0 to 2**63 - 1")
+        return value
     return convert
 
 

@@ -147,8 +147,14 @@ def _check_options(args) -> tuple[TrainSettings, bool]:
     """Everything that can be checked without reading the graph; returns (settings,
     whether the positional argument is a shard directory)."""
     settings = _settings(args)
-    if not args.timeout > 0:
-        raise InputError(f"--timeout {args.timeout:g}: must be > 0")
+    for option, value, top, why in LIMITS:
+        value = getattr(args, value)
+        if value is not None and value > top:
+            raise InputError(f"{option} {value}: must be at most {top:,} ({why})")
+    if not (math.isfinite(args.timeout) and 0 < args.timeout <= MAX_TIMEOUT_S):
+        raise InputError(f"--timeout {args.timeout:g}: must be a number of seconds > 0 and "
+                         f"at most {MAX_TIMEOUT_S:g} (the receive deadlines wait in whole "
+                         f"milliseconds of a C int)")
     if not 0 <= args.imbalance < 1:
         raise InputError(f"--imbalance {args.imbalance:g}: must lie in [0, 1)")
     _check_output(args.json, "--json", ".json")
@@ -194,6 +200,14 @@ def _check_options(args) -> tuple[TrainSettings, bool]:
 
 
 DEFAULT_CHECKPOINT_EVERY = 10
+MAX_TIMEOUT_S = 1e6          # poll(2) takes a C int of milliseconds: 2**31 ms is ~2.1e6 s
+MAX_SLOW_FACTOR = 1000.0     # a straggler's sleep must stay within what time.sleep takes
+# (option, attribute, largest value, why): values above these cannot be used by the code
+LIMITS = (
+    ("--epochs", "epochs", 999_999, "checkpoint files are named by six-digit epochs"),
+    ("--checkpoint-every", "checkpoint_every", 999_999, "at most the largest --epochs"),
+    ("--max-frame-bytes", "max_frame_bytes", 2**62, "frame sizes are 64-bit integers"),
+)
 
 
 def parse_slow_workers(items: list[str]) -> dict[int, float]:
@@ -207,8 +221,9 @@ def parse_slow_workers(items: list[str]) -> dict[int, float]:
             raise InputError(f"--slow-worker {text!r}: expected W:FACTOR, e.g. 1:3") from None
         if not sep or w < 0:
             raise InputError(f"--slow-worker {text!r}: expected W:FACTOR with W >= 0")
-        if not (math.isfinite(f) and f >= 1):
-            raise InputError(f"--slow-worker {text!r}: FACTOR must be a number >= 1")
+        if not (math.isfinite(f) and 1 <= f <= MAX_SLOW_FACTOR):
+            raise InputError(f"--slow-worker {text!r}: FACTOR must be a number from 1 to "
+                             f"{MAX_SLOW_FACTOR:g}")
         if w in out:
             raise InputError(f"--slow-worker {text!r}: worker {w} given twice")
         out[w] = f
@@ -250,6 +265,24 @@ def _check_fault_options(args) -> None:
                       else None)
             args.checkpoint_every = stored if isinstance(stored, int) and stored > 0 \
                 else DEFAULT_CHECKPOINT_EVERY
+
+
+def check_model_fits(dims, settings: TrainSettings) -> None:
+    """Refuse (naming --hidden/--layers) a model whose weights and Adam state (three
+    copies, every process holds them) alone exceed this machine's memory."""
+    import os
+
+    elements = sum(int(a) * int(b) + (int(b) if settings.bias else 0) for a, b in dims)
+    need = 3 * elements * settings.np_dtype.itemsize
+    try:
+        have = os.sysconf("SC_PHYS_PAGES") * os.sysconf("SC_PAGE_SIZE")
+    except (OSError, ValueError):
+        return
+    if need > have:
+        from shardtrain.tables import human_bytes
+        raise InputError(f"--hidden {settings.hidden} --layers {settings.layers}: the "
+                         f"weights and optimiser state alone need {human_bytes(need)}, this "
+                         f"machine has {human_bytes(have)}")
 
 
 def _check_slow_range(slow: dict[int, float], workers: int) -> None:
@@ -396,6 +429,7 @@ def _run(args, phase: list) -> int:
                                  f"{facts.workers} shards")
             _check_descriptors(facts.workers)
             dims = model_dims_of(facts, settings)
+            check_model_fits(dims, settings)
             init = (load_init_weights(args.init_weights, dims, settings)
                     if args.init_weights else None)
             graph_doc = rundoc.graph_of_shards(args.graph, facts)
@@ -411,6 +445,7 @@ def _run(args, phase: list) -> int:
             graph = loaded.graph
             check_trainable(graph)
             dims = model_dims(graph, settings)
+            check_model_fits(dims, settings)
             init = (load_init_weights(args.init_weights, dims, settings)
                     if args.init_weights else None)
             assignment = None

@@ -33,6 +33,7 @@ def _prepare(args):
     facts = shard_dir_facts(args.graph)
     if args.workers is not None and args.workers != facts.workers:
         raise InputError(f"--workers {args.workers}: {args.graph} holds {facts.workers} shards")
+    train.check_model_fits(model_dims_of(facts, settings), settings)
     init = (train.load_init_weights(args.init_weights, model_dims_of(facts, settings), settings)
             if args.init_weights else None)
     return settings, facts, init
