@@ -441,7 +441,7 @@ def test_a_checkpoint_folder_serves_one_run_at_a_time(capsys, graph_file, tmp_pa
     (["--epochs", "1000000"], "--epochs 1000000: must be at most 999,999"),
     (["--checkpoint-every", str(10**30), "--checkpoint", "ck"], "--checkpoint-every 1000"),
     (["--max-frame-bytes", str(10**30)], "--max-frame-bytes 1000"),
-    (["--slow-worker", "1:1e300"], "--slow-worker '1:1e300': FACTOR must be a number from 1"),
+    (["--slow-worker", "1:1e300"], "--slow-worker '1:1e300': FACTOR must be at most 1000"),
     (["--hidden", str(10**11)], "--hidden 100000000000 --layers 2: the weights and optimiser"),
 ])
 def test_unusable_option_values_are_refused_at_the_option(capsys, graph_file, args, needle):

@@ -221,9 +221,11 @@ def parse_slow_workers(items: list[str]) -> dict[int, float]:
             raise InputError(f"--slow-worker {text!r}: expected W:FACTOR, e.g. 1:3") from None
         if not sep or w < 0:
             raise InputError(f"--slow-worker {text!r}: expected W:FACTOR with W >= 0")
-        if not (math.isfinite(f) and 1 <= f <= MAX_SLOW_FACTOR):
-            raise InputError(f"--slow-worker {text!r}: FACTOR must be a number from 1 to "
-                             f"{MAX_SLOW_FACTOR:g}")
+        if not (math.isfinite(f) and f >= 1):
+            raise InputError(f"--slow-worker {text!r}: FACTOR must be a number >= 1")
+        if f > MAX_SLOW_FACTOR:
+            raise InputError(f"--slow-worker {text!r}: FACTOR must be at most "
+                             f"{MAX_SLOW_FACTOR:g} (the straggler's sleeps must stay finite)")
         if w in out:
             raise InputError(f"--slow-worker {text!r}: worker {w} given twice")
         out[w] = f
