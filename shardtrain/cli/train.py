@@ -10,8 +10,9 @@ memory, and the measured payload against the survey's prediction. --seed seeds t
 masks the graph does not give, the initial weights and the dropout masks.
 
 Faults: a worker that dies or fails ends the run (exit 3) with one line naming it, its
-exit status or signal and its last phase; Ctrl-C or SIGTERM stops every worker (exit 4)
-and names the `--resume DIR` that continues from the latest checkpoint
+exit status or signal and its last phase; Ctrl-C, SIGTERM or SIGHUP, in any phase, stops
+every worker and removes the temporary shards (exit 4), and during training names the
+`--resume DIR` that continues from the latest checkpoint
 (`--checkpoint DIR --checkpoint-every N`). In float64 a resumed run ends with the very
 same weights, bit for bit, as a run that was never interrupted. `--reference` runs take
 --checkpoint/--resume too (a checkpoint resumes only a run of the mode that wrote it).

@@ -72,6 +72,8 @@ def run_mpi(args) -> int:
             except InputError as exc:
                 mpirun.stop_job(comm, EXIT_BAD_INPUT, STOP_TIMEOUT_S)
                 raise mpirun.JobStopped(str(exc), EXIT_BAD_INPUT, report=True) from None
+            if not args.quiet:
+                print(train._shard_dir_line(args.graph, facts), flush=True)
             progress = train._Progress(settings.epochs, args.quiet)
         result = mpirun.train_mpi(args.graph, settings, comm=comm, timeout_s=args.timeout,
                                   init_params=init, on_epoch=progress,
