@@ -405,8 +405,9 @@ def process_main(rank: int, size: int, shard_dir: str, settings_dict: dict, num_
     Loads only its own shard, trains, and talks to the coordinator over `ctrl` with msgpack
     messages: {"type": "epoch", ...} per epoch, then {"type": "done", ...}, or
     {"type": "error", "worker", "phase", "message"} on failure (exit status 1).
-    SIGINT is ignored: on a terminal Ctrl-C reaches every process of the group, and the
-    coordinator decides (it stops the workers with SIGTERM).
+    SIGINT and SIGHUP are ignored: on a terminal Ctrl-C (or the terminal's closing) reaches
+    every process of the group, and the coordinator decides (it stops the workers with
+    SIGTERM).
     options: timeout_s, max_frame_bytes, link (LinkModel or None), init_params (dict or
     None), load_shard (a module-level function (dir, worker) -> Shard, or None for
     `shards.load_shard`; tests and fault injection pass their own), phase (a shared
@@ -415,6 +416,7 @@ def process_main(rank: int, size: int, shard_dir: str, settings_dict: dict, num_
     "params", "adam"} or None), slow (compute factor), fault (see `shardtrain.faults`).
     """
     signal.signal(signal.SIGINT, signal.SIG_IGN)
+    signal.signal(signal.SIGHUP, signal.SIG_IGN)     # a closed terminal: the coordinator decides
     pin_blas_threads()
     _install_log_queue(log_queue, log_level)
     from shardtrain.faults import Fault

@@ -425,6 +425,16 @@ def test_a_checkpoint_folder_serves_one_run_at_a_time(capsys, graph_file, tmp_pa
                  "--resume", str(folder)]) == 0
     assert checkpoint.read_checkpoint(folder).epoch == 3
     assert sorted(p.name for p in folder.iterdir()) == ["checkpoint.json", "state-000003.npz"]
+    # resuming into another folder: that one is locked for the run as well
+    other = tmp_path / "ck2"
+    held = checkpoint.lock_folder(other)
+    try:
+        assert main(["train", str(graph_file), "--reference", "--epochs", "4", "--quiet",
+                     "--resume", str(folder), "--checkpoint", str(other)]) == 2
+        assert f"--checkpoint {other}: another shardtrain run" in _one_line_error(capsys)
+    finally:
+        held.release()
+    assert not other.exists()        # the refused run created nothing
 
 
 # ---------------------------------------------------------------- 10: every accepted value works

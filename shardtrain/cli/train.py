@@ -254,10 +254,12 @@ def _check_fault_options(args) -> None:
     if args.resume and args.init_weights:
         raise InputError("--init-weights: not allowed with --resume (the checkpoint holds "
                          "the weights)")
-    if args.resume or args.checkpoint:
-        # held for the whole run (released by `run`): one run per checkpoint folder
-        args.lock = checkpoint.lock_folder(args.resume or args.checkpoint,
-                                           "--resume" if args.resume else "--checkpoint")
+    # held for the whole run (released by `run`): one run per checkpoint folder
+    locks = vars(args).setdefault("locks", [])
+    for option, folder in (("--resume", args.resume), ("--checkpoint", args.checkpoint)):
+        if folder and not any(Path(folder).resolve() == held.folder.resolve()
+                              for held in locks):
+            locks.append(checkpoint.lock_folder(folder, option))
     args.resumed = checkpoint.read_checkpoint(args.resume) if args.resume else None
     if args.resumed is not None and args.checkpoint is None:
         args.checkpoint = args.resume
@@ -400,7 +402,7 @@ def run(args) -> int:
         from shardtrain.cli.train_mpi import run_mpi
         return run_mpi(args)
     phase = ["checking the options"]
-    args.lock = None
+    args.locks = []
     with _signals_as_interrupt():
         try:
             return _run(args, phase)
@@ -409,8 +411,8 @@ def run(args) -> int:
                               f"{phase[0]}; no worker is left and no temporary file (start "
                               f"the same command again)") from None
         finally:
-            if args.lock is not None:
-                args.lock.release()
+            for held in args.locks:
+                held.release()
 
 
 def _run(args, phase: list) -> int:
