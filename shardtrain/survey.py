@@ -124,9 +124,11 @@ def predict_run_payload(traffic: dict, epochs: int, evals: int, stop_votes: int 
     """Payload of a whole run: `epochs` training steps, `evals` evaluation forwards and
     `stop_votes` early-stopping votes (one per epoch run with --early-stop, else 0).
     This is the number the trainer compares with what it measured."""
-    k = len(traffic["allreduce_bytes_per_worker"])
-    return int(epochs * epoch_payload_bytes(traffic) + evals * traffic["eval_forward_bytes"]
-               + stop_votes * int(stop_vote_bytes(k).sum()))
+    total = epochs * epoch_payload_bytes(traffic) + evals * traffic["eval_forward_bytes"]
+    if stop_votes:
+        total += stop_votes * int(stop_vote_bytes(len(traffic["allreduce_bytes_per_worker"]))
+                                  .sum())
+    return int(total)
 
 
 def predict_payload_breakdown(shards, hops: list[LayerHop], itemsize: int, *,
