@@ -3,7 +3,7 @@
 Rule (the GCN paper's, Kipf & Welling 2017, from memory: "stop when the validation loss
 has not decreased for 10 consecutive epochs"): after each epoch's evaluation forward, the
 epoch *improves* when its validation loss is STRICTLY lower than the best so far (the
-first epoch always does; NaN never does). The run stops after epoch e when
+first epoch always does; a NaN loss never beats a number, any number beats a NaN best). The run stops after epoch e when
 e - best_epoch >= patience, i.e. after `patience` epochs in a row without an improvement.
 The run's final weights (and predictions) are those of the best epoch, whether or not the
 rule triggered before the last epoch.
@@ -42,7 +42,8 @@ class EarlyStop:
 
     def update(self, epoch: int, val_loss: float, params: model.Params) -> bool:
         """Take epoch `epoch`'s loss; True when it improved (the weights are then copied)."""
-        improved = self.best_epoch is None or val_loss < self.best_loss
+        improved = (self.best_epoch is None or val_loss < self.best_loss
+                    or (math.isnan(self.best_loss) and not math.isnan(val_loss)))
         if improved:
             self.best_epoch, self.best_loss = int(epoch), float(val_loss)
             self.best_params = [(w.copy(), None if b is None else b.copy())

@@ -325,3 +325,21 @@ def test_mpi_run_stops_at_the_reference_epoch(digits_shards, early_reference, tm
         assert _close(w["w0"], early_reference.params[0][0])
     t = doc["traffic"]
     assert t["measured_payload_bytes"] == t["predicted_payload_bytes"] and t["breakdown_matches"]
+
+
+def test_the_stopping_rule_on_a_worked_sequence():
+    # a worked example of the documented rule (patience without a tolerance: common
+    # practice): equal is not an improvement, NaN never is, the first epoch always is
+    from shardtrain.stopping import EarlyStop
+
+    params = [(np.zeros((1, 1)), None)]
+    es = EarlyStop(2)
+    seen = []
+    for epoch, loss in enumerate([float("nan"), 3.0, 2.0, 2.0, float("nan"), 1.5], start=1):
+        improved = es.update(epoch, loss, params)
+        seen.append((improved, es.should_stop(epoch)))
+        if seen[-1][1]:
+            break
+    assert seen == [(True, False), (True, False), (True, False), (False, False),
+                    (False, True)]
+    assert es.summary()["best_epoch"] == 3 and es.summary()["stopped_at"] == 5
