@@ -3,8 +3,9 @@ resume that contradicts them.
 
 A checkpoint folder holds two kinds of file:
 - `state-EEEEEE.npz`: the weights (`w0`, `b0`, ...) and the Adam state (`adam_t`,
-  `adam_m_<name>`, `adam_v_<name>`) after the step of epoch E; plain arrays, read back
-  with allow_pickle=False;
+  `adam_m_<name>`, `adam_v_<name>`) after the step of epoch E, and with early stopping
+  its state (`early_best_epoch`, `early_best_loss`, `early_best_<name>`: see
+  `shardtrain.stopping`); plain arrays, read back with allow_pickle=False;
 - `checkpoint.json`: the index: the epoch, the state file's name and SHA-256, and the
   run's identity (settings, model dims, worker count, graph and shard-directory
   fingerprints) that a resume must match.
@@ -28,7 +29,7 @@ from __future__ import annotations
 import hashlib
 import json
 import re
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable
 
@@ -41,9 +42,10 @@ FORMAT = "shardtrain-checkpoint"
 VERSION = 1
 INDEX = "checkpoint.json"
 _STATE_RE = re.compile(r"state-\d{6}\.npz")
-# settings a resume may change: only how long the run goes on
-_FREE_SETTINGS = ("epochs",)
-_OPTION_OF = {"layers": "--layers", "hidden": "--hidden", "dropout": "--dropout",
+# settings a resume may change: how long the run goes on, how many BLAS threads it uses
+_FREE_SETTINGS = ("epochs", "threads")
+_ABSENT_MEANS = {"early_stop": 0}     # settings older checkpoints do not record
+_OPTION_OF = {"early_stop": "--early-stop", "layers": "--layers", "hidden": "--hidden", "dropout": "--dropout",
               "lr": "--lr", "weight_decay": "--weight-decay", "seed": "--seed",
               "dtype": "--dtype", "bias": "--bias"}
 
@@ -95,7 +97,8 @@ def mode_of(doc: dict) -> str:
 
 
 def write_checkpoint(folder, epoch: int, params: dict, adam_state: dict, identity: dict, *,
-                     every: int, before_commit: Callable[[], None] | None = None) -> Path:
+                     every: int, before_commit: Callable[[], None] | None = None,
+                     early_state: dict | None = None) -> Path:
     """Write the checkpoint of `epoch` into `folder` (which must exist); returns the index.
 
     `before_commit` runs after the state file is on disk and before the index is renamed
@@ -105,7 +108,7 @@ def write_checkpoint(folder, epoch: int, params: dict, adam_state: dict, identit
 
     folder = Path(folder)
     state_name = state_file_name(epoch)
-    save_npz_atomic(folder / state_name, **params, **adam_state)
+    save_npz_atomic(folder / state_name, **params, **adam_state, **(early_state or {}))
     doc = {"format": FORMAT, "version": VERSION, "epoch": int(epoch),
            "state_file": state_name, "state_sha256": file_sha256(folder / state_name),
            "checkpoint_every": int(every),
@@ -137,14 +140,16 @@ def epoch_writer(plan: dict, last_epoch: int, *,
     Path(plan["folder"]).mkdir(exist_ok=True)
     stage = on_stage or (lambda epoch, what: None)
 
-    def write(epoch: int, params, adam) -> dict | None:
-        if epoch % plan["every"] and epoch != last_epoch:
+    def write(epoch: int, params, adam, *, early=None, last: bool = False) -> dict | None:
+        # `early` (stopping.EarlyStop) is saved with the state; `last`: the run stops here
+        if epoch % plan["every"] and epoch != last_epoch and not last:
             return None
         stage(epoch, "write")
         write_checkpoint(plan["folder"], epoch, model.params_to_arrays(params), adam.state(),
                          plan["identity"], every=plan["every"],
                          before_commit=(None if before_commit is None
-                                        else lambda: before_commit(epoch)))
+                                        else lambda: before_commit(epoch)),
+                         early_state=None if early is None else early.state())
         stage(epoch, "done")
         return {"checkpoint": epoch}
     return write
@@ -165,6 +170,7 @@ class Checkpoint:
     doc: dict                    # the index
     params: dict                 # w0, b0, ... -> array
     adam: dict                   # adam_t, adam_m_*, adam_v_* -> array
+    early: dict = field(default_factory=dict)   # early_* -> array (stopping.EarlyStop)
 
 
 def has_checkpoint(folder) -> bool:
@@ -201,11 +207,14 @@ def read_checkpoint(folder, option: str = "--resume") -> Checkpoint:
     except (OSError, ValueError, EOFError) as exc:
         raise InputError(f"{state}: not a readable .npz ({' '.join(str(exc).split())})"
                          ) from None
-    params = {k: v for k, v in arrays.items() if not k.startswith("adam_")}
+    from shardtrain.stopping import PREFIX as EARLY
+
+    params = {k: v for k, v in arrays.items() if not k.startswith(("adam_", EARLY))}
     adam = {k: v for k, v in arrays.items() if k.startswith("adam_")}
+    early = {k: v for k, v in arrays.items() if k.startswith(EARLY)}
     if int(np.asarray(adam.get("adam_t", -1))) != epoch:
         raise InputError(f"{state}: Adam step count differs from the epoch {epoch} in {index}")
-    return Checkpoint(folder, epoch, doc, params, adam)
+    return Checkpoint(folder, epoch, doc, params, adam, early)
 
 
 def check_resumable(ckpt: Checkpoint, identity: dict, *, epochs: int,
@@ -219,7 +228,7 @@ def check_resumable(ckpt: Checkpoint, identity: dict, *, epochs: int,
                          f"{mine_mode} run (resume it in the mode that wrote it"
                          f"{', with --reference' if their_mode == 'reference' else ''})")
     for key, mine in identity["settings"].items():
-        theirs = doc["settings"].get(key)
+        theirs = doc["settings"].get(key, _ABSENT_MEANS.get(key))
         if theirs != mine:
             raise InputError(f"{_OPTION_OF.get(key, key)}: this run asks for {mine!r}, the "
                              f"checkpoint in {ckpt.folder} was written with {theirs!r} "

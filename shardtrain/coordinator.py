@@ -58,6 +58,7 @@ class PartitionedRunResult:
     workers: list[dict] = field(default_factory=list)
     profile: dict = field(default_factory=dict)
     labels: np.ndarray | None = None     # the shards' labels by global id (-1: none)
+    early_stop: dict | None = None       # stopping.EarlyStop.summary(), or None when off
 
 
 # ---------------------------------------------------------------- worker logs
@@ -234,13 +235,24 @@ class _EpochBook:
 
 
 def epoch_record(epoch: int, reports: list[dict]) -> dict:
-    """Sum the workers' parts (in rank order) into the reference's epoch record."""
-    loss = sum(r["loss_part"] for r in reports) + reports[0]["penalty"]
+    """Sum the workers' parts (in rank order) into the reference's epoch record.
+
+    val_loss: the global mean the workers decided on with early stopping (their
+    all-reduced value, so the record and the stop decision agree to the bit), else the
+    sum of the workers' cross-entropy sums over the global validation count."""
+    train_loss = sum(r["loss_part"] for r in reports)
+    loss = train_loss + reports[0]["penalty"]
     correct = np.sum([r["correct"] for r in reports], axis=0)
     totals = np.sum([r["totals"] for r in reports], axis=0)
     acc = [model.accuracy(int(c), int(t)) for c, t in zip(correct, totals)]
-    return {"epoch": epoch, "loss": loss, "train_acc": acc[0], "val_acc": acc[1],
-            "test_acc": acc[2], "epoch_s": max(r["step_s"] for r in reports)}
+    if "val_loss" in reports[0]:
+        val_loss = reports[0]["val_loss"]
+    else:
+        val_loss = model.mean_loss(sum(r.get("val_loss_sum", 0.0) for r in reports),
+                                   int(totals[1]))
+    return {"epoch": epoch, "loss": loss, "train_loss": train_loss, "val_loss": val_loss,
+            "train_acc": acc[0], "val_acc": acc[1], "test_acc": acc[2],
+            "epoch_s": max(r["step_s"] for r in reports)}
 
 
 # ---------------------------------------------------------------- the run
@@ -290,7 +302,7 @@ def train_partitioned(shard_dir, settings: TrainSettings, *, timeout_s: float = 
     first = 1
     if resume is not None:
         options["resume"] = {"epoch": resume.epoch, "params": resume.params,
-                             "adam": resume.adam}
+                             "adam": resume.adam, "early": getattr(resume, "early", None)}
         first = resume.epoch + 1
     if checkpoint is not None:
         os.makedirs(checkpoint["folder"], exist_ok=True)
@@ -414,9 +426,20 @@ def _watch(procs, ctrls, k, epochs, on_epoch, stall_s, book=None, phases=None):
             error_deadline = time.monotonic() + ERROR_GRACE_S
     if errors:
         raise RunError(_root_cause(errors))
-    if len(records) != epochs:
-        raise RunError(f"workers finished after {len(records)} of {epochs} epochs")
+    check_epochs_run(records, summaries, epochs)
     return records, summaries
+
+
+def check_epochs_run(records: list[dict], summaries: list[dict], epochs: int) -> None:
+    """Every worker ran the same epochs, all reported: `epochs`, or fewer when early
+    stopping ended the run (the summaries say where)."""
+    runs = sorted({int(s.get("epochs_run", epochs)) for s in summaries})
+    if len(runs) != 1:
+        raise RunError(f"workers ran different numbers of epochs ({runs}): the early-stop "
+                       f"decision was not unanimous")
+    stopped = (summaries[0].get("early_stop") or {}).get("stopped_at") is not None
+    if len(records) != runs[0] or (runs[0] != epochs and not stopped):
+        raise RunError(f"workers finished after {len(records)} of {epochs} epochs")
 
 
 CONSEQUENCE = "closed its pipe"     # the transport's words for a peer that went away
@@ -490,6 +513,9 @@ def assemble_result(records, summaries, facts: ShardDirFacts, settings: TrainSet
     from shardtrain.profile import merge
 
     k = facts.workers
+    epochs_run = len(records) if epochs_run is None else int(epochs_run)
+    early_stop = summaries[0].get("early_stop")
+    evals = epochs_run + max(int(s.get("extra_evals", 0)) for s in summaries)
     predictions = np.full(facts.num_vertices, -1, dtype=np.int64)
     labels = np.full(facts.num_vertices, -1, dtype=np.int64)
     for s in summaries:
@@ -501,7 +527,8 @@ def assemble_result(records, summaries, facts: ShardDirFacts, settings: TrainSet
     merged = merge([s["profile"] for s in summaries])
     traffic = traffic_account(merged, [s["profile"] for s in summaries],
                               [_Structure(s["worker"], s["send_ptr"], s["halo_ptr"])
-                               for s in summaries], dims, settings, epochs=epochs_run)
+                               for s in summaries], dims, settings, epochs=epochs_run,
+                              evals=evals, stop_votes=epochs_run if early_stop else 0)
     rows = []
     for row, s in zip(merged["per_worker"], summaries):
         rows.append({"worker": row["rank"], "compute_s": row["compute_s"],
@@ -511,7 +538,8 @@ def assemble_result(records, summaries, facts: ShardDirFacts, settings: TrainSet
                      "process_cpu_s": s["cpu_s"], "peak_rss_bytes": s["peak_rss_bytes"]})
     assert len(rows) == k
     profile = {key: v for key, v in merged.items() if key != "per_worker"}
-    return PartitionedRunResult(records, params, predictions, traffic, rows, profile, labels)
+    return PartitionedRunResult(records, params, predictions, traffic, rows, profile, labels,
+                                early_stop)
 
 
 def model_dims_of(facts: ShardDirFacts, settings: TrainSettings) -> list[tuple[int, int]]:
@@ -521,11 +549,14 @@ def model_dims_of(facts: ShardDirFacts, settings: TrainSettings) -> list[tuple[i
 
 
 def traffic_account(merged: dict, profiles: list[dict], structures, dims,
-                    settings: TrainSettings, epochs: int | None = None) -> dict:
+                    settings: TrainSettings, epochs: int | None = None,
+                    evals: int | None = None, stop_votes: int = 0) -> dict:
     """Measured payload and framing (from the merged profile) against the survey's
     prediction, in total and per (src, dst, kind, layer, direction). The all-reduce is
     compared per (src, dst): its steps' direction names are the transport's own.
-    `epochs`: the epochs this run did (fewer than settings.epochs after a resume)."""
+    `epochs`: the epochs this run did (fewer than settings.epochs after a resume or an
+    early stop); `evals`: its evaluation forwards (default `epochs`); `stop_votes`: its
+    early-stopping votes (see `survey.stop_vote_bytes`)."""
     from shardtrain import survey
     from shardtrain.schedule import layer_hops
 
@@ -534,10 +565,11 @@ def traffic_account(merged: dict, profiles: list[dict], structures, dims,
     elements = survey.parameter_elements(hops, bias=settings.bias)
     predicted = survey.predict_traffic(structures, hops, itemsize, param_elements=elements)
     epochs = settings.epochs if epochs is None else int(epochs)
-    predicted_total = survey.predict_run_payload(predicted, epochs, epochs)
+    evals = epochs if evals is None else int(evals)
+    predicted_total = survey.predict_run_payload(predicted, epochs, evals, stop_votes)
     breakdown_pred = survey.predict_payload_breakdown(structures, hops, itemsize,
                                                       param_elements=elements, epochs=epochs,
-                                                      evals=epochs)
+                                                      evals=evals, stop_votes=stop_votes)
 
     def key_of(src, dst, kind, layer, direction):
         if kind == survey.KIND_ALLREDUCE:
@@ -565,7 +597,9 @@ def traffic_account(merged: dict, profiles: list[dict], structures, dims,
         "halo_payload_bytes": int(by_kind.get(survey.KIND_HALO, {}).get("payload_bytes", 0)),
         "allreduce_payload_bytes": int(by_kind.get(survey.KIND_ALLREDUCE, {})
                                        .get("payload_bytes", 0)),
-        "predicted_allreduce_payload_bytes": int(epochs * predicted["allreduce_bytes"]),
+        "predicted_allreduce_payload_bytes": int(
+            epochs * predicted["allreduce_bytes"]
+            + stop_votes * int(survey.stop_vote_bytes(len(structures)).sum())),
         "predicted_per_epoch": predicted,
         "sender_receiver_consistent": bool(merged["consistent"]),
         "pair_payload_bytes": merged["pair_payload_bytes"],

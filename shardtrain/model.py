@@ -317,6 +317,30 @@ def loss_and_grad(logits: np.ndarray, labels: np.ndarray, train_mask: np.ndarray
     return loss, dlogits
 
 
+def cross_entropy_sum(logits: np.ndarray, labels: np.ndarray, mask) -> tuple[float, int]:
+    """(sum of the softmax cross-entropy over the masked rows, number of masked rows).
+
+    The validation loss of an epoch is the sum over all processes divided by the summed
+    count (the GLOBAL number of validation vertices): the same definition in the reference
+    and the workers, with `loss_and_grad`'s log-sum-exp. (0.0, 0) for a None or empty mask.
+    """
+    if mask is None:
+        return 0.0, 0
+    rows = np.flatnonzero(mask)
+    if rows.size == 0:
+        return 0.0, 0
+    z = logits[rows]
+    z = z - z.max(axis=1, keepdims=True)
+    lse = np.log(np.exp(z).sum(axis=1))
+    y = np.asarray(labels)[rows]
+    return float((lse - z[np.arange(rows.size), y]).sum()), int(rows.size)
+
+
+def mean_loss(total: float, count: int) -> float | None:
+    """total / count, or None (JSON null) when there is nothing to average."""
+    return None if count == 0 else float(total) / count
+
+
 def weight_decay_penalty(params: Params, wd: float) -> float:
     """wd * 0.5 * ||W0||^2: first layer's weights only (Kipf & Welling 2017)."""
     w0 = params[0][0]

@@ -293,7 +293,7 @@ def train_mpi(shard_dir, settings: TrainSettings | None, *, comm=None,
     settings, facts, init_params = _start(comm, shard_dir, settings, init_params, timeout_s)
     if load_shard is None:
         _check_shards(comm, shard_dir, timeout_s)
-    worker.pin_blas_threads()
+    worker.pin_blas_threads(settings.threads)
     if load_shard is None:
         from shardtrain.shards import load_shard
     shard = load_shard(shard_dir, rank)
@@ -321,9 +321,10 @@ def train_mpi(shard_dir, settings: TrainSettings | None, *, comm=None,
         outbox.send(ROOT, TAG_SUMMARY, worker.encode_summary(summary))
         outbox.flush(timeout_s, "rank 0 to take the reports and the summary")
         return None
-    book.wait_for(settings.epochs, timeout_s)
+    book.wait_for(int(summary["epochs_run"]), timeout_s)   # fewer after an early stop
     summaries = [summary] + [None] * (size - 1)
     for q in range(1, size):
         msg = _recv_message(comm, q, TAG_SUMMARY, timeout_s, f"the summary of rank {q}")
         summaries[q] = worker.decode_summary(msg)
+    coordinator.check_epochs_run(book.records, summaries, settings.epochs)
     return coordinator.assemble_result(book.records, summaries, facts, settings)

@@ -285,9 +285,18 @@ def run_plots(run: dict, out_dir) -> list[str]:
     if epochs:
         e = [r["epoch"] for r in epochs]
         fig, (ax1, ax2) = plt.subplots(1, 2, figsize=(10, 3.8))
-        ax1.plot(e, [r["loss"] for r in epochs], color="#4c72b0")
+        ax1.plot(e, [r["loss"] for r in epochs], color="#4c72b0",
+                 label="training (cross-entropy + weight decay)")
+        val = [r.get("val_loss") for r in epochs]
+        if any(v is not None for v in val):     # runs written before val_loss have none
+            ax1.plot(e, [np.nan if v is None else v for v in val], color="#dd8452",
+                     label="validation (cross-entropy)")
+        best = (run.get("early_stop") or {}).get("best_epoch")
+        if best is not None:
+            ax1.axvline(best, color="grey", linestyle=":", label=f"best epoch {best}")
         ax1.set_xlabel("epoch")
-        ax1.set_ylabel("training loss (cross-entropy + weight decay)")
+        ax1.set_ylabel("loss")
+        ax1.legend(fontsize=8)
         ax1.set_title("loss", fontsize=10)
         for key, label in (("train_acc", "training"), ("val_acc", "validation"),
                            ("test_acc", "test")):

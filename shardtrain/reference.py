@@ -18,7 +18,7 @@ from typing import Callable
 import numpy as np
 from scipy.sparse.csgraph import reverse_cuthill_mckee
 
-from shardtrain import model
+from shardtrain import model, stopping
 from shardtrain.errors import InputError
 from shardtrain.graph import Graph, normalized_adjacency
 from shardtrain.schedule import layer_dims, layer_hops
@@ -27,9 +27,11 @@ from shardtrain.settings import TrainSettings
 
 @dataclass
 class RunResult:
-    epochs: list[dict]          # {"epoch", "loss", "train_acc", "val_acc", "test_acc", "epoch_s"}
-    params: model.Params        # final weights
-    predictions: np.ndarray     # (n,) int64, argmax of the final weights' evaluation forward
+    epochs: list[dict]          # {"epoch", "loss", "train_loss", "val_loss", "train_acc",
+                                #  "val_acc", "test_acc", "epoch_s"}
+    params: model.Params        # final weights (the best epoch's with early stopping)
+    predictions: np.ndarray     # (n,) int64, argmax of those weights' evaluation forward
+    early_stop: dict | None = None   # stopping.EarlyStop.summary(), or None when off
 
 
 def check_trainable(graph: Graph) -> None:
@@ -61,23 +63,49 @@ def train_reference(graph: Graph, settings: TrainSettings, *, init_params=None,
                     init_adam: dict | None = None, first_epoch: int = 1,
                     on_epoch: Callable[[dict], None] | None = None,
                     on_epoch_end: Callable | None = None,
-                    reorder: bool = True) -> RunResult:
+                    reorder: bool = True, init_early: dict | None = None) -> RunResult:
     """Train epochs first_epoch..settings.epochs; record the loss and accuracies of each.
 
     loss = the objective of that step's forward pass (cross-entropy + weight-decay penalty
-    at the weights that forward used); accuracies come from an evaluation forward (no
-    dropout) after the step. `init_params` (Params or {name: array} of the right shapes)
+    at the weights that forward used); train_loss = its cross-entropy alone; val_loss and
+    the accuracies come from an evaluation forward (no dropout) after the step.
+    BLAS runs on `settings.threads` threads (threadpoolctl), as each worker does.
+    With `settings.early_stop` = N > 0 the run stops after N epochs without a strictly
+    lower validation loss and returns the best epoch's weights and predictions
+    (`shardtrain.stopping`); `init_early` (the `stopping` arrays of a checkpoint) resumes
+    that state. `init_params` (Params or {name: array} of the right shapes)
     replaces Glorot. To resume after epoch E, give the weights and `init_adam`
     (`model.Adam.state()` arrays, e.g. a checkpoint's) and `first_epoch=E + 1`: the epoch
     keys the dropout stream, so the run goes on exactly as if never stopped.
     `on_epoch_end(epoch, params, adam)` runs after each epoch's evaluation and before
-    `on_epoch(record)` (a place to write checkpoints, as worker 0 does).
+    `on_epoch(record)` (a place to write checkpoints, as worker 0 does); with early
+    stopping it is called as `on_epoch_end(epoch, params, adam, early=EarlyStop,
+    last=bool)` (`checkpoint.epoch_writer` takes both).
     `reorder=False` keeps rows in id order (same maths, slower products).
     """
+    from threadpoolctl import threadpool_limits
+
     settings.validate()
     check_trainable(graph)
     if not 1 <= first_epoch <= settings.epochs:
         raise ValueError(f"first_epoch {first_epoch} is not in 1..{settings.epochs}")
+    with threadpool_limits(limits=settings.threads):
+        return _train(graph, settings, init_params, init_adam, first_epoch, on_epoch,
+                      on_epoch_end, reorder, init_early)
+
+
+def check_early_stop(graph: Graph, settings: TrainSettings) -> None:
+    """Early stopping needs validation vertices with labels."""
+    if not settings.early_stop:
+        return
+    if graph.val_mask is None or not np.any(graph.val_mask):
+        raise InputError("--early-stop: the graph has no validation vertices (the "
+                         "validation split is empty)")
+
+
+def _train(graph, settings, init_params, init_adam, first_epoch, on_epoch, on_epoch_end,
+           reorder, init_early) -> RunResult:
+    check_early_stop(graph, settings)
     dtype = settings.np_dtype
     n = graph.num_vertices
     a_hat = normalized_adjacency(graph)
@@ -112,6 +140,11 @@ def train_reference(graph: Graph, settings: TrainSettings, *, init_params=None,
     def propagate_t(layer, g):
         return a_hat @ g            # Â is symmetric (bit for bit: d_i^-1/2 d_j^-1/2)
 
+    early = None
+    if settings.early_stop:
+        early = stopping.EarlyStop.from_state(settings.early_stop, init_early or {}, dims,
+                                              settings.bias, dtype, source="early-stop state")
+    best_logits = None
     records = []
     logits = None
     for epoch in range(first_epoch, settings.epochs + 1):
@@ -125,13 +158,31 @@ def train_reference(graph: Graph, settings: TrainSettings, *, init_params=None,
         logits, _ = model.forward(params, x, hops, propagate, model.no_dropout)
         acc = [model.accuracy(c, t) for c, t in
                zip(model.correct_counts(logits, labels, masks), totals)]
-        record = {"epoch": epoch, "loss": loss_part + penalty, "train_acc": acc[0],
-                  "val_acc": acc[1], "test_acc": acc[2], "epoch_s": epoch_s}
+        val_loss = model.mean_loss(*model.cross_entropy_sum(logits, labels, masks[1]))
+        record = {"epoch": epoch, "loss": loss_part + penalty, "train_loss": loss_part,
+                  "val_loss": val_loss, "train_acc": acc[0], "val_acc": acc[1],
+                  "test_acc": acc[2], "epoch_s": epoch_s}
         records.append(record)
+        stop = False
+        if early is not None:
+            if early.update(epoch, val_loss, params):
+                best_logits = logits
+            stop = early.should_stop(epoch)
         if on_epoch_end is not None:
-            on_epoch_end(epoch, params, adam)
+            if early is None:
+                on_epoch_end(epoch, params, adam)
+            else:
+                on_epoch_end(epoch, params, adam, early=early, last=stop)
         if on_epoch is not None:
             on_epoch(record)
+        if stop:
+            break
+    if early is not None:
+        params = early.best_params
+        if best_logits is None:      # best epoch before a resume: evaluate its weights again
+            best_logits, _ = model.forward(params, x, hops, propagate, model.no_dropout)
+        logits = best_logits
     predictions = np.empty(n, dtype=np.int64)
     predictions[order] = np.argmax(logits, axis=1)
-    return RunResult(records, params, predictions)
+    return RunResult(records, params, predictions,
+                     None if early is None else early.summary())

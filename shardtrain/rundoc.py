@@ -5,6 +5,8 @@ for every JSON we write: `graph.vertices` and `graph.edges`, as the survey has t
 
     {"settings": {...}, "graph": {"source" | "shard_dir", "vertices", ["edges"], ...},
      "mode": "reference" | "partitioned", "epochs": [...],
+     "early_stop": null | {"patience", "best_epoch", "best_val_loss", "stopped_at",
+                           "weights": "best epoch"},
      partitioned only: "traffic", "workers", "profile";
      then any extras the producer adds (transport, resumed_from, checkpoint, plan, check ...)}
 """
@@ -31,7 +33,7 @@ def run_document(settings, graph_doc: dict, result, *, mode: str, **extra) -> di
     if mode not in MODES:
         raise ValueError(f"mode {mode!r}: expected one of {', '.join(MODES)}")
     doc = {"settings": settings.to_dict(), "graph": dict(graph_doc), "mode": mode,
-           "epochs": result.epochs}
+           "epochs": result.epochs, "early_stop": getattr(result, "early_stop", None)}
     if mode == "partitioned":
         doc.update(traffic=result.traffic, workers=result.workers, profile=result.profile)
     clash = sorted(set(extra) & set(doc))

@@ -2,9 +2,14 @@
 
 Defaults are the GCN paper's setup (Kipf & Welling, ICLR 2017): 2 layers, 16 hidden units,
 dropout 0.5, learning rate 0.01, weight decay 5e-4 on the first layer, 200 epochs, no bias.
+Two settings are the tool's own: `early_stop` (patience in epochs, 0 = off; the paper stops
+after 10 epochs without a better validation loss) and `threads` (BLAS threads per process,
+default 1: the workers are the parallelism, and the reference gets the same CPU per process
+so that the two modes compare like for like).
 """
 from __future__ import annotations
 
+import os
 from dataclasses import asdict, dataclass, fields
 
 import numpy as np
@@ -25,6 +30,8 @@ class TrainSettings:
     seed: int = 0
     dtype: str = "float32"
     bias: bool = False
+    early_stop: int = 0
+    threads: int = 1
 
     def validate(self) -> "TrainSettings":
         """Raise InputError naming the command-line option of the first bad value."""
@@ -46,6 +53,10 @@ class TrainSettings:
         need(_is_int(self.seed) and self.seed >= 0, "--seed", "an integer >= 0", self.seed)
         need(self.dtype in DTYPES, "--dtype", "one of " + ", ".join(DTYPES), self.dtype)
         need(isinstance(self.bias, (bool, np.bool_)), "--bias", "true or false", self.bias)
+        need(_is_int(self.early_stop) and self.early_stop >= 0, "--early-stop",
+             "an integer >= 0 (0: off)", self.early_stop)
+        need(_is_int(self.threads) and 1 <= self.threads <= max_threads(), "--threads",
+             f"an integer in 1..{max_threads()} (4 x this machine's cores)", self.threads)
         return self
 
     @property
@@ -63,6 +74,11 @@ class TrainSettings:
         if unknown:
             raise InputError(f"{source}: unknown training setting '{unknown[0]}'")
         return cls(**d).validate()
+
+
+def max_threads() -> int:
+    """The most BLAS threads per process we accept: 4 x the cores (more only oversubscribes)."""
+    return 4 * (os.cpu_count() or 1)
 
 
 def _is_int(v) -> bool:

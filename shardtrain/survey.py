@@ -111,17 +111,33 @@ def epoch_payload_bytes(traffic: dict) -> int:
     return int(traffic["forward_bytes"] + traffic["backward_bytes"] + traffic["allreduce_bytes"])
 
 
-def predict_run_payload(traffic: dict, epochs: int, evals: int) -> int:
-    """Payload of a whole run: `epochs` training steps and `evals` evaluation forwards.
+def stop_vote_bytes(k: int) -> np.ndarray:
+    """Payload each rank sends in one early-stopping vote (`shardtrain.stopping`): a ring
+    all-reduce of VOTE_ELEMENTS float64 values, after every evaluation of an early-stopping
+    run (none without --early-stop)."""
+    from shardtrain.stopping import VOTE_ELEMENTS, VOTE_ITEMSIZE
+
+    return _ring_send_elements(VOTE_ELEMENTS, k) * VOTE_ITEMSIZE
+
+
+def predict_run_payload(traffic: dict, epochs: int, evals: int, stop_votes: int = 0) -> int:
+    """Payload of a whole run: `epochs` training steps, `evals` evaluation forwards and
+    `stop_votes` early-stopping votes (one per epoch run with --early-stop, else 0).
     This is the number the trainer compares with what it measured."""
-    return int(epochs * epoch_payload_bytes(traffic) + evals * traffic["eval_forward_bytes"])
+    total = epochs * epoch_payload_bytes(traffic) + evals * traffic["eval_forward_bytes"]
+    if stop_votes:
+        total += stop_votes * int(stop_vote_bytes(len(traffic["allreduce_bytes_per_worker"]))
+                                  .sum())
+    return int(total)
 
 
 def predict_payload_breakdown(shards, hops: list[LayerHop], itemsize: int, *,
-                              param_elements: int, epochs: int, evals: int) -> dict:
+                              param_elements: int, epochs: int, evals: int,
+                              stop_votes: int = 0) -> dict:
     """Predicted payload of a run per (src, dst, kind, layer, direction), the trainer's
     counter keys: kind "halo" with direction "forward" / "backward" / "eval", and kind
-    "allreduce" with layer -1 and direction "backward" (rank r sends to r+1 in the ring).
+    "allreduce" with layer -1 and direction "backward" (rank r sends to r+1 in the ring;
+    early-stopping votes, `stop_vote_bytes`, are added there).
     Pairs that exchange nothing are left out. Sums to `predict_run_payload`.
     Loops over workers and their peers: meant for training-sized k, not for k = 1024.
     """
@@ -141,11 +157,12 @@ def predict_payload_breakdown(shards, hops: list[LayerHop], itemsize: int, *,
                         out[(p, q, KIND_HALO, h.layer, "eval")] = evals * fwd
                 if bwd and epochs:
                     out[(p, q, KIND_HALO, h.layer, "backward")] = epochs * bwd
-    allreduce = _ring_send_elements(param_elements, k) * itemsize
+    allreduce = _ring_send_elements(param_elements, k) * itemsize * epochs \
+        + stop_vote_bytes(k) * stop_votes          # the votes share the gradients' key
     for r in range(k):
-        if allreduce[r] and epochs:
+        if allreduce[r]:
             out[(r, (r + 1) % k, KIND_ALLREDUCE, ALLREDUCE_LAYER, "backward")] = \
-                epochs * int(allreduce[r])
+                int(allreduce[r])
     return out
 
 

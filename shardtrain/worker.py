@@ -31,7 +31,7 @@ import msgpack
 import numpy as np
 import scipy.sparse as sp
 
-from shardtrain import model
+from shardtrain import model, stopping
 from shardtrain.schedule import layer_dims, layer_hops
 from shardtrain.settings import TrainSettings
 
@@ -246,15 +246,26 @@ def run_worker(shard, settings: TrainSettings, transport, profile, report: Calla
                epochs_range: range | None = None,
                on_phase: Callable[[str], None] | None = None,
                on_epoch_end: Callable[[int, model.Params, model.Adam], dict | None]
-               | None = None, slow_factor: float = 1.0) -> dict:
+               | None = None, slow_factor: float = 1.0,
+               init_early: dict | None = None) -> dict:
     """Train on `shard` for the epochs of `epochs_range` (default 1..settings.epochs).
 
     After every step an evaluation forward (no dropout, halo frames with direction "eval")
-    gives the correct counts; `report` receives {"worker", "epoch", "loss_part", "penalty",
-    "correct": [train, val, test], "totals": [...], "step_s", "eval_s"} (the coordinator
-    adds the parts and the penalty once, since every worker computes the same penalty).
+    gives the correct counts and the validation cross-entropy sum; `report` receives
+    {"worker", "epoch", "loss_part", "penalty", "correct": [train, val, test], "totals":
+    [...], "val_loss_sum", "step_s", "eval_s"} (the coordinator adds the parts and the
+    penalty once, since every worker computes the same penalty), plus "val_loss" (the
+    global mean every worker decided on) with early stopping.
+    Early stopping (`settings.early_stop` = N > 0, `shardtrain.stopping`): after the
+    evaluation every worker all-reduces [val loss sum, val count] (float64, kind
+    "allreduce", `stopping.VOTE_ELEMENTS`), so all hold the same global loss, take the same
+    decision and stop at the same epoch; the returned weights and predictions are the
+    best epoch's. `init_early` (checkpoint arrays) resumes that state; when the best epoch
+    lies before the resume and is never beaten, one more evaluation forward of its weights
+    gives the predictions ("extra_evals": 1).
     Returns {"worker", "owned", "predictions", "labels", "params" (dict name -> array), "profile",
-    "peak_rss_bytes", "cpu_s", "send_ptr", "halo_ptr"}.
+    "peak_rss_bytes", "cpu_s", "send_ptr", "halo_ptr", "epochs_run", "extra_evals",
+    "early_stop" (summary or None)}.
     `num_classes` is the whole graph's (a shard may lack some classes). To resume, give
     `init_params`, `init_adam` (`model.Adam.state()` arrays) and the remaining
     `epochs_range`: the dropout keys are the epoch numbers, so the run continues exactly.
@@ -297,6 +308,12 @@ def run_worker(shard, settings: TrainSettings, transport, profile, report: Calla
             transport.allreduce_sum(flat, epoch=ops.epoch)
         on_phase(f"epoch {ops.epoch} compute")
 
+    early = None
+    if settings.early_stop:
+        early = stopping.EarlyStop.from_state(settings.early_stop, init_early or {}, dims,
+                                              settings.bias, dtype, source="early-stop state")
+    best_logits = None
+    epochs_run = 0
     logits = None
     for epoch in epochs:
         ops.epoch = epoch
@@ -314,12 +331,39 @@ def run_worker(shard, settings: TrainSettings, transport, profile, report: Calla
         with profile.phase("compute"):
             logits, _ = model.forward(params, x, hops, propagate_eval, model.no_dropout)
             correct = model.correct_counts(logits, labels, masks)
+            val_sum, val_count = model.cross_entropy_sum(logits, labels, masks[1])
         eval_s = time.perf_counter() - start - step_s
-        extra = on_epoch_end(epoch, params, adam) if on_epoch_end is not None else None
+        epochs_run += 1
+        decided, stop = {}, False
+        if early is not None:
+            val_loss = _global_val_loss(val_sum, val_count, allreduce)
+            if early.update(epoch, val_loss, params):
+                best_logits = logits
+            stop = early.should_stop(epoch)
+            decided = {"val_loss": val_loss}
+        if on_epoch_end is None:
+            extra = None
+        elif early is None:
+            extra = on_epoch_end(epoch, params, adam)
+        else:
+            extra = on_epoch_end(epoch, params, adam, early=early, last=stop)
         report({"worker": shard.worker, "epoch": epoch, "loss_part": float(loss_part),
                 "penalty": float(penalty), "correct": correct, "totals": totals,
+                "val_loss_sum": val_sum, **decided,
                 "step_s": step_s, "eval_s": eval_s, **(extra or {})})
+        if stop:
+            break
 
+    extra_evals = 0
+    if early is not None and early.best_params is not None:
+        params = early.best_params
+        if best_logits is None:      # best epoch before a resume: evaluate its weights again
+            on_phase("evaluation of the best epoch's weights")
+            with profile.phase("compute"):
+                best_logits, _ = model.forward(params, x, hops, propagate_eval,
+                                               model.no_dropout)
+            extra_evals = 1
+        logits = best_logits
     on_phase("finished")
     predictions = (np.argmax(logits, axis=1).astype(np.int64) if logits is not None
                    else np.zeros(0, dtype=np.int64))
@@ -336,7 +380,22 @@ def run_worker(shard, settings: TrainSettings, transport, profile, report: Calla
         "cpu_s": float(usage.ru_utime + usage.ru_stime),
         "send_ptr": [int(v) for v in shard.send_ptr],
         "halo_ptr": [int(v) for v in shard.halo_ptr],
+        "epochs_run": epochs_run,
+        "extra_evals": extra_evals,
+        "early_stop": None if early is None else early.summary(),
     }
+
+
+def _global_val_loss(val_sum: float, val_count: int, allreduce) -> float:
+    """The validation loss over every worker's rows: all-reduce [sum, count] (float64, so
+    the count is exact and every worker ends with the same bits), then divide."""
+    vote = np.array([val_sum, float(val_count)], dtype=np.float64)
+    assert vote.size == stopping.VOTE_ELEMENTS and vote.itemsize == stopping.VOTE_ITEMSIZE
+    allreduce(vote)
+    if vote[1] == 0:
+        raise ValueError("--early-stop: the graph has no validation vertices (the "
+                         "validation split is empty)")
+    return float(vote[0] / vote[1])
 
 
 def peak_rss_bytes() -> int:
@@ -378,12 +437,14 @@ def decode_summary(msg: dict) -> dict:
 
 # ---------------------------------------------------------------- the worker process
 
-def pin_blas_threads() -> None:
-    """One BLAS thread per worker: the workers are the parallelism."""
+def pin_blas_threads(threads: int = 1) -> None:
+    """`threads` BLAS threads in this process (the --threads setting, default 1: the
+    workers are the parallelism). threadpoolctl raises the limit too, so a forkserver
+    child started with the pinned environment can still use more."""
     for name in BLAS_ENV:
-        os.environ[name] = "1"
+        os.environ[name] = str(int(threads))
     from threadpoolctl import threadpool_limits
-    threadpool_limits(1)
+    threadpool_limits(int(threads))
 
 
 def _install_log_queue(log_queue, level: int) -> None:
@@ -417,7 +478,7 @@ def process_main(rank: int, size: int, shard_dir: str, settings_dict: dict, num_
     """
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     signal.signal(signal.SIGHUP, signal.SIG_IGN)     # a closed terminal: the coordinator decides
-    pin_blas_threads()
+    pin_blas_threads(int(settings_dict.get("threads", 1)))
     _install_log_queue(log_queue, log_level)
     from shardtrain.faults import Fault
 
@@ -455,8 +516,10 @@ def process_main(rank: int, size: int, shard_dir: str, settings_dict: dict, num_
                   shard.num_halo, shard.peers())
         resume = options.get("resume")
         init_params, init_adam, epochs = options.get("init_params"), None, None
+        init_early = None
         if resume is not None:
             init_params, init_adam = resume["params"], resume["adam"]
+            init_early = resume.get("early")
             epochs = range(int(resume["epoch"]) + 1, settings.epochs + 1)
         plan = options.get("checkpoint") if rank == 0 else None
         summary = run_worker(shard, settings, transport, profile,
@@ -465,7 +528,8 @@ def process_main(rank: int, size: int, shard_dir: str, settings_dict: dict, num_
                              init_adam=init_adam, epochs_range=epochs, on_phase=on_phase,
                              on_epoch_end=(_checkpoint_writer(plan, settings.epochs, on_phase)
                                            if plan else None),
-                             slow_factor=float(options.get("slow") or 1.0))
+                             slow_factor=float(options.get("slow") or 1.0),
+                             init_early=init_early)
         send({"type": "done", **encode_summary(summary)})
     except BaseException as exc:  # noqa: BLE001 - everything must reach the coordinator
         status = 1

@@ -67,7 +67,8 @@ def test_training_lowers_the_loss_and_records_every_epoch():
     result = train_reference(graph, TrainSettings(epochs=30, dropout=0.0, dtype="float64"),
                              on_epoch=seen.append)
     assert seen == result.epochs and [r["epoch"] for r in seen] == list(range(1, 31))
-    assert set(seen[0]) == {"epoch", "loss", "train_acc", "val_acc", "test_acc", "epoch_s"}
+    assert set(seen[0]) == {"epoch", "loss", "train_loss", "val_loss", "train_acc", "val_acc",
+                            "test_acc", "epoch_s"}
     assert result.epochs[-1]["loss"] < result.epochs[0]["loss"]
     assert result.predictions.dtype == np.int64
     assert result.predictions.shape == (graph.num_vertices,)

@@ -16,7 +16,8 @@ from test_train_equivalence import depot_graph
 
 WORKER_KEYS = {"worker", "compute_s", "exchange_s", "allreduce_s", "wait_s", "bytes_sent",
                "bytes_received", "cpu_s", "peak_rss_bytes"}
-EPOCH_KEYS = {"epoch", "loss", "train_acc", "val_acc", "test_acc", "epoch_s"}
+EPOCH_KEYS = {"epoch", "loss", "train_loss", "val_loss", "train_acc", "val_acc", "test_acc",
+              "epoch_s"}
 COMMON = ["--epochs", "3", "--dtype", "float64", "--hidden", "8", "--quiet"]
 
 

@@ -32,7 +32,7 @@ from shardtrain import rundoc
 from shardtrain.cli.common import add_graph_arguments, load_graph_from_args, \
     positive_int_type
 from shardtrain.errors import InputError, Interrupted
-from shardtrain.settings import DTYPES, TrainSettings
+from shardtrain.settings import DTYPES, TrainSettings, max_threads
 
 MANIFEST_NAME = "shards.json"
 WORKER_COLUMNS = [
@@ -56,6 +56,14 @@ def _number(option: str, kind):
             raise InputError(f"{option} {text!r}: not {'an integer' if kind is int else 'a number'}"
                              ) from None
     return convert
+
+
+def _threads_type(text: str) -> int:
+    value = _number("--threads", int)(text)
+    if not 1 <= value <= max_threads():
+        raise InputError(f"--threads {text!r}: must lie in 1..{max_threads()} "
+                         f"(4 x this machine's {max_threads() // 4} cores)")
+    return value
 
 
 def add_arguments(parser) -> None:
@@ -90,6 +98,16 @@ def add_arguments(parser) -> None:
     parser.add_argument("--dtype", default=d.dtype,
                         help=f"{' or '.join(DTYPES)} (default {d.dtype})")
     parser.add_argument("--bias", action="store_true", help="add a bias to every layer")
+    parser.add_argument("--early-stop", type=_number("--early-stop", int), default=0,
+                        metavar="N", help="stop when the validation loss has not improved "
+                        "(become strictly lower than the best so far) for N epochs; the "
+                        "final weights and predictions are the best epoch's (default 0: "
+                        "off; the GCN paper uses 10)")
+    parser.add_argument("--threads", type=_threads_type, default=d.threads, metavar="N",
+                        help=f"BLAS threads per process, the same in both modes: the "
+                        f"reference's one process, each worker (default {d.threads}: the "
+                        f"workers are the parallelism, and the reference then gets the "
+                        f"CPU of one worker; at most {max_threads()})")
     parser.add_argument("--timeout", type=_number("--timeout", float), default=60.0,
                         metavar="S", help="deadline of every halo/all-reduce receive (default 60)")
     parser.add_argument("--max-frame-bytes", type=positive_int_type("--max-frame-bytes"),
@@ -125,7 +143,8 @@ def add_arguments(parser) -> None:
 def _settings(args) -> TrainSettings:
     return TrainSettings(layers=args.layers, hidden=args.hidden, dropout=args.dropout,
                          lr=args.lr, weight_decay=args.weight_decay, epochs=args.epochs,
-                         seed=args.seed, dtype=args.dtype, bias=bool(args.bias)).validate()
+                         seed=args.seed, dtype=args.dtype, bias=bool(args.bias),
+                         early_stop=args.early_stop, threads=args.threads).validate()
 
 
 def _check_output(path, option: str, suffix: str | None = None) -> None:
@@ -341,7 +360,9 @@ def _acc(v) -> str:
 
 
 def epoch_line(rec: dict, epochs: int) -> str:
+    val_loss = rec.get("val_loss")
     return (f"epoch {rec['epoch']:>{len(str(epochs))}}/{epochs}  loss {rec['loss']:.6f}  "
+            f"val loss {'-' if val_loss is None else f'{val_loss:.6f}'}  "
             f"train {_acc(rec['train_acc'])}  val {_acc(rec['val_acc'])}  "
             f"test {_acc(rec['test_acc'])}  {rec['epoch_s']:.3f} s")
 
@@ -443,12 +464,13 @@ def _run(args, phase: list) -> int:
             shard_dir, labels = args.graph, None
             graph_fp = _manifest_fingerprint(shard_dir)
         else:
-            from shardtrain.reference import check_trainable, model_dims
+            from shardtrain.reference import check_early_stop, check_trainable, model_dims
 
             phase[0] = "reading the graph"
             loaded = load_graph_from_args(args)
             graph = loaded.graph
             check_trainable(graph)
+            check_early_stop(graph, settings)
             dims = model_dims(graph, settings)
             check_model_fits(dims, settings)
             init = (load_init_weights(args.init_weights, dims, settings)
@@ -516,6 +538,7 @@ def _run(args, phase: list) -> int:
         last = result.epochs[-1]
         print(f"final: loss {last['loss']:.6f}  train {_acc(last['train_acc'])}  "
               f"val {_acc(last['val_acc'])}  test {_acc(last['test_acc'])}")
+        _say_early_stop(result.early_stop, args.quiet)
         if not args.reference:
             print(_worker_table(result.workers))
             for line in _traffic_lines(result.traffic):
@@ -569,8 +592,32 @@ def _checkpoint_plan(args, settings, shard_dir, dims, graph_fp) -> dict | None:
     if args.resumed is not None:
         checkpoint.check_resumable(args.resumed, identity, epochs=settings.epochs,
                                    graph_label=str(args.graph))
+    _check_not_stopped(args.resumed, settings)
     return {"folder": str(args.checkpoint), "every": int(args.checkpoint_every),
             "identity": identity}
+
+
+def _check_not_stopped(resumed, settings) -> None:
+    """A checkpoint written where early stopping ended its run has nothing to continue."""
+    early = getattr(resumed, "early", None) if resumed is not None else None
+    if not early or not settings.early_stop:
+        return
+    best = int(np.asarray(early.get("early_best_epoch", resumed.epoch)))
+    if resumed.epoch - best >= settings.early_stop:
+        raise InputError(f"--resume {resumed.folder}: that run stopped early at epoch "
+                         f"{resumed.epoch} (no better validation loss since epoch {best}, "
+                         f"--early-stop {settings.early_stop}); nothing to continue")
+
+
+def _say_early_stop(summary: dict | None, quiet: bool) -> None:
+    """The closing line of an early-stopping run: where it stopped, which weights it kept."""
+    if quiet or summary is None:
+        return
+    where = (f"stopped at epoch {summary['stopped_at']}" if summary["stopped_at"] is not None
+             else "ran every epoch")
+    print(f"early stop (patience {summary['patience']}): {where}; weights and predictions "
+          f"of the best epoch, {summary['best_epoch']} (validation loss "
+          f"{summary['best_val_loss']:.6f})")
 
 
 def _reference_plan(args, settings, dims, graph_fp) -> dict | None:
@@ -585,6 +632,7 @@ def _reference_plan(args, settings, dims, graph_fp) -> dict | None:
     if args.resumed is not None:
         checkpoint.check_resumable(args.resumed, identity, epochs=settings.epochs,
                                    graph_label=str(args.graph))
+    _check_not_stopped(args.resumed, settings)
     return {"folder": str(args.checkpoint), "every": int(args.checkpoint_every),
             "identity": identity}
 
@@ -606,6 +654,7 @@ def _train_reference(graph, settings, init, plan, resumed, progress):
             graph, settings, init_params=resumed.params if resumed is not None else init,
             init_adam=resumed.adam if resumed is not None else None,
             first_epoch=resumed.epoch + 1 if resumed is not None else 1, on_epoch=on_epoch,
+            init_early=resumed.early if resumed is not None else None,
             on_epoch_end=None if plan is None else checkpoint.epoch_writer(plan,
                                                                            settings.epochs))
     except KeyboardInterrupt:

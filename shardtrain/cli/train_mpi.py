@@ -51,6 +51,7 @@ def _finish(args, settings, facts, result) -> None:
         last = result.epochs[-1]
         print(f"final: loss {last['loss']:.6f}  train {train._acc(last['train_acc'])}  "
               f"val {train._acc(last['val_acc'])}  test {train._acc(last['test_acc'])}")
+        train._say_early_stop(result.early_stop, args.quiet)
         print(train._worker_table(result.workers))
         for line in train._traffic_lines(result.traffic):
             print(line)
