@@ -65,27 +65,30 @@ _FILE_KINDS = ((stat.S_ISFIFO, "a named pipe (FIFO)"), (stat.S_ISCHR, "a charact
                (stat.S_ISBLK, "a block device"), (stat.S_ISSOCK, "a socket"))
 
 
-def require_regular_file(path: str | os.PathLike, what: str = "file") -> Path:
-    """`path` as a Path when it is a regular file (symbolic links followed), else InputError.
+def require_regular_file(path: str | os.PathLike, what: str = "file",
+                         option: str | None = None) -> Path:
+    """`path` as a Path when it is a regular file (symbolic links followed), else InputError
+    (prefixed with `option`, e.g. "--assignment", when given).
 
     Checked with os.stat before anything opens the file: opening a FIFO for reading blocks
     until a writer comes, and a character device can be read without end. Every reader of a
     graph, features, labels or assignment file goes through here.
     """
     path = Path(path)
+    said = f"{option} {path}" if option else f"{path}"
     try:
         mode = os.stat(path).st_mode
     except FileNotFoundError:
-        raise InputError(f"{path}: no such {what}") from None
+        raise InputError(f"{said}: no such {what}") from None
     except NotADirectoryError:
-        raise InputError(f"{path}: no such {what} (a parent is not a folder)") from None
+        raise InputError(f"{said}: no such {what} (a parent is not a folder)") from None
     except OSError as exc:
-        raise InputError(f"{path}: cannot read: {exc.strerror or exc}") from None
+        raise InputError(f"{said}: cannot read: {exc.strerror or exc}") from None
     if stat.S_ISDIR(mode):
-        raise InputError(f"{path}: is a directory, expected a {what}")
+        raise InputError(f"{said}: is a directory, expected a {what}")
     if not stat.S_ISREG(mode):
         kind = next((name for test, name in _FILE_KINDS if test(mode)), "a special file")
-        raise InputError(f"{path}: is {kind}, expected a regular {what}")
+        raise InputError(f"{said}: is {kind}, expected a regular {what}")
     return path
 
 
@@ -576,8 +579,8 @@ def _npy_header(fh, where: str) -> tuple[tuple[int, ...], np.dtype, bool]:
         msg = " ".join(str(exc).split()) or type(exc).__name__
         raise InputError(f"{where}: not a readable .npy array: {msg}") from None
     if dtype.hasobject:
-        raise InputError(f"{where}: holds Python objects, which can only be read by unpickling "
-                         f"(refused)")
+        raise InputError(f"{where}: not a readable .npy array without unpickling (it holds "
+                         f"Python objects; refused)")
     return tuple(int(d) for d in shape), dtype, bool(fortran)
 
 
