@@ -25,7 +25,7 @@ import scipy.sparse as sp
 
 from shardtrain.errors import InputError
 from shardtrain.graph import EdgeCleanup, Graph, csr_from_edges
-from shardtrain.memory import graph_load_bytes, require_memory
+from shardtrain.memory import feature_bytes_of, graph_load_bytes, require_memory
 
 EDGE_LIST_SUFFIXES = (".csv", ".tsv", ".txt", ".edges")
 GRAPH_SUFFIXES = (".npz", ".mtx") + EDGE_LIST_SUFFIXES
@@ -633,10 +633,9 @@ def _npz_memory(path: Path, headers: dict, num_vertices: int | None) -> None:
                if k in headers and len(headers[k][0]) >= 1]
     n = max(lengths + ([num_vertices] if num_vertices is not None else []), default=0)
     m = headers["edges"][0][0]
-    f = headers.get("features", ((), None))[0]
-    d = f[1] if len(f) == 2 else 0
+    features = feature_bytes_of(*headers["features"]) if "features" in headers else 0
     stored = sum(_npy_nbytes(shape, dtype) for shape, dtype in headers.values())
-    need = max(graph_load_bytes(n, m, d), stored)
+    need = max(graph_load_bytes(n, m, features, labelled="labels" in headers), stored)
     require_memory(need, f"{path}: {n:,} vertices and {m:,} edge rows")
 
 
@@ -764,7 +763,7 @@ def load_labels(path: str | os.PathLike) -> np.ndarray:
     """Labels from `.npy` (1-D integers) or text with one integer per line (-1 = unlabelled)."""
     path = Path(path)
     if path.suffix.lower() == ".npy":
-        return _check_label_array(_load_npy(path), str(path))
+        return _check_label_array(_load_npy(path, labelled=True), str(path))
     table = _TextTable(path, kind="int", columns=1, what="labels: one integer per line")
     y = table.values
     bad = y < -1
@@ -783,19 +782,18 @@ def read_npy(path: str | os.PathLike, check=None) -> np.ndarray:
     return _npy_read(lambda: _open_checked(path), str(path), os.stat(path).st_size, check)
 
 
-def _vertex_data_memory(path: Path):
+def _vertex_data_memory(path: Path, labelled: bool):
     """A `read_npy` check: refuse vertex data whose declared rows would not fit (each row
-    is a vertex of the graph, so the whole per-vertex cost of loading counts)."""
+    is a vertex of the graph, so the per-vertex cost of loading counts too)."""
     def check(shape, dtype):
         n = shape[0] if shape else 1
-        d = shape[1] if len(shape) == 2 else 0
-        need = max(graph_load_bytes(n, 0, d), _npy_nbytes(shape, dtype))
+        need = graph_load_bytes(n, 0, feature_bytes_of(shape, dtype), labelled=labelled)
         require_memory(need, f"{path}: an array of shape {shape}")
     return check
 
 
-def _load_npy(path: Path) -> np.ndarray:
-    return read_npy(path, _vertex_data_memory(path))
+def _load_npy(path: Path, labelled: bool = False) -> np.ndarray:
+    return read_npy(path, _vertex_data_memory(path, labelled))
 
 
 # --------------------------------------------------------------------------- splits
@@ -924,8 +922,9 @@ def load_graph(path: str | os.PathLike, *, features: str | os.PathLike | None = 
 def _require_load_memory(path: Path, raw: _Raw, n: int, n_where: str) -> None:
     """Before the masks and the CSR (both O(n) and O(m)): refuse a vertex count or edge
     count this machine cannot hold, naming where the count came from."""
-    d = raw.features.shape[1] if raw.features is not None else 0
-    need = graph_load_bytes(n, raw.src.shape[0], d)
+    need = graph_load_bytes(n, raw.src.shape[0],
+                            raw.features.nbytes if raw.features is not None else 0,
+                            labelled=raw.labels is not None)
     if n_where == "largest id + 1":
         row = int(np.argmax(np.maximum(raw.src, raw.dst)))
         source = f"{raw.locate_edge(row)}: vertex id {n - 1:,} (so {n:,} vertices)"

@@ -15,6 +15,8 @@ from __future__ import annotations
 import os
 import resource
 
+import numpy as np
+
 from shardtrain.errors import InputError
 from shardtrain.tables import human_bytes
 
@@ -22,33 +24,50 @@ from shardtrain.tables import human_bytes
 # (self-loop mask, the undirected keys, their sort, both directions and their sort, the
 # row/column split): measured 105 B.
 LOAD_BYTES_PER_EDGE_ROW = 112
-# load_graph: per vertex, indptr and the row counts (16 B), labels, the three masks and the
-# split drawing (permutation, class order, ranks): measured 16 B without and ~50 B with labels.
-LOAD_BYTES_PER_VERTEX = 64
-# features: the array as read plus one converted copy (int -> float32, text float64 -> float32),
-# counted at 8 B a value
-LOAD_BYTES_PER_FEATURE_VALUE = 16
+# load_graph: per vertex, indptr and the row counts: measured 16 B
+LOAD_BYTES_PER_VERTEX = 24
+# load_graph: per vertex when there are labels: the labels, the three masks and the split
+# drawing (permutation, class order, ranks): measured ~33 B more
+LOAD_BYTES_PER_LABELLED_VERTEX = 40
 
-# synth: per route drawn (the sampled endpoints, the keys and their sort, the CSR, the edge
-# array written out): measured 108-133 B.
-SYNTH_BYTES_PER_ROUTE = 144
-# synth: per depot (labels, propensities, the sampler's sorted copies and cumulative weights,
-# indptr, splits): measured up to ~90 B.
-SYNTH_BYTES_PER_VERTEX = 96
-# synth: per feature value: the float32 array and the class-mean term added to it
+# synth peaks in one of two phases. Drawing the routes, per route (the sampled endpoints, the
+# keys and their sort, the CSR): measured 105 B; per depot (labels, propensities, the
+# sampler's sorted copies and cumulative weights, splits): measured 56 B.
+SYNTH_BYTES_PER_ROUTE = 112
+SYNTH_BYTES_PER_VERTEX = 64
+# Then the features and the written edge array, while the CSR is kept: per route at most
+# 54 B (measured bound), per feature value the float32 array and its class-mean term.
+SYNTH_BYTES_PER_KEPT_ROUTE = 56
 SYNTH_BYTES_PER_FEATURE_VALUE = 8
 
 
-def graph_load_bytes(vertices: int, edge_rows: int, feature_dims: int = 0) -> int:
-    """Estimated peak bytes of loading a graph of this size (see the constants above)."""
-    return (LOAD_BYTES_PER_EDGE_ROW * int(edge_rows) + LOAD_BYTES_PER_VERTEX * int(vertices)
-            + LOAD_BYTES_PER_FEATURE_VALUE * int(vertices) * int(feature_dims))
+def graph_load_bytes(vertices: int, edge_rows: int, feature_bytes: int = 0,
+                     labelled: bool = False) -> int:
+    """Estimated peak bytes of loading a graph of this size (see the constants above);
+    `feature_bytes` is what the features occupy meanwhile (`feature_bytes_of`)."""
+    per_vertex = LOAD_BYTES_PER_VERTEX + (LOAD_BYTES_PER_LABELLED_VERTEX if labelled else 0)
+    return LOAD_BYTES_PER_EDGE_ROW * int(edge_rows) + per_vertex * int(vertices) + int(feature_bytes)
+
+
+def feature_bytes_of(shape: tuple[int, ...], dtype) -> int:
+    """Bytes of a features array of this declared shape and dtype while it is loaded: the
+    array as stored, plus the float32 copy made of anything that is not float32 or float64."""
+    values = 1
+    for d in shape:
+        values *= int(d)
+    dtype = np.dtype(dtype)
+    converted = 0 if dtype in (np.float32, np.float64) else 4 * values
+    return values * dtype.itemsize + converted
 
 
 def synth_bytes(vertices: int, routes: int, features: int) -> int:
-    """Estimated peak bytes of generating and writing a parcel network of this size."""
-    return (SYNTH_BYTES_PER_ROUTE * int(routes) + SYNTH_BYTES_PER_VERTEX * int(vertices)
-            + SYNTH_BYTES_PER_FEATURE_VALUE * int(vertices) * int(features))
+    """Estimated peak bytes of generating and writing a parcel network of this size: the
+    larger of its two phases (see the constants above)."""
+    vertices, routes, features = int(vertices), int(routes), int(features)
+    drawing = SYNTH_BYTES_PER_ROUTE * routes + SYNTH_BYTES_PER_VERTEX * vertices
+    featuring = (SYNTH_BYTES_PER_KEPT_ROUTE * routes + SYNTH_BYTES_PER_VERTEX * vertices
+                 + SYNTH_BYTES_PER_FEATURE_VALUE * vertices * features)
+    return max(drawing, featuring)
 
 
 def _cgroup_limit() -> int | None:
