@@ -488,7 +488,7 @@ def _mtx_header(path: Path) -> tuple[int, str, str, str, int, int, int, int]:
     """(size line number, format, field, symmetry, rows, cols, entries, bytes after the size
     line) of a Matrix Market file, read without scipy so that a declared size is judged
     before anything is allocated."""
-    size = os.stat(path).st_size
+    size = os.stat(require_regular_file(path)).st_size
     with _open_checked(path) as fh:
         banner = _readline_bounded(fh, 1024).split()
         words = [w.decode("ascii", "replace").lower() for w in banner]

@@ -275,6 +275,10 @@ CLI_CASES = [
     ("survey one width", _structure_only("--classes", "3"),
      r"^shardtrain: error: --input-dim: the graph has no features; give"),
 ]
+CLI_CASES.append(("fifo as split --assignment",
+                  lambda d: ["split", edge_list(d), "--assignment", _fifo(d / "special.txt"),
+                             "--out", d / "out"],
+                  r"--assignment .*special\.txt: is a named pipe \(FIFO\), expected a regular"))
 for _role in ("graph", "--features", "--labels", "--assignment"):
     _prefix = r"--assignment .*" if _role == "--assignment" else r""
     _suffix = ".csv" if _role == "--features" else ".txt"
@@ -347,6 +351,16 @@ def test_synth_estimate_is_close_to_the_measured_peak():
         tracemalloc.stop()
         estimate = synth_bytes(n, n * degree // 2, features)
         assert peak <= estimate <= 1.5 * peak, (n, degree, features, peak, estimate)
+
+
+@pytest.mark.parametrize("graph,role,missing", [
+    ("g.txt", None, "g.txt"), ("g.mtx", None, "g.mtx"), ("g.npz", None, "g.npz"),
+    ("e.txt", "features", "x.npy"), ("e.txt", "labels", "y.npy")])
+def test_missing_file_of_every_kind_is_named(tmp_path, graph, role, missing):
+    edge_list(tmp_path).rename(tmp_path / "e.txt")
+    extra = {role: tmp_path / missing} if role else {}
+    with pytest.raises(InputError, match=rf"{re.escape(missing)}: no such file"):
+        load_graph(tmp_path / graph, **extra)
 
 
 def test_truncated_npy_is_refused_without_reading(tmp_path):
