@@ -173,6 +173,28 @@ def _tokenize(chunk: bytes) -> _Chunk:
     return _Chunk(b, starts, ends, line, counts, skip)
 
 
+# a comma with only blanks since the line start or the previous comma (the scanner would
+# otherwise close the gap and shift the columns; loadtxt refuses such a line too)
+_EMPTY_FIELD = re.compile(rb"^[ \t]*,|,[ \t]*,")
+
+
+def _empty_field_lines(c: _Chunk, data_line: np.ndarray) -> np.ndarray:
+    """Data lines of a chunk with an empty field (see _EMPTY_FIELD), vectorised: a comma is
+    empty-handed when no token starts between it and the previous comma of its line (or the
+    line start). A trailing comma loses nothing and is allowed."""
+    commas = np.flatnonzero(c.b == ord(","))
+    if commas.shape[0] == 0:
+        return commas
+    newlines = np.flatnonzero(c.b == 10)
+    comma_line = np.searchsorted(newlines, commas)
+    before = np.searchsorted(c.starts, commas)          # tokens started before each comma
+    line_first = np.searchsorted(c.line, comma_line)    # index of the line's first token
+    same_line = np.concatenate([[False], comma_line[1:] == comma_line[:-1]])
+    previous = np.concatenate([[0], before[:-1]])
+    empty = np.where(same_line, before == previous, before == line_first)
+    return comma_line[empty & data_line[comma_line]]
+
+
 def _line_text(chunk: bytes, index: int) -> bytes:
     """Line `index` (0-based) of a chunk, for error messages and header checks."""
     pos = 0
@@ -358,7 +380,8 @@ class _TextTable:
 
     def _check_chunk(self, c: _Chunk, chunk: bytes, data_line, keep, line_offset, token_ok):
         """Find the first bad data line in this chunk, if any, and raise naming it."""
-        bad_lines = [np.flatnonzero(data_line & (c.counts != self.columns))]
+        bad_lines = [np.flatnonzero(data_line & (c.counts != self.columns)),
+                     _empty_field_lines(c, data_line)]
         if self.kind == "int":
             b = c.b
             body = ~_SEP[b]
@@ -393,6 +416,9 @@ class _TextTable:
                 self._fail(line_no, f"{_show(t)} is not {word} ({self.what})")
         if self.kind == "int" and any(len(t.lstrip(b"+-")) > _MAX_ID_DIGITS for t in toks):
             self._fail(line_no, f"number too large ({self.what})")
+        if _EMPTY_FIELD.search(_strip_comment(raw)):
+            self._fail(line_no, f"empty field: nothing between two commas, or before the "
+                                f"first ({self.what})")
         self._fail(line_no, f"expected {self.columns} column{'s' * (self.columns != 1)}, "
                             f"found {len(toks)} ({self.what})")
 

@@ -415,6 +415,30 @@ def test_first_line_with_a_number_is_data_or_an_error_naming_line_1(tmp_path, mo
         load_graph(path)
 
 
+@pytest.mark.parametrize("path_taken", ["loadtxt", "scanner"])
+@pytest.mark.parametrize("option,lines,where", [
+    ("graph", ["0,1", "1,,2"], r"g\.csv:2"),
+    ("graph", [",0,1"], r"g\.csv:1"),
+    ("features", ["volume,area,weight", "1.5,,2", "1,2,3"], r"x\.csv:2"),
+    ("features", ["1, ,2", "1,2,3"], r"x\.csv:1"),
+])
+def test_empty_csv_field_is_an_error_not_a_column_shift(tmp_path, monkeypatch, path_taken,
+                                                        option, lines, where):
+    if path_taken == "scanner":
+        _scanner_only(monkeypatch)
+    name = "g.csv" if option == "graph" else "x.csv"
+    (tmp_path / name).write_text("".join(f"{line}\n" for line in lines))
+    graph = tmp_path / name if option == "graph" else edge_list(tmp_path, "0 1\n")
+    extra = {} if option == "graph" else {"features": tmp_path / name}
+    with pytest.raises(InputError, match=rf"{where}: empty field"):
+        load_graph(graph, **extra)
+
+
+def test_trailing_comma_loses_nothing_and_is_accepted(tmp_path):
+    (tmp_path / "g.csv").write_text("0,1,\n1,2,\n")
+    assert load_graph(tmp_path / "g.csv").graph.num_edges == 2
+
+
 def test_too_long_ids_agree_between_the_readers(tmp_path, monkeypatch):
     """19 digits fit an int64 but not the scanner's 18-digit limit: both readers refuse, with
     the scanner's line-naming message (ids that long could never fit in memory anyway)."""
