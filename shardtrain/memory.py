@@ -46,7 +46,8 @@ def graph_load_bytes(vertices: int, edge_rows: int, feature_bytes: int = 0,
     """Estimated peak bytes of loading a graph of this size (see the constants above);
     `feature_bytes` is what the features occupy meanwhile (`feature_bytes_of`)."""
     per_vertex = LOAD_BYTES_PER_VERTEX + (LOAD_BYTES_PER_LABELLED_VERTEX if labelled else 0)
-    return LOAD_BYTES_PER_EDGE_ROW * int(edge_rows) + per_vertex * int(vertices) + int(feature_bytes)
+    return (LOAD_BYTES_PER_EDGE_ROW * int(edge_rows) + per_vertex * int(vertices)
+            + int(feature_bytes))
 
 
 def feature_bytes_of(shape: tuple[int, ...], dtype) -> int:
