@@ -59,7 +59,12 @@ class Graph:
 
 @dataclass(frozen=True)
 class EdgeCleanup:
-    """What `csr_from_edges` dropped while making the edge set simple and undirected."""
+    """What `csr_from_edges` dropped while making the edge set simple and undirected.
+
+    self_loops: distinct vertices with a loop (v, v), however often each was written;
+    duplicates: rows that repeat an undirected pair already seen, loops included. So
+    rows = kept edges + self_loops + duplicates, as for networkx's Graph of the same rows.
+    """
 
     self_loops: int
     duplicates: int
@@ -70,18 +75,24 @@ def csr_from_edges(src: np.ndarray, dst: np.ndarray, num_vertices: int
     """Symmetrise, drop self-loops and duplicate edges; return (indptr, indices, cleanup).
 
     Ids must already be validated as 0 <= id < num_vertices. O(m log m), no Python loop.
-    A duplicate is any repeat of an undirected pair, whichever direction it was written in.
+    A duplicate is any repeat of an undirected pair, whichever direction it was written in;
+    a loop written twice (as both directions of a symmetric file list it) is one self-loop
+    and one duplicate.
     """
     src = np.asarray(src, dtype=np.int64)
     dst = np.asarray(dst, dtype=np.int64)
     loops = src == dst
-    n_loops = int(loops.sum())
+    loop_vertices = np.sort(src[loops])
+    n_loops = int(np.count_nonzero(loop_vertices[1:] != loop_vertices[:-1])
+                  + (loop_vertices.shape[0] > 0))
+    repeated_loops = int(loop_vertices.shape[0] - n_loops)
+    del loop_vertices
     src, dst = src[~loops], dst[~loops]
     lo, hi = np.minimum(src, dst), np.maximum(src, dst)
     # sort + neighbour compare: np.unique (numpy 2.4) is ~50x slower on 10 M keys
     pair = np.sort(lo * np.int64(num_vertices) + hi)
     pair = pair[np.concatenate([[True], pair[1:] != pair[:-1]])] if pair.shape[0] else pair
-    n_dups = int(src.shape[0] - pair.shape[0])
+    n_dups = int(src.shape[0] - pair.shape[0]) + repeated_loops
     lo, hi = np.divmod(pair, np.int64(num_vertices))
     # both directions; the keys are distinct, so sorting the keys sorts rows then columns
     key = np.sort(np.concatenate([pair, hi * np.int64(num_vertices) + lo]))

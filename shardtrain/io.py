@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import os
 import re
+import stat
 import warnings
 import zipfile
 from dataclasses import dataclass, field
@@ -24,6 +25,7 @@ import scipy.sparse as sp
 
 from shardtrain.errors import InputError
 from shardtrain.graph import EdgeCleanup, Graph, csr_from_edges
+from shardtrain.memory import feature_bytes_of, graph_load_bytes, require_memory
 
 EDGE_LIST_SUFFIXES = (".csv", ".tsv", ".txt", ".edges")
 GRAPH_SUFFIXES = (".npz", ".mtx") + EDGE_LIST_SUFFIXES
@@ -59,11 +61,39 @@ class LoadedGraph:
 
 # --------------------------------------------------------------------------- text scanning
 
+_FILE_KINDS = ((stat.S_ISFIFO, "a named pipe (FIFO)"), (stat.S_ISCHR, "a character device"),
+               (stat.S_ISBLK, "a block device"), (stat.S_ISSOCK, "a socket"))
+
+
+def require_regular_file(path: str | os.PathLike, what: str = "file",
+                         option: str | None = None) -> Path:
+    """`path` as a Path when it is a regular file (symbolic links followed), else InputError
+    (prefixed with `option`, e.g. "--assignment", when given).
+
+    Checked with os.stat before anything opens the file: opening a FIFO for reading blocks
+    until a writer comes, and a character device can be read without end. Every reader of a
+    graph, features, labels or assignment file goes through here.
+    """
+    path = Path(path)
+    said = f"{option} {path}" if option else f"{path}"
+    try:
+        mode = os.stat(path).st_mode
+    except FileNotFoundError:
+        raise InputError(f"{said}: no such {what}") from None
+    except NotADirectoryError:
+        raise InputError(f"{said}: no such {what} (a parent is not a folder)") from None
+    except OSError as exc:
+        raise InputError(f"{said}: cannot read: {exc.strerror or exc}") from None
+    if stat.S_ISDIR(mode):
+        raise InputError(f"{said}: is a directory, expected a {what}")
+    if not stat.S_ISREG(mode):
+        kind = next((name for test, name in _FILE_KINDS if test(mode)), "a special file")
+        raise InputError(f"{said}: is {kind}, expected a regular {what}")
+    return path
+
+
 def _open_checked(path: Path, what: str = "file"):
-    if not path.exists():
-        raise InputError(f"{path}: no such {what}")
-    if path.is_dir():
-        raise InputError(f"{path}: is a directory, expected a {what}")
+    require_regular_file(path, what)
     try:
         return open(path, "rb")
     except OSError as exc:
@@ -109,8 +139,24 @@ class _Chunk:
     skip: np.ndarray         # per line: comment (or header) line, not data
 
 
+def _blank_comments(b: np.ndarray) -> np.ndarray:
+    """`b` with every byte from a '#' or '%' to the end of its line made a space (a copy when
+    there is a comment). Vectorised: each byte looks up the latest comment mark or newline
+    at or before it."""
+    marks = (b == _COMMENT[0]) | (b == _COMMENT[1])
+    if not marks.any():
+        return b
+    newline = b == 10
+    last = np.where(marks | newline, np.arange(b.shape[0], dtype=np.int32), -1)
+    np.maximum.accumulate(last, out=last)
+    inside = (last >= 0) & marks[np.maximum(last, 0)]
+    out = b.copy()
+    out[inside] = ord(" ")
+    return out
+
+
 def _tokenize(chunk: bytes) -> _Chunk:
-    b = np.frombuffer(chunk, dtype=np.uint8)
+    b = _blank_comments(np.frombuffer(chunk, dtype=np.uint8))
     sep = _SEP[b]
     body = ~sep
     prev_sep = np.empty_like(sep)
@@ -122,13 +168,31 @@ def _tokenize(chunk: bytes) -> _Chunk:
     line = np.searchsorted(newlines, starts)
     nlines = newlines.shape[0]
     counts = np.bincount(line, minlength=nlines)
-    # a line is a comment when its first token starts with '#' or '%'
-    first_tok = np.ones(starts.shape[0], dtype=bool)
-    first_tok[1:] = line[1:] != line[:-1]
-    fc = b[starts[first_tok]]
+    # comment lines have no tokens left; `skip` marks a header line once one is found
     skip = np.zeros(nlines, dtype=bool)
-    skip[line[first_tok][(fc == _COMMENT[0]) | (fc == _COMMENT[1])]] = True
     return _Chunk(b, starts, ends, line, counts, skip)
+
+
+# a comma with only blanks since the line start or the previous comma (the scanner would
+# otherwise close the gap and shift the columns; loadtxt refuses such a line too)
+_EMPTY_FIELD = re.compile(rb"^[ \t]*,|,[ \t]*,")
+
+
+def _empty_field_lines(c: _Chunk, data_line: np.ndarray) -> np.ndarray:
+    """Data lines of a chunk with an empty field (see _EMPTY_FIELD), vectorised: a comma is
+    empty-handed when no token starts between it and the previous comma of its line (or the
+    line start). A trailing comma loses nothing and is allowed."""
+    commas = np.flatnonzero(c.b == ord(","))
+    if commas.shape[0] == 0:
+        return commas
+    newlines = np.flatnonzero(c.b == 10)
+    comma_line = np.searchsorted(newlines, commas)
+    before = np.searchsorted(c.starts, commas)          # tokens started before each comma
+    line_first = np.searchsorted(c.line, comma_line)    # index of the line's first token
+    same_line = np.concatenate([[False], comma_line[1:] == comma_line[:-1]])
+    previous = np.concatenate([[0], before[:-1]])
+    empty = np.where(same_line, before == previous, before == line_first)
+    return comma_line[empty & data_line[comma_line]]
 
 
 def _line_text(chunk: bytes, index: int) -> bytes:
@@ -145,10 +209,12 @@ def _show(raw: bytes, limit: int = 40) -> str:
 
 
 def _is_int(tok: bytes) -> bool:
-    return re.fullmatch(rb"-?[0-9]+", tok) is not None
+    return re.fullmatch(rb"[+-]?[0-9]+", tok) is not None
 
 
 def _is_float(tok: bytes) -> bool:
+    if b"_" in tok:        # Python's float() takes 1_000; numpy's readers do not
+        return False
     try:
         float(tok)
     except ValueError:
@@ -156,26 +222,43 @@ def _is_float(tok: bytes) -> bool:
     return True
 
 
-def _maybe_header(c: _Chunk, chunk: bytes, token_ok) -> int | None:
-    """Index of the first data line if it is a header (has a letter and a non-number token)."""
+def _strip_comment(raw: bytes) -> bytes:
+    """The line up to its first '#' or '%' (a comment runs to the end of the line)."""
+    cut = min((i for i in (raw.find(b"#"), raw.find(b"%")) if i >= 0), default=len(raw))
+    return raw[:cut]
+
+
+# a field that looks like a number: a digit, after an optional sign and decimal point
+_NUMBER_LIKE = re.compile(rb"[+-]?\.?[0-9]")
+
+
+def _is_header(raw: bytes) -> bool:
+    """The header rule, one for every text table and both readers: the first data line is a
+    header when none of its fields looks like a number (`source,target`). `0 1 # note` is
+    data; `1e3 5` or `0x10 5` is data too, and then an error naming the line."""
+    toks = [t for t in _SPLIT.split(_strip_comment(raw)) if t]
+    return bool(toks) and not any(_NUMBER_LIKE.match(t) for t in toks)
+
+
+def _maybe_header(c: _Chunk, chunk: bytes) -> int | None:
+    """Index of the first data line if it is a header (see `_is_header`)."""
     data = np.flatnonzero(~c.skip & (c.counts > 0))
     if data.shape[0] == 0:
         return None
-    raw = _line_text(chunk, int(data[0]))
-    toks = [t for t in _SPLIT.split(raw) if t]
-    if re.search(rb"[A-Za-z_]", raw) and not all(token_ok(t) for t in toks):
+    if _is_header(_line_text(chunk, int(data[0]))):
         return int(data[0])
     return None
 
 
 def _first_data_line(path: Path, after: int = 0) -> tuple[int, bytes] | None:
-    """(1-based line number, text) of the first non-empty, non-comment line past `after`."""
+    """(1-based line number, text without its comment) of the first line past `after` that
+    has a field once comments are cut (the same lines the byte scanner calls data)."""
     with _open_checked(path) as fh:
         for line_no, raw in enumerate(fh, start=1):
             if line_no == 1 and raw.startswith(b"\xef\xbb\xbf"):
                 raw = raw[3:]
-            text = raw.strip()
-            if line_no > after and text and text[:1] not in (b"#", b"%"):
+            text = _strip_comment(raw).strip()
+            if line_no > after and any(_SPLIT.split(text)):
                 return line_no, text
     return None
 
@@ -193,10 +276,10 @@ def _comment_char(path: Path) -> str:
 
 
 def _int_values(c: _Chunk, keep: np.ndarray) -> np.ndarray:
-    """Parse the kept tokens (already checked to be -?digits, <= 18 digits) as int64."""
+    """Parse the kept tokens (already checked to be [+-]?digits, <= 18 digits) as int64."""
     starts, ends = c.starts[keep], c.ends[keep]
     neg = c.b[starts] == ord("-")
-    starts = starts + neg
+    starts = starts + (neg | (c.b[starts] == ord("+")))
     length = ends - starts
     value = np.zeros(starts.shape[0], dtype=np.int64)
     scale = np.int64(1)
@@ -227,13 +310,11 @@ class _TextTable:
         """np.loadtxt (C-implemented in numpy 2; ~3x faster than the byte scanner on a
         10 M-edge list). None when it refuses the file: the byte scanner then either names
         the first bad line or reads what loadtxt could not (e.g. mixed separators)."""
-        token_ok = _is_int if self.kind == "int" else _is_float
         first = _first_data_line(self.path)
         skip, delimiter = 0, None
         if first is not None:
             line_no, raw = first
-            toks = [t for t in _SPLIT.split(raw) if t]
-            if re.search(rb"[A-Za-z_]", raw) and not all(token_ok(t) for t in toks):
+            if _is_header(raw):
                 self.header = (line_no, _show(raw))
                 skip = line_no
                 nxt = _first_data_line(self.path, after=line_no)
@@ -253,6 +334,10 @@ class _TextTable:
             return None
         if table.shape[0] == 0:
             return np.zeros(0, dtype=dtype), 0
+        if self.kind == "int" and (table.max() >= 10 ** _MAX_ID_DIGITS
+                                   or table.min() <= -10 ** _MAX_ID_DIGITS):
+            self.header = None
+            return None      # the scanner names the line with the too-long number
         if self.columns is None:
             self.columns = int(table.shape[1])
         elif table.shape[1] != self.columns:
@@ -273,10 +358,11 @@ class _TextTable:
             c = _tokenize(chunk)
             if header_possible and (~c.skip & (c.counts > 0)).any():
                 header_possible = False
-                h = _maybe_header(c, chunk, token_ok)
+                h = _maybe_header(c, chunk)
                 if h is not None:
                     c.skip[h] = True
-                    self.header = (line_offset + h + 1, _show(_line_text(chunk, h)))
+                    self.header = (line_offset + h + 1,
+                                   _show(_strip_comment(_line_text(chunk, h))))
             data_line = ~c.skip & (c.counts > 0)
             if self.columns is None and data_line.any():
                 self.columns = int(c.counts[np.argmax(data_line)])
@@ -294,23 +380,26 @@ class _TextTable:
 
     def _check_chunk(self, c: _Chunk, chunk: bytes, data_line, keep, line_offset, token_ok):
         """Find the first bad data line in this chunk, if any, and raise naming it."""
-        bad_lines = [np.flatnonzero(data_line & (c.counts != self.columns))]
+        bad_lines = [np.flatnonzero(data_line & (c.counts != self.columns)),
+                     _empty_field_lines(c, data_line)]
         if self.kind == "int":
             b = c.b
             body = ~_SEP[b]
             odd = body & ~_DIGIT[b]
             odd_pos = np.flatnonzero(odd)
             if odd_pos.shape[0]:
-                # a '-' right at a token start and followed by a digit is a sign, not junk
+                # a '-' or '+' right at a token start and followed by a digit is a sign
                 tok_start = np.zeros(b.shape[0], dtype=bool)
                 tok_start[c.starts] = True
                 nxt = np.minimum(odd_pos + 1, b.shape[0] - 1)
-                sign = (b[odd_pos] == ord("-")) & tok_start[odd_pos] & _DIGIT[b[nxt]]
+                sign = (((b[odd_pos] == ord("-")) | (b[odd_pos] == ord("+")))
+                        & tok_start[odd_pos] & _DIGIT[b[nxt]])
                 odd_pos = odd_pos[~sign]
                 newlines = np.flatnonzero(b == 10)
                 odd_line = np.searchsorted(newlines, odd_pos)
                 bad_lines.append(odd_line[data_line[odd_line]])
-            long_tok = keep & ((c.ends - c.starts) > _MAX_ID_DIGITS)
+            signed = ~_DIGIT[b[np.minimum(c.starts, b.shape[0] - 1)]]
+            long_tok = keep & ((c.ends - c.starts - signed) > _MAX_ID_DIGITS)
             bad_lines.append(c.line[long_tok])
         bad = np.concatenate(bad_lines)
         if bad.shape[0] == 0:
@@ -320,13 +409,16 @@ class _TextTable:
         self._explain(raw, line_offset + first + 1, token_ok)
 
     def _explain(self, raw: bytes, line_no: int, token_ok):
-        toks = [t for t in _SPLIT.split(raw) if t]
+        toks = [t for t in _SPLIT.split(_strip_comment(raw)) if t]
         for t in toks:
             if not token_ok(t):
                 word = "an integer" if self.kind == "int" else "a number"
                 self._fail(line_no, f"{_show(t)} is not {word} ({self.what})")
-        if self.kind == "int" and any(len(t.lstrip(b"-")) > _MAX_ID_DIGITS for t in toks):
+        if self.kind == "int" and any(len(t.lstrip(b"+-")) > _MAX_ID_DIGITS for t in toks):
             self._fail(line_no, f"number too large ({self.what})")
+        if _EMPTY_FIELD.search(_strip_comment(raw)):
+            self._fail(line_no, f"empty field: nothing between two commas, or before the "
+                                f"first ({self.what})")
         self._fail(line_no, f"expected {self.columns} column{'s' * (self.columns != 1)}, "
                             f"found {len(toks)} ({self.what})")
 
@@ -351,7 +443,7 @@ class _TextTable:
             # slow path, only on a bad file: name the first line with an unparsable token
             for i in np.flatnonzero(data_line):
                 raw = _line_text(chunk, int(i))
-                if not all(token_ok(t) for t in _SPLIT.split(raw) if t):
+                if not all(token_ok(t) for t in _SPLIT.split(_strip_comment(raw)) if t):
                     self._explain(raw, line_offset + int(i) + 1, token_ok)
             self._fail(line_offset + 1, f"could not parse the numbers ({self.what})")
         return values
@@ -398,18 +490,88 @@ def _read_edge_list(path: Path) -> _Raw:
     return raw
 
 
+_MTX_FORMATS = ("coordinate", "array")
+_MTX_FIELDS = ("real", "double", "integer", "pattern", "complex")
+_MTX_SYMMETRIES = ("general", "symmetric", "skew-symmetric", "hermitian")
+# scipy's read of a coordinate file, per entry it returns (both triangles of a symmetric
+# file): row, column and value arrays (24 B), the int64 copies and the kept selection (~34 B);
+# peak of the whole load measured with tracemalloc: 54 B per returned entry (1 M entries)
+_MTX_READ_BYTES_PER_ENTRY = 64
+
+
+def _readline_bounded(fh, limit: int = 1 << 16) -> bytes:
+    """One line, at most `limit` bytes of it kept (the rest of a longer line is skipped)."""
+    line = fh.readline(limit)
+    if line and not line.endswith(b"\n") and len(line) == limit:
+        while True:
+            rest = fh.readline(limit)
+            if not rest or rest.endswith(b"\n"):
+                break
+    return line
+
+
+def _mtx_header(path: Path) -> tuple[int, str, str, str, int, int, int, int]:
+    """(size line number, format, field, symmetry, rows, cols, entries, bytes after the size
+    line) of a Matrix Market file, read without scipy so that a declared size is judged
+    before anything is allocated."""
+    size = os.stat(require_regular_file(path)).st_size
+    with _open_checked(path) as fh:
+        banner = _readline_bounded(fh, 1024).split()
+        words = [w.decode("ascii", "replace").lower() for w in banner]
+        if (len(words) != 5 or words[0] != "%%matrixmarket" or words[1] != "matrix"
+                or words[2] not in _MTX_FORMATS or words[3] not in _MTX_FIELDS
+                or words[4] not in _MTX_SYMMETRIES):
+            raise InputError(f"{path}:1: not a readable Matrix Market file: the first line must "
+                             f"be '%%MatrixMarket matrix FORMAT FIELD SYMMETRY'")
+        fmt, fld, symmetry = words[2], words[3], words[4]
+        line_no = 1
+        while True:
+            raw = _readline_bounded(fh)
+            line_no += 1
+            if not raw:
+                raise InputError(f"{path}: not a readable Matrix Market file: no size line")
+            text = raw.strip()
+            if text and not text.startswith(b"%"):
+                break
+        after = size - fh.tell()
+    parts = text.split()
+    want = 3 if fmt == "coordinate" else 2
+    if len(parts) != want or not all(p.isdigit() for p in parts):
+        shape = "ROWS COLS ENTRIES" if want == 3 else "ROWS COLS"
+        raise InputError(f"{path}:{line_no}: the size line must be {shape} (non-negative "
+                         f"integers), got {_show(text)}")
+    rows, cols = int(parts[0]), int(parts[1])
+    if fmt == "coordinate":
+        entries = int(parts[2])
+    else:
+        entries = rows * cols if symmetry == "general" else rows * (rows + 1) // 2
+    return line_no, fmt, fld, symmetry, rows, cols, entries, after
+
+
 def _read_mtx(path: Path) -> _Raw:
-    _open_checked(path).close()
+    line_no, fmt, fld, symmetry, rows, cols, entries, after = _mtx_header(path)
+    if rows != cols:
+        raise InputError(f"{path}:{line_no}: adjacency must be square, got {rows} x {cols}")
+    if fld == "complex":
+        raise InputError(f"{path}:1: complex matrices are not adjacency matrices")
+    # an entry is at least "1 2\n" (coordinate) or "1\n" (array): a bound that needs no reading
+    room = (after + 1) // (4 if fmt == "coordinate" else 2)
+    if entries > room:
+        raise InputError(f"{path}:{line_no}: declares {entries:,} entries, but the {after:,} "
+                         f"bytes after the size line hold at most {room:,}")
+    mirrored = 1 if symmetry == "general" else 2     # the reader fills in the other triangle
+    # the read and the CSR build do not overlap: the peak is the larger of the two
+    need = max(graph_load_bytes(rows, entries),
+               graph_load_bytes(rows, 0) + _MTX_READ_BYTES_PER_ENTRY * entries * mirrored)
+    if fmt == "array":
+        need += 8 * rows * cols                       # the dense matrix scipy returns
+    require_memory(need, f"{path}:{line_no}: a {rows:,} x {cols:,} matrix with {entries:,} "
+                         f"entries")
     try:
-        rows, cols, _, layout, fld, symmetry = scipy.io.mminfo(str(path))
         matrix = scipy.io.mmread(str(path))
     except Exception as exc:  # scipy's reader raises several types; all mean a bad file
         msg = " ".join(str(exc).split()) or type(exc).__name__
         raise InputError(f"{path}: not a readable Matrix Market file: {msg}") from None
-    if rows != cols:
-        raise InputError(f"{path}:1: adjacency must be square, got {rows} x {cols}")
-    if fld == "complex":
-        raise InputError(f"{path}:1: complex matrices are not adjacency matrices")
     coo = sp.coo_matrix(matrix)
     src, dst, val = coo.row.astype(np.int64), coo.col.astype(np.int64), coo.data
     keep = np.ones(src.shape[0], dtype=bool)
@@ -427,45 +589,132 @@ def _read_mtx(path: Path) -> _Raw:
     return raw
 
 
-def _npz_array(path: Path, bundle, key: str) -> np.ndarray:
+def _npy_header(fh, where: str) -> tuple[tuple[int, ...], np.dtype, bool]:
+    """(shape, dtype, fortran_order) from the header of an .npy stream, reading no data.
+    Arrays of Python objects are refused here: reading them would mean unpickling."""
+    fmt = np.lib.format
     try:
-        return bundle[key]
-    except ValueError as exc:  # object arrays need pickle, which we refuse
-        raise InputError(f"{path}: key {key!r}: unreadable without pickle ({exc})") from None
-    except (OSError, zipfile.BadZipFile, EOFError) as exc:
-        raise InputError(f"{path}: key {key!r}: damaged ({exc})") from None
+        version = fmt.read_magic(fh)
+        if version == (1, 0):
+            shape, fortran, dtype = fmt.read_array_header_1_0(fh)
+        elif version == (2, 0):
+            shape, fortran, dtype = fmt.read_array_header_2_0(fh)
+        else:
+            raise ValueError(f"unsupported .npy format version {version[0]}.{version[1]}")
+    except Exception as exc:  # numpy raises ValueError/OSError/EOFError/SyntaxError here
+        msg = " ".join(str(exc).split()) or type(exc).__name__
+        raise InputError(f"{where}: not a readable .npy array: {msg}") from None
+    if dtype.hasobject:
+        raise InputError(f"{where}: not a readable .npy array without unpickling (it holds "
+                         f"Python objects; refused)")
+    return tuple(int(d) for d in shape), dtype, bool(fortran)
+
+
+def _npy_nbytes(shape, dtype) -> int:
+    count = 1
+    for d in shape:
+        count *= d
+    return count * dtype.itemsize
+
+
+def _npy_read(open_stream, where: str, stored: int, check=None) -> np.ndarray:
+    """An .npy array from `open_stream()` (a fresh binary stream each call): the header is
+    read first, `check(shape, dtype)` may refuse it (a memory estimate, a shape test), a
+    header declaring more data than the `stored` bytes is refused, then the data is read."""
+    with open_stream() as fh:
+        shape, dtype, _ = _npy_header(fh, where)
+        data_bytes = stored - fh.tell()
+    if check is not None:
+        check(shape, dtype)
+    nbytes = _npy_nbytes(shape, dtype)
+    if nbytes > data_bytes:
+        raise InputError(f"{where}: truncated: the header declares a {dtype} array of shape "
+                         f"{shape} ({nbytes:,} bytes) but {max(data_bytes, 0):,} bytes follow")
+    try:
+        with open_stream() as fh:
+            return np.lib.format.read_array(fh, allow_pickle=False)
+    except Exception as exc:  # a damaged member: zlib, CRC or short-read errors
+        msg = " ".join(str(exc).split()) or type(exc).__name__
+        raise InputError(f"{where}: damaged: {msg}") from None
+
+
+def _npz_check_headers(path: Path, headers: dict) -> None:
+    """Refuse from the member headers alone what must not be loaded: a wrong 'edges' or
+    'num_vertices' layout, and sizes beyond this machine's memory."""
+    shape, dtype = headers["edges"]
+    if not np.issubdtype(dtype, np.integer) or len(shape) != 2 or shape[1] != 2:
+        raise InputError(f"{path}: key 'edges' must be an m x 2 integer array, "
+                         f"got {dtype} with shape {shape}")
+    if "num_vertices" in headers:
+        shape, dtype = headers["num_vertices"]
+        if shape not in ((), (1,)) or not np.issubdtype(dtype, np.integer):
+            raise InputError(f"{path}: key 'num_vertices' must be one non-negative integer, "
+                             f"got {dtype} with shape {shape}")
+
+
+def _npz_memory(path: Path, headers: dict, num_vertices: int | None) -> None:
+    """The loading estimate from the declared sizes: every per-vertex array must end up with
+    n rows, so n is the largest of them; plus the raw bytes of all members."""
+    lengths = [headers[k][0][0] for k in ("features", "labels") + MASK_KEYS
+               if k in headers and len(headers[k][0]) >= 1]
+    n = max(lengths + ([num_vertices] if num_vertices is not None else []), default=0)
+    m = headers["edges"][0][0]
+    features = feature_bytes_of(*headers["features"]) if "features" in headers else 0
+    stored = sum(_npy_nbytes(shape, dtype) for shape, dtype in headers.values())
+    need = max(graph_load_bytes(n, m, features, labelled="labels" in headers), stored)
+    require_memory(need, f"{path}: {n:,} vertices and {m:,} edge rows")
 
 
 def _read_npz(path: Path) -> _Raw:
-    _open_checked(path).close()
+    require_regular_file(path)
     try:
-        bundle = np.load(path, allow_pickle=False)
-    except Exception as exc:
+        bundle = zipfile.ZipFile(path)
+    except (zipfile.BadZipFile, OSError, ValueError) as exc:
+        with _open_checked(path) as fh:
+            single = fh.read(6) == b"\x93NUMPY"
+        if single:
+            raise InputError(f"{path}: not an .npz bundle (a single array)") from None
         raise InputError(f"{path}: not a readable .npz bundle: {exc}") from None
-    if not isinstance(bundle, np.lib.npyio.NpzFile):
-        raise InputError(f"{path}: not an .npz bundle (a single array)")
     with bundle:
-        keys = list(bundle.files)
-        unknown = sorted(set(keys) - set(NPZ_KEYS))
+        members = {}
+        for info in bundle.infolist():
+            key = info.filename[:-4] if info.filename.endswith(".npy") else info.filename
+            members[key] = info
+        unknown = sorted(set(members) - set(NPZ_KEYS))
         if unknown:
             raise InputError(f"{path}: unknown key {unknown[0]!r} (allowed: {', '.join(NPZ_KEYS)})")
-        if "edges" not in keys:
+        if "edges" not in members:
             raise InputError(f"{path}: missing key 'edges' (an m x 2 integer array)")
-        arrays = {k: _npz_array(path, bundle, k) for k in keys}
+
+        def opener(info):
+            return lambda: bundle.open(info)
+
+        headers = {}
+        for key, info in members.items():
+            try:
+                with bundle.open(info) as fh:
+                    shape, dtype, _ = _npy_header(fh, f"{path}: key {key!r}")
+            except (zipfile.BadZipFile, OSError, EOFError) as exc:
+                raise InputError(f"{path}: key {key!r}: damaged ({exc})") from None
+            headers[key] = (shape, dtype)
+        _npz_check_headers(path, headers)
+        nv_value = None
+        if "num_vertices" in members:
+            nv = _npy_read(opener(members["num_vertices"]), f"{path}: key 'num_vertices'",
+                           members["num_vertices"].file_size)
+            if nv.ravel()[0] < 0:
+                raise InputError(f"{path}: key 'num_vertices' must be one non-negative "
+                                 f"integer, got {nv.ravel()[0]}")
+            nv_value = int(nv.ravel()[0])
+        _npz_memory(path, headers, nv_value)
+        arrays = {k: _npy_read(opener(info), f"{path}: key {k!r}", info.file_size)
+                  for k, info in members.items() if k != "num_vertices"}
     edges = arrays["edges"]
-    if not np.issubdtype(edges.dtype, np.integer) or edges.ndim != 2 or edges.shape[1] != 2:
-        raise InputError(f"{path}: key 'edges' must be an m x 2 integer array, "
-                         f"got {edges.dtype} with shape {edges.shape}")
     if edges.dtype == np.uint64 and edges.size and edges.max() > np.iinfo(np.int64).max:
         raise InputError(f"{path}: key 'edges': id too large")
     edges = edges.astype(np.int64, copy=False)
     raw = _Raw(edges[:, 0], edges[:, 1], locate_edge=lambda row: f"{path}: edges[{row}]")
-    if "num_vertices" in arrays:
-        nv = arrays["num_vertices"]
-        if nv.shape not in ((), (1,)) or not np.issubdtype(nv.dtype, np.integer) or nv.ravel()[0] < 0:
-            raise InputError(f"{path}: key 'num_vertices' must be one non-negative integer, "
-                             f"got {nv.dtype} with shape {nv.shape}")
-        raw.num_vertices = int(nv.ravel()[0])
+    raw.num_vertices = nv_value
     if "features" in arrays:
         raw.features = _check_feature_array(arrays["features"], f"{path}: key 'features'")
     if "labels" in arrays:
@@ -540,7 +789,7 @@ def load_labels(path: str | os.PathLike) -> np.ndarray:
     """Labels from `.npy` (1-D integers) or text with one integer per line (-1 = unlabelled)."""
     path = Path(path)
     if path.suffix.lower() == ".npy":
-        return _check_label_array(_load_npy(path), str(path))
+        return _check_label_array(_load_npy(path, labelled=True), str(path))
     table = _TextTable(path, kind="int", columns=1, what="labels: one integer per line")
     y = table.values
     bad = y < -1
@@ -551,15 +800,26 @@ def load_labels(path: str | os.PathLike) -> np.ndarray:
     return y
 
 
-def _load_npy(path: Path) -> np.ndarray:
-    _open_checked(path).close()
-    try:
-        arr = np.load(path, allow_pickle=False)
-    except Exception as exc:
-        raise InputError(f"{path}: not a readable .npy array: {' '.join(str(exc).split())}") from None
-    if not isinstance(arr, np.ndarray):
-        raise InputError(f"{path}: expected a single .npy array")
-    return arr
+def read_npy(path: str | os.PathLike, check=None) -> np.ndarray:
+    """One array from a regular `.npy` file, never unpickled. Only the header is read before
+    `check(shape, dtype)` (which may raise InputError: a memory estimate, a shape test) and
+    before a header that declares more data than the file holds is refused as truncated."""
+    path = require_regular_file(path)
+    return _npy_read(lambda: _open_checked(path), str(path), os.stat(path).st_size, check)
+
+
+def _vertex_data_memory(path: Path, labelled: bool):
+    """A `read_npy` check: refuse vertex data whose declared rows would not fit (each row
+    is a vertex of the graph, so the per-vertex cost of loading counts too)."""
+    def check(shape, dtype):
+        n = shape[0] if shape else 1
+        need = graph_load_bytes(n, 0, feature_bytes_of(shape, dtype), labelled=labelled)
+        require_memory(need, f"{path}: an array of shape {shape}")
+    return check
+
+
+def _load_npy(path: Path, labelled: bool = False) -> np.ndarray:
+    return read_npy(path, _vertex_data_memory(path, labelled))
 
 
 # --------------------------------------------------------------------------- splits
@@ -671,16 +931,32 @@ def load_graph(path: str | os.PathLike, *, features: str | os.PathLike | None = 
                          f"{raw.features.shape[1]} feature columns of {feat_where}")
     if input_dim is not None and input_dim < 1:
         raise InputError(f"--input-dim {input_dim}: must be at least 1")
+    _require_load_memory(path, raw, n, n_where)
 
     masks = _masks(path, raw, n, seed, notes)
     indptr, indices, cleanup = csr_from_edges(raw.src, raw.dst, n)
     del raw.src, raw.dst
     if cleanup.self_loops or cleanup.duplicates:
-        notes.append(f"dropped {cleanup.self_loops} self-loops and {cleanup.duplicates} "
-                     f"duplicate edges (a repeat of a pair in either direction)")
+        notes.append(f"dropped {cleanup.self_loops} self-loops (vertices with a loop) and "
+                     f"{cleanup.duplicates} duplicate edges (rows repeating a pair, in either "
+                     f"direction)")
     graph = Graph(indptr, indices, raw.features, raw.labels, *masks)
     dim = graph.input_dim if graph.input_dim is not None else input_dim
     return LoadedGraph(graph, cleanup, str(path), notes, dim)
+
+
+def _require_load_memory(path: Path, raw: _Raw, n: int, n_where: str) -> None:
+    """Before the masks and the CSR (both O(n) and O(m)): refuse a vertex count or edge
+    count this machine cannot hold, naming where the count came from."""
+    need = graph_load_bytes(n, raw.src.shape[0],
+                            raw.features.nbytes if raw.features is not None else 0,
+                            labelled=raw.labels is not None)
+    if n_where == "largest id + 1":
+        row = int(np.argmax(np.maximum(raw.src, raw.dst)))
+        source = f"{raw.locate_edge(row)}: vertex id {n - 1:,} (so {n:,} vertices)"
+    else:
+        source = f"{path}: {n:,} vertices ({n_where})"
+    require_memory(need, source)
 
 
 def _masks(path: Path, raw: _Raw, n: int, seed: int, notes: list[str]):

@@ -13,6 +13,7 @@ import numpy as np
 
 from shardtrain.errors import InputError, RunError
 from shardtrain.graph import Graph
+from shardtrain.io import read_npy, require_regular_file
 
 
 # ----------------------------------------------------------------------------- METIS
@@ -213,10 +214,9 @@ def load_assignment(path: str | os.PathLike, num_vertices: int,
     """A user's partition: `.npy` (integer array) or text with one worker id per line, in
     vertex order. Returns (assignment, k) with k = max id + 1; every worker must own a vertex."""
     path = Path(path)
-    if not path.is_file():
-        raise InputError(f"{option} {path}: no such file")
+    require_regular_file(path, option=option)   # a FIFO or device: refused before opening
     if path.suffix == ".npy":
-        a = _read_npy(path)
+        a = _read_npy(path, num_vertices)
     else:
         a = _read_text(path, num_vertices)
     if a.shape[0] != num_vertices:
@@ -237,23 +237,39 @@ def load_assignment(path: str | os.PathLike, num_vertices: int,
     return a, k
 
 
-def _read_npy(path: Path) -> np.ndarray:
-    try:
-        a = np.load(path, allow_pickle=False)
-    except (OSError, ValueError) as exc:
-        raise InputError(f"{path}: not a readable .npy array ({exc})") from None
-    if a.ndim != 1:
-        raise InputError(f"{path}: expected a 1-D array of worker ids, got shape {a.shape}")
-    if not np.issubdtype(a.dtype, np.integer):
-        raise InputError(f"{path}: expected integer worker ids, got dtype {a.dtype}")
-    return a.astype(np.int64)
+def _read_npy(path: Path, num_vertices: int) -> np.ndarray:
+    def check(shape, dtype):     # from the header alone: a declared 10**12 ids is not read
+        if len(shape) != 1:
+            raise InputError(f"{path}: expected a 1-D array of worker ids, got shape {shape}")
+        if not np.issubdtype(dtype, np.integer):
+            raise InputError(f"{path}: expected integer worker ids, got dtype {dtype}")
+        if shape[0] != num_vertices:
+            raise InputError(f"{path}: {shape[0]} worker ids for a graph of {num_vertices} "
+                             f"vertices (one per vertex, in vertex order)")
+
+    return read_npy(path, check).astype(np.int64)
+
+
+# a worker id line: up to 19 digits and a sign, room for spaces and a CR
+_MAX_ASSIGNMENT_LINE = 64
 
 
 def _read_text(path: Path, num_vertices: int) -> np.ndarray:
+    size = path.stat().st_size
+    if size > (num_vertices + 1) * (_MAX_ASSIGNMENT_LINE + 1):
+        raise InputError(f"{path}: {size:,} bytes is too long for {num_vertices} worker ids "
+                         f"(one per line, in vertex order)")
     try:
         raw = path.read_bytes()
     except OSError as exc:
         raise InputError(f"{path}: cannot read ({exc.strerror})") from None
+    # the text array below is as wide as the longest line: bound it (vectorised)
+    newline = np.flatnonzero(np.frombuffer(raw, dtype=np.uint8) == 10)
+    widths = np.diff(np.concatenate([[-1], newline, [len(raw)]])) - 1
+    if widths.shape[0] and widths.max() > _MAX_ASSIGNMENT_LINE:
+        i = int(np.argmax(widths > _MAX_ASSIGNMENT_LINE))
+        raise InputError(f"{path}:{i + 1}: line longer than {_MAX_ASSIGNMENT_LINE} bytes "
+                         f"(one worker id per line)")
     lines = raw.split(b"\n")
     if lines and lines[-1].strip() == b"":
         lines.pop()                       # the newline that ends the last line

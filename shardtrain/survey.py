@@ -301,10 +301,16 @@ def model_shape(graph, settings: SurveySettings) -> tuple[list[tuple[int, int]],
     """(dims, hops) of the model the settings describe on this graph."""
     input_dim = graph.input_dim if graph.input_dim is not None else settings.input_dim
     classes = graph.num_classes if graph.num_classes > 0 else settings.classes
+    # every missing width in one line, so a structure-only graph needs one retry, not two
+    missing = []
     if input_dim is None or input_dim < 1:
-        raise InputError("--input-dim: the graph has no features; give the input width D >= 1")
+        missing.append(("--input-dim", "features", "the input width D >= 1"))
     if classes is None or classes < 1:
-        raise InputError("--classes: the graph has no labels; give the number of classes C >= 1")
+        missing.append(("--classes", "labels", "the number of classes C >= 1"))
+    if missing:
+        raise InputError(f"{', '.join(m[0] for m in missing)}: the graph has no "
+                         f"{' and no '.join(m[1] for m in missing)}; give "
+                         f"{' and '.join(m[2] for m in missing)}")
     dims = layer_dims(int(input_dim), settings.hidden, int(classes), settings.layers)
     return dims, layer_hops(dims)
 

@@ -12,11 +12,14 @@ has to find the structure itself.
 """
 from __future__ import annotations
 
+import math
+
 import numpy as np
 
 from shardtrain.errors import InputError
 from shardtrain.graph import Graph, csr_from_edges
 from shardtrain.io import make_splits
+from shardtrain.memory import require_memory, synth_bytes
 
 ROLE_NAMES = ("hub", "urban", "suburban", "rural", "cross-dock", "returns", "airport",
               "port", "rail-terminal", "pickup-point", "cold-chain", "bulk")
@@ -42,7 +45,19 @@ def degree_propensities(n: int, avg_degree: float, exponent: float,
     return theta
 
 
-def _check(vertices, avg_degree, classes, features, homophily, degree_exponent, signal):
+# a role signal this strong already separates the roles without error; far larger values
+# only risk overflowing the float32 features
+MAX_SIGNAL = 1000.0
+
+
+def _check(vertices, avg_degree, classes, features, homophily, degree_exponent, signal,
+           seed=0):
+    """Refuse bad options at the door, naming them: NaN and infinities included (every
+    comparison with NaN is false, so each test is written to fail for it)."""
+    for option, value in (("--avg-degree", avg_degree), ("--homophily", homophily),
+                          ("--degree-exponent", degree_exponent), ("--signal", signal)):
+        if not math.isfinite(value):
+            raise InputError(f"{option} {value}: must be a finite number")
     if vertices < 2:
         raise InputError(f"--vertices {vertices}: need at least 2")
     if not 0 < avg_degree <= vertices - 1:
@@ -54,10 +69,16 @@ def _check(vertices, avg_degree, classes, features, homophily, degree_exponent, 
         raise InputError(f"--features {features}: need at least 1")
     if not 0.0 <= homophily <= 1.0:
         raise InputError(f"--homophily {homophily}: must be between 0 and 1")
-    if degree_exponent <= 2.0:
+    if not degree_exponent > 2.0:
         raise InputError(f"--degree-exponent {degree_exponent}: must be > 2 (finite mean degree)")
-    if signal < 0:
-        raise InputError(f"--signal {signal}: must be >= 0")
+    if not 0.0 <= signal <= MAX_SIGNAL:
+        raise InputError(f"--signal {signal}: must be between 0 and {MAX_SIGNAL:g}")
+    if seed < 0:
+        raise InputError(f"--seed {seed}: must be >= 0")
+    routes = min(int(round(vertices * avg_degree / 2)), vertices * (vertices - 1) // 2)
+    require_memory(synth_bytes(vertices, routes, features),
+                   f"--vertices {vertices} --avg-degree {avg_degree:g} --features {features}",
+                   what="generate the network")
 
 
 class _RouteSampler:
@@ -155,7 +176,8 @@ def parcel_network(vertices: int, avg_degree: float, classes: int, features: int
     routes joining depots of the same role; class means have Euclidean norm about `signal`
     against unit-variance noise per feature. Deterministic for a seed.
     """
-    _check(vertices, avg_degree, classes, features, homophily, degree_exponent, signal)
+    _check(vertices, avg_degree, classes, features, homophily, degree_exponent, signal,
+           seed)
     rng = np.random.default_rng(seed)
     n = int(vertices)
     # role shares are unequal (a few hubs, many local depots), drawn from the seed

@@ -12,6 +12,7 @@ from pathlib import Path
 
 from shardtrain.cli.common import add_graph_arguments, load_graph_from_args, positive_int_type
 from shardtrain.errors import InputError
+from shardtrain.io import require_regular_file
 
 
 def _imbalance(text: str) -> float:
@@ -62,8 +63,8 @@ def run(args) -> int:
         raise InputError(f"--method {args.method!r}: unknown; expected one of {', '.join(METHODS)}")
     if args.method is not None and args.workers is None:
         raise InputError("--workers: required with --method")
-    if args.assignment is not None and not Path(args.assignment).is_file():
-        raise InputError(f"--assignment {args.assignment}: no such file")
+    if args.assignment is not None:
+        require_regular_file(args.assignment, option="--assignment")
 
     loaded = load_graph_from_args(args)
     graph = loaded.graph
