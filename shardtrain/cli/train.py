@@ -213,8 +213,9 @@ def _check_options(args) -> tuple[TrainSettings, bool]:
         from shardtrain.partition import METHODS
         if args.method not in METHODS:
             raise InputError(f"--method {args.method!r}: expected one of {', '.join(METHODS)}")
-    if args.assignment is not None and not Path(args.assignment).is_file():
-        raise InputError(f"--assignment {args.assignment}: no such file")
+    if args.assignment is not None:
+        from shardtrain.io import require_regular_file
+        require_regular_file(args.assignment, option="--assignment")
     _check_fault_options(args)
     return settings, shard_dir
 
