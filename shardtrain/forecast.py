@@ -30,11 +30,11 @@ The epoch follows the worker's schedule, step by step, for every worker at once:
   step on a transport that moves nothing (`calibrate.shard_step_seconds`). Timed in pairs
   -- alternate epochs of ONE run on the real pipes and on a no-transfer transport, so the
   other tenants' load hits both alike -- the model's own compute costs the same CPU in both
-  (ratio 0.97-1.005 per worker), and the whole difference is the transport's copying (about
+  (paired median ratio 0.97-1.01 per worker), and the whole difference is the transport's copying (about
   0.3 ns per byte moved on the calibrating machine, 5-7 % of a step on the benchmark plan).
   The run books it under "exchange", so it is invisible in the compute a loopback step
-  measures and must be forecast with the transfer. No page faults per step, no extra
-  threads (thread and process CPU time agree) and no GC difference were found;
+  measures and must be forecast with the transfer. No page faults per step and no extra
+  threads (thread and process CPU time agree) were found in either;
 - waiting: exchanges synchronise, so between two of them every worker waits for the
   slowest: wait = max - own, per compute phase and per exchange.
 
