@@ -15,7 +15,10 @@ The headline run of a speed is the quietest one (fewest cores kept busy by other
 processes), not the one that agrees best. Goal: forecast / measured within 10 % at each
 speed. Beside every figure: the load average and the other tenants' busy cores during the
 run (machine-wide busy CPU from /proc/stat minus this run's own CPU, over its wall time);
-trust a figure when those stayed below 0.5 cores.
+trust a figure when those stayed below 0.5 cores. Beside, a CPU check that other tenants
+affect much less: each worker's CPU per epoch in the run (from a run of N epochs minus one of
+2) against the forecast's CPU of that worker (step and evaluation compute, transport copying
+and calls).
 
     python benchmarks/bench_forecast.py --out benchmarks/results/bench_forecast.json
 
@@ -81,8 +84,8 @@ def _forecast(graph, links, latency, out_json, cal, *extra) -> dict:
     info["epoch_s"] = {f"{p['link_gbps']:g}": p["epoch_s"] for p in doc["plans"]}
     info["plans"] = [{key: p[key] for key in (
         "link_gbps", "epoch_s", "compute_s", "exchange_s", "allreduce_s", "max_wait_s",
-        "eval_s", "compute_source", "transport_call_s", "transport_copy_s_per_byte")}
-        for p in doc["plans"]]
+        "eval_s", "compute_source", "transport_call_s", "transport_copy_s_per_byte",
+        "per_worker")} for p in doc["plans"]]
     return info
 
 
@@ -134,11 +137,20 @@ def main(argv=None) -> int:
                                "worker", "compute_s", "exchange_s", "allreduce_s", "wait_s",
                                "cpu_s", "bytes_sent", "bytes_received")}
                                for w in doc["workers"]],
+                           frames=doc["traffic"]["frames"],
                            payload_equal=doc["traffic"]["measured_payload_bytes"]
                            == doc["traffic"]["predicted_payload_bytes"])
                 runs[g].append(run)
                 print(f"  ran {run['command']}: median epoch {run['median_epoch_s']:.4f} s, "
                       f"other busy cores {run['other_busy_cores']:.2f}", file=sys.stderr)
+        # the CPU a run spends outside its epochs (start, shard loading, buffers): a run of
+        # 2 epochs, so that (CPU of N epochs - CPU of 2) / (N - 2) is CPU per epoch
+        out = Path(tmp) / "short.json"
+        short = shardtrain("train", graph, "--workers", 2, "--method", "metis",
+                           "--emulate-link", f"{links[0]:g}:{args.latency_us:g}",
+                           "--epochs", 2, "--json", out, "--quiet")
+        short["cpu_s"] = [w["cpu_s"] for w in json.loads(out.read_text())["workers"]]
+        result["two_epoch_run"] = short
         cal.unlink()                       # time the kernels afresh after the runs
         after = _forecast(graph, links, args.latency_us, Path(tmp) / "f1.json", cal)
     result["forecast_before"], result["forecast_after"] = before, after
@@ -153,6 +165,23 @@ def main(argv=None) -> int:
                                            r["other_busy_cores"] or 0.0))
         measured = best["median_epoch_s"]
         ratio = forecast_s / measured
+        # CPU check (little affected by other tenants, unlike wall time): each worker's CPU
+        # per epoch in the run against the forecast's own compute of a step and of the
+        # evaluation forward plus the transport's copying of the bytes it moved
+        cpu_check = []
+        for w, row in enumerate(best["workers"]):
+            in_run = (row["cpu_s"] - short["cpu_s"][w]) / (args.epochs - 2)
+            fw = [p for p in before["plans"] if f"{p['link_gbps']:g}" == key][0]
+            copy = fw["transport_copy_s_per_byte"] * (row["bytes_sent"]
+                                                      + row["bytes_received"]) / args.epochs
+            # fixed cost of its calls (one frame per call and peer with 2 workers; the
+            # calibrated wall time of a call, an upper bound of its CPU)
+            calls = fw["transport_call_s"] * best["frames"] / (2 * args.epochs)
+            model = fw["per_worker"][w]["compute_s"] + fw["per_worker"][w]["eval_compute_s"] \
+                + copy + calls
+            cpu_check.append({"worker": w, "run_cpu_s_per_epoch": in_run,
+                              "forecast_cpu_s_per_epoch": model, "of_which_copy_s": copy,
+                              "of_which_calls_s": calls, "ratio": model / in_run})
         rows.append({
             "link_gbps": g, "latency_us": args.latency_us,
             "forecast_epoch_s": forecast_s,
@@ -160,6 +189,8 @@ def main(argv=None) -> int:
             "measured_epoch_s": measured, "ratio_forecast_over_measured": ratio,
             "within_goal": abs(ratio - 1) <= GOAL,
             "ratio_with_measured_compute": measured_compute["epoch_s"][key] / measured,
+            "cpu_check": cpu_check,
+            "cpu_ratio": min(c["ratio"] for c in cpu_check),
             "all_ratios": [r["ratio_forecast_over_measured"] for r in runs[g]],
             "load_average_during": best["load_average_before"][0],
             "other_busy_cores": best["other_busy_cores"],
@@ -178,13 +209,17 @@ def main(argv=None) -> int:
     print(f"measured: shardtrain train GRAPH --workers 2 --method metis --emulate-link "
           f"G:{args.latency_us:g} --epochs {args.epochs} (median epoch after {warmup})")
     print(f"{'link':>11}  {'forecast':>9}  {'measured':>9}  {'ratio':>6}  {'goal':>4}  "
-          f"{'measured compute':>16}  {'load':>5}  {'others busy':>11}")
+          f"{'measured compute':>16}  {'CPU ratio':>9}  {'load':>5}  {'others busy':>11}")
     for r in rows:
         print(f"{r['link_gbps']:>6g} Gb/s  {r['forecast_epoch_s']:>8.4f}s  "
               f"{r['measured_epoch_s']:>8.4f}s  {r['ratio_forecast_over_measured']:>6.3f}  "
               f"{'ok' if r['within_goal'] else 'MISS':>4}  "
-              f"{r['ratio_with_measured_compute']:>16.3f}  {r['load_average_during']:>5.2f}  "
+              f"{r['ratio_with_measured_compute']:>16.3f}  {r['cpu_ratio']:>9.3f}  "
+              f"{r['load_average_during']:>5.2f}  "
               f"{r['other_busy_cores']:>8.2f} {'' if r['trusted'] else '(!)'}")
+    print("ratio = forecast / measured epoch; 'CPU ratio': the forecast's CPU per epoch of "
+          "the worker (step + evaluation + copying + calls) over its CPU per epoch in the run "
+          "(lowest of the workers)")
     verdict = "met" if result["goal_met"] else "NOT met"
     quiet = "" if result["all_trusted"] else \
         " ((!) other tenants kept >= 0.5 cores busy: re-run on a quiet machine)"

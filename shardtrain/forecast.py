@@ -334,7 +334,8 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
     workers = [{"worker": w, "compute_s": float(t["own"]["compute"][w]),
                 "exchange_s": float(t["own"]["exchange"][w]),
                 "allreduce_s": float(t["own"]["allreduce"][w]),
-                "wait_s": float(t["wait"][w])} for w in range(k)]
+                "wait_s": float(t["wait"][w]),
+                "eval_compute_s": float(e["own"]["compute"][w])} for w in range(k)]
     path = t["path"]
     return {
         "method": plan["method"], "workers": k, "link_gbps": float(link_gbps),
