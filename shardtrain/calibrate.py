@@ -9,7 +9,9 @@ Three speeds are measured, in the training dtype:
 - the model's own dropout-mask generator: mask elements per second;
 - one OS pipe: bytes per second (only used to check a forecast against a run on pipes);
 - one transport call's fixed cost (`exchange_call_seconds`), paid by every exchange and
-  every all-reduce step however few bytes it moves.
+  every all-reduce step however few bytes it moves;
+- the transport's own CPU per byte (`transport_copy_seconds`): a worker copies every frame it
+  sends into the kernel and every frame it receives out of it, on its one thread.
 A shard's whole training step can also be timed on the worker's own code
 (`shard_step_seconds`): the forecast then takes compute from that measurement.
 
@@ -215,9 +217,11 @@ def calibrate(dtype: str = "float32", *, seed: int = 0) -> dict:
         rows = _time_row_moves(np.dtype(dtype), rng)
     pipe = _time_pipe()
     call = exchange_call_seconds()
+    copy = transport_copy_seconds(fixed_cpu_s=call["cpu_s_per_call"])
     return {"version": CALIBRATION_VERSION, "dtype": dtype, "threads": 1,
             "sparse": sparse, "dense": dense, "elementwise": elementwise,
             "dropout_masks": masks, "row_moves": rows, "pipe": pipe, "exchange_call": call,
+            "transport_copy": copy,
             "calibration_s": time.perf_counter() - t0}
 
 
@@ -360,6 +364,11 @@ def _shape_error(cal: dict) -> str | None:
     if pipe is not None and not (isinstance(pipe, dict)
                                  and _positive_number(pipe.get("bytes_per_s"))):
         return "'pipe' must be an object with a positive 'bytes_per_s'"
+    copy = cal.get("transport_copy")
+    if copy is not None and not (isinstance(copy, dict)
+                                 and (copy.get("cpu_s_per_byte") == 0
+                                      or _positive_number(copy.get("cpu_s_per_byte")))):
+        return "'transport_copy' must be an object with a non-negative 'cpu_s_per_byte'"
     return None
 
 
@@ -501,6 +510,54 @@ def exchange_call_seconds(calls: int = 50, batches: int = 8) -> dict:
             t.close()
     return {"calls": calls * batches, "seconds_per_call": min(wall),
             "cpu_s_per_call": min(cpu)}
+
+
+def transport_copy_seconds(nbytes: int = 2**22, calls: int = 8, *,
+                           fixed_cpu_s: float = 0.0) -> dict:
+    """CPU seconds per byte a worker's transport spends moving frames: a worker and a peer
+    (a thread here) swap one `nbytes` frame each way through `PipeTransport`, as two workers
+    do in a halo exchange, each writing its frame and reading the other's on its one thread.
+    Per byte moved (sent + received), from the fastest call's thread CPU time minus the fixed
+    CPU of a call (`fixed_cpu_s`). This is the extra CPU a step has inside a run over the same
+    step on a transport that moves nothing (`_Loopback`): an exchange cannot end before the
+    worker has copied its bytes, whatever the link's speed."""
+    import threading
+
+    from shardtrain.profile import Profile
+    from shardtrain.transport.pipes import PipeTransport, make_pipe_mesh
+
+    ends = make_pipe_mesh(2, {(0, 1)})
+    ts = [PipeTransport(r, 2, ends[r], Profile(r), timeout_s=30.0) for r in range(2)]
+    items = max(int(nbytes) // 4, 1)
+    out = [np.ones(items, np.float32) for _ in range(2)]
+    inc = [np.empty(items, np.float32) for _ in range(2)]
+    cpu = []
+
+    def loop(r: int, n: int) -> None:
+        for _ in range(n):
+            c0 = time.thread_time()
+            ts[r].exchange({1 - r: out[r]}, {1 - r: inc[r]}, kind="halo", epoch=1, layer=0,
+                           direction="forward")
+            if r == 0:
+                cpu.append(time.thread_time() - c0)
+
+    try:
+        peer = threading.Thread(target=loop, args=(1, calls + 1))
+        peer.start()
+        loop(0, calls + 1)                              # the first call is a warm-up
+        peer.join()
+    finally:
+        for t in ts:
+            t.close()
+    moved = 2 * out[0].nbytes
+    best = max(min(cpu[1:]) - float(fixed_cpu_s), 0.0)
+    return {"bytes_per_call": moved, "calls": calls, "cpu_s_per_byte": best / moved}
+
+
+def transport_copy_speed(calibration: dict) -> float:
+    """CPU seconds per byte sent or received by a worker's transport; 0 when not measured."""
+    copy = calibration.get("transport_copy")
+    return float(copy["cpu_s_per_byte"]) if copy else 0.0
 
 
 def _shard_step_in_process(shard_dir: str, worker: int, settings_dict: dict,

@@ -1,7 +1,6 @@
-"""Command line: `shardtrain <command> ...`. Each command lives in its own module here with
-`add_arguments(parser)` and `run(args) -> int`. This package is the only place that prints
-or exits; everything below it raises `shardtrain.errors` exceptions.
-"""
+# Command line: `shardtrain <command> ...`. Each command lives in its own module here with
+# `add_arguments(parser)` and `run(args) -> int`. This package is the only place that prints
+# or exits; everything below it raises `shardtrain.errors` exceptions.
 from __future__ import annotations
 
 import argparse
@@ -15,12 +14,28 @@ from shardtrain.errors import (EXIT_BAD_INPUT, EXIT_INTERRUPTED, EXIT_RUN_FAILED
 COMMANDS = {
     "demo": "demo",
     "synth": "synth",
-    "split": "split",
     "survey": "survey",
+    "split": "split",
     "train": "train",
     "forecast": "forecast",
     "report": "report",
 }
+
+
+# what `shardtrain --help` tells a user (pre-wrapped: argparse would join the lines)
+DESCRIPTION = """\
+Plan and check partitioned training of a graph neural network (a GCN) before you pay for a
+cluster. shardtrain splits a graph into shards with halo vertices, predicts every plan's
+per-worker memory and network traffic, trains for real with one process per worker on this
+machine (exchanging halo rows at every layer, forward and backward, and all-reducing the
+gradients), proves the result equals single-process training and the bytes sent equal the
+prediction, and forecasts the epoch time on the link speed and CPUs you describe.
+
+Workflow: try `shardtrain demo` first (the whole workflow on an invented parcel-delivery
+network, one HTML page). Then, on your graph: synth (a demo graph; or bring your own .npz,
+.mtx or edge-list file) -> survey -> split -> train -> forecast -> report.
+`shardtrain COMMAND --help` describes each command.
+"""
 
 
 class _Parser(argparse.ArgumentParser):
@@ -31,7 +46,8 @@ class _Parser(argparse.ArgumentParser):
 
 
 def build_parser() -> argparse.ArgumentParser:
-    parser = _Parser(prog="shardtrain", description=__doc__.splitlines()[0])
+    parser = _Parser(prog="shardtrain", description=DESCRIPTION,
+                     formatter_class=argparse.RawDescriptionHelpFormatter)
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
     sub.required = True
     for name, module_name in COMMANDS.items():

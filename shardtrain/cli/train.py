@@ -133,6 +133,10 @@ def add_arguments(parser) -> None:
     parser.add_argument("--predictions", metavar="OUT.csv",
                         help="write vertex,predicted,label (label empty where unknown)")
     parser.add_argument("--quiet", action="store_true", help="no per-epoch output")
+    parser.add_argument("--emulate-link", metavar="GBPS[:LATENCY_US]",
+                        help="make the pipes no faster than a network link of GBPS Gbit/s per "
+                             "worker and LATENCY_US microseconds per call (to check a "
+                             "forecast on this machine; partitioned runs over pipes only)")
     parser.add_argument("--transport", choices=("pipes", "mpi"), default="pipes",
                         help="pipes: worker processes on this machine (default); mpi: one "
                              "rank per shard of SHARD_DIR, under mpiexec")
@@ -419,7 +423,21 @@ def _traffic_lines(traffic: dict) -> list[str]:
 
 # ---------------------------------------------------------------- the command
 
+def _emulated_link(args):
+    """--emulate-link parsed (a transport.link.LinkModel) or None; refused where no pipes run."""
+    if args.emulate_link is None:
+        return None
+    from shardtrain.transport.link import parse_link
+    link = parse_link(args.emulate_link, "--emulate-link")
+    if args.reference or args.transport == "mpi":
+        raise InputError("--emulate-link: not available with "
+                         f"{'--reference' if args.reference else '--transport mpi'} "
+                         "(it slows the pipes between worker processes)")
+    return link
+
+
 def run(args) -> int:
+    link = _emulated_link(args)
     if args.transport == "mpi":
         from shardtrain.cli.train_mpi import run_mpi
         return run_mpi(args)
@@ -427,7 +445,7 @@ def run(args) -> int:
     args.locks = []
     with _signals_as_interrupt():
         try:
-            return _run(args, phase)
+            return _run(args, phase, link)
         except KeyboardInterrupt as exc:     # a signal outside the training loop
             raise Interrupted(f"stopped by {getattr(exc, 'signal_name', 'Ctrl-C')} while "
                               f"{phase[0]}; no worker is left and no temporary file (start "
@@ -437,7 +455,7 @@ def run(args) -> int:
                 held.release()
 
 
-def _run(args, phase: list) -> int:
+def _run(args, phase: list, link) -> int:
     from shardtrain.faults import pause_point
 
     settings, from_shards = _check_options(args)
@@ -512,7 +530,8 @@ def _run(args, phase: list) -> int:
                                        init_params=init, on_epoch=progress,
                                        max_frame_bytes=args.max_frame_bytes,
                                        checkpoint=plan, resume=args.resumed,
-                                       slow=parse_slow_workers(args.slow_worker))
+                                       slow=parse_slow_workers(args.slow_worker),
+                                       link=link)
             if labels is None:
                 labels = result.labels
         phase[0] = "writing the outputs"
@@ -532,6 +551,8 @@ def _run(args, phase: list) -> int:
     if args.slow_worker:
         extra["slow_workers"] = {str(w): f
                                  for w, f in parse_slow_workers(args.slow_worker).items()}
+    if link is not None:
+        extra["emulated_link"] = {"gbps": link.gbps, "latency_us": link.latency_us}
     doc = rundoc.run_document(settings, graph_doc, result,
                               mode="reference" if args.reference else "partitioned", **extra)
     write_outputs(args, result, labels, doc)

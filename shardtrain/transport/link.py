@@ -20,6 +20,7 @@ sender's frame is due.
 """
 from __future__ import annotations
 
+import math
 import re
 from dataclasses import dataclass
 
@@ -32,7 +33,8 @@ class LinkModel:
     latency_us: float = 0.0
 
     def __post_init__(self):
-        if not self.gbps > 0 or not self.latency_us >= 0:
+        if not (math.isfinite(self.gbps) and self.gbps > 0
+                and math.isfinite(self.latency_us) and self.latency_us >= 0):
             raise ValueError(f"link needs gbps > 0 and latency_us >= 0, got {self}")
 
     def seconds(self, nbytes: int) -> float:
@@ -60,6 +62,10 @@ def parse_link(text: str, option: str = "--emulate-link") -> LinkModel:
                          f"got {text!r}")
     gbps = float(m.group(1))
     latency = float(m.group(2)) if m.group(2) is not None else 0.0
-    if gbps <= 0:
-        raise InputError(f"{option}: bandwidth must be above 0 Gbit/s, got {text!r}")
+    if not (math.isfinite(gbps) and gbps > 0):
+        raise InputError(f"{option}: bandwidth must be a finite number above 0 Gbit/s, "
+                         f"got {text!r}")
+    if not math.isfinite(latency):
+        raise InputError(f"{option}: latency must be a finite number of microseconds >= 0, "
+                         f"got {text!r}")
     return LinkModel(gbps, latency)
