@@ -123,6 +123,18 @@ def _check_options(args) -> None:
     if args.calibration and Path(args.calibration).exists() is False \
             and not Path(args.calibration).parent.is_dir():
         raise InputError(f"--calibration: folder {Path(args.calibration).parent} does not exist")
+    from shardtrain.files import check_paths
+
+    # an existing --calibration is read (an input); a missing one is written (an output)
+    cal = args.calibration if args.flops_per_worker is None else None
+    cal_exists = cal is not None and Path(cal).exists() and not Path(cal).is_dir()
+    check_paths(inputs={"GRAPH": args.graph, "--features": args.features,
+                        "--labels": args.labels,
+                        "--calibration": cal if cal_exists else None},
+                outputs={"--json": args.json,
+                         "--calibration": None if cal_exists or (cal and Path(cal).is_dir())
+                         else cal},
+                out_dirs={"--plot": args.plot})
 
 
 def _check_positive_opt(value, option, allow_zero=False) -> None:
