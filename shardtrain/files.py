@@ -200,21 +200,24 @@ def atomic_directory(path: str | os.PathLike, *, overwrite: bool = False) -> Ite
     _fsync_dir(path.parent)
 
 
-def read_json_document(file: str | os.PathLike, *, format: str, version: int, what: str) -> dict:
+def read_json_document(file: str | os.PathLike, *, format: str, version: int, what: str,
+                       kind: str | None = None) -> dict:
     """A JSON file we wrote ourselves (`{"format": format, "version": version, ...}`), or an
-    InputError naming the file: unreadable, not JSON, another format, or another version.
-    `what` names the document in messages ("checkpoint", "shard manifest")."""
+    InputError naming the file: unreadable, too large or too deeply nested, not JSON,
+    another format, another version, or (with `kind`, see `shardtrain.documents.SHAPES`)
+    not of that document's shape. `what` names the document in messages ("checkpoint",
+    "shard manifest")."""
+    from shardtrain import documents
+
     file = Path(file)
-    try:
-        doc = json.loads(file.read_text(encoding="utf-8"))
-    except (OSError, UnicodeDecodeError, ValueError) as exc:
-        raise InputError(f"{file}: not readable JSON ({' '.join(str(exc).split())})") from None
+    doc = documents.parse_json_file(file, max_bytes=documents.MAX_BYTES.get(
+        kind, documents.DEFAULT_MAX_BYTES), line_first=False)
     if not isinstance(doc, dict) or doc.get("format") != format:
         raise InputError(f"{file}: not a {what} (format is not {format!r})")
     if doc.get("version") != version:
         raise InputError(f"{file}: {what} version {doc.get('version')!r}, this shardtrain "
                          f"reads version {version}")
-    return doc
+    return doc if kind is None else documents.validate(doc, kind, file)
 
 
 # ---------------------------------------------------------------- output checks
