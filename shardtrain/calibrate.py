@@ -18,7 +18,6 @@ interpolation in width and size.
 """
 from __future__ import annotations
 
-import math
 import time
 from pathlib import Path
 

@@ -127,9 +127,9 @@ def check_out_dir(out, overwrite: bool) -> None:
     parent = p.absolute().parent
     if parent.exists() and not parent.is_dir():
         raise InputError(f"--out {out}: {parent} is not a folder")
-    from shardtrain.files import is_inside, probe_folder
+    from shardtrain.files import current_folder, is_inside, probe_folder
 
-    if is_inside(Path.cwd(), p):   # renaming the folder we stand in cannot work
+    if is_inside(current_folder(), p):   # renaming the folder we stand in cannot work
         raise InputError(f"--out {out}: is or holds the current folder, which the demo "
                          f"cannot replace (run it from another folder or give another --out)")
     while not parent.exists():     # the demo creates missing parent folders

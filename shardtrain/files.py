@@ -238,6 +238,14 @@ def _inside(path: Path, folder: Path) -> bool:
     return p == f or f in p.parents
 
 
+def _cwd() -> Path:
+    """The current folder, or a path inside no folder when it was removed under us."""
+    try:
+        return Path.cwd()
+    except OSError:
+        return Path("/nonexistent-current-folder")
+
+
 def _probe(folder: Path, where: str) -> None:
     """Create and remove a file in `folder`: the only test of writability that also holds
     for root, read-only mounts and full disks (os.access trusts permission bits)."""
@@ -255,6 +263,7 @@ def _probe(folder: Path, where: str) -> None:
 
 probe_folder = _probe
 is_inside = _inside
+current_folder = _cwd
 
 
 def _flatten(named: dict) -> list[tuple[str, Path]]:
@@ -337,7 +346,7 @@ def check_paths(*, inputs: dict | None = None, outputs: dict | None = None,
             if _inside(ip, p):
                 raise InputError(f"{where}: holds the input {iopt} {ip}, which replacing "
                                  f"the folder would destroy (give another folder)")
-        if _inside(Path.cwd(), p):
+        if _inside(_cwd(), p):
             raise InputError(f"{where}: is or holds the current folder, which cannot be "
                              f"replaced (run from another folder or give another --out)")
         _probe(p.absolute().parent, where)

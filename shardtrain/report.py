@@ -61,8 +61,6 @@ def read_document(path) -> tuple[str, dict]:
     """(kind, dict) of a JSON file, checked against the shape of its kind
     (`shardtrain.documents`); InputError naming the file (and key) when it is not one we
     know or does not have that shape."""
-    from shardtrain import documents
-
     path = Path(path)
     kind, doc = _parse(path)
     if kind is None:

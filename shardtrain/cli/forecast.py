@@ -11,7 +11,6 @@ The table marks the fastest plan and the plan with the fewest workers meeting
 """
 from __future__ import annotations
 
-import json
 import math
 import sys
 from pathlib import Path
