@@ -431,13 +431,27 @@ class _Clock:
 
 def run_demo(settings: DemoSettings, on_step: Callable[[str], None] | None = None
              ) -> DemoResult:
-    """Run the five steps into `settings.out` (see the module docstring)."""
-    from shardtrain.files import atomic_directory, write_json_atomic
-
+    """Run the five steps into `settings.out` (see the module docstring); parent folders
+    it creates are removed again when it fails."""
     settings = settings.validate()
     say = on_step or (lambda text: None)
     out = Path(settings.out)
+    created = [a for a in out.absolute().parents if not a.exists()]   # deepest first
     out.absolute().parent.mkdir(parents=True, exist_ok=True)
+    try:
+        return _run_into(settings, out, say)
+    except BaseException:
+        for folder in created:       # a failed demo leaves no folder it made either
+            try:
+                folder.rmdir()
+            except OSError:
+                break
+        raise
+
+
+def _run_into(settings: DemoSettings, out: Path, say) -> DemoResult:
+    from shardtrain.files import atomic_directory, write_json_atomic
+
     clock = _Clock()
     with atomic_directory(out, overwrite=True) as tmp:   # check_out_dir guarded overwrite
         result = _run_steps(settings, tmp, say, clock)

@@ -28,8 +28,10 @@ import numpy as np
 
 from shardtrain.errors import InputError, RunError
 
-# errors that mean "no room or no write access here", not a bug: one line, exit 3
-SPACE_ERRNOS = frozenset(e for e in (errno.ENOSPC, errno.EFBIG, errno.EROFS,
+# errors that mean "no room or no write access here" (or a failing disk), not a bug:
+# one line, exit 3
+SPACE_ERRNOS = frozenset(e for e in (errno.ENOSPC, errno.EFBIG, errno.EROFS, errno.EIO,
+                                     errno.EACCES, errno.EPERM,
                                      getattr(errno, "EDQUOT", None)) if e)
 
 

@@ -227,3 +227,15 @@ def test_created_output_folders_are_removed_only_when_empty_after_a_failure(tmp_
     c.mkdir()
     finish_outputs(failed=False)
     assert c.is_dir()                           # a command that succeeded keeps its folders
+
+
+def test_a_failed_demo_removes_the_parent_folders_it_created(tmp_path, monkeypatch):
+    from shardtrain import demo
+    from shardtrain.errors import RunError
+
+    def fail(*args, **kwargs):
+        raise RunError("step failed")
+    monkeypatch.setattr(demo, "_run_steps", fail)
+    with pytest.raises(RunError):
+        demo.run_demo(demo.DemoSettings.quick(out=str(tmp_path / "a" / "b" / "out")))
+    assert list(tmp_path.iterdir()) == []
