@@ -154,9 +154,11 @@ def epoch_writer(plan: dict, last_epoch: int, *,
 def latest_epoch(folder) -> int | None:
     """The epoch of the committed checkpoint in `folder`, or None (none, or unreadable)."""
     try:
-        return int(json.loads((Path(folder) / INDEX).read_text(encoding="utf-8"))["epoch"])
+        epoch = json.loads((Path(folder) / INDEX).read_text(encoding="utf-8"))["epoch"]
     except (OSError, ValueError, KeyError, TypeError, RecursionError):
         return None
+    ok = isinstance(epoch, int) and not isinstance(epoch, bool) and epoch >= 1
+    return epoch if ok else None
 
 
 @dataclass
