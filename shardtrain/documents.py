@@ -191,8 +191,9 @@ class Array(Spec):
             arr = np.asarray(value)
         except (ValueError, TypeError):
             arr = None
-        if arr is None or arr.ndim != self.ndim or arr.dtype.kind not in "iu" or \
-                (arr.size and arr.min() < 0):
+        empty = arr is not None and arr.size == 0 and arr.ndim <= self.ndim
+        if not empty and (arr is None or arr.ndim != self.ndim or arr.dtype.kind not in "iu"
+                          or arr.min() < 0):
             raise _Bad(where, f"must be a {self.ndim}-dimensional rectangular list of "
                               f"integers >= 0")
         return value
