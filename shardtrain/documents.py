@@ -239,8 +239,9 @@ GRAPH_FACTS = Obj(optional={"vertices": COUNT, "edges": COUNT, "input_dim": Int(
                             "classes": Int(min=0, nullable=True), "source": Str(),
                             "shard_dir": Str(), "structure_fingerprint": Str(nullable=True),
                             "num_vertices": COUNT, "num_edges": COUNT})
-HOP = Obj(required={"d_in": Int(min=1), "d_out": Int(min=1), "forward_width": Int(min=0),
-                    "backward_width": Int(min=0)})
+HOP = Obj(required={"layer": Int(min=0, max=1024), "d_in": Int(min=1), "d_out": Int(min=1),
+                    "forward_width": Int(min=0), "backward_width": Int(min=0)},
+          optional={"transform_first": Bool()})
 MODEL = Obj(required={"dtype": DTYPE, "hops": List(HOP, min_len=1, max_len=1024)},
             optional={"layers": Int(min=1), "hidden": Int(min=1), "bias": Bool(),
                       "parameters": COUNT, "dims": DIMS})
@@ -258,7 +259,11 @@ SURVEY_PLAN = Obj(required={"method": Str(max_len=256), "workers": WORKERS,
                             "traffic": PLAN_TRAFFIC},
                   optional={"edge_cut": COUNT, "replication_factor": Num(min=0),
                             "max_memory_bytes": COUNT, "epoch_payload_bytes": COUNT,
-                            "imbalance": Obj(), "partition_s": SECONDS_OR_NULL,
+                            "imbalance": Obj(optional={
+                                k: Obj(optional={"max_over_mean": Num(min=0, nullable=True),
+                                                 "max": Num(min=0), "mean": Num(min=0)})
+                                for k in ("owned", "local_edges", "halo", "bytes_sent")}),
+                            "partition_s": SECONDS_OR_NULL,
                             "build_s": SECONDS_OR_NULL})
 SURVEY = Obj(required={"model": MODEL, "plans": List(SURVEY_PLAN, min_len=1)},
              optional={"graph": GRAPH_FACTS})
@@ -351,9 +356,11 @@ def _check_survey(doc: dict) -> None:
         if workers != list(range(k)):
             raise _Bad(f"plans[{i}].shards", f"must list workers 0..{k - 1} once each "
                                              f"(workers is {k})")
-        for key in ("pair_bytes", "send_rows"):
-            if key in plan["traffic"] and np.shape(plan["traffic"][key]) != (k, k):
-                raise _Bad(f"plans[{i}].traffic.{key}", f"must be {k} x {k}")
+        for key, shape in (("pair_bytes", (k, k)), ("send_rows", (k, k)),
+                           ("allreduce_bytes_per_worker", (k,))):
+            if key in plan["traffic"] and np.shape(plan["traffic"][key]) != shape:
+                raise _Bad(f"plans[{i}].traffic.{key}",
+                           f"must be {' x '.join(map(str, shape))} (workers is {k})")
 
 
 def _check_checkpoint(doc: dict) -> None:
