@@ -36,8 +36,8 @@ SPACE_ERRNOS = frozenset(e for e in (errno.ENOSPC, errno.EFBIG, errno.EROFS, err
 
 
 def _write_failed(path: Path, exc: OSError) -> RunError:
-    return RunError(f"{path}: could not be written ({exc.strerror or exc}); "
-                    f"nothing was left under that name")
+    return RunError(f"{path}: could not be written ({exc.strerror or exc}); no partial "
+                    f"file was left")
 
 
 def _fsync_dir(folder: Path) -> None:
