@@ -25,7 +25,7 @@ from pathlib import Path
 
 import numpy as np
 
-from shardtrain.files import atomic_output
+from shardtrain.files import atomic_output, json_text
 from shardtrain.profile import Profile
 from shardtrain.transport.pipes import PIPE_BYTES, PipeTransport, _grow_pipe, make_pipe_mesh
 
@@ -148,7 +148,7 @@ def main(argv=None) -> int:
     out = Path(args.out)
     out.parent.mkdir(parents=True, exist_ok=True)
     with atomic_output(out) as tmp:
-        tmp.write_text(json.dumps(result, indent=2) + "\n")
+        tmp.write_text(json_text(result))   # strict JSON: NaN -> null
     return 0
 
 

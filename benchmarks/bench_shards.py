@@ -16,7 +16,6 @@ refinement takes minutes per plan (see `--methods` to include it).
 from __future__ import annotations
 
 import argparse
-import json
 import os
 import platform
 import resource
@@ -156,11 +155,8 @@ def main(argv=None) -> int:
                 "process's CPU time (the machine is shared: compare CPU rates run to run)",
     }
     os.makedirs(os.path.dirname(os.path.abspath(args.out)), exist_ok=True)
-    tmp = args.out + ".tmp"
-    with open(tmp, "w") as fh:
-        json.dump(doc, fh, indent=1)
-        fh.write("\n")
-    os.replace(tmp, args.out)
+    from shardtrain.files import write_json_atomic
+    write_json_atomic(args.out, doc)   # strict JSON (NaN -> null), atomic
     print(f"wrote {args.out}; build rate min {min(rates) / 1e6:.2f} M edges/s, peak RSS "
           f"{doc['peak_rss_bytes'] / 2**30:.2f} GiB")
     return 0

@@ -20,8 +20,6 @@ interpolation in width and size.
 """
 from __future__ import annotations
 
-import json
-import math
 import time
 from pathlib import Path
 
@@ -326,50 +324,8 @@ def pipe_speed(calibration: dict) -> float | None:
     return float(pipe["bytes_per_s"]) if pipe else None
 
 
-def _positive_number(x) -> bool:
-    return isinstance(x, (int, float)) and not isinstance(x, bool) and math.isfinite(x) \
-        and x > 0
-
-
 def _positive_int(x) -> bool:
     return isinstance(x, int) and not isinstance(x, bool) and x > 0
-
-
-# what the speed helpers read: {section: (is a list of rows?, {key: check})}
-_SHAPE = {
-    "sparse": (True, {"nnz": _positive_int, "width": _positive_int,
-                      "nnz_cols_per_s": _positive_number}),
-    "dense": (True, {"d_in": _positive_int, "d_out": _positive_int,
-                     "flops_per_s": _positive_number}),
-    "elementwise": (False, {"bytes_per_s": _positive_number}),
-    "dropout_masks": (False, {"elements_per_s": _positive_number}),
-}
-
-
-def _shape_error(cal: dict) -> str | None:
-    """What is wrong with a calibration of this version, or None."""
-    for section, (is_list, keys) in _SHAPE.items():
-        value = cal.get(section)
-        rows = value if is_list else [value]
-        if not isinstance(rows, list) or not rows or \
-                not all(isinstance(r, dict) for r in rows):
-            kind = "a non-empty list of objects" if is_list else "an object"
-            return f"{section!r} must be {kind}"
-        for i, row in enumerate(rows):
-            for key, ok in keys.items():
-                if not ok(row.get(key)):
-                    where = f"{section}[{i}]" if is_list else section
-                    return f"{where}.{key} must be a positive number, got {row.get(key)!r}"
-    pipe = cal.get("pipe")
-    if pipe is not None and not (isinstance(pipe, dict)
-                                 and _positive_number(pipe.get("bytes_per_s"))):
-        return "'pipe' must be an object with a positive 'bytes_per_s'"
-    copy = cal.get("transport_copy")
-    if copy is not None and not (isinstance(copy, dict)
-                                 and (copy.get("cpu_s_per_byte") == 0
-                                      or _positive_number(copy.get("cpu_s_per_byte")))):
-        return "'transport_copy' must be an object with a non-negative 'cpu_s_per_byte'"
-    return None
 
 
 def read_calibration(path, dtype: str, option: str = "--calibration") -> dict | None:
@@ -386,25 +342,21 @@ def read_calibration(path, dtype: str, option: str = "--calibration") -> dict | 
         return None
     if p.is_dir():
         raise InputError(f"{where}: is a directory")
-    try:
-        text = p.read_text(encoding="utf-8")
-    except OSError as exc:
-        raise InputError(f"{where}: cannot read ({exc.strerror or exc})") from None
-    except UnicodeDecodeError:
-        raise InputError(f"{where}:1: not a calibration JSON (not UTF-8 text)") from None
-    try:
-        cal = json.loads(text)
-    except json.JSONDecodeError as exc:
-        raise InputError(f"{where}:{exc.lineno}: not valid JSON ({exc.msg})") from None
+    from shardtrain import documents
+
+    cal = documents.parse_json_file(p, max_bytes=documents.MAX_BYTES["calibration"],
+                                    where=where)
     version = cal.get("version") if isinstance(cal, dict) else None
     if not (_positive_int(version) and cal.get("dtype") in ("float32", "float64")):
         raise InputError(f"{where}:1: not a calibration file (needs 'version' and 'dtype'; "
                          f"give a new file name and forecast writes one there)")
     if version != CALIBRATION_VERSION:
         return None
-    problem = _shape_error(cal)
-    if problem is not None:
-        raise InputError(f"{where}:1: not a usable calibration: {problem}")
+    try:   # the shape is documents.CALIBRATION
+        cal = documents.validate(cal, "calibration", where)
+    except InputError as exc:
+        raise InputError(f"{where}:1: not a usable calibration: "
+                         f"{str(exc)[len(where) + 2:]}") from None
     return cal if cal["dtype"] == dtype else None
 
 

@@ -29,6 +29,7 @@ from __future__ import annotations
 import hashlib
 import json
 import re
+import zipfile
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable
@@ -158,9 +159,11 @@ def epoch_writer(plan: dict, last_epoch: int, *,
 def latest_epoch(folder) -> int | None:
     """The epoch of the committed checkpoint in `folder`, or None (none, or unreadable)."""
     try:
-        return int(json.loads((Path(folder) / INDEX).read_text(encoding="utf-8"))["epoch"])
-    except (OSError, ValueError, KeyError, TypeError):
+        epoch = json.loads((Path(folder) / INDEX).read_text(encoding="utf-8"))["epoch"]
+    except (OSError, ValueError, KeyError, TypeError, RecursionError):
         return None
+    ok = isinstance(epoch, int) and not isinstance(epoch, bool) and epoch >= 1
+    return epoch if ok else None
 
 
 @dataclass
@@ -186,16 +189,10 @@ def read_checkpoint(folder, option: str = "--resume") -> Checkpoint:
         raise InputError(f"{where}: no such folder")
     if not index.is_file():
         raise InputError(f"{where}: no {INDEX} (not a checkpoint folder)")
+    # the shape (documents.CHECKPOINT): epoch >= 1, a state-NNNNNN.npz name, settings ...
     doc = read_json_document(index, format=FORMAT, version=VERSION,
-                             what="shardtrain checkpoint")
-    epoch, state_name = doc.get("epoch"), doc.get("state_file")
-    if not isinstance(epoch, int) or epoch < 1:
-        raise InputError(f"{index}: 'epoch' missing or not a positive integer")
-    if not isinstance(state_name, str) or not _STATE_RE.fullmatch(state_name):
-        raise InputError(f"{index}: 'state_file' missing or not a state-NNNNNN.npz name")
-    for key in ("settings", "workers", "dims"):
-        if key not in doc:
-            raise InputError(f"{index}: missing key {key!r}")
+                             what="shardtrain checkpoint", kind="checkpoint")
+    epoch, state_name = doc["epoch"], doc["state_file"]
     state = folder / state_name
     if not state.is_file():
         raise InputError(f"{state}: no such file (named by {index})")
@@ -204,7 +201,7 @@ def read_checkpoint(folder, option: str = "--resume") -> Checkpoint:
     try:
         with np.load(state, allow_pickle=False) as z:
             arrays = {k: z[k] for k in z.files}
-    except (OSError, ValueError, EOFError) as exc:
+    except (OSError, ValueError, EOFError, KeyError, zipfile.BadZipFile) as exc:
         raise InputError(f"{state}: not a readable .npz ({' '.join(str(exc).split())})"
                          ) from None
     from shardtrain.stopping import PREFIX as EARLY
@@ -212,7 +209,8 @@ def read_checkpoint(folder, option: str = "--resume") -> Checkpoint:
     params = {k: v for k, v in arrays.items() if not k.startswith(("adam_", EARLY))}
     adam = {k: v for k, v in arrays.items() if k.startswith("adam_")}
     early = {k: v for k, v in arrays.items() if k.startswith(EARLY)}
-    if int(np.asarray(adam.get("adam_t", -1))) != epoch:
+    step = np.asarray(adam.get("adam_t", -1))
+    if step.shape != () or step.dtype.kind not in "iuf" or step != epoch:
         raise InputError(f"{state}: Adam step count differs from the epoch {epoch} in {index}")
     return Checkpoint(folder, epoch, doc, params, adam, early)
 

@@ -127,6 +127,16 @@ def check_out_dir(out, overwrite: bool) -> None:
     parent = p.absolute().parent
     if parent.exists() and not parent.is_dir():
         raise InputError(f"--out {out}: {parent} is not a folder")
+    from shardtrain.files import current_folder, is_inside, probe_folder
+
+    if is_inside(current_folder(), p):   # renaming the folder we stand in cannot work
+        raise InputError(f"--out {out}: is or holds the current folder, which the demo "
+                         f"cannot replace (run it from another folder or give another --out)")
+    while not parent.exists():     # the demo creates missing parent folders
+        parent = parent.parent
+    if not parent.is_dir():
+        raise InputError(f"--out {out}: {parent} is not a folder")
+    probe_folder(parent, f"--out {out}")
 
 
 @dataclass
@@ -421,13 +431,27 @@ class _Clock:
 
 def run_demo(settings: DemoSettings, on_step: Callable[[str], None] | None = None
              ) -> DemoResult:
-    """Run the five steps into `settings.out` (see the module docstring)."""
-    from shardtrain.files import atomic_directory, write_json_atomic
-
+    """Run the five steps into `settings.out` (see the module docstring); parent folders
+    it creates are removed again when it fails."""
     settings = settings.validate()
     say = on_step or (lambda text: None)
     out = Path(settings.out)
+    created = [a for a in out.absolute().parents if not a.exists()]   # deepest first
     out.absolute().parent.mkdir(parents=True, exist_ok=True)
+    try:
+        return _run_into(settings, out, say)
+    except BaseException:
+        for folder in created:       # a failed demo leaves no folder it made either
+            try:
+                folder.rmdir()
+            except OSError:
+                break
+        raise
+
+
+def _run_into(settings: DemoSettings, out: Path, say) -> DemoResult:
+    from shardtrain.files import atomic_directory, write_json_atomic
+
     clock = _Clock()
     with atomic_directory(out, overwrite=True) as tmp:   # check_out_dir guarded overwrite
         result = _run_steps(settings, tmp, say, clock)

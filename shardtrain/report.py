@@ -8,7 +8,6 @@ from __future__ import annotations
 
 import base64
 import html
-import json
 import tempfile
 from pathlib import Path
 
@@ -59,18 +58,59 @@ def document_kind(doc) -> str | None:
 
 
 def read_document(path) -> tuple[str, dict]:
-    """(kind, dict) of a JSON file; InputError naming the file when it is not one we know."""
+    """(kind, dict) of a JSON file, checked against the shape of its kind
+    (`shardtrain.documents`); InputError naming the file (and key) when it is not one we
+    know or does not have that shape."""
     path = Path(path)
-    try:
-        doc = json.loads(path.read_text(encoding="utf-8"))
-    except OSError as exc:
-        raise InputError(f"{path}: cannot read ({exc.strerror or exc})") from None
-    except ValueError as exc:
-        raise InputError(f"{path}:{getattr(exc, 'lineno', 1)}: not valid JSON") from None
-    kind = document_kind(doc)
+    kind, doc = _parse(path)
     if kind is None:
         raise InputError(f"{path}:1: neither a survey, a run nor a forecast JSON")
     return kind, doc
+
+
+def _parse(path: Path, *, skip_unreadable: bool = False) -> tuple[str | None, object]:
+    """(kind, validated doc), or (None, doc) when the JSON is none of our kinds (or, with
+    `skip_unreadable`, not JSON at all). A JSON of our kinds with a bad shape is refused."""
+    from shardtrain import documents
+
+    try:
+        doc = documents.parse_json_file(path, max_bytes=max(documents.MAX_BYTES[k]
+                                                            for k in KINDS))
+    except InputError:
+        if skip_unreadable:
+            return None, None
+        raise
+    kind = document_kind(doc)
+    return (None, doc) if kind is None else (kind, documents.validate(doc, kind, path))
+
+
+def _graph_facts(doc: dict) -> dict:
+    """What a survey, run or forecast JSON says of its graph: fingerprint, vertices, edges
+    (the keys that are there; num_* in run JSONs written before rundoc)."""
+    g = doc.get("graph") or {}
+    facts = {"fingerprint": g.get("structure_fingerprint"),
+             "vertices": g.get("vertices", g.get("num_vertices")),
+             "edges": g.get("edges", g.get("num_edges"))}
+    return {k: v for k, v in facts.items() if v is not None}
+
+
+def check_same_graph(documents: list[tuple[str, str, dict]]) -> None:
+    """Refuse documents of different graphs on one page: compare the fingerprint when both
+    carry one, else the vertex and edge counts both carry."""
+    first = None
+    for name, kind, doc in documents:
+        facts = _graph_facts(doc)
+        if first is None:
+            first = (name, kind, facts)
+            continue
+        fname, fkind, ffacts = first
+        keys = ["fingerprint"] if "fingerprint" in facts and "fingerprint" in ffacts \
+            else [k for k in ("vertices", "edges") if k in facts and k in ffacts]
+        for key in keys:
+            if facts[key] != ffacts[key]:
+                raise InputError(f"{name}: a {kind} JSON of another graph than the {fkind} "
+                                 f"JSON {fname} ({key} {facts[key]} against {ffacts[key]}); "
+                                 f"give documents of one graph")
 
 
 def collect_documents(paths) -> list[tuple[str, str, dict]]:
@@ -81,11 +121,9 @@ def collect_documents(paths) -> list[tuple[str, str, dict]]:
     for p in map(Path, paths):
         if p.is_dir():
             for f in sorted(p.glob("*.json")):
-                try:
-                    kind, doc = read_document(f)
-                except InputError:
-                    continue
-                found.append((f.name, kind, doc))
+                kind, doc = _parse(f, skip_unreadable=True)   # other files are skipped
+                if kind is not None:
+                    found.append((f.name, kind, doc))
         elif p.exists():
             kind, doc = read_document(p)
             found.append((p.name, kind, doc))
@@ -94,6 +132,7 @@ def collect_documents(paths) -> list[tuple[str, str, dict]]:
     if not found:
         raise InputError(f"{', '.join(map(str, paths))}: no survey, run or forecast JSON found")
     found.sort(key=lambda t: KINDS.index(t[1]))
+    check_same_graph(found)
     return found
 
 
@@ -231,7 +270,8 @@ def run_section(doc: dict, plot_dir: Path) -> str:
                       + f" ({t['predicted_payload_bytes']:,} bytes)"))
     if epochs:
         last = epochs[-1]
-        facts.append(("final test accuracy", f"{last.get('test_acc', float('nan')):.4f}"))
+        acc = last.get("test_acc")
+        facts.append(("final test accuracy", "-" if acc is None else f"{acc:.4f}"))
         times = sorted(e["epoch_s"] for e in epochs if e.get("epoch_s") is not None)
         if times:
             facts.append(("median epoch", human_seconds(times[len(times) // 2])))

@@ -15,10 +15,25 @@ from __future__ import annotations
 MODES = ("reference", "partitioned")
 
 
+def structure_fingerprint(graph) -> str:
+    """SHA-256 (16 hex digits) of the graph's edges alone (CSR indptr and indices), so
+    that a survey, a run and a forecast of one graph file match whatever seed drew their
+    split masks; `report` refuses documents whose fingerprints differ."""
+    import hashlib
+
+    import numpy as np
+
+    h = hashlib.sha256()
+    for arr in (graph.indptr, graph.indices):
+        h.update(np.ascontiguousarray(arr, dtype=np.int64).tobytes())
+    return h.hexdigest()[:16]
+
+
 def graph_of_file(source, graph, notes=()) -> dict:
     """The `graph` entry of a run on a graph file."""
     return {"source": str(source), "vertices": int(graph.num_vertices),
-            "edges": int(graph.num_edges), "notes": list(notes)}
+            "edges": int(graph.num_edges), "notes": list(notes),
+            "structure_fingerprint": structure_fingerprint(graph)}
 
 
 def graph_of_shards(shard_dir, facts) -> dict:

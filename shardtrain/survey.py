@@ -15,6 +15,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from shardtrain.errors import InputError
+from shardtrain.rundoc import structure_fingerprint
 from shardtrain.schedule import LayerHop, layer_dims, layer_hops
 
 # Resident memory of an idle worker interpreter with numpy and scipy.sparse imported,
@@ -357,7 +358,8 @@ def survey(graph, methods: list[str], workers_list: list[int], settings: SurveyS
                 on_plan(plan)
     return {
         "graph": {"vertices": graph.num_vertices, "edges": graph.num_edges,
-                  "input_dim": dims[0][0], "classes": dims[-1][1]},
+                  "input_dim": dims[0][0], "classes": dims[-1][1],
+                  "structure_fingerprint": structure_fingerprint(graph)},
         "model": {"layers": settings.layers, "hidden": settings.hidden,
                   "dtype": settings.dtype, "bias": settings.bias,
                   "parameters": parameter_elements(hops, bias=settings.bias),

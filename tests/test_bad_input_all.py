@@ -199,10 +199,11 @@ CASES = [
     ("forecast calibration bad speed", ["forecast", "{g}", *W2, "--calibration",
                                         "{d}/cal_bad_speed.json", "--json", "{out}/f.json"],
      r"--calibration .*cal_bad_speed\.json:1: not a usable calibration: "
-     r"sparse\[0\]\.nnz_cols_per_s must be a positive number"),
+     r"key sparse\[0\]\.nnz_cols_per_s: must be a finite number > 0 \(got -1\.0\)"),
     ("forecast calibration no dense", ["forecast", "{g}", *W2, "--calibration",
                                        "{d}/cal_no_dense.json", "--json", "{out}/f.json"],
-     r"--calibration .*cal_no_dense\.json:1: not a usable calibration: 'sparse' must be"),
+     r"--calibration .*cal_no_dense\.json:1: not a usable calibration: key sparse: must "
+     r"have 1 to"),
     ("forecast calibration directory", ["forecast", "{g}", *W2, "--calibration",
                                         "{d}/empty", "--json", "{out}/f.json"],
      r"--calibration .*empty: is a directory"),

@@ -223,3 +223,14 @@ def test_the_check_fails_on_a_difference_beyond_rounding():
     off = demo.compare_runs(_fake_run([1.0, 0.5], 2.0, predicted + 8, predicted + 8),
                             ref, plan, epochs=2)
     assert not off["payload_equal"] and f"{predicted + 8:,}" in demo.check_failure(off)
+
+
+def test_every_json_the_demo_writes_is_strict(quick_demo):
+    """RFC 8259 has no NaN or Infinity: a strict parser reads every file we write."""
+    def refuse(name):
+        raise ValueError(f"bare {name}")
+    out, _ = quick_demo
+    files = sorted(out.rglob("*.json"))
+    assert len(files) >= 4
+    for f in files:
+        json.loads(f.read_text(), parse_constant=refuse)

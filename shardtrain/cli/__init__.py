@@ -65,6 +65,17 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: list[str] | None = None) -> int:
+    from shardtrain.files import finish_outputs
+
+    code = 1
+    try:
+        code = _main(argv)
+    finally:   # a failed command leaves no empty output folder it created
+        finish_outputs(failed=code != 0)
+    return code
+
+
+def _main(argv: list[str] | None) -> int:
     try:
         args = build_parser().parse_args(argv)
         return int(args._run(args) or 0)

@@ -11,7 +11,6 @@ The table marks the fastest plan and the plan with the fewest workers meeting
 """
 from __future__ import annotations
 
-import json
 import math
 import sys
 from pathlib import Path
@@ -123,6 +122,18 @@ def _check_options(args) -> None:
     if args.calibration and Path(args.calibration).exists() is False \
             and not Path(args.calibration).parent.is_dir():
         raise InputError(f"--calibration: folder {Path(args.calibration).parent} does not exist")
+    from shardtrain.files import check_paths
+
+    # an existing --calibration is read (an input); a missing one is written (an output)
+    cal = args.calibration if args.flops_per_worker is None else None
+    cal_exists = cal is not None and Path(cal).exists() and not Path(cal).is_dir()
+    check_paths(inputs={"GRAPH": args.graph, "--features": args.features,
+                        "--labels": args.labels,
+                        "--calibration": cal if cal_exists else None},
+                outputs={"--json": args.json,
+                         "--calibration": None if cal_exists or (cal and Path(cal).is_dir())
+                         else cal},
+                out_dirs={"--plot": args.plot})
 
 
 def _check_positive_opt(value, option, allow_zero=False) -> None:
@@ -132,18 +143,13 @@ def _check_positive_opt(value, option, allow_zero=False) -> None:
 
 
 def read_survey_json(path: str) -> dict:
-    """A survey JSON written by `shardtrain survey --json`; InputError naming the file."""
-    try:
-        text = Path(path).read_text(encoding="utf-8")
-    except OSError as exc:
-        raise InputError(f"{path}: cannot read ({exc.strerror or exc})") from None
-    try:
-        data = json.loads(text)
-    except ValueError as exc:
-        line = getattr(exc, "lineno", 1)
-        raise InputError(f"{path}:{line}: not valid JSON ({exc.msg if hasattr(exc, 'msg') else exc})") from None
+    """A survey JSON written by `shardtrain survey --json`, checked against its shape
+    (`documents.SURVEY`: plans, shards, traffic, model dtype and hops); InputError naming
+    the file and the key."""
+    from shardtrain import documents
     from shardtrain.report import document_kind
 
+    data = documents.parse_json_file(path, max_bytes=documents.MAX_BYTES["survey"])
     kind = document_kind(data)
     if kind in ("run", "forecast"):
         raise InputError(f"{path}:1: this is a {kind} JSON; give a survey JSON "
@@ -151,13 +157,7 @@ def read_survey_json(path: str) -> dict:
     if not isinstance(data, dict) or "plans" not in data or "model" not in data:
         raise InputError(f"{path}:1: not a survey JSON (needs 'model' and 'plans'; "
                          f"write one with `shardtrain survey GRAPH --json OUT.json`)")
-    for i, plan in enumerate(data["plans"]):
-        for key in ("method", "workers", "shards", "traffic"):
-            if key not in plan:
-                raise InputError(f"{path}:1: plan {i} has no {key!r}")
-    if not data["plans"]:
-        raise InputError(f"{path}:1: the survey has no plans")
-    return data
+    return documents.validate(data, "survey", path)
 
 
 def _select(survey: dict, workers, methods, source: str) -> dict:

@@ -29,6 +29,10 @@ def run(args) -> int:
     for p in args.inputs:
         if not Path(p).exists():
             raise InputError(f"{p}: no such file or folder")
+    from shardtrain.files import check_paths
+    read = [f for p in map(Path, args.inputs)
+            for f in (sorted(p.glob("*.json")) if p.is_dir() else [p])]
+    check_paths(inputs={"input": read}, outputs={"--html": out})
     included = write_report(args.inputs, out)
     kinds = ", ".join(f"{kind} ({name})" for name, kind in included)
     print(f"report: {out} ({kinds})")

@@ -59,6 +59,10 @@ def run(args) -> int:
 
     out = Path(args.out)
     _check_out(out, args.overwrite)
+    from shardtrain.files import check_paths
+    check_paths(inputs={"GRAPH": args.graph, "--features": args.features,
+                        "--labels": args.labels, "--assignment": args.assignment},
+                replaced_dirs={"--out": out})
     if args.method is not None and args.method not in METHODS:
         raise InputError(f"--method {args.method!r}: unknown; expected one of {', '.join(METHODS)}")
     if args.method is not None and args.workers is None:

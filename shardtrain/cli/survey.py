@@ -16,7 +16,7 @@ from shardtrain.cli.common import (add_graph_arguments, add_plan_shape_arguments
                                    load_graph_from_args, parse_int_list, parse_name_list)
 from shardtrain.errors import InputError
 from shardtrain.partition import DEFAULT_COMPARED
-from shardtrain.files import write_json_atomic, write_text_atomic
+from shardtrain.files import check_paths, write_json_atomic, write_text_atomic
 from shardtrain.survey import SurveySettings, check_plans, survey
 from shardtrain.tables import format_table, human_bytes
 
@@ -147,6 +147,9 @@ def run(args) -> int:
         from shardtrain.plots import check_plot_dir
 
         check_plot_dir(args.plot)
+    check_paths(inputs={"GRAPH": args.graph, "--features": args.features,
+                        "--labels": args.labels, "--assignment": args.assignment},
+                outputs={"--json": args.json, "--csv": args.csv}, out_dirs={"--plot": args.plot})
     settings = _settings(args)
     loaded = load_graph_from_args(args)
     graph = loaded.graph

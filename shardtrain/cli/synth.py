@@ -11,7 +11,7 @@ from pathlib import Path
 
 from shardtrain.cli.common import float_type, int_type
 from shardtrain.errors import InputError
-from shardtrain.files import save_npz_atomic
+from shardtrain.files import check_paths, save_npz_atomic
 from shardtrain.synth import edge_array, parcel_network, same_role_fraction
 
 
@@ -42,6 +42,7 @@ def run(args) -> int:
         raise InputError(f"{out}: the output must be an .npz file")
     if not out.parent.is_dir():
         raise InputError(f"{out}: folder {out.parent} does not exist")
+    check_paths(outputs={"OUT.npz": out})
     start = time.perf_counter()
     graph = parcel_network(args.vertices, args.avg_degree, args.classes, args.features,
                            args.seed, homophily=args.homophily,

@@ -163,6 +163,20 @@ def _check_output(path, option: str, suffix: str | None = None) -> None:
         raise InputError(f"{option} {path}: folder {p.parent} does not exist")
 
 
+def _check_paths(args) -> None:
+    """No output may be an input or another output, and every output must be writable."""
+    from shardtrain.files import check_paths
+
+    check_paths(inputs={"GRAPH": args.graph, "--features": args.features,
+                        "--labels": args.labels, "--assignment": args.assignment,
+                        "--init-weights": args.init_weights, "--resume": args.resume},
+                outputs={"--json": args.json, "--weights": args.weights,
+                         "--predictions": args.predictions},
+                out_dirs={"--plot": getattr(args, "plot", None),
+                          "--checkpoint": args.checkpoint},
+                allow=(("--checkpoint", "--resume"),))
+
+
 def _is_shard_dir(path: str) -> bool:
     return Path(path).is_dir() and (Path(path) / MANIFEST_NAME).is_file()
 
@@ -221,6 +235,7 @@ def _check_options(args) -> tuple[TrainSettings, bool]:
         from shardtrain.io import require_regular_file
         require_regular_file(args.assignment, option="--assignment")
     _check_fault_options(args)
+    _check_paths(args)
     return settings, shard_dir
 
 
