@@ -536,12 +536,16 @@ def _build_shard_dir(graph, args, assignment, shard_dir: str, dims) -> None:
     from shardtrain.shards import build_shards, save_shards
 
     k = args.workers
+    details = None
     if assignment is None:
-        from shardtrain.partition import partition
-        assignment = partition(graph, args.method, k, seed=args.seed, imbalance=args.imbalance)
+        from shardtrain.partition import partition_plan
+        assignment, details = partition_plan(graph, args.method, k, seed=args.seed,
+                                             imbalance=args.imbalance)
     shards = build_shards(graph, assignment, k)
     from shardtrain.graph import fingerprint
-    save_shards(shard_dir, shards, meta={"num_classes": dims[-1][1], "input_dim": dims[0][0],
-                                         "method": args.method or "assignment",
-                                         "seed": args.seed,
-                                         "graph_fingerprint": fingerprint(graph)})
+    meta = {"num_classes": dims[-1][1], "input_dim": dims[0][0],
+            "method": args.method or "assignment", "seed": args.seed,
+            "graph_fingerprint": fingerprint(graph)}
+    if details is not None:
+        meta["partition"] = details      # how the plan was made (METIS: scheme, balance)
+    save_shards(shard_dir, shards, meta=meta)
