@@ -145,7 +145,7 @@ def _metis_plan(graph: Graph, k: int, *, seed: int, imbalance: float,
         tried.append(_plan_summary(graph, part, k, cut, "kway", "vertices+edges"))
         parts.append(part)
 
-    if balance == "vertices+edges":
+    if balance == "vertices+edges" and graph.num_edges > 0:   # METIS refuses a zero weight sum
         both()
         return parts[0], _details(tried, 0, niter)
     # recursive bisection cut fewer edges than k-way at every k on the parcel network
