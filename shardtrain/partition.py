@@ -7,6 +7,7 @@ reads a user's own partition from a file.
 """
 from __future__ import annotations
 
+import functools
 import os
 from pathlib import Path
 
@@ -23,8 +24,9 @@ from shardtrain.graph import Graph
 # is 5-28 CPU s per candidate at k = 64 (benchmarks/bench_partition_quality.py, "seconds").
 SMALL_GRAPH_EDGES = 3_000_000
 # Refinement passes per uncoarsening level: METIS's default 10 where every candidate runs.
-# Larger graphs keep 2 (measured on the 1 M-vertex, 10 M-edge parcel network: recursive
-# bisection's cut is within 0.5 % of 10 passes at k = 2..16; see the same benchmark).
+# Larger graphs keep 2 (measured once on the 1 M-vertex, 10 M-edge parcel network, recursive
+# bisection: 8.9/14.8/20.2/26.9 CPU s at k = 2/4/8/16 against 12.6/20.4/27.1/34.5 with 10
+# passes, for cuts at most 0.08 % larger; the survey benchmark's time stays as it was).
 METIS_REFINE_ITERATIONS = 10
 METIS_REFINE_ITERATIONS_LARGE = 2
 # The vertex+edge balanced plan is tried when the vertex-balanced plan's busiest worker
@@ -38,6 +40,7 @@ MC_CUT_ALLOWANCE = 0.06
 MC_VERTEX_BOUND = 1.2
 
 
+@functools.lru_cache(maxsize=1)
 def _metis_library():
     """The METIS C library inside pymetis's extension module, for the one call pymetis
     does not make: its `part_graph` passes ncon = 1, so a weight array of 2n entries is read
@@ -246,7 +249,8 @@ def metis_volume(graph: Graph, k: int, *, seed: int = 0, imbalance: float = 0.03
     Slow on power-law graphs: its volume refinement walks the neighbourhoods of the hubs.
     Measured on the 1 M-vertex, 10 M-edge parcel network: 21.5 CPU s at k = 2 (METIS's
     default 10 refinement passes), 41.9 at k = 4 and 223.5 at k = 16 with the 2 passes used
-    here (884 s at k = 16 with 10), against 26.8 CPU s for `metis` at k = 16. Kept for plans where volume matters more than time.
+    here (884 s at k = 16 with 10), against 26.9 CPU s for `metis` at k = 16 (recursive
+bisection, 2 passes). Kept for plans where volume matters more than time.
     """
     return partition_plan(graph, "metis-volume", k, seed=seed, imbalance=imbalance)[0]
 
