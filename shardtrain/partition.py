@@ -20,8 +20,10 @@ from shardtrain.graph import Graph
 # ----------------------------------------------------------------------------- METIS
 
 # Graphs up to this many undirected edges get every METIS candidate (both schemes, and the
-# vertex+edge balanced plan when needed), at METIS's default refinement: on 2.3 M edges that
-# is 5-28 CPU s per candidate at k = 64 (benchmarks/bench_partition_quality.py, "seconds").
+# vertex+edge balanced plan when needed) at METIS's default refinement: a plan at k = 64 then
+# takes 26 CPU s on the 2 M-edge parcel network and 47 on the 2.7 M-edge power-law graph
+# (benchmarks/bench_partition_quality.py, "cpu_seconds"), a size where one METIS call is
+# already 10-30 s; above it one scheme keeps the 10 M-edge survey benchmark as it was.
 SMALL_GRAPH_EDGES = 3_000_000
 # Refinement passes per uncoarsening level: METIS's default 10 where every candidate runs.
 # Larger graphs keep 2 (measured once on the 1 M-vertex, 10 M-edge parcel network, recursive
