@@ -219,18 +219,20 @@ def plan_reason(ranking: list[dict]) -> str:
 def build_plan_shards(graph, plan: dict, settings: DemoSettings, shard_dir: Path) -> None:
     """Partition as the survey did (same method, seed and imbalance) and save the shards."""
     from shardtrain.graph import fingerprint
-    from shardtrain.partition import partition
+    from shardtrain.partition import partition_plan
     from shardtrain.shards import build_shards, save_shards
     from shardtrain.survey import SurveySettings
 
     imbalance = SurveySettings().imbalance
     k = plan["workers"]
-    assignment = partition(graph, plan["method"], k, seed=settings.seed, imbalance=imbalance)
+    assignment, details = partition_plan(graph, plan["method"], k, seed=settings.seed,
+                                         imbalance=imbalance)
     shards = build_shards(graph, assignment, k)
     save_shards(shard_dir, shards, meta={"num_classes": graph.num_classes,
                                          "input_dim": graph.input_dim,
                                          "method": plan["method"], "seed": settings.seed,
-                                         "graph_fingerprint": fingerprint(graph)})
+                                         "graph_fingerprint": fingerprint(graph),
+                                         "partition": details})
 
 
 def _relative(got: float, want: float) -> float:

@@ -1,11 +1,13 @@
 """Partition methods: each maps a Graph to an assignment, an int64 array (n,) of worker ids.
 
 Every method has the signature `fn(graph, k, *, seed=0, imbalance=0.03)` and is listed in
-`METHODS` by name; `partition()` validates the request and dispatches. `load_assignment`
+`METHODS` by name; `partition()` validates the request and dispatches; `partition_plan()`
+also says how the plan was made (METIS scheme, balance, refinement). `load_assignment`
 reads a user's own partition from a file.
 """
 from __future__ import annotations
 
+import functools
 import os
 from pathlib import Path
 
@@ -18,44 +20,235 @@ from shardtrain.io import read_npy, require_regular_file
 
 # ----------------------------------------------------------------------------- METIS
 
-# Refinement passes per uncoarsening level (METIS's default is 10). Measured on the 1 M-vertex,
-# 10 M-edge parcel network (edge cut): 2 passes take 25.6 CPU s instead of 53.7 at k = 16
-# for a cut 0.3 % larger, and 15.9 s instead of 19.9 at k = 4 for a cut 0.05 % larger.
-# Random matching in coarsening (ctype RM) was no cheaper in recursive bisection and cut
-# 42 % more edges there; skipping 2-hop matching (no2hop) saved nothing.
-METIS_REFINE_ITERATIONS = 2
+# Graphs up to this many undirected edges get every METIS candidate (both schemes, and the
+# vertex+edge balanced plan when needed) at METIS's default refinement: a plan at k = 64 then
+# takes 26 CPU s on the 2 M-edge parcel network and 47 on the 2.7 M-edge power-law graph
+# (benchmarks/bench_partition_quality.py, "cpu_seconds"), a size where one METIS call is
+# already 10-30 s; above it one scheme keeps the 10 M-edge survey benchmark as it was.
+SMALL_GRAPH_EDGES = 3_000_000
+# Refinement passes per uncoarsening level: METIS's default 10 where every candidate runs.
+# Larger graphs keep 2 (measured once on the 1 M-vertex, 10 M-edge parcel network, recursive
+# bisection: 8.9/14.8/20.2/26.9 CPU s at k = 2/4/8/16 against 12.6/20.4/27.1/34.5 with 10
+# passes, for cuts at most 0.08 % larger; the survey benchmark's time stays as it was).
+METIS_REFINE_ITERATIONS = 10
+METIS_REFINE_ITERATIONS_LARGE = 2
+# The vertex+edge balanced plan is tried when the vertex-balanced plan's busiest worker
+# holds more than EDGE_BOUND x the mean local edges (the bound issue 9 sets), and taken when
+# its extra cut is at most MC_CUT_PER_E_FOLD x ln(old edge imbalance / new one): 3 % more
+# cut per e-fold drop of the busiest worker's edge load. Chosen on the benchmark's graphs
+# (benchmarks/bench_partition_quality.py; extra cut vs allowance): parcel network k = 8, 16,
+# 32: +20/+15/+9 % vs 1.4/2.6/4.0 % (kept by vertices, fennel cuts less than the balanced
+# plan there); k = 64: +3.9 vs 5.3 %; power-law graph k = 64: +6.7 vs 8.8 % (taken).
+EDGE_BOUND = 1.5
+MC_CUT_PER_E_FOLD = 0.03
+# METIS cannot hold both constraints to a 3 % tolerance when one hub carries a large share
+# of a part's edges; a vertex+edge plan is kept if its parts hold <= 1.2 x the mean vertices.
+MC_VERTEX_BOUND = 1.2
 
 
-def _metis(graph: Graph, k: int, *, seed: int, imbalance: float, volume: bool) -> np.ndarray:
+@functools.lru_cache(maxsize=1)
+def _metis_library():
+    """The METIS C library inside pymetis's extension module, for the one call pymetis
+    does not make: its `part_graph` passes ncon = 1, so a weight array of 2n entries is read
+    as n single weights (checked in tests/test_partition_quality.py)."""
+    import ctypes
+
+    import pymetis
+    import pymetis._internal as internal
+
+    if pymetis.zero_copy_dtype() != np.dtype(np.int64):
+        raise RunError("this pymetis was built with 32-bit METIS indices; "
+                       "--method metis needs the 64-bit build")
+    lib = ctypes.CDLL(internal.__file__)
+    pointer = ctypes.POINTER(ctypes.c_int64)
+    for name in ("METIS_PartGraphKway", "METIS_PartGraphRecursive"):
+        fn = getattr(lib, name)
+        fn.argtypes = [pointer] * 8 + [ctypes.c_void_p, ctypes.c_void_p] + [pointer] * 3
+        fn.restype = ctypes.c_int
+    lib.METIS_SetDefaultOptions.argtypes = [pointer]
+    lib.METIS_SetDefaultOptions.restype = ctypes.c_int
+    return lib
+
+
+def _metis_call(graph: Graph, k: int, vweights: np.ndarray | None, ncon: int, *,
+                recursive: bool, seed: int, ufactor: int, niter: int) -> np.ndarray:
+    """METIS_PartGraphRecursive / METIS_PartGraphKway with `ncon` vertex weights per vertex
+    (row-major, n x ncon), edge-cut objective."""
+    import ctypes
+
+    import pymetis._internal as internal
+
+    lib = _metis_library()
+    keys = internal.options_indices
+    idx = ctypes.POINTER(ctypes.c_int64)
+
+    def p(a):
+        return a.ctypes.data_as(idx)
+
+    options = np.zeros(64, dtype=np.int64)        # METIS_NOPTIONS is 40 in METIS 5
+    lib.METIS_SetDefaultOptions(p(options))
+    options[keys.UFACTOR], options[keys.SEED] = ufactor, seed
+    options[keys.NITER], options[keys.NUMBERING] = niter, 0
+    n = graph.num_vertices
+    xadj = np.ascontiguousarray(graph.indptr, dtype=np.int64)
+    adjncy = np.ascontiguousarray(graph.indices, dtype=np.int64)
+    weights = None if vweights is None else np.ascontiguousarray(vweights, dtype=np.int64)
+    nvtxs, ncons, nparts = (np.array([v], dtype=np.int64) for v in (n, ncon, k))
+    objval, part = np.zeros(1, dtype=np.int64), np.zeros(n, dtype=np.int64)
+    fn = lib.METIS_PartGraphRecursive if recursive else lib.METIS_PartGraphKway
+    status = fn(p(nvtxs), p(ncons), p(xadj), p(adjncy),
+                None if weights is None else p(weights), None, None, p(nparts),
+                None, None, p(options), p(objval), p(part))
+    if status != 1:                                # METIS_OK
+        raise RunError(f"METIS failed (status {status}) partitioning {n} vertices into {k}")
+    return part
+
+
+def _plan_summary(graph: Graph, part: np.ndarray, k: int, cut: int, scheme: str,
+                  balance: str) -> dict:
+    """What a candidate is judged on: edge cut, then the larger of its two imbalances."""
+    owned = np.bincount(part, minlength=k)
+    edges = np.bincount(part, weights=graph.degrees, minlength=k)   # local edges per worker
+    return {"scheme": scheme, "balance": balance, "edge_cut": int(cut),
+            "owned_max_over_mean": float(owned.max() / owned.mean()),
+            "local_edges_max_over_mean": float(edges.max() / edges.mean())
+            if edges.sum() > 0 else 1.0,
+            "largest": int(owned.max())}
+
+
+def _rank(c: dict) -> tuple:
+    return (c["edge_cut"], max(c["owned_max_over_mean"], c["local_edges_max_over_mean"]))
+
+
+def _metis_plan(graph: Graph, k: int, *, seed: int, imbalance: float,
+                balance: str) -> tuple[np.ndarray, dict]:
+    """(assignment, details) of the edge-cut objective; `balance` is "auto" (the rule in
+    `metis`'s docstring), "vertices" or "vertices+edges"."""
     import pymetis
 
-    # ufactor is the allowed imbalance in thousandths: 0.03 -> 30 (max part <= 1.03 x mean)
-    options = pymetis.Options(ufactor=max(1, int(round(imbalance * 1000))), seed=int(seed),
-                              niter=METIS_REFINE_ITERATIONS)
-    options.objtype = int(pymetis.ObjType.VOL if volume else pymetis.ObjType.CUT)
-    adjacency = pymetis.CSRAdjacency(adj_starts=graph.indptr, adjacent=graph.indices)
-    # METIS minimises communication volume only in its k-way scheme (recursive bisection
-    # refuses that objective); for the edge cut pymetis picks recursive bisection for k <= 8.
-    schemes = [False] if volume else [k <= 8, k > 8]
     n = graph.num_vertices
+    small = graph.num_edges <= SMALL_GRAPH_EDGES
+    niter = METIS_REFINE_ITERATIONS if small else METIS_REFINE_ITERATIONS_LARGE
+    # ufactor is the allowed imbalance in thousandths: 0.03 -> 30 (max part <= 1.03 x mean)
+    ufactor = max(1, int(round(imbalance * 1000)))
     limit = 1.02 * (1.0 + imbalance) * n / k + 2     # METIS overshoots its tolerance a little
-    for recursive in schemes:
-        result = pymetis.part_graph(k, adjacency=adjacency, options=options, recursive=recursive)
+    tried: list[dict] = []
+    parts: list[np.ndarray] = []
+
+    def plain(scheme: str) -> None:
+        options = pymetis.Options(ufactor=ufactor, seed=int(seed), niter=niter)
+        options.objtype = int(pymetis.ObjType.CUT)
+        adjacency = pymetis.CSRAdjacency(adj_starts=graph.indptr, adjacent=graph.indices)
+        result = pymetis.part_graph(k, adjacency=adjacency, options=options,
+                                    recursive=scheme == "recursive")
         part = np.asarray(result.vertex_part, dtype=np.int64)
-        largest = int(np.bincount(part, minlength=k).max())
-        if largest <= limit:
-            return part
-    # one bench run on a 1 M-vertex graph once got a part of n/2 from METIS at k = 16:
-    # never hand such a plan on silently
-    raise RunError(f"METIS returned a part of {largest} vertices for {k} workers "
-                   f"(mean {n / k:.0f}, tolerance {imbalance}); try another --seed or method")
+        tried.append(_plan_summary(graph, part, k, result.edge_cuts, scheme, "vertices"))
+        parts.append(part)
+
+    def both() -> None:
+        # vertex weights (1, degree): each part holds ~n/k vertices and ~2m/k edge ends
+        weights = np.stack([np.ones(n, dtype=np.int64), graph.degrees], axis=1)
+        part = _metis_call(graph, k, weights, 2, recursive=False, seed=int(seed),
+                           ufactor=ufactor, niter=niter)
+        cut = edge_cut_of(graph, part)
+        tried.append(_plan_summary(graph, part, k, cut, "kway", "vertices+edges"))
+        parts.append(part)
+
+    if balance == "vertices+edges" and graph.num_edges > 0:   # METIS refuses a zero weight sum
+        both()
+        return parts[0], _details(tried, 0, niter)
+    # recursive bisection cut fewer edges than k-way at every k on the parcel network
+    # (benchmarks/bench_partition_quality.py) and costs less: the one scheme on large graphs
+    for scheme in (("recursive", "kway") if small else ("recursive",)):
+        plain(scheme)
+    if not small and tried[0]["largest"] > limit:
+        plain("kway")                               # the other scheme, as a fallback
+    ok = [i for i, c in enumerate(tried) if c["largest"] <= limit]
+    if not ok:
+        # one bench run on a 1 M-vertex graph once got a part of n/2 from METIS at k = 16:
+        # never hand such a plan on silently
+        largest = min(c["largest"] for c in tried)
+        raise RunError(f"METIS returned a part of {largest} vertices for {k} workers "
+                       f"(mean {n / k:.0f}, tolerance {imbalance}); try another --seed or method")
+    best = min(ok, key=lambda i: _rank(tried[i]))
+    if balance == "auto" and small and tried[best]["local_edges_max_over_mean"] > EDGE_BOUND:
+        both()
+        mc, plain_best = tried[-1], tried[best]
+        gain = plain_best["local_edges_max_over_mean"] / mc["local_edges_max_over_mean"]
+        if (mc["owned_max_over_mean"] <= MC_VERTEX_BOUND and gain > 1.0
+                and mc["edge_cut"] <= (1.0 + MC_CUT_PER_E_FOLD * np.log(gain))
+                * plain_best["edge_cut"]):
+            best = len(tried) - 1
+    return parts[best], _details(tried, best, niter)
+
+
+def _details(tried: list[dict], best: int, niter: int) -> dict:
+    won = tried[best]
+    return {"scheme": won["scheme"], "balance": won["balance"], "refinement": niter,
+            "edge_cut": won["edge_cut"],
+            "tried": [{key: value for key, value in c.items() if key != "largest"}
+                      for c in tried]}
+
+
+def edge_cut_of(graph: Graph, part: np.ndarray) -> int:
+    """Undirected edges whose ends lie in different parts (row by row, no n x m scratch)."""
+    rows = np.repeat(np.arange(graph.num_vertices, dtype=np.int64), graph.degrees)
+    return int(np.count_nonzero(part[rows] != part[graph.indices]) // 2)
+
+
+def _metis_volume_plan(graph: Graph, k: int, *, seed: int,
+                       imbalance: float) -> tuple[np.ndarray, dict]:
+    import pymetis
+
+    options = pymetis.Options(ufactor=max(1, int(round(imbalance * 1000))), seed=int(seed),
+                              niter=METIS_REFINE_ITERATIONS_LARGE)
+    options.objtype = int(pymetis.ObjType.VOL)
+    adjacency = pymetis.CSRAdjacency(adj_starts=graph.indptr, adjacent=graph.indices)
+    n = graph.num_vertices
+    # METIS minimises communication volume only in its k-way scheme (recursive bisection
+    # refuses that objective)
+    result = pymetis.part_graph(k, adjacency=adjacency, options=options, recursive=False)
+    part = np.asarray(result.vertex_part, dtype=np.int64)
+    largest = int(np.bincount(part, minlength=k).max())
+    if largest > 1.02 * (1.0 + imbalance) * n / k + 2:
+        raise RunError(f"METIS returned a part of {largest} vertices for {k} workers "
+                       f"(mean {n / k:.0f}, tolerance {imbalance}); try another --seed or method")
+    return part, {"scheme": "kway", "balance": "vertices",
+                  "refinement": METIS_REFINE_ITERATIONS_LARGE}
 
 
 def metis(graph: Graph, k: int, *, seed: int = 0, imbalance: float = 0.03) -> np.ndarray:
-    """METIS (Karypis & Kumar 1998), minimising the edge cut."""
-    if k == 1:
-        return np.zeros(graph.num_vertices, dtype=np.int64)
-    return _metis(graph, k, seed=seed, imbalance=imbalance, volume=False)
+    """METIS (Karypis & Kumar 1998), minimising the edge cut, balanced by vertices and, where
+    that matters and costs little, by local edges too.
+
+    On graphs of at most SMALL_GRAPH_EDGES edges, both of METIS's schemes run at its default
+    refinement (10 passes): recursive bisection and direct k-way; the plan with the smaller
+    edge cut wins (ties: the smaller of max/mean vertices and max/mean local edges). Larger
+    graphs run recursive bisection only, with 2 passes (the cost bound of the survey). The
+    plan records which won (`plan_details`).
+
+    Balance by vertices and edges (METIS multi-constraint partitioning, Karypis & Kumar
+    1998, from memory): every vertex carries the weight vector (1, degree) and METIS keeps
+    each part's sum of either within the tolerance, so each worker owns about n/k vertices
+    and 2m/k local edges. Rule, on small graphs: when the vertex-balanced plan's busiest
+    worker holds more than EDGE_BOUND x the mean local edges, the multi-constraint k-way plan
+    is computed, and taken if its parts hold at most MC_VERTEX_BOUND x the mean vertices and
+    its edge cut exceeds the plain plan's by at most MC_CUT_PER_E_FOLD x ln(g), where g is the
+    factor by which the busiest worker's share of edges falls (3 % per e-fold). Why not
+    always: on the parcel network it cut 9-20 % more edges at k = 8..32 (more than fennel),
+    on a power-law graph 6.7 % more at k = 64 for an edge imbalance of 1.15 instead of 22.
+    What we recall of METIS here (from memory): with several constraints it balances all of
+    them within the one tolerance when it can; a hub whose degree exceeds a part's share of
+    edges makes that impossible and METIS then returns the least unbalanced plan it found.
+    `metis-balanced` always balances both.
+    """
+    return partition_plan(graph, "metis", k, seed=seed, imbalance=imbalance)[0]
+
+
+def metis_balanced(graph: Graph, k: int, *, seed: int = 0, imbalance: float = 0.03) -> np.ndarray:
+    """METIS k-way balanced by vertices and local edges together (multi-constraint, vertex
+    weights (1, degree); see `metis`), on any graph size, whatever it costs in edge cut."""
+    return partition_plan(graph, "metis-balanced", k, seed=seed, imbalance=imbalance)[0]
 
 
 def metis_volume(graph: Graph, k: int, *, seed: int = 0, imbalance: float = 0.03) -> np.ndarray:
@@ -64,11 +257,10 @@ def metis_volume(graph: Graph, k: int, *, seed: int = 0, imbalance: float = 0.03
     Slow on power-law graphs: its volume refinement walks the neighbourhoods of the hubs.
     Measured on the 1 M-vertex, 10 M-edge parcel network: 21.5 CPU s at k = 2 (METIS's
     default 10 refinement passes), 41.9 at k = 4 and 223.5 at k = 16 with the 2 passes used
-    here (884 s at k = 16 with 10), against 26.8 CPU s for `metis` at k = 16. Kept for plans where volume matters more than time.
+    here (884 s at k = 16 with 10), against 26.9 CPU s for `metis` at k = 16 (recursive
+bisection, 2 passes). Kept for plans where volume matters more than time.
     """
-    if k == 1:
-        return np.zeros(graph.num_vertices, dtype=np.int64)
-    return _metis(graph, k, seed=seed, imbalance=imbalance, volume=True)
+    return partition_plan(graph, "metis-volume", k, seed=seed, imbalance=imbalance)[0]
 
 
 # ----------------------------------------------------------------------------- baselines
@@ -176,6 +368,7 @@ def _choose_within_capacity(score: np.ndarray, sizes: np.ndarray, capacity: int)
 
 METHODS = {
     "metis": metis,
+    "metis-balanced": metis_balanced,
     "metis-volume": metis_volume,
     "fennel": fennel,
     "random": random,
@@ -183,7 +376,8 @@ METHODS = {
 }
 
 # What a survey or forecast compares unless told otherwise: metis-volume is left out because
-# it takes minutes per plan on million-vertex power-law graphs (see its docstring).
+# it takes minutes per plan on million-vertex power-law graphs (see its docstring), and
+# metis-balanced because `metis` already takes its plan where that costs little.
 DEFAULT_COMPARED = ("metis", "fennel", "random", "range")
 
 
@@ -196,15 +390,32 @@ def check_workers(k: int, num_vertices: int, option: str = "--workers") -> None:
 def partition(graph: Graph, method: str, k: int, *, seed: int = 0,
               imbalance: float = 0.03) -> np.ndarray:
     """Assignment of every vertex to a worker in [0, k) by the named method."""
+    return partition_plan(graph, method, k, seed=seed, imbalance=imbalance)[0]
+
+
+def partition_plan(graph: Graph, method: str, k: int, *, seed: int = 0,
+                   imbalance: float = 0.03) -> tuple[np.ndarray, dict]:
+    """(assignment, details) by the named method. details is {"method": name} and, for the
+    METIS methods, "scheme" ("recursive" | "kway"), "balance" ("vertices" |
+    "vertices+edges") and "refinement" (passes per level); `metis` and `metis-balanced`
+    add "edge_cut" and "tried" (every candidate computed, with its cut and imbalances)."""
     if method not in METHODS:
         raise InputError(f"--method {method!r}: unknown; expected one of {', '.join(METHODS)}")
     check_workers(k, graph.num_vertices)
     if not (0.0 <= imbalance < 1.0):
         raise InputError(f"--imbalance {imbalance}: must be in [0, 1)")
-    assignment = METHODS[method](graph, int(k), seed=seed, imbalance=imbalance)
+    k = int(k)
     if k == 1:
-        return np.zeros(graph.num_vertices, dtype=np.int64)
-    return np.ascontiguousarray(assignment, dtype=np.int64)
+        return np.zeros(graph.num_vertices, dtype=np.int64), {"method": method}
+    if method in ("metis", "metis-balanced"):
+        balance = "auto" if method == "metis" else "vertices+edges"
+        assignment, details = _metis_plan(graph, k, seed=seed, imbalance=imbalance,
+                                          balance=balance)
+    elif method == "metis-volume":
+        assignment, details = _metis_volume_plan(graph, k, seed=seed, imbalance=imbalance)
+    else:
+        assignment, details = METHODS[method](graph, k, seed=seed, imbalance=imbalance), {}
+    return np.ascontiguousarray(assignment, dtype=np.int64), {"method": method, **details}
 
 
 # ----------------------------------------------------------------------------- from a file

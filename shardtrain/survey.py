@@ -247,10 +247,11 @@ def survey_plan(graph, method: str, k: int, *, hops: list[LayerHop], itemsize: i
     from shardtrain.shards import build_shards, shard_stats
 
     t0, c0 = time.perf_counter(), time.process_time()
+    details = {"method": method}             # how the plan was made (METIS: scheme, balance)
     if assignment is None:
-        from shardtrain.partition import partition
+        from shardtrain.partition import partition_plan
 
-        assignment = partition(graph, method, k, seed=seed, imbalance=imbalance)
+        assignment, details = partition_plan(graph, method, k, seed=seed, imbalance=imbalance)
     t1, c1 = time.perf_counter(), time.process_time()
     # Id order: every count read below (rows, halo, send lists, nnz, index widths) is the
     # same in any local order, and id order skips the trainer's reverse Cuthill-McKee pass
@@ -291,6 +292,7 @@ def survey_plan(graph, method: str, k: int, *, hops: list[LayerHop], itemsize: i
                       "local_edges": _max_over_mean(local_edges),
                       "halo": _max_over_mean(halo),
                       "bytes_sent": _max_over_mean(sent)},
+        "partition": details,
         "partition_s": t1 - t0,
         "build_s": t2 - t1,
         "partition_cpu_s": c1 - c0,      # this process's CPU time: the machine may be shared

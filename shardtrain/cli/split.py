@@ -54,7 +54,7 @@ def _check_out(out: Path, overwrite: bool) -> None:
 
 def run(args) -> int:
     from shardtrain.graph import fingerprint
-    from shardtrain.partition import METHODS, check_workers, load_assignment, partition
+    from shardtrain.partition import METHODS, check_workers, load_assignment, partition_plan
     from shardtrain.shards import build_shards, edge_cut, save_shards, shard_stats
 
     out = Path(args.out)
@@ -82,7 +82,8 @@ def run(args) -> int:
     else:
         k = args.workers
         check_workers(k, graph.num_vertices)
-        assignment = partition(graph, args.method, k, seed=args.seed, imbalance=args.imbalance)
+        assignment, details = partition_plan(graph, args.method, k, seed=args.seed,
+                                             imbalance=args.imbalance)
         method = args.method
     partitioned = time.perf_counter()
     shards = build_shards(graph, assignment, k)
@@ -94,6 +95,8 @@ def run(args) -> int:
         meta["num_classes"] = graph.num_classes
     if args.assignment is not None:
         meta["assignment_file"] = str(args.assignment)
+    else:
+        meta["partition"] = details      # how the plan was made (METIS: scheme, balance)
     save_shards(out, shards, meta=meta, overwrite=args.overwrite)
 
     stats = shard_stats(shards)

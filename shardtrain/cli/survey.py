@@ -44,6 +44,8 @@ CSV_COLUMNS = [
     ("bytes_sent_max_over_mean",
      lambda p: f"{p['imbalance']['bytes_sent']['max_over_mean']:.4f}"),
     ("partition_s", lambda p: f"{p['partition_s']:.3f}"),
+    ("partition_scheme", lambda p: p.get("partition", {}).get("scheme", "")),
+    ("partition_balance", lambda p: p.get("partition", {}).get("balance", "")),
     ("build_s", lambda p: f"{p['build_s']:.3f}"),
 ]
 
@@ -60,7 +62,17 @@ TABLE_COLUMNS = [
     ("owned_imb", "owned imb", "{:.3f}"),
     ("edges_imb", "edges imb", "{:.3f}"),
     ("sent_imb", "sent imb", "{:.3f}"),
+    ("scheme", "METIS plan", None),
 ]
+
+
+def _scheme_note(details: dict) -> str | None:
+    """'kway', 'recursive', 'kway v+e' (balanced by vertices and edges); None (shown '-')
+    for the other methods."""
+    if "scheme" not in details:
+        return None
+    both = details.get("balance") == "vertices+edges"
+    return details["scheme"] + (" v+e" if both else "")
 
 
 def add_arguments(parser) -> None:
@@ -111,6 +123,7 @@ def table_rows(result: dict) -> list[dict]:
             "owned_imb": imb["owned"]["max_over_mean"],
             "edges_imb": imb["local_edges"]["max_over_mean"],
             "sent_imb": imb["bytes_sent"]["max_over_mean"],
+            "scheme": _scheme_note(p.get("partition", {})),
         })
     return rows
 

@@ -762,17 +762,21 @@ def _build_shard_dir(graph, args, assignment, shard_dir: str, dims, phase: list)
     from shardtrain.shards import build_shards, save_shards
 
     k = args.workers
+    details = None
     if assignment is None:
-        from shardtrain.partition import partition
+        from shardtrain.partition import partition_plan
         phase[0] = "partitioning"
         pause_point("partitioning")
-        assignment = partition(graph, args.method, k, seed=args.seed, imbalance=args.imbalance)
+        assignment, details = partition_plan(graph, args.method, k, seed=args.seed,
+                                             imbalance=args.imbalance)
     phase[0] = "building the shards"
     pause_point("building shards")
     shards = build_shards(graph, assignment, k)
     from shardtrain.graph import fingerprint
-    save_shards(shard_dir, shards, meta={"num_classes": dims[-1][1], "input_dim": dims[0][0],
-                                         "method": args.method or "assignment",
-                                         "seed": args.seed,
-                                         "graph_fingerprint": fingerprint(graph)})
+    meta = {"num_classes": dims[-1][1], "input_dim": dims[0][0],
+            "method": args.method or "assignment", "seed": args.seed,
+            "graph_fingerprint": fingerprint(graph)}
+    if details is not None:
+        meta["partition"] = details      # how the plan was made (METIS: scheme, balance)
+    save_shards(shard_dir, shards, meta=meta)
     pause_point("shards built")
