@@ -222,7 +222,7 @@ BROKEN = {
     "absurd": (lambda d: _edit_manifest(d, workers=10**30),
                "shards.json: 'workers' must be a non-negative integer"),
     "bool": (lambda d: _edit_manifest(d, workers=True), "shards.json: 'workers' must be"),
-    "deep": (_deep, "shards.json: not readable JSON"),
+    "deep": (_deep, "shards.json: nested deeper than 64 levels"),
     "old-version": (lambda d: _edit_manifest(d, version=1), "re-run `shardtrain split`"),
 }
 

@@ -234,8 +234,8 @@ def _check_options(args) -> tuple[TrainSettings, bool]:
     if args.assignment is not None:
         from shardtrain.io import require_regular_file
         require_regular_file(args.assignment, option="--assignment")
+    _check_paths(args)              # before the checkpoint lock creates its folder
     _check_fault_options(args)
-    _check_paths(args)
     return settings, shard_dir
 
 
