@@ -276,6 +276,19 @@ def _flatten(named: dict) -> list[tuple[str, Path]]:
     return out
 
 
+
+def _claim(seen: dict, ident, opt: str, p: Path, noun: str) -> None:
+    """One output per path: refuse option `opt`'s path `p` when another output has the same
+    identity, or when its folder does not exist; record it in `seen`."""
+    where = f"{opt} {p}"
+    if ident in seen:
+        raise InputError(f"{where}: also given as {seen[ident]} (give each output its "
+                         f"own {noun})")
+    seen[ident] = where
+    folder = p.absolute().parent
+    if not folder.is_dir():
+        raise InputError(f"{where}: folder {folder} does not exist")
+
 # The names each out_dirs option writes (and replaces) inside its folder.
 OUT_DIR_WRITES = {"--plot": ("*.png", ".*.tmp.png"),
                   "--checkpoint": ("checkpoint.json", "state-*.npz", ".*.tmp*")}
@@ -321,27 +334,14 @@ def check_paths(*, inputs: dict | None = None, outputs: dict | None = None,
             if ip.is_dir() and p.exists() and _inside(p, ip):
                 raise InputError(f"{where}: would replace a file inside the input {iopt} "
                                  f"{ip} (give another file name)")
-        if ident in seen:
-            raise InputError(f"{where}: also given as {seen[ident]} (give each output its "
-                             f"own file)")
-        seen[ident] = f"{opt} {p}"
-        folder = p.absolute().parent
-        if not folder.is_dir():
-            raise InputError(f"{where}: folder {folder} does not exist")
-        _probe(folder, where)
+        _claim(seen, ident, opt, p, "file")
+        _probe(p.absolute().parent, where)
 
     for opt, p in dirs + whole:
         where = f"{opt} {p}"
         if p.exists() and not p.is_dir():
             raise InputError(f"{where}: exists and is not a folder")
-        ident = _identity(p)
-        if ident in seen:
-            raise InputError(f"{where}: also given as {seen[ident]} (give each output its "
-                             f"own name)")
-        seen[ident] = f"{opt} {p}"
-        folder = p.absolute().parent
-        if not folder.is_dir():
-            raise InputError(f"{where}: folder {folder} does not exist")
+        _claim(seen, _identity(p), opt, p, "name")
     for opt, p in whole:
         where = f"{opt} {p}"
         for iopt, ip in ins:
