@@ -616,6 +616,18 @@ def check_shard_dir(path, workers=None) -> dict:
     return manifest
 
 
+def split_counts(path, manifest: dict) -> dict[str, int]:
+    """Vertices in the train/val/test masks over all shards of a checked shard directory
+    (reads only the mask members: n booleans in all); a mask a shard lacks counts 0."""
+    counts = dict.fromkeys(("train", "val", "test"), 0)
+    for w in range(manifest["workers"]):
+        with np.load(_shard_file(path, manifest, w), allow_pickle=False) as z:
+            for name in counts:
+                if f"{name}_mask" in z.files:
+                    counts[name] += int(np.count_nonzero(z[f"{name}_mask"]))
+    return counts
+
+
 def load_shard(path, worker: int) -> Shard:
     """Load one worker's shard from a shard directory, without reading the others."""
     from pathlib import Path

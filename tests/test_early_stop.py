@@ -272,6 +272,13 @@ def test_early_stop_without_validation_vertices_is_refused(run_cli, tmp_path):
     out = run_cli("train", path, "--workers", "2", "--method", "random", "--epochs", "3",
                   "--early-stop", "2")
     assert out.returncode == 2 and "--early-stop" in out.stderr and "validation" in out.stderr
+    shards = tmp_path / "shards"
+    assert run_cli("split", path, "--workers", "2", "--method", "random", "--out",
+                   shards).returncode == 0
+    out = run_cli("train", shards, "--epochs", "3", "--early-stop", "2", "--timeout", "5")
+    assert out.returncode == 2, out.stderr          # at the door, before any worker starts
+    assert out.stderr.count("\n") == 1 and "--early-stop" in out.stderr and \
+        "no validation vertices" in out.stderr
 
 
 # ---------------------------------------------------------------- threads

@@ -480,10 +480,15 @@ def _run(args, phase: list, link) -> int:
     try:
         if from_shards:
             from shardtrain.coordinator import model_dims_of, shard_dir_facts
-            from shardtrain.shards import check_shard_dir
+            from shardtrain.shards import check_shard_dir, split_counts
 
             phase[0] = "checking the shard directory"
-            facts = shard_dir_facts(args.graph, check_shard_dir(args.graph))
+            manifest = check_shard_dir(args.graph)
+            facts = shard_dir_facts(args.graph, manifest)
+            counts = split_counts(args.graph, manifest)
+            if settings.early_stop and not counts["val"]:
+                raise InputError(f"--early-stop: {args.graph} has no validation vertices "
+                                 f"(the validation split is empty)")
             if args.workers is not None and args.workers != facts.workers:
                 raise InputError(f"--workers {args.workers}: {args.graph} holds "
                                  f"{facts.workers} shards")
@@ -494,7 +499,7 @@ def _run(args, phase: list, link) -> int:
                     if args.init_weights else None)
             graph_doc = rundoc.graph_of_shards(args.graph, facts)
             if not args.quiet:
-                print(_shard_dir_line(args.graph, facts), flush=True)
+                print(_shard_dir_line(args.graph, facts, counts), flush=True)
             shard_dir, labels = args.graph, None
             graph_fp = _manifest_fingerprint(shard_dir)
         else:
@@ -596,15 +601,18 @@ def graph_line(graph) -> str:
             f"{_count(graph.test_mask)} test")
 
 
-def _shard_dir_line(shard_dir, facts) -> str:
-    """The same line for a shard directory, from its manifest (split sizes beyond the
-    training count live only in the shards)."""
+def _shard_dir_line(shard_dir, facts, counts: dict | None = None) -> str:
+    """The same line for a shard directory, from its manifest and, where given, the mask
+    counts of all its shards (`shards.split_counts`; an MPI rank 0 may see only its own
+    shard, so it shows the manifest's training count alone)."""
     from shardtrain.shards import load_manifest
 
     m = load_manifest(shard_dir)
+    split = (f"{int(m['num_train_global']):,} train" if counts is None else
+             f"{counts['train']:,} train, {counts['val']:,} val, {counts['test']:,} test")
     return (f"graph: {facts.num_vertices:,} vertices, {int(m.get('num_edges') or 0):,} "
             f"edges, {facts.input_dim:,} features, {facts.num_classes:,} classes; split: "
-            f"{int(m['num_train_global']):,} train; {facts.workers} shards in {shard_dir}")
+            f"{split}; {facts.workers} shards in {shard_dir}")
 
 
 def _manifest_fingerprint(shard_dir):
