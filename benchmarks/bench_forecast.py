@@ -6,7 +6,8 @@ What it runs (in a temporary folder; every command line is recorded in the JSON)
    --latency-us 200 --json F.json` -- the forecast exactly as a user asks for it (compute
    counted from this machine's timed kernels), before and again after the runs (this
    machine's speed drifts with other tenants; the mean of the two is compared). The same
-   with `--measure-compute` (each shard's step timed on the worker's own code) beside;
+   with `--measure-compute --cores C` (each shard's step timed on the worker's own code, as
+   many shards at once as this machine's C cores compute in a local run) beside;
 3. `shardtrain train GRAPH.npz --workers 2 --method metis --emulate-link G:200 --epochs N
    --json R.json --quiet` for each speed G, `--repeats` rounds alternating the speeds.
 The measured figure is the run's median `epoch_s` after the warm-up epochs (the slowest
@@ -55,6 +56,17 @@ def _cpu_seconds() -> dict:
 def _children_cpu() -> float:
     u = resource.getrusage(resource.RUSAGE_CHILDREN)
     return u.ru_utime + u.ru_stime
+
+
+def _add_worker_cpu(run: dict, doc: dict) -> None:
+    """Count the workers' CPU (their process CPU from the run JSON) as the run's own: they
+    are the forkserver's children, whose CPU never reaches this process's RUSAGE_CHILDREN,
+    so without this they showed up as other tenants' busy cores."""
+    workers = sum(float(w.get("process_cpu_s") or w.get("cpu_s") or 0.0)
+                  for w in doc["workers"])
+    if run["other_busy_cores"] is not None:
+        run["other_busy_cores"] = max(0.0, run["other_busy_cores"] - workers / run["wall_s"])
+    run["own_cpu_s"] += workers
 
 
 def shardtrain(*args) -> dict:
@@ -121,7 +133,7 @@ def main(argv=None) -> int:
                                      args.classes, "--features", args.features, "--seed", 7)
         before = _forecast(graph, links, args.latency_us, Path(tmp) / "f0.json", cal)
         measured_compute = _forecast(graph, links, args.latency_us, Path(tmp) / "fm.json",
-                                     cal, "--measure-compute")
+                                     cal, "--measure-compute", "--cores", os.cpu_count())
         runs = {g: [] for g in links}
         for _ in range(args.repeats):
             for g in links:
@@ -130,6 +142,7 @@ def main(argv=None) -> int:
                                  "--emulate-link", f"{g:g}:{args.latency_us:g}",
                                  "--epochs", args.epochs, "--json", out, "--quiet")
                 doc = json.loads(out.read_text())
+                _add_worker_cpu(run, doc)
                 times = [e["epoch_s"] for e in doc["epochs"][warmup:]]
                 run.update(median_epoch_s=statistics.median(times), min_epoch_s=min(times),
                            max_epoch_s=max(times), emulated_link=doc["emulated_link"],
@@ -205,7 +218,7 @@ def main(argv=None) -> int:
     write_json_atomic(args.out, result)
     print(f"forecast: shardtrain forecast GRAPH --workers 2 --method metis --link-gbps "
           f"{args.links} --latency-us {args.latency_us:g} (compute counted; the column "
-          f"'measured compute' adds --measure-compute)")
+          f"'measured compute' adds --measure-compute --cores C)")
     print(f"measured: shardtrain train GRAPH --workers 2 --method metis --emulate-link "
           f"G:{args.latency_us:g} --epochs {args.epochs} (median epoch after {warmup})")
     print(f"{'link':>11}  {'forecast':>9}  {'measured':>9}  {'ratio':>6}  {'goal':>4}  "

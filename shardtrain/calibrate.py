@@ -525,24 +525,43 @@ def _shard_step_in_process(shard_dir: str, worker: int, settings_dict: dict,
 
 
 def shards_step_seconds(shard_dir, settings, num_classes: int, workers: int, *,
-                        epochs: int = 6) -> list[dict]:
-    """`shard_step_seconds` of every shard in `shard_dir`, all at once, one process per
-    shard (as the trainer runs them): the k workers of a plan checked on one machine share
-    its memory bandwidth and caches, which a shard timed alone does not see."""
+                        epochs: int = 6, processes: int | None = None) -> list[dict]:
+    """`shard_step_seconds` of every shard in `shard_dir`, `processes` (default: all) at
+    once, one process per shard (as the trainer runs them): the workers of a plan checked on
+    one machine share its memory bandwidth and caches, which a shard timed alone does not
+    see (`benchmarks/bench_forecast.py` shows the difference)."""
     import multiprocessing
 
     ctx = multiprocessing.get_context("spawn")
     args = [(str(shard_dir), w, settings.to_dict(), int(num_classes), int(epochs))
             for w in range(int(workers))]
-    with ctx.Pool(len(args)) as pool:
+    with ctx.Pool(max(1, min(len(args), processes or len(args)))) as pool:
         return pool.starmap(_shard_step_in_process, args)
 
 
 def plan_step_seconds(graph, assignment: np.ndarray, k: int, settings, num_classes: int, *,
-                      epochs: int = 3) -> list[dict]:
-    """`shard_step_seconds` of every shard of one plan, built as the trainer builds them,
-    each timed alone in this process (a worker with a machine of its own)."""
+                      epochs: int = 3, together: int = 1) -> list[dict]:
+    """`shard_step_seconds` of every shard of one plan, built as the trainer builds them:
+    each timed alone in this process (a worker with a machine of its own), or, with
+    `together` > 1 (a check on this machine's cores), that many shards at once, one process
+    each, as a local run computes them (`shards_step_seconds`)."""
     from shardtrain.shards import build_shards
 
-    return [shard_step_seconds(shard, settings, num_classes, epochs=epochs)
-            for shard in build_shards(graph, assignment, k)]
+    shards = build_shards(graph, assignment, k)
+    if together <= 1 or k <= 1:
+        return [shard_step_seconds(shard, settings, num_classes, epochs=epochs)
+                for shard in shards]
+    import shutil
+    import tempfile
+
+    from shardtrain.shards import save_shards
+
+    folder = tempfile.mkdtemp(prefix="shardtrain-timing-")
+    try:
+        save_shards(Path(folder) / "shards", shards,
+                    meta={"method": "timing", "seed": int(settings.seed),
+                          "graph_fingerprint": None, "num_classes": int(num_classes)})
+        return shards_step_seconds(Path(folder) / "shards", settings, num_classes, k,
+                                   epochs=max(2, epochs), processes=together)
+    finally:
+        shutil.rmtree(folder, ignore_errors=True)

@@ -74,8 +74,11 @@ def parse_float_list(text: str, option: str) -> list[float]:
     return values
 
 
-def _survey_and_measure(graph, methods, workers, settings, dropout):
-    """Survey plan by plan and time every plan's shards on the worker's own code."""
+def _survey_and_measure(graph, methods, workers, settings, dropout, cores=None):
+    """Survey plan by plan and time every plan's shards on the worker's own code (with
+    `cores`, as many shards at once as a local run on that many cores computes at once)."""
+    import os
+
     from shardtrain.calibrate import plan_step_seconds
     from shardtrain.partition import partition
     from shardtrain.settings import TrainSettings
@@ -93,8 +96,10 @@ def _survey_and_measure(graph, methods, workers, settings, dropout):
             plans += head["plans"]
             print(f"timing the training step of {method} x {k} on its shards ...",
                   file=sys.stderr)
+            together = min(k, cores, os.cpu_count() or 1) if cores else 1
             measured[(method, k)] = plan_step_seconds(graph, a, k, train,
-                                                      head["graph"]["classes"])
+                                                      head["graph"]["classes"],
+                                                      together=together)
     return dict(head, plans=plans), measured
 
 
@@ -254,7 +259,7 @@ def run(args) -> int:
         graph = loaded.graph
         if args.measure_compute:
             survey_dict, measured = _survey_and_measure(graph, methods, workers, settings,
-                                                        args.dropout)
+                                                        args.dropout, args.cores)
         else:
             survey_dict = survey(graph, methods, workers, settings)
     dtype = survey_dict["model"].get("dtype", "float32")
