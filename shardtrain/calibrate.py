@@ -27,6 +27,7 @@ import numpy as np
 import scipy.sparse as sp
 from threadpoolctl import threadpool_limits
 
+from shardtrain.compat import add_csr_product
 from shardtrain.errors import InputError
 
 CALIBRATION_VERSION = 1
@@ -140,11 +141,11 @@ def _time_row_moves(dtype, rng) -> dict:
     nbytes = buf.nbytes
     gather = _best_time(lambda: np.take(src, idx, axis=0, out=buf), repeats=5, budget_s=0.2)
     try:     # the worker's own way; a plain indexed add if the worker changes it
-        from shardtrain.worker import _accumulate_product, _selection
+        from shardtrain.worker import _selection
         select = _selection(idx, n, dtype)
 
         def scatter_add():
-            _accumulate_product(select, buf, src)
+            add_csr_product(select, buf, src)
     except ImportError:
         def scatter_add():
             src[idx] += buf

@@ -23,6 +23,7 @@ import numpy as np
 import scipy.sparse as sp
 from scipy.sparse.csgraph import reverse_cuthill_mckee
 
+from shardtrain.compat import scale_csr_rows
 from shardtrain.errors import InputError
 from shardtrain.graph import Graph, gcn_degrees
 
@@ -160,17 +161,6 @@ def _local_csr(rows_new: np.ndarray, lengths: np.ndarray, cols: np.ndarray, n_ow
     return indptr, key.astype(ix)
 
 
-def _scale_rows(adj: sp.csr_matrix, factor: np.ndarray) -> None:
-    """adj[i, :] *= factor[i] in place (scipy's C kernel; np.repeat of the factors is a
-    full extra pass over the entries)."""
-    try:
-        from scipy.sparse._sparsetools import csr_scale_rows
-    except ImportError:                      # private in scipy: keep a public fallback
-        adj.data *= np.repeat(factor, np.diff(adj.indptr))
-        return
-    csr_scale_rows(adj.shape[0], adj.shape[1], adj.indptr, adj.indices, adj.data, factor)
-
-
 def _build_one(graph: Graph, structure: sp.csr_matrix, owner: np.ndarray, k: int, p: int,
                verts: np.ndarray, colmap: np.ndarray, inv_sqrt: np.ndarray, num_train: int,
                with_vertex_data: bool, order: str) -> tuple[Shard, np.ndarray]:
@@ -208,7 +198,7 @@ def _build_one(graph: Graph, structure: sp.csr_matrix, owner: np.ndarray, k: int
     inv_col = inv_sqrt[np.concatenate([owned, halo])]
     adj = sp.csr_matrix((inv_col[cols], cols, indptr), shape=(n_own, ncols))
     adj.has_sorted_indices = True
-    _scale_rows(adj, inv_col[:n_own])
+    scale_csr_rows(adj, inv_col[:n_own])
 
     empty = np.zeros(0, dtype=np.int64)
     shard = Shard(worker=p, workers=k, num_vertices_global=n, num_train_global=num_train,

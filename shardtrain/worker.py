@@ -32,6 +32,7 @@ import numpy as np
 import scipy.sparse as sp
 
 from shardtrain import model, stopping
+from shardtrain.compat import add_csr_product
 from shardtrain.schedule import layer_dims, layer_hops
 from shardtrain.settings import TrainSettings
 
@@ -65,26 +66,6 @@ def decode_message(raw: bytes) -> dict:
 
 
 # ---------------------------------------------------------------- halo products
-
-def _accumulate_product(a, x: np.ndarray, y: np.ndarray) -> None:
-    """y += a @ x for a CSR matrix `a` and C-contiguous 2-D x, y of a's dtype, in place.
-
-    scipy's own kernel (the one `a @ x` runs after zeroing a fresh output) when it is there:
-    no temporary, and row i sums its entries in column order exactly as `a @ x` does; else
-    the public product, added.
-    """
-    if _csr_matvecs is not None and x.shape[1] > 0:
-        _csr_matvecs(a.shape[0], a.shape[1], x.shape[1], a.indptr, a.indices, a.data,
-                     x.reshape(-1), y.reshape(-1))
-    else:
-        y += a @ x
-
-
-try:    # a private scipy module: guarded, with the public product as the fallback
-    from scipy.sparse._sparsetools import csr_matvecs as _csr_matvecs
-except ImportError:  # pragma: no cover - depends on the scipy build
-    _csr_matvecs = None
-
 
 class HaloOps:
     """propagate / propagate_t of one shard over a transport, with buffers reused per
@@ -150,8 +131,8 @@ class HaloOps:
             self.on_phase(f"epoch {self.epoch} compute")
             with self.profile.phase("compute"):
                 z = np.zeros((self.n_owned, width), dtype=self.dtype)   # fresh: the model's
-                _accumulate_product(self.adj_own, m, z)
-                _accumulate_product(self.adj_halo, halo, z)
+                add_csr_product(self.adj_own, m, z)
+                add_csr_product(self.adj_halo, halo, z)
                 return z
         return propagate
 
@@ -162,7 +143,7 @@ class HaloOps:
             g = np.ascontiguousarray(g, dtype=self.dtype)
             halo = self._block(("halo_t", layer, width), self.n_local - self.n_owned, width)
             halo.fill(0)
-            _accumulate_product(self.adj_halo_t, g, halo)          # rows owned by the peers
+            add_csr_product(self.adj_halo_t, g, halo)          # rows owned by the peers
             outgoing = {q: halo[self.halo_rows[q]] for q in self.peers}
             incoming = {q: self._block(("recv", layer, width, q), self.send_idx[q].shape[0],
                                        width) for q in self.peers}
@@ -172,9 +153,9 @@ class HaloOps:
         self.on_phase(f"epoch {self.epoch} compute")
         with self.profile.phase("compute"):
             out = np.zeros((self.n_owned, width), dtype=self.dtype)
-            _accumulate_product(self.adj_own_t, g, out)
+            add_csr_product(self.adj_own_t, g, out)
             for q in self.peers:
-                _accumulate_product(self.scatter[q], incoming[q], out)
+                add_csr_product(self.scatter[q], incoming[q], out)
             return out
 
 

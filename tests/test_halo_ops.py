@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 import scipy.sparse as sp
 
-from shardtrain import model, worker
+from shardtrain import compat, model, worker
 
 
 @pytest.mark.parametrize("dtype", [np.float32, np.float64])
@@ -14,12 +14,12 @@ from shardtrain import model, worker
 def test_accumulate_product_adds_the_scipy_product(dtype, kernel, monkeypatch):
     # Reference: scipy.sparse's public CSR @ dense product.
     if not kernel:
-        monkeypatch.setattr(worker, "_csr_matvecs", None)    # the guarded fallback path
+        monkeypatch.setattr(compat, "_csr_matvecs", None)    # the public fallback path
     a = sp.random(300, 500, density=0.02, format="csr", random_state=1, dtype=dtype)
     x = np.random.default_rng(2).standard_normal((500, 7)).astype(dtype)
     y0 = np.random.default_rng(3).standard_normal((300, 7)).astype(dtype)
     y = y0.copy()
-    worker._accumulate_product(a, x, y)
+    compat.add_csr_product(a, x, y)
     tol = 1e-5 if dtype == np.float32 else 1e-12      # rounding of a different sum order
     np.testing.assert_allclose(y, y0 + a @ x, rtol=tol, atol=tol)
 
@@ -31,8 +31,8 @@ def test_split_blocks_give_the_bits_of_the_whole_product():
     a.sort_indices()
     m = np.random.default_rng(5).standard_normal((700, 5))
     z = np.zeros((400, 5))
-    worker._accumulate_product(worker._column_block(a, 0, 400), np.ascontiguousarray(m[:400]), z)
-    worker._accumulate_product(worker._column_block(a, 400, 700),
+    compat.add_csr_product(worker._column_block(a, 0, 400), np.ascontiguousarray(m[:400]), z)
+    compat.add_csr_product(worker._column_block(a, 400, 700),
                                np.ascontiguousarray(m[400:]), z)
     assert z.tobytes() == (a @ m).tobytes()
 
@@ -44,7 +44,7 @@ def test_selection_matrix_adds_rows_at_their_targets():
     out = np.random.default_rng(8).standard_normal((50, 3))
     want = out.copy()
     want[rows] += x
-    worker._accumulate_product(worker._selection(rows, 50, np.float64), x, out)
+    compat.add_csr_product(worker._selection(rows, 50, np.float64), x, out)
     assert out.tobytes() == want.tobytes()
 
 
