@@ -12,13 +12,19 @@ kernel is present, which `FALLBACKS` tells.
 Shims:
 - `add_csr_product(a, x, out)`: out += a @ x without a temporary (scipy's `csr_matvecs`).
 - `scale_csr_rows(a, factor)`: a[i, :] *= factor[i] in place (scipy's `csr_scale_rows`).
+- `metis_part_graph(...)`: METIS with several weights per vertex, through the C library in
+  pymetis's private `_internal` module. No public path exists, so a failed check is a
+  `RunError` at the first call instead of a fallback.
 """
 from __future__ import annotations
 
+import functools
 import warnings
 
 import numpy as np
 import scipy.sparse as sp
+
+from shardtrain.errors import RunError
 
 
 class CompatWarning(RuntimeWarning):
@@ -138,3 +144,87 @@ def scale_csr_rows(a: sp.csr_matrix, factor: np.ndarray) -> None:
         _csr_scale_rows(a.shape[0], a.shape[1], a.indptr, a.indices, a.data, factor)
     else:
         a.data *= np.repeat(factor, np.diff(a.indptr))
+
+
+# ------------------------------------------------------------------ METIS, ncon weights
+# Remove when pymetis's part_graph passes ncon (several weights per vertex) to METIS.
+# pymetis is needed only to partition, so this check runs at the first call, once per
+# process, not at import (workers never load pymetis).
+
+@functools.lru_cache(maxsize=1)
+def _metis_library():
+    """(ctypes handle of the METIS C library inside pymetis's extension module, its option
+    indices), checked against pymetis's public `part_graph` on a tiny graph; RunError if
+    unusable (the METIS calls need that private module: no public path does ncon > 1)."""
+    import ctypes
+
+    import pymetis
+    try:
+        import pymetis._internal as internal
+        keys = internal.options_indices
+        lib = ctypes.CDLL(internal.__file__)
+        pointer = ctypes.POINTER(ctypes.c_int64)
+        for name in ("METIS_PartGraphKway", "METIS_PartGraphRecursive"):
+            fn = getattr(lib, name)
+            fn.argtypes = [pointer] * 8 + [ctypes.c_void_p, ctypes.c_void_p] + [pointer] * 3
+            fn.restype = ctypes.c_int
+        lib.METIS_SetDefaultOptions.argtypes = [pointer]
+        lib.METIS_SetDefaultOptions.restype = ctypes.c_int
+    except (ImportError, OSError, AttributeError) as exc:
+        raise RunError(f"this pymetis does not expose the METIS C library shardtrain calls "
+                       f"for vertex+edge balance ({type(exc).__name__}: {exc})") from None
+    if pymetis.zero_copy_dtype() != np.dtype(np.int64):
+        raise RunError("this pymetis was built with 32-bit METIS indices; "
+                       "--method metis needs the 64-bit build")
+    # two triangles joined by one edge, vertex weights 1..6: the public call must agree
+    xadj = np.array([0, 2, 4, 7, 10, 12, 14], dtype=np.int64)
+    adjncy = np.array([1, 2, 0, 2, 0, 1, 3, 2, 4, 5, 3, 5, 3, 4], dtype=np.int64)
+    weights = np.arange(1, 7, dtype=np.int64)
+    for recursive in (False, True):
+        mine = _metis_call(lib, keys, xadj, adjncy, 2, weights, 1, recursive=recursive,
+                           seed=0, ufactor=30, niter=10)
+        public = pymetis.part_graph(2, adjacency=pymetis.CSRAdjacency(xadj, adjncy),
+                                    vweights=weights, recursive=recursive,
+                                    options=pymetis.Options(ufactor=30, seed=0, niter=10))
+        if not np.array_equal(mine, np.asarray(public.vertex_part, dtype=np.int64)):
+            raise RunError("this pymetis's METIS library disagrees with its own part_graph on "
+                           "a 6-vertex check; the vertex+edge balanced plan is unavailable")
+    return lib, keys
+
+
+def _metis_call(lib, keys, xadj, adjncy, k: int, vweights, ncon: int, *, recursive: bool,
+                seed: int, ufactor: int, niter: int) -> np.ndarray:
+    import ctypes
+
+    idx = ctypes.POINTER(ctypes.c_int64)
+
+    def p(a):
+        return a.ctypes.data_as(idx)
+
+    options = np.zeros(64, dtype=np.int64)        # METIS_NOPTIONS is 40 in METIS 5
+    lib.METIS_SetDefaultOptions(p(options))
+    options[keys.UFACTOR], options[keys.SEED] = ufactor, seed
+    options[keys.NITER], options[keys.NUMBERING] = niter, 0
+    xadj = np.ascontiguousarray(xadj, dtype=np.int64)
+    adjncy = np.ascontiguousarray(adjncy, dtype=np.int64)
+    n = xadj.shape[0] - 1
+    weights = None if vweights is None else np.ascontiguousarray(vweights, dtype=np.int64)
+    nvtxs, ncons, nparts = (np.array([v], dtype=np.int64) for v in (n, ncon, k))
+    objval, part = np.zeros(1, dtype=np.int64), np.zeros(n, dtype=np.int64)
+    fn = lib.METIS_PartGraphRecursive if recursive else lib.METIS_PartGraphKway
+    status = fn(p(nvtxs), p(ncons), p(xadj), p(adjncy),
+                None if weights is None else p(weights), None, None, p(nparts),
+                None, None, p(options), p(objval), p(part))
+    if status != 1:                                # METIS_OK
+        raise RunError(f"METIS failed (status {status}) partitioning {n} vertices into {k}")
+    return part
+
+
+def metis_part_graph(xadj, adjncy, k: int, vweights: np.ndarray | None, ncon: int, *,
+                     recursive: bool, seed: int, ufactor: int, niter: int) -> np.ndarray:
+    """int64 (n,) parts of METIS_PartGraphRecursive / METIS_PartGraphKway on the CSR graph
+    (xadj, adjncy) with `ncon` vertex weights per vertex (vweights row-major n x ncon, or
+    None), edge-cut objective, METIS's defaults but for ufactor, seed, niter, 0-based."""
+    lib, keys = _metis_library()
+    return _metis_call(lib, keys, xadj, adjncy, k, vweights, ncon, recursive=recursive,
+                       seed=seed, ufactor=ufactor, niter=niter)

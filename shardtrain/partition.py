@@ -7,12 +7,12 @@ reads a user's own partition from a file.
 """
 from __future__ import annotations
 
-import functools
 import os
 from pathlib import Path
 
 import numpy as np
 
+from shardtrain.compat import metis_part_graph
 from shardtrain.errors import InputError, RunError
 from shardtrain.graph import Graph
 from shardtrain.io import read_npy, require_regular_file
@@ -46,62 +46,13 @@ MC_CUT_PER_E_FOLD = 0.03
 MC_VERTEX_BOUND = 1.2
 
 
-@functools.lru_cache(maxsize=1)
-def _metis_library():
-    """The METIS C library inside pymetis's extension module, for the one call pymetis
-    does not make: its `part_graph` passes ncon = 1, so a weight array of 2n entries is read
-    as n single weights (checked in tests/test_partition_quality.py)."""
-    import ctypes
-
-    import pymetis
-    import pymetis._internal as internal
-
-    if pymetis.zero_copy_dtype() != np.dtype(np.int64):
-        raise RunError("this pymetis was built with 32-bit METIS indices; "
-                       "--method metis needs the 64-bit build")
-    lib = ctypes.CDLL(internal.__file__)
-    pointer = ctypes.POINTER(ctypes.c_int64)
-    for name in ("METIS_PartGraphKway", "METIS_PartGraphRecursive"):
-        fn = getattr(lib, name)
-        fn.argtypes = [pointer] * 8 + [ctypes.c_void_p, ctypes.c_void_p] + [pointer] * 3
-        fn.restype = ctypes.c_int
-    lib.METIS_SetDefaultOptions.argtypes = [pointer]
-    lib.METIS_SetDefaultOptions.restype = ctypes.c_int
-    return lib
-
-
 def _metis_call(graph: Graph, k: int, vweights: np.ndarray | None, ncon: int, *,
                 recursive: bool, seed: int, ufactor: int, niter: int) -> np.ndarray:
     """METIS_PartGraphRecursive / METIS_PartGraphKway with `ncon` vertex weights per vertex
-    (row-major, n x ncon), edge-cut objective."""
-    import ctypes
-
-    import pymetis._internal as internal
-
-    lib = _metis_library()
-    keys = internal.options_indices
-    idx = ctypes.POINTER(ctypes.c_int64)
-
-    def p(a):
-        return a.ctypes.data_as(idx)
-
-    options = np.zeros(64, dtype=np.int64)        # METIS_NOPTIONS is 40 in METIS 5
-    lib.METIS_SetDefaultOptions(p(options))
-    options[keys.UFACTOR], options[keys.SEED] = ufactor, seed
-    options[keys.NITER], options[keys.NUMBERING] = niter, 0
-    n = graph.num_vertices
-    xadj = np.ascontiguousarray(graph.indptr, dtype=np.int64)
-    adjncy = np.ascontiguousarray(graph.indices, dtype=np.int64)
-    weights = None if vweights is None else np.ascontiguousarray(vweights, dtype=np.int64)
-    nvtxs, ncons, nparts = (np.array([v], dtype=np.int64) for v in (n, ncon, k))
-    objval, part = np.zeros(1, dtype=np.int64), np.zeros(n, dtype=np.int64)
-    fn = lib.METIS_PartGraphRecursive if recursive else lib.METIS_PartGraphKway
-    status = fn(p(nvtxs), p(ncons), p(xadj), p(adjncy),
-                None if weights is None else p(weights), None, None, p(nparts),
-                None, None, p(options), p(objval), p(part))
-    if status != 1:                                # METIS_OK
-        raise RunError(f"METIS failed (status {status}) partitioning {n} vertices into {k}")
-    return part
+    (row-major, n x ncon), edge-cut objective (`compat.metis_part_graph`: pymetis's
+    `part_graph` passes ncon = 1, checked in tests/test_partition_quality.py)."""
+    return metis_part_graph(graph.indptr, graph.indices, k, vweights, ncon,
+                            recursive=recursive, seed=seed, ufactor=ufactor, niter=niter)
 
 
 def _plan_summary(graph: Graph, part: np.ndarray, k: int, cut: int, scheme: str,

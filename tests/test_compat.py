@@ -179,3 +179,58 @@ def test_import_check_keeps_working_kernels_silently(monkeypatch, restore_compat
     assert fresh.FALLBACKS == {} and said == []
     assert fresh._csr_matvecs is _sparsetools.csr_matvecs
     assert fresh._csr_scale_rows is _sparsetools.csr_scale_rows
+
+
+def _grid_csr(side):
+    import networkx as nx
+
+    a = nx.to_scipy_sparse_array(nx.grid_2d_graph(side, side), format="csr")
+    a.sort_indices()
+    return a.indptr.astype(np.int64), a.indices.astype(np.int64)
+
+
+@pytest.mark.parametrize("recursive", [False, True])
+def test_metis_part_graph_with_one_weight_equals_pymetis(recursive):
+    # Reference: pymetis's public part_graph (same options) on a networkx 12x12 grid.
+    import pymetis
+
+    xadj, adjncy = _grid_csr(12)
+    w = 1 + np.arange(144, dtype=np.int64) % 3
+    got = compat.metis_part_graph(xadj, adjncy, 4, w, 1, recursive=recursive, seed=3,
+                                  ufactor=30, niter=10)
+    want = pymetis.part_graph(4, adjacency=pymetis.CSRAdjacency(xadj, adjncy), vweights=w,
+                              recursive=recursive,
+                              options=pymetis.Options(ufactor=30, seed=3, niter=10))
+    assert got.dtype == np.int64 and np.array_equal(got, want.vertex_part)
+
+
+@pytest.fixture
+def fresh_metis():
+    compat._metis_library.cache_clear()
+    yield
+    compat._metis_library.cache_clear()
+
+
+def test_metis_check_refuses_a_library_that_disagrees(monkeypatch, fresh_metis):
+    # Reference: pymetis's part_graph, made to disagree: the check must notice it.
+    import pymetis
+
+    class Wrong:
+        vertex_part = [0, 1, 0, 1, 0, 1]
+
+    monkeypatch.setattr(pymetis, "part_graph", lambda *a, **kw: Wrong())
+    xadj, adjncy = _grid_csr(3)
+    with pytest.raises(compat.RunError, match="disagrees with its own part_graph"):
+        compat.metis_part_graph(xadj, adjncy, 2, None, 1, recursive=False, seed=0,
+                                ufactor=30, niter=10)
+
+
+def test_metis_check_names_a_missing_private_module(monkeypatch, fresh_metis):
+    # Reference: none needed: a pymetis without _internal is one RunError line, no traceback.
+    import sys
+
+    monkeypatch.setitem(sys.modules, "pymetis._internal", None)   # import then fails
+    xadj, adjncy = _grid_csr(3)
+    with pytest.raises(compat.RunError, match="does not expose the METIS C library"):
+        compat.metis_part_graph(xadj, adjncy, 2, None, 1, recursive=False, seed=0,
+                                ufactor=30, niter=10)
