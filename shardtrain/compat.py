@@ -15,10 +15,15 @@ Shims:
 - `metis_part_graph(...)`: METIS with several weights per vertex, through the C library in
   pymetis's private `_internal` module. No public path exists, so a failed check is a
   `RunError` at the first call instead of a fallback.
+- `worker_log_receiver(ctx, sub_handler, name)`: multiprocessing-logging's handler with its
+  queue made in the run's multiprocessing context (it replaces an attribute the library's
+  __init__ sets); the standard library's QueueListener when that does not take.
 """
 from __future__ import annotations
 
 import functools
+import logging
+import logging.handlers
 import warnings
 
 import numpy as np
@@ -36,7 +41,7 @@ FALLBACKS: dict[str, str] = {}    # shim name -> why it uses the public path in 
 
 def _fall_back(name: str, reason: str) -> None:
     FALLBACKS[name] = reason
-    warnings.warn(f"shardtrain.compat.{name}: using the public scipy path ({reason})",
+    warnings.warn(f"shardtrain.compat.{name}: using the public path ({reason})",
                   CompatWarning, stacklevel=2)
 
 
@@ -228,3 +233,56 @@ def metis_part_graph(xadj, adjncy, k: int, vweights: np.ndarray | None, ncon: in
     lib, keys = _metis_library()
     return _metis_call(lib, keys, xadj, adjncy, k, vweights, ncon, recursive=recursive,
                        seed=seed, ufactor=ufactor, niter=niter)
+
+
+# ------------------------------------------------------------------ worker log receiver
+# multiprocessing-logging makes its queue in the default ('fork') context, which children of
+# another start method cannot share, so its handler's `queue` (assigned in its __init__, as
+# in 0.4.0's source) is replaced by one made in the run's context. Remove when
+# multiprocessing-logging's handler takes a context or a queue.
+
+class _StdlibReceiver:
+    """The standard library's way (QueueListener on a queue made in `ctx`): the fallback."""
+
+    def __init__(self, ctx, sub_handler: logging.Handler):
+        self.queue = ctx.Queue(-1)
+        self._listener = logging.handlers.QueueListener(self.queue, sub_handler)
+        self._listener.start()
+
+    def close(self) -> None:
+        self._listener.stop()            # handles every record already queued first
+        self.queue.close()
+        self.queue.join_thread()
+
+
+def worker_log_receiver(ctx, sub_handler: logging.Handler, name: str):
+    """A receiver in this process for the log records of child processes started from the
+    multiprocessing context `ctx`: children put records on `.queue` (through a
+    logging.handlers.QueueHandler), a thread here hands each to `sub_handler`, `.close()`
+    handles the ones still queued and stops.
+
+    multiprocessing-logging's handler with its queue made in `ctx`; if the replacement does
+    not take (its __init__ no longer assigns `queue`), the standard library's QueueListener.
+    """
+    import multiprocessing_logging
+
+    class Receiver(multiprocessing_logging.MultiProcessingHandler):
+        @property
+        def queue(self):
+            return self._queue
+
+        @queue.setter
+        def queue(self, library_queue):
+            library_queue.close()
+            self._queue = ctx.Queue(-1)
+
+    handler = Receiver(name, sub_handler=sub_handler)
+    if "_queue" in vars(handler) and hasattr(handler, "_receive_thread"):
+        return handler
+    try:
+        handler.close()
+    except Exception:                # pragma: no cover - a library we no longer understand
+        pass
+    _fall_back("worker_log_receiver", "multiprocessing-logging's handler no longer assigns "
+               "its queue in __init__; using logging.handlers.QueueListener")
+    return _StdlibReceiver(ctx, sub_handler)

@@ -28,6 +28,7 @@ from typing import Callable
 import numpy as np
 
 from shardtrain import model, worker
+from shardtrain.compat import worker_log_receiver
 from shardtrain.errors import InputError, Interrupted, RunError
 from shardtrain.settings import TrainSettings
 
@@ -68,24 +69,6 @@ class _Dispatch(logging.Handler):
 
     def emit(self, record: logging.LogRecord) -> None:
         logging.getLogger(record.name).handle(record)
-
-
-def _worker_log_handler(ctx):
-    """multiprocessing-logging's receiving handler, with its queue made in `ctx`: the library
-    builds its queue in the default ('fork') context, which spawned children cannot share."""
-    import multiprocessing_logging
-
-    class WorkerLogs(multiprocessing_logging.MultiProcessingHandler):
-        @property
-        def queue(self):
-            return self._queue
-
-        @queue.setter
-        def queue(self, library_queue):
-            library_queue.close()
-            self._queue = ctx.Queue(-1)
-
-    return WorkerLogs("shardtrain-worker-logs", sub_handler=_Dispatch())
 
 
 # ---------------------------------------------------------------- shard directory facts
@@ -311,7 +294,7 @@ def train_partitioned(shard_dir, settings: TrainSettings, *, timeout_s: float = 
     if START_METHOD == "forkserver":
         ctx.set_forkserver_preload(PRELOAD)
     ensure_descriptors(k)
-    logs = _worker_log_handler(ctx)
+    logs = worker_log_receiver(ctx, _Dispatch(), "shardtrain-worker-logs")
     log_level = logging.getLogger("shardtrain").getEffectiveLevel()
     ends = make_pipe_mesh(k, mesh_pairs(k))
     procs, ctrls = [], []

@@ -4,6 +4,8 @@ private kernel and the public fallback, and the import-time check that picks bet
 from __future__ import annotations
 
 import importlib
+import logging
+import logging.handlers
 import types
 import warnings
 
@@ -161,7 +163,7 @@ def test_import_check_falls_back_and_says_so_once(replacement, monkeypatch, rest
     fresh, said = _reload(monkeypatch, csr_matvecs=replacement, csr_scale_rows=replacement)
     assert fresh._csr_matvecs is None and fresh._csr_scale_rows is None
     assert set(fresh.FALLBACKS) == {"add_csr_product", "scale_csr_rows"}
-    assert len(said) == 2 and all("public scipy path" in str(w.message) for w in said)
+    assert len(said) == 2 and all("public path" in str(w.message) for w in said)
     a = _matrix(50, 40, np.float64, 12)
     x = np.random.default_rng(13).standard_normal((40, 4))
     y = np.zeros((50, 4))
@@ -234,3 +236,63 @@ def test_metis_check_names_a_missing_private_module(monkeypatch, fresh_metis):
     with pytest.raises(compat.RunError, match="does not expose the METIS C library"):
         compat.metis_part_graph(xadj, adjncy, 2, None, 1, recursive=False, seed=0,
                                 ufactor=30, niter=10)
+
+
+class _Collect(logging.Handler):
+    def __init__(self):
+        super().__init__()
+        self.got = []
+
+    def emit(self, record):
+        self.got.append(record.getMessage())
+
+
+def _through_receiver(receiver, ctx):
+    """Messages a child-side QueueHandler put on the receiver's queue, as handed over."""
+    assert type(receiver.queue) is type(ctx.Queue())          # made in the run's context
+    child_side = logging.getLogger("shardtrain.test_compat.child")
+    child_side.propagate = False
+    handler = logging.handlers.QueueHandler(receiver.queue)
+    child_side.addHandler(handler)
+    try:
+        for i in range(3):
+            child_side.warning("depot %d", i)
+    finally:
+        child_side.removeHandler(handler)
+        receiver.close()                                      # handles what is queued
+
+
+def test_worker_log_receiver_hands_records_over_in_order():
+    # Reference: the standard library's QueueHandler on the sending side (common practice).
+    import multiprocessing
+
+    ctx = multiprocessing.get_context("spawn")
+    sink = _Collect()
+    receiver = compat.worker_log_receiver(ctx, sink, "test-logs")
+    assert "worker_log_receiver" not in compat.FALLBACKS
+    assert isinstance(receiver, logging.Handler)               # multiprocessing-logging's
+    _through_receiver(receiver, ctx)
+    assert sink.got == ["depot 0", "depot 1", "depot 2"]
+
+
+def test_worker_log_receiver_falls_back_when_the_library_changes(monkeypatch):
+    # Reference: logging.handlers.QueueListener, the standard library's receiver.
+    import multiprocessing
+
+    import multiprocessing_logging
+
+    class Changed(logging.Handler):          # a release whose __init__ keeps its own queue
+        def __init__(self, name, sub_handler=None):
+            super().__init__()
+            self._own = multiprocessing.Queue(-1)
+
+    monkeypatch.setattr(multiprocessing_logging, "MultiProcessingHandler", Changed)
+    monkeypatch.delitem(compat.FALLBACKS, "worker_log_receiver", raising=False)
+    ctx = multiprocessing.get_context("spawn")
+    sink = _Collect()
+    with pytest.warns(compat.CompatWarning, match="QueueListener"):
+        receiver = compat.worker_log_receiver(ctx, sink, "test-logs")
+    assert isinstance(receiver, compat._StdlibReceiver)
+    _through_receiver(receiver, ctx)
+    assert sink.got == ["depot 0", "depot 1", "depot 2"]
+    monkeypatch.delitem(compat.FALLBACKS, "worker_log_receiver")
