@@ -1,13 +1,14 @@
 """Every private or version-dependent library call of the package, one shim each.
 
 Each shim is one function with a public-looking signature. The private call behind it is
-checked ONCE, when this module is imported, against its public equivalent on a tiny input
-whose values are small integers (exact in any summation order, so the check tests the
-call's meaning, not its rounding). If the private call is missing, raises, or gives another
-result (a changed signature or meaning), the shim uses the public path instead, records
-why in `FALLBACKS` and says so once with a `CompatWarning`. Both paths give the same values;
-callers that need the kernel's bits (the worker's split products) get them whenever the
-kernel is present, which `FALLBACKS` tells.
+checked ONCE against its public equivalent on a tiny input: scipy's kernels when this
+module is imported, on small-integer values (exact in any summation order, so the check
+tests the call's meaning, not its rounding); METIS at its first call (pymetis is loaded only
+to partition); the log receiver when it is made. If the private call is missing, raises, or
+gives another result (a changed signature or meaning), the shim uses the public path
+instead, records why in `FALLBACKS` and says so once with a `CompatWarning`. Both paths give
+the same values; callers that need the kernel's bits (the worker's split products) get them
+whenever the kernel is present, which `FALLBACKS` tells.
 
 Shims:
 - `add_csr_product(a, x, out)`: out += a @ x without a temporary (scipy's `csr_matvecs`).
