@@ -173,11 +173,10 @@ def test_run_heatmap_counts_halo_rows_only():
 
 @pytest.fixture(scope="module")
 def small_graph_file(tmp_path_factory):
-    from test_train_cli import _save_graph
-    from test_train_equivalence import depot_graph
+    from helpers import depot_graph, save_graph
 
     path = tmp_path_factory.mktemp("plotgraph") / "depots.npz"
-    _save_graph(path, depot_graph(n=200))
+    save_graph(path, depot_graph(n=200))
     return path
 
 

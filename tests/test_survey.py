@@ -308,7 +308,7 @@ def test_survey_plan_equals_the_trainers_measured_payload(tmp_path):
     # (id-order shards, no process started) must predict them exactly.
     pytest.importorskip("shardtrain.coordinator")
     from shardtrain.settings import TrainSettings
-    from test_train_equivalence import depot_graph, run_partitioned
+    from helpers import depot_graph, run_partitioned
 
     graph = depot_graph(n=300, classes=3, features=20, seed=8)
     a = np.random.default_rng(8).integers(0, 3, 300)
