@@ -48,7 +48,7 @@ def test_quick_demo_writes_every_output_and_names_the_report_last(quick_demo):
 
 def test_run_json_shows_the_equality_check_passed(quick_demo):
     # source of truth: the single-process reference trainer (its tests check gradients
-    # against central finite differences); DESIGN.md: float64 agrees to a relative 1e-9
+    # against central finite differences); docs/design.md §1.7: float64 agrees to a relative 1e-9
     out, _ = quick_demo
     run = _json(out, "run.json")
     check = run["check"]
@@ -204,7 +204,8 @@ def _fake_run(losses, weight, measured, predicted):
 
 
 def test_the_check_fails_on_a_difference_beyond_rounding():
-    # the tolerance of DESIGN.md: relative 1e-9; a difference of 1e-6 must fail, 1e-13 pass
+    # the tolerance of docs/design.md §1.7: relative 1e-9; a difference of 1e-6 must fail,
+    # 1e-13 pass
     plan = {"traffic": {"forward_bytes": 10, "backward_bytes": 5, "allreduce_bytes": 3,
                         "eval_forward_bytes": 10}}
     predicted = 2 * (10 + 5 + 3) + 2 * 10          # 2 epochs, 2 evaluation forwards

@@ -3,7 +3,7 @@
 Sources of truth: the single-process reference trainer (`shardtrain.reference`, itself
 checked against central finite differences and the GCN paper's setup) and the pipes run of
 the same shard directory (`coordinator.train_partitioned`). In float64 with dropout on,
-every epoch's loss and the final weights must agree to a relative 1e-9 (DESIGN.md); the
+every epoch's loss and the final weights must agree to a relative 1e-9 (docs/design.md §1.7); the
 measured payload must equal the survey's prediction, and every (pair, layer, direction) row
 of the traffic account must be the pipes run's, byte for byte.
 

@@ -4,7 +4,7 @@ Source of truth: the single-process reference trainer (`shardtrain.reference`), 
 tests check its gradients against central finite differences and its setup against the
 GCN paper (Kipf & Welling 2017). In float64 the partitioned run differs from it only by
 the order of floating-point sums, so every epoch's loss and the final weights must agree
-to a relative 1e-9 (DESIGN.md), with dropout on.
+to a relative 1e-9 (docs/design.md §1.7), with dropout on.
 """
 from __future__ import annotations
 
