@@ -311,6 +311,7 @@ def test_a_worker_process_raises_blas_to_the_threads_setting():
 # ---------------------------------------------------------------- MPI
 
 
+@pytest.mark.mpi
 def test_mpi_run_stops_at_the_reference_epoch(digits_shards, early_reference, tmp_path):
     mpiexec()
     out = tmp_path / "run.json"

@@ -239,6 +239,7 @@ def _wait_for_checkpoint(folder, epoch: int, proc, limit_s: float = 60.0):
     raise AssertionError("no checkpoint appeared")
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("how", ["SIGINT to the group", "SIGTERM"])
 def test_interrupt_keeps_the_checkpoint_and_resume_is_bit_exact(graph_file, tmp_path, how):
     full = _cli("train", graph_file, *CLI, "--weights", tmp_path / "full.npz")

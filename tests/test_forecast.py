@@ -221,6 +221,7 @@ def test_cli_forecast_of_survey_json(run_cli, survey_json, tmp_path):
     assert "fastest" in r.stdout and "fewest workers meeting" in r.stdout
 
 
+@pytest.mark.slow
 def test_cli_forecast_calibrates_and_keeps_the_timing(run_cli, survey_json, tmp_path):
     cal = tmp_path / "cal.json"
     r = run_cli("forecast", survey_json, "--link-gbps", "10", "--calibration", cal)

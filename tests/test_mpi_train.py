@@ -25,6 +25,8 @@ import pytest
 
 from helpers import launch_mpi, mpiexec
 
+pytestmark = pytest.mark.mpi      # every test here starts mpiexec
+
 RTOL = 1e-9
 SETTINGS_ARGS = ["--layers", "3", "--hidden", "8", "--dropout", "0.5", "--epochs", "3",
                  "--seed", "7", "--dtype", "float64", "--bias"]
@@ -151,6 +153,7 @@ def test_mpi_transport_needs_a_shard_directory(graph, tmp_path):
     assert len(lines) == 1 and "--transport mpi" in lines[0] and "shard directory" in lines[0]
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("fault, code, needle", [
     # rank 1 stops answering in epoch 2: its peers miss the 2 s deadline and end the job
     ("hang", 3, "timed out after 2 s waiting for worker 1"),

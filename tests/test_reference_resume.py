@@ -171,6 +171,7 @@ def _cli(*args):
                             start_new_session=True)
 
 
+@pytest.mark.slow
 def test_ctrl_c_keeps_the_checkpoint_and_resume_is_bit_exact(files, tmp_path):
     """A SIGINT lands mid-run (each epoch writes a checkpoint, so the run is slow enough
     to be caught); the resumed run, checkpointing rarely, ends on the same bits."""

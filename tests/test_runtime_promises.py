@@ -245,6 +245,8 @@ def test_a_broken_shard_directory_is_refused_before_any_worker(capsys, monkeypat
     assert multiprocessing.active_children() == []
 
 
+@pytest.mark.slow
+@pytest.mark.mpi
 def test_mpi_names_the_same_broken_shard_with_the_same_line(capsys, pristine, tmp_path):
     d = tmp_path / "shards"
     shutil.copytree(pristine / "good", d)
@@ -458,6 +460,7 @@ def test_unusable_option_values_are_refused_at_the_option(capsys, graph_file, ar
     assert needle in line, line
 
 
+@pytest.mark.mpi
 def test_the_largest_seed_works_in_every_mode(capsys, graph_file, tmp_path):
     top = str(2**63 - 1)          # the largest --seed accepted
     assert main(["train", str(graph_file), "--reference", "--seed", top, *QUICK]) == 0

@@ -27,6 +27,7 @@ def graph_file(tmp_path_factory):
     return path
 
 
+@pytest.mark.slow
 def test_partitioned_run_writes_json_weights_predictions(run_cli, graph_file, tmp_path):
     out = run_cli("train", graph_file, "--workers", "2", "--method", "random", *COMMON,
                   "--json", tmp_path / "run.json", "--weights", tmp_path / "w.npz",
