@@ -203,7 +203,7 @@ def _time_pipe() -> dict:
 
 
 def calibrate(dtype: str = "float32", *, seed: int = 0) -> dict:
-    """Time sparse, dense and elementwise kernels with BLAS on one thread (about 2-4 s)."""
+    """Time sparse, dense and elementwise kernels with BLAS on one thread (a few seconds)."""
     if dtype not in ("float32", "float64"):
         raise InputError(f"--dtype: {dtype!r} is not float32 or float64")
     rng = np.random.default_rng(seed)

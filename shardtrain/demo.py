@@ -46,7 +46,7 @@ METHODS = ("metis", "metis-volume", "fennel", "random", "range")
 SURVEY_WORKERS = (2, 4, 8)
 LINKS_GBPS = (1.0, 10.0)
 LATENCY_US = 20.0                # forecast.DEFAULT_LATENCY_US: a switched data-centre LAN
-RTOL = 1e-9                      # DESIGN.md: float64 partitioned == reference to rounding
+RTOL = 1e-9                      # docs/design.md §1.7: float64 partitioned == reference
 MAX_WORKERS = 16                 # more processes than that only slow a 2-core machine down
 MIN_VERTICES = 200
 TIMEOUT_S = 120.0                # receive deadline; generous because the machine is shared

@@ -26,18 +26,15 @@ The epoch follows the worker's schedule, step by step, for every worker at once:
   thread (`calibrate.transport_copy_seconds`, CPU seconds per byte). A hop costs each
   worker call cost + max(latency + 8 * sent bytes / bandwidth, copy CPU of its sent +
   received bytes): the copying overlaps the link's time and bounds it on fast links.
-  Why (measured): a training step inside a real 2-worker run costs more CPU than the same
-  step on a transport that moves nothing (`calibrate.shard_step_seconds`). Timed in pairs
-  -- alternate epochs of ONE run on the real pipes and on a no-transfer transport, so the
-  other tenants' load hits both alike -- the model's own compute costs the same CPU in
-  both (paired median ratio 0.97-1.01 per worker, 200k depots, 5 Gbit/s), and the
-  difference is the transport's own work: copying (about 0.3 ns per byte moved on the
-  calibrating machine, 5-7 % of a step on the benchmark plan) and the fixed cost of each
-  call. The run books it under "exchange", so a loopback step does not see it and it must
-  be forecast with the transfer. No page faults per step and no extra threads (thread and
-  process CPU time agree) in either. On a small shard (20k depots) behind a slow link
-  (0.05 Gbit/s) the compute itself ran about 4-5 % slower in the run: its caches cool
-  while the worker sleeps on the link and other processes run (not modelled);
+  Why: a training step inside a real run costs more CPU than the same step on a transport
+  that moves nothing (`calibrate.shard_step_seconds`). Timed in pairs (alternate epochs of
+  ONE run on the real pipes and on a no-transfer transport, so other tenants' load hits
+  both alike) the model's own compute costs the same CPU in both, and the difference is
+  the transport's own work: copying and the fixed cost of each call. The run books it
+  under "exchange", so a loopback step does not see it and it must be forecast with the
+  transfer. Not modelled: a small shard behind a slow link computes a little slower in a
+  run, its caches cooling while it sleeps on the link (benchmarks/bench_forecast.py
+  compares the forecast CPU with the run's);
 - waiting: exchanges synchronise, so between two of them every worker waits for the
   slowest: wait = max - own, per compute phase and per exchange.
 

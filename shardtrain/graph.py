@@ -89,7 +89,7 @@ def csr_from_edges(src: np.ndarray, dst: np.ndarray, num_vertices: int
     del loop_vertices
     src, dst = src[~loops], dst[~loops]
     lo, hi = np.minimum(src, dst), np.maximum(src, dst)
-    # sort + neighbour compare: np.unique (numpy 2.4) is ~50x slower on 10 M keys
+    # sort + neighbour compare: far faster than np.unique on edge-sized arrays (numpy 2.4)
     pair = np.sort(lo * np.int64(num_vertices) + hi)
     pair = pair[np.concatenate([[True], pair[1:] != pair[:-1]])] if pair.shape[0] else pair
     n_dups = int(src.shape[0] - pair.shape[0]) + repeated_loops

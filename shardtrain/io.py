@@ -307,9 +307,10 @@ class _TextTable:
         self.values, self.rows = fast if fast is not None else self._read()
 
     def _read_fast(self) -> tuple[np.ndarray, int] | None:
-        """np.loadtxt (C-implemented in numpy 2; ~3x faster than the byte scanner on a
-        10 M-edge list). None when it refuses the file: the byte scanner then either names
-        the first bad line or reads what loadtxt could not (e.g. mixed separators)."""
+        """np.loadtxt (C-implemented in numpy 2; faster than the byte scanner, see
+        benchmarks/bench_load_synth.py "scanner_over_loadtxt"). None when it refuses the file:
+        the byte scanner then either names the first bad line or reads what loadtxt could
+        not (e.g. mixed separators)."""
         first = _first_data_line(self.path)
         skip, delimiter = 0, None
         if first is not None:
@@ -324,7 +325,7 @@ class _TextTable:
         try:
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore")   # "input contained no data"
-                # one comment character keeps loadtxt in C (a list of them is ~5x slower);
+                # one comment character keeps loadtxt in C (a list of them is slower);
                 # a file that mixes both falls back to the byte scanner
                 table = np.loadtxt(self.path, dtype=dtype, comments=_comment_char(self.path),
                                    delimiter=delimiter, skiprows=skip, ndmin=2,

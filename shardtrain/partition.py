@@ -21,15 +21,13 @@ from shardtrain.io import read_npy, require_regular_file
 # ----------------------------------------------------------------------------- METIS
 
 # Graphs up to this many undirected edges get every METIS candidate (both schemes, and the
-# vertex+edge balanced plan when needed) at METIS's default refinement: a plan at k = 64 then
-# takes 26 CPU s on the 2 M-edge parcel network and 47 on the 2.7 M-edge power-law graph
-# (benchmarks/bench_partition_quality.py, "cpu_seconds"), a size where one METIS call is
-# already 10-30 s; above it one scheme keeps the 10 M-edge survey benchmark as it was.
+# vertex+edge balanced plan when needed) at METIS's default refinement; above it one scheme
+# keeps large surveys affordable (benchmarks/bench_partition_quality.py, "cpu_seconds", and
+# benchmarks/bench_survey.py measure the cost).
 SMALL_GRAPH_EDGES = 3_000_000
 # Refinement passes per uncoarsening level: METIS's default 10 where every candidate runs.
-# Larger graphs keep 2 (measured once on the 1 M-vertex, 10 M-edge parcel network, recursive
-# bisection: 8.9/14.8/20.2/26.9 CPU s at k = 2/4/8/16 against 12.6/20.4/27.1/34.5 with 10
-# passes, for cuts at most 0.08 % larger; the survey benchmark's time stays as it was).
+# Larger graphs keep 2: less time for cuts barely larger (benchmarks/bench_survey.py
+# measures the time on the 10 M-edge parcel network).
 METIS_REFINE_ITERATIONS = 10
 METIS_REFINE_ITERATIONS_LARGE = 2
 # The vertex+edge balanced plan is tried when the vertex-balanced plan's busiest worker
@@ -205,11 +203,9 @@ def metis_balanced(graph: Graph, k: int, *, seed: int = 0, imbalance: float = 0.
 def metis_volume(graph: Graph, k: int, *, seed: int = 0, imbalance: float = 0.03) -> np.ndarray:
     """METIS k-way, minimising the total communication volume (rows sent between parts).
 
-    Slow on power-law graphs: its volume refinement walks the neighbourhoods of the hubs.
-    Measured on the 1 M-vertex, 10 M-edge parcel network: 21.5 CPU s at k = 2 (METIS's
-    default 10 refinement passes), 41.9 at k = 4 and 223.5 at k = 16 with the 2 passes used
-    here (884 s at k = 16 with 10), against 26.9 CPU s for `metis` at k = 16 (recursive
-bisection, 2 passes). Kept for plans where volume matters more than time.
+    Slow on power-law graphs: its volume refinement walks the neighbourhoods of the hubs,
+    many times `metis`'s CPU time at large k (`benchmarks/bench_survey.py --methods
+    metis-volume` measures it). Kept for plans where volume matters more than time.
     """
     return partition_plan(graph, "metis-volume", k, seed=seed, imbalance=imbalance)[0]
 

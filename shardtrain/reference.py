@@ -5,9 +5,9 @@ It calls the same `model.train_step` as the worker, with the same dropout keys (
 vertex ids, epoch numbers 1..epochs), so the two differ only by the order of sums.
 
 Rows are numbered in reverse Cuthill-McKee order (Cuthill & McKee 1969, via scipy) so that
-neighbours sit close together in memory, as each worker's shard does: on the 200 k-vertex
-demo network Â @ M is about 1.8x faster than in id order. Only the order of sums changes;
-results come back in global id order.
+neighbours sit close together in memory, as each worker's shard does: Â @ M is faster
+than in id order (benchmarks/bench_shards.py compares the two orders). Only the order of
+sums changes; results come back in global id order.
 """
 from __future__ import annotations
 

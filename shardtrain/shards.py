@@ -111,11 +111,10 @@ def _locality_perm(indptr: np.ndarray, inside: np.ndarray, local_cols: np.ndarra
                    ) -> np.ndarray:
     """new -> old permutation of a worker's owned rows (given in id order, their entries
     delimited by `indptr`): reverse Cuthill-McKee (George & Liu 1981) on the owned
-    subgraph, which keeps neighbours in nearby rows and columns. Measured here
-    (benchmarks/bench_shards.py, order_check, METIS k = 4 on 1 M vertices, loaded machine):
-    Â_P @ X 1.5x faster in wall time (1.1x in CPU time) than in id order, for about 1 CPU s
-    more build time, repaid within the first epochs of training. `inside` marks the entries whose neighbour is owned, `local_cols` are
-    those neighbours' id-order local indices."""
+    subgraph, which keeps neighbours in nearby rows and columns: Â_P @ X runs faster than
+    in id order for a little more build time, repaid within the first epochs of training
+    (benchmarks/bench_shards.py, order_check, measures both). `inside` marks the entries
+    whose neighbour is owned, `local_cols` are those neighbours' id-order local indices."""
     n_own = indptr.shape[0] - 1
     if n_own <= 2 or local_cols.shape[0] == 0:
         return np.arange(n_own, dtype=np.int64)

@@ -19,8 +19,8 @@ from shardtrain.rundoc import structure_fingerprint
 from shardtrain.schedule import LayerHop, layer_dims, layer_hops
 
 # Resident memory of an idle worker interpreter with numpy and scipy.sparse imported,
-# before it loads anything: measured on this machine (Python 3, numpy 2.4, scipy 1.17) as
-# VmRSS = 44.5 MiB; rounded up to 45 MiB. It is the floor under every predicted worker.
+# before it loads anything (its VmRSS, rounded up; benchmarks/bench_survey.py checks the
+# predicted worker memory against a real one). It is the floor under every predicted worker.
 BASELINE_RSS_BYTES = 45 * 2**20
 
 # Byte-accounting keys, as the trainer's profile counts them.
@@ -195,10 +195,9 @@ def predict_memory(shard, hops: list[LayerHop], itemsize: int, *, param_elements
       and the ReLU-masked product (3 x n x d_in, times b) and the ReLU mask (n x d_in x 1);
     - parameters, Adam m and v, the per-layer gradients and their flat copy: 5 x P x b.
 
-    Checked in benchmarks/bench_survey.py against a real worker's peak RSS (200 k vertices,
-    2.2 M entries; the worker with the shared owned-block transpose and selection-matrix
-    scatter): -7.5 % (128-64-6, float32), -6.7 % (float64), -5.8 % (16-64-6, float32); the
-    rest is short-lived temporaries of the products and the loss, not modelled term by term.
+    Checked against a real worker's peak RSS in benchmarks/bench_survey.py (the prediction
+    falls a little short: the rest is short-lived temporaries of the products and the loss,
+    not modelled term by term).
     """
     n, h = shard.num_owned, shard.num_halo
     s = int(shard.send_ptr[-1])

@@ -86,8 +86,9 @@ class _RouteSampler:
     `homophily`, else from another role chosen by its share of theta; within a role, ~ theta.
 
     Inverse-CDF sampling with the uniforms drawn already sorted (exponential spacings, Renyi
-    1953) so that searchsorted walks the cumulative weights in order, ~10x faster than random
-    queries on 10 M draws; a random permutation then undoes the order.
+    1953) so that searchsorted walks the cumulative weights in order, much faster than random
+    queries (benchmarks/bench_load_synth.py times synth); a random permutation then undoes
+    the order.
     """
 
     def __init__(self, labels, theta, classes, homophily, rng):

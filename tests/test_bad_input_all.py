@@ -15,8 +15,7 @@ import numpy as np
 import pytest
 
 from shardtrain.cli import main
-from test_train_cli import _save_graph
-from test_train_equivalence import depot_graph
+from helpers import depot_graph, save_graph
 
 TRAIN = ["--epochs", "4", "--dtype", "float64", "--hidden", "8", "--quiet", "--timeout", "20"]
 W2 = ["--workers", "2", "--method", "random"]
@@ -27,8 +26,8 @@ def inputs(tmp_path_factory):
     """Good inputs the cases break one at a time: a graph, another graph, a shard
     directory, a checkpoint folder of a 2-worker run, weights."""
     d = tmp_path_factory.mktemp("inputs")
-    _save_graph(d / "g.npz", depot_graph(n=200))
-    _save_graph(d / "other.npz", depot_graph(n=200, seed=4))
+    save_graph(d / "g.npz", depot_graph(n=200))
+    save_graph(d / "other.npz", depot_graph(n=200, seed=4))
     assert main(["split", str(d / "g.npz"), *W2, "--out", str(d / "shards")]) == 0
     assert main(["train", str(d / "g.npz"), *W2, *TRAIN, "--checkpoint", str(d / "ck"),
                  "--checkpoint-every", "2", "--weights", str(d / "w.npz")]) == 0

@@ -32,6 +32,7 @@ def _json(out: Path, name: str) -> dict:
     return json.loads((out / name).read_text(encoding="utf-8"))
 
 
+@pytest.mark.slow
 def test_quick_demo_writes_every_output_and_names_the_report_last(quick_demo):
     out, proc = quick_demo
     assert proc.returncode == 0, proc.stderr
@@ -46,9 +47,10 @@ def test_quick_demo_writes_every_output_and_names_the_report_last(quick_demo):
     assert not [p for p in out.parent.rglob("*") if ".tmp" in p.name]
 
 
+@pytest.mark.slow
 def test_run_json_shows_the_equality_check_passed(quick_demo):
     # source of truth: the single-process reference trainer (its tests check gradients
-    # against central finite differences); DESIGN.md: float64 agrees to a relative 1e-9
+    # against central finite differences); docs/design.md §1.7: float64 agrees to a relative 1e-9
     out, _ = quick_demo
     run = _json(out, "run.json")
     check = run["check"]
@@ -68,6 +70,7 @@ def test_run_json_shows_the_equality_check_passed(quick_demo):
         (2, 16, 0.5, 0.01, 5e-4)
 
 
+@pytest.mark.slow
 def test_all_reduce_bytes_follow_the_ring_formula(quick_demo):
     # Patarasuk & Yuan 2009: in a ring all-reduce each of k workers sends 2(k-1) chunks of
     # size/k; exact here because the demo's parameter count divides by k
@@ -80,6 +83,7 @@ def test_all_reduce_bytes_follow_the_ring_formula(quick_demo):
         epochs * k * 2 * (k - 1) * (params // k) * 8
 
 
+@pytest.mark.slow
 def test_chosen_plan_has_the_least_predicted_traffic_and_its_cut_matches_networkx(quick_demo):
     # reference library: networkx.cut_size on the graph read back from the demo's bundle
     import networkx as nx
@@ -105,6 +109,7 @@ def test_chosen_plan_has_the_least_predicted_traffic_and_its_cut_matches_network
     assert cut == plan["edge_cut"]
 
 
+@pytest.mark.slow
 def test_report_is_self_contained(quick_demo):
     out, _ = quick_demo
     page = (out / "report.html").read_text(encoding="utf-8")
@@ -117,6 +122,7 @@ def test_report_is_self_contained(quick_demo):
         assert section in page
 
 
+@pytest.mark.slow
 def test_forecast_covers_two_link_speeds_for_every_surveyed_plan(quick_demo):
     out, proc = quick_demo
     fc, survey = _json(out, "forecast.json"), _json(out, "survey.json")
@@ -204,7 +210,8 @@ def _fake_run(losses, weight, measured, predicted):
 
 
 def test_the_check_fails_on_a_difference_beyond_rounding():
-    # the tolerance of DESIGN.md: relative 1e-9; a difference of 1e-6 must fail, 1e-13 pass
+    # the tolerance of docs/design.md §1.7: relative 1e-9; a difference of 1e-6 must fail,
+    # 1e-13 pass
     plan = {"traffic": {"forward_bytes": 10, "backward_bytes": 5, "allreduce_bytes": 3,
                         "eval_forward_bytes": 10}}
     predicted = 2 * (10 + 5 + 3) + 2 * 10          # 2 epochs, 2 evaluation forwards
@@ -225,6 +232,7 @@ def test_the_check_fails_on_a_difference_beyond_rounding():
     assert not off["payload_equal"] and f"{predicted + 8:,}" in demo.check_failure(off)
 
 
+@pytest.mark.slow
 def test_every_json_the_demo_writes_is_strict(quick_demo):
     """RFC 8259 has no NaN or Infinity: a strict parser reads every file we write."""
     def refuse(name):

@@ -17,8 +17,7 @@ import pytest
 from shardtrain import documents
 from shardtrain.cli import main
 from shardtrain.errors import InputError
-from test_train_cli import _save_graph
-from test_train_equivalence import depot_graph
+from helpers import depot_graph, save_graph
 
 QUICK = ["--epochs", "2", "--hidden", "8", "--quiet", "--timeout", "20"]
 W2 = ["--workers", "2", "--method", "random"]
@@ -27,8 +26,8 @@ W2 = ["--workers", "2", "--method", "random"]
 @pytest.fixture(scope="module")
 def docs(tmp_path_factory):
     d = tmp_path_factory.mktemp("docs")
-    _save_graph(d / "g.npz", depot_graph(n=160))
-    _save_graph(d / "other.npz", depot_graph(n=170, seed=8))
+    save_graph(d / "g.npz", depot_graph(n=160))
+    save_graph(d / "other.npz", depot_graph(n=170, seed=8))
     assert main(["survey", str(d / "g.npz"), *W2, "--json", str(d / "s.json")]) == 0
     assert main(["forecast", str(d / "s.json"), "--flops-per-worker", "1e9", "--json",
                  str(d / "f.json")]) == 0

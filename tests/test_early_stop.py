@@ -33,9 +33,7 @@ from shardtrain.partition import partition
 from shardtrain.reference import model_dims, train_reference
 from shardtrain.settings import TrainSettings, max_threads
 from shardtrain.shards import build_shards, save_shards
-from test_model_accuracy import _digits
-from test_train_cli import _save_graph
-from test_train_equivalence import depot_graph
+from helpers import depot_graph, digits_graphs, launch_mpi, mpiexec, save_graph
 
 RTOL = 1e-9
 EARLY = TrainSettings(epochs=40, lr=0.05, early_stop=3, dtype="float64", seed=0)
@@ -58,7 +56,7 @@ def _shards(graph, k, folder, method="metis"):
 
 @pytest.fixture(scope="module")
 def digits():
-    return _digits()[0]
+    return digits_graphs()[0]
 
 
 @pytest.fixture(scope="module")
@@ -215,7 +213,7 @@ def test_resumed_reference_stops_at_the_same_epoch_bit_for_bit(digits, early_ref
 @pytest.fixture(scope="module")
 def digits_file(digits, tmp_path_factory):
     path = tmp_path_factory.mktemp("digits") / "digits.npz"
-    _save_graph(path, digits)
+    save_graph(path, digits)
     return path
 
 
@@ -268,7 +266,7 @@ def test_early_stop_without_validation_vertices_is_refused(run_cli, tmp_path):
     graph = depot_graph(n=200)
     graph = dataclasses.replace(graph, val_mask=np.zeros(graph.num_vertices, dtype=bool))
     path = tmp_path / "noval.npz"
-    _save_graph(path, graph)
+    save_graph(path, graph)
     out = run_cli("train", path, "--workers", "2", "--method", "random", "--epochs", "3",
                   "--early-stop", "2")
     assert out.returncode == 2 and "--early-stop" in out.stderr and "validation" in out.stderr
@@ -313,12 +311,11 @@ def test_a_worker_process_raises_blas_to_the_threads_setting():
 # ---------------------------------------------------------------- MPI
 
 
+@pytest.mark.mpi
 def test_mpi_run_stops_at_the_reference_epoch(digits_shards, early_reference, tmp_path):
-    from test_mpi_train import _launch, _mpiexec
-
-    _mpiexec()
+    mpiexec()
     out = tmp_path / "run.json"
-    proc, _ = _launch(2, ["-m", "shardtrain", "train", str(digits_shards[2]), "--transport",
+    proc, _ = launch_mpi(2, ["-m", "shardtrain", "train", str(digits_shards[2]), "--transport",
                           "mpi", *EARLY_ARGS, "--json", str(out),
                           "--weights", str(tmp_path / "w.npz")])
     assert proc.returncode == 0, proc.stderr[-3000:]

@@ -13,7 +13,7 @@ import json
 import numpy as np
 import pytest
 
-from test_train_equivalence import depot_graph
+from helpers import depot_graph, frame_header_bytes, hand_plan, model_doc
 
 COMMON = ["--epochs", "3", "--hidden", "8", "--quiet"]
 COMMANDS = ("demo", "synth", "survey", "split", "train", "forecast", "report")
@@ -98,19 +98,21 @@ def test_an_exchange_lasts_at_least_the_workers_own_copying():
     payload bytes plus two headers per exchange; when that takes longer than the link, the
     hop lasts the copying. Each ring step (2 of them, Patarasuk & Yuan 2009) sends and
     receives one 8-element chunk. With c = 0 the link alone is left."""
-    from test_forecast import FAST, _header, _model, _plan
-
     from shardtrain import forecast as fc
+    from shardtrain.calibrate import from_flops
 
-    model = _model([(8, 2)])
-    plan = _plan([[0, 30], [10, 0]], owned=[100, 100], local_edges=[300, 300], params=16)
+    FAST = from_flops(1e9)
+
+    model = model_doc([(8, 2)])
+    plan = hand_plan([[0, 30], [10, 0]], owned=[100, 100], local_edges=[300, 300], params=16)
     base = fc.forecast_plan(plan, model, link_gbps=0.01, latency_us=50, calibration=FAST)
     c = 1e-3                       # s per byte: far slower than a 0.01 Gbit/s link
     cal = dict(FAST, transport_copy={"cpu_s_per_byte": c})
     out = fc.forecast_plan(plan, model, link_gbps=0.01, latency_us=50, calibration=cal)
-    hdr = _header("float32", (30, 2))
+    hdr = frame_header_bytes("float32", (30, 2))
     assert out["exchange_s"] == pytest.approx(2 * c * (320 + 2 * hdr), rel=1e-12)
-    ring_hdr = _header("float32", (8,), kind="allreduce", layer=-1, direction="reduce-scatter")
+    ring_hdr = frame_header_bytes("float32", (8,), kind="allreduce", layer=-1,
+                                  direction="reduce-scatter")
     assert out["allreduce_s"] == pytest.approx(c * 2 * (2 * 32 + 2 * ring_hdr), rel=1e-12)
     assert out["compute_s"] == pytest.approx(base["compute_s"], rel=1e-12)
     slight = fc.forecast_plan(plan, model, link_gbps=0.01, latency_us=50,

@@ -29,8 +29,7 @@ from shardtrain.coordinator import train_partitioned
 from shardtrain.errors import RunError
 from shardtrain.settings import TrainSettings
 from shardtrain.shards import build_shards, save_shards
-from test_train_cli import _save_graph
-from test_train_equivalence import depot_graph
+from helpers import depot_graph, processes_with_token, save_graph
 
 K = 3
 SETTINGS = TrainSettings(layers=2, hidden=8, dropout=0.5, lr=0.01, weight_decay=5e-4,
@@ -69,21 +68,6 @@ def assert_no_worker_survives():
         time.sleep(0.05)
     assert worker_processes() == []
     assert multiprocessing.active_children() == []
-
-
-def processes_with_token(token: str) -> list[int]:
-    """Processes whose environment carries `token` (a CLI run and all its descendants)."""
-    found = []
-    needle = token.encode()
-    for name in os.listdir("/proc"):
-        if name.isdigit():
-            try:
-                with open(f"/proc/{name}/environ", "rb") as fh:
-                    if needle in fh.read():
-                        found.append(int(name))
-            except OSError:
-                pass
-    return found
 
 
 # ---------------------------------------------------------------- runs
@@ -228,7 +212,7 @@ def test_resume_refuses_a_contradicting_run(shard_dir, tmp_path):
 @pytest.fixture(scope="module")
 def graph_file(tmp_path_factory):
     path = tmp_path_factory.mktemp("g") / "depots.npz"
-    _save_graph(path, depot_graph(n=200))
+    save_graph(path, depot_graph(n=200))
     return path
 
 
@@ -255,6 +239,7 @@ def _wait_for_checkpoint(folder, epoch: int, proc, limit_s: float = 60.0):
     raise AssertionError("no checkpoint appeared")
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("how", ["SIGINT to the group", "SIGTERM"])
 def test_interrupt_keeps_the_checkpoint_and_resume_is_bit_exact(graph_file, tmp_path, how):
     full = _cli("train", graph_file, *CLI, "--weights", tmp_path / "full.npz")

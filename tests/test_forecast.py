@@ -13,9 +13,8 @@ import pytest
 from shardtrain import forecast as fc
 from shardtrain.calibrate import from_flops, sparse_speed
 from shardtrain.errors import InputError
-from shardtrain.transport.frames import encode_header
 from shardtrain.transport.link import LinkModel
-from shardtrain.transport.ring import ring_send_elements
+from helpers import frame_header_bytes, hand_plan, model_doc
 
 
 # ---------------------------------------------------------------- helpers
@@ -27,40 +26,11 @@ def _hop(layer, d_in, d_out):
             "forward_width": h.forward_width, "backward_width": h.backward_width}
 
 
-def _model(dims, dtype="float32"):
-    from shardtrain.schedule import layer_hops
-    hops = layer_hops(dims)
-    return {"dtype": dtype, "dims": [list(d) for d in dims],
-            "parameters": sum(a * b for a, b in dims),
-            "hops": [{"layer": h.layer, "d_in": h.d_in, "d_out": h.d_out,
-                      "transform_first": h.transform_first, "forward_width": h.forward_width,
-                      "backward_width": h.backward_width} for h in hops]}
-
-
-def _plan(send_rows, owned, local_edges, params, itemsize=4):
-    """A survey-shaped plan from its send matrix (halo of p = rows others send p)."""
-    s = np.asarray(send_rows, dtype=np.int64)
-    k = s.shape[0]
-    halo = s.sum(axis=0)
-    return {"method": "hand", "workers": k,
-            "shards": [{"worker": w, "owned": int(owned[w]), "halo": int(halo[w]),
-                        "local_edges": int(local_edges[w])} for w in range(k)],
-            "traffic": {"send_rows": s.tolist(),
-                        "allreduce_bytes_per_worker":
-                            (ring_send_elements(params, k) * itemsize).tolist()}}
-
-
 def _no_overhead(monkeypatch):
     monkeypatch.setattr(fc, "CALL_OVERHEAD_S", 0.0)
 
 
 FAST = from_flops(1e9)
-
-
-def _header(dtype, shape, kind="halo", layer=0, direction="backward"):
-    """Framing bytes of one frame, as the transport's own encoder makes them."""
-    return len(encode_header(kind=kind, epoch=0, layer=layer, direction=direction, source=0,
-                             dtype=dtype, shape=list(shape)))
 
 
 # ---------------------------------------------------------------- arithmetic
@@ -86,18 +56,19 @@ def test_hand_worked_two_worker_plan(monkeypatch):
     payload bytes + one header; backward: worker 1 returns the gradients of its 30 halo
     rows, also 240 bytes. Ring: 16 parameters, 2 steps of 8 elements (32 bytes) each."""
     _no_overhead(monkeypatch)
-    model = _model([(8, 2)])
-    plan = _plan([[0, 30], [10, 0]], owned=[100, 100], local_edges=[300, 300], params=16)
+    model = model_doc([(8, 2)])
+    plan = hand_plan([[0, 30], [10, 0]], owned=[100, 100], local_edges=[300, 300], params=16)
     gbps, lat = 0.01, 50.0
     out = fc.forecast_plan(plan, model, link_gbps=gbps, latency_us=lat, calibration=FAST,
                            dropout=0.0)
-    hdr = _header("float32", (30, 2))
+    hdr = frame_header_bytes("float32", (30, 2))
     one_hop = lat * 1e-6 + (240 + hdr) * 8 / (gbps * 1e9)
     assert out["exchange_s"] == pytest.approx(2 * one_hop, rel=1e-12)
     # the same number the link emulation gives for that sender's one frame
     due = LinkModel(gbps, lat).due_times(0.0, [240 + hdr])[-1]
     assert one_hop == pytest.approx(due, rel=1e-12)
-    ring_hdr = _header("float32", (8,), kind="allreduce", layer=-1, direction="reduce-scatter")
+    ring_hdr = frame_header_bytes("float32", (8,), kind="allreduce", layer=-1,
+                                  direction="reduce-scatter")
     ring = 2 * (lat * 1e-6 + (32 + ring_hdr) * 8 / (gbps * 1e9))
     assert out["allreduce_s"] == pytest.approx(ring, rel=1e-12)
     # every worker's parts add up to the epoch
@@ -119,8 +90,8 @@ def test_compute_counts_sparse_work(monkeypatch):
     cal["dense"][0]["flops_per_s"] = 1e30
     cal["elementwise"]["bytes_per_s"] = 1e30
     cal["dropout_masks"]["elements_per_s"] = 1e30
-    model = _model([(8, 2)])
-    plan = _plan([[0, 5], [5, 0]], owned=[100, 50], local_edges=[400, 100], params=16)
+    model = model_doc([(8, 2)])
+    plan = hand_plan([[0, 5], [5, 0]], owned=[100, 50], local_edges=[400, 100], params=16)
     out = fc.forecast_plan(plan, model, link_gbps=10, latency_us=0, calibration=cal)
     speed = sparse_speed(cal, 500, 2)
     c0, c1 = (w["compute_s"] for w in out["per_worker"])
@@ -130,8 +101,8 @@ def test_compute_counts_sparse_work(monkeypatch):
 
 
 def test_speed_factor_and_core_sharing_scale_compute():
-    model = _model([(16, 8), (8, 3)])
-    plan = _plan([[0, 40], [35, 0]], owned=[500, 480], local_edges=[2500, 2400], params=152)
+    model = model_doc([(16, 8), (8, 3)])
+    plan = hand_plan([[0, 40], [35, 0]], owned=[500, 480], local_edges=[2500, 2400], params=152)
     base = fc.forecast_plan(plan, model, link_gbps=10, latency_us=5, calibration=FAST)
     fast = fc.forecast_plan(plan, model, link_gbps=10, latency_us=5, calibration=FAST,
                             speed_factor=2.0)
@@ -145,7 +116,7 @@ def test_speed_factor_and_core_sharing_scale_compute():
 
 def test_send_rows_solved_from_pair_bytes():
     """Without send_rows, pair_bytes = S F + S^T B is solved back for S when F != B."""
-    model = _model([(4, 8), (8, 2)])     # layer 0 aggregate first: no backward exchange
+    model = model_doc([(4, 8), (8, 2)])     # layer 0 aggregate first: no backward exchange
     f = sum(h["forward_width"] for h in model["hops"]) * 4
     b = sum(h["backward_width"] for h in model["hops"]) * 4
     s = np.array([[0, 7, 0], [3, 0, 9], [1, 4, 0]])
@@ -250,6 +221,7 @@ def test_cli_forecast_of_survey_json(run_cli, survey_json, tmp_path):
     assert "fastest" in r.stdout and "fewest workers meeting" in r.stdout
 
 
+@pytest.mark.slow
 def test_cli_forecast_calibrates_and_keeps_the_timing(run_cli, survey_json, tmp_path):
     cal = tmp_path / "cal.json"
     r = run_cli("forecast", survey_json, "--link-gbps", "10", "--calibration", cal)
@@ -291,8 +263,8 @@ def test_measured_compute_replaces_the_counted_compute():
     """Hand-worked (common practice): with measured step CPU seconds 0.2 and 0.1 each
     worker's own compute is exactly that (times the core stretch), split between the
     exchanges as counted; the transfer part is the counted forecast's, untouched."""
-    model = _model([(16, 8), (8, 3)])
-    plan = _plan([[0, 40], [35, 0]], owned=[500, 480], local_edges=[2500, 2400], params=152)
+    model = model_doc([(16, 8), (8, 3)])
+    plan = hand_plan([[0, 40], [35, 0]], owned=[500, 480], local_edges=[2500, 2400], params=152)
     measured = [{"step_cpu_s": 0.2, "eval_cpu_s": 0.05}, {"step_cpu_s": 0.1, "eval_cpu_s": 0.03}]
     counted = fc.forecast_plan(plan, model, link_gbps=1, latency_us=5, calibration=FAST)
     out = fc.forecast_plan(plan, model, link_gbps=1, latency_us=5, calibration=FAST,
@@ -321,8 +293,8 @@ def test_every_transport_call_pays_the_calibrated_fixed_cost():
     """One layer, 2 workers: one forward and one backward exchange plus 2(k-1) = 2 ring
     steps (Patarasuk & Yuan 2009), so a 1 ms call cost adds 2 ms to the exchanges and 2 ms
     to the all-reduce, and nothing to compute."""
-    model = _model([(8, 2)])
-    plan = _plan([[0, 30], [10, 0]], owned=[100, 100], local_edges=[300, 300], params=16)
+    model = model_doc([(8, 2)])
+    plan = hand_plan([[0, 30], [10, 0]], owned=[100, 100], local_edges=[300, 300], params=16)
     base = fc.forecast_plan(plan, model, link_gbps=0.01, latency_us=50, calibration=FAST)
     cal = dict(FAST, exchange_call={"seconds_per_call": 1e-3})
     out = fc.forecast_plan(plan, model, link_gbps=0.01, latency_us=50, calibration=cal)
@@ -405,8 +377,8 @@ def test_halo_row_moves_are_counted_at_their_own_speeds(monkeypatch):
     cal["elementwise"]["bytes_per_s"] = 1e30
     cal["dropout_masks"]["elements_per_s"] = 1e30
     cal["row_moves"] = {"gather_bytes_per_s": 1e3, "scatter_add_bytes_per_s": 1e2}
-    model = _model([(8, 2)])
-    plan = _plan([[0, 30], [30, 0]], owned=[100, 100], local_edges=[300, 300], params=16)
+    model = model_doc([(8, 2)])
+    plan = hand_plan([[0, 30], [30, 0]], owned=[100, 100], local_edges=[300, 300], params=16)
     out = fc.forecast_plan(plan, model, link_gbps=10, latency_us=0, calibration=cal)
     assert out["compute_parts_s"]["row_moves"] == pytest.approx(240 / 1e3 + 240 / 1e2,
                                                                 rel=1e-6)

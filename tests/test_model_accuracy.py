@@ -13,6 +13,7 @@ import numpy as np
 from shardtrain.graph import Graph, csr_from_edges
 from shardtrain.reference import train_reference
 from shardtrain.settings import TrainSettings
+from helpers import digits_graphs
 
 
 def _graph(src, dst, n, features, labels, train, val, test):
@@ -36,30 +37,8 @@ def test_karate_club_factions_from_one_label_each():
     assert result.epochs[-1]["train_acc"] == 1.0
 
 
-def _digits(k=10, per_class=5, seed=0):
-    from sklearn.datasets import load_digits
-    from sklearn.neighbors import kneighbors_graph
-
-    x, y = load_digits(return_X_y=True)
-    x = x / 16.0
-    n = x.shape[0]
-    knn = kneighbors_graph(x, k, include_self=False).tocoo()   # symmetrised by csr_from_edges
-    rng = np.random.default_rng(seed)
-    train = np.zeros(n, dtype=bool)
-    for c in range(10):
-        train[rng.choice(np.flatnonzero(y == c), per_class, replace=False)] = True
-    rest = rng.permutation(np.flatnonzero(~train))
-    val = np.zeros(n, dtype=bool)
-    val[rest[:300]] = True
-    test = ~train & ~val
-    with_edges = _graph(knn.row, knn.col, n, x, y.astype(np.int64), train, val, test)
-    no_edges = _graph(np.zeros(0, np.int64), np.zeros(0, np.int64), n, x, y.astype(np.int64),
-                      train, val, test)
-    return with_edges, no_edges
-
-
 def test_gcn_beats_mlp_on_digits_knn_graph():
-    gcn_graph, mlp_graph = _digits()
+    gcn_graph, mlp_graph = digits_graphs()
     settings = TrainSettings(seed=0)         # GCN paper settings
     gcn = train_reference(gcn_graph, settings).epochs[-1]["test_acc"]
     mlp = train_reference(mlp_graph, settings).epochs[-1]["test_acc"]

@@ -3,7 +3,7 @@
 Sources of truth: the single-process reference trainer (`shardtrain.reference`, itself
 checked against central finite differences and the GCN paper's setup) and the pipes run of
 the same shard directory (`coordinator.train_partitioned`). In float64 with dropout on,
-every epoch's loss and the final weights must agree to a relative 1e-9 (DESIGN.md); the
+every epoch's loss and the final weights must agree to a relative 1e-9 (docs/design.md §1.7); the
 measured payload must equal the survey's prediction, and every (pair, layer, direction) row
 of the traffic account must be the pipes run's, byte for byte.
 
@@ -16,8 +16,6 @@ from __future__ import annotations
 import csv
 import json
 import os
-import shutil
-import subprocess
 import sys
 import time
 from pathlib import Path
@@ -25,30 +23,13 @@ from pathlib import Path
 import numpy as np
 import pytest
 
+from helpers import launch_mpi, mpiexec
+
+pytestmark = pytest.mark.mpi      # every test here starts mpiexec
+
 RTOL = 1e-9
 SETTINGS_ARGS = ["--layers", "3", "--hidden", "8", "--dropout", "0.5", "--epochs", "3",
                  "--seed", "7", "--dtype", "float64", "--bias"]
-RUN_TIMEOUT_S = 60
-
-
-def _mpiexec() -> str:
-    try:
-        import mpi4py  # noqa: F401
-    except ImportError:
-        pytest.skip("mpi4py is not installed (pip install -e '.[mpi]')")
-    exe = shutil.which("mpiexec", path=os.pathsep.join([os.path.dirname(sys.executable),
-                                                        os.environ.get("PATH", "")]))
-    if exe is None:
-        pytest.skip("mpiexec not found (the mpich wheel of the 'mpi' extra provides it)")
-    return exe
-
-
-def _launch(n: int, program: list[str], timeout=RUN_TIMEOUT_S):
-    env = {**os.environ, "OPENBLAS_NUM_THREADS": "1", "OMP_NUM_THREADS": "1"}
-    t0 = time.perf_counter()
-    proc = subprocess.run([_mpiexec(), "-n", str(n), sys.executable, *program],
-                          capture_output=True, text=True, timeout=timeout, env=env)
-    return proc, time.perf_counter() - t0
 
 
 def _settings():
@@ -59,8 +40,7 @@ def _settings():
 
 @pytest.fixture(scope="module")
 def graph():
-    sys.path.insert(0, str(Path(__file__).parent))
-    from test_train_equivalence import depot_graph
+    from helpers import depot_graph
     return depot_graph(n=300)
 
 
@@ -98,10 +78,10 @@ def test_mpi_run_equals_pipes_run_and_reference(k, shard_dirs, reference, tmp_pa
     from shardtrain import model
     from shardtrain.coordinator import train_partitioned
 
-    _mpiexec()
+    mpiexec()
     out = {"json": tmp_path / "run.json", "weights": tmp_path / "w.npz",
            "predictions": tmp_path / "pred.csv"}
-    proc, _ = _launch(k, ["-m", "shardtrain", "train", str(shard_dirs[k]), "--transport", "mpi",
+    proc, _ = launch_mpi(k, ["-m", "shardtrain", "train", str(shard_dirs[k]), "--transport", "mpi",
                           *SETTINGS_ARGS, "--quiet", *[a for key, path in out.items()
                                                       for a in (f"--{key}", str(path))]])
     assert proc.returncode == 0, proc.stderr[-3000:]
@@ -152,7 +132,7 @@ def test_mpi_run_equals_pipes_run_and_reference(k, shard_dirs, reference, tmp_pa
 
 
 def test_more_ranks_than_shards_is_one_line_and_exit_2(shard_dirs, tmp_path):
-    proc, seconds = _launch(3, ["-m", "shardtrain", "train", str(shard_dirs[2]),
+    proc, seconds = launch_mpi(3, ["-m", "shardtrain", "train", str(shard_dirs[2]),
                                 "--transport", "mpi", *SETTINGS_ARGS, "--quiet",
                                 "--json", str(tmp_path / "run.json")])
     assert proc.returncode == 2, proc.stderr
@@ -166,13 +146,14 @@ def test_more_ranks_than_shards_is_one_line_and_exit_2(shard_dirs, tmp_path):
 def test_mpi_transport_needs_a_shard_directory(graph, tmp_path):
     path = tmp_path / "g.npz"
     np.savez(path, edges=np.zeros((0, 2), np.int64), num_vertices=np.int64(3))
-    proc, _ = _launch(2, ["-m", "shardtrain", "train", str(path), "--transport", "mpi",
+    proc, _ = launch_mpi(2, ["-m", "shardtrain", "train", str(path), "--transport", "mpi",
                           "--quiet"])
     assert proc.returncode == 2
     lines = proc.stderr.strip().splitlines()
     assert len(lines) == 1 and "--transport mpi" in lines[0] and "shard directory" in lines[0]
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("fault, code, needle", [
     # rank 1 stops answering in epoch 2: its peers miss the 2 s deadline and end the job
     ("hang", 3, "timed out after 2 s waiting for worker 1"),
@@ -180,7 +161,7 @@ def test_mpi_transport_needs_a_shard_directory(graph, tmp_path):
     ("kill", None, "killed"),
 ])
 def test_a_failing_rank_ends_the_job(fault, code, needle, shard_dirs):
-    proc, seconds = _launch(3, [__file__, fault, "train", str(shard_dirs[3]), "--transport",
+    proc, seconds = launch_mpi(3, [__file__, fault, "train", str(shard_dirs[3]), "--transport",
                                 "mpi", *SETTINGS_ARGS, "--quiet", "--timeout", "2"])
     assert proc.returncode == code if code is not None else proc.returncode != 0, proc.stderr
     assert needle in (proc.stderr + proc.stdout).lower(), proc.stderr

@@ -21,6 +21,8 @@ import pytest
 from shardtrain.profile import Profile
 from shardtrain.transport.pipes import PipeTransport, make_pipe_mesh, ring_pairs
 
+pytestmark = pytest.mark.mpi      # every test here starts mpiexec
+
 ROWS, WIDTH = 20_000, 3          # 480 kB float64 frames: past MPI's small-message path
 SUM_SIZES = (100_003, 2)         # an odd size, and one below the rank count
 

@@ -21,8 +21,7 @@ import numpy as np
 import pytest
 
 from shardtrain.cli import main
-from test_train_cli import _save_graph
-from test_train_equivalence import depot_graph
+from helpers import depot_graph, save_graph
 
 QUICK = ["--epochs", "2", "--hidden", "8", "--quiet", "--timeout", "20"]
 W2 = ["--workers", "2", "--method", "random"]
@@ -33,7 +32,7 @@ def d(tmp_path_factory):
     """Inputs: a graph, its edge list, a survey and a forecast JSON, a shard directory,
     a run JSON, a hard link and a symlink to the graph, and a folder holding all of them."""
     d = tmp_path_factory.mktemp("inputs")
-    _save_graph(d / "g.npz", depot_graph(n=160))
+    save_graph(d / "g.npz", depot_graph(n=160))
     with np.load(d / "g.npz") as z:
         np.savetxt(d / "edges.csv", z["edges"], fmt="%d", delimiter=",")
     assert main(["survey", str(d / "g.npz"), *W2, "--json", str(d / "s.json")]) == 0

@@ -125,6 +125,7 @@ def _check_self_contained(text: str) -> None:
         assert base64.b64decode(s.split(",", 1)[1]).startswith(PNG_MAGIC)
 
 
+@pytest.mark.slow
 def test_report_of_a_folder_is_self_contained(run_cli, tmp_path):
     folder = tmp_path / "run"
     folder.mkdir()
@@ -173,14 +174,14 @@ def test_run_heatmap_counts_halo_rows_only():
 
 @pytest.fixture(scope="module")
 def small_graph_file(tmp_path_factory):
-    from test_train_cli import _save_graph
-    from test_train_equivalence import depot_graph
+    from helpers import depot_graph, save_graph
 
     path = tmp_path_factory.mktemp("plotgraph") / "depots.npz"
-    _save_graph(path, depot_graph(n=200))
+    save_graph(path, depot_graph(n=200))
     return path
 
 
+@pytest.mark.slow
 def test_train_and_survey_plot_option_write_pngs(run_cli, small_graph_file, tmp_path):
     r = run_cli("train", small_graph_file, "--workers", "2", "--method", "random",
                 "--epochs", "3", "--quiet", "--json", tmp_path / "run.json",
@@ -209,6 +210,7 @@ def test_run_json_names_the_graph_size_as_the_survey_does(small_graph_file, tmp_
     assert "num_vertices" not in graph and "num_edges" not in graph
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("command", ["train", "survey"])
 def test_bad_plot_folder_is_refused_before_work(run_cli, small_graph_file, tmp_path, command):
     extra = ["--reference", "--epochs", "2"] if command == "train" else []

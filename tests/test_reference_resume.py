@@ -24,8 +24,7 @@ from shardtrain.cli import main
 from shardtrain.graph import fingerprint
 from shardtrain.reference import model_dims, train_reference
 from shardtrain.settings import TrainSettings
-from test_train_cli import _save_graph
-from test_train_equivalence import depot_graph
+from helpers import depot_graph, save_graph
 
 SETTINGS = TrainSettings(layers=2, hidden=8, dropout=0.5, lr=0.01, weight_decay=5e-4,
                          epochs=7, seed=5, dtype="float64", bias=True)
@@ -111,8 +110,8 @@ CLI = ["--reference", "--dtype", "float64", "--hidden", "8", "--seed", "5", "--q
 def files(tmp_path_factory):
     """A graph, another graph, a reference checkpoint and a partitioned checkpoint."""
     d = tmp_path_factory.mktemp("ref")
-    _save_graph(d / "g.npz", depot_graph(n=200))
-    _save_graph(d / "other.npz", depot_graph(n=200, seed=4))
+    save_graph(d / "g.npz", depot_graph(n=200))
+    save_graph(d / "other.npz", depot_graph(n=200, seed=4))
     assert main(["train", str(d / "g.npz"), *CLI, "--epochs", "4", "--checkpoint",
                  str(d / "ck_ref"), "--checkpoint-every", "2"]) == 0
     assert main(["train", str(d / "g.npz"), "--workers", "2", "--method", "random",
@@ -172,6 +171,7 @@ def _cli(*args):
                             start_new_session=True)
 
 
+@pytest.mark.slow
 def test_ctrl_c_keeps_the_checkpoint_and_resume_is_bit_exact(files, tmp_path):
     """A SIGINT lands mid-run (each epoch writes a checkpoint, so the run is slow enough
     to be caught); the resumed run, checkpointing rarely, ends on the same bits."""

@@ -27,8 +27,7 @@ import numpy as np
 import pytest
 
 from shardtrain.cli import main
-from test_train_cli import _save_graph
-from test_train_equivalence import depot_graph
+from helpers import depot_graph, launch_mpi, processes_with_token, save_graph
 
 K = 3
 QUICK = ["--epochs", "2", "--hidden", "4", "--quiet", "--timeout", "30"]
@@ -55,7 +54,7 @@ def graph():
 @pytest.fixture(scope="module")
 def graph_file(tmp_path_factory, graph):
     path = tmp_path_factory.mktemp("g") / "depots.npz"
-    _save_graph(path, graph)
+    save_graph(path, graph)
     return path
 
 
@@ -246,15 +245,15 @@ def test_a_broken_shard_directory_is_refused_before_any_worker(capsys, monkeypat
     assert multiprocessing.active_children() == []
 
 
+@pytest.mark.slow
+@pytest.mark.mpi
 def test_mpi_names_the_same_broken_shard_with_the_same_line(capsys, pristine, tmp_path):
-    from test_mpi_train import _launch
-
     d = tmp_path / "shards"
     shutil.copytree(pristine / "good", d)
     _swap(d)
     assert main(["train", str(d), *QUICK]) == 2
     pipes_line = _one_line_error(capsys)
-    proc, _ = _launch(K, ["-m", "shardtrain", "train", str(d), "--transport", "mpi",
+    proc, _ = launch_mpi(K, ["-m", "shardtrain", "train", str(d), "--transport", "mpi",
                           "--epochs", "2", "--hidden", "4", "--quiet", "--timeout", "30"])
     assert proc.returncode == 2, proc.stderr
     assert proc.stderr.strip().splitlines() == [pipes_line]
@@ -262,7 +261,7 @@ def test_mpi_names_the_same_broken_shard_with_the_same_line(capsys, pristine, tm
     (d / "shard-0000.npz").unlink()
     shutil.copy(pristine / "good" / "shard-0000.npz", d)
     shutil.copy(pristine / "good" / "shard-0002.npz", d)
-    proc, _ = _launch(K, ["-m", "shardtrain", "train", str(d), "--transport", "mpi",
+    proc, _ = launch_mpi(K, ["-m", "shardtrain", "train", str(d), "--transport", "mpi",
                           "--epochs", "2", "--quiet"])
     assert proc.returncode == 2, proc.stderr
     lines = proc.stderr.strip().splitlines()
@@ -350,7 +349,6 @@ def test_temporary_shards_are_removed_on_failure(graph_file, metis_file, tmp_pat
 # ---------------------------------------------------------------- 8: signals in every phase
 
 def _descendants_with(token: str) -> list[int]:
-    from test_faults import processes_with_token
     return processes_with_token(token)
 
 
@@ -462,9 +460,8 @@ def test_unusable_option_values_are_refused_at_the_option(capsys, graph_file, ar
     assert needle in line, line
 
 
+@pytest.mark.mpi
 def test_the_largest_seed_works_in_every_mode(capsys, graph_file, tmp_path):
-    from test_mpi_train import _launch
-
     top = str(2**63 - 1)          # the largest --seed accepted
     assert main(["train", str(graph_file), "--reference", "--seed", top, *QUICK]) == 0
     for method in ("metis", "fennel", "random"):
@@ -472,6 +469,6 @@ def test_the_largest_seed_works_in_every_mode(capsys, graph_file, tmp_path):
                      "--seed", top, *QUICK, "--timeout", "1000000"]) == 0, method
     assert main(["split", str(graph_file), "--workers", "2", "--method", "metis", "--seed",
                  top, "--out", str(tmp_path / "s")]) == 0
-    proc, _ = _launch(2, ["-m", "shardtrain", "train", str(tmp_path / "s"), "--transport",
+    proc, _ = launch_mpi(2, ["-m", "shardtrain", "train", str(tmp_path / "s"), "--transport",
                           "mpi", "--seed", top, *QUICK])
     assert proc.returncode == 0, proc.stderr

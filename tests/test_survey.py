@@ -24,9 +24,10 @@ def graph_from_nx(g: nx.Graph, input_dim: int | None = None, classes: int = 0,
 
 
 def brute_force_traffic(g: nx.Graph, assignment, k, dims, itemsize):
-    """Bytes per epoch counted from networkx alone and DESIGN.md's rules: a layer exchanges
-    min(d_in, d_out) columns per halo row (transform first when d_out < d_in); gradients go
-    back at that width, except for layer 0 in aggregate-first order (no gradient needed)."""
+    """Bytes per epoch counted from networkx alone and the rules of docs/design.md (§1.2,
+    §1.4): a layer exchanges min(d_in, d_out) columns per halo row (transform first when
+    d_out < d_in); gradients go back at that width, except for layer 0 in aggregate-first
+    order (no gradient needed)."""
     owned = [{v for v in g if assignment[v] == p} for p in range(k)]
     # halo of p = vertices outside p adjacent to p (networkx node_boundary)
     halo = [nx.node_boundary(g, owned[p]) for p in range(k)]
@@ -308,7 +309,7 @@ def test_survey_plan_equals_the_trainers_measured_payload(tmp_path):
     # (id-order shards, no process started) must predict them exactly.
     pytest.importorskip("shardtrain.coordinator")
     from shardtrain.settings import TrainSettings
-    from test_train_equivalence import depot_graph, run_partitioned
+    from helpers import depot_graph, run_partitioned
 
     graph = depot_graph(n=300, classes=3, features=20, seed=8)
     a = np.random.default_rng(8).integers(0, 3, 300)

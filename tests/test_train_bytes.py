@@ -8,7 +8,7 @@ import numpy as np
 
 from shardtrain.settings import TrainSettings
 from shardtrain.transport.pipes import PIPE_BYTES
-from test_train_equivalence import depot_graph, run_partitioned
+from helpers import depot_graph, run_partitioned
 
 
 def test_measured_payload_equals_predicted_with_frames_beyond_the_pipe_buffer(tmp_path):

@@ -11,8 +11,7 @@ import json
 import numpy as np
 import pytest
 
-from shardtrain.graph import Graph
-from test_train_equivalence import depot_graph
+from helpers import depot_graph, save_graph
 
 WORKER_KEYS = {"worker", "compute_s", "exchange_s", "allreduce_s", "wait_s", "bytes_sent",
                "bytes_received", "cpu_s", "peak_rss_bytes"}
@@ -21,21 +20,14 @@ EPOCH_KEYS = {"epoch", "loss", "train_loss", "val_loss", "train_acc", "val_acc",
 COMMON = ["--epochs", "3", "--dtype", "float64", "--hidden", "8", "--quiet"]
 
 
-def _save_graph(path, g: Graph) -> None:
-    rows = np.repeat(np.arange(g.num_vertices), g.degrees)
-    keep = rows < g.indices
-    np.savez(path, edges=np.stack([rows[keep], g.indices[keep]], axis=1),
-             num_vertices=np.int64(g.num_vertices), features=g.features, labels=g.labels,
-             train_mask=g.train_mask, val_mask=g.val_mask, test_mask=g.test_mask)
-
-
 @pytest.fixture(scope="module")
 def graph_file(tmp_path_factory):
     path = tmp_path_factory.mktemp("g") / "depots.npz"
-    _save_graph(path, depot_graph(n=200))
+    save_graph(path, depot_graph(n=200))
     return path
 
 
+@pytest.mark.slow
 def test_partitioned_run_writes_json_weights_predictions(run_cli, graph_file, tmp_path):
     out = run_cli("train", graph_file, "--workers", "2", "--method", "random", *COMMON,
                   "--json", tmp_path / "run.json", "--weights", tmp_path / "w.npz",

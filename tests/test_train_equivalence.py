@@ -4,7 +4,7 @@ Source of truth: the single-process reference trainer (`shardtrain.reference`), 
 tests check its gradients against central finite differences and its setup against the
 GCN paper (Kipf & Welling 2017). In float64 the partitioned run differs from it only by
 the order of floating-point sums, so every epoch's loss and the final weights must agree
-to a relative 1e-9 (DESIGN.md), with dropout on.
+to a relative 1e-9 (docs/design.md §1.7), with dropout on.
 """
 from __future__ import annotations
 
@@ -12,81 +12,15 @@ import numpy as np
 import pytest
 
 from shardtrain import model
-from shardtrain.coordinator import ShardDirFacts, train_partitioned
-from shardtrain.graph import Graph, csr_from_edges
+from shardtrain.coordinator import train_partitioned
+from shardtrain.graph import Graph
 from shardtrain.reference import train_reference
 from shardtrain.settings import TrainSettings
-from shardtrain.shards import Shard, build_shards
+from shardtrain.shards import build_shards
+from helpers import depot_graph, run_partitioned
 
 RTOL = 1e-9
 WORKER_COUNTS = (2, 3, 7)      # and 1, below: with one worker every method is the same
-
-
-# ---------------------------------------------------------------- shard files for the workers
-
-def save_shards_npz(folder, shards) -> None:
-    """Plain .npz per shard (no pickle), read back by `load_shard_npz` in the worker."""
-    for s in shards:
-        np.savez(folder / f"{s.worker}.npz", worker=s.worker, workers=s.workers,
-                 num_vertices_global=s.num_vertices_global, num_train_global=s.num_train_global,
-                 owned=s.owned, halo=s.halo, halo_ptr=s.halo_ptr, send_idx=s.send_idx,
-                 send_ptr=s.send_ptr, adj_data=s.adj.data, adj_indices=s.adj.indices,
-                 adj_indptr=s.adj.indptr, adj_shape=np.asarray(s.adj.shape),
-                 features=s.features, labels=s.labels, train_mask=s.train_mask,
-                 val_mask=s.val_mask, test_mask=s.test_mask)
-
-
-def load_shard_npz(folder, worker: int) -> Shard:
-    import scipy.sparse as sp
-    from pathlib import Path
-
-    with np.load(Path(folder) / f"{worker}.npz", allow_pickle=False) as z:
-        adj = sp.csr_matrix((z["adj_data"], z["adj_indices"], z["adj_indptr"]),
-                            shape=tuple(z["adj_shape"]))
-        ints = {k: int(z[k]) for k in ("worker", "workers", "num_vertices_global",
-                                        "num_train_global")}
-        arrays = {k: z[k] for k in ("owned", "halo", "halo_ptr", "send_idx", "send_ptr",
-                                    "features", "labels", "train_mask", "val_mask", "test_mask")}
-    return Shard(adj=adj, **ints, **arrays)
-
-
-def run_partitioned(tmp_path, graph, assignment, k, settings, **kw):
-    """Build the shards, write them as a shard directory and train from it."""
-    shards = build_shards(graph, assignment, k)
-    try:
-        from shardtrain.shards import save_shards
-    except ImportError:          # the shard directory format is not there yet
-        save_shards_npz(tmp_path, shards)
-        facts = ShardDirFacts(k, graph.num_vertices, graph.num_classes, graph.input_dim)
-        return train_partitioned(tmp_path, settings, facts=facts, load_shard=load_shard_npz,
-                                 timeout_s=30, **kw), shards
-    save_shards(tmp_path / "shards", shards, meta={"method": "test", "seed": 0})
-    return train_partitioned(tmp_path / "shards", settings, timeout_s=30, **kw), shards
-
-
-# ---------------------------------------------------------------- data
-
-def depot_graph(n=300, classes=4, features=24, seed=3) -> Graph:
-    """A small random delivery network: routes mostly between depots of the same role."""
-    rng = np.random.default_rng(seed)
-    role = rng.integers(0, classes, n)
-    src = rng.integers(0, n, 6 * n)
-    dst = np.where(rng.random(6 * n) < 0.7,
-                   rng.permutation(n)[np.searchsorted(np.sort(role), role[src]) % n],
-                   rng.integers(0, n, 6 * n))
-    indptr, indices, _ = csr_from_edges(src, dst, n)
-    x = rng.normal(size=(n, features)) + 0.5 * np.eye(classes, features)[role]
-    train = np.zeros(n, bool)
-    train[rng.choice(n, 40, replace=False)] = True
-    rest = np.flatnonzero(~train)
-    val = np.zeros(n, bool)
-    val[rest[:80]] = True
-    test = ~(train | val)
-    labels = role.astype(np.int64)
-    labels[rng.choice(rest[80:], 10, replace=False)] = -1     # some depots without a role
-    test &= labels >= 0
-    return Graph(indptr, indices, x, labels, train, val, test)
-
 
 _ASSIGNMENTS: dict = {}
 

@@ -43,9 +43,8 @@ from shardtrain.transport.frames import FrameError
 from shardtrain.transport.link import LinkModel
 from shardtrain.transport.ring import ring_allreduce
 
-# Kernel buffer per pipe. benchmarks/bench_pipe.py measures 64 KiB (the default), 256 KiB
-# and 1 MiB: the default is clearly slower, 256 KiB as fast as 1 MiB or faster (it stays in
-# the cache) while pinning a quarter of the kernel memory for the k(k-1) pipes.
+# Kernel buffer per pipe: faster than the 64 KiB default, and a quarter of the kernel
+# memory 1 MiB would pin for the k(k-1) pipes (benchmarks/bench_pipe.py compares the three).
 PIPE_BYTES = 1 << 18
 ALLREDUCE = "allreduce"
 NO_LAYER = -1
