@@ -79,7 +79,7 @@ def _metis_call(graph: Graph, k: int, vweights: np.ndarray | None, ncon: int, *,
     import pymetis._internal as internal
 
     lib = _metis_library()
-    keys = internal.options_indices
+    keys = internal.options_indices  # type: ignore[attr-defined]  # missing from pymetis's stub
     idx = ctypes.POINTER(ctypes.c_int64)
 
     def p(a):
@@ -488,7 +488,8 @@ def _read_text(path: Path, num_vertices: int) -> np.ndarray:
         raise InputError(f"{path}: {len(lines)} lines for a graph of {num_vertices} vertices "
                          f"(one worker id per line, in vertex order)")
     text = np.strings.strip(np.array(lines, dtype=np.bytes_))
-    digits = np.strings.lstrip(text, b"-")
+    # numpy's stub gives strip() of a bytes array a str result: the array holds bytes
+    digits = np.strings.lstrip(text, b"-")  # type: ignore[arg-type]
     ok = np.strings.isdigit(digits) & (np.strings.str_len(text) - np.strings.str_len(digits) <= 1)
     bad = np.flatnonzero(~ok)
     if bad.size:
