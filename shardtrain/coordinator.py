@@ -219,7 +219,7 @@ class _EpochBook:
         self.k = k
         self.pending: dict[int, dict[int, dict]] = {}
         self.last_epoch: list[int | None] = [None] * k
-        self.checkpoint: int | None = None           # the epoch of the latest checkpoint written
+        self.checkpoint: int | None = None    # the epoch of the latest checkpoint written
 
     def add(self, rep: dict) -> dict | None:
         w, e = int(rep["worker"]), int(rep["epoch"])

@@ -219,7 +219,8 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
         raise InputError(f"plan {plan.get('method')}/{k}: measured compute of "
                          f"{len(measured_compute)} workers given")
 
-    parts: dict[str, np.ndarray] = {}   # seconds per kind of kernel, per worker, of the timeline being built
+    # seconds per kind of kernel, per worker, of the timeline being built
+    parts: dict[str, np.ndarray] = {}
 
     def count(kind, seconds):
         seconds = np.broadcast_to(np.asarray(seconds, dtype=np.float64), (k,))

@@ -476,7 +476,8 @@ class _Raw:
     features: np.ndarray | None = None
     labels: np.ndarray | None = None
     masks: dict = field(default_factory=dict)
-    locate_edge: Callable[[int], str] | None = None     # edge row -> "file:line" / "file: edges[row]" text
+    # edge row -> "file:line" / "file: edges[row]" text
+    locate_edge: Callable[[int], str] | None = None
     notes: list = field(default_factory=list)
 
 

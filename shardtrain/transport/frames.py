@@ -24,7 +24,8 @@ MAX_HEADER_BYTES = 4096          # a header is ~100 bytes; anything larger is ga
 DEFAULT_MAX_FRAME_BYTES = 1 << 31
 MAX_NAME_CHARS = 64
 MAX_DIMS = 8
-DTYPES: dict[str, np.dtype] = {"float32": np.dtype("<f4"), "float64": np.dtype("<f8"), "int64": np.dtype("<i8")}
+DTYPES: dict[str, np.dtype] = {"float32": np.dtype("<f4"), "float64": np.dtype("<f8"),
+                               "int64": np.dtype("<i8")}
 HEADER_KEYS = ("kind", "epoch", "layer", "direction", "source", "dtype", "shape", "nbytes")
 
 
