@@ -269,6 +269,8 @@ def check_folder(folder, *, resuming_from=None) -> Path:
 class FolderLock:
     """An exclusive lock on a checkpoint folder, held for a whole run (see `lock_folder`)."""
 
+    fd: int | None                          # None once released
+
     def __init__(self, folder: Path, fd: int, created: bool):
         self.folder, self.fd, self.created = folder, fd, created
 

@@ -167,7 +167,7 @@ def _metis_library():
     import pymetis
     try:
         import pymetis._internal as internal
-        keys = internal.options_indices
+        keys = internal.options_indices  # type: ignore[attr-defined]  # missing from pymetis's stub
         lib = ctypes.CDLL(internal.__file__)
         pointer = ctypes.POINTER(ctypes.c_int64)
         for name in ("METIS_PartGraphKway", "METIS_PartGraphRecursive"):

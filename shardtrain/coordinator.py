@@ -22,8 +22,8 @@ import signal
 import time
 from contextlib import contextmanager
 from dataclasses import dataclass, field
-from multiprocessing.connection import wait
-from typing import Callable
+from multiprocessing.connection import Connection, wait
+from typing import Callable, Final, cast
 
 import numpy as np
 
@@ -37,7 +37,7 @@ log = logging.getLogger(__name__)
 # forkserver: each worker is forked from a clean server process that has already imported
 # numpy, scipy and the worker code (with BLAS pinned), so it holds only the pipe ends it is
 # given, like a spawned child, without paying the interpreter start per worker.
-START_METHOD = "forkserver"
+START_METHOD: Final = "forkserver"
 PRELOAD = ["numpy", "scipy.sparse", "msgpack", "threadpoolctl", "shardtrain.worker",
            "shardtrain.model", "shardtrain.shards", "shardtrain.profile",
            "shardtrain.transport.pipes"]
@@ -201,8 +201,8 @@ class _EpochBook:
     def __init__(self, k: int):
         self.k = k
         self.pending: dict[int, dict[int, dict]] = {}
-        self.last_epoch = [None] * k
-        self.checkpoint = None           # the epoch of the latest checkpoint written
+        self.last_epoch: list[int | None] = [None] * k
+        self.checkpoint: int | None = None    # the epoch of the latest checkpoint written
 
     def add(self, rep: dict) -> dict | None:
         w, e = int(rep["worker"]), int(rep["epoch"])
@@ -389,7 +389,7 @@ def _watch(procs, ctrls, k, epochs, on_epoch, stall_s, book=None, phases=None):
             if obj in open_conns:
                 r = open_conns[obj]
                 try:
-                    msg = worker.decode_message(obj.recv_bytes())
+                    msg = worker.decode_message(cast(Connection, obj).recv_bytes())
                 except (EOFError, OSError):
                     del open_conns[obj]        # the death shows up on its sentinel
                     continue
@@ -409,7 +409,7 @@ def _watch(procs, ctrls, k, epochs, on_epoch, stall_s, book=None, phases=None):
             error_deadline = time.monotonic() + ERROR_GRACE_S
     if errors:
         raise RunError(_root_cause(errors))
-    check_epochs_run(records, summaries, epochs)
+    check_epochs_run(records, cast("list[dict]", summaries), epochs)   # the loop filled all
     return records, summaries
 
 

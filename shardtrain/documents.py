@@ -33,8 +33,9 @@ MAX_DEPTH = 64                 # deeper than anything we write (about 6 levels) 
 MAX_WORKERS = 1 << 20          # plans are surveyed up to thousands of workers
 MAX_COUNT = 1 << 62            # vertices, edges, bytes: below int64's range
 MAX_LIST = 1 << 24             # items in one list (epochs, plans, shards ...)
-MAX_BYTES = {"checkpoint": 16 << 20, "calibration": 16 << 20, "survey": 1 << 30,
-             "run": 1 << 30, "forecast": 1 << 30}
+MAX_BYTES: dict[str | None, int] = {      # looked up by kind, which may be None
+    "checkpoint": 16 << 20, "calibration": 16 << 20, "survey": 1 << 30,
+    "run": 1 << 30, "forecast": 1 << 30}
 DEFAULT_MAX_BYTES = 256 << 20
 
 

@@ -30,8 +30,12 @@ from __future__ import annotations
 import os
 import signal
 import time
+from typing import TYPE_CHECKING, Any
 
 from shardtrain.errors import InputError
+
+if TYPE_CHECKING:
+    from shardtrain.transport.pipes import PipeTransport
 
 ENV = "SHARDTRAIN_TEST_FAULT"
 ENV_STAMP = "SHARDTRAIN_TEST_FAULT_STAMP"
@@ -68,7 +72,7 @@ class Fault:
 
     def __init__(self, spec: dict | None, rank: int):
         self.spec = spec if spec is not None and spec["worker"] == rank else None
-        self.transport = None
+        self.transport: PipeTransport | None = None   # set by the worker once built
 
     def __call__(self, phase: str) -> None:
         spec = self.spec
@@ -98,12 +102,14 @@ class Fault:
         from shardtrain.transport import frames
 
         t = self.transport
+        assert t is not None          # the worker attaches it before any exchange phase
         for q, fd in sorted(t._send_fd.items()):
             if mode == "truncated":
                 os.write(fd, frames.PREFIX.pack(40)[:2])
                 continue
-            header = {"kind": "halo", "epoch": 0, "layer": 0, "direction": "forward",
-                      "source": t.rank, "dtype": "float64", "shape": [1, 1]}
+            header: dict[str, Any] = {
+                "kind": "halo", "epoch": 0, "layer": 0, "direction": "forward",
+                "source": t.rank, "dtype": "float64", "shape": [1, 1]}
             if mode == "oversized":
                 header["shape"] = [t.max_frame_bytes // 8 + 1]
             elif mode == "kind":

@@ -268,7 +268,7 @@ is_inside = _inside
 current_folder = _cwd
 
 
-def _flatten(named: dict) -> list[tuple[str, Path]]:
+def _flatten(named: dict | None) -> list[tuple[str, Path]]:
     out = []
     for option, value in (named or {}).items():
         values = value if isinstance(value, (list, tuple)) else [value]

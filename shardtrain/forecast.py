@@ -207,8 +207,8 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
     elem = elementwise_speed(calibration)
     masks = mask_speed(calibration)
     bandwidth = link_gbps
-    if local_pipes and pipe_speed(calibration):
-        bandwidth = min(link_gbps, pipe_speed(calibration) * 8 / 1e9)
+    if local_pipes and (pipe_bps := pipe_speed(calibration)):
+        bandwidth = min(link_gbps, pipe_bps * 8 / 1e9)
     latency = latency_us * 1e-6
     call_s = float(calibration.get("exchange_call", {}).get("seconds_per_call", 0.0))
     copy_s = transport_copy_speed(calibration) * slow     # CPU s per byte sent or received
@@ -216,7 +216,8 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
         raise InputError(f"plan {plan.get('method')}/{k}: measured compute of "
                          f"{len(measured_compute)} workers given")
 
-    parts = {}   # seconds per kind of kernel, per worker, of the timeline being built
+    # seconds per kind of kernel, per worker, of the timeline being built
+    parts: dict[str, np.ndarray] = {}
 
     def count(kind, seconds):
         seconds = np.broadcast_to(np.asarray(seconds, dtype=np.float64), (k,))

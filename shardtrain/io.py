@@ -17,7 +17,7 @@ import warnings
 import zipfile
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Iterator
+from typing import Callable, Iterator
 
 import numpy as np
 import scipy.io
@@ -477,7 +477,8 @@ class _Raw:
     features: np.ndarray | None = None
     labels: np.ndarray | None = None
     masks: dict = field(default_factory=dict)
-    locate_edge: object = None     # edge row -> "file:line" / "file: edges[row]" text
+    # edge row -> "file:line" / "file: edges[row]" text
+    locate_edge: Callable[[int], str] | None = None
     notes: list = field(default_factory=list)
 
 
@@ -866,6 +867,7 @@ def make_splits(labels: np.ndarray, seed: int, per_class: int = 20, val: int = 5
 # --------------------------------------------------------------------------- load_graph
 
 def _check_ids(raw: _Raw, n: int, where: str) -> None:
+    assert raw.locate_edge is not None        # every format reader sets it
     neg = (raw.src < 0) | (raw.dst < 0)
     if neg.any():
         row = int(np.argmax(neg))
@@ -953,6 +955,7 @@ def _require_load_memory(path: Path, raw: _Raw, n: int, n_where: str) -> None:
                             raw.features.nbytes if raw.features is not None else 0,
                             labelled=raw.labels is not None)
     if n_where == "largest id + 1":
+        assert raw.locate_edge is not None    # every format reader sets it
         row = int(np.argmax(np.maximum(raw.src, raw.dst)))
         source = f"{raw.locate_edge(row)}: vertex id {n - 1:,} (so {n:,} vertices)"
     else:

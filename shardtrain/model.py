@@ -70,7 +70,7 @@ def params_from_arrays(arrays, dims: list[tuple[int, int]], bias: bool, dtype,
     params: Params = []
     expected = set()
     for l, (d_in, d_out) in enumerate(dims):
-        shapes = {f"w{l}": (d_in, d_out)}
+        shapes: dict[str, tuple[int, ...]] = {f"w{l}": (d_in, d_out)}
         if bias:
             shapes[f"b{l}"] = (d_out,)
         got = {}
@@ -245,7 +245,7 @@ def forward(params: Params, x: np.ndarray, hops: list[LayerHop], propagate: Prop
     return a fresh array (the bias is added to it in place).
     """
     h = x
-    cache = {"drop": drop, "h": [], "hd": [], "a": []}
+    cache: dict = {"drop": drop, "h": [], "hd": [], "a": []}
     last = len(params) - 1
     for l, ((w, b), hop) in enumerate(zip(params, hops)):
         hd = drop(l, h)

@@ -26,7 +26,7 @@ out, and the other ranks would wait for ever. A rank that dies is ended by the M
 from __future__ import annotations
 
 import time
-from typing import Callable
+from typing import Callable, cast
 
 from shardtrain import coordinator, worker
 from shardtrain.coordinator import PartitionedRunResult, ShardDirFacts
@@ -326,5 +326,6 @@ def train_mpi(shard_dir, settings: TrainSettings | None, *, comm=None,
     for q in range(1, size):
         msg = _recv_message(comm, q, TAG_SUMMARY, timeout_s, f"the summary of rank {q}")
         summaries[q] = worker.decode_summary(msg)
-    coordinator.check_epochs_run(book.records, summaries, settings.epochs)
+    coordinator.check_epochs_run(book.records, cast("list[dict]", summaries),  # all filled
+                                 settings.epochs)
     return coordinator.assemble_result(book.records, summaries, facts, settings)

@@ -435,7 +435,8 @@ def _read_text(path: Path, num_vertices: int) -> np.ndarray:
         raise InputError(f"{path}: {len(lines)} lines for a graph of {num_vertices} vertices "
                          f"(one worker id per line, in vertex order)")
     text = np.strings.strip(np.array(lines, dtype=np.bytes_))
-    digits = np.strings.lstrip(text, b"-")
+    # numpy's stub gives strip() of a bytes array a str result: the array holds bytes
+    digits = np.strings.lstrip(text, b"-")  # type: ignore[arg-type]
     ok = np.strings.isdigit(digits) & (np.strings.str_len(text) - np.strings.str_len(digits) <= 1)
     bad = np.flatnonzero(~ok)
     if bad.size:

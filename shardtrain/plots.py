@@ -13,6 +13,7 @@ matplotlib.use("Agg")
 
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
+from matplotlib.artist import Artist  # noqa: E402
 from matplotlib.colors import LogNorm, Normalize  # noqa: E402
 from matplotlib.ticker import (FuncFormatter, LogLocator, MaxNLocator,  # noqa: E402
                                MultipleLocator, NullFormatter)
@@ -151,6 +152,7 @@ def traffic_heatmap(pair_bytes, title: str, out_dir, name: str) -> str:
     if isinstance(norm, LogNorm):
         _log_bytes_axis(bar.ax.yaxis)
     else:
+        assert norm.vmax is not None         # both Normalize(...) above give a vmax
         _linear_bytes_axis(bar.ax.yaxis, norm.vmax)
     bar.set_label("payload per epoch (white: none)")
     fig.tight_layout()
@@ -329,7 +331,7 @@ def forecast_plots(forecast: dict, out_dir) -> list[str]:
     and the per-worker split of the fastest plan."""
     Path(out_dir).mkdir(parents=True, exist_ok=True)
     plans = forecast["plans"]
-    paths = []
+    paths: list[str] = []
     if not plans:
         return paths
     links = sorted({p["link_gbps"] for p in plans})
@@ -373,7 +375,7 @@ def forecast_plots(forecast: dict, out_dir) -> list[str]:
             ax.set_ylabel("forecast time of one training epoch")
     for j in range(n, rows * cols):
         axes[j // cols][j % cols].set_visible(False)
-    handles = {}
+    handles: dict[str, Artist] = {}
     for ax in axes.flat:
         for h, lab in zip(*ax.get_legend_handles_labels()):
             handles.setdefault(lab, h)

@@ -21,13 +21,15 @@ from __future__ import annotations
 
 import time
 from contextlib import contextmanager
-from typing import Iterable, Iterator
+from typing import Callable, ClassVar, Iterable, Iterator
 
 ROW_FIELDS = ("src", "dst", "kind", "layer", "direction")
 
 
 class Profile:
     """Byte counters and phase timers of one worker (`rank`)."""
+
+    merge: ClassVar[Callable[[Iterable[dict]], dict]]   # bound after the module's merge()
 
     def __init__(self, rank: int):
         self.rank = int(rank)

@@ -47,6 +47,7 @@ def check_trainable(graph: Graph) -> None:
 
 
 def model_dims(graph: Graph, settings: TrainSettings) -> list[tuple[int, int]]:
+    assert graph.input_dim is not None     # callers ran check_trainable (features given)
     return layer_dims(graph.input_dim, settings.hidden, graph.num_classes, settings.layers)
 
 
@@ -133,6 +134,7 @@ def _train(graph, settings, init_params, init_adam, first_epoch, on_epoch, on_ep
     totals = [0 if m is None else int(np.count_nonzero(m)) for m in masks]
     n_train = totals[0]
     global_ids = order              # row i holds vertex order[i]: the dropout key
+    assert masks[0] is not None     # check_trainable refused a graph without a training split
 
     def propagate(layer, m):
         return a_hat @ m
@@ -165,6 +167,7 @@ def _train(graph, settings, init_params, init_adam, first_epoch, on_epoch, on_ep
         records.append(record)
         stop = False
         if early is not None:
+            assert val_loss is not None     # check_early_stop refused no validation vertices
             if early.update(epoch, val_loss, params):
                 best_logits = logits
             stop = early.should_stop(epoch)
@@ -178,10 +181,12 @@ def _train(graph, settings, init_params, init_adam, first_epoch, on_epoch, on_ep
         if stop:
             break
     if early is not None:
+        assert early.best_params is not None    # update() ran: at least one epoch did
         params = early.best_params
         if best_logits is None:      # best epoch before a resume: evaluate its weights again
             best_logits, _ = model.forward(params, x, hops, propagate, model.no_dropout)
         logits = best_logits
+    assert logits is not None       # first_epoch <= epochs: the loop ran at least once
     predictions = np.empty(n, dtype=np.int64)
     predictions[order] = np.argmax(logits, axis=1)
     return RunResult(records, params, predictions,

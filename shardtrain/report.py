@@ -10,6 +10,7 @@ import base64
 import html
 import tempfile
 from pathlib import Path
+from typing import Any, Callable
 
 from shardtrain.errors import InputError
 from shardtrain.tables import human_seconds
@@ -68,7 +69,7 @@ def read_document(path) -> tuple[str, dict]:
     return kind, doc
 
 
-def _parse(path: Path, *, skip_unreadable: bool = False) -> tuple[str | None, object]:
+def _parse(path: Path, *, skip_unreadable: bool = False) -> tuple[str | None, Any]:
     """(kind, validated doc), or (None, doc) when the JSON is none of our kinds (or, with
     `skip_unreadable`, not JSON at all). A JSON of our kinds with a bad shape is refused."""
     from shardtrain import documents
@@ -341,9 +342,10 @@ def forecast_section(doc: dict, plot_dir: Path) -> str:
             + _table(rows, cols, mark_key="marked") + _figures(forecast_plots(doc, plot_dir)))
 
 
-SECTIONS = {"survey": ("Survey of partition plans", survey_section),
-            "run": ("Training run", run_section),
-            "forecast": ("Forecast", forecast_section)}
+SECTIONS: dict[str, tuple[str, Callable[..., str]]] = {   # survey's takes the plan too
+    "survey": ("Survey of partition plans", survey_section),
+    "run": ("Training run", run_section),
+    "forecast": ("Forecast", forecast_section)}
 
 
 def run_plan(documents: list[tuple[str, str, dict]]) -> dict | None:

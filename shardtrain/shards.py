@@ -18,6 +18,7 @@ CONTRACT (the worker, the survey and the tests rely on exactly this layout):
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import TypeGuard
 
 import numpy as np
 import scipy.sparse as sp
@@ -440,7 +441,7 @@ def _refuse_old_version(file) -> None:
                          f"to write this directory again")
 
 
-def _is_count(value) -> bool:
+def _is_count(value) -> TypeGuard[int]:
     return isinstance(value, int) and not isinstance(value, bool) and 0 <= value < _MAX_SIZE
 
 

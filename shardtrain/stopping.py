@@ -67,6 +67,7 @@ class EarlyStop:
         """Checkpoint arrays: early_best_epoch, early_best_loss, early_best_<name>."""
         if self.best_epoch is None:
             return {}
+        assert self.best_params is not None     # set together with best_epoch in update()
         out = {f"{PREFIX}best_epoch": np.asarray(self.best_epoch, dtype=np.int64),
                f"{PREFIX}best_loss": np.asarray(self.best_loss, dtype=np.float64)}
         for name, a in model.params_to_arrays(self.best_params).items():

@@ -313,6 +313,7 @@ def model_shape(graph, settings: SurveySettings) -> tuple[list[tuple[int, int]],
         raise InputError(f"{', '.join(m[0] for m in missing)}: the graph has no "
                          f"{' and no '.join(m[1] for m in missing)}; give "
                          f"{' and '.join(m[2] for m in missing)}")
+    assert input_dim is not None and classes is not None   # refused above when missing
     dims = layer_dims(int(input_dim), settings.hidden, int(classes), settings.layers)
     return dims, layer_hops(dims)
 

@@ -208,6 +208,7 @@ def edge_array(graph: Graph) -> np.ndarray:
 
 def same_role_fraction(graph: Graph) -> float:
     """Fraction of edges joining vertices of the same label (edge homophily)."""
+    assert graph.labels is not None         # called on synthesised graphs, always labelled
     rows = np.repeat(np.arange(graph.num_vertices), graph.degrees)
     if rows.shape[0] == 0:
         return 0.0

@@ -6,9 +6,9 @@
 from __future__ import annotations
 
 from numbers import Number
-from typing import Callable, Union
+from typing import Any, Callable, Sequence, Union
 
-Fmt = Union[str, Callable[[object], str], None]
+Fmt = Union[str, Callable[[Any], str], None]   # a function gets the cell's value
 
 _UNITS = ("B", "KiB", "MiB", "GiB", "TiB", "PiB")
 
@@ -50,7 +50,7 @@ def _cell(value, fmt: Fmt) -> str:
     return str(value)
 
 
-def format_table(rows: list[dict], columns: list[tuple[str, str, Fmt]]) -> str:
+def format_table(rows: list[dict], columns: Sequence[tuple[str, str, Fmt]]) -> str:
     """Aligned text: a header line, a rule, one line per row; missing keys show '-'."""
     headers = [header for _, header, _ in columns]
     cells = [[_cell(row.get(key), fmt) for key, _, fmt in columns] for row in rows]

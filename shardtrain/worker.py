@@ -25,7 +25,7 @@ import resource
 import signal
 import time
 from contextlib import contextmanager
-from typing import Callable
+from typing import TYPE_CHECKING, Callable
 
 import msgpack
 import numpy as np
@@ -35,6 +35,9 @@ from shardtrain import model, stopping
 from shardtrain.compat import add_csr_product
 from shardtrain.schedule import layer_dims, layer_hops
 from shardtrain.settings import TrainSettings
+
+if TYPE_CHECKING:
+    from shardtrain.transport.pipes import PipeTransport
 
 log = logging.getLogger(__name__)
 
@@ -226,8 +229,7 @@ def run_worker(shard, settings: TrainSettings, transport, profile, report: Calla
                *, num_classes: int, init_params=None, init_adam: dict | None = None,
                epochs_range: range | None = None,
                on_phase: Callable[[str], None] | None = None,
-               on_epoch_end: Callable[[int, model.Params, model.Adam], dict | None]
-               | None = None, slow_factor: float = 1.0,
+               on_epoch_end: Callable[..., dict | None] | None = None, slow_factor: float = 1.0,
                init_early: dict | None = None) -> dict:
     """Train on `shard` for the epochs of `epochs_range` (default 1..settings.epochs).
 
@@ -476,7 +478,7 @@ def process_main(rank: int, size: int, shard_dir: str, settings_dict: dict, num_
     def send(msg: dict) -> None:
         ctrl.send_bytes(encode_message(msg))
 
-    transport = None
+    transport: PipeTransport | None = None
     status = 0
     try:
         from shardtrain.profile import Profile
@@ -485,7 +487,8 @@ def process_main(rank: int, size: int, shard_dir: str, settings_dict: dict, num_
         on_phase("loading shard")
         load = options.get("load_shard")
         if load is None:
-            from shardtrain.shards import load_shard as load
+            from shardtrain.shards import load_shard
+            load = load_shard
         shard = load(shard_dir, rank)
         settings = TrainSettings.from_dict(settings_dict)
         profile = Profile(rank)

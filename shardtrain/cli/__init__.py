@@ -57,6 +57,7 @@ def build_parser() -> argparse.ArgumentParser:
             if exc.name != f"shardtrain.cli.{module_name}":
                 raise
             continue  # command not built yet
+        assert module.__doc__ is not None   # every command module's docstring is its help
         p = sub.add_parser(name, help=module.__doc__.strip().splitlines()[0],
                            description=module.__doc__)
         module.add_arguments(p)

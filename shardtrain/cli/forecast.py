@@ -100,6 +100,7 @@ def _survey_and_measure(graph, methods, workers, settings, dropout, cores=None):
             measured[(method, k)] = plan_step_seconds(graph, a, k, train,
                                                       head["graph"]["classes"],
                                                       together=together)
+    assert head is not None          # methods and workers are non-empty lists
     return dict(head, plans=plans), measured
 
 

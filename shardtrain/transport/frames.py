@@ -24,7 +24,8 @@ MAX_HEADER_BYTES = 4096          # a header is ~100 bytes; anything larger is ga
 DEFAULT_MAX_FRAME_BYTES = 1 << 31
 MAX_NAME_CHARS = 64
 MAX_DIMS = 8
-DTYPES = {"float32": np.dtype("<f4"), "float64": np.dtype("<f8"), "int64": np.dtype("<i8")}
+DTYPES: dict[str, np.dtype] = {"float32": np.dtype("<f4"), "float64": np.dtype("<f8"),
+                               "int64": np.dtype("<i8")}
 HEADER_KEYS = ("kind", "epoch", "layer", "direction", "source", "dtype", "shape", "nbytes")
 
 
@@ -84,7 +85,7 @@ def _is_int(v) -> bool:
     return isinstance(v, int) and not isinstance(v, bool)
 
 
-def decode_header(buf: bytes, *, peer: int,
+def decode_header(buf: bytes | bytearray | memoryview, *, peer: int,
                   max_frame_bytes: int = DEFAULT_MAX_FRAME_BYTES) -> dict:
     """Parse and validate the msgpack body of a header (without the length prefix)."""
     try:
@@ -162,7 +163,7 @@ def encode_frame(array: np.ndarray, *, kind: str, epoch: int, layer: int, direct
     return head + array.tobytes()
 
 
-def decode_frame(buf: bytes, *, peer: int,
+def decode_frame(buf: bytes | bytearray | memoryview, *, peer: int,
                  max_frame_bytes: int = DEFAULT_MAX_FRAME_BYTES) -> tuple[dict, np.ndarray]:
     """Split one whole frame into (header, array); every defect is a FrameError."""
     buf = memoryview(buf).cast("B")

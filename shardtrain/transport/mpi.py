@@ -168,11 +168,11 @@ class MpiTransport:
             if got_head != frames.PREFIX_BYTES + n:
                 raise FrameError(q, f"header message of {got_head} bytes announces {n} "
                                     f"header bytes")
-            header = frames.decode_header(head[frames.PREFIX_BYTES:], peer=q,
+            parsed = frames.decode_header(head[frames.PREFIX_BYTES:], peer=q,
                                           max_frame_bytes=self.max_frame_bytes)
-            frames.check_expected(header, peer=q, dtype=dest.dtype, shape=dest.shape, **meta)
-            if got_pay != header["nbytes"]:
-                raise FrameError(q, f"truncated after {got_pay} of {header['nbytes']} "
+            frames.check_expected(parsed, peer=q, dtype=dest.dtype, shape=dest.shape, **meta)
+            if got_pay != parsed["nbytes"]:
+                raise FrameError(q, f"truncated after {got_pay} of {parsed['nbytes']} "
                                     f"payload bytes")
             self.profile.count(q, self.rank, meta["kind"], meta["layer"], meta["direction"],
                                got_pay, got_head)

@@ -33,6 +33,7 @@ import select
 import time
 from dataclasses import dataclass, field
 from multiprocessing.connection import Connection
+from typing import cast
 
 import numpy as np
 
@@ -56,7 +57,8 @@ _OUT = select.POLLOUT | select.POLLERR
 
 def ring_pairs(k: int) -> set[tuple[int, int]]:
     """The pairs (p, q), p < q, of ring neighbours r, r+1 mod k (empty for k = 1)."""
-    return {tuple(sorted((r, (r + 1) % k))) for r in range(k)} if k > 1 else set()
+    return ({cast("tuple[int, int]", tuple(sorted((r, (r + 1) % k)))) for r in range(k)}
+            if k > 1 else set())
 
 
 @dataclass
@@ -97,7 +99,8 @@ def _grow_pipe(fd: int, nbytes: int) -> None:
 
 def _bytes_view(array: np.ndarray) -> memoryview:
     """A flat byte view of a C-contiguous array (also for empty arrays)."""
-    return memoryview(array.reshape(-1).view(np.uint8))
+    # numpy declares the buffer protocol to type checkers only for Python >= 3.12
+    return memoryview(array.reshape(-1).view(np.uint8))  # type: ignore[arg-type]
 
 
 def _wire_array(array) -> np.ndarray:
@@ -129,7 +132,7 @@ class _Recv:
     def __init__(self, peer, fd, dest: np.ndarray):
         self.peer, self.fd, self.dest = peer, fd, dest
         self.prefix = bytearray(frames.PREFIX_BYTES)
-        self.header = None
+        self.header: bytearray | None = None   # allocated when the prefix has arrived
         self.stage = 0        # 0: length prefix, 1: header, 2: payload, 3: done
         self.got = 0
         self.need = frames.PREFIX_BYTES
@@ -214,7 +217,7 @@ class PipeTransport:
             for s, due in zip(sends, self.link.due_times(start, [s.total for s in sends])):
                 s.due = due
         poller = select.poll()
-        by_fd: dict[int, object] = {}
+        by_fd: dict[int, _Send | _Recv] = {}
         for s in sends:
             poller.register(s.fd, _OUT)
             by_fd[s.fd] = s
@@ -311,6 +314,7 @@ class PipeTransport:
             if r.stage == 0:
                 view = memoryview(r.prefix)[r.got:]
             elif r.stage == 1:
+                assert r.header is not None          # stage 1 starts by allocating it
                 view = memoryview(r.header)[r.got:]
             else:
                 view = _bytes_view(r.dest)[r.got:]
@@ -332,6 +336,7 @@ class PipeTransport:
             n = frames.header_length(bytes(r.prefix), peer=r.peer)
             r.header, r.stage, r.got, r.need = bytearray(n), 1, 0, n
         elif r.stage == 1:
+            assert r.header is not None              # stage 1 starts by allocating it
             header = frames.decode_header(r.header, peer=r.peer,
                                           max_frame_bytes=self.max_frame_bytes)
             frames.check_expected(header, peer=r.peer, dtype=r.dest.dtype, shape=r.dest.shape,
