@@ -14,7 +14,8 @@ Three graphs:
 Every plan is timed in wall and CPU seconds of this process, with the 1-minute load average
 before and after (the machine is shared: compare CPU seconds run to run).
 
-    python benchmarks/bench_partition_quality.py --out benchmarks/results/bench_partition_quality.json
+    python benchmarks/bench_partition_quality.py \
+        --out benchmarks/results/bench_partition_quality.json
 """
 from __future__ import annotations
 
@@ -54,7 +55,8 @@ def _row(graph, label: str, k: int, fn) -> dict:
         row["partition"] = details
     note = "" if not details or "scheme" not in details else \
         f"  [{details['scheme']}, {details['balance']}]"
-    print(f"  {label:<26} k={k:<3} cut {row['edge_cut']:>10,}  owned {row['owned_max_over_mean']:.3f}"
+    print(f"  {label:<26} k={k:<3} cut {row['edge_cut']:>10,}  "
+          f"owned {row['owned_max_over_mean']:.3f}"
           f"  edges {row['local_edges_max_over_mean']:.3f}  {wall:6.1f} s (CPU {cpu:6.1f}){note}",
           flush=True)
     return row

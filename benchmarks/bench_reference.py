@@ -68,18 +68,20 @@ def main() -> None:
         m = np.random.default_rng(0).standard_normal((n, args.hidden), dtype=np.float32)
         x = graph.features[order].astype(np.float32)
         hops = layer_hops(dims)
-        evaluate = lambda: model.forward(run.params, x, hops, lambda l, h: a_hat @ h,
-                                         model.no_dropout)
+        def evaluate():
+            return model.forward(run.params, x, hops, lambda l, h: a_hat @ h,
+                                                 model.no_dropout)
         step = {"min_s": min(steps), "median_s": float(np.median(steps))}
         # the same training step again, outside the trainer, for its CPU time
         params = [(w.copy(), None if b is None else b.copy()) for w, b in run.params]
         adam = model.Adam(params, settings.lr)
         train = graph.train_mask[order]
         labels = graph.labels[order]
-        step_again = lambda: model.train_step(
-            params, adam, x, labels, train, int(train.sum()), hops, lambda l, h: a_hat @ h,
-            lambda l, g: a_hat @ g, model.Dropout(0, 1, settings.dropout, order),
-            lambda flat: None, settings.weight_decay)
+        def step_again():
+            return model.train_step(
+                    params, adam, x, labels, train, int(train.sum()), hops, lambda l, h: a_hat @ h,
+                    lambda l, g: a_hat @ g, model.Dropout(0, 1, settings.dropout, order),
+                    lambda flat: None, settings.weight_decay)
         step.update({k: v for k, v in _timed(step_again, args.repeat).items()
                      if k.startswith("cpu")})
         mask_t = _timed(masks, args.repeat)

@@ -25,7 +25,6 @@ os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 
 import numpy as np  # noqa: E402
 
-
 _CPU = {}
 _START = time.perf_counter()
 _LOAD_START = round(os.getloadavg()[0], 2)

@@ -29,7 +29,7 @@ import numpy as np
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 os.environ.setdefault("OMP_NUM_THREADS", "1")
 
-from shardtrain import survey as sv          # noqa: E402
+from shardtrain import survey as sv  # noqa: E402
 from shardtrain.files import write_json_atomic  # noqa: E402
 from shardtrain.schedule import layer_dims, layer_hops  # noqa: E402
 

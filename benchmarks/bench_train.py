@@ -78,6 +78,7 @@ def _torch_child(args, conn) -> None:
         conn.send({"skipped": f"torch not importable ({exc}); pip install torch to add it"})
         return
     import numpy as np
+
     from shardtrain.graph import normalized_adjacency
     torch.set_num_threads(2)
     graph = _graph(args)
@@ -127,6 +128,7 @@ def _raw_pipe_gbps(frame_bytes: int = 1 << 20, repeats: int = 0) -> float:
     frames can meet); with a halo-sized frame it is the same copy work as one side of one
     exchange."""
     import numpy as np
+
     from shardtrain.transport.pipes import PIPE_BYTES, _grow_pipe
     repeats = repeats or max(1, (256 << 20) // frame_bytes)
     r, w = os.pipe()
@@ -160,6 +162,7 @@ def _raw_pipe_gbps(frame_bytes: int = 1 << 20, repeats: int = 0) -> float:
 def _exchange_child(rank: int, ends, rows: int, width: int, repeats: int, conn) -> None:
     """One side of the transport-only exchange: both sides send and receive a frame."""
     import numpy as np
+
     from shardtrain.profile import Profile
     from shardtrain.transport.pipes import PipeTransport
     t = PipeTransport(rank, 2, ends, Profile(rank), timeout_s=60)

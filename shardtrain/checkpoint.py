@@ -46,7 +46,8 @@ _STATE_RE = re.compile(r"state-\d{6}\.npz")
 # settings a resume may change: how long the run goes on, how many BLAS threads it uses
 _FREE_SETTINGS = ("epochs", "threads")
 _ABSENT_MEANS = {"early_stop": 0}     # settings older checkpoints do not record
-_OPTION_OF = {"early_stop": "--early-stop", "layers": "--layers", "hidden": "--hidden", "dropout": "--dropout",
+_OPTION_OF = {"early_stop": "--early-stop", "layers": "--layers", "hidden": "--hidden",
+              "dropout": "--dropout",
               "lr": "--lr", "weight_decay": "--weight-decay", "seed": "--seed",
               "dtype": "--dtype", "bias": "--bias"}
 

@@ -2,7 +2,8 @@
 
 The coordinator starts one "forkserver" process per shard (like a spawned child, it holds
 only the pipe ends it is given, see `transport/pipes.py`), with BLAS pinned to one thread
-in the environment before numpy is imported there, and again with threadpoolctl. The workers run their epochs on their own and report
+in the environment before numpy is imported there, and again with threadpoolctl. The workers
+run their epochs on their own and report
 each epoch over a control pipe (msgpack, no pickle); the coordinator adds the reports up,
 watches every worker's liveness (its process sentinel) while it waits, and stops them all
 on the first failure: a dead or failing worker becomes a RunError naming it, its exit

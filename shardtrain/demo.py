@@ -363,7 +363,8 @@ def summary_facts(r: "DemoResult", settings_doc: dict) -> list[tuple[str, str]]:
     ]
     for f in r.forecast:
         facts.append((f"forecast at {f['link_gbps']:g} Gbit/s",
-                      f"{human_seconds(f['epoch_s'])} per epoch (compute {human_seconds(f['compute_s'])}, "
+                      f"{human_seconds(f['epoch_s'])} per epoch (compute "
+                      f"{human_seconds(f['compute_s'])}, "
                       f"exchange {human_seconds(f['exchange_s'])}, all-reduce "
                       f"{human_seconds(f['allreduce_s'])}; bound by {f['bottleneck']})"))
     facts.append(("time until this report", f"{r.total_s:.1f} s on this machine (" + ", ".join(

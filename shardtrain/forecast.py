@@ -51,9 +51,16 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from shardtrain.calibrate import (dense_speed, elementwise_speed, gather_speed, mask_speed,
-                                  pipe_speed, scatter_add_speed, sparse_speed,
-                                  transport_copy_speed)
+from shardtrain.calibrate import (
+    dense_speed,
+    elementwise_speed,
+    gather_speed,
+    mask_speed,
+    pipe_speed,
+    scatter_add_speed,
+    sparse_speed,
+    transport_copy_speed,
+)
 from shardtrain.errors import InputError
 
 LINK_PRESETS_GBPS = (1.0, 10.0, 25.0, 100.0)

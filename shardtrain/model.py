@@ -185,9 +185,14 @@ def _block_rows(words_per_row: int) -> int:
 
 def _fmix32(x: np.ndarray, t: np.ndarray) -> None:
     """MurmurHash3's 32-bit finaliser (Appleby), in place; t is scratch of x's shape."""
-    np.right_shift(x, 16, out=t); x ^= t; x *= np.uint32(0x85EBCA6B)
-    np.right_shift(x, 13, out=t); x ^= t; x *= np.uint32(0xC2B2AE35)
-    np.right_shift(x, 16, out=t); x ^= t
+    np.right_shift(x, 16, out=t)
+    x ^= t
+    x *= np.uint32(0x85EBCA6B)
+    np.right_shift(x, 13, out=t)
+    x ^= t
+    x *= np.uint32(0xC2B2AE35)
+    np.right_shift(x, 16, out=t)
+    x ^= t
 
 
 def apply_keep(h: np.ndarray, keep: np.ndarray, scale) -> np.ndarray:

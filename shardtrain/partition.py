@@ -17,7 +17,6 @@ from shardtrain.errors import InputError, RunError
 from shardtrain.graph import Graph
 from shardtrain.io import read_npy, require_regular_file
 
-
 # ----------------------------------------------------------------------------- METIS
 
 # Graphs up to this many undirected edges get every METIS candidate (both schemes, and the
@@ -391,7 +390,8 @@ def load_assignment(path: str | os.PathLike, num_vertices: int,
     counts = np.bincount(a, minlength=k)
     empty = np.flatnonzero(counts == 0)
     if empty.size:
-        raise InputError(f"{path}: worker {int(empty[0])} owns no vertex (ids must cover 0..{k - 1})")
+        raise InputError(f"{path}: worker {int(empty[0])} owns no vertex (ids must cover "
+                         f"0..{k - 1})")
     return a, k
 
 

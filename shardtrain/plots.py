@@ -15,8 +15,7 @@ import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 from matplotlib.artist import Artist  # noqa: E402
 from matplotlib.colors import LogNorm, Normalize  # noqa: E402
-from matplotlib.ticker import (FuncFormatter, LogLocator, MaxNLocator,  # noqa: E402
-                               MultipleLocator, NullFormatter)
+from matplotlib.ticker import FuncFormatter, LogLocator, MaxNLocator, MultipleLocator, NullFormatter  # noqa: E402
 
 from shardtrain.errors import InputError  # noqa: E402
 from shardtrain.files import atomic_output  # noqa: E402

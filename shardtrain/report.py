@@ -13,8 +13,7 @@ from pathlib import Path
 from typing import Any, Callable
 
 from shardtrain.errors import InputError
-from shardtrain.tables import human_seconds
-from shardtrain.tables import human_bytes
+from shardtrain.tables import human_bytes, human_seconds
 
 KINDS = ("survey", "run", "forecast")
 

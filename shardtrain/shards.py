@@ -703,7 +703,8 @@ def _shard_from_arrays(file, arrays: dict, manifest: dict, worker: int) -> Shard
             if name.endswith("_mask") and value.dtype != np.bool_:
                 raise bad(f"'{name}' must be boolean")
             setattr(shard, name, value)
-    if shard.features is not None and manifest.get("input_dim") not in (None, shard.features.shape[1]):
+    if shard.features is not None and \
+            manifest.get("input_dim") not in (None, shard.features.shape[1]):
         raise bad(f"features are {shard.features.shape[1]} wide, the manifest says "
                   f"{manifest['input_dim']}")
     return shard

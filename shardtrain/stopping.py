@@ -3,7 +3,8 @@
 Rule (the GCN paper's, Kipf & Welling 2017, from memory: "stop when the validation loss
 has not decreased for 10 consecutive epochs"): after each epoch's evaluation forward, the
 epoch *improves* when its validation loss is STRICTLY lower than the best so far (the
-first epoch always does; a NaN loss never beats a number, any number beats a NaN best). The run stops after epoch e when
+first epoch always does; a NaN loss never beats a number, any number beats a NaN best).
+The run stops after epoch e when
 e - best_epoch >= patience, i.e. after `patience` epochs in a row without an improvement.
 The run's final weights (and predictions) are those of the best epoch, whether or not the
 rule triggered before the last epoch.

@@ -11,11 +11,10 @@ import json
 import re
 import shutil
 
-import numpy as np
 import pytest
+from helpers import depot_graph, save_graph
 
 from shardtrain.cli import main
-from helpers import depot_graph, save_graph
 
 TRAIN = ["--epochs", "4", "--dtype", "float64", "--hidden", "8", "--quiet", "--timeout", "20"]
 W2 = ["--workers", "2", "--method", "random"]
@@ -142,7 +141,8 @@ CASES = [
                                      *TRAIN, "--epochs", "6", "--resume", "{ck}"],
      r"--workers: this run has 3 workers, the checkpoint .* written by 2"),
     ("train resume other graph", ["train", "{other}", *W2, *TRAIN, "--epochs", "6",
-                                  "--resume", "{ck}"], r"other\.npz: a different graph from the checkpoint's"),
+                                  "--resume", "{ck}"],
+     r"other\.npz: a different graph from the checkpoint's"),
     ("train resume finished", ["train", "{g}", *W2, *TRAIN, "--resume", "{ck}"],
      r"--epochs 4: the checkpoint .* already at epoch 4"),
     ("train resume with init weights", ["train", "{g}", *W2, *TRAIN, "--resume", "{ck}",

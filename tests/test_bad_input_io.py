@@ -92,7 +92,8 @@ CASES = [
     ("corrupt npz", raw("g.npz", b"not a zip"), {}, {}, r"g\.npz: not a readable \.npz bundle"),
     ("garbage mtx", raw("g.mtx", b"hello\n"), {}, {}, r"g\.mtx:1: not a readable Matrix Market"),
     ("non-square mtx", raw("g.mtx", b"%%MatrixMarket matrix coordinate pattern general\n"
-                                    b"2 3 1\n1 3\n"), {}, {}, r"g\.mtx:2: adjacency must be square"),
+                                    b"2 3 1\n1 3\n"), {}, {},
+     r"g\.mtx:2: adjacency must be square"),
     ("input dim", text("g.txt", "0 1"), {"features": text("x.csv", "1,2", "3,4")},
      {"input_dim": 5}, r"--input-dim 5 does not match the 2 feature columns"),
 ]

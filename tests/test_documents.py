@@ -13,11 +13,11 @@ import json
 import re
 
 import pytest
+from helpers import depot_graph, save_graph
 
 from shardtrain import documents
 from shardtrain.cli import main
 from shardtrain.errors import InputError
-from helpers import depot_graph, save_graph
 
 QUICK = ["--epochs", "2", "--hidden", "8", "--quiet", "--timeout", "20"]
 W2 = ["--workers", "2", "--method", "random"]

@@ -24,16 +24,15 @@ import sys
 
 import numpy as np
 import pytest
+from helpers import depot_graph, digits_graphs, launch_mpi, mpiexec, save_graph
 
 from shardtrain import checkpoint as ck
-from shardtrain import model
 from shardtrain.coordinator import train_partitioned
 from shardtrain.graph import fingerprint
 from shardtrain.partition import partition
 from shardtrain.reference import model_dims, train_reference
 from shardtrain.settings import TrainSettings, max_threads
 from shardtrain.shards import build_shards, save_shards
-from helpers import depot_graph, digits_graphs, launch_mpi, mpiexec, save_graph
 
 RTOL = 1e-9
 EARLY = TrainSettings(epochs=40, lr=0.05, early_stop=3, dtype="float64", seed=0)

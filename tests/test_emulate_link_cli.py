@@ -12,7 +12,6 @@ import json
 
 import numpy as np
 import pytest
-
 from helpers import depot_graph, frame_header_bytes, hand_plan, model_doc
 
 COMMON = ["--epochs", "3", "--hidden", "8", "--quiet"]

@@ -22,6 +22,7 @@ import uuid
 
 import numpy as np
 import pytest
+from helpers import depot_graph, processes_with_token, save_graph
 
 from shardtrain import checkpoint as ck
 from shardtrain import faults, model
@@ -29,7 +30,6 @@ from shardtrain.coordinator import train_partitioned
 from shardtrain.errors import RunError
 from shardtrain.settings import TrainSettings
 from shardtrain.shards import build_shards, save_shards
-from helpers import depot_graph, processes_with_token, save_graph
 
 K = 3
 SETTINGS = TrainSettings(layers=2, hidden=8, dropout=0.5, lr=0.01, weight_decay=5e-4,

@@ -9,13 +9,12 @@ import types
 import networkx as nx
 import numpy as np
 import pytest
+from helpers import frame_header_bytes, hand_plan, model_doc
 
 from shardtrain import forecast as fc
 from shardtrain.calibrate import from_flops, sparse_speed
 from shardtrain.errors import InputError
 from shardtrain.transport.link import LinkModel
-from helpers import frame_header_bytes, hand_plan, model_doc
-
 
 # ---------------------------------------------------------------- helpers
 

@@ -136,7 +136,8 @@ def test_unsendable_dtype_is_refused_at_the_sender():
 # Property checks (hypothesis): any array survives the round trip, and any truncation or
 # single flipped byte in the framing is either caught as a FrameError naming the peer or
 # decodes to a frame that is still self-consistent (flips inside values are not detectable).
-from hypothesis import given, settings, strategies as st  # noqa: E402
+from hypothesis import given, settings  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
 
 _shapes = st.lists(st.integers(0, 5), min_size=0, max_size=3)
 

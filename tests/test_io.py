@@ -12,8 +12,13 @@ import scipy.sparse as sp
 
 from shardtrain import io as sio
 from shardtrain.errors import InputError
-from shardtrain.files import (atomic_directory, atomic_output, save_npz_atomic,
-                              write_json_atomic, write_text_atomic)
+from shardtrain.files import (
+    atomic_directory,
+    atomic_output,
+    save_npz_atomic,
+    write_json_atomic,
+    write_text_atomic,
+)
 from shardtrain.io import load_features, load_graph, load_labels, make_splits
 
 # a small graph with one self-loop (3,3), one repeat (0,1) and one reverse repeat (2,1)
@@ -241,7 +246,8 @@ def test_feature_scanner_across_chunks(tmp_path, monkeypatch):
     # mixed separators again force the byte scanner; repr() keeps every float exact
     # 30 comment lines fill whole chunks with no data (np.fromstring reads blanks as [-1.])
     lines = ["volume,area,staff"] + ["% weekly"] * 30 + [
-        f"{a!r},{b!r}\t{c!r}" if i % 2 else f"{a!r} {b!r} {c!r}" for i, (a, b, c) in enumerate(x.tolist())]
+        f"{a!r},{b!r}\t{c!r}" if i % 2 else f"{a!r} {b!r} {c!r}"
+        for i, (a, b, c) in enumerate(x.tolist())]
     monkeypatch.setattr(sio, "_CHUNK_BYTES", 113)
     got = load_features(write_lines(tmp_path / "x.csv", lines))
     assert np.array_equal(got, x.astype(np.float32))

@@ -70,7 +70,8 @@ def test_adam_matches_a_hand_worked_two_steps():
 
 def test_adam_state_round_trip_continues_identically():
     rng = np.random.default_rng(0)
-    make = lambda: [(np.ones((3, 2)), np.zeros(2)), (np.ones((2, 4)), np.zeros(4))]
+    def make():
+        return [(np.ones((3, 2)), np.zeros(2)), (np.ones((2, 4)), np.zeros(4))]
     grads = [[(rng.normal(size=(3, 2)), rng.normal(size=2)),
               (rng.normal(size=(2, 4)), rng.normal(size=4))] for _ in range(3)]
     p1, p2 = make(), make()

@@ -22,7 +22,6 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-
 from helpers import launch_mpi, mpiexec
 
 pytestmark = pytest.mark.mpi      # every test here starts mpiexec

@@ -144,6 +144,7 @@ def test_mpi_failures_are_named_and_abort_the_job(mode, message, tmp_path):
 
 def _child(mode: str, out: Path) -> None:
     from mpi4py import MPI
+
     from shardtrain.errors import RunError
     from shardtrain.transport.mpi import MpiTransport
 

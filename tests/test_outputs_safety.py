@@ -19,9 +19,9 @@ import sys
 
 import numpy as np
 import pytest
+from helpers import depot_graph, save_graph
 
 from shardtrain.cli import main
-from helpers import depot_graph, save_graph
 
 QUICK = ["--epochs", "2", "--hidden", "8", "--quiet", "--timeout", "20"]
 W2 = ["--workers", "2", "--method", "random"]

@@ -132,6 +132,7 @@ def test_load_assignment_bad_npy(tmp_path):
 def test_metis_result_far_off_balance_is_retried_then_refused(blocks, monkeypatch):
     # common practice: a partitioner's output is checked, not trusted. Fake METIS answers.
     import pymetis
+
     from shardtrain.errors import RunError
     _, g = blocks
     n, calls = g.num_vertices, []

@@ -153,8 +153,10 @@ def test_model_api_partitioned_in_threads_equals_the_reference():
         ids = owned[p]
         params = model.glorot_init(dims, settings.seed, np.float64, True)
         adam = model.Adam(params, settings.lr)
-        prop = lambda l, m: a_hat[ids] @ gather(p, m)
-        prop_t = lambda l, g: a_hat[:, ids].T @ gather(p, g)
+        def prop(l, m):
+            return a_hat[ids] @ gather(p, m)
+        def prop_t(l, g):
+            return a_hat[:, ids].T @ gather(p, g)
 
         def allreduce(flat):
             board[("g", p)] = flat.copy()

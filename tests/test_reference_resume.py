@@ -17,6 +17,7 @@ import time
 
 import numpy as np
 import pytest
+from helpers import depot_graph, save_graph
 
 from shardtrain import checkpoint as ck
 from shardtrain import model
@@ -24,7 +25,6 @@ from shardtrain.cli import main
 from shardtrain.graph import fingerprint
 from shardtrain.reference import model_dims, train_reference
 from shardtrain.settings import TrainSettings
-from helpers import depot_graph, save_graph
 
 SETTINGS = TrainSettings(layers=2, hidden=8, dropout=0.5, lr=0.01, weight_decay=5e-4,
                          epochs=7, seed=5, dtype="float64", bias=True)

@@ -8,8 +8,13 @@ import threading
 import numpy as np
 import pytest
 
-from shardtrain.transport.ring import (ring_allreduce, ring_chunks, ring_frames,
-                                      ring_send_elements, ring_steps)
+from shardtrain.transport.ring import (
+    ring_allreduce,
+    ring_chunks,
+    ring_frames,
+    ring_send_elements,
+    ring_steps,
+)
 
 KS = (1, 2, 3, 5, 8)
 SIZES = (0, 1, 2, 4, 7, 1000, 10_007)     # odd sizes, and sizes below k

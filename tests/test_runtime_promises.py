@@ -25,9 +25,9 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from helpers import depot_graph, launch_mpi, processes_with_token, save_graph
 
 from shardtrain.cli import main
-from helpers import depot_graph, launch_mpi, processes_with_token, save_graph
 
 K = 3
 QUICK = ["--epochs", "2", "--hidden", "4", "--quiet", "--timeout", "30"]

@@ -1,5 +1,5 @@
-"""Static checks run as part of the suite: the type checker, configured in pyproject.toml
-([tool.mypy]), must pass on the whole package."""
+"""Static checks run as part of the suite: the type checker and the linter, configured in
+pyproject.toml ([tool.mypy], [tool.ruff]), must pass."""
 from __future__ import annotations
 
 import importlib.util
@@ -52,3 +52,28 @@ def test_mypy_config_catches_optional_misuse_in_untyped_code(tmp_path):
     assert res.returncode == 1, output
     assert '"None" of "str | None" has no attribute "strip"' in output, output
     assert 'Unused "type: ignore" comment' in output, output
+
+
+needs_ruff = pytest.mark.skipif(importlib.util.find_spec("ruff") is None,
+                                reason="ruff is not installed (it is in the `test` extra)")
+
+
+@needs_ruff
+def test_ruff_passes_on_the_repository():
+    # lint and import order ([tool.ruff] in pyproject.toml) over the package, tests and
+    # benchmarks
+    res = subprocess.run([sys.executable, "-m", "ruff", "check", "--config",
+                          str(ROOT / "pyproject.toml"), "shardtrain", "tests", "benchmarks"],
+                         cwd=ROOT, capture_output=True, text=True, timeout=120)
+    assert res.returncode == 0, f"ruff reported:\n{res.stdout}{res.stderr}"
+
+
+@needs_ruff
+def test_ruff_config_catches_an_unused_import(tmp_path):
+    # the check is live: the same configuration flags a planted unused import
+    bad = tmp_path / "planted.py"
+    bad.write_text("import os\n")
+    res = subprocess.run([sys.executable, "-m", "ruff", "check", "--config",
+                          str(ROOT / "pyproject.toml"), str(bad)],
+                         cwd=ROOT, capture_output=True, text=True, timeout=120)
+    assert res.returncode != 0 and "F401" in res.stdout, res.stdout + res.stderr

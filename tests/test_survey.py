@@ -3,14 +3,16 @@ from __future__ import annotations
 
 import csv
 import json
+
 import networkx as nx
 import numpy as np
 import pytest
 
+from shardtrain import survey as sv
 from shardtrain.graph import Graph, csr_from_edges
 from shardtrain.schedule import layer_dims, layer_hops
 from shardtrain.shards import build_shards
-from shardtrain import survey as sv
+
 
 def graph_from_nx(g: nx.Graph, input_dim: int | None = None, classes: int = 0,
                   seed: int = 0) -> Graph:
@@ -308,8 +310,9 @@ def test_survey_plan_equals_the_trainers_measured_payload(tmp_path):
     # The trained run's byte counters are the outside measurement here: the survey's plan
     # (id-order shards, no process started) must predict them exactly.
     pytest.importorskip("shardtrain.coordinator")
-    from shardtrain.settings import TrainSettings
     from helpers import depot_graph, run_partitioned
+
+    from shardtrain.settings import TrainSettings
 
     graph = depot_graph(n=300, classes=3, features=20, seed=8)
     a = np.random.default_rng(8).integers(0, 3, 300)

@@ -5,10 +5,10 @@ shards and the exchange schedule alone, without running anything."""
 from __future__ import annotations
 
 import numpy as np
+from helpers import depot_graph, run_partitioned
 
 from shardtrain.settings import TrainSettings
 from shardtrain.transport.pipes import PIPE_BYTES
-from helpers import depot_graph, run_partitioned
 
 
 def test_measured_payload_equals_predicted_with_frames_beyond_the_pipe_buffer(tmp_path):

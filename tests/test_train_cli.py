@@ -10,7 +10,6 @@ import json
 
 import numpy as np
 import pytest
-
 from helpers import depot_graph, save_graph
 
 WORKER_KEYS = {"worker", "compute_s", "exchange_s", "allreduce_s", "wait_s", "bytes_sent",

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from helpers import depot_graph, run_partitioned
 
 from shardtrain import model
 from shardtrain.coordinator import train_partitioned
@@ -17,7 +18,6 @@ from shardtrain.graph import Graph
 from shardtrain.reference import train_reference
 from shardtrain.settings import TrainSettings
 from shardtrain.shards import build_shards
-from helpers import depot_graph, run_partitioned
 
 RTOL = 1e-9
 WORKER_COUNTS = (2, 3, 7)      # and 1, below: with one worker every method is the same
@@ -126,6 +126,7 @@ def load_shard_then_die(folder, worker: int):
     """A shard loader for worker processes: worker 1 is killed right after loading."""
     import os
     import signal
+
     from shardtrain.shards import load_shard
 
     shard = load_shard(folder, worker)

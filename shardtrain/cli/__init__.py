@@ -7,8 +7,14 @@ import argparse
 import importlib
 import sys
 
-from shardtrain.errors import (EXIT_BAD_INPUT, EXIT_INTERRUPTED, EXIT_RUN_FAILED,
-                               InputError, Interrupted, RunError)
+from shardtrain.errors import (
+    EXIT_BAD_INPUT,
+    EXIT_INTERRUPTED,
+    EXIT_RUN_FAILED,
+    InputError,
+    Interrupted,
+    RunError,
+)
 
 # command name -> module under shardtrain.cli, in the order `--help` lists them
 COMMANDS = {

@@ -11,8 +11,14 @@ from __future__ import annotations
 import sys
 
 from shardtrain.cli.common import int_type
-from shardtrain.demo import (DEFAULT_EPOCHS, DEFAULT_VERTICES, QUICK_EPOCHS, QUICK_VERTICES,
-                             DemoSettings, run_demo)
+from shardtrain.demo import (
+    DEFAULT_EPOCHS,
+    DEFAULT_VERTICES,
+    QUICK_EPOCHS,
+    QUICK_VERTICES,
+    DemoSettings,
+    run_demo,
+)
 from shardtrain.tables import human_bytes, human_seconds
 
 

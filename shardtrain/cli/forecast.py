@@ -15,12 +15,16 @@ import math
 import sys
 from pathlib import Path
 
+from shardtrain.cli.common import (
+    add_graph_arguments,
+    add_plan_shape_arguments,
+    load_graph_from_args,
+    parse_int_list,
+    parse_name_list,
+)
 from shardtrain.errors import InputError
 from shardtrain.partition import DEFAULT_COMPARED
 from shardtrain.tables import format_table, human_seconds
-
-from shardtrain.cli.common import (add_graph_arguments, add_plan_shape_arguments,
-                                   load_graph_from_args, parse_int_list, parse_name_list)
 
 DEFAULT_LINKS = "1,10,25,100"
 DEFAULT_WORKERS = "2,4,8,16"

@@ -1,4 +1,5 @@
-"""Write one self-contained HTML page with the tables and pictures of survey, run and forecast JSONs.
+"""Write one self-contained HTML page with the tables and pictures of survey, run and
+forecast JSONs.
 
 Give JSON files (from `survey --json`, `train --json`, `forecast --json`) and/or folders
 holding them (e.g. survey.json, run.json, forecast.json); which kind each is, is read off its

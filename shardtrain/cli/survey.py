@@ -12,11 +12,16 @@ import io
 import sys
 from pathlib import Path
 
-from shardtrain.cli.common import (add_graph_arguments, add_plan_shape_arguments,
-                                   load_graph_from_args, parse_int_list, parse_name_list)
+from shardtrain.cli.common import (
+    add_graph_arguments,
+    add_plan_shape_arguments,
+    load_graph_from_args,
+    parse_int_list,
+    parse_name_list,
+)
 from shardtrain.errors import InputError
-from shardtrain.partition import DEFAULT_COMPARED
 from shardtrain.files import check_paths, write_json_atomic, write_text_atomic
+from shardtrain.partition import DEFAULT_COMPARED
 from shardtrain.survey import SurveySettings, check_plans, survey
 from shardtrain.tables import format_table, human_bytes
 

@@ -15,7 +15,6 @@ from shardtrain.files import check_paths, save_npz_atomic
 from shardtrain.synth import edge_array, parcel_network, same_role_fraction
 
 
-
 def add_arguments(parser) -> None:
     parser.add_argument("out", metavar="OUT.npz", help="bundle to write")
     parser.add_argument("--vertices", type=int_type("--vertices"), default=10_000,
@@ -27,7 +26,8 @@ def add_arguments(parser) -> None:
                              "returns)")
     parser.add_argument("--features", type=int_type("--features"), default=32,
                         help="statistics per depot (default 32)")
-    parser.add_argument("--seed", type=int_type("--seed"), default=0, help="random seed (default 0)")
+    parser.add_argument("--seed", type=int_type("--seed"), default=0,
+                        help="random seed (default 0)")
     parser.add_argument("--homophily", type=float_type("--homophily"), default=0.8,
                         help="fraction of routes between depots of the same role (default 0.8)")
     parser.add_argument("--degree-exponent", type=float_type("--degree-exponent"), default=2.5,

@@ -29,8 +29,7 @@ from pathlib import Path
 import numpy as np
 
 from shardtrain import rundoc
-from shardtrain.cli.common import add_graph_arguments, load_graph_from_args, \
-    positive_int_type
+from shardtrain.cli.common import add_graph_arguments, load_graph_from_args, positive_int_type
 from shardtrain.errors import InputError, Interrupted
 from shardtrain.settings import DTYPES, TrainSettings, max_threads
 

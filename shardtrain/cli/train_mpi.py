@@ -11,8 +11,13 @@ from __future__ import annotations
 import sys
 import traceback
 
-from shardtrain.errors import EXIT_BAD_INPUT, EXIT_INTERRUPTED, EXIT_RUN_FAILED, InputError, \
-    RunError
+from shardtrain.errors import (
+    EXIT_BAD_INPUT,
+    EXIT_INTERRUPTED,
+    EXIT_RUN_FAILED,
+    InputError,
+    RunError,
+)
 
 STOP_TIMEOUT_S = 60.0
 UNSUPPORTED = ("checkpoint", "resume", "slow_worker", "emulate_link")

@@ -58,7 +58,7 @@ NAP_MAX_S = 1e-3       # ... up to this (the worst added latency once data arriv
 
 
 def _mpi():
-    from mpi4py import MPI       # imported late: the pipes path must not need mpi4py
+    from mpi4py import MPI  # imported late: the pipes path must not need mpi4py
     return MPI
 
 
