@@ -229,6 +229,9 @@ def test_cli_writes_json_and_csv(run_cli, small_npz, tmp_path):
     (["--workers", "301"], "--workers"),
     (["--workers", "2,x"], "--workers"),
     (["--layers", "0"], "--layers"),
+    (["--hidden", "x"], "--hidden"),
+    (["--classes", "-3"], "--classes"),     # refused even when the graph has labels
+    (["--imbalance", "lots"], "--imbalance"),
 ])
 def test_cli_bad_options(run_cli, small_npz, tmp_path, args, option):
     out_json, out_csv = tmp_path / "bad.json", tmp_path / "bad.csv"

@@ -27,13 +27,15 @@ def add_graph_arguments(parser: argparse.ArgumentParser) -> None:
 def add_plan_shape_arguments(parser: argparse.ArgumentParser) -> None:
     """The model shape and partition options a survey or forecast plans for (not trained)."""
     add = parser.add_argument
-    add("--layers", type=int, default=2, help="GCN layers (default 2)")
-    add("--hidden", type=int, default=16, help="hidden width (default 16)")
+    add("--layers", type=positive_int_type("--layers"), default=2, help="GCN layers (default 2)")
+    add("--hidden", type=positive_int_type("--hidden"), default=16,
+        help="hidden width (default 16)")
     add("--dtype", default="float32", help="training dtype, float32 or float64 (default float32)")
     add("--bias", action="store_true", help="the model has biases (more to all-reduce)")
-    add("--classes", type=int, default=None, metavar="C",
+    add("--classes", type=positive_int_type("--classes"), default=None, metavar="C",
         help="number of classes, when the graph has no labels")
-    add("--imbalance", type=float, default=0.03, help="METIS load imbalance tolerance (0.03)")
+    add("--imbalance", type=float_type("--imbalance"), default=0.03,
+        help="METIS load imbalance tolerance (0.03)")
 
 
 def load_graph_from_args(args: argparse.Namespace) -> LoadedGraph:
