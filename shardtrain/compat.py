@@ -63,31 +63,38 @@ def _tiny_csr(dtype) -> sp.csr_matrix:
                           np.array([0, 2, 2, 5], dtype=np.int32)), shape=(3, 4))
 
 
+def _checked_kernel(name: str, shim: str, differs):
+    """scipy.sparse._sparsetools.<name> when it is there and `differs(fn, dtype)` finds it
+    agreeing with the public path on a tiny input in float32 and float64; else None, with
+    the reason recorded for `shim` (`_fall_back`)."""
+    fn, why = _private(name)
+    if fn is not None:
+        try:
+            why = next((f"{name} gave {d} ({t.__name__})" for t in (np.float32, np.float64)
+                        if (d := differs(fn, t))), "")
+        except Exception as exc:     # a changed signature raises TypeError/ValueError
+            why = f"{name} failed on a 3x4 check: {type(exc).__name__}: {exc}"
+    if why:
+        _fall_back(shim, why)
+        return None
+    return fn
+
+
 # ------------------------------------------------------------------ out += a @ x
 # Remove when scipy offers a public sparse @ dense product into an existing array (out=).
 
-def _check_matvecs(fn) -> str:
-    """'' when fn accumulates like the public product on a tiny input, else why not."""
-    try:
-        for dtype in (np.float32, np.float64):
-            a = _tiny_csr(dtype)
-            x = np.arange(8, dtype=dtype).reshape(4, 2) - 3
-            out = np.arange(6, dtype=dtype).reshape(3, 2)
-            want = out + a @ x
-            fn(a.shape[0], a.shape[1], x.shape[1], a.indptr, a.indices, a.data,
-               x.reshape(-1), out.reshape(-1))
-            if out.tobytes() != want.tobytes():
-                return f"csr_matvecs gave another result than y + a @ x ({dtype.__name__})"
-    except Exception as exc:     # a changed signature raises TypeError/ValueError
-        return f"csr_matvecs failed on a 3x4 check: {type(exc).__name__}: {exc}"
-    return ""
+def _matvecs_differs(fn, dtype) -> str:
+    """'' when fn accumulates like the public product y + a @ x on a tiny input."""
+    a = _tiny_csr(dtype)
+    x = np.arange(8, dtype=dtype).reshape(4, 2) - 3
+    out = np.arange(6, dtype=dtype).reshape(3, 2)
+    want = out + a @ x
+    fn(a.shape[0], a.shape[1], x.shape[1], a.indptr, a.indices, a.data, x.reshape(-1),
+       out.reshape(-1))
+    return "" if out.tobytes() == want.tobytes() else "another result than y + a @ x"
 
 
-_csr_matvecs, _why = _private("csr_matvecs")
-_why = _why or _check_matvecs(_csr_matvecs)
-if _why:
-    _csr_matvecs = None
-    _fall_back("add_csr_product", _why)
+_csr_matvecs = _checked_kernel("csr_matvecs", "add_csr_product", _matvecs_differs)
 
 
 def add_csr_product(a, x: np.ndarray, out: np.ndarray) -> None:
@@ -111,28 +118,17 @@ def add_csr_product(a, x: np.ndarray, out: np.ndarray) -> None:
 # ------------------------------------------------------------------ a[i, :] *= f[i]
 # Remove when scipy offers a public in-place row scaling of a CSR matrix.
 
-def _check_scale_rows(fn) -> str:
+def _scale_rows_differs(fn, dtype) -> str:
     """'' when fn scales rows like the public repeat-and-multiply on a tiny input."""
-    try:
-        for dtype in (np.float32, np.float64):
-            a = _tiny_csr(dtype)
-            factor = np.array([3, -2, 5], dtype=dtype)
-            want = a.data * np.repeat(factor, np.diff(a.indptr))
-            fn(a.shape[0], a.shape[1], a.indptr, a.indices, a.data, factor)
-            if a.data.tobytes() != want.tobytes():
-                return f"csr_scale_rows gave another result than the repeated factors " \
-                       f"({dtype.__name__})"
-    except Exception as exc:     # a changed signature raises TypeError/ValueError
-        return f"csr_scale_rows failed on a 3x4 check: {type(exc).__name__}: {exc}"
-    return ""
+    a = _tiny_csr(dtype)
+    factor = np.array([3, -2, 5], dtype=dtype)
+    want = a.data * np.repeat(factor, np.diff(a.indptr))
+    fn(a.shape[0], a.shape[1], a.indptr, a.indices, a.data, factor)
+    return "" if a.data.tobytes() == want.tobytes() else "another result than the " \
+        "repeated factors"
 
 
-_csr_scale_rows, _why = _private("csr_scale_rows")
-_why = _why or _check_scale_rows(_csr_scale_rows)
-if _why:
-    _csr_scale_rows = None
-    _fall_back("scale_csr_rows", _why)
-del _why
+_csr_scale_rows = _checked_kernel("csr_scale_rows", "scale_csr_rows", _scale_rows_differs)
 
 
 def scale_csr_rows(a: sp.csr_matrix, factor: np.ndarray) -> None:
