@@ -6,7 +6,7 @@
 The synthesized parcel network (seed 1, 6 roles), float64, 2 layers, split into metis
 shards. For each moment of an epoch (forward exchange, backward exchange, all-reduce,
 compute, checkpoint write), one worker is SIGKILLed there by the test-only fault hook
-(`shardtrain.faults`), which first writes the wall-clock time; the figure is the seconds
+(`shardtrain.testing.faults`), which first writes the wall-clock time; the figure is the seconds
 from that moment until train_partitioned raised its RunError, which it does after every
 worker has been stopped and joined: an upper bound of the detection time (goal: < 5 s).
 Then the killed run is resumed
@@ -40,15 +40,16 @@ def main() -> None:
     ap.add_argument("--epochs", type=int, default=6)
     args = ap.parse_args()
 
-    from shardtrain import checkpoint as ck
-    from shardtrain import faults, model
-    from shardtrain.coordinator import train_partitioned
+    from shardtrain.data.synth import parcel_network
     from shardtrain.errors import RunError
-    from shardtrain.partition import partition
-    from shardtrain.schedule import layer_dims
-    from shardtrain.settings import TrainSettings
-    from shardtrain.shards import build_shards, save_shards
-    from shardtrain.synth import parcel_network
+    from shardtrain.plan.partition import partition
+    from shardtrain.plan.schedule import layer_dims
+    from shardtrain.plan.shards import build_shards, save_shards
+    from shardtrain.testing import faults
+    from shardtrain.train import checkpoint as ck
+    from shardtrain.train import model
+    from shardtrain.train.coordinator import train_partitioned
+    from shardtrain.train.settings import TrainSettings
 
     k, epochs = args.workers, args.epochs
     settings = TrainSettings(hidden=args.hidden, epochs=epochs, dtype="float64", seed=3)

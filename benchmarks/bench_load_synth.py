@@ -46,8 +46,8 @@ def int_rows_to_text(rows: np.ndarray) -> bytes:
 
 
 def phase_synth(args, work: Path) -> dict:
+    from shardtrain.data.synth import edge_array, parcel_network
     from shardtrain.files import save_npz_atomic
-    from shardtrain.synth import edge_array, parcel_network
 
     baseline = peak_rss_bytes()   # interpreter + numpy/scipy, before any graph exists
     t0 = time.perf_counter()
@@ -76,7 +76,7 @@ def phase_synth(args, work: Path) -> dict:
 
 
 def phase_load(args, work: Path, name: str) -> dict:
-    from shardtrain.io import load_graph
+    from shardtrain.data.readers import load_graph
 
     baseline = peak_rss_bytes()
     t0 = time.perf_counter()
@@ -90,13 +90,13 @@ def phase_load(args, work: Path, name: str) -> dict:
 
 def phase_readers(args, work: Path) -> dict:
     """The two text readers on the same file, side by side."""
-    from shardtrain import io as sio
+    from shardtrain.data import textscan
 
     path = work / "g.txt"
     t0 = time.perf_counter()
-    fast = sio._TextTable(path, kind="int", columns=2, what="edges")
+    fast = textscan.TextTable(path, kind="int", columns=2, what="edges")
     t1 = time.perf_counter()
-    scan = sio._TextTable.__new__(sio._TextTable)
+    scan = textscan.TextTable.__new__(textscan.TextTable)
     scan.path, scan.kind, scan.columns, scan.what, scan.header = path, "int", 2, "edges", None
     values, _ = scan._read()
     t2 = time.perf_counter()

@@ -82,12 +82,12 @@ def main() -> None:
     ap.add_argument("--mpiexec", help="MPI launcher (default: mpiexec beside python or on PATH)")
     args = ap.parse_args()
 
-    from shardtrain.coordinator import train_partitioned
+    from shardtrain.data.synth import parcel_network
     from shardtrain.files import write_json_atomic
-    from shardtrain.partition import partition
-    from shardtrain.settings import TrainSettings
-    from shardtrain.shards import build_shards, save_shards
-    from shardtrain.synth import parcel_network
+    from shardtrain.plan.partition import partition
+    from shardtrain.plan.shards import build_shards, save_shards
+    from shardtrain.train.coordinator import train_partitioned
+    from shardtrain.train.settings import TrainSettings
 
     settings = TrainSettings(layers=2, hidden=args.hidden, dropout=0.5, epochs=args.epochs,
                              dtype="float32")

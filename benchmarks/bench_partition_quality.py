@@ -3,7 +3,7 @@
 Three graphs:
 - the 64 x 64 grid at 2 workers (the optimal bisection cuts 64 edges: known result, from
   memory): `metis` against pymetis's default call and its k-way call;
-- the parcel network (shardtrain.synth.parcel_network, 20 routes per depot on average) at
+- the parcel network (shardtrain.data.synth.parcel_network, 20 routes per depot on average) at
   2, 4, 8, 16, 32, 64 workers: `metis` against `fennel`, edge cut and both imbalances;
 - a power-law graph of about 325 k vertices and 2.7 M edges at 64 workers, synthesised with a
   reference generator (networkx.expected_degree_graph, the Chung & Lu 2002 model, expected
@@ -42,7 +42,7 @@ def _imbalances(graph, a: np.ndarray, k: int) -> dict:
 
 
 def _row(graph, label: str, k: int, fn) -> dict:
-    from shardtrain.shards import edge_cut
+    from shardtrain.plan.shards import edge_cut
 
     load = os.getloadavg()[0]
     start, cpu = time.perf_counter(), time.process_time()
@@ -72,7 +72,7 @@ def _pymetis(graph, k: int, recursive: bool | None):
 
 
 def _graph_of_edges(e: np.ndarray, n: int):
-    from shardtrain.graph import Graph, csr_from_edges
+    from shardtrain.data.graph import Graph, csr_from_edges
 
     e = e[e[:, 0] != e[:, 1]]
     indptr, indices, _ = csr_from_edges(e[:, 0], e[:, 1], n)
@@ -93,8 +93,8 @@ def main(argv=None) -> int:
 
     import networkx as nx
 
-    from shardtrain.partition import partition_plan
-    from shardtrain.synth import parcel_network
+    from shardtrain.data.synth import parcel_network
+    from shardtrain.plan.partition import partition_plan
 
     def ours(graph, method, k):
         return lambda: partition_plan(graph, method, k, seed=args.seed)
@@ -129,9 +129,11 @@ def main(argv=None) -> int:
             f = _row(g, "fennel", k, ours(g, "fennel", k))
             table.append({"workers": k, "metis": m, "fennel": f,
                           "metis_cut_over_fennel": round(m["edge_cut"] / f["edge_cut"], 4),
-                          "metis_not_worse": bool(m["edge_cut"] <= f["edge_cut"])})
+                          "metis_not_worse":
+                              bool(m["edge_cut"] <= f["edge_cut"])})
         doc["parcel"].append({"vertices": g.num_vertices, "edges": g.num_edges,
-                              "generator": "shardtrain.synth.parcel_network(n, 20, 6, 8, seed)",
+                              "generator":
+                                  "shardtrain.data.synth.parcel_network(n, 20, 6, 8, seed)",
                               "seed": args.seed, "table": table,
                               "goal_met": all(r["metis_not_worse"] for r in table)})
         del g

@@ -26,7 +26,7 @@ from pathlib import Path
 import numpy as np
 
 from shardtrain.files import atomic_output, json_text
-from shardtrain.profile import Profile
+from shardtrain.transport.meter import Profile
 from shardtrain.transport.pipes import PIPE_BYTES, PipeTransport, _grow_pipe, make_pipe_mesh
 
 MIB = 1 << 20

@@ -16,13 +16,13 @@ import time
 import numpy as np
 from threadpoolctl import threadpool_limits
 
-from shardtrain import model
+from shardtrain.data.graph import normalized_adjacency
+from shardtrain.data.synth import parcel_network
 from shardtrain.files import write_json_atomic
-from shardtrain.graph import normalized_adjacency
-from shardtrain.reference import locality_order, model_dims, train_reference
-from shardtrain.schedule import layer_hops
-from shardtrain.settings import TrainSettings
-from shardtrain.synth import parcel_network
+from shardtrain.plan.schedule import layer_hops
+from shardtrain.train import model
+from shardtrain.train.reference import locality_order, model_dims, train_reference
+from shardtrain.train.settings import TrainSettings
 
 
 def _timed(fn, repeat):

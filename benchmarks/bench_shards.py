@@ -67,9 +67,9 @@ def main(argv=None) -> int:
                     help="METHOD:K whose shards are built in both orders for the product test")
     args = ap.parse_args(argv)
 
-    from shardtrain.partition import partition
-    from shardtrain.shards import build_shards, edge_cut, shard_stats
-    from shardtrain.synth import parcel_network
+    from shardtrain.data.synth import parcel_network
+    from shardtrain.plan.partition import partition
+    from shardtrain.plan.shards import build_shards, edge_cut, shard_stats
 
     graph, synth_s = _timed(parcel_network, args.vertices, args.avg_degree, 6, 8, args.seed)
     n, m = graph.num_vertices, graph.num_edges
@@ -133,7 +133,7 @@ def main(argv=None) -> int:
         "machine": {"python": platform.python_version(), "cpus": os.cpu_count(),
                     "load_average_1min_start": _LOAD_START},
         "graph": {"vertices": n, "edges": m, "synth_s": round(synth_s, 2),
-                  "generator": "shardtrain.synth.parcel_network", "seed": args.seed},
+                  "generator": "shardtrain.data.synth.parcel_network", "seed": args.seed},
         "plans": plans,
         "order_check": order_check,
         "build_edges_per_s_min": min(rates),

@@ -29,9 +29,9 @@ import numpy as np
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 os.environ.setdefault("OMP_NUM_THREADS", "1")
 
-from shardtrain import survey as sv  # noqa: E402
 from shardtrain.files import write_json_atomic  # noqa: E402
-from shardtrain.schedule import layer_dims, layer_hops  # noqa: E402
+from shardtrain.plan import survey as sv  # noqa: E402
+from shardtrain.plan.schedule import layer_dims, layer_hops  # noqa: E402
 
 GOAL_TOTAL_S = 180.0
 GOAL_BUILD_EDGES_PER_S = 5e6
@@ -73,8 +73,8 @@ SHARD_ARRAYS = ("owned", "halo", "halo_ptr", "send_idx", "send_ptr", "features",
 
 def _write_memory_shard(path: str, vertices: int, edges: int, features: int) -> None:
     """One worker's shard of a random graph, saved as plain arrays (as a worker loads it)."""
-    from shardtrain.graph import Graph, csr_from_edges
-    from shardtrain.shards import build_shards
+    from shardtrain.data.graph import Graph, csr_from_edges
+    from shardtrain.plan.shards import build_shards
 
     rng = np.random.default_rng(0)
     ip, ix, _ = csr_from_edges(rng.integers(0, vertices, edges), rng.integers(0, vertices, edges),
@@ -96,10 +96,10 @@ def _memory_check_child(path: str, hidden: int, dtype: str) -> None:
 
     import scipy.sparse as sp
 
-    from shardtrain import worker
-    from shardtrain.profile import Profile
-    from shardtrain.settings import TrainSettings
-    from shardtrain.shards import Shard
+    from shardtrain.plan.shards import Shard
+    from shardtrain.train import worker
+    from shardtrain.train.settings import TrainSettings
+    from shardtrain.transport.meter import Profile
 
     with np.load(path, allow_pickle=False) as z:
         a = {key: z[key] for key in z.files}
@@ -200,7 +200,7 @@ def main(argv=None) -> int:
     workers = [int(x) for x in args.workers.split(",")]
     methods = args.methods.split(",") if args.methods else list(DEFAULT_METHODS)
 
-    from shardtrain.synth import parcel_network
+    from shardtrain.data.synth import parcel_network
 
     t = time.perf_counter()
     graph = parcel_network(vertices=args.vertices, avg_degree=args.avg_degree,

@@ -38,12 +38,12 @@ CLASSES = 6
 
 
 def _graph(args):
-    from shardtrain.synth import parcel_network
+    from shardtrain.data.synth import parcel_network
     return parcel_network(args.vertices, args.avg_degree, CLASSES, args.features, seed=1)
 
 
 def _settings(args):
-    from shardtrain.settings import TrainSettings
+    from shardtrain.train.settings import TrainSettings
     return TrainSettings(layers=2, hidden=args.hidden, dropout=0.5, epochs=args.epochs,
                          dtype="float32")
 
@@ -58,9 +58,9 @@ def _reference_child(args, conn) -> None:
         os.environ[name] = "1"
     from threadpoolctl import threadpool_limits
     threadpool_limits(1)
-    from shardtrain.reference import train_reference
+    from shardtrain.train.reference import train_reference
     graph = _graph(args)
-    from shardtrain.worker import peak_rss_bytes
+    from shardtrain.train.worker import peak_rss_bytes
     base = peak_rss_bytes()
     marks = [time.process_time()]
     result = train_reference(graph, _settings(args),
@@ -79,7 +79,7 @@ def _torch_child(args, conn) -> None:
         return
     import numpy as np
 
-    from shardtrain.graph import normalized_adjacency
+    from shardtrain.data.graph import normalized_adjacency
     torch.set_num_threads(2)
     graph = _graph(args)
     a = normalized_adjacency(graph).tocoo()
@@ -163,7 +163,7 @@ def _exchange_child(rank: int, ends, rows: int, width: int, repeats: int, conn) 
     """One side of the transport-only exchange: both sides send and receive a frame."""
     import numpy as np
 
-    from shardtrain.profile import Profile
+    from shardtrain.transport.meter import Profile
     from shardtrain.transport.pipes import PipeTransport
     t = PipeTransport(rank, 2, ends, Profile(rank), timeout_s=60)
     out = np.ones((rows, width), np.float32)
@@ -205,16 +205,16 @@ def _transport_only(rows: int, width: int, repeats: int = 12) -> dict:
 def _halo_copy_bytes(shards, dims, itemsize: int) -> int:
     """Bytes of the buffers that exist only because the graph is split: per worker, the
     received halo rows and the send rows, at every hop's forward and backward width."""
-    from shardtrain.schedule import layer_hops
+    from shardtrain.plan.schedule import layer_hops
     widths = sum(h.forward_width + h.backward_width for h in layer_hops(dims))
     return sum((s.num_halo + int(s.send_idx.shape[0])) * widths * itemsize for s in shards)
 
 
 def _partitioned(args, graph, k: int) -> dict:
-    from shardtrain.coordinator import train_partitioned
-    from shardtrain.partition import partition
-    from shardtrain.reference import model_dims
-    from shardtrain.shards import build_shards, save_shards
+    from shardtrain.plan.partition import partition
+    from shardtrain.plan.shards import build_shards, save_shards
+    from shardtrain.train.coordinator import train_partitioned
+    from shardtrain.train.reference import model_dims
 
     with tempfile.TemporaryDirectory(prefix="bench-train-") as tmp:
         t0 = time.perf_counter()

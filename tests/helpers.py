@@ -13,7 +13,7 @@ import time
 
 import numpy as np
 
-from shardtrain.graph import Graph, csr_from_edges
+from shardtrain.data.graph import Graph, csr_from_edges
 
 # ---------------------------------------------------------------- graphs
 
@@ -81,8 +81,8 @@ def save_graph(path, g: Graph) -> None:
 
 def run_partitioned(tmp_path, graph, assignment, k, settings, **kw):
     """Build the shards, write them as a shard directory and train from it."""
-    from shardtrain.coordinator import train_partitioned
-    from shardtrain.shards import build_shards, save_shards
+    from shardtrain.plan.shards import build_shards, save_shards
+    from shardtrain.train.coordinator import train_partitioned
 
     shards = build_shards(graph, assignment, k)
     save_shards(tmp_path / "shards", shards, meta={"method": "test", "seed": 0})
@@ -139,7 +139,7 @@ def processes_with_token(token: str) -> list[int]:
 
 def model_doc(dims, dtype="float32"):
     """The `model` part of a survey document for layer shapes `dims`."""
-    from shardtrain.schedule import layer_hops
+    from shardtrain.plan.schedule import layer_hops
     hops = layer_hops(dims)
     return {"dtype": dtype, "dims": [list(d) for d in dims],
             "parameters": sum(a * b for a, b in dims),

@@ -259,7 +259,7 @@ def test_a_calibration_cache_is_kept_replaced_or_refused(inputs, tmp_path):
     """--calibration semantics: missing -> time and write; ours for this dtype -> used;
     ours for another dtype or version -> re-timed and replaced; anything else refused
     (the cases above). The calibration is a dict of our own making (no outside source)."""
-    from shardtrain.calibrate import CALIBRATION_VERSION, from_flops, read_calibration
+    from shardtrain.forecast.calibrate import CALIBRATION_VERSION, from_flops, read_calibration
 
     assert read_calibration(tmp_path / "new.json", "float32") is None
     cal = dict(from_flops(1e9, "float32"), pipe={"bytes_per_s": 1e9})

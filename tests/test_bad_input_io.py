@@ -9,9 +9,9 @@ import re
 import numpy as np
 import pytest
 
+from shardtrain.data.readers import load_graph
 from shardtrain.errors import InputError
 from shardtrain.files import save_npz_atomic
-from shardtrain.io import load_graph
 
 
 def text(name, *lines):

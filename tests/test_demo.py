@@ -12,7 +12,7 @@ from types import SimpleNamespace
 import numpy as np
 import pytest
 
-from shardtrain import demo
+from shardtrain.demo import workflow as demo
 from shardtrain.errors import InputError, RunError
 
 OUTPUTS = ("parcel-network.npz", "survey.json", "run.json", "forecast.json", "report.html",

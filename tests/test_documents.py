@@ -35,7 +35,7 @@ def docs(tmp_path_factory):
                  "--checkpoint", str(d / "ck")]) == 0
     assert main(["train", str(d / "other.npz"), "--reference", *QUICK, "--json",
                  str(d / "other_run.json")]) == 0
-    from shardtrain.calibrate import from_flops
+    from shardtrain.forecast.calibrate import from_flops
     (d / "cal.json").write_text(json.dumps(from_flops(1e9, "float32")))
     loaded = {kind: json.loads((d / name).read_text()) for kind, name in (
         ("survey", "s.json"), ("forecast", "f.json"), ("run", "run.json"),

@@ -26,13 +26,13 @@ import numpy as np
 import pytest
 from helpers import depot_graph, digits_graphs, launch_mpi, mpiexec, save_graph
 
-from shardtrain import checkpoint as ck
-from shardtrain.coordinator import train_partitioned
-from shardtrain.graph import fingerprint
-from shardtrain.partition import partition
-from shardtrain.reference import model_dims, train_reference
-from shardtrain.settings import TrainSettings, max_threads
-from shardtrain.shards import build_shards, save_shards
+from shardtrain.data.graph import fingerprint
+from shardtrain.plan.partition import partition
+from shardtrain.plan.shards import build_shards, save_shards
+from shardtrain.train import checkpoint as ck
+from shardtrain.train.coordinator import train_partitioned
+from shardtrain.train.reference import model_dims, train_reference
+from shardtrain.train.settings import TrainSettings, max_threads
 
 RTOL = 1e-9
 EARLY = TrainSettings(epochs=40, lr=0.05, early_stop=3, dtype="float64", seed=0)
@@ -79,7 +79,7 @@ def test_val_loss_is_the_mean_cross_entropy_of_the_validation_vertices():
     settings = TrainSettings(epochs=6, dtype="float64", bias=True, seed=2)
     res = train_reference(graph, settings, reorder=False)
     # a plain dense forward of the final weights (no dropout): Â (H W) per layer
-    from shardtrain.graph import normalized_adjacency
+    from shardtrain.data.graph import normalized_adjacency
     a = normalized_adjacency(graph).toarray()
     h = graph.features.astype(np.float64)
     for l, (w, b) in enumerate(res.params):
@@ -147,7 +147,7 @@ def test_partitioned_run_stops_at_the_reference_epoch(k, digits_shards, early_re
 
 
 def _partitioned_plan(shard_dir, settings, folder, k):
-    from shardtrain.coordinator import model_dims_of, shard_dir_facts
+    from shardtrain.train.coordinator import model_dims_of, shard_dir_facts
 
     identity = ck.run_identity(settings, workers=k,
                                dims=model_dims_of(shard_dir_facts(shard_dir), settings),
@@ -296,7 +296,7 @@ def test_reference_runs_blas_on_the_threads_setting(digits):
 
 def test_a_worker_process_raises_blas_to_the_threads_setting():
     # the coordinator starts workers with the environment pinned to one thread
-    code = ("from shardtrain.worker import pin_blas_threads; pin_blas_threads(2); "
+    code = ("from shardtrain.train.worker import pin_blas_threads; pin_blas_threads(2); "
             "from threadpoolctl import threadpool_info; "
             "print(sorted({i['num_threads'] for i in threadpool_info() "
             "if i['user_api'] == 'blas'}))")
@@ -333,7 +333,7 @@ def test_mpi_run_stops_at_the_reference_epoch(digits_shards, early_reference, tm
 def test_the_stopping_rule_on_a_worked_sequence():
     # a worked example of the documented rule (patience without a tolerance: common
     # practice): equal is not an improvement, NaN never is, the first epoch always is
-    from shardtrain.stopping import EarlyStop
+    from shardtrain.train.stopping import EarlyStop
 
     params = [(np.zeros((1, 1)), None)]
     es = EarlyStop(2)

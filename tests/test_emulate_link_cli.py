@@ -91,14 +91,14 @@ def test_top_level_help_is_for_users(run_cli):
 
 
 def test_an_exchange_lasts_at_least_the_workers_own_copying():
-    """Hand-worked (the definitions in `shardtrain.forecast`): one layer 8 -> 2, worker 0
+    """Hand-worked (the definitions in `shardtrain.forecast.projection`): one layer 8 -> 2, worker 0
     sends 30 rows and receives 10, worker 1 the reverse, float32. With a transport that
     costs c CPU seconds per byte sent or received, each worker copies (30 + 10) x 2 x 4 = 320
     payload bytes plus two headers per exchange; when that takes longer than the link, the
     hop lasts the copying. Each ring step (2 of them, Patarasuk & Yuan 2009) sends and
     receives one 8-element chunk. With c = 0 the link alone is left."""
-    from shardtrain import forecast as fc
-    from shardtrain.calibrate import from_flops
+    from shardtrain.forecast import projection as fc
+    from shardtrain.forecast.calibrate import from_flops
 
     FAST = from_flops(1e9)
 

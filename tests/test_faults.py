@@ -7,7 +7,7 @@ arithmetic of IEEE float64: the resumed run repeats the very same operations in 
 order, so its weights must be identical, not merely close (common practice for
 deterministic checkpointing). The 5 s detection bound is issue 4's; it is a generous
 bound measured here, the figures themselves come from the benchmark-free report.
-Faults are injected with the test-only `shardtrain.faults` hook.
+Faults are injected with the test-only `shardtrain.testing.faults` hook.
 """
 from __future__ import annotations
 
@@ -24,12 +24,13 @@ import numpy as np
 import pytest
 from helpers import depot_graph, processes_with_token, save_graph
 
-from shardtrain import checkpoint as ck
-from shardtrain import faults, model
-from shardtrain.coordinator import train_partitioned
 from shardtrain.errors import RunError
-from shardtrain.settings import TrainSettings
-from shardtrain.shards import build_shards, save_shards
+from shardtrain.plan.shards import build_shards, save_shards
+from shardtrain.testing import faults
+from shardtrain.train import checkpoint as ck
+from shardtrain.train import model
+from shardtrain.train.coordinator import train_partitioned
+from shardtrain.train.settings import TrainSettings
 
 K = 3
 SETTINGS = TrainSettings(layers=2, hidden=8, dropout=0.5, lr=0.01, weight_decay=5e-4,

@@ -11,15 +11,15 @@ import numpy as np
 import pytest
 from helpers import frame_header_bytes, hand_plan, model_doc
 
-from shardtrain import forecast as fc
-from shardtrain.calibrate import from_flops, sparse_speed
 from shardtrain.errors import InputError
+from shardtrain.forecast import projection as fc
+from shardtrain.forecast.calibrate import from_flops, sparse_speed
 from shardtrain.transport.link import LinkModel
 
 # ---------------------------------------------------------------- helpers
 
 def _hop(layer, d_in, d_out):
-    from shardtrain.schedule import layer_hops
+    from shardtrain.plan.schedule import layer_hops
     h = layer_hops([(d_in, d_out)])[0]
     return {"layer": layer, "d_in": d_in, "d_out": d_out, "transform_first": h.transform_first,
             "forward_width": h.forward_width, "backward_width": h.backward_width}
@@ -127,9 +127,9 @@ def test_send_rows_solved_from_pair_bytes():
 
 def _survey_of_graph(graph, ks, settings=None):
     """Survey 'range' plans (contiguous blocks) of `graph` for each k."""
-    if importlib.util.find_spec("shardtrain.partition") is None:   # until it lands
-        sys.modules.setdefault("shardtrain.partition", types.SimpleNamespace(METHODS={}))
-    from shardtrain.survey import SurveySettings, survey
+    if importlib.util.find_spec("shardtrain.plan.partition") is None:   # until it lands
+        sys.modules.setdefault("shardtrain.plan.partition", types.SimpleNamespace(METHODS={}))
+    from shardtrain.plan.survey import SurveySettings, survey
     settings = settings or SurveySettings(layers=2, hidden=16)
     plans, head = [], None
     n = graph.num_vertices
@@ -143,7 +143,7 @@ def _survey_of_graph(graph, ks, settings=None):
 @pytest.fixture(scope="module")
 def grid_survey():
     # a 40 x 40 grid from networkx (a reference library), 4 classes, 12 features
-    from shardtrain.graph import Graph, csr_from_edges
+    from shardtrain.data.graph import Graph, csr_from_edges
     g = nx.convert_node_labels_to_integers(nx.grid_2d_graph(40, 40))
     e = np.array(g.edges(), dtype=np.int64)
     n = g.number_of_nodes()
@@ -307,8 +307,8 @@ def test_shard_step_is_measured_on_the_workers_own_code(grid_survey, tmp_path):
     """calibrate.shard_step_seconds runs the worker's training loop on a shard of the
     networkx 40 x 40 grid: one warm-up epoch dropped, positive CPU seconds for the step
     and the evaluation forward (no timing claim, only the shape of the result)."""
-    from shardtrain.calibrate import shard_step_seconds
-    from shardtrain.settings import TrainSettings
+    from shardtrain.forecast.calibrate import shard_step_seconds
+    from shardtrain.train.settings import TrainSettings
 
     shards = _grid_shards(2)
     out = shard_step_seconds(shards[1], TrainSettings(hidden=16), 4, epochs=3)
@@ -322,7 +322,7 @@ def test_shard_step_is_measured_on_the_workers_own_code(grid_survey, tmp_path):
 
 def _grid_graph():
     # the 40 x 40 grid of networkx (a reference library), 4 classes, 12 features
-    from shardtrain.graph import Graph, csr_from_edges
+    from shardtrain.data.graph import Graph, csr_from_edges
     g = nx.convert_node_labels_to_integers(nx.grid_2d_graph(40, 40))
     e = np.array(g.edges(), dtype=np.int64)
     n = g.number_of_nodes()
@@ -333,7 +333,7 @@ def _grid_graph():
 
 
 def _grid_shards(k):
-    from shardtrain.shards import build_shards
+    from shardtrain.plan.shards import build_shards
     graph = _grid_graph()
     n = graph.num_vertices
     return build_shards(graph, (np.arange(n) * k // n).astype(np.int64), k)
@@ -344,10 +344,10 @@ def test_an_emulated_run_is_never_faster_than_its_link_alone(grid_survey, tmp_pa
     call began (transport/link.py), so each worker's training step lasts at least the sum
     of its own calls' link times: the forecast of the same plan with free compute and no
     per-call cost is a lower bound of every measured epoch_s."""
-    from shardtrain.coordinator import train_partitioned
-    from shardtrain.graph import fingerprint
-    from shardtrain.settings import TrainSettings
-    from shardtrain.shards import save_shards
+    from shardtrain.data.graph import fingerprint
+    from shardtrain.plan.shards import save_shards
+    from shardtrain.train.coordinator import train_partitioned
+    from shardtrain.train.settings import TrainSettings
 
     k, gbps, lat = 2, 0.02, 2000.0
     graph = _grid_graph()
@@ -386,10 +386,10 @@ def test_halo_row_moves_are_counted_at_their_own_speeds(monkeypatch):
 def test_all_shards_are_timed_at_once_one_process_each(tmp_path):
     """calibrate.shards_step_seconds: one result per shard of the networkx grid, in worker
     order, each from its own process (structure only, no timing claim)."""
-    from shardtrain.calibrate import shards_step_seconds
-    from shardtrain.graph import fingerprint
-    from shardtrain.settings import TrainSettings
-    from shardtrain.shards import save_shards
+    from shardtrain.data.graph import fingerprint
+    from shardtrain.forecast.calibrate import shards_step_seconds
+    from shardtrain.plan.shards import save_shards
+    from shardtrain.train.settings import TrainSettings
 
     graph = _grid_graph()
     save_shards(tmp_path / "s", _grid_shards(2),

@@ -6,7 +6,8 @@ import numpy as np
 import pytest
 import scipy.sparse as sp
 
-from shardtrain import compat, model, worker
+from shardtrain import compat
+from shardtrain.train import model, worker
 
 
 @pytest.mark.parametrize("dtype", [np.float32, np.float64])

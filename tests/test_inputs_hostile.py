@@ -23,11 +23,12 @@ import networkx as nx
 import numpy as np
 import pytest
 
-from shardtrain import io as sio
+from shardtrain.data import readers as sio
+from shardtrain.data import textscan
+from shardtrain.data.graph import csr_from_edges
+from shardtrain.data.readers import load_graph
 from shardtrain.errors import InputError
 from shardtrain.files import save_npz_atomic
-from shardtrain.graph import csr_from_edges
-from shardtrain.io import load_graph
 
 ADDRESS_SPACE = 2 << 30      # 2 GiB: far below any declared size here, enough for numpy/scipy
 HUGE = 10 ** 12
@@ -324,7 +325,7 @@ def test_estimate_is_close_to_the_measured_peak(tmp_path):
     reports its buffers to, measures the load."""
     import tracemalloc
 
-    from shardtrain.memory import graph_load_bytes
+    from shardtrain.data.memory import graph_load_bytes
 
     rng = np.random.default_rng(3)
     n, m = 20_000, 100_000
@@ -341,8 +342,8 @@ def test_estimate_is_close_to_the_measured_peak(tmp_path):
 def test_synth_estimate_is_close_to_the_measured_peak():
     import tracemalloc
 
-    from shardtrain.memory import synth_bytes
-    from shardtrain.synth import edge_array, parcel_network
+    from shardtrain.data.memory import synth_bytes
+    from shardtrain.data.synth import edge_array, parcel_network
 
     for n, degree, features in [(20_000, 10, 8), (10_000, 4, 128)]:
         tracemalloc.start()
@@ -374,7 +375,7 @@ def test_truncated_npy_is_refused_without_reading(tmp_path):
 # --------------------------------------------------------------------------- the header rule
 
 def _scanner_only(monkeypatch):
-    monkeypatch.setattr(sio._TextTable, "_read_fast", lambda self: None)
+    monkeypatch.setattr(textscan.TextTable, "_read_fast", lambda self: None)
 
 
 @pytest.mark.parametrize("path_taken", ["loadtxt", "scanner"])
@@ -497,7 +498,7 @@ def test_csr_from_edges_cleanup_matches_networkx_on_random_multigraphs():
 # --------------------------------------------------------------------------- assignment text
 
 def test_assignment_text_with_an_endless_line_names_it(tmp_path):
-    from shardtrain.partition import load_assignment
+    from shardtrain.plan.partition import load_assignment
 
     path = tmp_path / "a.txt"
     path.write_text("0\n" + "1" * 100 + "\n")

@@ -10,7 +10,8 @@ import pytest
 import scipy.io
 import scipy.sparse as sp
 
-from shardtrain import io as sio
+from shardtrain.data import textscan
+from shardtrain.data.readers import load_features, load_graph, load_labels, make_splits
 from shardtrain.errors import InputError
 from shardtrain.files import (
     atomic_directory,
@@ -19,7 +20,6 @@ from shardtrain.files import (
     write_json_atomic,
     write_text_atomic,
 )
-from shardtrain.io import load_features, load_graph, load_labels, make_splits
 
 # a small graph with one self-loop (3,3), one repeat (0,1) and one reverse repeat (2,1)
 EDGES = np.array([[0, 1], [1, 2], [2, 0], [3, 3], [3, 4], [0, 1], [2, 1], [4, 5], [5, 6]])
@@ -114,8 +114,8 @@ def test_scanner_and_loadtxt_agree_across_chunks(tmp_path, monkeypatch):
     # mixed separators defeat np.loadtxt, so the byte scanner reads this file
     lines = ["# c"] + [f"{u},{v}" if i % 3 else f"{u}\t {v}" for i, (u, v) in enumerate(edges)]
     path = write_lines(tmp_path / "mixed.csv", lines)
-    monkeypatch.setattr(sio, "_CHUNK_BYTES", 97)      # many chunks, lines split across reads
-    table = sio._TextTable(path, kind="int", columns=2, what="edges")
+    monkeypatch.setattr(textscan, "_CHUNK_BYTES", 97)      # many chunks, lines split across reads
+    table = textscan.TextTable(path, kind="int", columns=2, what="edges")
     assert table._read_fast() is None      # the file really took the scanner's path
     assert np.array_equal(table.values.reshape(-1, 2), edges)
     assert table.line_of_row(2999) == 3001
@@ -248,7 +248,7 @@ def test_feature_scanner_across_chunks(tmp_path, monkeypatch):
     lines = ["volume,area,staff"] + ["% weekly"] * 30 + [
         f"{a!r},{b!r}\t{c!r}" if i % 2 else f"{a!r} {b!r} {c!r}"
         for i, (a, b, c) in enumerate(x.tolist())]
-    monkeypatch.setattr(sio, "_CHUNK_BYTES", 113)
+    monkeypatch.setattr(textscan, "_CHUNK_BYTES", 113)
     got = load_features(write_lines(tmp_path / "x.csv", lines))
     assert np.array_equal(got, x.astype(np.float32))
     lines[330] = "1.0,two,3.0"

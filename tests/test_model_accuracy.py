@@ -11,9 +11,9 @@ from __future__ import annotations
 import numpy as np
 from helpers import digits_graphs
 
-from shardtrain.graph import Graph, csr_from_edges
-from shardtrain.reference import train_reference
-from shardtrain.settings import TrainSettings
+from shardtrain.data.graph import Graph, csr_from_edges
+from shardtrain.train.reference import train_reference
+from shardtrain.train.settings import TrainSettings
 
 
 def _graph(src, dst, n, features, labels, train, val, test):

@@ -10,8 +10,8 @@ import numpy as np
 import pytest
 import scipy.sparse as sp
 
-from shardtrain import model
-from shardtrain.schedule import layer_dims, layer_hops
+from shardtrain.plan.schedule import layer_dims, layer_hops
+from shardtrain.train import model
 
 N = 13
 CLASSES = 3

@@ -6,7 +6,7 @@ import math
 import numpy as np
 import pytest
 
-from shardtrain import model
+from shardtrain.train import model
 
 
 def test_mask_rows_do_not_depend_on_which_vertices_are_asked_for():

@@ -1,6 +1,6 @@
 """`mpiexec -n K shardtrain train SHARD_DIR --transport mpi`: the same run as over pipes.
 
-Sources of truth: the single-process reference trainer (`shardtrain.reference`, itself
+Sources of truth: the single-process reference trainer (`shardtrain.train.reference`, itself
 checked against central finite differences and the GCN paper's setup) and the pipes run of
 the same shard directory (`coordinator.train_partitioned`). In float64 with dropout on,
 every epoch's loss and the final weights must agree to a relative 1e-9 (docs/design.md §1.7); the
@@ -32,7 +32,7 @@ SETTINGS_ARGS = ["--layers", "3", "--hidden", "8", "--dropout", "0.5", "--epochs
 
 
 def _settings():
-    from shardtrain.settings import TrainSettings
+    from shardtrain.train.settings import TrainSettings
     return TrainSettings(layers=3, hidden=8, dropout=0.5, epochs=3, seed=7, dtype="float64",
                          bias=True)
 
@@ -45,13 +45,13 @@ def graph():
 
 @pytest.fixture(scope="module")
 def reference(graph):
-    from shardtrain.reference import train_reference
+    from shardtrain.train.reference import train_reference
     return train_reference(graph, _settings())
 
 
 def _shard_dir(graph, k: int, folder: Path) -> Path:
-    from shardtrain.partition import partition
-    from shardtrain.shards import build_shards, save_shards
+    from shardtrain.plan.partition import partition
+    from shardtrain.plan.shards import build_shards, save_shards
 
     out = folder / f"shards-{k}"
     # random assignment: every pair of workers shares a halo, in both directions
@@ -74,8 +74,8 @@ def _close(a, b) -> bool:
 
 @pytest.mark.parametrize("k", [2, 3])
 def test_mpi_run_equals_pipes_run_and_reference(k, shard_dirs, reference, tmp_path):
-    from shardtrain import model
-    from shardtrain.coordinator import train_partitioned
+    from shardtrain.train import model
+    from shardtrain.train.coordinator import train_partitioned
 
     mpiexec()
     out = {"json": tmp_path / "run.json", "weights": tmp_path / "w.npz",
@@ -175,8 +175,8 @@ def _fault_main(fault: str, argv: list[str]) -> int:
 
     from mpi4py import MPI
 
-    from shardtrain import model
     from shardtrain.cli import main
+    from shardtrain.train import model
 
     if MPI.COMM_WORLD.Get_rank() == 1:
         step = model.train_step

@@ -18,7 +18,7 @@ import msgpack
 import numpy as np
 import pytest
 
-from shardtrain.profile import Profile
+from shardtrain.transport.meter import Profile
 from shardtrain.transport.pipes import PipeTransport, make_pipe_mesh, ring_pairs
 
 pytestmark = pytest.mark.mpi      # every test here starts mpiexec

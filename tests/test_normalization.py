@@ -5,7 +5,7 @@ import networkx as nx
 import numpy as np
 import pytest
 
-from shardtrain.graph import Graph, csr_from_edges, normalized_adjacency
+from shardtrain.data.graph import Graph, csr_from_edges, normalized_adjacency
 
 
 def _graph(G: nx.Graph) -> Graph:

@@ -229,7 +229,7 @@ def test_created_output_folders_are_removed_only_when_empty_after_a_failure(tmp_
 
 
 def test_a_failed_demo_removes_the_parent_folders_it_created(tmp_path, monkeypatch):
-    from shardtrain import demo
+    from shardtrain.demo import workflow as demo
     from shardtrain.errors import RunError
 
     def fail(*args, **kwargs):

@@ -5,10 +5,10 @@ import networkx as nx
 import numpy as np
 import pytest
 
+from shardtrain.data.graph import Graph, csr_from_edges
 from shardtrain.errors import InputError
-from shardtrain.graph import Graph, csr_from_edges
-from shardtrain.partition import METHODS, load_assignment, partition
-from shardtrain.shards import build_shards, edge_cut, shard_stats
+from shardtrain.plan.partition import METHODS, load_assignment, partition
+from shardtrain.plan.shards import build_shards, edge_cut, shard_stats
 
 
 def _graph(G: nx.Graph) -> Graph:

@@ -9,9 +9,9 @@ import numpy as np
 import pymetis
 import pytest
 
-from shardtrain.graph import Graph, csr_from_edges
-from shardtrain.partition import _metis_call, partition, partition_plan
-from shardtrain.shards import build_shards, edge_cut, shard_stats
+from shardtrain.data.graph import Graph, csr_from_edges
+from shardtrain.plan.partition import _metis_call, partition, partition_plan
+from shardtrain.plan.shards import build_shards, edge_cut, shard_stats
 
 
 def _graph(G: nx.Graph, shuffle: int | None = None) -> Graph:
@@ -126,7 +126,7 @@ def test_pymetis_reads_a_two_weight_array_as_one_weight_so_we_call_metis_directl
 
 
 def test_plan_details_reach_the_survey_json_and_the_shard_manifest(run_cli, tmp_path):
-    from shardtrain.shards import load_manifest
+    from shardtrain.plan.shards import load_manifest
 
     g = nx.connected_watts_strogatz_graph(300, 6, 0.1, seed=2)
     path = tmp_path / "depots.npz"

@@ -12,10 +12,10 @@ import numpy as np
 import pytest
 
 from shardtrain.errors import RunError
-from shardtrain.profile import Profile, merge
 from shardtrain.transport import frames
 from shardtrain.transport.frames import FrameError
 from shardtrain.transport.link import LinkModel
+from shardtrain.transport.meter import Profile, merge
 from shardtrain.transport.pipes import PIPE_BYTES, PipeTransport, make_pipe_mesh, ring_pairs
 from shardtrain.transport.ring import ring_send_elements
 

@@ -8,9 +8,10 @@ import re
 import numpy as np
 import pytest
 
-from shardtrain import plots, report
-from shardtrain.calibrate import from_flops
-from shardtrain.forecast import forecast
+from shardtrain.forecast.calibrate import from_flops
+from shardtrain.forecast.projection import forecast
+from shardtrain.report import html as report
+from shardtrain.report import plots
 
 PNG_MAGIC = b"\x89PNG\r\n\x1a\n"   # the PNG signature (PNG specification, W3C/ISO 15948)
 

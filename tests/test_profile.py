@@ -7,7 +7,7 @@ import time
 import msgpack
 import pytest
 
-from shardtrain.profile import Profile, merge
+from shardtrain.transport.meter import Profile, merge
 
 
 def _spin(seconds):

@@ -6,11 +6,11 @@ import networkx as nx
 import numpy as np
 import pytest
 
-from shardtrain import model
+from shardtrain.data.graph import Graph, csr_from_edges
 from shardtrain.errors import InputError
-from shardtrain.graph import Graph, csr_from_edges
-from shardtrain.reference import train_reference
-from shardtrain.settings import TrainSettings
+from shardtrain.train import model
+from shardtrain.train.reference import train_reference
+from shardtrain.train.settings import TrainSettings
 
 
 def _small_graph(n=60, classes=3, dim=7, seed=0):
@@ -120,8 +120,8 @@ def test_model_api_partitioned_in_threads_equals_the_reference():
     keyed by global ids, reproduce the reference's losses and weights in float64."""
     import threading
 
-    from shardtrain.graph import normalized_adjacency
-    from shardtrain.schedule import layer_dims, layer_hops
+    from shardtrain.data.graph import normalized_adjacency
+    from shardtrain.plan.schedule import layer_dims, layer_hops
 
     _, graph = _small_graph(n=50, dim=9)
     settings = TrainSettings(layers=3, hidden=6, epochs=6, dtype="float64", bias=True,

@@ -19,12 +19,12 @@ import numpy as np
 import pytest
 from helpers import depot_graph, save_graph
 
-from shardtrain import checkpoint as ck
-from shardtrain import model
 from shardtrain.cli import main
-from shardtrain.graph import fingerprint
-from shardtrain.reference import model_dims, train_reference
-from shardtrain.settings import TrainSettings
+from shardtrain.data.graph import fingerprint
+from shardtrain.train import checkpoint as ck
+from shardtrain.train import model
+from shardtrain.train.reference import model_dims, train_reference
+from shardtrain.train.settings import TrainSettings
 
 SETTINGS = TrainSettings(layers=2, hidden=8, dropout=0.5, lr=0.01, weight_decay=5e-4,
                          epochs=7, seed=5, dtype="float64", bias=True)

@@ -62,7 +62,7 @@ def graph_file(tmp_path_factory, graph):
 
 @pytest.fixture(scope="module")
 def metis_file(tmp_path_factory, graph):
-    from shardtrain.partition import partition
+    from shardtrain.plan.partition import partition
 
     path = tmp_path_factory.mktemp("a") / "parts.npy"
     np.save(path, partition(graph, "metis", K, seed=0))
@@ -132,8 +132,8 @@ _PRISTINE: dict = {}
 
 @pytest.fixture(scope="module")
 def pristine(tmp_path_factory, graph):
-    from shardtrain.graph import fingerprint
-    from shardtrain.shards import build_shards, save_shards
+    from shardtrain.data.graph import fingerprint
+    from shardtrain.plan.shards import build_shards, save_shards
 
     root = tmp_path_factory.mktemp("shards")
     _PRISTINE["root"] = root
@@ -229,7 +229,7 @@ BROKEN = {
 @pytest.mark.parametrize("case", list(BROKEN))
 def test_a_broken_shard_directory_is_refused_before_any_worker(capsys, monkeypatch, pristine,
                                                                tmp_path, case):
-    from shardtrain import faults
+    from shardtrain.testing import faults
 
     d = tmp_path / "case" / "shards"
     d.parent.mkdir()
@@ -275,9 +275,9 @@ def test_descriptor_count_follows_the_mesh(monkeypatch, pristine, tmp_path, grap
     proc(5)) grows by FDS_PER_PAIR per pipe pair, and the prediction covers it."""
     import multiprocessing.process as mpp
 
-    from shardtrain import coordinator
-    from shardtrain.settings import TrainSettings
-    from shardtrain.shards import build_shards, save_shards
+    from shardtrain.plan.shards import build_shards, save_shards
+    from shardtrain.train import coordinator
+    from shardtrain.train.settings import TrainSettings
 
     peaks = {}
     start = mpp.BaseProcess.start
@@ -328,7 +328,7 @@ def test_open_files_limit_is_raised_or_refused_and_tmp_stays_clean(graph_file, t
 
 @pytest.mark.parametrize("case", ["exit 2 after the shards were built", "exit 3"])
 def test_temporary_shards_are_removed_on_failure(graph_file, metis_file, tmp_path, case):
-    from shardtrain import faults
+    from shardtrain.testing import faults
 
     tmp = tmp_path / "tmp"
     tmp.mkdir()
@@ -360,7 +360,7 @@ def _descendants_with(token: str) -> list[int]:
 def test_a_signal_in_any_phase_is_exit_4_and_leaves_nothing(graph_file, tmp_path, where, sig):
     import uuid
 
-    from shardtrain import faults
+    from shardtrain.testing import faults
 
     tmp = tmp_path / "tmp"
     tmp.mkdir()
@@ -398,7 +398,7 @@ def test_a_signal_in_any_phase_is_exit_4_and_leaves_nothing(graph_file, tmp_path
 # ---------------------------------------------------------------- 9: one run per checkpoint folder
 
 def test_a_checkpoint_folder_serves_one_run_at_a_time(capsys, graph_file, tmp_path):
-    from shardtrain import checkpoint
+    from shardtrain.train import checkpoint
 
     folder = tmp_path / "ck"
     held = checkpoint.lock_folder(folder)        # another run holds it (flock(2) is per

@@ -7,8 +7,8 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from shardtrain.graph import Graph, csr_from_edges, normalized_adjacency
-from shardtrain.shards import Shard, build_shards, edge_cut, shard_stats
+from shardtrain.data.graph import Graph, csr_from_edges, normalized_adjacency
+from shardtrain.plan.shards import Shard, build_shards, edge_cut, shard_stats
 
 
 def graph_from_nx(G: nx.Graph, **data) -> Graph:
@@ -167,8 +167,8 @@ VERTEX_DATA = ("features", "labels", "train_mask", "val_mask", "test_mask")
 
 
 def test_shard_directory_round_trip(tmp_path):
-    from shardtrain.graph import fingerprint
-    from shardtrain.shards import load_manifest, load_shard, save_shards
+    from shardtrain.data.graph import fingerprint
+    from shardtrain.plan.shards import load_manifest, load_shard, save_shards
     g, a = _small_graph()
     shards = build_shards(g, a, 3)
     out = tmp_path / "shards"
@@ -187,7 +187,7 @@ def test_shard_directory_round_trip(tmp_path):
 
 def test_shard_directory_refuses_bad_content(tmp_path):
     from shardtrain.errors import InputError
-    from shardtrain.shards import load_shard, save_shards
+    from shardtrain.plan.shards import load_shard, save_shards
     g, a = _small_graph()
     out = tmp_path / "shards"
     save_shards(out, build_shards(g, a, 3), meta={"method": "random"})
@@ -212,7 +212,7 @@ def test_shard_directory_refuses_bad_content(tmp_path):
 
 
 def test_split_command_writes_a_loadable_directory(tmp_path, run_cli):
-    from shardtrain.shards import load_manifest, load_shard
+    from shardtrain.plan.shards import load_manifest, load_shard
     g, a = _small_graph()
     src = np.repeat(np.arange(60), np.diff(g.indptr))
     graph_file = tmp_path / "depots.npz"

@@ -8,10 +8,10 @@ import networkx as nx
 import numpy as np
 import pytest
 
-from shardtrain import survey as sv
-from shardtrain.graph import Graph, csr_from_edges
-from shardtrain.schedule import layer_dims, layer_hops
-from shardtrain.shards import build_shards
+from shardtrain.data.graph import Graph, csr_from_edges
+from shardtrain.plan import survey as sv
+from shardtrain.plan.schedule import layer_dims, layer_hops
+from shardtrain.plan.shards import build_shards
 
 
 def graph_from_nx(g: nx.Graph, input_dim: int | None = None, classes: int = 0,
@@ -157,7 +157,7 @@ def test_memory_counts_the_model():
 
 def test_parameter_count_matches_the_model():
     # the all-reduce carries model.flatten of the gradients: the survey must count the same
-    from shardtrain import model
+    from shardtrain.train import model
 
     for bias in (False, True):
         dims = layer_dims(37, 16, 5, 3)
@@ -173,7 +173,7 @@ def _random_graph(n, m, seed):
 
 
 def test_survey_up_to_1024_workers():
-    pytest.importorskip("shardtrain.partition")
+    pytest.importorskip("shardtrain.plan.partition")
     graph = _random_graph(20_000, 100_000, 5)
     settings = sv.SurveySettings(input_dim=32, classes=5)
     out = sv.survey(graph, ["random", "range"], [1, 16, 1024], settings)
@@ -198,7 +198,7 @@ def test_survey_up_to_1024_workers():
 @pytest.fixture
 def small_npz(tmp_path):
     pytest.importorskip("shardtrain.cli.common")
-    pytest.importorskip("shardtrain.partition")
+    pytest.importorskip("shardtrain.plan.partition")
     g = nx.connected_watts_strogatz_graph(300, 6, 0.1, seed=2)
     rng = np.random.default_rng(0)
     path = tmp_path / "depots.npz"
@@ -250,7 +250,7 @@ def test_cli_bad_options(run_cli, small_npz, tmp_path, args, option):
 
 def test_human_bytes_uses_binary_prefixes():
     # IEC 80000-13 binary prefixes: 1 KiB = 1024 B, 1 MiB = 1024 KiB, 1 GiB = 1024 MiB
-    from shardtrain.tables import human_bytes
+    from shardtrain.units import human_bytes
 
     assert human_bytes(0) == "0 B"
     assert human_bytes(1023) == "1023 B"
@@ -261,7 +261,7 @@ def test_human_bytes_uses_binary_prefixes():
 
 
 def test_format_table_aligns_columns():
-    from shardtrain.tables import format_table
+    from shardtrain.report.tables import format_table
 
     text = format_table([{"m": "random", "k": 1024, "r": 1.5}, {"m": "range", "k": 2}],
                         [("m", "method", None), ("k", "workers", "{:,}"), ("r", "repl", "{:.2f}")])
@@ -312,10 +312,10 @@ def test_id_order_shards_predict_what_locality_order_shards_hold():
 def test_survey_plan_equals_the_trainers_measured_payload(tmp_path):
     # The trained run's byte counters are the outside measurement here: the survey's plan
     # (id-order shards, no process started) must predict them exactly.
-    pytest.importorskip("shardtrain.coordinator")
+    pytest.importorskip("shardtrain.train.coordinator")
     from helpers import depot_graph, run_partitioned
 
-    from shardtrain.settings import TrainSettings
+    from shardtrain.train.settings import TrainSettings
 
     graph = depot_graph(n=300, classes=3, features=20, seed=8)
     a = np.random.default_rng(8).integers(0, 3, 300)

@@ -8,10 +8,16 @@ import numpy as np
 import pytest
 from sklearn.linear_model import LogisticRegression
 
+from shardtrain.data.graph import normalized_adjacency
+from shardtrain.data.readers import load_graph
+from shardtrain.data.synth import (
+    ROLE_NAMES,
+    edge_array,
+    parcel_network,
+    role_name,
+    same_role_fraction,
+)
 from shardtrain.errors import InputError
-from shardtrain.graph import normalized_adjacency
-from shardtrain.io import load_graph
-from shardtrain.synth import ROLE_NAMES, edge_array, parcel_network, role_name, same_role_fraction
 
 
 @pytest.fixture(scope="module")

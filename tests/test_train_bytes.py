@@ -1,13 +1,13 @@
 """Measured payload equals the survey's prediction, byte for byte, also when every halo
 frame is larger than a pipe's kernel buffer (so a transport that wrote before reading
-would deadlock). Source of truth: `shardtrain.survey.predict_traffic`, computed from the
+would deadlock). Source of truth: `shardtrain.plan.survey.predict_traffic`, computed from the
 shards and the exchange schedule alone, without running anything."""
 from __future__ import annotations
 
 import numpy as np
 from helpers import depot_graph, run_partitioned
 
-from shardtrain.settings import TrainSettings
+from shardtrain.train.settings import TrainSettings
 from shardtrain.transport.pipes import PIPE_BYTES
 
 

@@ -1,6 +1,6 @@
 """Partitioned multi-process training equals single-process training.
 
-Source of truth: the single-process reference trainer (`shardtrain.reference`), whose own
+Source of truth: the single-process reference trainer (`shardtrain.train.reference`), whose own
 tests check its gradients against central finite differences and its setup against the
 GCN paper (Kipf & Welling 2017). In float64 the partitioned run differs from it only by
 the order of floating-point sums, so every epoch's loss and the final weights must agree
@@ -12,12 +12,12 @@ import numpy as np
 import pytest
 from helpers import depot_graph, run_partitioned
 
-from shardtrain import model
-from shardtrain.coordinator import train_partitioned
-from shardtrain.graph import Graph
-from shardtrain.reference import train_reference
-from shardtrain.settings import TrainSettings
-from shardtrain.shards import build_shards
+from shardtrain.data.graph import Graph
+from shardtrain.plan.shards import build_shards
+from shardtrain.train import model
+from shardtrain.train.coordinator import train_partitioned
+from shardtrain.train.reference import train_reference
+from shardtrain.train.settings import TrainSettings
 
 RTOL = 1e-9
 WORKER_COUNTS = (2, 3, 7)      # and 1, below: with one worker every method is the same
@@ -37,7 +37,7 @@ def _assignments(graph: Graph, k: int) -> dict[str, np.ndarray]:
     out = {"random": np.random.default_rng(k).integers(0, k, n),
            "range": np.arange(n) * k // n}
     try:
-        from shardtrain.partition import METHODS, partition
+        from shardtrain.plan.partition import METHODS, partition
     except ImportError:
         return out
     for name in METHODS:
@@ -47,7 +47,7 @@ def _assignments(graph: Graph, k: int) -> dict[str, np.ndarray]:
 
 def _method_names():
     try:
-        from shardtrain.partition import METHODS
+        from shardtrain.plan.partition import METHODS
         return sorted(set(METHODS) | {"random", "range"})
     except ImportError:
         return ["random", "range"]
@@ -127,7 +127,7 @@ def load_shard_then_die(folder, worker: int):
     import os
     import signal
 
-    from shardtrain.shards import load_shard
+    from shardtrain.plan.shards import load_shard
 
     shard = load_shard(folder, worker)
     if worker == 1:
@@ -142,7 +142,7 @@ def test_a_killed_worker_is_named_and_nothing_survives(tmp_path, graph):
     from shardtrain.errors import RunError
 
     try:
-        from shardtrain.shards import save_shards
+        from shardtrain.plan.shards import save_shards
     except ImportError:
         pytest.skip("the shard directory format is not there yet")
 

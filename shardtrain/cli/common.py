@@ -5,8 +5,8 @@ from __future__ import annotations
 import argparse
 import re
 
+from shardtrain.data.readers import LoadedGraph, load_graph
 from shardtrain.errors import InputError
-from shardtrain.io import LoadedGraph, load_graph
 
 
 def add_graph_arguments(parser: argparse.ArgumentParser) -> None:

@@ -11,7 +11,7 @@ from __future__ import annotations
 import sys
 
 from shardtrain.cli.common import int_type
-from shardtrain.demo import (
+from shardtrain.demo.workflow import (
     DEFAULT_EPOCHS,
     DEFAULT_VERTICES,
     QUICK_EPOCHS,
@@ -19,7 +19,7 @@ from shardtrain.demo import (
     DemoSettings,
     run_demo,
 )
-from shardtrain.tables import human_bytes, human_seconds
+from shardtrain.units import human_bytes, human_seconds
 
 
 def add_arguments(parser) -> None:

@@ -23,8 +23,9 @@ from shardtrain.cli.common import (
     parse_name_list,
 )
 from shardtrain.errors import InputError
-from shardtrain.partition import DEFAULT_COMPARED
-from shardtrain.tables import format_table, human_seconds
+from shardtrain.plan.partition import DEFAULT_COMPARED
+from shardtrain.report.tables import format_table
+from shardtrain.units import human_seconds
 
 DEFAULT_LINKS = "1,10,25,100"
 DEFAULT_WORKERS = "2,4,8,16"
@@ -83,10 +84,10 @@ def _survey_and_measure(graph, methods, workers, settings, dropout, cores=None):
     `cores`, as many shards at once as a local run on that many cores computes at once)."""
     import os
 
-    from shardtrain.calibrate import plan_step_seconds
-    from shardtrain.partition import partition
-    from shardtrain.settings import TrainSettings
-    from shardtrain.survey import survey
+    from shardtrain.forecast.calibrate import plan_step_seconds
+    from shardtrain.plan.partition import partition
+    from shardtrain.plan.survey import survey
+    from shardtrain.train.settings import TrainSettings
 
     if graph.features is None or graph.labels is None:
         raise InputError("--measure-compute: the graph needs features and labels to train")
@@ -157,7 +158,7 @@ def read_survey_json(path: str) -> dict:
     (`documents.SURVEY`: plans, shards, traffic, model dtype and hops); InputError naming
     the file and the key."""
     from shardtrain import documents
-    from shardtrain.report import document_kind
+    from shardtrain.report.html import document_kind
 
     data = documents.parse_json_file(path, max_bytes=documents.MAX_BYTES["survey"])
     kind = document_kind(data)
@@ -227,9 +228,9 @@ def summary_lines(result: dict) -> list[str]:
 
 
 def run(args) -> int:
-    from shardtrain.calibrate import from_flops, load_or_calibrate
     from shardtrain.files import write_json_atomic
-    from shardtrain.forecast import forecast
+    from shardtrain.forecast.calibrate import from_flops, load_or_calibrate
+    from shardtrain.forecast.projection import forecast
 
     links = parse_float_list(args.link_gbps, "--link-gbps")
     workers = parse_int_list(args.workers, "--workers") if args.workers is not None else None
@@ -245,12 +246,12 @@ def run(args) -> int:
         survey_dict = _select(read_survey_json(source), workers, methods, source)
     cached = None
     if args.flops_per_worker is None and args.calibration:   # a bad file costs no work
-        from shardtrain.calibrate import read_calibration
+        from shardtrain.forecast.calibrate import read_calibration
 
         cached = read_calibration(args.calibration, survey_dict["model"].get(
             "dtype", "float32") if is_survey else args.dtype)
     if not is_survey:
-        from shardtrain.survey import SurveySettings, check_plans, survey
+        from shardtrain.plan.survey import SurveySettings, check_plans, survey
 
         settings = SurveySettings(layers=args.layers, hidden=args.hidden, dtype=args.dtype,
                                   classes=args.classes, input_dim=args.input_dim,
@@ -277,7 +278,7 @@ def run(args) -> int:
             print("timing this machine's kernels (one thread) ...", file=sys.stderr)
             calibration = load_or_calibrate(args.calibration, dtype)
         if graph is not None:   # sparse speeds on the graph's own structure
-            from shardtrain.calibrate import with_graph_sparse
+            from shardtrain.forecast.calibrate import with_graph_sparse
 
             calibration = with_graph_sparse(calibration, graph, dtype)
     result = forecast(survey_dict, link_gbps_list=links, latency_us=args.latency_us,
@@ -295,7 +296,7 @@ def run(args) -> int:
     if args.json:
         write_json_atomic(args.json, result)
     if args.plot:
-        from shardtrain.plots import forecast_plots
+        from shardtrain.report.plots import forecast_plots
 
         Path(args.plot).mkdir(parents=True, exist_ok=True)
         forecast_plots(result, args.plot)

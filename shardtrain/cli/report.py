@@ -20,7 +20,7 @@ def add_arguments(parser) -> None:
 
 
 def run(args) -> int:
-    from shardtrain.report import write_report
+    from shardtrain.report.html import write_report
 
     out = Path(args.html)
     if not out.parent.is_dir():

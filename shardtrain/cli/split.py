@@ -11,8 +11,8 @@ import time
 from pathlib import Path
 
 from shardtrain.cli.common import add_graph_arguments, load_graph_from_args, positive_int_type
+from shardtrain.data.readers import require_regular_file
 from shardtrain.errors import InputError
-from shardtrain.io import require_regular_file
 
 
 def _imbalance(text: str) -> float:
@@ -26,7 +26,7 @@ def _imbalance(text: str) -> float:
 
 
 def add_arguments(parser) -> None:
-    from shardtrain.partition import METHODS
+    from shardtrain.plan.partition import METHODS
 
     add_graph_arguments(parser)
     parser.add_argument("--workers", metavar="K", type=positive_int_type("--workers"),
@@ -53,9 +53,9 @@ def _check_out(out: Path, overwrite: bool) -> None:
 
 
 def run(args) -> int:
-    from shardtrain.graph import fingerprint
-    from shardtrain.partition import METHODS, check_workers, load_assignment, partition_plan
-    from shardtrain.shards import build_shards, edge_cut, save_shards, shard_stats
+    from shardtrain.data.graph import fingerprint
+    from shardtrain.plan.partition import METHODS, check_workers, load_assignment, partition_plan
+    from shardtrain.plan.shards import build_shards, edge_cut, save_shards, shard_stats
 
     out = Path(args.out)
     _check_out(out, args.overwrite)

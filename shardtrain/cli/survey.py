@@ -21,9 +21,10 @@ from shardtrain.cli.common import (
 )
 from shardtrain.errors import InputError
 from shardtrain.files import check_paths, write_json_atomic, write_text_atomic
-from shardtrain.partition import DEFAULT_COMPARED
-from shardtrain.survey import SurveySettings, check_plans, survey
-from shardtrain.tables import format_table, human_bytes
+from shardtrain.plan.partition import DEFAULT_COMPARED
+from shardtrain.plan.survey import SurveySettings, check_plans, survey
+from shardtrain.report.tables import format_table
+from shardtrain.units import human_bytes
 
 DEFAULT_METHODS = ",".join(DEFAULT_COMPARED)
 DEFAULT_WORKERS = "2,4,8"
@@ -148,7 +149,7 @@ def _write_outputs(args, result: dict) -> None:
     if args.csv:
         write_text_atomic(args.csv, csv_text(result))
     if args.plot:
-        from shardtrain.plots import survey_plots
+        from shardtrain.report.plots import survey_plots
 
         survey_plots(result, args.plot)
 
@@ -162,7 +163,7 @@ def run(args) -> int:
     _check_output(args.json, "--json")
     _check_output(args.csv, "--csv")
     if args.plot is not None:
-        from shardtrain.plots import check_plot_dir
+        from shardtrain.report.plots import check_plot_dir
 
         check_plot_dir(args.plot)
     check_paths(inputs={"GRAPH": args.graph, "--features": args.features,
@@ -173,7 +174,7 @@ def run(args) -> int:
     graph = loaded.graph
     assignment = None
     if args.assignment is not None:
-        from shardtrain.partition import load_assignment
+        from shardtrain.plan.partition import load_assignment
 
         assignment, k = load_assignment(args.assignment, graph.num_vertices)
         if args.workers is not None and workers != [k]:

@@ -10,9 +10,9 @@ import time
 from pathlib import Path
 
 from shardtrain.cli.common import float_type, int_type
+from shardtrain.data.synth import edge_array, parcel_network, same_role_fraction
 from shardtrain.errors import InputError
 from shardtrain.files import check_paths, save_npz_atomic
-from shardtrain.synth import edge_array, parcel_network, same_role_fraction
 
 
 def add_arguments(parser) -> None:

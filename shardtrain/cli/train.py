@@ -28,10 +28,10 @@ from pathlib import Path
 
 import numpy as np
 
-from shardtrain import rundoc
 from shardtrain.cli.common import add_graph_arguments, load_graph_from_args, positive_int_type
 from shardtrain.errors import InputError, Interrupted
-from shardtrain.settings import DTYPES, TrainSettings, max_threads
+from shardtrain.train import rundoc
+from shardtrain.train.settings import DTYPES, TrainSettings, max_threads
 
 MANIFEST_NAME = "shards.json"
 WORKER_COLUMNS = [
@@ -198,7 +198,7 @@ def _check_options(args) -> tuple[TrainSettings, bool]:
     _check_output(args.weights, "--weights", ".npz")
     _check_output(args.predictions, "--predictions", ".csv")
     if getattr(args, "plot", None) is not None:
-        from shardtrain.plots import check_plot_dir
+        from shardtrain.report.plots import check_plot_dir
         check_plot_dir(args.plot)
     if args.init_weights is not None and not Path(args.init_weights).is_file():
         raise InputError(f"--init-weights {args.init_weights}: no such file")
@@ -227,11 +227,11 @@ def _check_options(args) -> tuple[TrainSettings, bool]:
     if args.workers is not None and args.workers < 1:
         raise InputError(f"--workers {args.workers}: must be at least 1")
     if args.method is not None:
-        from shardtrain.partition import METHODS
+        from shardtrain.plan.partition import METHODS
         if args.method not in METHODS:
             raise InputError(f"--method {args.method!r}: expected one of {', '.join(METHODS)}")
     if args.assignment is not None:
-        from shardtrain.io import require_regular_file
+        from shardtrain.data.readers import require_regular_file
         require_regular_file(args.assignment, option="--assignment")
     _check_paths(args)              # before the checkpoint lock creates its folder
     _check_fault_options(args)
@@ -273,7 +273,7 @@ def parse_slow_workers(items: list[str]) -> dict[int, float]:
 
 def _check_fault_options(args) -> None:
     """--checkpoint, --checkpoint-every, --resume, --slow-worker, --max-frame-bytes."""
-    from shardtrain import checkpoint
+    from shardtrain.train import checkpoint
 
     extras = [(flag, given) for flag, given in (
         ("--checkpoint", args.checkpoint), ("--checkpoint-every", args.checkpoint_every),
@@ -322,7 +322,7 @@ def check_model_fits(dims, settings: TrainSettings) -> None:
     except (OSError, ValueError):
         return
     if need > have:
-        from shardtrain.tables import human_bytes
+        from shardtrain.units import human_bytes
         raise InputError(f"--hidden {settings.hidden} --layers {settings.layers}: the "
                          f"weights and optimiser state alone need {human_bytes(need)}, this "
                          f"machine has {human_bytes(have)}")
@@ -337,7 +337,7 @@ def _check_slow_range(slow: dict[int, float], workers: int) -> None:
 
 def load_init_weights(path, dims, settings: TrainSettings):
     """Params from an .npz (no pickle), checked against the model: InputError naming it."""
-    from shardtrain import model
+    from shardtrain.train import model
 
     try:
         with np.load(path, allow_pickle=False) as bundle:
@@ -402,8 +402,8 @@ def predictions_csv(predicted: np.ndarray, labels: np.ndarray | None) -> str:
 
 
 def write_outputs(args, result, labels, doc: dict) -> None:
-    from shardtrain import model
     from shardtrain.files import save_npz_atomic, write_json_atomic, write_text_atomic
+    from shardtrain.train import model
 
     if args.weights:
         save_npz_atomic(args.weights, **model.params_to_arrays(result.params))
@@ -412,12 +412,13 @@ def write_outputs(args, result, labels, doc: dict) -> None:
     if args.json:
         write_json_atomic(args.json, doc)
     if getattr(args, "plot", None):
-        from shardtrain.plots import run_plots
+        from shardtrain.report.plots import run_plots
         run_plots(doc, args.plot)
 
 
 def _worker_table(rows: list[dict]) -> str:
-    from shardtrain.tables import format_table, human_bytes
+    from shardtrain.report.tables import format_table
+    from shardtrain.units import human_bytes
 
     cols = [(key, head, human_bytes if key in ("bytes_sent", "bytes_received",
                                                "peak_rss_bytes") else fmt)
@@ -426,7 +427,7 @@ def _worker_table(rows: list[dict]) -> str:
 
 
 def _traffic_lines(traffic: dict) -> list[str]:
-    from shardtrain.tables import human_bytes
+    from shardtrain.units import human_bytes
 
     m, p = traffic["measured_payload_bytes"], traffic["predicted_payload_bytes"]
     verdict = "equal" if m == p else f"DIFFERENT by {m - p:+,} bytes"
@@ -470,7 +471,7 @@ def run(args) -> int:
 
 
 def _run(args, phase: list, link) -> int:
-    from shardtrain.faults import pause_point
+    from shardtrain.hooks import pause_point
 
     settings, from_shards = _check_options(args)
 
@@ -478,8 +479,8 @@ def _run(args, phase: list, link) -> int:
     tmp_dir = None
     try:
         if from_shards:
-            from shardtrain.coordinator import model_dims_of, shard_dir_facts
-            from shardtrain.shards import check_shard_dir, split_counts
+            from shardtrain.plan.shards import check_shard_dir, split_counts
+            from shardtrain.train.coordinator import model_dims_of, shard_dir_facts
 
             phase[0] = "checking the shard directory"
             manifest = check_shard_dir(args.graph)
@@ -502,7 +503,7 @@ def _run(args, phase: list, link) -> int:
             shard_dir, labels = args.graph, None
             graph_fp = _manifest_fingerprint(shard_dir)
         else:
-            from shardtrain.reference import check_early_stop, check_trainable, model_dims
+            from shardtrain.train.reference import check_early_stop, check_trainable, model_dims
 
             phase[0] = "reading the graph"
             loaded = load_graph_from_args(args)
@@ -515,20 +516,20 @@ def _run(args, phase: list, link) -> int:
                     if args.init_weights else None)
             assignment = None
             if args.assignment is not None:
-                from shardtrain.partition import load_assignment
+                from shardtrain.plan.partition import load_assignment
                 assignment, k = load_assignment(args.assignment, graph.num_vertices)
                 if args.workers is not None and args.workers != k:
                     raise InputError(f"--workers {args.workers}: {args.assignment} assigns "
                                      f"vertices to {k} workers")
                 args.workers = k
             elif not args.reference:
-                from shardtrain.partition import check_workers
+                from shardtrain.plan.partition import check_workers
                 check_workers(args.workers, graph.num_vertices)
             graph_doc = rundoc.graph_of_file(loaded.source, graph, loaded.notes)
             if not args.quiet:
                 print(graph_line(graph), flush=True)
             labels = graph.labels
-            from shardtrain.graph import fingerprint
+            from shardtrain.data.graph import fingerprint
             graph_fp = fingerprint(graph)
             if not args.reference:
                 _check_descriptors(args.workers)
@@ -544,7 +545,7 @@ def _run(args, phase: list, link) -> int:
         if args.reference:
             result = _train_reference(graph, settings, init, plan, args.resumed, progress)
         else:
-            from shardtrain.coordinator import train_partitioned
+            from shardtrain.train.coordinator import train_partitioned
             result = train_partitioned(shard_dir, settings, timeout_s=args.timeout,
                                        init_params=init, on_epoch=progress,
                                        max_frame_bytes=args.max_frame_bytes,
@@ -604,7 +605,7 @@ def _shard_dir_line(shard_dir, facts, counts: dict | None = None) -> str:
     """The same line for a shard directory, from its manifest and, where given, the mask
     counts of all its shards (`shards.split_counts`; an MPI rank 0 may see only its own
     shard, so it shows the manifest's training count alone)."""
-    from shardtrain.shards import load_manifest
+    from shardtrain.plan.shards import load_manifest
 
     m = load_manifest(shard_dir)
     split = (f"{int(m['num_train_global']):,} train" if counts is None else
@@ -615,15 +616,15 @@ def _shard_dir_line(shard_dir, facts, counts: dict | None = None) -> str:
 
 
 def _manifest_fingerprint(shard_dir):
-    from shardtrain.shards import load_manifest
+    from shardtrain.plan.shards import load_manifest
 
     return load_manifest(shard_dir).get("graph_fingerprint")
 
 
 def _checkpoint_plan(args, settings, shard_dir, dims, graph_fp) -> dict | None:
     """Check --slow-worker and --resume against the shards; the checkpoint plan or None."""
-    from shardtrain import checkpoint
-    from shardtrain.coordinator import shard_dir_facts
+    from shardtrain.train import checkpoint
+    from shardtrain.train.coordinator import shard_dir_facts
 
     k = shard_dir_facts(shard_dir).workers
     _check_slow_range(parse_slow_workers(args.slow_worker), k)
@@ -666,7 +667,7 @@ def _say_early_stop(summary: dict | None, quiet: bool) -> None:
 
 def _reference_plan(args, settings, dims, graph_fp) -> dict | None:
     """Check --resume against this reference run; the checkpoint plan or None."""
-    from shardtrain import checkpoint
+    from shardtrain.train import checkpoint
 
     if args.checkpoint is None and args.resumed is None:
         return None
@@ -684,9 +685,9 @@ def _reference_plan(args, settings, dims, graph_fp) -> dict | None:
 def _train_reference(graph, settings, init, plan, resumed, progress):
     """The single-process run, checkpointed per `plan`, continuing `resumed`; Ctrl-C
     becomes Interrupted naming the checkpoint and the --resume that continues it."""
-    from shardtrain import checkpoint
     from shardtrain.errors import Interrupted
-    from shardtrain.reference import train_reference
+    from shardtrain.train import checkpoint
+    from shardtrain.train.reference import train_reference
 
     done = [resumed.epoch if resumed is not None else 0]
 
@@ -758,20 +759,20 @@ class _signals_as_interrupt:
 
 def _check_descriptors(k: int) -> None:
     """Enough open files for k workers, before anything is built (InputError otherwise)."""
-    from shardtrain.coordinator import ensure_descriptors
+    from shardtrain.train.coordinator import ensure_descriptors
 
     ensure_descriptors(k)
 
 
 def _build_shard_dir(graph, args, assignment, shard_dir: str, dims, phase: list) -> None:
     """Partition (or take the given assignment) and save the shards for the workers."""
-    from shardtrain.faults import pause_point
-    from shardtrain.shards import build_shards, save_shards
+    from shardtrain.hooks import pause_point
+    from shardtrain.plan.shards import build_shards, save_shards
 
     k = args.workers
     details = None
     if assignment is None:
-        from shardtrain.partition import partition_plan
+        from shardtrain.plan.partition import partition_plan
         phase[0] = "partitioning"
         pause_point("partitioning")
         assignment, details = partition_plan(graph, args.method, k, seed=args.seed,
@@ -779,7 +780,7 @@ def _build_shard_dir(graph, args, assignment, shard_dir: str, dims, phase: list)
     phase[0] = "building the shards"
     pause_point("building shards")
     shards = build_shards(graph, assignment, k)
-    from shardtrain.graph import fingerprint
+    from shardtrain.data.graph import fingerprint
     meta = {"num_classes": dims[-1][1], "input_dim": dims[0][0],
             "method": args.method or "assignment", "seed": args.seed,
             "graph_fingerprint": fingerprint(graph)}

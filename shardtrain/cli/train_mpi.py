@@ -26,7 +26,7 @@ UNSUPPORTED = ("checkpoint", "resume", "slow_worker", "emulate_link")
 def _prepare(args):
     """Rank 0's checks: (settings, shard facts, init weights); InputError otherwise."""
     from shardtrain.cli import train
-    from shardtrain.coordinator import model_dims_of, shard_dir_facts
+    from shardtrain.train.coordinator import model_dims_of, shard_dir_facts
 
     if not train._is_shard_dir(args.graph):
         raise InputError(f"--transport mpi: {args.graph} is not a shard directory (write one "
@@ -46,8 +46,8 @@ def _prepare(args):
 
 def _finish(args, settings, facts, result) -> None:
     """The outputs and the closing lines of `shardtrain train`, written by rank 0."""
-    from shardtrain import rundoc
     from shardtrain.cli import train
+    from shardtrain.train import rundoc
 
     doc = rundoc.run_document(settings, rundoc.graph_of_shards(args.graph, facts), result,
                               mode="partitioned", transport="mpi")
@@ -63,8 +63,8 @@ def _finish(args, settings, facts, result) -> None:
 
 
 def run_mpi(args) -> int:
-    from shardtrain import mpirun
     from shardtrain.cli import train
+    from shardtrain.train import mpi_driver as mpirun
 
     comm = mpirun.world()
     rank = comm.Get_rank()

@@ -2,7 +2,7 @@
 
 A transport has `exchange(outgoing, incoming, *, kind, epoch, layer, direction)`,
 `allreduce_sum(buf, *, epoch)` and `close()`, and counts every frame in a
-`shardtrain.profile.Profile`. Implementations: `pipes.PipeTransport` (one machine) and
+`shardtrain.transport.meter.Profile`. Implementations: `pipes.PipeTransport` (one machine) and
 `mpi.MpiTransport` (mpi4py). `frames` is the wire format, `ring` the all-reduce algorithm and
 its traffic, `link` the network emulation.
 """

@@ -43,9 +43,9 @@ import time
 import numpy as np
 
 from shardtrain.errors import RunError
-from shardtrain.profile import Profile
 from shardtrain.transport import frames
 from shardtrain.transport.frames import FrameError
+from shardtrain.transport.meter import Profile
 from shardtrain.transport.pipes import ALLREDUCE, NO_LAYER, _bytes_view, _wire_array, _workers
 from shardtrain.transport.ring import ring_allreduce, ring_steps
 

@@ -38,10 +38,10 @@ from typing import cast
 import numpy as np
 
 from shardtrain.errors import RunError
-from shardtrain.profile import Profile
 from shardtrain.transport import frames
 from shardtrain.transport.frames import FrameError
 from shardtrain.transport.link import LinkModel
+from shardtrain.transport.meter import Profile
 from shardtrain.transport.ring import ring_allreduce
 
 # Kernel buffer per pipe: faster than the 64 KiB default, and a quarter of the kernel

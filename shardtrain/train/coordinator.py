@@ -28,10 +28,10 @@ from typing import Callable, Final, cast
 
 import numpy as np
 
-from shardtrain import model, worker
 from shardtrain.compat import worker_log_receiver
 from shardtrain.errors import InputError, Interrupted, RunError
-from shardtrain.settings import TrainSettings
+from shardtrain.train import model, worker
+from shardtrain.train.settings import TrainSettings
 
 log = logging.getLogger(__name__)
 
@@ -39,8 +39,8 @@ log = logging.getLogger(__name__)
 # numpy, scipy and the worker code (with BLAS pinned), so it holds only the pipe ends it is
 # given, like a spawned child, without paying the interpreter start per worker.
 START_METHOD: Final = "forkserver"
-PRELOAD = ["numpy", "scipy.sparse", "msgpack", "threadpoolctl", "shardtrain.worker",
-           "shardtrain.model", "shardtrain.shards", "shardtrain.profile",
+PRELOAD = ["numpy", "scipy.sparse", "msgpack", "threadpoolctl", "shardtrain.train.worker",
+           "shardtrain.train.model", "shardtrain.plan.shards", "shardtrain.transport.meter",
            "shardtrain.transport.pipes"]
 JOIN_S = 5.0                 # how long stopped workers get before they are killed
 ERROR_GRACE_S = 0.5          # after a reported error, time to notice a silent death
@@ -85,7 +85,7 @@ class ShardDirFacts:
 def shard_dir_facts(shard_dir, manifest: dict | None = None) -> ShardDirFacts:
     """Worker count, graph size, classes and feature width from the shard manifest
     (checked by `shards.load_manifest`; pass `manifest` when it is already read)."""
-    from shardtrain.shards import MANIFEST, load_manifest
+    from shardtrain.plan.shards import MANIFEST, load_manifest
 
     m = manifest if manifest is not None else load_manifest(shard_dir)
     if m.get("input_dim") is None:
@@ -259,20 +259,20 @@ def train_partitioned(shard_dir, settings: TrainSettings, *, timeout_s: float = 
     writes a checkpoint every `every` epochs and after the last (the folder is created).
     `resume`: a checkpoint.Checkpoint to continue from (checked by the caller with
     checkpoint.check_resumable); the run then does the epochs after it. `slow`: {worker:
-    factor} stragglers (worker.SlowCompute). `fault`: test-only (shardtrain.faults;
+    factor} stragglers (worker.SlowCompute). `fault`: test-only (shardtrain.hooks;
     default: from the environment).
 
     A worker that dies or fails is a RunError naming it, its exit status or signal and its
     last phase; Ctrl-C (KeyboardInterrupt) stops every worker and becomes Interrupted,
     naming the latest checkpoint and the `--resume DIR` that continues from it.
     """
-    from shardtrain import faults
+    from shardtrain import hooks
     from shardtrain.transport import frames
     from shardtrain.transport.pipes import make_pipe_mesh
 
     settings.validate()
     if facts is None:
-        from shardtrain.shards import check_shard_dir
+        from shardtrain.plan.shards import check_shard_dir
 
         # the whole set, before any process starts: a broken shard is one line, exit 2
         facts = shard_dir_facts(shard_dir, check_shard_dir(shard_dir))
@@ -282,7 +282,7 @@ def train_partitioned(shard_dir, settings: TrainSettings, *, timeout_s: float = 
     options = {"timeout_s": float(timeout_s), "link": link, "init_params": init_params,
                "load_shard": load_shard,
                "max_frame_bytes": int(max_frame_bytes or frames.DEFAULT_MAX_FRAME_BYTES),
-               "checkpoint": checkpoint, "fault": fault or faults.from_environment()}
+               "checkpoint": checkpoint, "fault": fault or hooks.fault_spec()}
     first = 1
     if resume is not None:
         options["resume"] = {"epoch": resume.epoch, "params": resume.params,
@@ -340,7 +340,7 @@ def _interrupted_text(book: _EpochBook, plan: dict | None) -> str:
     if plan is None:
         return (f"workers stopped {where}; no checkpoint was written (add --checkpoint DIR "
                 f"to be able to resume)")
-    from shardtrain.checkpoint import INDEX
+    from shardtrain.train.checkpoint import INDEX
 
     epoch = book.checkpoint
     try:                       # worker 0 may have committed one after its last report
@@ -494,7 +494,7 @@ def assemble_result(records, summaries, facts: ShardDirFacts, settings: TrainSet
     order): predictions and labels by global id, worker 0's weights, merged profile,
     traffic measured against predicted, per-worker rows. Transport-agnostic (pipes or MPI).
     """
-    from shardtrain.profile import merge
+    from shardtrain.transport.meter import merge
 
     k = facts.workers
     epochs_run = len(records) if epochs_run is None else int(epochs_run)
@@ -527,7 +527,7 @@ def assemble_result(records, summaries, facts: ShardDirFacts, settings: TrainSet
 
 
 def model_dims_of(facts: ShardDirFacts, settings: TrainSettings) -> list[tuple[int, int]]:
-    from shardtrain.schedule import layer_dims
+    from shardtrain.plan.schedule import layer_dims
 
     return layer_dims(facts.input_dim, settings.hidden, facts.num_classes, settings.layers)
 
@@ -541,8 +541,8 @@ def traffic_account(merged: dict, profiles: list[dict], structures, dims,
     `epochs`: the epochs this run did (fewer than settings.epochs after a resume or an
     early stop); `evals`: its evaluation forwards (default `epochs`); `stop_votes`: its
     early-stopping votes (see `survey.stop_vote_bytes`)."""
-    from shardtrain import survey
-    from shardtrain.schedule import layer_hops
+    from shardtrain.plan import survey
+    from shardtrain.plan.schedule import layer_hops
 
     hops = layer_hops(dims)
     itemsize = settings.np_dtype.itemsize

@@ -14,9 +14,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from shardtrain.data.graph import structure_fingerprint
 from shardtrain.errors import InputError
-from shardtrain.rundoc import structure_fingerprint
-from shardtrain.schedule import LayerHop, layer_dims, layer_hops
+from shardtrain.plan.schedule import LayerHop, layer_dims, layer_hops
 
 # Resident memory of an idle worker interpreter with numpy and scipy.sparse imported,
 # before it loads anything (its VmRSS, rounded up; benchmarks/bench_survey.py checks the
@@ -113,10 +113,10 @@ def epoch_payload_bytes(traffic: dict) -> int:
 
 
 def stop_vote_bytes(k: int) -> np.ndarray:
-    """Payload each rank sends in one early-stopping vote (`shardtrain.stopping`): a ring
+    """Payload each rank sends in one early-stopping vote (`shardtrain.train.stopping`): a ring
     all-reduce of VOTE_ELEMENTS float64 values, after every evaluation of an early-stopping
     run (none without --early-stop)."""
-    from shardtrain.stopping import VOTE_ELEMENTS, VOTE_ITEMSIZE
+    from shardtrain.plan.schedule import VOTE_ELEMENTS, VOTE_ITEMSIZE
 
     return _ring_send_elements(VOTE_ELEMENTS, k) * VOTE_ITEMSIZE
 
@@ -243,12 +243,12 @@ def survey_plan(graph, method: str, k: int, *, hops: list[LayerHop], itemsize: i
     """Partition (or take `assignment`), build the shards without vertex data, and report
     the plan: edge cut, replication factor, per-worker sizes, memory and bytes, traffic per
     epoch, and max/mean imbalances. Shards are freed before returning."""
-    from shardtrain.shards import build_shards, shard_stats
+    from shardtrain.plan.shards import build_shards, shard_stats
 
     t0, c0 = time.perf_counter(), time.process_time()
     details = {"method": method}             # how the plan was made (METIS: scheme, balance)
     if assignment is None:
-        from shardtrain.partition import partition_plan
+        from shardtrain.plan.partition import partition_plan
 
         assignment, details = partition_plan(graph, method, k, seed=seed, imbalance=imbalance)
     t1, c1 = time.perf_counter(), time.process_time()
@@ -321,7 +321,7 @@ def model_shape(graph, settings: SurveySettings) -> tuple[list[tuple[int, int]],
 def check_plans(graph, methods: list[str], workers_list: list[int],
                 settings: SurveySettings) -> None:
     """Reject bad options (InputError naming the option) before any work starts."""
-    from shardtrain.partition import METHODS
+    from shardtrain.plan.partition import METHODS
 
     for m in methods:
         if m not in METHODS:

@@ -13,9 +13,9 @@ from pathlib import Path
 import numpy as np
 
 from shardtrain.compat import metis_part_graph
+from shardtrain.data.graph import Graph
+from shardtrain.data.readers import read_npy, require_regular_file
 from shardtrain.errors import InputError, RunError
-from shardtrain.graph import Graph
-from shardtrain.io import read_npy, require_regular_file
 
 # ----------------------------------------------------------------------------- METIS
 

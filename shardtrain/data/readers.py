@@ -1,9 +1,6 @@
 """Graph input: `.npz` bundles, Matrix Market `.mtx`, text edge lists, `--features` and
-`--labels` files; validation with one-line `file:line` errors; split masks.
-
-Text is parsed with numpy over the raw bytes, in chunks cut at line ends, so a 10 M-edge list
-loads in seconds. The slow, line-by-line look only happens on a file already known to be bad,
-to name its first bad line.
+`--labels` files; validation with one-line `file:line` errors. Text tables are read by
+`data.textscan`, missing split masks made by `data.masks`.
 
 Stored types: ids and labels int64; features float64 when the input array is float64,
 float32 otherwise (text features become float32); masks bool.
@@ -11,37 +8,25 @@ float32 otherwise (text features become float32); masks bool.
 from __future__ import annotations
 
 import os
-import re
-import stat
-import warnings
 import zipfile
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Callable, Iterator
+from typing import Callable
 
 import numpy as np
 import scipy.io
 import scipy.sparse as sp
 
+from shardtrain.data.graph import EdgeCleanup, Graph, csr_from_edges
+from shardtrain.data.inputs import open_checked, require_regular_file
+from shardtrain.data.masks import MASK_KEYS, make_splits
+from shardtrain.data.memory import feature_bytes_of, graph_load_bytes, require_memory
+from shardtrain.data.textscan import TextTable, show
 from shardtrain.errors import InputError
-from shardtrain.graph import EdgeCleanup, Graph, csr_from_edges
-from shardtrain.memory import feature_bytes_of, graph_load_bytes, require_memory
 
 EDGE_LIST_SUFFIXES = (".csv", ".tsv", ".txt", ".edges")
 GRAPH_SUFFIXES = (".npz", ".mtx") + EDGE_LIST_SUFFIXES
 NPZ_KEYS = ("edges", "num_vertices", "features", "labels", "train_mask", "val_mask", "test_mask")
-MASK_KEYS = ("train_mask", "val_mask", "test_mask")
-
-_CHUNK_BYTES = 8 << 20      # text is scanned this much at a time (bounded scratch memory)
-_MAX_ID_DIGITS = 18         # anything longer cannot be an int64 vertex id
-
-# byte classes for the text scanner
-_SEP = np.zeros(256, dtype=bool)
-_SEP[[ord(" "), ord("\t"), ord(","), ord("\r"), ord("\n"), ord("\f"), ord("\v")]] = True
-_DIGIT = np.zeros(256, dtype=bool)
-_DIGIT[ord("0"):ord("9") + 1] = True
-_COMMENT = (ord("#"), ord("%"))
-_SPLIT = re.compile(rb"[\s,]+")
 
 
 @dataclass
@@ -57,412 +42,6 @@ class LoadedGraph:
     source: str
     notes: list[str] = field(default_factory=list)
     input_dim: int | None = None
-
-
-# --------------------------------------------------------------------------- text scanning
-
-_FILE_KINDS = ((stat.S_ISFIFO, "a named pipe (FIFO)"), (stat.S_ISCHR, "a character device"),
-               (stat.S_ISBLK, "a block device"), (stat.S_ISSOCK, "a socket"))
-
-
-def require_regular_file(path: str | os.PathLike, what: str = "file",
-                         option: str | None = None) -> Path:
-    """`path` as a Path when it is a regular file (symbolic links followed), else InputError
-    (prefixed with `option`, e.g. "--assignment", when given).
-
-    Checked with os.stat before anything opens the file: opening a FIFO for reading blocks
-    until a writer comes, and a character device can be read without end. Every reader of a
-    graph, features, labels or assignment file goes through here.
-    """
-    path = Path(path)
-    said = f"{option} {path}" if option else f"{path}"
-    try:
-        mode = os.stat(path).st_mode
-    except FileNotFoundError:
-        raise InputError(f"{said}: no such {what}") from None
-    except NotADirectoryError:
-        raise InputError(f"{said}: no such {what} (a parent is not a folder)") from None
-    except OSError as exc:
-        raise InputError(f"{said}: cannot read: {exc.strerror or exc}") from None
-    if stat.S_ISDIR(mode):
-        raise InputError(f"{said}: is a directory, expected a {what}")
-    if not stat.S_ISREG(mode):
-        kind = next((name for test, name in _FILE_KINDS if test(mode)), "a special file")
-        raise InputError(f"{said}: is {kind}, expected a regular {what}")
-    return path
-
-
-def _open_checked(path: Path, what: str = "file"):
-    require_regular_file(path, what)
-    try:
-        return open(path, "rb")
-    except OSError as exc:
-        raise InputError(f"{path}: cannot read: {exc.strerror or exc}") from None
-
-
-def _chunks(path: Path) -> Iterator[bytes]:
-    """The file in pieces of about _CHUNK_BYTES, each ending with a newline."""
-    with _open_checked(path) as fh:
-        carry = b""
-        first = True
-        while True:
-            try:
-                block = fh.read(_CHUNK_BYTES)
-            except OSError as exc:
-                raise InputError(f"{path}: cannot read: {exc.strerror or exc}") from None
-            if first:
-                first = False
-                if block.startswith(b"\xef\xbb\xbf"):  # UTF-8 byte-order mark
-                    block = block[3:]
-            if not block:
-                if carry:
-                    yield carry + b"\n"
-                return
-            data = carry + block
-            cut = data.rfind(b"\n")
-            if cut < 0:
-                carry = data
-                continue
-            carry = data[cut + 1:]
-            yield data[:cut + 1]
-
-
-@dataclass
-class _Chunk:
-    """Token layout of one chunk of text: where tokens start/end and which line they are on."""
-
-    b: np.ndarray            # the bytes, uint8
-    starts: np.ndarray       # token start offsets
-    ends: np.ndarray         # token end offsets (exclusive)
-    line: np.ndarray         # line (0-based, within the chunk) of each token
-    counts: np.ndarray       # tokens per line
-    skip: np.ndarray         # per line: comment (or header) line, not data
-
-
-def _blank_comments(b: np.ndarray) -> np.ndarray:
-    """`b` with every byte from a '#' or '%' to the end of its line made a space (a copy when
-    there is a comment). Vectorised: each byte looks up the latest comment mark or newline
-    at or before it."""
-    marks = (b == _COMMENT[0]) | (b == _COMMENT[1])
-    if not marks.any():
-        return b
-    newline = b == 10
-    last = np.where(marks | newline, np.arange(b.shape[0], dtype=np.int32), -1)
-    np.maximum.accumulate(last, out=last)
-    inside = (last >= 0) & marks[np.maximum(last, 0)]
-    out = b.copy()
-    out[inside] = ord(" ")
-    return out
-
-
-def _tokenize(chunk: bytes) -> _Chunk:
-    b = _blank_comments(np.frombuffer(chunk, dtype=np.uint8))
-    sep = _SEP[b]
-    body = ~sep
-    prev_sep = np.empty_like(sep)
-    prev_sep[0] = True
-    prev_sep[1:] = sep[:-1]
-    starts = np.flatnonzero(body & prev_sep)
-    ends = np.flatnonzero(body & np.append(sep[1:], True)) + 1
-    newlines = np.flatnonzero(b == 10)
-    line = np.searchsorted(newlines, starts)
-    nlines = newlines.shape[0]
-    counts = np.bincount(line, minlength=nlines)
-    # comment lines have no tokens left; `skip` marks a header line once one is found
-    skip = np.zeros(nlines, dtype=bool)
-    return _Chunk(b, starts, ends, line, counts, skip)
-
-
-# a comma with only blanks since the line start or the previous comma (the scanner would
-# otherwise close the gap and shift the columns; loadtxt refuses such a line too)
-_EMPTY_FIELD = re.compile(rb"^[ \t]*,|,[ \t]*,")
-
-
-def _empty_field_lines(c: _Chunk, data_line: np.ndarray) -> np.ndarray:
-    """Data lines of a chunk with an empty field (see _EMPTY_FIELD), vectorised: a comma is
-    empty-handed when no token starts between it and the previous comma of its line (or the
-    line start). A trailing comma loses nothing and is allowed."""
-    commas = np.flatnonzero(c.b == ord(","))
-    if commas.shape[0] == 0:
-        return commas
-    newlines = np.flatnonzero(c.b == 10)
-    comma_line = np.searchsorted(newlines, commas)
-    before = np.searchsorted(c.starts, commas)          # tokens started before each comma
-    line_first = np.searchsorted(c.line, comma_line)    # index of the line's first token
-    same_line = np.concatenate([[False], comma_line[1:] == comma_line[:-1]])
-    previous = np.concatenate([[0], before[:-1]])
-    empty = np.where(same_line, before == previous, before == line_first)
-    return comma_line[empty & data_line[comma_line]]
-
-
-def _line_text(chunk: bytes, index: int) -> bytes:
-    """Line `index` (0-based) of a chunk, for error messages and header checks."""
-    pos = 0
-    for _ in range(index):
-        pos = chunk.index(b"\n", pos) + 1
-    return chunk[pos:chunk.index(b"\n", pos)]
-
-
-def _show(raw: bytes, limit: int = 40) -> str:
-    text = raw.decode("utf-8", "replace").strip()
-    return repr(text if len(text) <= limit else text[:limit] + "...")
-
-
-def _is_int(tok: bytes) -> bool:
-    return re.fullmatch(rb"[+-]?[0-9]+", tok) is not None
-
-
-def _is_float(tok: bytes) -> bool:
-    if b"_" in tok:        # Python's float() takes 1_000; numpy's readers do not
-        return False
-    try:
-        float(tok)
-    except ValueError:
-        return False
-    return True
-
-
-def _strip_comment(raw: bytes) -> bytes:
-    """The line up to its first '#' or '%' (a comment runs to the end of the line)."""
-    cut = min((i for i in (raw.find(b"#"), raw.find(b"%")) if i >= 0), default=len(raw))
-    return raw[:cut]
-
-
-# a field that looks like a number: a digit, after an optional sign and decimal point
-_NUMBER_LIKE = re.compile(rb"[+-]?\.?[0-9]")
-
-
-def _is_header(raw: bytes) -> bool:
-    """The header rule, one for every text table and both readers: the first data line is a
-    header when none of its fields looks like a number (`source,target`). `0 1 # note` is
-    data; `1e3 5` or `0x10 5` is data too, and then an error naming the line."""
-    toks = [t for t in _SPLIT.split(_strip_comment(raw)) if t]
-    return bool(toks) and not any(_NUMBER_LIKE.match(t) for t in toks)
-
-
-def _maybe_header(c: _Chunk, chunk: bytes) -> int | None:
-    """Index of the first data line if it is a header (see `_is_header`)."""
-    data = np.flatnonzero(~c.skip & (c.counts > 0))
-    if data.shape[0] == 0:
-        return None
-    if _is_header(_line_text(chunk, int(data[0]))):
-        return int(data[0])
-    return None
-
-
-def _first_data_line(path: Path, after: int = 0) -> tuple[int, bytes] | None:
-    """(1-based line number, text without its comment) of the first line past `after` that
-    has a field once comments are cut (the same lines the byte scanner calls data)."""
-    with _open_checked(path) as fh:
-        for line_no, raw in enumerate(fh, start=1):
-            if line_no == 1 and raw.startswith(b"\xef\xbb\xbf"):
-                raw = raw[3:]
-            text = _strip_comment(raw).strip()
-            if line_no > after and any(_SPLIT.split(text)):
-                return line_no, text
-    return None
-
-
-def _comment_char(path: Path) -> str:
-    """'%' when the first comment line of the file uses it, else '#'."""
-    with _open_checked(path) as fh:
-        for raw in fh:
-            text = raw.lstrip(b"\xef\xbb\xbf").strip()
-            if text[:1] in (b"#", b"%"):
-                return text[:1].decode()
-            if text:
-                break
-    return "#"
-
-
-def _int_values(c: _Chunk, keep: np.ndarray) -> np.ndarray:
-    """Parse the kept tokens (already checked to be [+-]?digits, <= 18 digits) as int64."""
-    starts, ends = c.starts[keep], c.ends[keep]
-    neg = c.b[starts] == ord("-")
-    starts = starts + (neg | (c.b[starts] == ord("+")))
-    length = ends - starts
-    value = np.zeros(starts.shape[0], dtype=np.int64)
-    scale = np.int64(1)
-    # loop over digit positions (at most 18), right to left; not over tokens
-    for k in range(int(length.max()) if length.shape[0] else 0):
-        has = length > k
-        pos = np.where(has, ends - 1 - k, 0)
-        value += np.where(has, c.b[pos].astype(np.int64) - 48, 0) * scale
-        scale *= 10
-    value[neg] = -value[neg]
-    return value
-
-
-class _TextTable:
-    """A whitespace/comma separated numeric table read from a text file.
-
-    columns: the required number of columns, or None to take it from the first data row.
-    kind: "int" or "float". values is flat (rows * columns), in file order.
-    """
-
-    def __init__(self, path: Path, *, kind: str, columns: int | None, what: str):
-        self.path, self.kind, self.columns, self.what = path, kind, columns, what
-        self.header: tuple[int, str] | None = None
-        fast = self._read_fast()
-        self.values, self.rows = fast if fast is not None else self._read()
-
-    def _read_fast(self) -> tuple[np.ndarray, int] | None:
-        """np.loadtxt (C-implemented in numpy 2; faster than the byte scanner, see
-        benchmarks/bench_load_synth.py "scanner_over_loadtxt"). None when it refuses the file:
-        the byte scanner then either names the first bad line or reads what loadtxt could
-        not (e.g. mixed separators)."""
-        first = _first_data_line(self.path)
-        skip, delimiter = 0, None
-        if first is not None:
-            line_no, raw = first
-            if _is_header(raw):
-                self.header = (line_no, _show(raw))
-                skip = line_no
-                nxt = _first_data_line(self.path, after=line_no)
-                raw = nxt[1] if nxt is not None else b""
-            delimiter = "," if b"," in raw else None
-        dtype = np.int64 if self.kind == "int" else np.float64
-        try:
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore")   # "input contained no data"
-                # one comment character keeps loadtxt in C (a list of them is slower);
-                # a file that mixes both falls back to the byte scanner
-                table = np.loadtxt(self.path, dtype=dtype, comments=_comment_char(self.path),
-                                   delimiter=delimiter, skiprows=skip, ndmin=2,
-                                   encoding="utf-8")
-        except Exception:
-            self.header = None
-            return None
-        if table.shape[0] == 0:
-            return np.zeros(0, dtype=dtype), 0
-        if self.kind == "int" and (table.max() >= 10 ** _MAX_ID_DIGITS
-                                   or table.min() <= -10 ** _MAX_ID_DIGITS):
-            self.header = None
-            return None      # the scanner names the line with the too-long number
-        if self.columns is None:
-            self.columns = int(table.shape[1])
-        elif table.shape[1] != self.columns:
-            self.header = None
-            return None
-        return table.reshape(-1), int(table.shape[0])
-
-    def _fail(self, line_no: int, message: str):
-        raise InputError(f"{self.path}:{line_no}: {message}")
-
-    def _read(self) -> tuple[np.ndarray, int]:
-        token_ok = _is_int if self.kind == "int" else _is_float
-        parts: list[np.ndarray] = []
-        rows = 0
-        line_offset = 0
-        header_possible = True
-        for chunk in _chunks(self.path):
-            c = _tokenize(chunk)
-            if header_possible and (~c.skip & (c.counts > 0)).any():
-                header_possible = False
-                h = _maybe_header(c, chunk)
-                if h is not None:
-                    c.skip[h] = True
-                    self.header = (line_offset + h + 1,
-                                   _show(_strip_comment(_line_text(chunk, h))))
-            data_line = ~c.skip & (c.counts > 0)
-            if self.columns is None and data_line.any():
-                self.columns = int(c.counts[np.argmax(data_line)])
-            keep = data_line[c.line]
-            self._check_chunk(c, chunk, data_line, keep, line_offset, token_ok)
-            if self.kind == "int":
-                parts.append(_int_values(c, keep))
-            else:
-                parts.append(self._float_values(c, chunk, data_line, line_offset, token_ok))
-            rows += int(data_line.sum())
-            line_offset += c.counts.shape[0]
-        values = np.concatenate(parts) if parts else np.zeros(0, np.int64 if self.kind == "int"
-                                                               else np.float64)
-        return values, rows
-
-    def _check_chunk(self, c: _Chunk, chunk: bytes, data_line, keep, line_offset, token_ok):
-        """Find the first bad data line in this chunk, if any, and raise naming it."""
-        bad_lines = [np.flatnonzero(data_line & (c.counts != self.columns)),
-                     _empty_field_lines(c, data_line)]
-        if self.kind == "int":
-            b = c.b
-            body = ~_SEP[b]
-            odd = body & ~_DIGIT[b]
-            odd_pos = np.flatnonzero(odd)
-            if odd_pos.shape[0]:
-                # a '-' or '+' right at a token start and followed by a digit is a sign
-                tok_start = np.zeros(b.shape[0], dtype=bool)
-                tok_start[c.starts] = True
-                nxt = np.minimum(odd_pos + 1, b.shape[0] - 1)
-                sign = (((b[odd_pos] == ord("-")) | (b[odd_pos] == ord("+")))
-                        & tok_start[odd_pos] & _DIGIT[b[nxt]])
-                odd_pos = odd_pos[~sign]
-                newlines = np.flatnonzero(b == 10)
-                odd_line = np.searchsorted(newlines, odd_pos)
-                bad_lines.append(odd_line[data_line[odd_line]])
-            signed = ~_DIGIT[b[np.minimum(c.starts, b.shape[0] - 1)]]
-            long_tok = keep & ((c.ends - c.starts - signed) > _MAX_ID_DIGITS)
-            bad_lines.append(c.line[long_tok])
-        bad = np.concatenate(bad_lines)
-        if bad.shape[0] == 0:
-            return
-        first = int(bad.min())
-        raw = _line_text(chunk, first)
-        self._explain(raw, line_offset + first + 1, token_ok)
-
-    def _explain(self, raw: bytes, line_no: int, token_ok):
-        toks = [t for t in _SPLIT.split(_strip_comment(raw)) if t]
-        for t in toks:
-            if not token_ok(t):
-                word = "an integer" if self.kind == "int" else "a number"
-                self._fail(line_no, f"{_show(t)} is not {word} ({self.what})")
-        if self.kind == "int" and any(len(t.lstrip(b"+-")) > _MAX_ID_DIGITS for t in toks):
-            self._fail(line_no, f"number too large ({self.what})")
-        if _EMPTY_FIELD.search(_strip_comment(raw)):
-            self._fail(line_no, f"empty field: nothing between two commas, or before the "
-                                f"first ({self.what})")
-        self._fail(line_no, f"expected {self.columns} column{'s' * (self.columns != 1)}, "
-                            f"found {len(toks)} ({self.what})")
-
-    def _float_values(self, c: _Chunk, chunk: bytes, data_line, line_offset, token_ok):
-        b = c.b.copy()
-        b[_SEP[b]] = ord(" ")
-        # blank out comment/header lines so only data remains
-        newlines = np.flatnonzero(c.b == 10)
-        line_starts = np.concatenate([[0], newlines[:-1] + 1])
-        skip = ~data_line
-        if skip.any():
-            lengths = newlines - line_starts + 1
-            b[np.repeat(skip, lengths)] = ord(" ")
-        expected = int(data_line.sum()) * int(self.columns or 0)
-        if expected == 0:   # np.fromstring reads an all-blank string as [-1.0]
-            return np.zeros(0, dtype=np.float64)
-        try:
-            values = np.fromstring(b.tobytes(), sep=" ", dtype=np.float64)
-        except ValueError:
-            values = None
-        if values is None or values.shape[0] != expected:
-            # slow path, only on a bad file: name the first line with an unparsable token
-            for i in np.flatnonzero(data_line):
-                raw = _line_text(chunk, int(i))
-                if not all(token_ok(t) for t in _SPLIT.split(_strip_comment(raw)) if t):
-                    self._explain(raw, line_offset + int(i) + 1, token_ok)
-            self._fail(line_offset + 1, f"could not parse the numbers ({self.what})")
-        return values
-
-    def line_of_row(self, row: int) -> int:
-        """1-based line number of data row `row` (a second pass, used only for errors)."""
-        seen = 0
-        line_offset = 0
-        for i, chunk in enumerate(_chunks(self.path)):
-            c = _tokenize(chunk)
-            if i == 0 and self.header is not None:
-                c.skip[self.header[0] - 1] = True
-            data = np.flatnonzero(~c.skip & (c.counts > 0))
-            if row < seen + data.shape[0]:
-                return line_offset + int(data[row - seen]) + 1
-            seen += data.shape[0]
-            line_offset += c.counts.shape[0]
-        return line_offset
 
 
 # --------------------------------------------------------------------------- formats
@@ -483,7 +62,7 @@ class _Raw:
 
 
 def _read_edge_list(path: Path) -> _Raw:
-    table = _TextTable(path, kind="int", columns=2, what="edge list: two integer vertex ids")
+    table = TextTable(path, kind="int", columns=2, what="edge list: two integer vertex ids")
     pairs = table.values.reshape(-1, 2)
     raw = _Raw(pairs[:, 0], pairs[:, 1],
                locate_edge=lambda row: f"{path}:{table.line_of_row(row)}")
@@ -517,7 +96,7 @@ def _mtx_header(path: Path) -> tuple[int, str, str, str, int, int, int, int]:
     line) of a Matrix Market file, read without scipy so that a declared size is judged
     before anything is allocated."""
     size = os.stat(require_regular_file(path)).st_size
-    with _open_checked(path) as fh:
+    with open_checked(path) as fh:
         banner = _readline_bounded(fh, 1024).split()
         words = [w.decode("ascii", "replace").lower() for w in banner]
         if (len(words) != 5 or words[0] != "%%matrixmarket" or words[1] != "matrix"
@@ -541,7 +120,7 @@ def _mtx_header(path: Path) -> tuple[int, str, str, str, int, int, int, int]:
     if len(parts) != want or not all(p.isdigit() for p in parts):
         shape = "ROWS COLS ENTRIES" if want == 3 else "ROWS COLS"
         raise InputError(f"{path}:{line_no}: the size line must be {shape} (non-negative "
-                         f"integers), got {_show(text)}")
+                         f"integers), got {show(text)}")
     rows, cols = int(parts[0]), int(parts[1])
     if fmt == "coordinate":
         entries = int(parts[2])
@@ -672,7 +251,7 @@ def _read_npz(path: Path) -> _Raw:
     try:
         bundle = zipfile.ZipFile(path)
     except (zipfile.BadZipFile, OSError, ValueError) as exc:
-        with _open_checked(path) as fh:
+        with open_checked(path) as fh:
             single = fh.read(6) == b"\x93NUMPY"
         if single:
             raise InputError(f"{path}: not an .npz bundle (a single array)") from None
@@ -777,7 +356,7 @@ def load_features(path: str | os.PathLike) -> np.ndarray:
     path = Path(path)
     if _suffix(path, (".npy", ".csv"), "--features") == ".npy":
         return _check_feature_array(_load_npy(path), str(path))
-    table = _TextTable(path, kind="float", columns=None, what="features")
+    table = TextTable(path, kind="float", columns=None, what="features")
     d = table.columns or 0
     x = table.values.reshape(table.rows, d) if d else np.zeros((0, 0))
     finite = np.isfinite(x).all(axis=1)
@@ -792,7 +371,7 @@ def load_labels(path: str | os.PathLike) -> np.ndarray:
     path = Path(path)
     if path.suffix.lower() == ".npy":
         return _check_label_array(_load_npy(path, labelled=True), str(path))
-    table = _TextTable(path, kind="int", columns=1, what="labels: one integer per line")
+    table = TextTable(path, kind="int", columns=1, what="labels: one integer per line")
     y = table.values
     bad = y < -1
     if bad.any():
@@ -807,7 +386,7 @@ def read_npy(path: str | os.PathLike, check=None) -> np.ndarray:
     `check(shape, dtype)` (which may raise InputError: a memory estimate, a shape test) and
     before a header that declares more data than the file holds is refused as truncated."""
     path = require_regular_file(path)
-    return _npy_read(lambda: _open_checked(path), str(path), os.stat(path).st_size, check)
+    return _npy_read(lambda: open_checked(path), str(path), os.stat(path).st_size, check)
 
 
 def _vertex_data_memory(path: Path, labelled: bool):
@@ -822,46 +401,6 @@ def _vertex_data_memory(path: Path, labelled: bool):
 
 def _load_npy(path: Path, labelled: bool = False) -> np.ndarray:
     return read_npy(path, _vertex_data_memory(path, labelled))
-
-
-# --------------------------------------------------------------------------- splits
-
-def make_splits(labels: np.ndarray, seed: int, per_class: int = 20, val: int = 500,
-                test: int = 1000) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(train, val, test) bool masks, deterministic from `seed`.
-
-    The protocol of Kipf & Welling (ICLR 2017): `per_class` labelled vertices of each class for
-    training, then `val` and `test` vertices drawn from the other labelled vertices. For small
-    data: a class with fewer than 2 * per_class vertices gives half of them (at least one) to
-    training, and val/test shrink in proportion when too few labelled vertices remain. The
-    three masks are disjoint and hold only labelled vertices (label >= 0).
-    """
-    labels = np.asarray(labels, dtype=np.int64)
-    n = labels.shape[0]
-    rng = np.random.default_rng(seed)
-    labelled = np.flatnonzero(labels >= 0)
-    order = labelled[rng.permutation(labelled.shape[0])]
-    order = order[np.argsort(labels[order], kind="stable")]   # random order within each class
-    cls = labels[order]
-    counts = np.bincount(cls) if cls.shape[0] else np.zeros(0, np.int64)
-    class_start = np.concatenate([[0], np.cumsum(counts)[:-1]]).astype(np.int64)
-    rank = np.arange(order.shape[0]) - class_start[cls]
-    quota = np.minimum(per_class, np.maximum(1, counts // 2))
-    in_train = rank < quota[cls]
-    train = np.zeros(n, dtype=bool)
-    train[order[in_train]] = True
-    rest = order[~in_train]
-    rest = rest[rng.permutation(rest.shape[0])]
-    if val + test > rest.shape[0]:
-        n_val = (rest.shape[0] * val) // max(val + test, 1)
-        n_test = rest.shape[0] - n_val
-    else:
-        n_val, n_test = val, test
-    val_mask = np.zeros(n, dtype=bool)
-    test_mask = np.zeros(n, dtype=bool)
-    val_mask[rest[:n_val]] = True
-    test_mask[rest[n_val:n_val + n_test]] = True
-    return train, val_mask, test_mask
 
 
 # --------------------------------------------------------------------------- load_graph

@@ -20,7 +20,7 @@ from typing import Callable
 import numpy as np
 
 from shardtrain.errors import InputError
-from shardtrain.schedule import LayerHop
+from shardtrain.plan.schedule import LayerHop
 
 Params = list[tuple[np.ndarray, "np.ndarray | None"]]
 Grads = list[tuple[np.ndarray, "np.ndarray | None"]]

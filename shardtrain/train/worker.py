@@ -31,10 +31,11 @@ import msgpack
 import numpy as np
 import scipy.sparse as sp
 
-from shardtrain import model, stopping
 from shardtrain.compat import add_csr_product
-from shardtrain.schedule import layer_dims, layer_hops
-from shardtrain.settings import TrainSettings
+from shardtrain.plan import schedule
+from shardtrain.plan.schedule import layer_dims, layer_hops
+from shardtrain.train import model, stopping
+from shardtrain.train.settings import TrainSettings
 
 if TYPE_CHECKING:
     from shardtrain.transport.pipes import PipeTransport
@@ -239,9 +240,9 @@ def run_worker(shard, settings: TrainSettings, transport, profile, report: Calla
     [...], "val_loss_sum", "step_s", "eval_s"} (the coordinator adds the parts and the
     penalty once, since every worker computes the same penalty), plus "val_loss" (the
     global mean every worker decided on) with early stopping.
-    Early stopping (`settings.early_stop` = N > 0, `shardtrain.stopping`): after the
+    Early stopping (`settings.early_stop` = N > 0, `shardtrain.train.stopping`): after the
     evaluation every worker all-reduces [val loss sum, val count] (float64, kind
-    "allreduce", `stopping.VOTE_ELEMENTS`), so all hold the same global loss, take the same
+    "allreduce", `schedule.VOTE_ELEMENTS`), so all hold the same global loss, take the same
     decision and stop at the same epoch; the returned weights and predictions are the
     best epoch's. `init_early` (checkpoint arrays) resumes that state; when the best epoch
     lies before the resume and is never beaten, one more evaluation forward of its weights
@@ -373,7 +374,7 @@ def _global_val_loss(val_sum: float, val_count: int, allreduce) -> float:
     """The validation loss over every worker's rows: all-reduce [sum, count] (float64, so
     the count is exact and every worker ends with the same bits), then divide."""
     vote = np.array([val_sum, float(val_count)], dtype=np.float64)
-    assert vote.size == stopping.VOTE_ELEMENTS and vote.itemsize == stopping.VOTE_ITEMSIZE
+    assert vote.size == schedule.VOTE_ELEMENTS and vote.itemsize == schedule.VOTE_ITEMSIZE
     allreduce(vote)
     if vote[1] == 0:
         raise ValueError("--early-stop: the graph has no validation vertices (the "
@@ -457,17 +458,17 @@ def process_main(rank: int, size: int, shard_dir: str, settings_dict: dict, num_
     `shards.load_shard`; tests and fault injection pass their own), phase (a shared
     char buffer the coordinator reads when this process dies without a word), checkpoint
     ({"folder", "every", "identity"} or None; worker 0 writes), resume ({"epoch",
-    "params", "adam"} or None), slow (compute factor), fault (see `shardtrain.faults`).
+    "params", "adam"} or None), slow (compute factor), fault (test-only, see `shardtrain.hooks`).
     """
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     signal.signal(signal.SIGHUP, signal.SIG_IGN)     # a closed terminal: the coordinator decides
     pin_blas_threads(int(settings_dict.get("threads", 1)))
     _install_log_queue(log_queue, log_level)
-    from shardtrain.faults import Fault
+    from shardtrain import hooks
 
     phase = ["starting"]
     phase_buf = options.get("phase")
-    fault = Fault(options.get("fault"), rank)
+    fault = hooks.phase_watcher(options.get("fault"), rank)
 
     def on_phase(text: str) -> None:
         phase[0] = text
@@ -481,13 +482,13 @@ def process_main(rank: int, size: int, shard_dir: str, settings_dict: dict, num_
     transport: PipeTransport | None = None
     status = 0
     try:
-        from shardtrain.profile import Profile
+        from shardtrain.transport.meter import Profile
         from shardtrain.transport.pipes import PipeTransport
 
         on_phase("loading shard")
         load = options.get("load_shard")
         if load is None:
-            from shardtrain.shards import load_shard
+            from shardtrain.plan.shards import load_shard
             load = load_shard
         shard = load(shard_dir, rank)
         settings = TrainSettings.from_dict(settings_dict)
@@ -538,7 +539,7 @@ def _checkpoint_writer(plan: dict, last_epoch: int, on_phase: Callable[[str], No
     """Worker 0's end-of-epoch hook: every plan["every"] epochs and at the last one, write
     the weights and Adam state (identical on every worker after the all-reduce, so one
     writer is enough and nothing large crosses the control pipe)."""
-    from shardtrain import checkpoint
+    from shardtrain.train import checkpoint
 
     def stage(epoch: int, what: str) -> None:
         on_phase(f"epoch {epoch} checkpoint write" if what == "write" else f"epoch {epoch} compute")

@@ -5,7 +5,7 @@ A checkpoint folder holds two kinds of file:
 - `state-EEEEEE.npz`: the weights (`w0`, `b0`, ...) and the Adam state (`adam_t`,
   `adam_m_<name>`, `adam_v_<name>`) after the step of epoch E, and with early stopping
   its state (`early_best_epoch`, `early_best_loss`, `early_best_<name>`: see
-  `shardtrain.stopping`); plain arrays, read back with allow_pickle=False;
+  `shardtrain.train.stopping`); plain arrays, read back with allow_pickle=False;
 - `checkpoint.json`: the index: the epoch, the state file's name and SHA-256, and the
   run's identity (settings, model dims, worker count, graph and shard-directory
   fingerprints) that a resume must match.
@@ -66,7 +66,7 @@ def file_sha256(path) -> str:
 
 def shard_dir_fingerprint(shard_dir) -> str:
     """SHA-256 (16 hex digits) of the manifest and every shard file, in manifest order."""
-    from shardtrain.shards import MANIFEST, load_manifest
+    from shardtrain.plan.shards import MANIFEST, load_manifest
 
     manifest = load_manifest(shard_dir)
     h = hashlib.sha256()
@@ -137,7 +137,7 @@ def epoch_writer(plan: dict, last_epoch: int, *,
     plan["folder"] (created here; its parent must exist). `plan` is {"folder", "every",
     "identity"}; `before_commit(epoch)` as in `write_checkpoint`; `on_stage(epoch, "write" |
     "done")` brackets each write (the worker names its phase with it)."""
-    from shardtrain import model
+    from shardtrain.train import model
 
     Path(plan["folder"]).mkdir(exist_ok=True)
     stage = on_stage or (lambda epoch, what: None)
@@ -205,7 +205,7 @@ def read_checkpoint(folder, option: str = "--resume") -> Checkpoint:
     except (OSError, ValueError, EOFError, KeyError, zipfile.BadZipFile) as exc:
         raise InputError(f"{state}: not a readable .npz ({' '.join(str(exc).split())})"
                          ) from None
-    from shardtrain.stopping import PREFIX as EARLY
+    from shardtrain.train.stopping import PREFIX as EARLY
 
     params = {k: v for k, v in arrays.items() if not k.startswith(("adam_", EARLY))}
     adam = {k: v for k, v in arrays.items() if k.startswith("adam_")}

@@ -12,21 +12,9 @@ for every JSON we write: `graph.vertices` and `graph.edges`, as the survey has t
 """
 from __future__ import annotations
 
+from shardtrain.data.graph import structure_fingerprint
+
 MODES = ("reference", "partitioned")
-
-
-def structure_fingerprint(graph) -> str:
-    """SHA-256 (16 hex digits) of the graph's edges alone (CSR indptr and indices), so
-    that a survey, a run and a forecast of one graph file match whatever seed drew their
-    split masks; `report` refuses documents whose fingerprints differ."""
-    import hashlib
-
-    import numpy as np
-
-    h = hashlib.sha256()
-    for arr in (graph.indptr, graph.indices):
-        h.update(np.ascontiguousarray(arr, dtype=np.int64).tobytes())
-    return h.hexdigest()[:16]
 
 
 def graph_of_file(source, graph, notes=()) -> dict:

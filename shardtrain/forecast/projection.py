@@ -2,7 +2,7 @@
 
 Inputs are a survey plan (per-worker sizes and the k x k traffic), the model shape, a link
 (bandwidth per worker, latency) and a calibration of this machine's kernels
-(`shardtrain.calibrate`), scaled by a speed factor for the target CPUs.
+(`shardtrain.forecast.calibrate`), scaled by a speed factor for the target CPUs.
 
 The epoch follows the worker's schedule, step by step, for every worker at once:
 - compute: counted work of each kernel (sparse products nnz x width forward and backward;
@@ -51,7 +51,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from shardtrain.calibrate import (
+from shardtrain.errors import InputError
+from shardtrain.forecast.calibrate import (
     dense_speed,
     elementwise_speed,
     gather_speed,
@@ -61,7 +62,6 @@ from shardtrain.calibrate import (
     sparse_speed,
     transport_copy_speed,
 )
-from shardtrain.errors import InputError
 
 LINK_PRESETS_GBPS = (1.0, 10.0, 25.0, 100.0)
 DEFAULT_LATENCY_US = 20.0

@@ -13,7 +13,7 @@ from pathlib import Path
 from typing import Any, Callable
 
 from shardtrain.errors import InputError
-from shardtrain.tables import human_bytes, human_seconds
+from shardtrain.units import human_bytes, human_seconds
 
 KINDS = ("survey", "run", "forecast")
 
@@ -214,7 +214,7 @@ def find_plan(plans: list[dict], plan: dict | None) -> dict | None:
 def survey_section(doc: dict, plot_dir: Path, plan: dict | None = None) -> str:
     """Facts, the plan table and the pictures; the heat map shows `plan` (method and
     workers of one surveyed plan) when given and surveyed, else `plots.pick_heatmap_plan`."""
-    from shardtrain.plots import survey_plots
+    from shardtrain.report.plots import survey_plots
 
     g, m = doc.get("graph", {}), doc.get("model", {})
     rows = []
@@ -246,7 +246,7 @@ def survey_section(doc: dict, plot_dir: Path, plan: dict | None = None) -> str:
 
 
 def run_section(doc: dict, plot_dir: Path) -> str:
-    from shardtrain.plots import run_plots
+    from shardtrain.report.plots import run_plots
 
     s, g, t = doc.get("settings", {}), doc.get("graph", {}), doc.get("traffic", {})
     epochs = doc.get("epochs") or []
@@ -301,7 +301,7 @@ def run_section(doc: dict, plot_dir: Path) -> str:
 
 
 def forecast_section(doc: dict, plot_dir: Path) -> str:
-    from shardtrain.plots import forecast_plots
+    from shardtrain.report.plots import forecast_plots
 
     rows = []
     for p in doc["plans"]:

@@ -25,8 +25,8 @@ import scipy.sparse as sp
 from scipy.sparse.csgraph import reverse_cuthill_mckee
 
 from shardtrain.compat import scale_csr_rows
+from shardtrain.data.graph import Graph, gcn_degrees
 from shardtrain.errors import InputError
-from shardtrain.graph import Graph, gcn_degrees
 
 # "locality": owned vertices renumbered by reverse Cuthill-McKee on the owned subgraph, so
 # neighbours sit close together in memory (the trainer's order); "id": owned vertices in

@@ -18,7 +18,7 @@ import resource
 import numpy as np
 
 from shardtrain.errors import InputError
-from shardtrain.tables import human_bytes
+from shardtrain.units import human_bytes
 
 # load_graph: per edge row of the file, the rows themselves (16 B) plus csr_from_edges
 # (self-loop mask, the undirected keys, their sort, both directions and their sort, the

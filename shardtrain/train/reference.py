@@ -18,11 +18,11 @@ from typing import Callable
 import numpy as np
 from scipy.sparse.csgraph import reverse_cuthill_mckee
 
-from shardtrain import model, stopping
+from shardtrain.data.graph import Graph, normalized_adjacency
 from shardtrain.errors import InputError
-from shardtrain.graph import Graph, normalized_adjacency
-from shardtrain.schedule import layer_dims, layer_hops
-from shardtrain.settings import TrainSettings
+from shardtrain.plan.schedule import layer_dims, layer_hops
+from shardtrain.train import model, stopping
+from shardtrain.train.settings import TrainSettings
 
 
 @dataclass
@@ -73,7 +73,7 @@ def train_reference(graph: Graph, settings: TrainSettings, *, init_params=None,
     BLAS runs on `settings.threads` threads (threadpoolctl), as each worker does.
     With `settings.early_stop` = N > 0 the run stops after N epochs without a strictly
     lower validation loss and returns the best epoch's weights and predictions
-    (`shardtrain.stopping`); `init_early` (the `stopping` arrays of a checkpoint) resumes
+    (`shardtrain.train.stopping`); `init_early` (the `stopping` arrays of a checkpoint) resumes
     that state. `init_params` (Params or {name: array} of the right shapes)
     replaces Glorot. To resume after epoch E, give the weights and `init_adam`
     (`model.Adam.state()` arrays, e.g. a checkpoint's) and `first_epoch=E + 1`: the epoch

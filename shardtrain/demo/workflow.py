@@ -31,7 +31,7 @@ from typing import Callable
 import numpy as np
 
 from shardtrain.errors import InputError, RunError
-from shardtrain.tables import human_seconds
+from shardtrain.units import human_seconds
 
 GRAPH_FILE = "parcel-network.npz"
 SURVEY_FILE = "survey.json"
@@ -162,9 +162,9 @@ class DemoResult:
 
 def synthesize(settings: DemoSettings, path: Path):
     """Write the parcel network bundle (the layout `shardtrain synth` writes) and load it back."""
+    from shardtrain.data.readers import load_graph
+    from shardtrain.data.synth import edge_array, parcel_network
     from shardtrain.files import save_npz_atomic
-    from shardtrain.io import load_graph
-    from shardtrain.synth import edge_array, parcel_network
 
     g = parcel_network(settings.vertices, settings.avg_degree, settings.classes,
                        settings.features, settings.seed)
@@ -196,7 +196,7 @@ def choose_plan(survey_dict: dict, workers: int) -> dict:
 
 def plan_reason(ranking: list[dict]) -> str:
     """One sentence: why the first plan of the ranking was chosen."""
-    from shardtrain.tables import human_bytes
+    from shardtrain.units import human_bytes
 
     best = ranking[0]
     text = (f"least predicted traffic per epoch: {human_bytes(best['epoch_payload_bytes'])} "
@@ -218,10 +218,10 @@ def plan_reason(ranking: list[dict]) -> str:
 
 def build_plan_shards(graph, plan: dict, settings: DemoSettings, shard_dir: Path) -> None:
     """Partition as the survey did (same method, seed and imbalance) and save the shards."""
-    from shardtrain.graph import fingerprint
-    from shardtrain.partition import partition_plan
-    from shardtrain.shards import build_shards, save_shards
-    from shardtrain.survey import SurveySettings
+    from shardtrain.data.graph import fingerprint
+    from shardtrain.plan.partition import partition_plan
+    from shardtrain.plan.shards import build_shards, save_shards
+    from shardtrain.plan.survey import SurveySettings
 
     imbalance = SurveySettings().imbalance
     k = plan["workers"]
@@ -245,8 +245,8 @@ def compare_runs(run, ref, survey_plan: dict, epochs: int) -> dict:
     the reference, relative to the reference (weights: max |difference| over the array's
     max |value|, as tests/test_train_equivalence.py measures), and the measured payload
     against the survey's prediction for this plan (and the run's own)."""
-    from shardtrain import model
-    from shardtrain.survey import predict_run_payload
+    from shardtrain.plan.survey import predict_run_payload
+    from shardtrain.train import model
 
     if len(run.epochs) != len(ref.epochs):
         raise RunError(f"the partitioned run reported {len(run.epochs)} epochs, the "
@@ -332,7 +332,7 @@ def write_demo_report(folder: Path, out_html: Path, facts: list[tuple[str, str]]
     the demo's summary after the title, the survey's heat map of the chosen `plan`, and
     the pictures kept in `plot_dir`."""
     from shardtrain.files import write_text_atomic
-    from shardtrain.report import build_html, collect_documents
+    from shardtrain.report.html import build_html, collect_documents
 
     write_text_atomic(out_html, build_html(collect_documents([folder]), title,
                                            plot_dir=plot_dir, intro_html=summary_html(facts),
@@ -340,7 +340,7 @@ def write_demo_report(folder: Path, out_html: Path, facts: list[tuple[str, str]]
 
 
 def summary_facts(r: "DemoResult", settings_doc: dict) -> list[tuple[str, str]]:
-    from shardtrain.tables import human_bytes
+    from shardtrain.units import human_bytes
 
     c, p = r.check, r.plan
     facts = [
@@ -415,7 +415,7 @@ def train_reference_pinned(graph, settings):
     """The reference with BLAS on one thread, like every worker (fewer busy threads)."""
     from threadpoolctl import threadpool_limits
 
-    from shardtrain.reference import train_reference
+    from shardtrain.train.reference import train_reference
 
     with threadpool_limits(limits=1):
         return train_reference(graph, settings)
@@ -487,13 +487,13 @@ def _summary_doc(r: DemoResult, settings: DemoSettings) -> dict:
 
 
 def _run_steps(settings: DemoSettings, tmp: Path, say, clock: _Clock) -> DemoResult:
-    from shardtrain.calibrate import calibrate, with_graph_sparse
-    from shardtrain.coordinator import train_partitioned
     from shardtrain.files import write_json_atomic
-    from shardtrain.forecast import forecast
-    from shardtrain.rundoc import graph_of_file, run_document
-    from shardtrain.settings import TrainSettings
-    from shardtrain.survey import SurveySettings, survey
+    from shardtrain.forecast.calibrate import calibrate, with_graph_sparse
+    from shardtrain.forecast.projection import forecast
+    from shardtrain.plan.survey import SurveySettings, survey
+    from shardtrain.train.coordinator import train_partitioned
+    from shardtrain.train.rundoc import graph_of_file, run_document
+    from shardtrain.train.settings import TrainSettings
 
     (tmp / PLOT_DIR).mkdir()
 

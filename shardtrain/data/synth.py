@@ -16,10 +16,10 @@ import math
 
 import numpy as np
 
+from shardtrain.data.graph import Graph, csr_from_edges
+from shardtrain.data.memory import require_memory, synth_bytes
+from shardtrain.data.readers import make_splits
 from shardtrain.errors import InputError
-from shardtrain.graph import Graph, csr_from_edges
-from shardtrain.io import make_splits
-from shardtrain.memory import require_memory, synth_bytes
 
 ROLE_NAMES = ("hub", "urban", "suburban", "rural", "cross-dock", "returns", "airport",
               "port", "rail-terminal", "pickup-point", "cold-chain", "bulk")

@@ -20,12 +20,9 @@ import math
 
 import numpy as np
 
-from shardtrain import model
 from shardtrain.errors import InputError
+from shardtrain.train import model
 
-# the workers' per-epoch stop vote: an all-reduce of [val loss sum, val count] in float64
-VOTE_ELEMENTS = 2
-VOTE_ITEMSIZE = 8
 PREFIX = "early_"            # checkpoint array names: early_best_epoch, early_best_w0, ...
 
 

@@ -119,7 +119,7 @@ def _time_elementwise(dtype, rng) -> dict:
 
 def _time_dropout_masks(dtype, rng) -> dict:
     """Mask elements drawn per second by the model's own counter-based generator."""
-    from shardtrain.model import dropout_mask
+    from shardtrain.train.model import dropout_mask
 
     ids = rng.permutation(200_000).astype(np.int64)
     width = 16
@@ -141,7 +141,7 @@ def _time_row_moves(dtype, rng) -> dict:
     nbytes = buf.nbytes
     gather = _best_time(lambda: np.take(src, idx, axis=0, out=buf), repeats=5, budget_s=0.2)
     try:     # the worker's own way; a plain indexed add if the worker changes it
-        from shardtrain.worker import _selection
+        from shardtrain.train.worker import _selection
         select = _selection(idx, n, dtype)
 
         def scatter_add():
@@ -257,7 +257,7 @@ def sparse_on_matrix(adj, dtype: str = "float32", *, widths=SPARSE_WIDTHS,
 def with_graph_sparse(calibration: dict, graph, dtype: str = "float32") -> dict:
     """The calibration with its sparse speeds measured on `graph`'s own Â, numbered the
     way one shard numbers its vertices (shards.build_shards with one worker)."""
-    from shardtrain.shards import build_shards
+    from shardtrain.plan.shards import build_shards
 
     shard = build_shards(graph, np.zeros(graph.num_vertices, dtype=np.int64), 1,
                          with_vertex_data=False)[0]
@@ -397,8 +397,8 @@ def shard_step_seconds(shard, settings, num_classes: int, *, epochs: int = 4) ->
     halo rows, allocations); the transfer is forecast apart."""
     from dataclasses import replace
 
-    from shardtrain.profile import Profile
-    from shardtrain.worker import run_worker
+    from shardtrain.train.worker import run_worker
+    from shardtrain.transport.meter import Profile
 
     if epochs < 2:
         raise ValueError("shard_step_seconds needs at least 2 epochs (one is a warm-up)")
@@ -434,7 +434,7 @@ def exchange_call_seconds(calls: int = 50, batches: int = 8) -> dict:
     bookkeeping, which a call pays however few bytes it moves."""
     import threading
 
-    from shardtrain.profile import Profile
+    from shardtrain.transport.meter import Profile
     from shardtrain.transport.pipes import PipeTransport, make_pipe_mesh
 
     ends = make_pipe_mesh(2, {(0, 1)})
@@ -476,7 +476,7 @@ def transport_copy_seconds(nbytes: int = 2**22, calls: int = 8, *,
     worker has copied its bytes, whatever the link's speed."""
     import threading
 
-    from shardtrain.profile import Profile
+    from shardtrain.transport.meter import Profile
     from shardtrain.transport.pipes import PipeTransport, make_pipe_mesh
 
     ends = make_pipe_mesh(2, {(0, 1)})
@@ -515,9 +515,9 @@ def transport_copy_speed(calibration: dict) -> float:
 
 def _shard_step_in_process(shard_dir: str, worker: int, settings_dict: dict,
                            num_classes: int, epochs: int) -> dict:
-    from shardtrain.settings import TrainSettings
-    from shardtrain.shards import load_shard
-    from shardtrain.worker import pin_blas_threads
+    from shardtrain.plan.shards import load_shard
+    from shardtrain.train.settings import TrainSettings
+    from shardtrain.train.worker import pin_blas_threads
 
     pin_blas_threads()
     return shard_step_seconds(load_shard(shard_dir, worker),
@@ -546,7 +546,7 @@ def plan_step_seconds(graph, assignment: np.ndarray, k: int, settings, num_class
     each timed alone in this process (a worker with a machine of its own), or, with
     `together` > 1 (a check on this machine's cores), that many shards at once, one process
     each, as a local run computes them (`shards_step_seconds`)."""
-    from shardtrain.shards import build_shards
+    from shardtrain.plan.shards import build_shards
 
     shards = build_shards(graph, assignment, k)
     if together <= 1 or k <= 1:
@@ -555,7 +555,7 @@ def plan_step_seconds(graph, assignment: np.ndarray, k: int, settings, num_class
     import shutil
     import tempfile
 
-    from shardtrain.shards import save_shards
+    from shardtrain.plan.shards import save_shards
 
     folder = tempfile.mkdtemp(prefix="shardtrain-timing-")
     try:

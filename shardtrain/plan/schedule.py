@@ -39,3 +39,8 @@ def layer_hops(dims: list[tuple[int, int]]) -> list[LayerHop]:
         bwd = fwd if (tf or layer > 0) else 0
         hops.append(LayerHop(layer, d_in, d_out, tf, fwd, bwd))
     return hops
+
+
+# the workers' per-epoch stop vote: an all-reduce of [val loss sum, val count] in float64
+VOTE_ELEMENTS = 2
+VOTE_ITEMSIZE = 8

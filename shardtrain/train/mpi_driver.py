@@ -28,10 +28,10 @@ from __future__ import annotations
 import time
 from typing import Callable, cast
 
-from shardtrain import coordinator, worker
-from shardtrain.coordinator import PartitionedRunResult, ShardDirFacts
 from shardtrain.errors import InputError, RunError
-from shardtrain.settings import TrainSettings
+from shardtrain.train import coordinator, worker
+from shardtrain.train.coordinator import PartitionedRunResult, ShardDirFacts
+from shardtrain.train.settings import TrainSettings
 
 ROOT = 0
 TAG_START = 11          # rank 0 -> all: settings, shard facts, initial weights (or stop)
@@ -219,7 +219,7 @@ def _start(comm, shard_dir, settings, init_params, timeout_s: float):
         facts = coordinator.shard_dir_facts(shard_dir)
         check_world(comm, facts, shard_dir)
         if init_params is not None and not isinstance(init_params, dict):
-            from shardtrain import model
+            from shardtrain.train import model
             init_params = model.params_to_arrays(init_params)
     except InputError as exc:
         stop_job(comm, EXIT_BAD_INPUT, timeout_s)
@@ -240,7 +240,7 @@ def _check_shards(comm, shard_dir, timeout_s: float) -> None:
     rank order and tells every rank to go on or stop. A bad shard is one line from rank 0
     and exit status 2 on every rank, before any training starts."""
     from shardtrain.errors import EXIT_BAD_INPUT
-    from shardtrain.shards import check_shard_dir
+    from shardtrain.plan.shards import check_shard_dir
 
     rank = comm.Get_rank()
     try:
@@ -284,8 +284,8 @@ def train_mpi(shard_dir, settings: TrainSettings | None, *, comm=None,
     normally with its code); any other InputError/RunError happened after the start: the
     caller reports it and calls `abort_job`.
     """
-    from shardtrain.profile import Profile
     from shardtrain.transport import frames
+    from shardtrain.transport.meter import Profile
     from shardtrain.transport.mpi import MpiTransport
 
     comm = comm if comm is not None else world()
@@ -295,7 +295,7 @@ def train_mpi(shard_dir, settings: TrainSettings | None, *, comm=None,
         _check_shards(comm, shard_dir, timeout_s)
     worker.pin_blas_threads(settings.threads)
     if load_shard is None:
-        from shardtrain.shards import load_shard
+        from shardtrain.plan.shards import load_shard
     shard = load_shard(shard_dir, rank)
     profile = Profile(rank)
     transport = MpiTransport(comm, profile, timeout_s=timeout_s, allreduce=allreduce,

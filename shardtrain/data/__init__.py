@@ -1,0 +1,3 @@
+"""Stage 1, data: the graph value, input readers, the demo network, split masks,
+memory estimates.
+"""

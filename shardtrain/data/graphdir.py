@@ -1,0 +1,161 @@
+"""The on-disk graph: a folder of memory-mapped CSR arrays and a manifest (issue 11).
+
+    GRAPH_DIR/graph.json      manifest, {"format": "shardtrain-graph", "version": 1,
+                              "num_vertices", "num_edges" (undirected, each once),
+                              "index_dtype" ("int32" while n < 2**31, else "int64"),
+                              "feature_dtype" (null or "float32"/"float64"), "input_dim",
+                              "num_classes", "has_labels", "masks" (list of mask names held),
+                              "cleanup": {"self_loops", "duplicates"},
+                              "structure_fingerprint" (= data.graph.structure_fingerprint of
+                              the same edges), "fingerprint" (= data.graph.fingerprint of the
+                              same Graph), "sources": [...], "notes": [...]}
+    GRAPH_DIR/indptr.npy      int64 (n + 1,)
+    GRAPH_DIR/indices.npy     index_dtype (2m,), both directions, rows sorted, no loops/dups
+    GRAPH_DIR/features.npy    optional (n, d) feature_dtype, vertex order
+    GRAPH_DIR/labels.npy      optional (n,) int64, -1 = unlabelled
+    GRAPH_DIR/train_mask.npy, val_mask.npy, test_mask.npy   optional (n,) bool
+
+The same invariants as `data.graph.Graph` (it is a Graph kept on disk). `open_graph_dir`
+maps the arrays read-only, so holding one costs page cache, not process memory;
+`GraphDir.graph()` gives a `Graph` view over the maps (indices converted to int64 only when
+asked: `GraphDir.graph(load=True)` reads everything into memory, for graphs that fit).
+`write_graph_dir` writes a graph held in memory (tests, small graphs, synth); `ingest`
+writes large ones chunk by chunk.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from shardtrain.data.graph import EdgeCleanup, Graph, fingerprint, structure_fingerprint
+from shardtrain.data.masks import MASK_KEYS
+from shardtrain.errors import InputError
+
+FORMAT = "shardtrain-graph"
+VERSION = 1
+MANIFEST = "graph.json"
+INT32_LIMIT = 2**31 - 1
+
+
+def is_graph_dir(path) -> bool:
+    """True for a folder holding a graph manifest (what GRAPH arguments test first)."""
+    p = Path(path)
+    return p.is_dir() and (p / MANIFEST).is_file()
+
+
+def index_dtype_for(num_vertices: int) -> np.dtype:
+    return np.dtype(np.int32) if num_vertices <= INT32_LIMIT else np.dtype(np.int64)
+
+
+@dataclass(frozen=True)
+class GraphDir:
+    """An opened graph directory: the manifest and the read-only maps of its arrays."""
+
+    path: Path
+    manifest: dict
+    indptr: np.ndarray
+    indices: np.ndarray
+    features: np.ndarray | None
+    labels: np.ndarray | None
+    masks: dict
+
+    @property
+    def num_vertices(self) -> int:
+        return int(self.manifest["num_vertices"])
+
+    @property
+    def num_edges(self) -> int:
+        return int(self.manifest["num_edges"])
+
+    @property
+    def cleanup(self) -> EdgeCleanup:
+        c = self.manifest["cleanup"]
+        return EdgeCleanup(int(c["self_loops"]), int(c["duplicates"]))
+
+    def graph(self, load: bool = False) -> Graph:
+        """A Graph over this directory: maps (load=False; indices keep their stored dtype)
+        or arrays read into memory with the in-memory Graph's dtypes (load=True)."""
+        def get(a):
+            return None if a is None else (np.array(a) if load else a)
+
+        indices = self.indices.astype(np.int64) if load else self.indices
+        return Graph(get(self.indptr), indices, get(self.features), get(self.labels),
+                     get(self.masks.get("train_mask")), get(self.masks.get("val_mask")),
+                     get(self.masks.get("test_mask")))
+
+
+def _map(path: Path, name: str) -> np.ndarray | None:
+    f = path / f"{name}.npy"
+    if not f.exists():
+        return None
+    try:
+        return np.load(f, mmap_mode="r", allow_pickle=False)
+    except (OSError, ValueError) as exc:
+        raise InputError(f"{f}: not a readable .npy array ({exc})") from None
+
+
+def open_graph_dir(path) -> GraphDir:
+    """Open GRAPH_DIR read-only; InputError naming the file for anything inconsistent."""
+    from shardtrain.files import read_json_document
+
+    path = Path(path)
+    manifest = read_json_document(path / MANIFEST, format=FORMAT, version=VERSION,
+                                  what="graph directory manifest")
+    n, m = manifest.get("num_vertices"), manifest.get("num_edges")
+    if not isinstance(n, int) or not isinstance(m, int) or n < 0 or m < 0:
+        raise InputError(f"{path / MANIFEST}: num_vertices and num_edges must be integers >= 0")
+    indptr, indices = _map(path, "indptr"), _map(path, "indices")
+    if indptr is None or indptr.dtype != np.int64 or indptr.shape != (n + 1,):
+        raise InputError(f"{path / 'indptr.npy'}: expected int64 ({n + 1},)")
+    want = np.dtype(manifest.get("index_dtype", "int64"))
+    if indices is None or indices.dtype != want or indices.shape != (2 * m,):
+        raise InputError(f"{path / 'indices.npy'}: expected {want} ({2 * m},)")
+    if int(indptr[0]) != 0 or int(indptr[-1]) != 2 * m:
+        raise InputError(f"{path / 'indptr.npy'}: must run from 0 to {2 * m}")
+    features, labels = _map(path, "features"), _map(path, "labels")
+    if features is not None and (features.ndim != 2 or features.shape[0] != n):
+        raise InputError(f"{path / 'features.npy'}: expected ({n}, d)")
+    if labels is not None and (labels.dtype != np.int64 or labels.shape != (n,)):
+        raise InputError(f"{path / 'labels.npy'}: expected int64 ({n},)")
+    masks = {}
+    for key in MASK_KEYS:
+        a = _map(path, key)
+        if a is not None:
+            if a.dtype != np.bool_ or a.shape != (n,):
+                raise InputError(f"{path / (key + '.npy')}: expected bool ({n},)")
+            masks[key] = a
+    return GraphDir(path, manifest, indptr, indices, features, labels, masks)
+
+
+def write_graph_dir(graph: Graph, path, *, cleanup: EdgeCleanup | None = None,
+                    sources=(), notes=(), overwrite: bool = False) -> None:
+    """Write an in-memory Graph as GRAPH_DIR (atomically: the folder appears complete or not
+    at all)."""
+    from shardtrain.files import atomic_directory, write_json_atomic
+
+    n = graph.num_vertices
+    cleanup = cleanup or EdgeCleanup(0, 0)
+    idx = index_dtype_for(n)
+    masks = {k: getattr(graph, k) for k in MASK_KEYS if getattr(graph, k) is not None}
+    manifest = {
+        "format": FORMAT, "version": VERSION, "num_vertices": n, "num_edges": graph.num_edges,
+        "index_dtype": idx.name,
+        "feature_dtype": None if graph.features is None else graph.features.dtype.name,
+        "input_dim": graph.input_dim, "num_classes": graph.num_classes,
+        "has_labels": graph.labels is not None, "masks": sorted(masks),
+        "cleanup": {"self_loops": cleanup.self_loops, "duplicates": cleanup.duplicates},
+        "structure_fingerprint": structure_fingerprint(graph),
+        "fingerprint": fingerprint(graph), "sources": [str(s) for s in sources],
+        "notes": list(notes)}
+    with atomic_directory(path, overwrite=overwrite) as tmp:
+        np.save(tmp / "indptr.npy", np.asarray(graph.indptr, dtype=np.int64))
+        np.save(tmp / "indices.npy", np.asarray(graph.indices).astype(idx, copy=False))
+        if graph.features is not None:
+            np.save(tmp / "features.npy", np.asarray(graph.features))
+        if graph.labels is not None:
+            np.save(tmp / "labels.npy", np.asarray(graph.labels, dtype=np.int64))
+        for key, a in masks.items():
+            np.save(tmp / f"{key}.npy", np.asarray(a, dtype=bool))
+        write_json_atomic(tmp / MANIFEST, manifest)

@@ -1,0 +1,1 @@
+"""Stage 6, demo: the whole workflow on the invented parcel-delivery network."""

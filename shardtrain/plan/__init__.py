@@ -1,0 +1,3 @@
+"""Stage 2, plan: partitioners, shards and their halos, the exchange schedule, the
+survey's predictions.
+"""

@@ -1,0 +1,1 @@
+"""Stage 5, report: text tables, PNG plots and the HTML report."""

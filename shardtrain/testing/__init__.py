@@ -1,0 +1,3 @@
+"""Test-only code (fault injection), reached only through `shardtrain.hooks`; the
+package never imports it.
+"""
