@@ -14,7 +14,7 @@ bounded too (`parse_json_file`): the file size before reading, the nesting depth
 nesting would exhaust the parser's recursion), and text that is not UTF-8 JSON. Every
 check is an InputError (exit 2), so a hand-edited or foreign file never gives a traceback.
 
-The shard manifest has its own checks in `shards.py`.
+The shard manifest has its own checks in `plan/shards.py`.
 """
 from __future__ import annotations
 

@@ -5,7 +5,7 @@ coordinator runs it in a child process (`process_main`), an MPI entry point can 
 rank; both hand it a transport, a profile and a `report` callable for per-epoch records.
 
 Per layer, the model calls two closures built here from the shard (see the layout CONTRACT
-in `shardtrain/shards.py`) and the transport:
+in `shardtrain/plan/shards.py`) and the transport:
 - propagate(l, M): send M[send_to(q)] to every peer q, receive q's rows straight into
   their slice of a preallocated M_halo buffer, return Â_P [M; M_halo] (computed as
   A_oo M + A_oh M_halo, see HaloOps);
