@@ -267,6 +267,9 @@ def _run_pipes(group, k, timeout_s):
             release.set()                             # a holding peer may go now
     for p in procs:
         p.join(10)
+        if p.is_alive():                              # a hung rank: end it, then fail
+            p.kill()
+            p.join(10)
     assert not conns, f"ranks {sorted(conns.values())} sent no result in 120 s"
     return {"ranks": [results[r] for r in range(k)], "notes": notes}
 
