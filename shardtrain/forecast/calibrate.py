@@ -376,21 +376,10 @@ def load_or_calibrate(path: str | None, dtype: str) -> dict:
     return cal
 
 
-class _Loopback:
-    """A transport that moves nothing: receive buffers are zeroed, the all-reduce keeps the
-    local sum. A worker driven through it does all its own compute and no transfer."""
-
-    def exchange(self, outgoing, incoming, **meta) -> None:
-        for buf in incoming.values():
-            buf[...] = 0
-
-    def allreduce_sum(self, buf, *, epoch: int) -> None:
-        pass
-
-
 def shard_step_seconds(shard, settings, num_classes: int, *, epochs: int = 4) -> dict:
     """CPU seconds of one training step and one evaluation forward of the worker's own code
-    on `shard` (BLAS on one thread, no transfer: see `_Loopback`): the median of
+    on `shard` (BLAS on one thread, no transfer: `LoopbackTransport` with its peers
+    absent, every receive zeros): the median of
     `epochs - 1` epochs after a warm-up one (the median, as a run's epoch time is taken;
     the fastest is kept beside). This is the shard's measured compute, the part of an epoch
     a counted-work model misses most (Python per-call costs, gathers and scatters of the
@@ -398,6 +387,7 @@ def shard_step_seconds(shard, settings, num_classes: int, *, epochs: int = 4) ->
     from dataclasses import replace
 
     from shardtrain.train.worker import run_worker
+    from shardtrain.transport.loopback import LoopbackTransport
     from shardtrain.transport.meter import Profile
 
     if epochs < 2:
@@ -416,9 +406,10 @@ def shard_step_seconds(shard, settings, num_classes: int, *, epochs: int = 4) ->
         marks["start"] = now
 
     with threadpool_limits(limits=1):
-        run_worker(shard, replace(settings, epochs=int(epochs)), _Loopback(),
-                   Profile(shard.worker), report, num_classes=num_classes,
-                   on_phase=on_phase)
+        profile = Profile(shard.worker)
+        alone = LoopbackTransport(shard.worker, shard.workers, profile, absent_peers=True)
+        run_worker(shard, replace(settings, epochs=int(epochs)), alone, profile, report,
+                   num_classes=num_classes, on_phase=on_phase)
     return {"worker": int(shard.worker), "epochs": int(epochs),
             "step_cpu_s": float(np.median(step[1:])),
             "eval_cpu_s": float(np.median(evaluation[1:])),
@@ -472,8 +463,8 @@ def transport_copy_seconds(nbytes: int = 2**22, calls: int = 8, *,
     do in a halo exchange, each writing its frame and reading the other's on its one thread.
     Per byte moved (sent + received), from the fastest call's thread CPU time minus the fixed
     CPU of a call (`fixed_cpu_s`). This is the extra CPU a step has inside a run over the same
-    step on a transport that moves nothing (`_Loopback`): an exchange cannot end before the
-    worker has copied its bytes, whatever the link's speed."""
+    step on a transport that moves nothing (`LoopbackTransport`, peers absent): an exchange
+    cannot end before the worker has copied its bytes, whatever the link's speed."""
     import threading
 
     from shardtrain.transport.meter import Profile

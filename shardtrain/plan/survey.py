@@ -17,16 +17,15 @@ import numpy as np
 from shardtrain.data.graph import structure_fingerprint
 from shardtrain.errors import InputError
 from shardtrain.plan.schedule import LayerHop, layer_dims, layer_hops
+from shardtrain.transport.wire import KIND_ALLREDUCE, KIND_HALO, NO_LAYER
 
 # Resident memory of an idle worker interpreter with numpy and scipy.sparse imported,
 # before it loads anything (its VmRSS, rounded up; benchmarks/bench_survey.py checks the
 # predicted worker memory against a real one). It is the floor under every predicted worker.
 BASELINE_RSS_BYTES = 45 * 2**20
 
-# Byte-accounting keys, as the trainer's profile counts them.
-KIND_HALO = "halo"
-KIND_ALLREDUCE = "allreduce"
-ALLREDUCE_LAYER = -1          # the all-reduce is one flat array of all gradients, no layer
+# The byte-accounting keys (KIND_HALO, KIND_ALLREDUCE, NO_LAYER: the all-reduce is one flat
+# array of all gradients, no layer) are the transport's own, from transport/wire.py.
 
 
 @dataclass(frozen=True)
@@ -162,7 +161,7 @@ def predict_payload_breakdown(shards, hops: list[LayerHop], itemsize: int, *,
         + stop_vote_bytes(k) * stop_votes          # the votes share the gradients' key
     for r in range(k):
         if allreduce[r]:
-            out[(r, (r + 1) % k, KIND_ALLREDUCE, ALLREDUCE_LAYER, "backward")] = \
+            out[(r, (r + 1) % k, KIND_ALLREDUCE, NO_LAYER, "backward")] = \
                 int(allreduce[r])
     return out
 

@@ -36,13 +36,14 @@ from shardtrain.plan import schedule
 from shardtrain.plan.schedule import layer_dims, layer_hops
 from shardtrain.train import model, stopping
 from shardtrain.train.settings import TrainSettings
+from shardtrain.transport.wire import KIND_HALO
 
 if TYPE_CHECKING:
+    from shardtrain.transport.base import Transport
     from shardtrain.transport.pipes import PipeTransport
 
 log = logging.getLogger(__name__)
 
-KIND_HALO = "halo"          # the survey's key for halo frames
 FORWARD, BACKWARD, EVAL = "forward", "backward", "eval"
 BLAS_ENV = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS")
 
@@ -84,7 +85,7 @@ class HaloOps:
       and the peers' contributions are added at the send rows.
     """
 
-    def __init__(self, shard, transport, profile, dtype):
+    def __init__(self, shard, transport: Transport, profile, dtype):
         self.shard, self.transport, self.profile = shard, transport, profile
         self.n_owned = shard.num_owned
         self.n_local = shard.num_owned + shard.num_halo
@@ -226,7 +227,8 @@ def _split_masks(shard) -> list:
     return [shard.train_mask, shard.val_mask, shard.test_mask]
 
 
-def run_worker(shard, settings: TrainSettings, transport, profile, report: Callable[[dict], None],
+def run_worker(shard, settings: TrainSettings, transport: Transport, profile,
+               report: Callable[[dict], None],
                *, num_classes: int, init_params=None, init_adam: dict | None = None,
                epochs_range: range | None = None,
                on_phase: Callable[[str], None] | None = None,

@@ -39,6 +39,7 @@ waits, so the spinning part of a wait counts as CPU time too.
 from __future__ import annotations
 
 import time
+from collections.abc import Mapping
 
 import numpy as np
 
@@ -46,8 +47,16 @@ from shardtrain.errors import RunError
 from shardtrain.transport import frames
 from shardtrain.transport.frames import FrameError
 from shardtrain.transport.meter import Profile
-from shardtrain.transport.pipes import ALLREDUCE, NO_LAYER, _bytes_view, _wire_array, _workers
 from shardtrain.transport.ring import ring_allreduce, ring_steps
+from shardtrain.transport.wire import (
+    KIND_ALLREDUCE,
+    NO_LAYER,
+    bytes_view,
+    check_frame_size,
+    check_receive_buffer,
+    name_workers,
+    wire_array,
+)
 
 TAG_HEADER = 1
 TAG_PAYLOAD = 2
@@ -63,7 +72,8 @@ def _mpi():
 
 
 class MpiTransport:
-    """exchange / allreduce_sum / close over an MPI communicator (one rank per worker)."""
+    """The `base.Transport` over an MPI communicator, one rank per worker (see the module
+    docstring); `abort()` ends the job after a RunError."""
 
     def __init__(self, comm, profile: Profile, *, timeout_s: float = 60.0,
                  max_frame_bytes: int = frames.DEFAULT_MAX_FRAME_BYTES,
@@ -79,8 +89,8 @@ class MpiTransport:
         self.allreduce = allreduce
 
     # -- public API --------------------------------------------------------------------
-    def exchange(self, outgoing: dict[int, np.ndarray], incoming: dict[int, np.ndarray], *,
-                 kind: str, epoch: int, layer: int, direction: str) -> None:
+    def exchange(self, outgoing: Mapping[int, np.ndarray], incoming: Mapping[int, np.ndarray],
+                 *, kind: str, epoch: int, layer: int, direction: str) -> None:
         """Send outgoing[q] to every q and fill the preallocated incoming[q] from every q."""
         meta = {"kind": kind, "epoch": int(epoch), "layer": int(layer), "direction": direction}
         self._transfer({q: outgoing[q] for q in sorted(outgoing)},
@@ -93,7 +103,7 @@ class MpiTransport:
         frames.dtype_name(buf.dtype)
         if self.allreduce == "ring":
             def step(dst, send_view, src, recv_view, direction, _step):
-                meta = {"kind": ALLREDUCE, "epoch": int(epoch), "layer": NO_LAYER,
+                meta = {"kind": KIND_ALLREDUCE, "epoch": int(epoch), "layer": NO_LAYER,
                         "direction": direction}
                 self._transfer({dst: send_view}, {src: recv_view}, meta)
             ring_allreduce(buf, self.rank, self.size, step)
@@ -102,7 +112,7 @@ class MpiTransport:
             MPI = self.MPI
             req = self.comm.Iallreduce(MPI.IN_PLACE, buf, op=MPI.SUM)
             self._wait([req], lambda pending: "all ranks", {
-                "kind": ALLREDUCE, "direction": "sum", "layer": NO_LAYER, "epoch": epoch})
+                "kind": KIND_ALLREDUCE, "direction": "sum", "layer": NO_LAYER, "epoch": epoch})
         self._count_ring(buf, int(epoch))
 
     def abort(self, code: int = 3) -> None:
@@ -119,10 +129,11 @@ class MpiTransport:
         right, left = (self.rank + 1) % k, (self.rank - 1) % k
         for direction, _s, n_send, n_recv in ring_steps(buf.size, k, self.rank):
             for src, dst, n in ((self.rank, right, n_send), (left, self.rank, n_recv)):
-                framing = len(frames.encode_header(kind=ALLREDUCE, epoch=epoch, layer=NO_LAYER,
-                                                   direction=direction, source=src,
-                                                   dtype=buf.dtype, shape=(n,)))
-                self.profile.count(src, dst, ALLREDUCE, NO_LAYER, direction, n * item, framing)
+                framing = len(frames.encode_header(kind=KIND_ALLREDUCE, epoch=epoch,
+                                                   layer=NO_LAYER, direction=direction,
+                                                   source=src, dtype=buf.dtype, shape=(n,)))
+                self.profile.count(src, dst, KIND_ALLREDUCE, NO_LAYER, direction, n * item,
+                                   framing)
 
     def _transfer(self, outgoing: dict, incoming: dict, meta: dict) -> None:
         MPI = self.MPI
@@ -130,35 +141,31 @@ class MpiTransport:
             if not 0 <= q < self.size or q == self.rank:
                 raise ValueError(f"rank {self.rank} cannot exchange with rank {q} "
                                  f"(communicator of {self.size})")
-        keep, recv_reqs, send_reqs, owners = [], [], [], []
+        for q, dest in incoming.items():          # every check before any request is posted
+            check_receive_buffer(q, dest)
+        prepared = []
+        for q, array in outgoing.items():
+            array = wire_array(array)
+            check_frame_size(q, array.nbytes, self.max_frame_bytes, meta)
+            prepared.append((q, array, frames.encode_header(
+                source=self.rank, dtype=array.dtype, shape=array.shape, **meta)))
+        recv_reqs, send_reqs, owners = [], [], []
         heads = {}
         for q, dest in incoming.items():
-            if not (isinstance(dest, np.ndarray) and dest.flags.c_contiguous
-                    and dest.flags.writeable):
-                raise ValueError(f"receive buffer for worker {q} must be a writeable "
-                                 f"C-contiguous numpy array")
-            frames.dtype_name(dest.dtype)
             heads[q] = bytearray(HEADER_BUFFER)
             recv_reqs.append(self.comm.Irecv([heads[q], MPI.BYTE], source=q, tag=TAG_HEADER))
-            recv_reqs.append(self.comm.Irecv([_bytes_view(dest), MPI.BYTE], source=q,
+            recv_reqs.append(self.comm.Irecv([bytes_view(dest), MPI.BYTE], source=q,
                                              tag=TAG_PAYLOAD))
             owners += [q, q]
         sent = []
-        for q, array in outgoing.items():
-            array = _wire_array(array)
-            if array.nbytes > self.max_frame_bytes:
-                raise RunError(f"frame to worker {q} of {array.nbytes} bytes exceeds the "
-                               f"limit of {self.max_frame_bytes} bytes ({frames.describe(meta)})")
-            header = frames.encode_header(source=self.rank, dtype=array.dtype,
-                                          shape=array.shape, **meta)
-            keep += [header, array]
+        for q, array, header in prepared:        # `prepared` keeps the buffers alive
             send_reqs.append(self.comm.Isend([header, MPI.BYTE], dest=q, tag=TAG_HEADER))
-            send_reqs.append(self.comm.Isend([_bytes_view(array), MPI.BYTE], dest=q,
+            send_reqs.append(self.comm.Isend([bytes_view(array), MPI.BYTE], dest=q,
                                              tag=TAG_PAYLOAD))
             owners += [q, q]
             sent.append((q, array.nbytes, len(header)))
         reqs = recv_reqs + send_reqs
-        statuses = self._wait(reqs, lambda pending: _workers([owners[i] for i in pending]),
+        statuses = self._wait(reqs, lambda pending: name_workers([owners[i] for i in pending]),
                               meta)
         for i, (q, dest) in enumerate(incoming.items()):
             got_head = statuses[2 * i].Get_count(MPI.BYTE)
@@ -179,7 +186,7 @@ class MpiTransport:
         for q, nbytes, framing in sent:
             self.profile.count(self.rank, q, meta["kind"], meta["layer"], meta["direction"],
                                nbytes, framing)
-        del keep
+        del prepared
 
     def _wait(self, reqs: list, who, meta: dict) -> list:
         """Test until every request is done (statuses in request order); deadline timeout_s

@@ -31,6 +31,7 @@ import multiprocessing
 import os
 import select
 import time
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from multiprocessing.connection import Connection
 from typing import cast
@@ -43,12 +44,19 @@ from shardtrain.transport.frames import FrameError
 from shardtrain.transport.link import LinkModel
 from shardtrain.transport.meter import Profile
 from shardtrain.transport.ring import ring_allreduce
+from shardtrain.transport.wire import (
+    KIND_ALLREDUCE,
+    NO_LAYER,
+    bytes_view,
+    check_frame_size,
+    check_receive_buffer,
+    name_workers,
+    wire_array,
+)
 
 # Kernel buffer per pipe: faster than the 64 KiB default, and a quarter of the kernel
 # memory 1 MiB would pin for the k(k-1) pipes (benchmarks/bench_pipe.py compares the three).
 PIPE_BYTES = 1 << 18
-ALLREDUCE = "allreduce"
-NO_LAYER = -1
 
 _F_SETPIPE_SZ = getattr(fcntl, "F_SETPIPE_SZ", 1031)
 _IN = select.POLLIN | select.POLLHUP | select.POLLERR
@@ -97,29 +105,12 @@ def _grow_pipe(fd: int, nbytes: int) -> None:
             pass
 
 
-def _bytes_view(array: np.ndarray) -> memoryview:
-    """A flat byte view of a C-contiguous array (also for empty arrays)."""
-    # numpy declares the buffer protocol to type checkers only for Python >= 3.12
-    return memoryview(array.reshape(-1).view(np.uint8))  # type: ignore[arg-type]
-
-
-def _wire_array(array) -> np.ndarray:
-    """The array as it goes on the wire: C order, little-endian, allowed dtype."""
-    array = np.asarray(array)
-    frames.dtype_name(array.dtype)           # ValueError for a dtype that may not be sent
-    if array.dtype.byteorder == ">":
-        array = array.astype(array.dtype.newbyteorder("<"))
-    if not array.flags.c_contiguous:          # copy only when needed (and keep 0-d 0-d)
-        array = np.ascontiguousarray(array)
-    return array
-
-
 class _Send:
     __slots__ = ("peer", "fd", "views", "total", "done", "due", "held")
 
     def __init__(self, peer, fd, header: bytes, array: np.ndarray):
         self.peer, self.fd = peer, fd
-        self.views = [memoryview(header), _bytes_view(array)]
+        self.views = [memoryview(header), bytes_view(array)]
         self.total = len(header) + array.nbytes
         self.done = 0
         self.due = 0.0        # link emulation: the last byte may not leave before this
@@ -140,7 +131,7 @@ class _Recv:
 
 
 class PipeTransport:
-    """exchange / allreduce_sum / close over the pipes of one worker."""
+    """The `base.Transport` of one worker over its pipes (see the module docstring)."""
 
     def __init__(self, rank: int, size: int, ends: PipeEnds, profile: Profile, *,
                  timeout_s: float = 60.0, max_frame_bytes: int = frames.DEFAULT_MAX_FRAME_BYTES,
@@ -161,8 +152,8 @@ class PipeTransport:
         self._closed = False
 
     # -- public API --------------------------------------------------------------------
-    def exchange(self, outgoing: dict[int, np.ndarray], incoming: dict[int, np.ndarray], *,
-                 kind: str, epoch: int, layer: int, direction: str) -> None:
+    def exchange(self, outgoing: Mapping[int, np.ndarray], incoming: Mapping[int, np.ndarray],
+                 *, kind: str, epoch: int, layer: int, direction: str) -> None:
         """Send outgoing[q] to every q and fill the preallocated incoming[q] from every q."""
         meta = {"kind": kind, "epoch": int(epoch), "layer": int(layer), "direction": direction}
         sends = [self._send(q, outgoing[q], meta) for q in sorted(outgoing)]
@@ -172,7 +163,7 @@ class PipeTransport:
     def allreduce_sum(self, buf: np.ndarray, *, epoch: int) -> None:
         """Sum the 1-D contiguous `buf` over all workers in place (ring all-reduce)."""
         def step(dst, send_view, src, recv_view, direction, _step):
-            meta = {"kind": ALLREDUCE, "epoch": int(epoch), "layer": NO_LAYER,
+            meta = {"kind": KIND_ALLREDUCE, "epoch": int(epoch), "layer": NO_LAYER,
                     "direction": direction}
             self._transfer([self._send(dst, send_view, meta)], [self._recv(src, recv_view)],
                            meta)
@@ -189,10 +180,8 @@ class PipeTransport:
         if peer not in self._send_fd:
             raise ValueError(f"worker {self.rank} has no pipe to worker {peer}; "
                              f"the pair must be given to make_pipe_mesh")
-        array = _wire_array(array)
-        if array.nbytes > self.max_frame_bytes:
-            raise RunError(f"frame to worker {peer} of {array.nbytes} bytes exceeds the limit "
-                           f"of {self.max_frame_bytes} bytes ({frames.describe(meta)})")
+        array = wire_array(array)
+        check_frame_size(peer, array.nbytes, self.max_frame_bytes, meta)
         header = frames.encode_header(source=self.rank, dtype=array.dtype, shape=array.shape,
                                       **meta)
         return _Send(peer, self._send_fd[peer], header, array)
@@ -201,11 +190,7 @@ class PipeTransport:
         if peer not in self._recv_fd:
             raise ValueError(f"worker {self.rank} has no pipe from worker {peer}; "
                              f"the pair must be given to make_pipe_mesh")
-        if not (isinstance(dest, np.ndarray) and dest.flags.c_contiguous
-                and dest.flags.writeable):
-            raise ValueError(f"receive buffer for worker {peer} must be a writeable "
-                             f"C-contiguous numpy array")
-        frames.dtype_name(dest.dtype)
+        check_receive_buffer(peer, dest)
         return _Recv(peer, self._recv_fd[peer], dest)
 
     def _transfer(self, sends: list[_Send], recvs: list[_Recv], meta: dict) -> None:
@@ -317,7 +302,7 @@ class PipeTransport:
                 assert r.header is not None          # stage 1 starts by allocating it
                 view = memoryview(r.header)[r.got:]
             else:
-                view = _bytes_view(r.dest)[r.got:]
+                view = bytes_view(r.dest)[r.got:]
             try:
                 n = os.readv(r.fd, [view])
             except BlockingIOError:
@@ -362,14 +347,8 @@ class PipeTransport:
         slow_in = [r.peer for r in recvs if r.stage < 3]
         if slow_in:
             return RunError(f"timed out after {self.timeout_s:g} s waiting for "
-                            f"{_workers(slow_in)} ({what})")
+                            f"{name_workers(slow_in)} ({what})")
         slow_out = [s.peer for s in sends if s.done < s.total]
         return RunError(f"timed out after {self.timeout_s:g} s waiting for "
-                        f"{_workers(slow_out)} to read ({what})")
+                        f"{name_workers(slow_out)} to read ({what})")
 
-
-def _workers(peers: list[int]) -> str:
-    peers = sorted(set(peers))
-    if len(peers) == 1:
-        return f"worker {peers[0]}"
-    return "workers " + ", ".join(map(str, peers))
