@@ -68,7 +68,7 @@ def run(args) -> int:
     if args.method is not None and args.workers is None:
         raise InputError("--workers: required with --method")
     if args.assignment is not None:
-        require_regular_file(args.assignment, option="--assignment")
+        require_regular_file(args.assignment, param="assignment")
 
     loaded = load_graph_from_args(args)
     graph = loaded.graph

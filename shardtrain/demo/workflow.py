@@ -30,7 +30,7 @@ from typing import Callable
 
 import numpy as np
 
-from shardtrain.errors import InputError, RunError
+from shardtrain.errors import InputError, ParameterError, RunError, name_parameter
 from shardtrain.units import human_seconds
 
 GRAPH_FILE = "parcel-network.npz"
@@ -85,19 +85,19 @@ class DemoSettings:
         return cls(**{"vertices": QUICK_VERTICES, "epochs": QUICK_EPOCHS, **kw})
 
     def validate(self) -> "DemoSettings":
-        """InputError naming the option of the first bad value; checks the output folder."""
-        def need(ok, option, rule, value):
+        """ParameterError naming the first bad setting; checks the output folder."""
+        def need(ok, param, rule, value):
             if not ok:
-                raise InputError(f"{option} {value}: must be {rule}")
+                raise ParameterError(param, f"must be {rule}", value=value)
 
-        need(_is_int(self.vertices) and self.vertices >= MIN_VERTICES, "--vertices",
+        need(_is_int(self.vertices) and self.vertices >= MIN_VERTICES, "vertices",
              f"an integer >= {MIN_VERTICES}", self.vertices)
         need(_is_int(self.workers) and 2 <= self.workers <= min(MAX_WORKERS, self.vertices),
-             "--workers", f"an integer from 2 to {MAX_WORKERS} (the demo compares several "
+             "workers", f"an integer from 2 to {MAX_WORKERS} (the demo compares several "
              f"workers with one process)", self.workers)
-        need(_is_int(self.epochs) and self.epochs >= 1, "--epochs", "an integer >= 1",
+        need(_is_int(self.epochs) and self.epochs >= 1, "epochs", "an integer >= 1",
              self.epochs)
-        need(_is_int(self.seed) and self.seed >= 0, "--seed", "an integer >= 0", self.seed)
+        need(_is_int(self.seed) and self.seed >= 0, "seed", "an integer >= 0", self.seed)
         check_out_dir(self.out, self.overwrite)
         return self
 
@@ -115,28 +115,35 @@ def check_out_dir(out, overwrite: bool) -> None:
     """Refuse, before any work, an output that is a file, a non-empty folder without
     --overwrite, or (with --overwrite) a non-empty folder that is not an earlier demo's."""
     p = Path(out)
+
+    def refuse(text: str) -> ParameterError:
+        return ParameterError("out", text, value=out)
+
     if p.exists() and not p.is_dir():
-        raise InputError(f"--out {out}: exists and is not a folder")
+        raise refuse("exists and is not a folder")
     if p.is_dir() and any(p.iterdir()):
         if not overwrite:
-            raise InputError(f"--out {out}: folder exists and is not empty "
-                             f"(give --overwrite to replace an earlier demo, or another --out)")
+            raise refuse("folder exists and is not empty "
+                         "(give --overwrite to replace an earlier demo, or another --out)")
         if not (p / SUMMARY_FILE).is_file():
-            raise InputError(f"--out {out}: not an earlier demo's folder (no {SUMMARY_FILE}); "
-                             f"--overwrite only replaces those")
+            raise refuse(f"not an earlier demo's folder (no {SUMMARY_FILE}); "
+                         f"--overwrite only replaces those")
     parent = p.absolute().parent
     if parent.exists() and not parent.is_dir():
-        raise InputError(f"--out {out}: {parent} is not a folder")
+        raise refuse(f"{parent} is not a folder")
     from shardtrain.files import current_folder, is_inside, probe_folder
 
     if is_inside(current_folder(), p):   # renaming the folder we stand in cannot work
-        raise InputError(f"--out {out}: is or holds the current folder, which the demo "
-                         f"cannot replace (run it from another folder or give another --out)")
+        raise refuse("is or holds the current folder, which the demo "
+                     "cannot replace (run it from another folder or give another --out)")
     while not parent.exists():     # the demo creates missing parent folders
         parent = parent.parent
     if not parent.is_dir():
-        raise InputError(f"--out {out}: {parent} is not a folder")
-    probe_folder(parent, f"--out {out}")
+        raise refuse(f"{parent} is not a folder")
+    try:
+        probe_folder(parent, f"out {out}")
+    except InputError as exc:
+        raise name_parameter(exc, "out", out) from None
 
 
 @dataclass

@@ -28,7 +28,7 @@ import scipy.sparse as sp
 from threadpoolctl import threadpool_limits
 
 from shardtrain.compat import add_csr_product
-from shardtrain.errors import InputError
+from shardtrain.errors import InputError, ParameterError, name_parameter
 
 CALIBRATION_VERSION = 1
 SPARSE_WIDTHS = (8, 32, 128)
@@ -205,7 +205,7 @@ def _time_pipe() -> dict:
 def calibrate(dtype: str = "float32", *, seed: int = 0) -> dict:
     """Time sparse, dense and elementwise kernels with BLAS on one thread (a few seconds)."""
     if dtype not in ("float32", "float64"):
-        raise InputError(f"--dtype: {dtype!r} is not float32 or float64")
+        raise ParameterError("dtype", f"{dtype!r} is not float32 or float64")
     rng = np.random.default_rng(seed)
     t0 = time.perf_counter()
     with threadpool_limits(limits=1):
@@ -269,7 +269,7 @@ def from_flops(flops_per_s: float, dtype: str = "float32") -> dict:
     rate in multiply-adds counted as 2 flops each, memory passes at 4 bytes per flop
     (common practice: sparse and elementwise kernels are bound by memory, not arithmetic)."""
     if not (flops_per_s > 0 and np.isfinite(flops_per_s)):
-        raise InputError("--flops-per-worker: must be a positive number")
+        raise ParameterError("flops_per_s", "must be a positive number")
     return {"version": CALIBRATION_VERSION, "dtype": dtype, "threads": 1,
             "sparse": [{"nnz": 1, "width": 1, "seconds": 0.0,
                         "nnz_cols_per_s": flops_per_s / 2.0}],
@@ -329,14 +329,21 @@ def _positive_int(x) -> bool:
     return isinstance(x, int) and not isinstance(x, bool) and x > 0
 
 
-def read_calibration(path, dtype: str, option: str = "--calibration") -> dict | None:
+def read_calibration(path, dtype: str, param: str = "calibration") -> dict | None:
     """The cached calibration in `path` for `dtype`, or None when one must be timed (and
     then written there): the file does not exist yet, or it is a calibration of another
     dtype or version (a stale cache, replaced). Anything else in its place is refused with
-    an InputError naming `option` and the file, so that a bad file costs no work and is
+    a ParameterError naming `param` and the file, so that a bad file costs no work and is
     never overwritten."""
     p = Path(path)
-    where = f"{option} {p}"
+    where = f"{param} {p}"
+    try:
+        return _read_calibration(p, dtype, where)
+    except InputError as exc:   # every message starts with `where`: name the parameter
+        raise name_parameter(exc, param, p) from None
+
+
+def _read_calibration(p: Path, dtype: str, where: str) -> dict | None:
     if not p.exists():
         if not p.parent.is_dir():
             raise InputError(f"{where}: folder {p.parent} does not exist")

@@ -51,7 +51,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from shardtrain.errors import InputError
+from shardtrain.errors import InputError, ParameterError
 from shardtrain.forecast.calibrate import (
     dense_speed,
     elementwise_speed,
@@ -166,8 +166,8 @@ def _send_rows(plan: dict, hops: list[dict], itemsize: int) -> np.ndarray:
 def _check_positive(name: str, value, *, allow_zero=False) -> None:
     ok = value is not None and math.isfinite(value) and (value >= 0 if allow_zero else value > 0)
     if not ok:
-        raise InputError(f"{name}: must be a {'non-negative' if allow_zero else 'positive'} "
-                         f"number, got {value!r}")
+        raise ParameterError(name, f"must be a {'non-negative' if allow_zero else 'positive'} "
+                                   f"number, got {value!r}")
 
 
 def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: float,
@@ -188,11 +188,11 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
     present) adds its fixed cost to every transport call.
     Returns the plan-level critical path and a per-worker split.
     """
-    _check_positive("--link-gbps", link_gbps)
-    _check_positive("--latency-us", latency_us, allow_zero=True)
-    _check_positive("--speed-factor", speed_factor)
+    _check_positive("link_gbps", link_gbps)
+    _check_positive("latency_us", latency_us, allow_zero=True)
+    _check_positive("speed_factor", speed_factor)
     if cores is not None and not cores > 0:
-        raise InputError(f"--cores: must be above 0, got {cores}")
+        raise ParameterError("cores", f"must be above 0, got {cores}")
     k = int(plan["workers"])
     dtype = model["dtype"]
     b = np.dtype(dtype).itemsize
@@ -393,13 +393,13 @@ def forecast(survey_dict: dict, *, link_gbps_list, latency_us: float, calibratio
     {(method, workers): one `calibrate.shard_step_seconds` result per worker} for the
     plans whose compute was measured on their shards."""
     if not link_gbps_list:
-        raise InputError("--link-gbps: give at least one speed")
+        raise ParameterError("link_gbps", "give at least one speed")
     for g in link_gbps_list:
-        _check_positive("--link-gbps", g)
-    _check_positive("--latency-us", latency_us, allow_zero=True)
-    _check_positive("--speed-factor", speed_factor)
+        _check_positive("link_gbps", g)
+    _check_positive("latency_us", latency_us, allow_zero=True)
+    _check_positive("speed_factor", speed_factor)
     if target_epoch_s is not None:
-        _check_positive("--target-epoch-s", target_epoch_s)
+        _check_positive("target_epoch_s", target_epoch_s)
     model = survey_dict["model"]
     plans = []
     for plan in survey_dict["plans"]:

@@ -15,7 +15,7 @@ import numpy as np
 from shardtrain.compat import metis_part_graph
 from shardtrain.data.graph import Graph
 from shardtrain.data.readers import read_npy, require_regular_file
-from shardtrain.errors import InputError, RunError
+from shardtrain.errors import InputError, ParameterError, RunError
 
 # ----------------------------------------------------------------------------- METIS
 
@@ -327,10 +327,10 @@ METHODS = {
 DEFAULT_COMPARED = ("metis", "fennel", "random", "range")
 
 
-def check_workers(k: int, num_vertices: int, option: str = "--workers") -> None:
+def check_workers(k: int, num_vertices: int, param: str = "workers") -> None:
     if not isinstance(k, (int, np.integer)) or k < 1 or k > num_vertices:
-        raise InputError(f"{option} {k}: must be between 1 and the number of vertices "
-                         f"({num_vertices})")
+        raise ParameterError(param, f"must be between 1 and the number of vertices "
+                                    f"({num_vertices})", value=k)
 
 
 def partition(graph: Graph, method: str, k: int, *, seed: int = 0,
@@ -346,10 +346,11 @@ def partition_plan(graph: Graph, method: str, k: int, *, seed: int = 0,
     "vertices+edges") and "refinement" (passes per level); `metis` and `metis-balanced`
     add "edge_cut" and "tried" (every candidate computed, with its cut and imbalances)."""
     if method not in METHODS:
-        raise InputError(f"--method {method!r}: unknown; expected one of {', '.join(METHODS)}")
+        raise ParameterError("method", f"unknown; expected one of {', '.join(METHODS)}",
+                             value=repr(method))
     check_workers(k, graph.num_vertices)
     if not (0.0 <= imbalance < 1.0):
-        raise InputError(f"--imbalance {imbalance}: must be in [0, 1)")
+        raise ParameterError("imbalance", "must be in [0, 1)", value=imbalance)
     k = int(k)
     if k == 1:
         return np.zeros(graph.num_vertices, dtype=np.int64), {"method": method}
@@ -367,11 +368,11 @@ def partition_plan(graph: Graph, method: str, k: int, *, seed: int = 0,
 # ----------------------------------------------------------------------------- from a file
 
 def load_assignment(path: str | os.PathLike, num_vertices: int,
-                    option: str = "--assignment") -> tuple[np.ndarray, int]:
+                    param: str = "assignment") -> tuple[np.ndarray, int]:
     """A user's partition: `.npy` (integer array) or text with one worker id per line, in
     vertex order. Returns (assignment, k) with k = max id + 1; every worker must own a vertex."""
     path = Path(path)
-    require_regular_file(path, option=option)   # a FIFO or device: refused before opening
+    require_regular_file(path, param=param)   # a FIFO or device: refused before opening
     if path.suffix == ".npy":
         a = _read_npy(path, num_vertices)
     else:

@@ -26,7 +26,7 @@ from scipy.sparse.csgraph import reverse_cuthill_mckee
 
 from shardtrain.compat import scale_csr_rows
 from shardtrain.data.graph import Graph, gcn_degrees
-from shardtrain.errors import InputError
+from shardtrain.errors import InputError, ParameterError
 
 # "locality": owned vertices renumbered by reverse Cuthill-McKee on the owned subgraph, so
 # neighbours sit close together in memory (the trainer's order); "id": owned vertices in
@@ -241,7 +241,7 @@ def check_assignment(assignment, num_vertices: int, k: int) -> np.ndarray:
         raise InputError(f"assignment: expected {num_vertices} integer worker ids, "
                          f"got shape {a.shape} dtype {a.dtype}")
     if k < 1:
-        raise InputError(f"--workers: must be at least 1, got {k}")
+        raise ParameterError("workers", f"must be at least 1, got {k}")
     if a.size and (a.min() < 0 or a.max() >= k):
         raise InputError(f"assignment: worker ids must lie in [0, {k}), "
                          f"got {int(a.min())}..{int(a.max())}")

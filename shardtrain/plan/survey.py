@@ -15,7 +15,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from shardtrain.data.graph import structure_fingerprint
-from shardtrain.errors import InputError
+from shardtrain.errors import ParameterError
 from shardtrain.plan.schedule import LayerHop, layer_dims, layer_hops
 
 # Resident memory of an idle worker interpreter with numpy and scipy.sparse imported,
@@ -306,13 +306,14 @@ def model_shape(graph, settings: SurveySettings) -> tuple[list[tuple[int, int]],
     # every missing width in one line, so a structure-only graph needs one retry, not two
     missing = []
     if input_dim is None or input_dim < 1:
-        missing.append(("--input-dim", "features", "the input width D >= 1"))
+        missing.append(("input_dim", "features", "the input width D >= 1"))
     if classes is None or classes < 1:
-        missing.append(("--classes", "labels", "the number of classes C >= 1"))
+        missing.append(("classes", "labels", "the number of classes C >= 1"))
     if missing:
-        raise InputError(f"{', '.join(m[0] for m in missing)}: the graph has no "
-                         f"{' and no '.join(m[1] for m in missing)}; give "
-                         f"{' and '.join(m[2] for m in missing)}")
+        raise ParameterError(missing[0][0], f"the graph has no "
+                             f"{' and no '.join(m[1] for m in missing)}; give "
+                             f"{' and '.join(m[2] for m in missing)}",
+                             also=tuple(m[0] for m in missing[1:]))
     assert input_dim is not None and classes is not None   # refused above when missing
     dims = layer_dims(int(input_dim), settings.hidden, int(classes), settings.layers)
     return dims, layer_hops(dims)
@@ -320,24 +321,25 @@ def model_shape(graph, settings: SurveySettings) -> tuple[list[tuple[int, int]],
 
 def check_plans(graph, methods: list[str], workers_list: list[int],
                 settings: SurveySettings) -> None:
-    """Reject bad options (InputError naming the option) before any work starts."""
+    """Reject bad settings (a ParameterError naming the parameter) before any work starts."""
     from shardtrain.plan.partition import METHODS
 
     for m in methods:
         if m not in METHODS:
-            raise InputError(f"--method: unknown method {m!r} (choose from {', '.join(METHODS)})")
+            raise ParameterError("method", f"unknown method {m!r} "
+                                           f"(choose from {', '.join(METHODS)})")
     for k in workers_list:
         if k < 1 or k > graph.num_vertices:
-            raise InputError(f"--workers: {k} is not between 1 and the graph's "
-                             f"{graph.num_vertices} vertices")
+            raise ParameterError("workers", f"{k} is not between 1 and the graph's "
+                                            f"{graph.num_vertices} vertices")
     if settings.layers < 1:
-        raise InputError(f"--layers: must be >= 1, got {settings.layers}")
+        raise ParameterError("layers", f"must be >= 1, got {settings.layers}")
     if settings.hidden < 1:
-        raise InputError(f"--hidden: must be >= 1, got {settings.hidden}")
+        raise ParameterError("hidden", f"must be >= 1, got {settings.hidden}")
     if settings.dtype not in ("float32", "float64"):
-        raise InputError(f"--dtype: must be float32 or float64, got {settings.dtype!r}")
+        raise ParameterError("dtype", f"must be float32 or float64, got {settings.dtype!r}")
     if not 0.0 <= settings.imbalance < 1.0:
-        raise InputError(f"--imbalance: must be in [0, 1), got {settings.imbalance}")
+        raise ParameterError("imbalance", f"must be in [0, 1), got {settings.imbalance}")
     model_shape(graph, settings)
 
 

@@ -14,7 +14,7 @@ from dataclasses import asdict, dataclass, fields
 
 import numpy as np
 
-from shardtrain.errors import InputError
+from shardtrain.errors import InputError, ParameterError
 
 DTYPES = ("float32", "float64")
 
@@ -34,28 +34,28 @@ class TrainSettings:
     threads: int = 1
 
     def validate(self) -> "TrainSettings":
-        """Raise InputError naming the command-line option of the first bad value."""
-        def need(ok, option, rule, value):
+        """Raise a ParameterError naming the first bad setting (the CLI names its option)."""
+        def need(ok, param, rule, value):
             if not ok:
-                raise InputError(f"{option}: must be {rule} (got {value!r})")
+                raise ParameterError(param, f"must be {rule} (got {value!r})")
 
-        need(_is_int(self.layers) and self.layers >= 1, "--layers", "an integer >= 1",
+        need(_is_int(self.layers) and self.layers >= 1, "layers", "an integer >= 1",
              self.layers)
-        need(_is_int(self.hidden) and self.hidden >= 1, "--hidden", "an integer >= 1",
+        need(_is_int(self.hidden) and self.hidden >= 1, "hidden", "an integer >= 1",
              self.hidden)
-        need(_is_real(self.dropout) and 0 <= self.dropout < 1, "--dropout",
+        need(_is_real(self.dropout) and 0 <= self.dropout < 1, "dropout",
              "a number in [0, 1)", self.dropout)
-        need(_is_real(self.lr) and self.lr > 0, "--lr", "a number > 0", self.lr)
-        need(_is_real(self.weight_decay) and self.weight_decay >= 0, "--weight-decay",
+        need(_is_real(self.lr) and self.lr > 0, "lr", "a number > 0", self.lr)
+        need(_is_real(self.weight_decay) and self.weight_decay >= 0, "weight_decay",
              "a number >= 0", self.weight_decay)
-        need(_is_int(self.epochs) and self.epochs >= 1, "--epochs", "an integer >= 1",
+        need(_is_int(self.epochs) and self.epochs >= 1, "epochs", "an integer >= 1",
              self.epochs)
-        need(_is_int(self.seed) and self.seed >= 0, "--seed", "an integer >= 0", self.seed)
-        need(self.dtype in DTYPES, "--dtype", "one of " + ", ".join(DTYPES), self.dtype)
-        need(isinstance(self.bias, (bool, np.bool_)), "--bias", "true or false", self.bias)
-        need(_is_int(self.early_stop) and self.early_stop >= 0, "--early-stop",
+        need(_is_int(self.seed) and self.seed >= 0, "seed", "an integer >= 0", self.seed)
+        need(self.dtype in DTYPES, "dtype", "one of " + ", ".join(DTYPES), self.dtype)
+        need(isinstance(self.bias, (bool, np.bool_)), "bias", "true or false", self.bias)
+        need(_is_int(self.early_stop) and self.early_stop >= 0, "early_stop",
              "an integer >= 0 (0: off)", self.early_stop)
-        need(_is_int(self.threads) and 1 <= self.threads <= max_threads(), "--threads",
+        need(_is_int(self.threads) and 1 <= self.threads <= max_threads(), "threads",
              f"an integer in 1..{max_threads()} (4 x this machine's cores)", self.threads)
         return self
 
