@@ -16,6 +16,7 @@ import math
 
 import numpy as np
 
+from shardtrain import defaults
 from shardtrain.data.graph import Graph, csr_from_edges
 from shardtrain.data.memory import require_memory, synth_bytes
 from shardtrain.data.readers import make_splits
@@ -171,8 +172,9 @@ def _route_keys(sampler: _RouteSampler, n: int, target: int, rng) -> np.ndarray:
 
 
 def parcel_network(vertices: int, avg_degree: float, classes: int, features: int, seed: int,
-                   *, homophily: float = 0.8, degree_exponent: float = 2.5,
-                   signal: float = 1.5) -> Graph:
+                   *, homophily: float = defaults.HOMOPHILY,
+                   degree_exponent: float = defaults.DEGREE_EXPONENT,
+                   signal: float = defaults.SIGNAL) -> Graph:
     """The parcel network as a Graph with features (float32), labels and split masks.
 
     About vertices * avg_degree / 2 distinct routes; `homophily` is the expected fraction of

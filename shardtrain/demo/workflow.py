@@ -30,6 +30,7 @@ from typing import Callable
 
 import numpy as np
 
+from shardtrain import defaults
 from shardtrain.errors import InputError, ParameterError, RunError, name_parameter
 from shardtrain.units import human_seconds
 
@@ -42,10 +43,10 @@ SUMMARY_FILE = "demo.json"       # also marks a folder as a demo's, for --overwr
 SHARD_DIR = "shards"
 PLOT_DIR = "plots"
 
-METHODS = ("metis", "metis-volume", "fennel", "random", "range")
-SURVEY_WORKERS = (2, 4, 8)
-LINKS_GBPS = (1.0, 10.0)
-LATENCY_US = 20.0                # forecast.DEFAULT_LATENCY_US: a switched data-centre LAN
+METHODS = defaults.DEMO_METHODS
+SURVEY_WORKERS = defaults.SURVEY_WORKERS
+LINKS_GBPS = defaults.DEMO_LINKS_GBPS
+LATENCY_US = defaults.LATENCY_US
 RTOL = 1e-9                      # docs/design.md §1.7: float64 partitioned == reference
 MAX_WORKERS = 16                 # more processes than that only slow a 2-core machine down
 MIN_VERTICES = 200
@@ -54,10 +55,10 @@ TIMEOUT_S = 120.0                # receive deadline; generous because the machin
 # Full-size defaults: the demo (synth, survey of 15 plans, 100 epochs on 4 workers plus the
 # reference, calibration, forecast, report) takes well under 2 minutes on a busy 2-core
 # machine. --quick: tiny sizes for tests.
-DEFAULT_VERTICES = 20_000
-DEFAULT_EPOCHS = 100
-QUICK_VERTICES = 600
-QUICK_EPOCHS = 5
+DEFAULT_VERTICES = defaults.DEMO_VERTICES
+DEFAULT_EPOCHS = defaults.DEMO_EPOCHS
+QUICK_VERTICES = defaults.DEMO_QUICK_VERTICES
+QUICK_EPOCHS = defaults.DEMO_QUICK_EPOCHS
 
 
 @dataclass(frozen=True)
@@ -66,15 +67,15 @@ class DemoSettings:
     training settings are the GCN paper's (Kipf & Welling 2017; `settings.TrainSettings`)
     except the epoch count and the dtype (float64, so the equality check is to rounding)."""
 
-    out: str = "shardtrain-demo"
+    out: str = defaults.DEMO_OUT
     vertices: int = DEFAULT_VERTICES
-    workers: int = 4
+    workers: int = defaults.DEMO_WORKERS
     epochs: int = DEFAULT_EPOCHS
-    seed: int = 0
+    seed: int = defaults.SEED
     overwrite: bool = False
-    avg_degree: float = 10.0
-    classes: int = 6
-    features: int = 32
+    avg_degree: float = defaults.SYNTH_AVG_DEGREE
+    classes: int = defaults.SYNTH_CLASSES
+    features: int = defaults.SYNTH_FEATURES
     methods: tuple = METHODS
     survey_workers: tuple = SURVEY_WORKERS
     links_gbps: tuple = LINKS_GBPS

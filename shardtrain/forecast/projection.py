@@ -51,6 +51,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from shardtrain import defaults
 from shardtrain.errors import InputError, ParameterError
 from shardtrain.forecast.calibrate import (
     dense_speed,
@@ -63,8 +64,6 @@ from shardtrain.forecast.calibrate import (
     transport_copy_speed,
 )
 
-LINK_PRESETS_GBPS = (1.0, 10.0, 25.0, 100.0)
-DEFAULT_LATENCY_US = 20.0
 # Python and numpy overhead of one kernel call (common practice: a few microseconds).
 CALL_OVERHEAD_S = 5e-6
 
@@ -171,8 +170,9 @@ def _check_positive(name: str, value, *, allow_zero=False) -> None:
 
 
 def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: float,
-                  calibration: dict, speed_factor: float = 1.0, cores: float | None = None,
-                  dropout: float = 0.5, local_pipes: bool = False,
+                  calibration: dict, speed_factor: float = defaults.SPEED_FACTOR,
+                  cores: float | None = None,
+                  dropout: float = defaults.DROPOUT, local_pipes: bool = False,
                   classes: int | None = None, measured_compute: list[dict] | None = None
                   ) -> dict:
     """Forecast one training epoch (and one evaluation forward) of a survey plan.
@@ -385,8 +385,8 @@ def _pick(p: dict | None) -> dict | None:
 
 
 def forecast(survey_dict: dict, *, link_gbps_list, latency_us: float, calibration: dict,
-             speed_factor: float = 1.0, target_epoch_s: float | None = None,
-             cores: int | None = None, dropout: float = 0.5,
+             speed_factor: float = defaults.SPEED_FACTOR, target_epoch_s: float | None = None,
+             cores: int | None = None, dropout: float = defaults.DROPOUT,
              measured_compute: dict | None = None) -> dict:
     """Forecast every plan of a survey on every link speed; mark the fastest plan and the
     plan with the fewest workers whose epoch meets `target_epoch_s`. `measured_compute`:

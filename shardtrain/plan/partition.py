@@ -12,6 +12,7 @@ from pathlib import Path
 
 import numpy as np
 
+from shardtrain import defaults
 from shardtrain.compat import metis_part_graph
 from shardtrain.data.graph import Graph
 from shardtrain.data.readers import read_npy, require_regular_file
@@ -321,10 +322,8 @@ METHODS = {
     "range": range_blocks,
 }
 
-# What a survey or forecast compares unless told otherwise: metis-volume is left out because
-# it takes minutes per plan on million-vertex power-law graphs (see its docstring), and
-# metis-balanced because `metis` already takes its plan where that costs little.
-DEFAULT_COMPARED = ("metis", "fennel", "random", "range")
+# What a survey or forecast compares unless told otherwise (why: shardtrain/defaults.py)
+DEFAULT_COMPARED = defaults.COMPARED_METHODS
 
 
 def check_workers(k: int, num_vertices: int, param: str = "workers") -> None:
@@ -333,14 +332,14 @@ def check_workers(k: int, num_vertices: int, param: str = "workers") -> None:
                                     f"({num_vertices})", value=k)
 
 
-def partition(graph: Graph, method: str, k: int, *, seed: int = 0,
-              imbalance: float = 0.03) -> np.ndarray:
+def partition(graph: Graph, method: str, k: int, *, seed: int = defaults.SEED,
+              imbalance: float = defaults.IMBALANCE) -> np.ndarray:
     """Assignment of every vertex to a worker in [0, k) by the named method."""
     return partition_plan(graph, method, k, seed=seed, imbalance=imbalance)[0]
 
 
-def partition_plan(graph: Graph, method: str, k: int, *, seed: int = 0,
-                   imbalance: float = 0.03) -> tuple[np.ndarray, dict]:
+def partition_plan(graph: Graph, method: str, k: int, *, seed: int = defaults.SEED,
+                   imbalance: float = defaults.IMBALANCE) -> tuple[np.ndarray, dict]:
     """(assignment, details) by the named method. details is {"method": name} and, for the
     METIS methods, "scheme" ("recursive" | "kway"), "balance" ("vertices" |
     "vertices+edges") and "refinement" (passes per level); `metis` and `metis-balanced`

@@ -14,6 +14,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from shardtrain import defaults
 from shardtrain.data.graph import structure_fingerprint
 from shardtrain.errors import ParameterError
 from shardtrain.plan.schedule import LayerHop, layer_dims, layer_hops
@@ -33,14 +34,14 @@ ALLREDUCE_LAYER = -1          # the all-reduce is one flat array of all gradient
 class SurveySettings:
     """The model shape and partition options a survey compares plans under."""
 
-    layers: int = 2
-    hidden: int = 16
-    dtype: str = "float32"
+    layers: int = defaults.LAYERS
+    hidden: int = defaults.HIDDEN
+    dtype: str = defaults.DTYPE
     classes: int | None = None      # needed when the graph has no labels
     input_dim: int | None = None    # needed when the graph has no features
-    bias: bool = False
-    imbalance: float = 0.03
-    seed: int = 0
+    bias: bool = defaults.BIAS
+    imbalance: float = defaults.IMBALANCE
+    seed: int = defaults.SEED
 
 
 def parameter_elements(hops: list[LayerHop], *, bias: bool = False) -> int:

@@ -1,11 +1,11 @@
 """Training settings: one value shared by the reference, the workers and the CLI.
 
-Defaults are the GCN paper's setup (Kipf & Welling, ICLR 2017): 2 layers, 16 hidden units,
-dropout 0.5, learning rate 0.01, weight decay 5e-4 on the first layer, 200 epochs, no bias.
-Two settings are the tool's own: `early_stop` (patience in epochs, 0 = off; the paper stops
-after 10 epochs without a better validation loss) and `threads` (BLAS threads per process,
-default 1: the workers are the parallelism, and the reference gets the same CPU per process
-so that the two modes compare like for like).
+Defaults (`shardtrain.defaults`) are the GCN paper's setup (Kipf & Welling, ICLR 2017):
+2 layers, 16 hidden units, dropout 0.5, learning rate 0.01, weight decay 5e-4 on the first
+layer, 200 epochs, no bias. Two settings are the tool's own: `early_stop` (patience in
+epochs, 0 = off; the paper stops after 10 epochs without a better validation loss) and
+`threads` (BLAS threads per process, default 1: the workers are the parallelism, and the
+reference gets the same CPU per process so that the two modes compare like for like).
 """
 from __future__ import annotations
 
@@ -14,6 +14,7 @@ from dataclasses import asdict, dataclass, fields
 
 import numpy as np
 
+from shardtrain import defaults
 from shardtrain.errors import InputError, ParameterError
 
 DTYPES = ("float32", "float64")
@@ -21,17 +22,17 @@ DTYPES = ("float32", "float64")
 
 @dataclass
 class TrainSettings:
-    layers: int = 2
-    hidden: int = 16
-    dropout: float = 0.5
-    lr: float = 0.01
-    weight_decay: float = 5e-4
-    epochs: int = 200
-    seed: int = 0
-    dtype: str = "float32"
-    bias: bool = False
-    early_stop: int = 0
-    threads: int = 1
+    layers: int = defaults.LAYERS
+    hidden: int = defaults.HIDDEN
+    dropout: float = defaults.DROPOUT
+    lr: float = defaults.LR
+    weight_decay: float = defaults.WEIGHT_DECAY
+    epochs: int = defaults.EPOCHS
+    seed: int = defaults.SEED
+    dtype: str = defaults.DTYPE
+    bias: bool = defaults.BIAS
+    early_stop: int = defaults.EARLY_STOP
+    threads: int = defaults.THREADS
 
     def validate(self) -> "TrainSettings":
         """Raise a ParameterError naming the first bad setting (the CLI names its option)."""
