@@ -50,7 +50,7 @@ def _settings(args) -> DemoSettings:
 def summary_lines(r) -> list[str]:
     """The closing summary; its last line says where the report is."""
 
-    c, p = r.check, r.plan
+    c, p = r.check, r.choice
     acc = r.final.get("test_acc")
     lines = [
         f"best plan: {p['method']} on {p['workers']} workers ({p['reason']})",

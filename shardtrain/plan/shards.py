@@ -307,7 +307,8 @@ def shard_stats(shards: list[Shard]) -> dict[str, np.ndarray]:
 
 # ----------------------------------------------------------------------------- shard directories
 
-MANIFEST = "shards.json"
+SHARDS_MANIFEST = "shards.json"           # the one name of a shard directory's index
+MANIFEST = SHARDS_MANIFEST               # the old name, until train/coordinator.py moves
 FORMAT = "shardtrain-shards"
 # version 2: `split_id` and per-worker `owned` counts in the manifest; each shard's header
 # holds 8 values and its own copy of the split id (version 1 directories: re-run split)
@@ -398,7 +399,7 @@ def save_shards(path, shards: list[Shard], *, meta: dict, overwrite: bool = Fals
                 if value is not None:
                     arrays[name] = value
             save_npz_atomic(tmp / shard_file_name(s.worker), **arrays)
-        write_json_atomic(tmp / MANIFEST, manifest)
+        write_json_atomic(tmp / SHARDS_MANIFEST, manifest)
     return manifest
 
 
@@ -410,7 +411,7 @@ def load_manifest(path) -> dict:
 
     from shardtrain.files import read_json_document
 
-    file = Path(path) / MANIFEST
+    file = Path(path) / SHARDS_MANIFEST
     if not file.is_file():
         raise InputError(f"{file}: no such file (not a shard directory)")
     try:
@@ -557,10 +558,11 @@ def check_shard(path, manifest: dict, worker: int) -> None:
     split_id = str(split) if split.ndim == 0 and split.dtype.kind == "U" else None
     if split_id != manifest["split_id"] or got["workers"] != k:
         raise InputError(f"{file}: belongs to another split (split {split_id}, "
-                         f"{got['workers']} workers) than {MANIFEST} ({manifest['split_id']}, "
+                         f"{got['workers']} workers) than {SHARDS_MANIFEST} "
+                         f"({manifest['split_id']}, "
                          f"{k} workers)")
     if got["worker"] != worker:
-        raise InputError(f"{file}: is shard {got['worker']} of the split, but {MANIFEST} "
+        raise InputError(f"{file}: is shard {got['worker']} of the split, but {SHARDS_MANIFEST} "
                          f"lists it as shard {worker} (files swapped or re-ordered?)")
     want = {"num_vertices": manifest["num_vertices"],
             "num_train_global": manifest["num_train_global"],
@@ -569,7 +571,7 @@ def check_shard(path, manifest: dict, worker: int) -> None:
             "num_classes": manifest["num_classes"]}
     for key, value in want.items():
         if got[key] != value:
-            raise InputError(f"{file}: says {key} {got[key]}, {MANIFEST} says {value} (an "
+            raise InputError(f"{file}: says {key} {got[key]}, {SHARDS_MANIFEST} says {value} (an "
                              f"edited manifest?)")
     n_own = got["owned"]
     if shapes.get("owned", ((None,), None))[0] != (n_own,):
@@ -577,7 +579,7 @@ def check_shard(path, manifest: dict, worker: int) -> None:
     feat = shapes.get("features")
     if (feat is None) != (want["input_dim"] == -1):
         raise InputError(f"{file}: {'has' if feat is not None else 'lacks'} features, "
-                         f"{MANIFEST} says input_dim {manifest.get('input_dim')}")
+                         f"{SHARDS_MANIFEST} says input_dim {manifest.get('input_dim')}")
     if feat is not None and (feat[0] != (n_own, want["input_dim"])
                              or feat[1].str != manifest.get("feature_dtype")):
         raise InputError(f"{file}: features are {feat[0]} {feat[1]}, expected "
@@ -592,7 +594,7 @@ def check_shard(path, manifest: dict, worker: int) -> None:
         top = int(labels.max())
         if top >= manifest["num_classes"] or int(labels.min()) < -1:
             raise InputError(f"{file}: labels run from {int(labels.min())} to {top}, "
-                             f"{MANIFEST} says num_classes {manifest['num_classes']}")
+                             f"{SHARDS_MANIFEST} says num_classes {manifest['num_classes']}")
 
 
 def check_shard_dir(path, workers=None) -> dict:
@@ -625,7 +627,7 @@ def load_shard(path, worker: int) -> Shard:
     manifest = load_manifest(path)
     k = manifest["workers"]
     if not 0 <= worker < k:
-        raise InputError(f"{Path(path) / MANIFEST}: has workers 0..{k - 1}, not {worker}")
+        raise InputError(f"{Path(path) / SHARDS_MANIFEST}: has workers 0..{k - 1}, not {worker}")
     file = _shard_file(path, manifest, worker)
     try:
         with np.load(file, allow_pickle=False) as z:

@@ -67,11 +67,11 @@ def file_sha256(path) -> str:
 
 def shard_dir_fingerprint(shard_dir) -> str:
     """SHA-256 (16 hex digits) of the manifest and every shard file, in manifest order."""
-    from shardtrain.plan.shards import MANIFEST, load_manifest
+    from shardtrain.plan.shards import SHARDS_MANIFEST, load_manifest
 
     manifest = load_manifest(shard_dir)
     h = hashlib.sha256()
-    for name in [MANIFEST, *manifest["files"]]:
+    for name in [SHARDS_MANIFEST, *manifest["files"]]:
         h.update(name.encode() + b"\0")
         with open(Path(shard_dir) / name, "rb") as fh:
             for block in iter(lambda: fh.read(1 << 20), b""):
