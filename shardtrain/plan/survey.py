@@ -10,12 +10,13 @@ per plan the Python work is O(k) loops over workers; the k x k traffic matrix is
 from __future__ import annotations
 
 import time
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
 from shardtrain import defaults
 from shardtrain.data.graph import structure_fingerprint
+from shardtrain.documents import ABSENT, Document
 from shardtrain.errors import ParameterError
 from shardtrain.plan.schedule import LayerHop, layer_dims, layer_hops
 
@@ -42,6 +43,28 @@ class SurveySettings:
     bias: bool = defaults.BIAS
     imbalance: float = defaults.IMBALANCE
     seed: int = defaults.SEED
+
+
+@dataclass(kw_only=True)
+class SurveyPlan(Document):
+    """One plan of a survey, typed (fields in the order `survey_plan` writes them; its
+    shape is `documents.SURVEY_PLAN`). The nested parts stay the dicts the JSON holds."""
+
+    method: str
+    workers: int
+    edge_cut: int = ABSENT
+    replication_factor: float = ABSENT
+    max_memory_bytes: int = ABSENT
+    epoch_payload_bytes: int = ABSENT
+    shards: list[dict]              # per worker: owned, halo, local_edges, memory, bytes
+    traffic: dict                   # `predict_traffic`: bytes per epoch, pair matrix, ...
+    imbalance: dict = ABSENT        # max/mean of owned, local_edges, halo, bytes_sent
+    partition: dict = ABSENT        # `partition.partition_plan` details
+    partition_s: float | None = ABSENT
+    build_s: float | None = ABSENT
+    partition_cpu_s: float = ABSENT
+    build_cpu_s: float = ABSENT
+    extra: dict = field(default_factory=dict)
 
 
 def parameter_elements(hops: list[LayerHop], *, bias: bool = False) -> int:
@@ -279,25 +302,25 @@ def survey_plan(graph, method: str, k: int, *, hops: list[LayerHop], itemsize: i
                    "local_edges": int(local_edges[w]), "memory_bytes": int(memory[w]),
                    "bytes_sent": int(sent[w]), "bytes_received": int(received[w])}
                   for w in range(k)]
-    return {
-        "method": method,
-        "workers": k,
-        "edge_cut": cut,
-        "replication_factor": float((owned.sum() + halo.sum()) / graph.num_vertices),
-        "max_memory_bytes": int(memory.max()),
-        "epoch_payload_bytes": epoch_payload_bytes(traffic),
-        "shards": shard_rows,
-        "traffic": traffic,
-        "imbalance": {"owned": _max_over_mean(owned),
-                      "local_edges": _max_over_mean(local_edges),
-                      "halo": _max_over_mean(halo),
-                      "bytes_sent": _max_over_mean(sent)},
-        "partition": details,
-        "partition_s": t1 - t0,
-        "build_s": t2 - t1,
-        "partition_cpu_s": c1 - c0,      # this process's CPU time: the machine may be shared
-        "build_cpu_s": c2 - c1,
-    }
+    return SurveyPlan(
+        method=method,
+        workers=k,
+        edge_cut=cut,
+        replication_factor=float((owned.sum() + halo.sum()) / graph.num_vertices),
+        max_memory_bytes=int(memory.max()),
+        epoch_payload_bytes=epoch_payload_bytes(traffic),
+        shards=shard_rows,
+        traffic=traffic,
+        imbalance={"owned": _max_over_mean(owned),
+                   "local_edges": _max_over_mean(local_edges),
+                   "halo": _max_over_mean(halo),
+                   "bytes_sent": _max_over_mean(sent)},
+        partition=details,
+        partition_s=t1 - t0,
+        build_s=t2 - t1,
+        partition_cpu_s=c1 - c0,      # this process's CPU time: the machine may be shared
+        build_cpu_s=c2 - c1,
+    ).to_dict()
 
 
 def model_shape(graph, settings: SurveySettings) -> tuple[list[tuple[int, int]], list[LayerHop]]:
