@@ -9,11 +9,39 @@ EXIT_RUN_FAILED = 3    # a run broke: a worker died, a frame was corrupt, a dead
 EXIT_INTERRUPTED = 4   # Ctrl-C or SIGTERM; the latest checkpoint is intact
 
 
-class InputError(Exception):
+_MARK = "\0"     # around a parameter named inside a message (no path or repr holds NUL)
+
+
+def option(param: str) -> str:
+    """Name another parameter inside a message: "give " + option("overwrite") + " to ...".
+    `str()` of the error shows the Python name ("give overwrite"), the command line its
+    option ("give --overwrite"; `shardtrain.cli.flags`)."""
+    return f"{_MARK}{param}{_MARK}"
+
+
+def reword(text: str, name_of=None) -> str:
+    """`text` with each `option(...)` mention put as `name_of(param)` (default: the name)."""
+    parts = text.split(_MARK)
+    return "".join(name_of(part) if i % 2 and name_of is not None else part
+                   for i, part in enumerate(parts))
+
+
+class _Worded(Exception):
+    """An error whose message may name parameters (`option`)."""
+
+    def __str__(self) -> str:
+        return reword(super().__str__())
+
+    def worded(self, name_of=None) -> str:
+        """The message with `name_of(param)` for each parameter it names."""
+        return reword(super().__str__(), name_of)
+
+
+class InputError(_Worded):
     """Bad input. The message is one line naming the file and line, or the option."""
 
 
-class RunError(Exception):
+class RunError(_Worded):
     """A run that started but could not finish (worker death, corrupt frame, timeout)."""
 
 
@@ -37,13 +65,9 @@ class ParameterError(InputError):
         self.param, self.text, self.sep, self.prefix = param, text, sep, prefix
         self.params = (param, *also)
         self.value = None if value is None else str(value)
-        super().__init__(self.worded())
-
-    def worded(self, name_of=None) -> str:
-        """The message with `name_of(param)` for each parameter (the option, on the CLI)."""
-        names = ", ".join(p if name_of is None else name_of(p) for p in self.params)
+        names = ", ".join(option(p) for p in self.params)
         head = names if self.value is None else f"{names} {self.value}"
-        return f"{self.prefix}{head}{self.sep}{self.text}"
+        super().__init__(f"{prefix}{head}{sep}{text}")
 
     def __reduce__(self):   # the default would call __init__ with the message alone
         return (_parameter_error, (self.param, self.text, self.value, self.sep, self.prefix,
@@ -57,7 +81,7 @@ def _parameter_error(param, text, value, sep, prefix, also) -> ParameterError:
 def name_parameter(exc: InputError, param: str, value: object) -> InputError:
     """`exc`, raised below a function with the head `f"{param} {value}"` (a file reader's or
     folder probe's `where`), as a ParameterError about `param`; any other `exc` unchanged."""
-    head, text = f"{param} {value}", str(exc)
+    head, text = f"{param} {value}", Exception.__str__(exc)   # mentions kept (`option`)
     if isinstance(exc, ParameterError) or not text.startswith(head):
         return exc
     return ParameterError(param, text[len(head):], value=value, sep="")

@@ -12,6 +12,7 @@ from types import SimpleNamespace
 import numpy as np
 import pytest
 
+from shardtrain.cli.flags import cli_message
 from shardtrain.demo import check as demo_check
 from shardtrain.demo import settings as demo_settings
 from shardtrain.demo import workflow as demo
@@ -183,8 +184,11 @@ def test_bad_option_from_the_shell_is_one_line_without_traceback(tmp_path, run_c
 def test_overwrite_is_allowed_for_an_earlier_demo_folder(tmp_path):
     (tmp_path / demo_settings.SUMMARY_FILE).write_text("{}\n")
     demo_settings.check_out_dir(tmp_path, overwrite=True)
-    with pytest.raises(InputError, match="--out"):
+    with pytest.raises(InputError, match="^out ") as info:     # the library's parameter
         demo_settings.check_out_dir(tmp_path, overwrite=False)
+    # as the command line words it (cli/flags.py)
+    assert cli_message(info.value).startswith(f"--out {tmp_path}: folder exists and is not "
+                                              f"empty (give --overwrite to replace")
 
 
 def test_a_failing_step_leaves_nothing_behind(tmp_path, monkeypatch):

@@ -16,7 +16,7 @@ import pytest
 
 from shardtrain.cli import main
 from shardtrain.cli.flags import FLAGS, NOT_OPTIONS, cli_message
-from shardtrain.errors import InputError, ParameterError, name_parameter
+from shardtrain.errors import InputError, ParameterError, RunError, name_parameter, option
 from shardtrain.train.settings import TrainSettings
 
 PACKAGE = Path(__file__).resolve().parents[1] / "shardtrain"
@@ -55,8 +55,8 @@ def _raised_params() -> set[str]:
                     found.add(_const(args[0]))
                 elif name == "need" and len(args) > 1 and _const(args[1]):
                     found.add(_const(args[1]))
-                elif name in ("_check_positive", "name_parameter") and args:
-                    arg = args[0] if name == "_check_positive" else args[1]
+                elif name in ("_check_positive", "name_parameter", "option") and args:
+                    arg = args[1] if name == "name_parameter" else args[0]
                     if _const(arg):
                         found.add(_const(arg))
             elif isinstance(node, ast.arguments):
@@ -81,28 +81,36 @@ def test_every_parameter_the_library_names_has_an_option_or_is_declared_not_one(
     assert all(flag.startswith("--") for flag in FLAGS.values())
 
 
-def _message_heads(tree):
-    """The literal start of each InputError/ParameterError message raised in a module."""
+_ERRORS = ("InputError", "ParameterError", "RunError", "refuse", "_fail", "_Bad")
+
+
+def _message_texts(tree):
+    """Every literal piece of text of the error messages raised in a module."""
     for node in ast.walk(tree):
-        if isinstance(node, ast.Call) and _name(node.func) in ("InputError", "ParameterError"):
-            for arg in node.args[:2]:
-                first = arg.values[0] if isinstance(arg, ast.JoinedStr) and arg.values else arg
-                text = _const(first)
-                if text is not None:
-                    yield node.lineno, text
+        if isinstance(node, ast.Call) and _name(node.func) in _ERRORS:
+            for arg in node.args[:3]:
+                for piece in ast.walk(arg):
+                    text = _const(piece)
+                    if text is not None:
+                        yield node.lineno, text
 
 
-def test_library_messages_do_not_start_with_a_flag():
+def _spells_a_flag(text: str) -> bool:
+    return text.startswith("--") or " --" in text or "(--" in text
+
+
+def test_library_messages_spell_no_flag():
     found = [f"{rel}:{line}: {text!r}" for rel, tree in _library_modules()
-             if rel not in NOT_YET_MOVED for line, text in _message_heads(tree)
-             if text.startswith("--")]
+             if rel not in NOT_YET_MOVED for line, text in _message_texts(tree)
+             if _spells_a_flag(text)]
     assert found == []
 
 
 def test_the_scan_sees_a_flag_worded_message(tmp_path):
     # the check above can fail: it flags a module written the old way
-    tree = ast.parse('raise InputError(f"--method {m!r}: unknown")')
-    assert [text for _, text in _message_heads(tree)] == ["--method "]
+    tree = ast.parse('raise InputError(f"--method {m!r}: unknown; give --seed")')
+    assert [t for _, t in _message_texts(tree) if _spells_a_flag(t)] == [
+        "--method ", ": unknown; give --seed"]
 
 
 def test_parameter_error_words():
@@ -114,6 +122,9 @@ def test_parameter_error_words():
     assert cli_message(both) == "--input-dim, --classes: the graph has no features"
     mid = ParameterError("features", "file type '.x'", prefix="f.x: unknown ", sep=" ")
     assert cli_message(mid) == "f.x: unknown --features file type '.x'"
+    hint = RunError(f"try another {option('seed')} or method")
+    assert (str(hint), cli_message(hint)) == ("try another seed or method",
+                                              "try another --seed or method")
     unknown = ParameterError("not_a_param", "text")
     assert cli_message(unknown) == "not_a_param: text"
     assert cli_message(InputError("g.txt:3: bad")) == "g.txt:3: bad"

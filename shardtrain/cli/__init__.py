@@ -86,12 +86,13 @@ def _main(argv: list[str] | None) -> int:
     try:
         args = build_parser().parse_args(argv)
         return int(args._run(args) or 0)
-    except InputError as exc:   # a ParameterError is worded with the option (cli/flags.py)
+    except InputError as exc:   # parameters named as options (cli/flags.py)
         from shardtrain.cli.flags import cli_message
         print(f"shardtrain: error: {cli_message(exc)}", file=sys.stderr)
         return EXIT_BAD_INPUT
     except RunError as exc:
-        print(f"shardtrain: run failed: {exc}", file=sys.stderr)
+        from shardtrain.cli.flags import cli_message
+        print(f"shardtrain: run failed: {cli_message(exc)}", file=sys.stderr)
         return EXIT_RUN_FAILED
     except Interrupted as exc:
         print(f"shardtrain: interrupted: {exc}", file=sys.stderr)

@@ -1,14 +1,15 @@
 """The one table from a library parameter to the command-line option that sets it.
 
 Library functions raise `errors.ParameterError` naming their Python parameter
-("method 'x': unknown ..."); `cli.main` words the message with the option from `FLAGS`
-("--method 'x': unknown ..."). A parameter missing here keeps its Python name;
+("method 'x': unknown ...") and name other parameters inside a message with
+`errors.option("seed")`; `cli.main` words the message with the options from `FLAGS`
+("--method 'x': unknown ...", "try another --seed"). A parameter missing here keeps its Python name;
 `tests/test_flags.py` checks that every parameter the library raises about is here or in
 `NOT_OPTIONS`.
 """
 from __future__ import annotations
 
-from shardtrain.errors import InputError, ParameterError
+from shardtrain.errors import InputError, RunError
 
 FLAGS = {
     # GRAPH and its vertex data (cli/common.py)
@@ -31,7 +32,8 @@ FLAGS = {
     "vertices": "--vertices", "avg_degree": "--avg-degree", "homophily": "--homophily",
     "degree_exponent": "--degree-exponent", "signal": "--signal",
     # outputs and folders
-    "plot": "--plot", "out": "--out", "checkpoint": "--checkpoint", "resume": "--resume",
+    "plot": "--plot", "out": "--out", "overwrite": "--overwrite",
+    "checkpoint": "--checkpoint", "resume": "--resume", "reference": "--reference",
     "emulate_link": "--emulate-link",
 }
 
@@ -43,8 +45,7 @@ def flag_of(param: str) -> str:
     return FLAGS.get(param, param)
 
 
-def cli_message(exc: InputError) -> str:
-    """The one line the CLI prints for a bad-input error (options named as typed)."""
-    if isinstance(exc, ParameterError):
-        return exc.worded(flag_of)
-    return str(exc)
+def cli_message(exc: InputError | RunError) -> str:
+    """The one line the CLI prints for an error: every parameter it names (a
+    `ParameterError`'s own, and `errors.option` mentions) as the option a user types."""
+    return exc.worded(flag_of)

@@ -22,7 +22,7 @@ from shardtrain.data.inputs import open_checked, require_regular_file
 from shardtrain.data.masks import MASK_KEYS, make_splits
 from shardtrain.data.memory import feature_bytes_of, graph_load_bytes, require_memory
 from shardtrain.data.textscan import TextTable, show
-from shardtrain.errors import InputError, ParameterError
+from shardtrain.errors import InputError, ParameterError, option
 
 EDGE_LIST_SUFFIXES = (".csv", ".tsv", ".txt", ".edges")
 GRAPH_SUFFIXES = (".npz", ".mtx") + EDGE_LIST_SUFFIXES
@@ -441,14 +441,14 @@ def load_graph(path: str | os.PathLike, *, features: str | os.PathLike | None = 
         if raw.features is not None:
             notes.append(f"--features {features} replaces the features in {path}")
         raw.features = load_features(features)
-        feat_where = f"--features {features}"
+        feat_where = f"{option('features')} {features}"
     else:
         feat_where = f"{path}: key 'features'"
     if labels is not None:
         if raw.labels is not None:
             notes.append(f"--labels {labels} replaces the labels in {path}")
         raw.labels = load_labels(labels)
-        label_where = f"--labels {labels}"
+        label_where = f"{option('labels')} {labels}"
     else:
         label_where = f"{path}: key 'labels'"
 

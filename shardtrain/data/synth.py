@@ -20,7 +20,7 @@ from shardtrain import defaults
 from shardtrain.data.graph import Graph, csr_from_edges
 from shardtrain.data.memory import require_memory, synth_bytes
 from shardtrain.data.readers import make_splits
-from shardtrain.errors import ParameterError
+from shardtrain.errors import ParameterError, option
 
 ROLE_NAMES = ("hub", "urban", "suburban", "rural", "cross-dock", "returns", "airport",
               "port", "rail-terminal", "pickup-point", "cold-chain", "bulk")
@@ -80,7 +80,8 @@ def _check(vertices, avg_degree, classes, features, homophily, degree_exponent, 
         raise ParameterError("seed", "must be >= 0", value=seed)
     routes = min(int(round(vertices * avg_degree / 2)), vertices * (vertices - 1) // 2)
     require_memory(synth_bytes(vertices, routes, features),
-                   f"--vertices {vertices} --avg-degree {avg_degree:g} --features {features}",
+                   f"{option('vertices')} {vertices} {option('avg_degree')} {avg_degree:g} "
+                   f"{option('features')} {features}",
                    what="generate the network")
 
 

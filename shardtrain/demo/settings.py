@@ -8,7 +8,7 @@ from pathlib import Path
 import numpy as np
 
 from shardtrain import defaults
-from shardtrain.errors import InputError, ParameterError, name_parameter
+from shardtrain.errors import InputError, ParameterError, name_parameter, option
 
 GRAPH_FILE = "parcel-network.npz"
 SURVEY_FILE = "survey.json"
@@ -101,10 +101,11 @@ def check_out_dir(out, overwrite: bool) -> None:
     if p.is_dir() and any(p.iterdir()):
         if not overwrite:
             raise refuse("folder exists and is not empty "
-                         "(give --overwrite to replace an earlier demo, or another --out)")
+                         f"(give {option('overwrite')} to replace an earlier demo, or another "
+                         f"{option('out')})")
         if not (p / SUMMARY_FILE).is_file():
             raise refuse(f"not an earlier demo's folder (no {SUMMARY_FILE}); "
-                         f"--overwrite only replaces those")
+                         f"{option('overwrite')} only replaces those")
     parent = p.absolute().parent
     if parent.exists() and not parent.is_dir():
         raise refuse(f"{parent} is not a folder")
@@ -112,7 +113,8 @@ def check_out_dir(out, overwrite: bool) -> None:
 
     if is_inside(current_folder(), p):   # renaming the folder we stand in cannot work
         raise refuse("is or holds the current folder, which the demo "
-                     "cannot replace (run it from another folder or give another --out)")
+                     f"cannot replace (run it from another folder or give another "
+                     f"{option('out')})")
     while not parent.exists():     # the demo creates missing parent folders
         parent = parent.parent
     if not parent.is_dir():

@@ -16,7 +16,7 @@ from shardtrain import defaults
 from shardtrain.compat import metis_part_graph
 from shardtrain.data.graph import Graph
 from shardtrain.data.readers import read_npy, require_regular_file
-from shardtrain.errors import InputError, ParameterError, RunError
+from shardtrain.errors import InputError, ParameterError, RunError, option
 
 # ----------------------------------------------------------------------------- METIS
 
@@ -118,7 +118,8 @@ def _metis_plan(graph: Graph, k: int, *, seed: int, imbalance: float,
         # never hand such a plan on silently
         largest = min(c["largest"] for c in tried)
         raise RunError(f"METIS returned a part of {largest} vertices for {k} workers "
-                       f"(mean {n / k:.0f}, tolerance {imbalance}); try another --seed or method")
+                       f"(mean {n / k:.0f}, tolerance {imbalance}); try another {option('seed')} "
+                       f"or method")
     best = min(ok, key=lambda i: _rank(tried[i]))
     if balance == "auto" and small and tried[best]["local_edges_max_over_mean"] > EDGE_BOUND:
         both()
@@ -161,7 +162,8 @@ def _metis_volume_plan(graph: Graph, k: int, *, seed: int,
     largest = int(np.bincount(part, minlength=k).max())
     if largest > 1.02 * (1.0 + imbalance) * n / k + 2:
         raise RunError(f"METIS returned a part of {largest} vertices for {k} workers "
-                       f"(mean {n / k:.0f}, tolerance {imbalance}); try another --seed or method")
+                       f"(mean {n / k:.0f}, tolerance {imbalance}); try another {option('seed')} "
+                       f"or method")
     return part, {"scheme": "kway", "balance": "vertices",
                   "refinement": METIS_REFINE_ITERATIONS_LARGE}
 

@@ -36,7 +36,7 @@ from typing import Callable
 
 import numpy as np
 
-from shardtrain.errors import InputError, ParameterError
+from shardtrain.errors import InputError, ParameterError, option
 from shardtrain.files import read_json_document
 
 FORMAT = "shardtrain-checkpoint"
@@ -222,12 +222,12 @@ def check_resumable(ckpt: Checkpoint, identity: dict, *, epochs: int,
                     graph_label: str = "GRAPH") -> None:
     """Refuse (InputError naming the option and what differs) a resume that contradicts
     the checkpoint: another graph, shard layout, model shape, worker count or setting."""
-    doc, src = ckpt.doc, f"--resume {ckpt.folder}"
+    doc, src = ckpt.doc, f"{option('resume')} {ckpt.folder}"
     mine_mode, their_mode = identity.get("mode", "partitioned"), mode_of(doc)
     if mine_mode != their_mode:
         raise InputError(f"{src}: the checkpoint was written by a {their_mode} run, this is a "
                          f"{mine_mode} run (resume it in the mode that wrote it"
-                         f"{', with --reference' if their_mode == 'reference' else ''})")
+                         f"{', with ' + option('reference') if their_mode == 'reference' else ''})")
     for key, mine in identity["settings"].items():
         theirs = doc["settings"].get(key, _ABSENT_MEANS.get(key))
         if theirs != mine:
@@ -267,7 +267,8 @@ def check_folder(folder, *, resuming_from=None) -> Path:
     if has_checkpoint(folder) and (resuming_from is None or
                                    Path(resuming_from).resolve() != folder.resolve()):
         raise ParameterError("checkpoint", f"holds a checkpoint already; continue it "
-                                           f"with --resume {folder} or choose an empty folder",
+                                           f"with {option('resume')} {folder} or choose an "
+                                           f"empty folder",
                              value=folder)
     return folder
 
