@@ -3,19 +3,33 @@
 Nothing below the CLI prints or exits: modules raise these, and `shardtrain.cli` maps
 them to one line on stderr and an exit status.
 """
+from contextlib import contextmanager
 
 EXIT_BAD_INPUT = 2     # the user's files or options are wrong
 EXIT_RUN_FAILED = 3    # a run broke: a worker died, a frame was corrupt, a deadline passed
 EXIT_INTERRUPTED = 4   # Ctrl-C or SIGTERM; the latest checkpoint is intact
 
-
 _MARK = "\0"     # around a parameter named inside a message (no path or repr holds NUL)
+_NAME_OF = None  # how str() names a parameter while the command line runs (`naming`)
+
+
+@contextmanager
+def naming(name_of):
+    """While the block runs, `str()` of an error names each parameter `name_of(param)` (the
+    command line's option: `cli.main` runs every command inside it, so a message passed on
+    as text, such as MPI rank 0's stop message, keeps the option's name too)."""
+    global _NAME_OF
+    before, _NAME_OF = _NAME_OF, name_of
+    try:
+        yield
+    finally:
+        _NAME_OF = before
 
 
 def option(param: str) -> str:
     """Name another parameter inside a message: "give " + option("overwrite") + " to ...".
     `str()` of the error shows the Python name ("give overwrite"), the command line its
-    option ("give --overwrite"; `shardtrain.cli.flags`)."""
+    option ("give --overwrite"; `shardtrain.cli.flags`, `naming`)."""
     return f"{_MARK}{param}{_MARK}"
 
 
@@ -30,7 +44,7 @@ class _Worded(Exception):
     """An error whose message may name parameters (`option`)."""
 
     def __str__(self) -> str:
-        return reword(super().__str__())
+        return reword(super().__str__(), _NAME_OF)
 
     def worded(self, name_of=None) -> str:
         """The message with `name_of(param)` for each parameter it names."""

@@ -15,8 +15,15 @@ from pathlib import Path
 import pytest
 
 from shardtrain.cli import main
-from shardtrain.cli.flags import FLAGS, NOT_OPTIONS, cli_message
-from shardtrain.errors import InputError, ParameterError, RunError, name_parameter, option
+from shardtrain.cli.flags import FLAGS, NOT_OPTIONS, cli_message, flag_of
+from shardtrain.errors import (
+    InputError,
+    ParameterError,
+    RunError,
+    name_parameter,
+    naming,
+    option,
+)
 from shardtrain.train.settings import TrainSettings
 
 PACKAGE = Path(__file__).resolve().parents[1] / "shardtrain"
@@ -130,6 +137,15 @@ def test_parameter_error_words():
     assert cli_message(InputError("g.txt:3: bad")) == "g.txt:3: bad"
     again = pickle.loads(pickle.dumps(both))     # crosses a process boundary intact
     assert (type(again), again.params, str(again)) == (ParameterError, both.params, str(both))
+
+
+def test_while_the_cli_runs_str_names_the_option():
+    # a message passed on as text (MPI rank 0 sends str(exc) to the printing rank) keeps the
+    # option's name: cli.main runs each command inside errors.naming(flags.flag_of)
+    exc = ParameterError("dropout", "must be a number in [0, 1) (got 1.5)")
+    with naming(flag_of):
+        assert str(exc) == "--dropout: must be a number in [0, 1) (got 1.5)"
+    assert str(exc) == "dropout: must be a number in [0, 1) (got 1.5)"
 
 
 def test_name_parameter_rewords_only_its_own_head():

@@ -72,11 +72,14 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: list[str] | None = None) -> int:
+    from shardtrain.cli.flags import flag_of
+    from shardtrain.errors import naming
     from shardtrain.files import finish_outputs
 
     code = 1
     try:
-        code = _main(argv)
+        with naming(flag_of):   # every error names its parameters as options (cli/flags.py)
+            code = _main(argv)
     finally:   # a failed command leaves no empty output folder it created
         finish_outputs(failed=code != 0)
     return code
