@@ -70,8 +70,9 @@ class ParameterError(InputError):
     the message names together); the message is `PREFIX PARAM[, ALSO...][ VALUE]SEP TEXT`
     (`prefix` empty and `sep` ": " unless given), and `str()` names the Python parameter:
     "method 'x': unknown; expected one of ...". The command line words it with the option
-    instead (`shardtrain.cli.flags`), so a library never spells a command-line flag and the
-    CLI's messages keep their words.
+    instead (`shardtrain.cli.flags.cli_message`, and `str()` itself inside `naming`, which
+    `cli.main` holds), so a library never spells a command-line flag and the CLI's
+    messages keep their words.
     """
 
     def __init__(self, param: str, text: str, *, value: object = None, sep: str = ": ",
