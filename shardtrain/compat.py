@@ -30,7 +30,7 @@ import warnings
 import numpy as np
 import scipy.sparse as sp
 
-from shardtrain.errors import RunError
+from shardtrain.errors import RunError, option
 
 
 class CompatWarning(RuntimeWarning):
@@ -176,8 +176,8 @@ def _metis_library():
         raise RunError(f"this pymetis does not expose the METIS C library shardtrain calls "
                        f"for vertex+edge balance ({type(exc).__name__}: {exc})") from None
     if pymetis.zero_copy_dtype() != np.dtype(np.int64):
-        raise RunError("this pymetis was built with 32-bit METIS indices; "
-                       "--method metis needs the 64-bit build")
+        raise RunError(f"this pymetis was built with 32-bit METIS indices; "
+                       f"{option('method')} metis needs the 64-bit build")
     # two triangles joined by one edge, vertex weights 1..6: the public call must agree
     xadj = np.array([0, 2, 4, 7, 10, 12, 14], dtype=np.int64)
     adjncy = np.array([1, 2, 0, 2, 0, 1, 3, 2, 4, 5, 3, 5, 3, 4], dtype=np.int64)

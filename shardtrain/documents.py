@@ -14,7 +14,14 @@ bounded too (`parse_json_file`): the file size before reading, the nesting depth
 nesting would exhaust the parser's recursion), and text that is not UTF-8 JSON. Every
 check is an InputError (exit 2), so a hand-edited or foreign file never gives a traceback.
 
-The shard manifest has its own checks in `plan/shards.py`.
+The shard manifest (`shards.json`, kind "manifest") is checked through its shape too,
+worded as its reader always worded it ("FILE: 'workers' must be ... (got ...)").
+
+`Document` is the base of the typed value of a document (`calibrate.Calibration`,
+`survey.SurveyPlan`, `shards.ShardManifest`): `from_dict` keeps every key (unknown ones
+in `extra`) and `to_dict` gives the keys back in field order, then the unknown ones, with
+absent optional keys left out, so a document written through it is byte for byte the
+dict it replaced.
 """
 from __future__ import annotations
 
@@ -22,8 +29,9 @@ import json
 import math
 import os
 import re
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
@@ -40,11 +48,19 @@ DEFAULT_MAX_BYTES = 256 << 20
 
 
 class _Bad(Exception):
-    """A shape violation at `where` (a key path like plans[0].workers)."""
+    """A shape violation at `where` (a key path like plans[0].workers). `value` and `rule`
+    (what it must be) let a kind word the message its own way; `missing`: the key is
+    absent; `whole`: `message` is the whole text after the file name."""
 
-    def __init__(self, where: str, message: str):
+    def __init__(self, where: str, message: str, *, value: Any = None, rule: str = "",
+                 missing: bool = False, whole: bool = False):
         super().__init__(message)
-        self.where, self.message = where, message
+        self.where, self.message, self.value, self.rule = where, message, value, rule
+        self.missing, self.whole = missing, whole
+
+
+def _fail(where: str, rule: str, value) -> _Bad:
+    return _Bad(where, f"must be {rule} (got {_got(value)})", value=value, rule=rule)
 
 
 def _got(value) -> str:
@@ -97,10 +113,11 @@ class Num(Spec):
 
 @dataclass
 class Int(Spec):
-    """An integer (not a bool, not 3.0) in [min, max]."""
+    """An integer (not a bool, not 3.0) in [min, max] (`says`: the rule in words)."""
     min: int | None = None
     max: int | None = MAX_COUNT
     nullable: bool = False
+    says: str | None = None
 
     def check(self, value, where):
         if value is None and self.nullable:
@@ -108,6 +125,8 @@ class Int(Spec):
         if not (isinstance(value, int) and not isinstance(value, bool)
                 and (self.min is None or value >= self.min)
                 and (self.max is None or value <= self.max)):
+            if self.says is not None:
+                raise _fail(where, self.says, value)
             lo = "" if self.min is None else f" >= {self.min}"
             hi = "" if self.max in (None, MAX_COUNT) else f" <= {self.max}"
             rule = f"an integer{lo}{' and' if lo and hi else ''}{hi}"
@@ -122,10 +141,16 @@ class Str(Spec):
     pattern: str | None = None
     max_len: int = 4096
     nullable: bool = False
+    min_len: int = 0
+    says: str | None = None
 
     def check(self, value, where):
         if value is None and self.nullable:
             return None
+        if self.says is not None and not (isinstance(value, str) and
+                                          self.min_len <= len(value) <= self.max_len and
+                                          (self.choices is None or value in self.choices)):
+            raise _fail(where, self.says, value)
         if not isinstance(value, str) or len(value) > self.max_len:
             raise _Bad(where, f"must be a string{' or null' if self.nullable else ''} "
                               f"(got {_got(value)})")
@@ -202,19 +227,27 @@ class Array(Spec):
 
 @dataclass
 class Obj(Spec):
-    """An object with `required` and `optional` keys; other keys are allowed."""
+    """An object with `required` and `optional` keys; other keys are allowed. A required
+    key listed in `as_null` may be absent: it is then checked as null (and not added)."""
     required: dict = field(default_factory=dict)
     optional: dict = field(default_factory=dict)
     nullable: bool = False
+    as_null: tuple = ()
+    says: str | None = None
 
     def check(self, value, where):
         if value is None and self.nullable:
             return None
         if not isinstance(value, dict):
+            if self.says is not None:
+                raise _fail(where, self.says, value)
             raise _Bad(where, f"must be an object (got {_got(value)})")
         for key, spec in self.required.items():
+            if key not in value and key in self.as_null:
+                spec.check(None, _join(where, key))
+                continue
             if key not in value:
-                raise _Bad(_join(where, key), "is missing")
+                raise _Bad(_join(where, key), "is missing", missing=True)
             value[key] = spec.check(value[key], _join(where, key))
         for key, spec in self.optional.items():
             if key in value:
@@ -224,6 +257,59 @@ class Obj(Spec):
 
 def _join(where: str, key: str) -> str:
     return f"{where}.{key}" if where else key
+
+
+@dataclass
+class Steps(Spec):
+    """Shapes and cross-field checks (a function of the value that raises `_Bad`) applied
+    in turn to one value: the first that fails names the fault, as a hand-written reader
+    checking in that order would."""
+    steps: tuple = ()
+
+    def check(self, value, where):
+        for step in self.steps:
+            if isinstance(step, Spec):
+                value = step.check(value, where)
+            else:
+                step(value)
+        return value
+
+
+# ---------------------------------------------------------------- typed documents
+
+class _Absent:
+    """The value of an optional key the document does not have (None is JSON null)."""
+
+    def __repr__(self) -> str:
+        return "ABSENT"
+
+    def __bool__(self) -> bool:
+        return False
+
+
+ABSENT: Any = _Absent()
+
+
+class Document:
+    """Base of a document's dataclass: declare the keys as fields in the order the writer
+    puts them (optional ones defaulting to ABSENT) and a last field `extra: dict`."""
+
+    extra: dict
+
+    @classmethod
+    def from_dict(cls, doc: dict):
+        """The typed value of an (already validated) document; keys it does not declare
+        are kept in `extra`."""
+        known = [f.name for f in fields(cls) if f.name != "extra"]   # type: ignore[arg-type]
+        values = {k: doc[k] for k in known if k in doc}
+        return cls(**values, extra={k: v for k, v in doc.items() if k not in known})  # type: ignore[call-arg]
+
+    def to_dict(self) -> dict:
+        """The document again: declared keys in field order, then `extra`."""
+        out = {f.name: getattr(self, f.name) for f in fields(self)   # type: ignore[arg-type]
+               if f.name != "extra" and getattr(self, f.name) is not ABSENT}
+        out.update(self.extra)
+        return out
 
 
 # ---------------------------------------------------------------- the shapes
@@ -345,8 +431,68 @@ CHECKPOINT = Obj(required={
               "random_stream": Obj(optional={"seed": Int(),
                                              "next_epoch": Int(min=1)})})
 
+# the shard manifest (shards.json, plan/shards.py): checked in the order its reader always
+# checked it, so the first fault named is the same; worded "FILE: 'key' must be ..."
+MAX_SIZE = 2**62                 # any count above this is not a real graph (int64 room)
+FEATURE_DTYPES = ("<f4", "<f8")
+_SIZE = Int(min=0, max=MAX_SIZE - 1, says="a non-negative integer")
+
+
+def _manifest_ranges(m: dict) -> None:
+    k, n = m["workers"], m["num_vertices"]
+    if not 1 <= k <= max(n, 1):
+        raise _fail("workers", f"an integer between 1 and num_vertices ({n})", k)
+    if m["num_train_global"] > n:
+        raise _fail("num_train_global", f"at most num_vertices ({n})", m["num_train_global"])
+
+
+def _manifest_features_agree(m: dict) -> None:
+    if (m.get("feature_dtype") is None) != (m.get("input_dim") is None):
+        raise _Bad("", "'input_dim' and 'feature_dtype' disagree (both are null only when "
+                       "the shards have no features)", whole=True)
+
+
+def _manifest_workers(m: dict) -> None:
+    k, n = m["workers"], m["num_vertices"]
+    owned = m.get("owned")
+    if (not isinstance(owned, list) or len(owned) != k
+            or not all(isinstance(c, int) and not isinstance(c, bool) and 0 <= c < MAX_SIZE
+                       for c in owned)):
+        raise _fail("owned", f"a list of {k} vertex counts, one per worker", owned)
+    if sum(owned) != n:
+        raise _Bad("", f"the workers' owned vertices add up to {sum(owned)}, not "
+                       f"num_vertices {n}", whole=True)
+    files = m.get("files")
+    if not isinstance(files, list) or len(files) != k:
+        raise _fail("files", f"a list of {k} shard file names, one per worker", files)
+    for name in files:
+        if (not isinstance(name, str) or name in ("", ".", "..") or "/" in name
+                or "\\" in name or "\0" in name):
+            raise _Bad("", f"'files' entry {name!r:.60} is not a plain file name inside the "
+                           f"shard directory", whole=True)
+    if len(set(files)) != k:
+        raise _Bad("", "'files' names the same shard file twice", whole=True)
+
+
+MANIFEST = Steps((
+    Obj(required={key: _SIZE for key in ("workers", "num_vertices", "num_edges",
+                                         "num_train_global", "num_classes")}),
+    _manifest_ranges,
+    Obj(optional={"input_dim": Int(min=1, max=MAX_SIZE - 1, nullable=True,
+                                   says="a positive integer or null"),
+                  "feature_dtype": Str(choices=FEATURE_DTYPES, nullable=True,
+                                       says=f"one of {', '.join(FEATURE_DTYPES)} or null")}),
+    _manifest_features_agree,
+    Obj(required={"split_id": Str(min_len=1, max_len=64, says="the split's id string")},
+        as_null=("split_id",),
+        optional={"graph_fingerprint": Str(nullable=True, max_len=MAX_LIST * 64,
+                                           says="a string or null")}),
+    _manifest_workers,
+    Obj(optional={"meta": Obj(says="an object")}),
+))
+
 SHAPES = {"checkpoint": CHECKPOINT, "survey": SURVEY, "run": RUN, "forecast": FORECAST,
-          "calibration": CALIBRATION}
+          "calibration": CALIBRATION, "manifest": MANIFEST}
 
 
 # ---------------------------------------------------------------- cross-field checks
@@ -453,10 +599,29 @@ def validate(doc, kind: str, where) -> dict:
         if kind in _CROSS:
             _CROSS[kind](doc)
     except _Bad as bad:
-        key = f" key {bad.where}:" if bad.where else ""
-        what = "" if bad.where else f" a {kind} JSON"
-        raise InputError(f"{where}:{key}{what} {bad.message}") from None
+        raise InputError(_WORDS.get(kind, _words)(where, kind, bad)) from None
     return doc
+
+
+def _words(where, kind: str, bad: _Bad) -> str:
+    """"FILE: key a[3].b: must be ..." (or "FILE: a KIND JSON ..." for the whole)."""
+    key = f" key {bad.where}:" if bad.where else ""
+    what = "" if bad.where else f" a {kind} JSON"
+    return f"{where}:{key}{what} {bad.message}"
+
+
+def _manifest_words(where, kind: str, bad: _Bad) -> str:
+    """The shard manifest's own wording: "FILE: 'key' must be RULE (got REPR)"."""
+    if bad.whole:
+        return f"{where}: {bad.message}"
+    if bad.missing:
+        return f"{where}: missing key '{bad.where}'"
+    if bad.rule:
+        return f"{where}: '{bad.where}' must be {bad.rule} (got {bad.value!r:.60})"
+    return _words(where, kind, bad)
+
+
+_WORDS = {"manifest": _manifest_words}
 
 
 def read_document(file, kind: str, *, where: str | None = None) -> dict:

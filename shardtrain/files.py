@@ -350,7 +350,7 @@ def check_paths(*, inputs: dict | None = None, outputs: dict | None = None,
                                  f"the folder would destroy (give another folder)")
         if _inside(_cwd(), p):
             raise InputError(f"{where}: is or holds the current folder, which cannot be "
-                             f"replaced (run from another folder or give another --out)")
+                             f"replaced (run from another folder or give another {opt})")
         _probe(p.absolute().parent, where)
     for opt, p in dirs:
         where = f"{opt} {p}"

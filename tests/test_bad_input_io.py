@@ -9,6 +9,7 @@ import re
 import numpy as np
 import pytest
 
+from shardtrain.cli.flags import cli_message
 from shardtrain.data.readers import load_graph
 from shardtrain.errors import InputError
 from shardtrain.files import save_npz_atomic
@@ -105,7 +106,7 @@ def test_bad_input_names_file_and_line(tmp_path, case):
     files = {option: str(write(tmp_path)) for option, write in extra.items()}
     with pytest.raises(InputError) as info:
         load_graph(make_graph(tmp_path), **files, **kwargs)
-    message = str(info.value)
+    message = cli_message(info.value)   # as the command line words it (cli/flags.py)
     assert "\n" not in message
     assert re.search(pattern, message), message
 

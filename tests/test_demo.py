@@ -12,6 +12,9 @@ from types import SimpleNamespace
 import numpy as np
 import pytest
 
+from shardtrain.cli.flags import cli_message
+from shardtrain.demo import check as demo_check
+from shardtrain.demo import settings as demo_settings
 from shardtrain.demo import workflow as demo
 from shardtrain.errors import InputError, RunError
 
@@ -179,10 +182,13 @@ def test_bad_option_from_the_shell_is_one_line_without_traceback(tmp_path, run_c
 
 
 def test_overwrite_is_allowed_for_an_earlier_demo_folder(tmp_path):
-    (tmp_path / demo.SUMMARY_FILE).write_text("{}\n")
-    demo.check_out_dir(tmp_path, overwrite=True)
-    with pytest.raises(InputError, match="--out"):
-        demo.check_out_dir(tmp_path, overwrite=False)
+    (tmp_path / demo_settings.SUMMARY_FILE).write_text("{}\n")
+    demo_settings.check_out_dir(tmp_path, overwrite=True)
+    with pytest.raises(InputError, match="^out ") as info:     # the library's parameter
+        demo_settings.check_out_dir(tmp_path, overwrite=False)
+    # as the command line words it (cli/flags.py)
+    assert cli_message(info.value).startswith(f"--out {tmp_path}: folder exists and is not "
+                                              f"empty (give --overwrite to replace")
 
 
 def test_a_failing_step_leaves_nothing_behind(tmp_path, monkeypatch):
@@ -216,20 +222,20 @@ def test_the_check_fails_on_a_difference_beyond_rounding():
                         "eval_forward_bytes": 10}}
     predicted = 2 * (10 + 5 + 3) + 2 * 10          # 2 epochs, 2 evaluation forwards
     ref = _fake_run([1.0, 0.5], 2.0, predicted, predicted)
-    ok = demo.compare_runs(_fake_run([1.0, 0.5 * (1 + 1e-13)], 2.0, predicted, predicted),
+    ok = demo_check.compare_runs(_fake_run([1.0, 0.5 * (1 + 1e-13)], 2.0, predicted, predicted),
                            ref, plan, epochs=2)
-    assert ok["passed"] and demo.check_failure(ok) is None
-    bad = demo.compare_runs(_fake_run([1.0, 0.5 * (1 + 1e-6)], 2.0, predicted, predicted),
+    assert ok["passed"] and demo_check.check_failure(ok) is None
+    bad = demo_check.compare_runs(_fake_run([1.0, 0.5 * (1 + 1e-6)], 2.0, predicted, predicted),
                             ref, plan, epochs=2)
     assert not bad["passed"] and bad["worst_loss_epoch"] == 2
-    assert "1.000e-06" in demo.check_failure(bad)
-    weights = demo.compare_runs(_fake_run([1.0, 0.5], 2.0 + 1e-5, predicted, predicted),
+    assert "1.000e-06" in demo_check.check_failure(bad)
+    weights = demo_check.compare_runs(_fake_run([1.0, 0.5], 2.0 + 1e-5, predicted, predicted),
                                 ref, plan, epochs=2)
     assert not weights["equal_to_reference"] and weights["max_weight_rel_diff"] == \
         pytest.approx(5e-6)
-    off = demo.compare_runs(_fake_run([1.0, 0.5], 2.0, predicted + 8, predicted + 8),
+    off = demo_check.compare_runs(_fake_run([1.0, 0.5], 2.0, predicted + 8, predicted + 8),
                             ref, plan, epochs=2)
-    assert not off["payload_equal"] and f"{predicted + 8:,}" in demo.check_failure(off)
+    assert not off["payload_equal"] and f"{predicted + 8:,}" in demo_check.check_failure(off)
 
 
 @pytest.mark.slow

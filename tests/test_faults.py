@@ -194,8 +194,8 @@ def test_resume_refuses_a_contradicting_run(shard_dir, tmp_path):
                                                                              every=5))
     saved = ck.read_checkpoint(folder)
     identity = plan_for(shard_dir, folder)["identity"]
-    with pytest.raises(InputError, match=r"^--epochs 5: the checkpoint .* already at epoch 5"):
-        ck.check_resumable(saved, identity, epochs=5)
+    with pytest.raises(InputError, match=r"^epochs 5: the checkpoint .* already at epoch 5"):
+        ck.check_resumable(saved, identity, epochs=5)     # the parameter; the CLI: --epochs
     other = {**identity, "shards_fingerprint": "0" * 16}
     with pytest.raises(InputError, match=r"^GRAPH: a different shard layout from the checkpoint's"):
         ck.check_resumable(saved, other, epochs=9)

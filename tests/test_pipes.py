@@ -229,7 +229,9 @@ def test_link_option_parses(text, want):
 
 @pytest.mark.parametrize("text", ["", "fast", "0", "-1", "1:", "1:-5", "1:2:3", "10gbps"])
 def test_bad_link_option_names_the_option(text):
+    from shardtrain.cli.flags import cli_message
     from shardtrain.errors import InputError
     from shardtrain.transport.link import parse_link
-    with pytest.raises(InputError, match=r"^--emulate-link: "):
+    with pytest.raises(InputError, match=r"^emulate_link: ") as info:   # the parameter
         parse_link(text)
+    assert cli_message(info.value).startswith("--emulate-link: ")      # the option

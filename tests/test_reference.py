@@ -92,8 +92,11 @@ def test_init_params_are_used_and_checked():
                                                             "--weight-decay"),
     ("epochs", 0, "--epochs"), ("dtype", "float16", "--dtype")])
 def test_settings_name_the_bad_option(field, value, option):
-    with pytest.raises(InputError, match=f"^{option}:"):
+    from shardtrain.cli.flags import cli_message
+
+    with pytest.raises(InputError, match=f"^{field}:") as info:    # the library's parameter
         TrainSettings(**{field: value}).validate()
+    assert cli_message(info.value).startswith(f"{option}:")      # the option, on the CLI
 
 
 def test_settings_defaults_are_the_gcn_paper_setup_and_round_trip():

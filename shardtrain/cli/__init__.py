@@ -72,11 +72,14 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: list[str] | None = None) -> int:
+    from shardtrain.cli.flags import flag_of
+    from shardtrain.errors import naming
     from shardtrain.files import finish_outputs
 
     code = 1
     try:
-        code = _main(argv)
+        with naming(flag_of):   # every error names its parameters as options (cli/flags.py)
+            code = _main(argv)
     finally:   # a failed command leaves no empty output folder it created
         finish_outputs(failed=code != 0)
     return code
@@ -86,11 +89,13 @@ def _main(argv: list[str] | None) -> int:
     try:
         args = build_parser().parse_args(argv)
         return int(args._run(args) or 0)
-    except InputError as exc:
-        print(f"shardtrain: error: {exc}", file=sys.stderr)
+    except InputError as exc:   # parameters named as options (cli/flags.py)
+        from shardtrain.cli.flags import cli_message
+        print(f"shardtrain: error: {cli_message(exc)}", file=sys.stderr)
         return EXIT_BAD_INPUT
     except RunError as exc:
-        print(f"shardtrain: run failed: {exc}", file=sys.stderr)
+        from shardtrain.cli.flags import cli_message
+        print(f"shardtrain: run failed: {cli_message(exc)}", file=sys.stderr)
         return EXIT_RUN_FAILED
     except Interrupted as exc:
         print(f"shardtrain: interrupted: {exc}", file=sys.stderr)

@@ -5,6 +5,7 @@ from __future__ import annotations
 import argparse
 import re
 
+from shardtrain import defaults
 from shardtrain.data.readers import LoadedGraph, load_graph
 from shardtrain.errors import InputError
 
@@ -19,23 +20,26 @@ def add_graph_arguments(parser: argparse.ArgumentParser) -> None:
                         help="vertex labels, .npy or text with one integer per line (-1 = none)")
     parser.add_argument("--input-dim", metavar="D", type=positive_int_type("--input-dim"),
                         help="feature width to plan for when the graph has no features")
-    parser.add_argument("--seed", metavar="S", type=seed_type("--seed"), default=0,
-                        help="seed of the split masks the graph file does not give, the "
-                             "seeded partition methods, the weights and dropout (default 0)")
+    parser.add_argument("--seed", metavar="S", type=seed_type("--seed"), default=defaults.SEED,
+                        help=f"seed of the split masks the graph file does not give, the "
+                             f"seeded partition methods, the weights and dropout "
+                             f"(default {defaults.SEED})")
 
 
 def add_plan_shape_arguments(parser: argparse.ArgumentParser) -> None:
     """The model shape and partition options a survey or forecast plans for (not trained)."""
     add = parser.add_argument
-    add("--layers", type=positive_int_type("--layers"), default=2, help="GCN layers (default 2)")
-    add("--hidden", type=positive_int_type("--hidden"), default=16,
-        help="hidden width (default 16)")
-    add("--dtype", default="float32", help="training dtype, float32 or float64 (default float32)")
+    d = defaults
+    add("--layers", type=positive_int_type("--layers"), default=d.LAYERS,
+        help=f"GCN layers (default {d.LAYERS})")
+    add("--hidden", type=positive_int_type("--hidden"), default=d.HIDDEN,
+        help=f"hidden width (default {d.HIDDEN})")
+    add("--dtype", default=d.DTYPE, help=f"training dtype, float32 or float64 (default {d.DTYPE})")
     add("--bias", action="store_true", help="the model has biases (more to all-reduce)")
     add("--classes", type=positive_int_type("--classes"), default=None, metavar="C",
         help="number of classes, when the graph has no labels")
-    add("--imbalance", type=float_type("--imbalance"), default=0.03,
-        help="METIS load imbalance tolerance (0.03)")
+    add("--imbalance", type=float_type("--imbalance"), default=d.IMBALANCE,
+        help=f"METIS load imbalance tolerance ({d.IMBALANCE:g})")
 
 
 def load_graph_from_args(args: argparse.Namespace) -> LoadedGraph:

@@ -10,31 +10,27 @@ from __future__ import annotations
 
 import sys
 
+from shardtrain import defaults as d
 from shardtrain.cli.common import int_type
-from shardtrain.demo.workflow import (
-    DEFAULT_EPOCHS,
-    DEFAULT_VERTICES,
-    QUICK_EPOCHS,
-    QUICK_VERTICES,
-    DemoSettings,
-    run_demo,
-)
+from shardtrain.demo.workflow import DemoSettings, run_demo
 from shardtrain.units import human_bytes, human_seconds
 
 
 def add_arguments(parser) -> None:
-    parser.add_argument("--out", metavar="DIR", default="shardtrain-demo",
-                        help="output folder (default ./shardtrain-demo); must be new or empty")
+    parser.add_argument("--out", metavar="DIR", default=d.DEMO_OUT,
+                        help=f"output folder (default ./{d.DEMO_OUT}); must be new or empty")
     parser.add_argument("--vertices", metavar="N", type=int_type("--vertices"), default=None,
-                        help=f"depots in the network (default {DEFAULT_VERTICES:,}; "
-                             f"--quick {QUICK_VERTICES})")
-    parser.add_argument("--workers", metavar="K", type=int_type("--workers"), default=4,
-                        help="worker processes of the training run (default 4)")
+                        help=f"depots in the network (default {d.DEMO_VERTICES:,}; "
+                             f"--quick {d.DEMO_QUICK_VERTICES})")
+    parser.add_argument("--workers", metavar="K", type=int_type("--workers"),
+                        default=d.DEMO_WORKERS,
+                        help=f"worker processes of the training run (default {d.DEMO_WORKERS})")
     parser.add_argument("--epochs", metavar="E", type=int_type("--epochs"), default=None,
-                        help=f"training epochs (default {DEFAULT_EPOCHS}; --quick {QUICK_EPOCHS})")
-    parser.add_argument("--seed", metavar="S", type=int_type("--seed"), default=0,
-                        help="seed of the network, the partitions, the weights and dropout "
-                             "(default 0)")
+                        help=f"training epochs (default {d.DEMO_EPOCHS}; "
+                             f"--quick {d.DEMO_QUICK_EPOCHS})")
+    parser.add_argument("--seed", metavar="S", type=int_type("--seed"), default=d.SEED,
+                        help=f"seed of the network, the partitions, the weights and dropout "
+                             f"(default {d.SEED})")
     parser.add_argument("--quick", action="store_true",
                         help="tiny sizes (a few seconds of work; for tests)")
     parser.add_argument("--overwrite", action="store_true",
@@ -54,7 +50,7 @@ def _settings(args) -> DemoSettings:
 def summary_lines(r) -> list[str]:
     """The closing summary; its last line says where the report is."""
 
-    c, p = r.check, r.plan
+    c, p = r.check, r.choice
     acc = r.final.get("test_acc")
     lines = [
         f"best plan: {p['method']} on {p['workers']} workers ({p['reason']})",

@@ -15,6 +15,7 @@ import math
 import sys
 from pathlib import Path
 
+from shardtrain import defaults
 from shardtrain.cli.common import (
     add_graph_arguments,
     add_plan_shape_arguments,
@@ -23,13 +24,12 @@ from shardtrain.cli.common import (
     parse_name_list,
 )
 from shardtrain.errors import InputError
-from shardtrain.plan.partition import DEFAULT_COMPARED
 from shardtrain.report.tables import format_table
 from shardtrain.units import human_seconds
 
-DEFAULT_LINKS = "1,10,25,100"
-DEFAULT_WORKERS = "2,4,8,16"
-DEFAULT_METHODS = ",".join(DEFAULT_COMPARED)
+DEFAULT_LINKS = defaults.listed(defaults.LINK_PRESETS_GBPS)
+DEFAULT_WORKERS = defaults.listed(defaults.FORECAST_WORKERS)
+DEFAULT_METHODS = defaults.listed(defaults.COMPARED_METHODS)
 
 
 def add_arguments(parser) -> None:
@@ -42,14 +42,15 @@ def add_arguments(parser) -> None:
         help=f"partition methods (default {DEFAULT_METHODS}; with a survey JSON: all)")
     add("--link-gbps", default=DEFAULT_LINKS, metavar="G,G,...",
         help=f"link speeds per worker in Gbit/s (default the presets {DEFAULT_LINKS})")
-    add("--latency-us", type=float, default=20.0, metavar="US",
-        help="one-way latency of a link call in microseconds (default 20)")
+    add("--latency-us", type=float, default=defaults.LATENCY_US, metavar="US",
+        help=f"one-way latency of a link call in microseconds (default {defaults.LATENCY_US:g})")
     add("--flops-per-worker", type=float, default=None, metavar="F",
         help="dense flop/s of one target worker core, instead of timing this machine")
     add("--calibration", default=None, metavar="FILE.json",
         help="read this machine's kernel timing from FILE, or time it and write it there")
-    add("--speed-factor", type=float, default=1.0, metavar="X",
-        help="target CPU speed relative to this machine's calibrated core (default 1)")
+    add("--speed-factor", type=float, default=defaults.SPEED_FACTOR, metavar="X",
+        help=f"target CPU speed relative to this machine's calibrated core "
+             f"(default {defaults.SPEED_FACTOR:g})")
     add("--target-epoch-s", type=float, default=None, metavar="T",
         help="mark the plan with the fewest workers whose epoch takes at most T seconds")
     add("--measure-compute", action="store_true",
@@ -57,7 +58,8 @@ def add_arguments(parser) -> None:
              "one shard at a time (a few epochs per plan; GRAPH input only)")
     add("--cores", type=int, default=None, metavar="C",
         help="forecast for C cores on ONE machine: more workers than cores share them")
-    add("--dropout", type=float, default=0.5, help="dropout rate of training (default 0.5)")
+    add("--dropout", type=float, default=defaults.DROPOUT,
+        help=f"dropout rate of training (default {defaults.DROPOUT:g})")
     add_plan_shape_arguments(parser)
     add("--json", default=None, metavar="OUT.json", help="write the forecast as JSON")
     add("--plot", default=None, metavar="DIR", help="write PNG pictures of the forecast to DIR")

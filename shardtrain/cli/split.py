@@ -10,6 +10,7 @@ from __future__ import annotations
 import time
 from pathlib import Path
 
+from shardtrain import defaults
 from shardtrain.cli.common import add_graph_arguments, load_graph_from_args, positive_int_type
 from shardtrain.data.readers import require_regular_file
 from shardtrain.errors import InputError
@@ -35,8 +36,9 @@ def add_arguments(parser) -> None:
     how.add_argument("--method", metavar="M", help=f"partition method: {', '.join(METHODS)}")
     how.add_argument("--assignment", metavar="FILE",
                      help="vertex -> worker file (.npy, or one worker id per line)")
-    parser.add_argument("--imbalance", metavar="X", type=_imbalance, default=0.03,
-                        help="allowed excess of the largest part over the mean (default 0.03)")
+    parser.add_argument("--imbalance", metavar="X", type=_imbalance, default=defaults.IMBALANCE,
+                        help=f"allowed excess of the largest part over the mean "
+                             f"(default {defaults.IMBALANCE:g})")
     parser.add_argument("--out", metavar="DIR", required=True, help="shard directory to write")
     parser.add_argument("--overwrite", action="store_true",
                         help="replace DIR if it exists (only once the new shards are complete)")
@@ -68,7 +70,7 @@ def run(args) -> int:
     if args.method is not None and args.workers is None:
         raise InputError("--workers: required with --method")
     if args.assignment is not None:
-        require_regular_file(args.assignment, option="--assignment")
+        require_regular_file(args.assignment, param="assignment")
 
     loaded = load_graph_from_args(args)
     graph = loaded.graph

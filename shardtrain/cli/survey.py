@@ -12,6 +12,7 @@ import io
 import sys
 from pathlib import Path
 
+from shardtrain import defaults
 from shardtrain.cli.common import (
     add_graph_arguments,
     add_plan_shape_arguments,
@@ -21,13 +22,12 @@ from shardtrain.cli.common import (
 )
 from shardtrain.errors import InputError
 from shardtrain.files import check_paths, write_json_atomic, write_text_atomic
-from shardtrain.plan.partition import DEFAULT_COMPARED
 from shardtrain.plan.survey import SurveySettings, check_plans, survey
 from shardtrain.report.tables import format_table
 from shardtrain.units import human_bytes
 
-DEFAULT_METHODS = ",".join(DEFAULT_COMPARED)
-DEFAULT_WORKERS = "2,4,8"
+DEFAULT_METHODS = defaults.listed(defaults.COMPARED_METHODS)
+DEFAULT_WORKERS = defaults.listed(defaults.SURVEY_WORKERS)
 
 # One flat row per plan: (CSV column, value of a plan).
 CSV_COLUMNS = [

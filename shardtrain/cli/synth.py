@@ -9,6 +9,7 @@ from __future__ import annotations
 import time
 from pathlib import Path
 
+from shardtrain import defaults
 from shardtrain.cli.common import float_type, int_type
 from shardtrain.data.synth import edge_array, parcel_network, same_role_fraction
 from shardtrain.errors import InputError
@@ -17,23 +18,28 @@ from shardtrain.files import check_paths, save_npz_atomic
 
 def add_arguments(parser) -> None:
     parser.add_argument("out", metavar="OUT.npz", help="bundle to write")
-    parser.add_argument("--vertices", type=int_type("--vertices"), default=10_000,
-                        help="depots (default 10000)")
-    parser.add_argument("--avg-degree", type=float_type("--avg-degree"), default=10.0,
-                        help="mean routes per depot (default 10)")
-    parser.add_argument("--classes", type=int_type("--classes"), default=6,
-                        help="depot roles (default 6: hub, urban, suburban, rural, cross-dock, "
-                             "returns)")
-    parser.add_argument("--features", type=int_type("--features"), default=32,
-                        help="statistics per depot (default 32)")
-    parser.add_argument("--seed", type=int_type("--seed"), default=0,
-                        help="random seed (default 0)")
-    parser.add_argument("--homophily", type=float_type("--homophily"), default=0.8,
-                        help="fraction of routes between depots of the same role (default 0.8)")
-    parser.add_argument("--degree-exponent", type=float_type("--degree-exponent"), default=2.5,
-                        help="power-law exponent of the degree tail (default 2.5)")
-    parser.add_argument("--signal", type=float_type("--signal"), default=1.5,
-                        help="strength of the role signal in the features (default 1.5)")
+    d = defaults
+    parser.add_argument("--vertices", type=int_type("--vertices"), default=d.SYNTH_VERTICES,
+                        help=f"depots (default {d.SYNTH_VERTICES})")
+    parser.add_argument("--avg-degree", type=float_type("--avg-degree"),
+                        default=d.SYNTH_AVG_DEGREE,
+                        help=f"mean routes per depot (default {d.SYNTH_AVG_DEGREE:g})")
+    parser.add_argument("--classes", type=int_type("--classes"), default=d.SYNTH_CLASSES,
+                        help=f"depot roles (default {d.SYNTH_CLASSES}: hub, urban, suburban, "
+                             f"rural, cross-dock, returns)")
+    parser.add_argument("--features", type=int_type("--features"), default=d.SYNTH_FEATURES,
+                        help=f"statistics per depot (default {d.SYNTH_FEATURES})")
+    parser.add_argument("--seed", type=int_type("--seed"), default=d.SEED,
+                        help=f"random seed (default {d.SEED})")
+    parser.add_argument("--homophily", type=float_type("--homophily"), default=d.HOMOPHILY,
+                        help=f"fraction of routes between depots of the same role "
+                             f"(default {d.HOMOPHILY:g})")
+    parser.add_argument("--degree-exponent", type=float_type("--degree-exponent"),
+                        default=d.DEGREE_EXPONENT,
+                        help=f"power-law exponent of the degree tail "
+                             f"(default {d.DEGREE_EXPONENT:g})")
+    parser.add_argument("--signal", type=float_type("--signal"), default=d.SIGNAL,
+                        help=f"strength of the role signal in the features (default {d.SIGNAL:g})")
 
 
 def run(args) -> int:

@@ -35,14 +35,14 @@ from shardtrain.errors import InputError
 
 FORMAT = "shardtrain-graph"
 VERSION = 1
-MANIFEST = "graph.json"
+GRAPH_MANIFEST = "graph.json"
 INT32_LIMIT = 2**31 - 1
 
 
 def is_graph_dir(path) -> bool:
     """True for a folder holding a graph manifest (what GRAPH arguments test first)."""
     p = Path(path)
-    return p.is_dir() and (p / MANIFEST).is_file()
+    return p.is_dir() and (p / GRAPH_MANIFEST).is_file()
 
 
 def index_dtype_for(num_vertices: int) -> np.dtype:
@@ -101,11 +101,12 @@ def open_graph_dir(path) -> GraphDir:
     from shardtrain.files import read_json_document
 
     path = Path(path)
-    manifest = read_json_document(path / MANIFEST, format=FORMAT, version=VERSION,
+    manifest = read_json_document(path / GRAPH_MANIFEST, format=FORMAT, version=VERSION,
                                   what="graph directory manifest")
     n, m = manifest.get("num_vertices"), manifest.get("num_edges")
     if not isinstance(n, int) or not isinstance(m, int) or n < 0 or m < 0:
-        raise InputError(f"{path / MANIFEST}: num_vertices and num_edges must be integers >= 0")
+        raise InputError(f"{path / GRAPH_MANIFEST}: num_vertices and num_edges must be "
+                         f"integers >= 0")
     indptr, indices = _map(path, "indptr"), _map(path, "indices")
     if indptr is None or indptr.dtype != np.int64 or indptr.shape != (n + 1,):
         raise InputError(f"{path / 'indptr.npy'}: expected int64 ({n + 1},)")
@@ -158,4 +159,4 @@ def write_graph_dir(graph: Graph, path, *, cleanup: EdgeCleanup | None = None,
             np.save(tmp / "labels.npy", np.asarray(graph.labels, dtype=np.int64))
         for key, a in masks.items():
             np.save(tmp / f"{key}.npy", np.asarray(a, dtype=bool))
-        write_json_atomic(tmp / MANIFEST, manifest)
+        write_json_atomic(tmp / GRAPH_MANIFEST, manifest)

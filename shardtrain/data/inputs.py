@@ -5,36 +5,42 @@ import os
 import stat
 from pathlib import Path
 
-from shardtrain.errors import InputError
+from shardtrain.errors import InputError, ParameterError
 
 _FILE_KINDS = ((stat.S_ISFIFO, "a named pipe (FIFO)"), (stat.S_ISCHR, "a character device"),
                (stat.S_ISBLK, "a block device"), (stat.S_ISSOCK, "a socket"))
 
 
 def require_regular_file(path: str | os.PathLike, what: str = "file",
-                         option: str | None = None) -> Path:
-    """`path` as a Path when it is a regular file (symbolic links followed), else InputError
-    (prefixed with `option`, e.g. "--assignment", when given).
+                         option: str | None = None, *, param: str | None = None) -> Path:
+    """`path` as a Path when it is a regular file (symbolic links followed), else InputError;
+    with `param` (the caller's parameter, e.g. "assignment") a `ParameterError` naming it.
+    `option` (text put before the path as it is) is kept for callers not yet moved to `param`.
 
     Checked with os.stat before anything opens the file: opening a FIFO for reading blocks
     until a writer comes, and a character device can be read without end. Every reader of a
     graph, features, labels or assignment file goes through here.
     """
     path = Path(path)
-    said = f"{option} {path}" if option else f"{path}"
+
+    def refuse(text: str):
+        if param is not None:
+            return ParameterError(param, text, value=path)
+        return InputError(f"{option} {path}: {text}" if option else f"{path}: {text}")
+
     try:
         mode = os.stat(path).st_mode
     except FileNotFoundError:
-        raise InputError(f"{said}: no such {what}") from None
+        raise refuse(f"no such {what}") from None
     except NotADirectoryError:
-        raise InputError(f"{said}: no such {what} (a parent is not a folder)") from None
+        raise refuse(f"no such {what} (a parent is not a folder)") from None
     except OSError as exc:
-        raise InputError(f"{said}: cannot read: {exc.strerror or exc}") from None
+        raise refuse(f"cannot read: {exc.strerror or exc}") from None
     if stat.S_ISDIR(mode):
-        raise InputError(f"{said}: is a directory, expected a {what}")
+        raise refuse(f"is a directory, expected a {what}")
     if not stat.S_ISREG(mode):
         kind = next((name for test, name in _FILE_KINDS if test(mode)), "a special file")
-        raise InputError(f"{said}: is {kind}, expected a regular {what}")
+        raise refuse(f"is {kind}, expected a regular {what}")
     return path
 
 

@@ -22,7 +22,7 @@ from shardtrain.data.inputs import open_checked, require_regular_file
 from shardtrain.data.masks import MASK_KEYS, make_splits
 from shardtrain.data.memory import feature_bytes_of, graph_load_bytes, require_memory
 from shardtrain.data.textscan import TextTable, show
-from shardtrain.errors import InputError
+from shardtrain.errors import InputError, ParameterError, option
 
 EDGE_LIST_SUFFIXES = (".csv", ".tsv", ".txt", ".edges")
 GRAPH_SUFFIXES = (".npz", ".mtx") + EDGE_LIST_SUFFIXES
@@ -343,18 +343,22 @@ def _check_label_array(y: np.ndarray, where: str) -> np.ndarray:
     return y
 
 
-def _suffix(path: Path, allowed: tuple[str, ...], option: str) -> str:
+def _suffix(path: Path, allowed: tuple[str, ...], param: str) -> str:
     suffix = path.suffix.lower()
     if suffix not in allowed:
-        raise InputError(f"{path}: unknown {option} file type {suffix or '(none)'!r} "
-                         f"(expected {', '.join(allowed)})")
+        if param == "graph":    # GRAPH is the argument itself: named as a word, not a flag
+            raise InputError(f"{path}: unknown graph file type {suffix or '(none)'!r} "
+                             f"(expected {', '.join(allowed)})")
+        raise ParameterError(param, f"file type {suffix or '(none)'!r} "
+                                    f"(expected {', '.join(allowed)})",
+                             prefix=f"{path}: unknown ", sep=" ")
     return suffix
 
 
 def load_features(path: str | os.PathLike) -> np.ndarray:
     """Features from `.npy` (2-D numbers) or `.csv` (one row per vertex)."""
     path = Path(path)
-    if _suffix(path, (".npy", ".csv"), "--features") == ".npy":
+    if _suffix(path, (".npy", ".csv"), "features") == ".npy":
         return _check_feature_array(_load_npy(path), str(path))
     table = TextTable(path, kind="float", columns=None, what="features")
     d = table.columns or 0
@@ -437,14 +441,14 @@ def load_graph(path: str | os.PathLike, *, features: str | os.PathLike | None = 
         if raw.features is not None:
             notes.append(f"--features {features} replaces the features in {path}")
         raw.features = load_features(features)
-        feat_where = f"--features {features}"
+        feat_where = f"{option('features')} {features}"
     else:
         feat_where = f"{path}: key 'features'"
     if labels is not None:
         if raw.labels is not None:
             notes.append(f"--labels {labels} replaces the labels in {path}")
         raw.labels = load_labels(labels)
-        label_where = f"--labels {labels}"
+        label_where = f"{option('labels')} {labels}"
     else:
         label_where = f"{path}: key 'labels'"
 
@@ -463,16 +467,19 @@ def load_graph(path: str | os.PathLike, *, features: str | os.PathLike | None = 
     if n == 0:
         raise InputError(f"{path}: empty graph (no vertices)")
     if raw.features is not None and raw.features.shape[0] != n:
-        raise InputError(f"{feat_where}: {raw.features.shape[0]} feature rows, but the graph "
-                         f"has {n} vertices ({n_where})")
+        text = f"{raw.features.shape[0]} feature rows, but the graph has {n} vertices ({n_where})"
+        raise (ParameterError("features", text, value=features) if features is not None
+               else InputError(f"{feat_where}: {text}"))
     if raw.labels is not None and raw.labels.shape[0] != n:
-        raise InputError(f"{label_where}: {raw.labels.shape[0]} labels, but the graph has "
-                         f"{n} vertices ({n_where})")
+        text = f"{raw.labels.shape[0]} labels, but the graph has {n} vertices ({n_where})"
+        raise (ParameterError("labels", text, value=labels) if labels is not None
+               else InputError(f"{label_where}: {text}"))
     if raw.features is not None and input_dim is not None and raw.features.shape[1] != input_dim:
-        raise InputError(f"--input-dim {input_dim} does not match the "
-                         f"{raw.features.shape[1]} feature columns of {feat_where}")
+        raise ParameterError("input_dim", f"does not match the {raw.features.shape[1]} "
+                                          f"feature columns of {feat_where}",
+                             value=input_dim, sep=" ")
     if input_dim is not None and input_dim < 1:
-        raise InputError(f"--input-dim {input_dim}: must be at least 1")
+        raise ParameterError("input_dim", "must be at least 1", value=input_dim)
     _require_load_memory(path, raw, n, n_where)
 
     masks = _masks(path, raw, n, seed, notes)

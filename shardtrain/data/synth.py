@@ -16,10 +16,11 @@ import math
 
 import numpy as np
 
+from shardtrain import defaults
 from shardtrain.data.graph import Graph, csr_from_edges
 from shardtrain.data.memory import require_memory, synth_bytes
 from shardtrain.data.readers import make_splits
-from shardtrain.errors import InputError
+from shardtrain.errors import ParameterError, option
 
 ROLE_NAMES = ("hub", "urban", "suburban", "rural", "cross-dock", "returns", "airport",
               "port", "rail-terminal", "pickup-point", "cold-chain", "bulk")
@@ -54,30 +55,33 @@ def _check(vertices, avg_degree, classes, features, homophily, degree_exponent, 
            seed=0):
     """Refuse bad options at the door, naming them: NaN and infinities included (every
     comparison with NaN is false, so each test is written to fail for it)."""
-    for option, value in (("--avg-degree", avg_degree), ("--homophily", homophily),
-                          ("--degree-exponent", degree_exponent), ("--signal", signal)):
+    for param, value in (("avg_degree", avg_degree), ("homophily", homophily),
+                         ("degree_exponent", degree_exponent), ("signal", signal)):
         if not math.isfinite(value):
-            raise InputError(f"{option} {value}: must be a finite number")
+            raise ParameterError(param, "must be a finite number", value=value)
     if vertices < 2:
-        raise InputError(f"--vertices {vertices}: need at least 2")
+        raise ParameterError("vertices", "need at least 2", value=vertices)
     if not 0 < avg_degree <= vertices - 1:
-        raise InputError(f"--avg-degree {avg_degree}: must be > 0 and at most vertices - 1 "
-                         f"({vertices - 1})")
+        raise ParameterError("avg_degree", f"must be > 0 and at most vertices - 1 "
+                                           f"({vertices - 1})", value=avg_degree)
     if not 1 <= classes <= vertices:
-        raise InputError(f"--classes {classes}: must be between 1 and the number of vertices")
+        raise ParameterError("classes", "must be between 1 and the number of vertices",
+                             value=classes)
     if features < 1:
-        raise InputError(f"--features {features}: need at least 1")
+        raise ParameterError("features", "need at least 1", value=features)
     if not 0.0 <= homophily <= 1.0:
-        raise InputError(f"--homophily {homophily}: must be between 0 and 1")
+        raise ParameterError("homophily", "must be between 0 and 1", value=homophily)
     if not degree_exponent > 2.0:
-        raise InputError(f"--degree-exponent {degree_exponent}: must be > 2 (finite mean degree)")
+        raise ParameterError("degree_exponent", "must be > 2 (finite mean degree)",
+                             value=degree_exponent)
     if not 0.0 <= signal <= MAX_SIGNAL:
-        raise InputError(f"--signal {signal}: must be between 0 and {MAX_SIGNAL:g}")
+        raise ParameterError("signal", f"must be between 0 and {MAX_SIGNAL:g}", value=signal)
     if seed < 0:
-        raise InputError(f"--seed {seed}: must be >= 0")
+        raise ParameterError("seed", "must be >= 0", value=seed)
     routes = min(int(round(vertices * avg_degree / 2)), vertices * (vertices - 1) // 2)
     require_memory(synth_bytes(vertices, routes, features),
-                   f"--vertices {vertices} --avg-degree {avg_degree:g} --features {features}",
+                   f"{option('vertices')} {vertices} {option('avg_degree')} {avg_degree:g} "
+                   f"{option('features')} {features}",
                    what="generate the network")
 
 
@@ -169,8 +173,9 @@ def _route_keys(sampler: _RouteSampler, n: int, target: int, rng) -> np.ndarray:
 
 
 def parcel_network(vertices: int, avg_degree: float, classes: int, features: int, seed: int,
-                   *, homophily: float = 0.8, degree_exponent: float = 2.5,
-                   signal: float = 1.5) -> Graph:
+                   *, homophily: float = defaults.HOMOPHILY,
+                   degree_exponent: float = defaults.DEGREE_EXPONENT,
+                   signal: float = defaults.SIGNAL) -> Graph:
     """The parcel network as a Graph with features (float32), labels and split masks.
 
     About vertices * avg_degree / 2 distinct routes; `homophily` is the expected fraction of

@@ -21,6 +21,7 @@ interpolation in width and size.
 from __future__ import annotations
 
 import time
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -28,7 +29,8 @@ import scipy.sparse as sp
 from threadpoolctl import threadpool_limits
 
 from shardtrain.compat import add_csr_product
-from shardtrain.errors import InputError
+from shardtrain.documents import ABSENT, Document
+from shardtrain.errors import InputError, ParameterError, name_parameter
 
 CALIBRATION_VERSION = 1
 SPARSE_WIDTHS = (8, 32, 128)
@@ -202,10 +204,33 @@ def _time_pipe() -> dict:
     return {"bytes": got, "seconds": dt, "bytes_per_s": got / dt}
 
 
+@dataclass(kw_only=True)
+class Calibration(Document):
+    """A calibration document, typed (fields in the order `calibrate` and `from_flops`
+    write them; its shape is `documents.CALIBRATION`). Speeds are per second on one
+    thread; the nested entries stay the dicts the JSON holds."""
+
+    version: int
+    dtype: str                          # float32 | float64
+    threads: int
+    sparse: list[dict]                  # {nnz, width, seconds, nnz_cols_per_s, ...}
+    dense: list[dict]                   # {rows, d_in, d_out, seconds, flops_per_s}
+    elementwise: dict                   # {elements, seconds, bytes_per_s}
+    dropout_masks: dict                 # {elements, seconds, elements_per_s}
+    row_moves: dict = ABSENT
+    pipe: dict | None = ABSENT          # {bytes_per_s, ...}; None: no pipe measured
+    exchange_call: dict = ABSENT        # {seconds_per_call, cpu_s_per_call, ...}
+    transport_copy: dict = ABSENT       # {cpu_s_per_byte, ...}
+    calibration_s: float | None = ABSENT
+    from_flops: float = ABSENT          # made by `from_flops` from one given speed
+    sparse_source: str = ABSENT         # "graph": sparse speeds measured on the graph's Â
+    extra: dict = field(default_factory=dict)
+
+
 def calibrate(dtype: str = "float32", *, seed: int = 0) -> dict:
     """Time sparse, dense and elementwise kernels with BLAS on one thread (a few seconds)."""
     if dtype not in ("float32", "float64"):
-        raise InputError(f"--dtype: {dtype!r} is not float32 or float64")
+        raise ParameterError("dtype", f"{dtype!r} is not float32 or float64")
     rng = np.random.default_rng(seed)
     t0 = time.perf_counter()
     with threadpool_limits(limits=1):
@@ -217,11 +242,11 @@ def calibrate(dtype: str = "float32", *, seed: int = 0) -> dict:
     pipe = _time_pipe()
     call = exchange_call_seconds()
     copy = transport_copy_seconds(fixed_cpu_s=call["cpu_s_per_call"])
-    return {"version": CALIBRATION_VERSION, "dtype": dtype, "threads": 1,
-            "sparse": sparse, "dense": dense, "elementwise": elementwise,
-            "dropout_masks": masks, "row_moves": rows, "pipe": pipe, "exchange_call": call,
-            "transport_copy": copy,
-            "calibration_s": time.perf_counter() - t0}
+    return Calibration(version=CALIBRATION_VERSION, dtype=dtype, threads=1,
+                       sparse=sparse, dense=dense, elementwise=elementwise,
+                       dropout_masks=masks, row_moves=rows, pipe=pipe, exchange_call=call,
+                       transport_copy=copy,
+                       calibration_s=time.perf_counter() - t0).to_dict()
 
 
 def sparse_on_matrix(adj, dtype: str = "float32", *, widths=SPARSE_WIDTHS,
@@ -269,16 +294,17 @@ def from_flops(flops_per_s: float, dtype: str = "float32") -> dict:
     rate in multiply-adds counted as 2 flops each, memory passes at 4 bytes per flop
     (common practice: sparse and elementwise kernels are bound by memory, not arithmetic)."""
     if not (flops_per_s > 0 and np.isfinite(flops_per_s)):
-        raise InputError("--flops-per-worker: must be a positive number")
-    return {"version": CALIBRATION_VERSION, "dtype": dtype, "threads": 1,
-            "sparse": [{"nnz": 1, "width": 1, "seconds": 0.0,
-                        "nnz_cols_per_s": flops_per_s / 2.0}],
-            "dense": [{"rows": 1, "d_in": 1, "d_out": 1, "seconds": 0.0,
-                       "flops_per_s": flops_per_s}],
-            "elementwise": {"elements": 0, "seconds": 0.0, "bytes_per_s": 4.0 * flops_per_s},
-            "dropout_masks": {"elements": 0, "seconds": 0.0,
-                              "elements_per_s": flops_per_s / 20.0},
-            "calibration_s": 0.0, "from_flops": flops_per_s}
+        raise ParameterError("flops_per_s", "must be a positive number")
+    return Calibration(version=CALIBRATION_VERSION, dtype=dtype, threads=1,
+                       sparse=[{"nnz": 1, "width": 1, "seconds": 0.0,
+                                "nnz_cols_per_s": flops_per_s / 2.0}],
+                       dense=[{"rows": 1, "d_in": 1, "d_out": 1, "seconds": 0.0,
+                               "flops_per_s": flops_per_s}],
+                       elementwise={"elements": 0, "seconds": 0.0,
+                                    "bytes_per_s": 4.0 * flops_per_s},
+                       dropout_masks={"elements": 0, "seconds": 0.0,
+                                      "elements_per_s": flops_per_s / 20.0},
+                       calibration_s=0.0, from_flops=flops_per_s).to_dict()
 
 
 def _interp_log(x: float, xs: np.ndarray, ys: np.ndarray) -> float:
@@ -329,14 +355,21 @@ def _positive_int(x) -> bool:
     return isinstance(x, int) and not isinstance(x, bool) and x > 0
 
 
-def read_calibration(path, dtype: str, option: str = "--calibration") -> dict | None:
+def read_calibration(path, dtype: str, param: str = "calibration") -> dict | None:
     """The cached calibration in `path` for `dtype`, or None when one must be timed (and
     then written there): the file does not exist yet, or it is a calibration of another
     dtype or version (a stale cache, replaced). Anything else in its place is refused with
-    an InputError naming `option` and the file, so that a bad file costs no work and is
+    a ParameterError naming `param` and the file, so that a bad file costs no work and is
     never overwritten."""
     p = Path(path)
-    where = f"{option} {p}"
+    where = f"{param} {p}"
+    try:
+        return _read_calibration(p, dtype, where)
+    except InputError as exc:   # every message starts with `where`: name the parameter
+        raise name_parameter(exc, param, p) from None
+
+
+def _read_calibration(p: Path, dtype: str, where: str) -> dict | None:
     if not p.exists():
         if not p.parent.is_dir():
             raise InputError(f"{where}: folder {p.parent} does not exist")

@@ -51,7 +51,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from shardtrain.errors import InputError
+from shardtrain import defaults
+from shardtrain.errors import InputError, ParameterError
 from shardtrain.forecast.calibrate import (
     dense_speed,
     elementwise_speed,
@@ -63,8 +64,6 @@ from shardtrain.forecast.calibrate import (
     transport_copy_speed,
 )
 
-LINK_PRESETS_GBPS = (1.0, 10.0, 25.0, 100.0)
-DEFAULT_LATENCY_US = 20.0
 # Python and numpy overhead of one kernel call (common practice: a few microseconds).
 CALL_OVERHEAD_S = 5e-6
 
@@ -166,13 +165,14 @@ def _send_rows(plan: dict, hops: list[dict], itemsize: int) -> np.ndarray:
 def _check_positive(name: str, value, *, allow_zero=False) -> None:
     ok = value is not None and math.isfinite(value) and (value >= 0 if allow_zero else value > 0)
     if not ok:
-        raise InputError(f"{name}: must be a {'non-negative' if allow_zero else 'positive'} "
-                         f"number, got {value!r}")
+        raise ParameterError(name, f"must be a {'non-negative' if allow_zero else 'positive'} "
+                                   f"number, got {value!r}")
 
 
 def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: float,
-                  calibration: dict, speed_factor: float = 1.0, cores: float | None = None,
-                  dropout: float = 0.5, local_pipes: bool = False,
+                  calibration: dict, speed_factor: float = defaults.SPEED_FACTOR,
+                  cores: float | None = None,
+                  dropout: float = defaults.DROPOUT, local_pipes: bool = False,
                   classes: int | None = None, measured_compute: list[dict] | None = None
                   ) -> dict:
     """Forecast one training epoch (and one evaluation forward) of a survey plan.
@@ -188,11 +188,11 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
     present) adds its fixed cost to every transport call.
     Returns the plan-level critical path and a per-worker split.
     """
-    _check_positive("--link-gbps", link_gbps)
-    _check_positive("--latency-us", latency_us, allow_zero=True)
-    _check_positive("--speed-factor", speed_factor)
+    _check_positive("link_gbps", link_gbps)
+    _check_positive("latency_us", latency_us, allow_zero=True)
+    _check_positive("speed_factor", speed_factor)
     if cores is not None and not cores > 0:
-        raise InputError(f"--cores: must be above 0, got {cores}")
+        raise ParameterError("cores", f"must be above 0, got {cores}")
     k = int(plan["workers"])
     dtype = model["dtype"]
     b = np.dtype(dtype).itemsize
@@ -385,21 +385,21 @@ def _pick(p: dict | None) -> dict | None:
 
 
 def forecast(survey_dict: dict, *, link_gbps_list, latency_us: float, calibration: dict,
-             speed_factor: float = 1.0, target_epoch_s: float | None = None,
-             cores: int | None = None, dropout: float = 0.5,
+             speed_factor: float = defaults.SPEED_FACTOR, target_epoch_s: float | None = None,
+             cores: int | None = None, dropout: float = defaults.DROPOUT,
              measured_compute: dict | None = None) -> dict:
     """Forecast every plan of a survey on every link speed; mark the fastest plan and the
     plan with the fewest workers whose epoch meets `target_epoch_s`. `measured_compute`:
     {(method, workers): one `calibrate.shard_step_seconds` result per worker} for the
     plans whose compute was measured on their shards."""
     if not link_gbps_list:
-        raise InputError("--link-gbps: give at least one speed")
+        raise ParameterError("link_gbps", "give at least one speed")
     for g in link_gbps_list:
-        _check_positive("--link-gbps", g)
-    _check_positive("--latency-us", latency_us, allow_zero=True)
-    _check_positive("--speed-factor", speed_factor)
+        _check_positive("link_gbps", g)
+    _check_positive("latency_us", latency_us, allow_zero=True)
+    _check_positive("speed_factor", speed_factor)
     if target_epoch_s is not None:
-        _check_positive("--target-epoch-s", target_epoch_s)
+        _check_positive("target_epoch_s", target_epoch_s)
     model = survey_dict["model"]
     plans = []
     for plan in survey_dict["plans"]:

@@ -12,10 +12,11 @@ from pathlib import Path
 
 import numpy as np
 
+from shardtrain import defaults
 from shardtrain.compat import metis_part_graph
 from shardtrain.data.graph import Graph
 from shardtrain.data.readers import read_npy, require_regular_file
-from shardtrain.errors import InputError, RunError
+from shardtrain.errors import InputError, ParameterError, RunError, option
 
 # ----------------------------------------------------------------------------- METIS
 
@@ -117,7 +118,8 @@ def _metis_plan(graph: Graph, k: int, *, seed: int, imbalance: float,
         # never hand such a plan on silently
         largest = min(c["largest"] for c in tried)
         raise RunError(f"METIS returned a part of {largest} vertices for {k} workers "
-                       f"(mean {n / k:.0f}, tolerance {imbalance}); try another --seed or method")
+                       f"(mean {n / k:.0f}, tolerance {imbalance}); try another {option('seed')} "
+                       f"or method")
     best = min(ok, key=lambda i: _rank(tried[i]))
     if balance == "auto" and small and tried[best]["local_edges_max_over_mean"] > EDGE_BOUND:
         both()
@@ -160,7 +162,8 @@ def _metis_volume_plan(graph: Graph, k: int, *, seed: int,
     largest = int(np.bincount(part, minlength=k).max())
     if largest > 1.02 * (1.0 + imbalance) * n / k + 2:
         raise RunError(f"METIS returned a part of {largest} vertices for {k} workers "
-                       f"(mean {n / k:.0f}, tolerance {imbalance}); try another --seed or method")
+                       f"(mean {n / k:.0f}, tolerance {imbalance}); try another {option('seed')} "
+                       f"or method")
     return part, {"scheme": "kway", "balance": "vertices",
                   "refinement": METIS_REFINE_ITERATIONS_LARGE}
 
@@ -321,35 +324,34 @@ METHODS = {
     "range": range_blocks,
 }
 
-# What a survey or forecast compares unless told otherwise: metis-volume is left out because
-# it takes minutes per plan on million-vertex power-law graphs (see its docstring), and
-# metis-balanced because `metis` already takes its plan where that costs little.
-DEFAULT_COMPARED = ("metis", "fennel", "random", "range")
+# What a survey or forecast compares unless told otherwise (why: shardtrain/defaults.py)
+DEFAULT_COMPARED = defaults.COMPARED_METHODS
 
 
-def check_workers(k: int, num_vertices: int, option: str = "--workers") -> None:
+def check_workers(k: int, num_vertices: int, param: str = "workers") -> None:
     if not isinstance(k, (int, np.integer)) or k < 1 or k > num_vertices:
-        raise InputError(f"{option} {k}: must be between 1 and the number of vertices "
-                         f"({num_vertices})")
+        raise ParameterError(param, f"must be between 1 and the number of vertices "
+                                    f"({num_vertices})", value=k)
 
 
-def partition(graph: Graph, method: str, k: int, *, seed: int = 0,
-              imbalance: float = 0.03) -> np.ndarray:
+def partition(graph: Graph, method: str, k: int, *, seed: int = defaults.SEED,
+              imbalance: float = defaults.IMBALANCE) -> np.ndarray:
     """Assignment of every vertex to a worker in [0, k) by the named method."""
     return partition_plan(graph, method, k, seed=seed, imbalance=imbalance)[0]
 
 
-def partition_plan(graph: Graph, method: str, k: int, *, seed: int = 0,
-                   imbalance: float = 0.03) -> tuple[np.ndarray, dict]:
+def partition_plan(graph: Graph, method: str, k: int, *, seed: int = defaults.SEED,
+                   imbalance: float = defaults.IMBALANCE) -> tuple[np.ndarray, dict]:
     """(assignment, details) by the named method. details is {"method": name} and, for the
     METIS methods, "scheme" ("recursive" | "kway"), "balance" ("vertices" |
     "vertices+edges") and "refinement" (passes per level); `metis` and `metis-balanced`
     add "edge_cut" and "tried" (every candidate computed, with its cut and imbalances)."""
     if method not in METHODS:
-        raise InputError(f"--method {method!r}: unknown; expected one of {', '.join(METHODS)}")
+        raise ParameterError("method", f"unknown; expected one of {', '.join(METHODS)}",
+                             value=repr(method))
     check_workers(k, graph.num_vertices)
     if not (0.0 <= imbalance < 1.0):
-        raise InputError(f"--imbalance {imbalance}: must be in [0, 1)")
+        raise ParameterError("imbalance", "must be in [0, 1)", value=imbalance)
     k = int(k)
     if k == 1:
         return np.zeros(graph.num_vertices, dtype=np.int64), {"method": method}
@@ -367,11 +369,11 @@ def partition_plan(graph: Graph, method: str, k: int, *, seed: int = 0,
 # ----------------------------------------------------------------------------- from a file
 
 def load_assignment(path: str | os.PathLike, num_vertices: int,
-                    option: str = "--assignment") -> tuple[np.ndarray, int]:
+                    param: str = "assignment") -> tuple[np.ndarray, int]:
     """A user's partition: `.npy` (integer array) or text with one worker id per line, in
     vertex order. Returns (assignment, k) with k = max id + 1; every worker must own a vertex."""
     path = Path(path)
-    require_regular_file(path, option=option)   # a FIFO or device: refused before opening
+    require_regular_file(path, param=param)   # a FIFO or device: refused before opening
     if path.suffix == ".npy":
         a = _read_npy(path, num_vertices)
     else:

@@ -17,7 +17,7 @@ CONTRACT (the worker, the survey and the tests rely on exactly this layout):
 """
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import TypeGuard
 
 import numpy as np
@@ -26,7 +26,8 @@ from scipy.sparse.csgraph import reverse_cuthill_mckee
 
 from shardtrain.compat import scale_csr_rows
 from shardtrain.data.graph import Graph, gcn_degrees
-from shardtrain.errors import InputError
+from shardtrain.documents import ABSENT, MAX_SIZE, Document
+from shardtrain.errors import InputError, ParameterError
 
 # "locality": owned vertices renumbered by reverse Cuthill-McKee on the owned subgraph, so
 # neighbours sit close together in memory (the trainer's order); "id": owned vertices in
@@ -241,7 +242,7 @@ def check_assignment(assignment, num_vertices: int, k: int) -> np.ndarray:
         raise InputError(f"assignment: expected {num_vertices} integer worker ids, "
                          f"got shape {a.shape} dtype {a.dtype}")
     if k < 1:
-        raise InputError(f"--workers: must be at least 1, got {k}")
+        raise ParameterError("workers", f"must be at least 1, got {k}")
     if a.size and (a.min() < 0 or a.max() >= k):
         raise InputError(f"assignment: worker ids must lie in [0, {k}), "
                          f"got {int(a.min())}..{int(a.max())}")
@@ -307,7 +308,8 @@ def shard_stats(shards: list[Shard]) -> dict[str, np.ndarray]:
 
 # ----------------------------------------------------------------------------- shard directories
 
-MANIFEST = "shards.json"
+SHARDS_MANIFEST = "shards.json"           # the one name of a shard directory's index
+MANIFEST = SHARDS_MANIFEST               # the old name, until train/coordinator.py moves
 FORMAT = "shardtrain-shards"
 # version 2: `split_id` and per-worker `owned` counts in the manifest; each shard's header
 # holds 8 values and its own copy of the split id (version 1 directories: re-run split)
@@ -317,8 +319,36 @@ _INDEX_ARRAYS = ("owned", "halo", "halo_ptr", "send_idx", "send_ptr")
 # header of every shard file, int64: what the shard is and what it must agree with
 HEADER_FIELDS = ("worker", "workers", "num_vertices", "num_train_global", "owned", "halo",
                  "input_dim", "num_classes")
-_MAX_SIZE = 2**62                 # any count above this is not a real graph (int64 room)
-_FEATURE_DTYPES = ("<f4", "<f8")
+_MAX_SIZE = MAX_SIZE              # any count above this is not a real graph (int64 room)
+
+
+@dataclass(kw_only=True)
+class ShardManifest(Document):
+    """`shards.json`, typed (fields in the order `save_shards` writes them; the shape it
+    is checked against is `documents.MANIFEST`)."""
+
+    format: str
+    version: int
+    workers: int
+    num_vertices: int
+    num_edges: int
+    num_train_global: int
+    input_dim: int | None          # None: the shards have no features
+    num_classes: int
+    feature_dtype: str | None      # "<f4" | "<f8" | None (with input_dim None)
+    graph_fingerprint: str | None
+    method: str | None
+    seed: int | None
+    split_id: str                  # `split_id_of`: content hash of the split
+    owned: list[int]               # owned vertices per worker
+    files: list[str]               # shard file per worker, inside the directory
+    meta: dict = ABSENT            # what the writer passed: partition details, ...
+    extra: dict = field(default_factory=dict)
+
+
+def read_manifest(path) -> ShardManifest:
+    """`load_manifest`, typed."""
+    return ShardManifest.from_dict(load_manifest(path))
 
 
 def split_id_of(shards: list[Shard], graph_fingerprint=None) -> str:
@@ -365,24 +395,24 @@ def save_shards(path, shards: list[Shard], *, meta: dict, overwrite: bool = Fals
     if num_classes is None:
         num_classes = max(int(l.max()) for l in labels) + 1 if labels else 0
     split_id = split_id_of(shards, meta.get("graph_fingerprint"))
-    manifest = {
-        "format": FORMAT,
-        "version": FORMAT_VERSION,
-        "workers": k,
-        "num_vertices": first.num_vertices_global,
-        "num_edges": int(meta.get("num_edges", local_edges // 2)),
-        "num_train_global": first.num_train_global,
-        "input_dim": None if input_dim is None else int(input_dim),
-        "num_classes": int(num_classes),
-        "feature_dtype": features[0].dtype.str if features else None,
-        "graph_fingerprint": meta.get("graph_fingerprint"),
-        "method": meta.get("method"),
-        "seed": meta.get("seed"),
-        "split_id": split_id,
-        "owned": [s.num_owned for s in shards],
-        "files": [shard_file_name(s.worker) for s in shards],
-        "meta": {key: value for key, value in meta.items()},
-    }
+    manifest = ShardManifest(
+        format=FORMAT,
+        version=FORMAT_VERSION,
+        workers=k,
+        num_vertices=first.num_vertices_global,
+        num_edges=int(meta.get("num_edges", local_edges // 2)),
+        num_train_global=first.num_train_global,
+        input_dim=None if input_dim is None else int(input_dim),
+        num_classes=int(num_classes),
+        feature_dtype=features[0].dtype.str if features else None,
+        graph_fingerprint=meta.get("graph_fingerprint"),
+        method=meta.get("method"),
+        seed=meta.get("seed"),
+        split_id=split_id,
+        owned=[s.num_owned for s in shards],
+        files=[shard_file_name(s.worker) for s in shards],
+        meta={key: value for key, value in meta.items()},
+    ).to_dict()
     with atomic_directory(path, overwrite=overwrite) as tmp:
         for s in shards:
             arrays = {name: getattr(s, name) for name in _INDEX_ARRAYS}
@@ -398,19 +428,19 @@ def save_shards(path, shards: list[Shard], *, meta: dict, overwrite: bool = Fals
                 if value is not None:
                     arrays[name] = value
             save_npz_atomic(tmp / shard_file_name(s.worker), **arrays)
-        write_json_atomic(tmp / MANIFEST, manifest)
+        write_json_atomic(tmp / SHARDS_MANIFEST, manifest)
     return manifest
 
 
 def load_manifest(path) -> dict:
-    """The manifest of a shard directory, every field checked for type and range (one
-    InputError naming the file otherwise): a hand-edited or foreign manifest never gets
-    as far as a traceback."""
+    """The manifest of a shard directory, every field checked for type and range against
+    `documents.MANIFEST` (one InputError naming the file otherwise): a hand-edited or
+    foreign manifest never gets as far as a traceback. `ShardManifest.from_dict` types it."""
     from pathlib import Path
 
     from shardtrain.files import read_json_document
 
-    file = Path(path) / MANIFEST
+    file = Path(path) / SHARDS_MANIFEST
     if not file.is_file():
         raise InputError(f"{file}: no such file (not a shard directory)")
     try:
@@ -421,8 +451,9 @@ def load_manifest(path) -> dict:
     except InputError:
         _refuse_old_version(file)
         raise
-    _check_manifest(file, manifest)
-    return manifest
+    from shardtrain import documents
+
+    return documents.validate(manifest, "manifest", file)   # the shape: documents.MANIFEST
 
 
 def _refuse_old_version(file) -> None:
@@ -443,52 +474,6 @@ def _refuse_old_version(file) -> None:
 
 def _is_count(value) -> TypeGuard[int]:
     return isinstance(value, int) and not isinstance(value, bool) and 0 <= value < _MAX_SIZE
-
-
-def _check_manifest(file, m: dict) -> None:
-    def bad(key: str, rule: str):
-        return InputError(f"{file}: '{key}' must be {rule} (got {m.get(key)!r:.60})")
-
-    for key in ("workers", "num_vertices", "num_edges", "num_train_global", "num_classes"):
-        if key not in m:
-            raise InputError(f"{file}: missing key '{key}'")
-        if not _is_count(m[key]):
-            raise bad(key, "a non-negative integer")
-    k, n = m["workers"], m["num_vertices"]
-    if not 1 <= k <= max(n, 1):
-        raise bad("workers", f"an integer between 1 and num_vertices ({n})")
-    if m["num_train_global"] > n:
-        raise bad("num_train_global", f"at most num_vertices ({n})")
-    if m.get("input_dim") is not None and not (_is_count(m["input_dim"]) and m["input_dim"] > 0):
-        raise bad("input_dim", "a positive integer or null")
-    if m.get("feature_dtype") not in (None, *_FEATURE_DTYPES):
-        raise bad("feature_dtype", f"one of {', '.join(_FEATURE_DTYPES)} or null")
-    if (m.get("feature_dtype") is None) != (m.get("input_dim") is None):
-        raise InputError(f"{file}: 'input_dim' and 'feature_dtype' disagree (both are null "
-                         f"only when the shards have no features)")
-    if not isinstance(m.get("split_id"), str) or not 1 <= len(m["split_id"]) <= 64:
-        raise bad("split_id", "the split's id string")
-    if m.get("graph_fingerprint") is not None and not isinstance(m["graph_fingerprint"], str):
-        raise bad("graph_fingerprint", "a string or null")
-    owned = m.get("owned")
-    if (not isinstance(owned, list) or len(owned) != k
-            or not all(_is_count(c) for c in owned)):
-        raise bad("owned", f"a list of {k} vertex counts, one per worker")
-    if sum(owned) != n:
-        raise InputError(f"{file}: the workers' owned vertices add up to {sum(owned)}, not "
-                         f"num_vertices {n}")
-    files = m.get("files")
-    if not isinstance(files, list) or len(files) != k:
-        raise bad("files", f"a list of {k} shard file names, one per worker")
-    for name in files:
-        if (not isinstance(name, str) or name in ("", ".", "..") or "/" in name
-                or "\\" in name or "\0" in name):
-            raise InputError(f"{file}: 'files' entry {name!r:.60} is not a plain file name "
-                             f"inside the shard directory")
-    if len(set(files)) != k:
-        raise InputError(f"{file}: 'files' names the same shard file twice")
-    if "meta" in m and not isinstance(m["meta"], dict):
-        raise bad("meta", "an object")
 
 
 def _shard_file(path, manifest: dict, worker: int):
@@ -557,10 +542,11 @@ def check_shard(path, manifest: dict, worker: int) -> None:
     split_id = str(split) if split.ndim == 0 and split.dtype.kind == "U" else None
     if split_id != manifest["split_id"] or got["workers"] != k:
         raise InputError(f"{file}: belongs to another split (split {split_id}, "
-                         f"{got['workers']} workers) than {MANIFEST} ({manifest['split_id']}, "
+                         f"{got['workers']} workers) than {SHARDS_MANIFEST} "
+                         f"({manifest['split_id']}, "
                          f"{k} workers)")
     if got["worker"] != worker:
-        raise InputError(f"{file}: is shard {got['worker']} of the split, but {MANIFEST} "
+        raise InputError(f"{file}: is shard {got['worker']} of the split, but {SHARDS_MANIFEST} "
                          f"lists it as shard {worker} (files swapped or re-ordered?)")
     want = {"num_vertices": manifest["num_vertices"],
             "num_train_global": manifest["num_train_global"],
@@ -569,7 +555,7 @@ def check_shard(path, manifest: dict, worker: int) -> None:
             "num_classes": manifest["num_classes"]}
     for key, value in want.items():
         if got[key] != value:
-            raise InputError(f"{file}: says {key} {got[key]}, {MANIFEST} says {value} (an "
+            raise InputError(f"{file}: says {key} {got[key]}, {SHARDS_MANIFEST} says {value} (an "
                              f"edited manifest?)")
     n_own = got["owned"]
     if shapes.get("owned", ((None,), None))[0] != (n_own,):
@@ -577,7 +563,7 @@ def check_shard(path, manifest: dict, worker: int) -> None:
     feat = shapes.get("features")
     if (feat is None) != (want["input_dim"] == -1):
         raise InputError(f"{file}: {'has' if feat is not None else 'lacks'} features, "
-                         f"{MANIFEST} says input_dim {manifest.get('input_dim')}")
+                         f"{SHARDS_MANIFEST} says input_dim {manifest.get('input_dim')}")
     if feat is not None and (feat[0] != (n_own, want["input_dim"])
                              or feat[1].str != manifest.get("feature_dtype")):
         raise InputError(f"{file}: features are {feat[0]} {feat[1]}, expected "
@@ -592,7 +578,7 @@ def check_shard(path, manifest: dict, worker: int) -> None:
         top = int(labels.max())
         if top >= manifest["num_classes"] or int(labels.min()) < -1:
             raise InputError(f"{file}: labels run from {int(labels.min())} to {top}, "
-                             f"{MANIFEST} says num_classes {manifest['num_classes']}")
+                             f"{SHARDS_MANIFEST} says num_classes {manifest['num_classes']}")
 
 
 def check_shard_dir(path, workers=None) -> dict:
@@ -625,7 +611,7 @@ def load_shard(path, worker: int) -> Shard:
     manifest = load_manifest(path)
     k = manifest["workers"]
     if not 0 <= worker < k:
-        raise InputError(f"{Path(path) / MANIFEST}: has workers 0..{k - 1}, not {worker}")
+        raise InputError(f"{Path(path) / SHARDS_MANIFEST}: has workers 0..{k - 1}, not {worker}")
     file = _shard_file(path, manifest, worker)
     try:
         with np.load(file, allow_pickle=False) as z:

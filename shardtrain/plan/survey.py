@@ -10,12 +10,14 @@ per plan the Python work is O(k) loops over workers; the k x k traffic matrix is
 from __future__ import annotations
 
 import time
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
+from shardtrain import defaults
 from shardtrain.data.graph import structure_fingerprint
-from shardtrain.errors import InputError
+from shardtrain.documents import ABSENT, Document
+from shardtrain.errors import ParameterError
 from shardtrain.plan.schedule import LayerHop, layer_dims, layer_hops
 from shardtrain.transport.wire import KIND_ALLREDUCE, KIND_HALO, NO_LAYER
 
@@ -32,14 +34,36 @@ BASELINE_RSS_BYTES = 45 * 2**20
 class SurveySettings:
     """The model shape and partition options a survey compares plans under."""
 
-    layers: int = 2
-    hidden: int = 16
-    dtype: str = "float32"
+    layers: int = defaults.LAYERS
+    hidden: int = defaults.HIDDEN
+    dtype: str = defaults.DTYPE
     classes: int | None = None      # needed when the graph has no labels
     input_dim: int | None = None    # needed when the graph has no features
-    bias: bool = False
-    imbalance: float = 0.03
-    seed: int = 0
+    bias: bool = defaults.BIAS
+    imbalance: float = defaults.IMBALANCE
+    seed: int = defaults.SEED
+
+
+@dataclass(kw_only=True)
+class SurveyPlan(Document):
+    """One plan of a survey, typed (fields in the order `survey_plan` writes them; its
+    shape is `documents.SURVEY_PLAN`). The nested parts stay the dicts the JSON holds."""
+
+    method: str
+    workers: int
+    edge_cut: int = ABSENT
+    replication_factor: float = ABSENT
+    max_memory_bytes: int = ABSENT
+    epoch_payload_bytes: int = ABSENT
+    shards: list[dict]              # per worker: owned, halo, local_edges, memory, bytes
+    traffic: dict                   # `predict_traffic`: bytes per epoch, pair matrix, ...
+    imbalance: dict = ABSENT        # max/mean of owned, local_edges, halo, bytes_sent
+    partition: dict = ABSENT        # `partition.partition_plan` details
+    partition_s: float | None = ABSENT
+    build_s: float | None = ABSENT
+    partition_cpu_s: float = ABSENT
+    build_cpu_s: float = ABSENT
+    extra: dict = field(default_factory=dict)
 
 
 def parameter_elements(hops: list[LayerHop], *, bias: bool = False) -> int:
@@ -277,25 +301,25 @@ def survey_plan(graph, method: str, k: int, *, hops: list[LayerHop], itemsize: i
                    "local_edges": int(local_edges[w]), "memory_bytes": int(memory[w]),
                    "bytes_sent": int(sent[w]), "bytes_received": int(received[w])}
                   for w in range(k)]
-    return {
-        "method": method,
-        "workers": k,
-        "edge_cut": cut,
-        "replication_factor": float((owned.sum() + halo.sum()) / graph.num_vertices),
-        "max_memory_bytes": int(memory.max()),
-        "epoch_payload_bytes": epoch_payload_bytes(traffic),
-        "shards": shard_rows,
-        "traffic": traffic,
-        "imbalance": {"owned": _max_over_mean(owned),
-                      "local_edges": _max_over_mean(local_edges),
-                      "halo": _max_over_mean(halo),
-                      "bytes_sent": _max_over_mean(sent)},
-        "partition": details,
-        "partition_s": t1 - t0,
-        "build_s": t2 - t1,
-        "partition_cpu_s": c1 - c0,      # this process's CPU time: the machine may be shared
-        "build_cpu_s": c2 - c1,
-    }
+    return SurveyPlan(
+        method=method,
+        workers=k,
+        edge_cut=cut,
+        replication_factor=float((owned.sum() + halo.sum()) / graph.num_vertices),
+        max_memory_bytes=int(memory.max()),
+        epoch_payload_bytes=epoch_payload_bytes(traffic),
+        shards=shard_rows,
+        traffic=traffic,
+        imbalance={"owned": _max_over_mean(owned),
+                   "local_edges": _max_over_mean(local_edges),
+                   "halo": _max_over_mean(halo),
+                   "bytes_sent": _max_over_mean(sent)},
+        partition=details,
+        partition_s=t1 - t0,
+        build_s=t2 - t1,
+        partition_cpu_s=c1 - c0,      # this process's CPU time: the machine may be shared
+        build_cpu_s=c2 - c1,
+    ).to_dict()
 
 
 def model_shape(graph, settings: SurveySettings) -> tuple[list[tuple[int, int]], list[LayerHop]]:
@@ -305,13 +329,14 @@ def model_shape(graph, settings: SurveySettings) -> tuple[list[tuple[int, int]],
     # every missing width in one line, so a structure-only graph needs one retry, not two
     missing = []
     if input_dim is None or input_dim < 1:
-        missing.append(("--input-dim", "features", "the input width D >= 1"))
+        missing.append(("input_dim", "features", "the input width D >= 1"))
     if classes is None or classes < 1:
-        missing.append(("--classes", "labels", "the number of classes C >= 1"))
+        missing.append(("classes", "labels", "the number of classes C >= 1"))
     if missing:
-        raise InputError(f"{', '.join(m[0] for m in missing)}: the graph has no "
-                         f"{' and no '.join(m[1] for m in missing)}; give "
-                         f"{' and '.join(m[2] for m in missing)}")
+        raise ParameterError(missing[0][0], f"the graph has no "
+                             f"{' and no '.join(m[1] for m in missing)}; give "
+                             f"{' and '.join(m[2] for m in missing)}",
+                             also=tuple(m[0] for m in missing[1:]))
     assert input_dim is not None and classes is not None   # refused above when missing
     dims = layer_dims(int(input_dim), settings.hidden, int(classes), settings.layers)
     return dims, layer_hops(dims)
@@ -319,24 +344,25 @@ def model_shape(graph, settings: SurveySettings) -> tuple[list[tuple[int, int]],
 
 def check_plans(graph, methods: list[str], workers_list: list[int],
                 settings: SurveySettings) -> None:
-    """Reject bad options (InputError naming the option) before any work starts."""
+    """Reject bad settings (a ParameterError naming the parameter) before any work starts."""
     from shardtrain.plan.partition import METHODS
 
     for m in methods:
         if m not in METHODS:
-            raise InputError(f"--method: unknown method {m!r} (choose from {', '.join(METHODS)})")
+            raise ParameterError("method", f"unknown method {m!r} "
+                                           f"(choose from {', '.join(METHODS)})")
     for k in workers_list:
         if k < 1 or k > graph.num_vertices:
-            raise InputError(f"--workers: {k} is not between 1 and the graph's "
-                             f"{graph.num_vertices} vertices")
+            raise ParameterError("workers", f"{k} is not between 1 and the graph's "
+                                            f"{graph.num_vertices} vertices")
     if settings.layers < 1:
-        raise InputError(f"--layers: must be >= 1, got {settings.layers}")
+        raise ParameterError("layers", f"must be >= 1, got {settings.layers}")
     if settings.hidden < 1:
-        raise InputError(f"--hidden: must be >= 1, got {settings.hidden}")
+        raise ParameterError("hidden", f"must be >= 1, got {settings.hidden}")
     if settings.dtype not in ("float32", "float64"):
-        raise InputError(f"--dtype: must be float32 or float64, got {settings.dtype!r}")
+        raise ParameterError("dtype", f"must be float32 or float64, got {settings.dtype!r}")
     if not 0.0 <= settings.imbalance < 1.0:
-        raise InputError(f"--imbalance: must be in [0, 1), got {settings.imbalance}")
+        raise ParameterError("imbalance", f"must be in [0, 1), got {settings.imbalance}")
     model_shape(graph, settings)
 
 

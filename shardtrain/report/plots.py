@@ -17,7 +17,7 @@ from matplotlib.artist import Artist  # noqa: E402
 from matplotlib.colors import LogNorm, Normalize  # noqa: E402
 from matplotlib.ticker import FuncFormatter, LogLocator, MaxNLocator, MultipleLocator, NullFormatter  # noqa: E402
 
-from shardtrain.errors import InputError  # noqa: E402
+from shardtrain.errors import ParameterError  # noqa: E402
 from shardtrain.files import atomic_output  # noqa: E402
 
 PHASES = (("compute_s", "compute", "#4c72b0"), ("exchange_s", "halo exchange", "#dd8452"),
@@ -37,14 +37,14 @@ def _bytes_tick(v: float, _pos=None) -> str:
 _BYTES_FMT = FuncFormatter(_bytes_tick)
 
 
-def check_plot_dir(path, option: str = "--plot") -> None:
+def check_plot_dir(path, param: str = "plot") -> None:
     """Before any work: the picture folder may exist (as a folder) or be new in an
-    existing folder; InputError naming the option otherwise."""
+    existing folder; ParameterError naming `param` otherwise."""
     p = Path(path)
     if p.exists() and not p.is_dir():
-        raise InputError(f"{option} {path}: exists and is not a folder")
+        raise ParameterError(param, "exists and is not a folder", value=path)
     if not p.exists() and not p.absolute().parent.is_dir():
-        raise InputError(f"{option} {path}: folder {p.absolute().parent} does not exist")
+        raise ParameterError(param, f"folder {p.absolute().parent} does not exist", value=path)
 
 
 def _log_bytes_axis(axis) -> None:

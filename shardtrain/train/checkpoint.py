@@ -36,7 +36,7 @@ from typing import Callable
 
 import numpy as np
 
-from shardtrain.errors import InputError
+from shardtrain.errors import InputError, ParameterError, option
 from shardtrain.files import read_json_document
 
 FORMAT = "shardtrain-checkpoint"
@@ -46,10 +46,11 @@ _STATE_RE = re.compile(r"state-\d{6}\.npz")
 # settings a resume may change: how long the run goes on, how many BLAS threads it uses
 _FREE_SETTINGS = ("epochs", "threads")
 _ABSENT_MEANS = {"early_stop": 0}     # settings older checkpoints do not record
-_OPTION_OF = {"early_stop": "--early-stop", "layers": "--layers", "hidden": "--hidden",
-              "dropout": "--dropout",
-              "lr": "--lr", "weight_decay": "--weight-decay", "seed": "--seed",
-              "dtype": "--dtype", "bias": "--bias"}
+
+
+def _param(name: str) -> str:
+    """A parameter name; a flag ("--resume") from callers not yet moved is taken as one."""
+    return name[2:].replace("-", "_") if name.startswith("--") else name
 
 
 def state_file_name(epoch: int) -> str:
@@ -66,11 +67,11 @@ def file_sha256(path) -> str:
 
 def shard_dir_fingerprint(shard_dir) -> str:
     """SHA-256 (16 hex digits) of the manifest and every shard file, in manifest order."""
-    from shardtrain.plan.shards import MANIFEST, load_manifest
+    from shardtrain.plan.shards import SHARDS_MANIFEST, load_manifest
 
     manifest = load_manifest(shard_dir)
     h = hashlib.sha256()
-    for name in [MANIFEST, *manifest["files"]]:
+    for name in [SHARDS_MANIFEST, *manifest["files"]]:
         h.update(name.encode() + b"\0")
         with open(Path(shard_dir) / name, "rb") as fh:
             for block in iter(lambda: fh.read(1 << 20), b""):
@@ -181,15 +182,16 @@ def has_checkpoint(folder) -> bool:
     return (Path(folder) / INDEX).is_file()
 
 
-def read_checkpoint(folder, option: str = "--resume") -> Checkpoint:
-    """The committed checkpoint in `folder`; InputError naming the option and file."""
+def read_checkpoint(folder, param: str = "resume") -> Checkpoint:
+    """The committed checkpoint in `folder`; a ParameterError naming `param` and the folder,
+    or an InputError naming the file."""
+    param = _param(param)
     folder = Path(folder)
     index = folder / INDEX
-    where = f"{option} {folder}"
     if not folder.is_dir():
-        raise InputError(f"{where}: no such folder")
+        raise ParameterError(param, "no such folder", value=folder)
     if not index.is_file():
-        raise InputError(f"{where}: no {INDEX} (not a checkpoint folder)")
+        raise ParameterError(param, f"no {INDEX} (not a checkpoint folder)", value=folder)
     # the shape (documents.CHECKPOINT): epoch >= 1, a state-NNNNNN.npz name, settings ...
     doc = read_json_document(index, format=FORMAT, version=VERSION,
                              what="shardtrain checkpoint", kind="checkpoint")
@@ -220,22 +222,22 @@ def check_resumable(ckpt: Checkpoint, identity: dict, *, epochs: int,
                     graph_label: str = "GRAPH") -> None:
     """Refuse (InputError naming the option and what differs) a resume that contradicts
     the checkpoint: another graph, shard layout, model shape, worker count or setting."""
-    doc, src = ckpt.doc, f"--resume {ckpt.folder}"
+    doc, src = ckpt.doc, f"{option('resume')} {ckpt.folder}"
     mine_mode, their_mode = identity.get("mode", "partitioned"), mode_of(doc)
     if mine_mode != their_mode:
         raise InputError(f"{src}: the checkpoint was written by a {their_mode} run, this is a "
                          f"{mine_mode} run (resume it in the mode that wrote it"
-                         f"{', with --reference' if their_mode == 'reference' else ''})")
+                         f"{', with ' + option('reference') if their_mode == 'reference' else ''})")
     for key, mine in identity["settings"].items():
         theirs = doc["settings"].get(key, _ABSENT_MEANS.get(key))
         if theirs != mine:
-            raise InputError(f"{_OPTION_OF.get(key, key)}: this run asks for {mine!r}, the "
-                             f"checkpoint in {ckpt.folder} was written with {theirs!r} "
-                             f"({src} needs the same settings)")
+            raise ParameterError(key, f"this run asks for {mine!r}, the checkpoint in "
+                                      f"{ckpt.folder} was written with {theirs!r} "
+                                      f"({src} needs the same settings)")
     if doc["workers"] != identity["workers"]:
-        raise InputError(f"--workers: this run has {identity['workers']} workers, the "
-                         f"checkpoint in {ckpt.folder} was written by {doc['workers']} "
-                         f"(resume on the same worker count)")
+        raise ParameterError("workers", f"this run has {identity['workers']} workers, the "
+                                        f"checkpoint in {ckpt.folder} was written by "
+                                        f"{doc['workers']} (resume on the same worker count)")
     if doc["dims"] != identity["dims"]:
         raise InputError(f"{graph_label}: model layers {identity['dims']} differ from the "
                          f"checkpoint's {doc['dims']} ({src}): another feature width or "
@@ -247,8 +249,9 @@ def check_resumable(ckpt: Checkpoint, identity: dict, *, epochs: int,
             raise InputError(f"{graph_label}: a different {what} from the checkpoint's "
                              f"(fingerprint {mine} against {theirs} in {ckpt.folder})")
     if ckpt.epoch >= epochs:
-        raise InputError(f"--epochs {epochs}: the checkpoint in {ckpt.folder} is already at "
-                         f"epoch {ckpt.epoch}; ask for more epochs to continue")
+        raise ParameterError("epochs", f"the checkpoint in {ckpt.folder} is already at "
+                                       f"epoch {ckpt.epoch}; ask for more epochs to continue",
+                             value=epochs)
 
 
 def check_folder(folder, *, resuming_from=None) -> Path:
@@ -257,13 +260,16 @@ def check_folder(folder, *, resuming_from=None) -> Path:
     being resumed."""
     folder = Path(folder)
     if folder.exists() and not folder.is_dir():
-        raise InputError(f"--checkpoint {folder}: exists and is not a folder")
+        raise ParameterError("checkpoint", "exists and is not a folder", value=folder)
     if not folder.parent.is_dir():
-        raise InputError(f"--checkpoint {folder}: folder {folder.parent} does not exist")
+        raise ParameterError("checkpoint", f"folder {folder.parent} does not exist",
+                             value=folder)
     if has_checkpoint(folder) and (resuming_from is None or
                                    Path(resuming_from).resolve() != folder.resolve()):
-        raise InputError(f"--checkpoint {folder}: holds a checkpoint already; continue it "
-                         f"with --resume {folder} or choose an empty folder")
+        raise ParameterError("checkpoint", f"holds a checkpoint already; continue it "
+                                           f"with {option('resume')} {folder} or choose an "
+                                           f"empty folder",
+                             value=folder)
     return folder
 
 
@@ -290,7 +296,7 @@ class FolderLock:
                 pass
 
 
-def lock_folder(folder, option: str = "--checkpoint") -> FolderLock:
+def lock_folder(folder, param: str = "checkpoint") -> FolderLock:
     """Take an exclusive, non-blocking flock(2) on the checkpoint folder itself (created
     when missing; its parent must exist), so a second run writing or resuming it is refused
     with one line naming the folder. The kernel drops the lock when the process ends, however
@@ -298,15 +304,16 @@ def lock_folder(folder, option: str = "--checkpoint") -> FolderLock:
     import fcntl
     import os
 
+    param = _param(param)
     folder = Path(folder)
     if folder.exists() and not folder.is_dir():
-        raise InputError(f"{option} {folder}: exists and is not a folder")
+        raise ParameterError(param, "exists and is not a folder", value=folder)
     created = False
     if not folder.exists():
-        if option == "--resume":
-            raise InputError(f"{option} {folder}: no such folder")
+        if param == "resume":
+            raise ParameterError(param, "no such folder", value=folder)
         if not folder.parent.is_dir():
-            raise InputError(f"{option} {folder}: folder {folder.parent} does not exist")
+            raise ParameterError(param, f"folder {folder.parent} does not exist", value=folder)
         folder.mkdir()
         created = True
     fd = os.open(folder, os.O_RDONLY | os.O_DIRECTORY | os.O_CLOEXEC)
@@ -314,7 +321,7 @@ def lock_folder(folder, option: str = "--checkpoint") -> FolderLock:
         fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
     except OSError:
         os.close(fd)
-        raise InputError(f"{option} {folder}: another shardtrain run is using this "
-                         f"checkpoint folder (it holds the folder's lock); wait for it to "
-                         f"end or choose another folder") from None
+        raise ParameterError(param, "another shardtrain run is using this checkpoint folder "
+                                    "(it holds the folder's lock); wait for it to end or "
+                                    "choose another folder", value=folder) from None
     return FolderLock(folder, fd, created)

@@ -19,7 +19,7 @@ import numpy as np
 from scipy.sparse.csgraph import reverse_cuthill_mckee
 
 from shardtrain.data.graph import Graph, normalized_adjacency
-from shardtrain.errors import InputError
+from shardtrain.errors import InputError, ParameterError, option
 from shardtrain.plan.schedule import layer_dims, layer_hops
 from shardtrain.train import model, stopping
 from shardtrain.train.settings import TrainSettings
@@ -37,9 +37,9 @@ class RunResult:
 def check_trainable(graph: Graph) -> None:
     """The graph must carry features, labels and at least one labelled training vertex."""
     if graph.features is None:
-        raise InputError("graph: no vertex features (give --features)")
+        raise InputError(f"graph: no vertex features (give {option('features')})")
     if graph.labels is None:
-        raise InputError("graph: no vertex labels (give --labels)")
+        raise InputError(f"graph: no vertex labels (give {option('labels')})")
     if graph.train_mask is None or not np.any(graph.train_mask):
         raise InputError("graph: no training vertices (the training split is empty)")
     if np.any(graph.labels[graph.train_mask] < 0):
@@ -100,8 +100,8 @@ def check_early_stop(graph: Graph, settings: TrainSettings) -> None:
     if not settings.early_stop:
         return
     if graph.val_mask is None or not np.any(graph.val_mask):
-        raise InputError("--early-stop: the graph has no validation vertices (the "
-                         "validation split is empty)")
+        raise ParameterError("early_stop", "the graph has no validation vertices (the "
+                                           "validation split is empty)")
 
 
 def _train(graph, settings, init_params, init_adam, first_epoch, on_epoch, on_epoch_end,

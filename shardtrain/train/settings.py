@@ -1,11 +1,11 @@
 """Training settings: one value shared by the reference, the workers and the CLI.
 
-Defaults are the GCN paper's setup (Kipf & Welling, ICLR 2017): 2 layers, 16 hidden units,
-dropout 0.5, learning rate 0.01, weight decay 5e-4 on the first layer, 200 epochs, no bias.
-Two settings are the tool's own: `early_stop` (patience in epochs, 0 = off; the paper stops
-after 10 epochs without a better validation loss) and `threads` (BLAS threads per process,
-default 1: the workers are the parallelism, and the reference gets the same CPU per process
-so that the two modes compare like for like).
+Defaults (`shardtrain.defaults`) are the GCN paper's setup (Kipf & Welling, ICLR 2017):
+2 layers, 16 hidden units, dropout 0.5, learning rate 0.01, weight decay 5e-4 on the first
+layer, 200 epochs, no bias. Two settings are the tool's own: `early_stop` (patience in
+epochs, 0 = off; the paper stops after 10 epochs without a better validation loss) and
+`threads` (BLAS threads per process, default 1: the workers are the parallelism, and the
+reference gets the same CPU per process so that the two modes compare like for like).
 """
 from __future__ import annotations
 
@@ -14,48 +14,49 @@ from dataclasses import asdict, dataclass, fields
 
 import numpy as np
 
-from shardtrain.errors import InputError
+from shardtrain import defaults
+from shardtrain.errors import InputError, ParameterError
 
 DTYPES = ("float32", "float64")
 
 
 @dataclass
 class TrainSettings:
-    layers: int = 2
-    hidden: int = 16
-    dropout: float = 0.5
-    lr: float = 0.01
-    weight_decay: float = 5e-4
-    epochs: int = 200
-    seed: int = 0
-    dtype: str = "float32"
-    bias: bool = False
-    early_stop: int = 0
-    threads: int = 1
+    layers: int = defaults.LAYERS
+    hidden: int = defaults.HIDDEN
+    dropout: float = defaults.DROPOUT
+    lr: float = defaults.LR
+    weight_decay: float = defaults.WEIGHT_DECAY
+    epochs: int = defaults.EPOCHS
+    seed: int = defaults.SEED
+    dtype: str = defaults.DTYPE
+    bias: bool = defaults.BIAS
+    early_stop: int = defaults.EARLY_STOP
+    threads: int = defaults.THREADS
 
     def validate(self) -> "TrainSettings":
-        """Raise InputError naming the command-line option of the first bad value."""
-        def need(ok, option, rule, value):
+        """Raise a ParameterError naming the first bad setting (the CLI names its option)."""
+        def need(ok, param, rule, value):
             if not ok:
-                raise InputError(f"{option}: must be {rule} (got {value!r})")
+                raise ParameterError(param, f"must be {rule} (got {value!r})")
 
-        need(_is_int(self.layers) and self.layers >= 1, "--layers", "an integer >= 1",
+        need(_is_int(self.layers) and self.layers >= 1, "layers", "an integer >= 1",
              self.layers)
-        need(_is_int(self.hidden) and self.hidden >= 1, "--hidden", "an integer >= 1",
+        need(_is_int(self.hidden) and self.hidden >= 1, "hidden", "an integer >= 1",
              self.hidden)
-        need(_is_real(self.dropout) and 0 <= self.dropout < 1, "--dropout",
+        need(_is_real(self.dropout) and 0 <= self.dropout < 1, "dropout",
              "a number in [0, 1)", self.dropout)
-        need(_is_real(self.lr) and self.lr > 0, "--lr", "a number > 0", self.lr)
-        need(_is_real(self.weight_decay) and self.weight_decay >= 0, "--weight-decay",
+        need(_is_real(self.lr) and self.lr > 0, "lr", "a number > 0", self.lr)
+        need(_is_real(self.weight_decay) and self.weight_decay >= 0, "weight_decay",
              "a number >= 0", self.weight_decay)
-        need(_is_int(self.epochs) and self.epochs >= 1, "--epochs", "an integer >= 1",
+        need(_is_int(self.epochs) and self.epochs >= 1, "epochs", "an integer >= 1",
              self.epochs)
-        need(_is_int(self.seed) and self.seed >= 0, "--seed", "an integer >= 0", self.seed)
-        need(self.dtype in DTYPES, "--dtype", "one of " + ", ".join(DTYPES), self.dtype)
-        need(isinstance(self.bias, (bool, np.bool_)), "--bias", "true or false", self.bias)
-        need(_is_int(self.early_stop) and self.early_stop >= 0, "--early-stop",
+        need(_is_int(self.seed) and self.seed >= 0, "seed", "an integer >= 0", self.seed)
+        need(self.dtype in DTYPES, "dtype", "one of " + ", ".join(DTYPES), self.dtype)
+        need(isinstance(self.bias, (bool, np.bool_)), "bias", "true or false", self.bias)
+        need(_is_int(self.early_stop) and self.early_stop >= 0, "early_stop",
              "an integer >= 0 (0: off)", self.early_stop)
-        need(_is_int(self.threads) and 1 <= self.threads <= max_threads(), "--threads",
+        need(_is_int(self.threads) and 1 <= self.threads <= max_threads(), "threads",
              f"an integer in 1..{max_threads()} (4 x this machine's cores)", self.threads)
         return self
 

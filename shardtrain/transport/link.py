@@ -24,7 +24,7 @@ import math
 import re
 from dataclasses import dataclass
 
-from shardtrain.errors import InputError
+from shardtrain.errors import ParameterError
 
 
 @dataclass(frozen=True)
@@ -54,18 +54,22 @@ _NUMBER = r"(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][-+]?\d+)?"
 _LINK = re.compile(rf"^\s*({_NUMBER})\s*(?::\s*({_NUMBER})\s*)?$")
 
 
-def parse_link(text: str, option: str = "--emulate-link") -> LinkModel:
-    """'GBPS[:LATENCY_US]' (e.g. '10', '0.1:50') -> LinkModel; InputError naming the option."""
+def parse_link(text: str, param: str = "emulate_link") -> LinkModel:
+    """'GBPS[:LATENCY_US]' (e.g. '10', '0.1:50') -> LinkModel; ParameterError naming `param`
+    (a flag such as "--emulate-link", from callers not yet moved to parameter names, is
+    taken as that name)."""
+    if param.startswith("--"):
+        param = param[2:].replace("-", "_")
     m = _LINK.match(text or "")
     if not m:
-        raise InputError(f"{option}: expected GBPS[:LATENCY_US] such as 10 or 0.1:50, "
-                         f"got {text!r}")
+        raise ParameterError(param, f"expected GBPS[:LATENCY_US] such as 10 or 0.1:50, "
+                                    f"got {text!r}")
     gbps = float(m.group(1))
     latency = float(m.group(2)) if m.group(2) is not None else 0.0
     if not (math.isfinite(gbps) and gbps > 0):
-        raise InputError(f"{option}: bandwidth must be a finite number above 0 Gbit/s, "
-                         f"got {text!r}")
+        raise ParameterError(param, f"bandwidth must be a finite number above 0 Gbit/s, "
+                                    f"got {text!r}")
     if not math.isfinite(latency):
-        raise InputError(f"{option}: latency must be a finite number of microseconds >= 0, "
-                         f"got {text!r}")
+        raise ParameterError(param, f"latency must be a finite number of microseconds >= 0, "
+                                    f"got {text!r}")
     return LinkModel(gbps, latency)

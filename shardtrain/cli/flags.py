@@ -1,0 +1,51 @@
+"""The one table from a library parameter to the command-line option that sets it.
+
+Library functions raise `errors.ParameterError` naming their Python parameter
+("method 'x': unknown ...") and name other parameters inside a message with
+`errors.option("seed")`; `cli.main` words the message with the options from `FLAGS`
+("--method 'x': unknown ...", "try another --seed"). A parameter missing here keeps its Python name;
+`tests/test_flags.py` checks that every parameter the library raises about is here or in
+`NOT_OPTIONS`.
+"""
+from __future__ import annotations
+
+from shardtrain.errors import InputError, RunError
+
+FLAGS = {
+    # GRAPH and its vertex data (cli/common.py)
+    "features": "--features", "labels": "--labels", "input_dim": "--input-dim",
+    "seed": "--seed",
+    # model shape and training (train, survey, forecast, demo)
+    "layers": "--layers", "hidden": "--hidden", "classes": "--classes",
+    "dropout": "--dropout", "lr": "--lr", "weight_decay": "--weight-decay",
+    "epochs": "--epochs", "dtype": "--dtype", "bias": "--bias",
+    "early_stop": "--early-stop", "threads": "--threads",
+    # plans
+    "method": "--method", "workers": "--workers", "imbalance": "--imbalance",
+    "assignment": "--assignment",
+    # forecast
+    "link_gbps": "--link-gbps", "latency_us": "--latency-us",
+    "speed_factor": "--speed-factor", "cores": "--cores",
+    "target_epoch_s": "--target-epoch-s", "flops_per_s": "--flops-per-worker",
+    "calibration": "--calibration",
+    # synth
+    "vertices": "--vertices", "avg_degree": "--avg-degree", "homophily": "--homophily",
+    "degree_exponent": "--degree-exponent", "signal": "--signal",
+    # outputs and folders
+    "plot": "--plot", "out": "--out", "overwrite": "--overwrite",
+    "checkpoint": "--checkpoint", "resume": "--resume", "reference": "--reference",
+    "emulate_link": "--emulate-link",
+}
+
+# parameters a library may name that no option sets (the message keeps the Python name)
+NOT_OPTIONS: frozenset[str] = frozenset()
+
+
+def flag_of(param: str) -> str:
+    return FLAGS.get(param, param)
+
+
+def cli_message(exc: InputError | RunError) -> str:
+    """The one line the CLI prints for an error: every parameter it names (a
+    `ParameterError`'s own, and `errors.option` mentions) as the option a user types."""
+    return exc.worded(flag_of)
