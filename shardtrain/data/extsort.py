@@ -58,7 +58,7 @@ class Budget:
     @property
     def text_chunk_bytes(self) -> int:
         """Bytes of text scanned at a time (the scanner needs about 24 B per byte)."""
-        return int(min(8 << 20, max(1 << 16, self.total // 4 // 24)))
+        return int(min(8 << 20, max(1 << 12, self.total // 4 // 24)))
 
     def working_bytes(self, rows: int, keys_in_largest_bucket: int) -> int:
         """Estimated peak working memory of the passes for this much data: the larger of
@@ -67,6 +67,12 @@ class Budget:
         sort = (keys_in_largest_bucket * SORT_BYTES_PER_KEY
                 + min(self.slice_keys, keys_in_largest_bucket) * SLICE_BYTES_PER_KEY)
         return int(max(chunk, sort))
+
+
+def write_array(fh, a: np.ndarray) -> None:
+    """Append the bytes of `a` to a binary file. Unlike ndarray.tofile, a short write (a full
+    disk) raises OSError with its errno, which `files.atomic_directory` reports as one line."""
+    fh.write(np.ascontiguousarray(a).data)
 
 
 class DegreeHistogram:
@@ -135,7 +141,7 @@ class BucketWriter:
         cut = np.searchsorted(keys, self.bounds)
         for i in np.flatnonzero(cut[1:] > cut[:-1]):     # loop over buckets, not keys
             with open(self.path(int(i)), "ab") as fh:
-                keys[cut[i]:cut[i + 1]].tofile(fh)
+                write_array(fh, keys[cut[i]:cut[i + 1]])
             self.sizes[i] += cut[i + 1] - cut[i]
 
 
@@ -146,7 +152,7 @@ class IndptrWriter:
         self.fh, self.n = fh, n
         self.done = 0            # rows whose end offset is written
         self.total = 0           # keys seen so far
-        np.zeros(1, dtype=np.int64).tofile(fh)
+        write_array(fh, np.zeros(1, dtype=np.int64))
 
     def add(self, rows: np.ndarray) -> None:
         if rows.shape[0] == 0:
@@ -155,14 +161,14 @@ class IndptrWriter:
         counts = np.bincount(rows - self.done, minlength=last - self.done + 1)
         # rows before `last` are complete (keys come in row order); `last` may continue
         ends = self.total + np.cumsum(counts[:-1])
-        ends.astype(np.int64).tofile(self.fh)
+        write_array(self.fh, ends.astype(np.int64))
         self.total += int(counts.sum())
         self.done = last
 
     def finish(self) -> None:
         remaining = self.n - self.done
         if remaining > 0:
-            np.full(remaining, self.total, dtype=np.int64).tofile(self.fh)
+            write_array(self.fh, np.full(remaining, self.total, dtype=np.int64))
             self.done = self.n
 
 
@@ -230,7 +236,7 @@ def sort_buckets(paths: Iterable[Path], n: int, rows: int, loop_rows: int,
             distinct_loops += row == col
             distinct_pairs += row < col
             if row != col:
-                np.array([col], dtype=index_dtype).tofile(indices_fh)
+                write_array(indices_fh, np.array([col], dtype=index_dtype))
                 indptr.add(np.array([row], dtype=np.int64))
             path.unlink()
             count += 1
@@ -251,7 +257,7 @@ def sort_buckets(paths: Iterable[Path], n: int, rows: int, loop_rows: int,
             distinct_loops += int(np.count_nonzero(loop))
             distinct_pairs += int(np.count_nonzero(r < c))
             r, c = r[~loop], c[~loop]
-            c.astype(index_dtype).tofile(indices_fh)
+            write_array(indices_fh, c.astype(index_dtype))
             indptr.add(r)
         del keys, keep
         path.unlink()

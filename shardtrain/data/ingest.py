@@ -42,6 +42,7 @@ from shardtrain.data.extsort import (
     edge_keys,
     plan_buckets,
     sort_buckets,
+    write_array,
 )
 from shardtrain.data.graph import EdgeCleanup
 from shardtrain.data.graphdir import FORMAT, MANIFEST, VERSION, index_dtype_for
@@ -59,6 +60,7 @@ from shardtrain.data.textscan import (
     show,
 )
 from shardtrain.errors import InputError
+from shardtrain.hooks import pause_point
 
 PARQUET_SUFFIXES = (".parquet", ".pq")
 SOURCE_SUFFIXES = readers.GRAPH_SUFFIXES + (".npy",) + PARQUET_SUFFIXES
@@ -476,7 +478,8 @@ class ParquetSource(Source):
                             cols.append(_as_ids(np.asarray(a.to_numpy(zero_copy_only=False)),
                                                 f"{f}: row group {g}: column {col!r}"))
                         yield EdgeChunk(cols[0], cols[1],
-                                        _at_rows(f"{f}: row group {g}", offset))
+                                        _at_rows(f"{f}: row group {g}", offset,
+                                                 "{prefix}, row {row}"))
                         offset += batch.num_rows
                 except InputError:
                     raise
@@ -554,7 +557,7 @@ def _copy_vertex_array(a: np.ndarray, out: Path, dtype, rows: int, check=None,
             part = np.asarray(a[s:s + step]).astype(dtype, copy=False)
             if check is not None:
                 check(part, s)
-            part.tofile(fh)
+            write_array(fh, part)
             for h in hashes:
                 h.update(part)
 
@@ -670,7 +673,7 @@ def ingest(sources: list, out, *, budget: int, features=None, labels=None,
                     loop_rows += int(np.count_nonzero(ch.src == ch.dst))
                     hist.add(ch.src, ch.dst)
                     if not source.rereadable:
-                        np.stack([ch.src, ch.dst], axis=1).tofile(spool)
+                        write_array(spool, np.stack([ch.src, ch.dst], axis=1))
                     bar.update(ch.src.shape[0])
                 notes += source.notes
         bar.close()
@@ -707,6 +710,7 @@ def ingest(sources: list, out, *, budget: int, features=None, labels=None,
         spool_path.unlink()
         bar.close()
 
+        pause_point("ingest sorting")       # tests stop the run here, buckets on disk
         # pass 3: sort each bucket, append the CSR
         idx = index_dtype_for(n)
         indices_path, indptr_path = tmp / "indices.npy", tmp / "indptr.npy"
