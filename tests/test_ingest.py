@@ -24,6 +24,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from helpers import depot_graph, save_graph
 
 from shardtrain.data.extsort import Budget
 from shardtrain.data.graph import csr_from_edges
@@ -31,7 +32,6 @@ from shardtrain.data.graphdir import open_graph_dir, write_graph_dir
 from shardtrain.data.ingest import ingest, open_source
 from shardtrain.data.readers import load_graph
 from shardtrain.errors import InputError
-from helpers import depot_graph, save_graph
 
 ROOT = Path(__file__).resolve().parent.parent
 TINY = 1 << 16          # a budget that makes buckets of ~1 000 keys: many buckets
@@ -437,7 +437,7 @@ def test_survey_split_and_train_of_a_graph_dir_equal_those_of_the_file(tmp_path,
 # ---------------------------------------------------------------- memory, kill, full disk
 
 _MEASURE = textwrap.dedent("""
-    import json, resource, sys
+    import json, sys
     import numpy as np
     from shardtrain.data.ingest import ingest, open_source
     def status(key):
@@ -446,7 +446,7 @@ _MEASURE = textwrap.dedent("""
                 return int(line.split()[1]) * 1024
     before = status("VmRSS")
     r = ingest([open_source(sys.argv[1])], sys.argv[2], budget=int(sys.argv[3]))
-    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
+    peak = status("VmHWM")
     print(json.dumps({"before": before, "peak": peak, "estimate": r.working_bytes,
                       "buckets": r.buckets}))
 """)
@@ -455,8 +455,9 @@ _MEASURE = textwrap.dedent("""
 @pytest.mark.slow
 @pytest.mark.parametrize("budget", [64 << 20, 256 << 20])
 def test_the_memory_estimate_against_the_measured_peak(tmp_path, budget):
-    # ru_maxrss of a subprocess (getrusage(2), Linux: kilobytes); the .npz source is read
-    # from the zip, not mapped, so the peak holds no mapped file pages of the input
+    # VmHWM, the peak resident set of a subprocess (proc(5)): not ru_maxrss, which keeps
+    # the forking parent's peak across execve; the .npz source is read from the zip and
+    # ingest maps no file, so the peak holds no page-cache pages
     rng = np.random.default_rng(0)
     m = 6_000_000
     np.savez(tmp_path / "e.npz", edges=rng.integers(0, 1_000_000, (m, 2)))

@@ -75,6 +75,16 @@ def write_array(fh, a: np.ndarray) -> None:
     fh.write(np.ascontiguousarray(a).data)
 
 
+def read_keys(path: Path, start: int, count: int, dtype=np.int64, offset: int = 0
+              ) -> np.ndarray:
+    """`count` items of a raw array file from item `start` (after `offset` header bytes),
+    read, not mapped: the pages are the process's own, and freed with the array."""
+    dtype = np.dtype(dtype)
+    with open(path, "rb") as fh:
+        fh.seek(offset + start * dtype.itemsize)
+        return np.fromfile(fh, dtype=dtype, count=count)
+
+
 class DegreeHistogram:
     """Keys per block of 2**BLOCK_SHIFT rows, grown as larger ids appear (tiny: 2 KiB per
     million vertices)."""
@@ -186,14 +196,12 @@ def _split(path: Path, keys_cap: int, slice_keys: int) -> list[Path]:
     key cannot be split and is returned as it is, to be counted in slices."""
     total = path.stat().st_size // 8
     lo, hi = None, None
-    mm = np.memmap(path, dtype=np.int64, mode="r")
     for s in range(0, total, slice_keys):
-        part = np.array(mm[s:s + slice_keys])
+        part = read_keys(path, s, slice_keys)
         lo = part.min() if lo is None else min(lo, part.min())
         hi = part.max() if hi is None else max(hi, part.max())
     assert lo is not None and hi is not None
     if lo == hi:
-        del mm
         return [path]
     parts = max(2, 2 * -(-total // keys_cap))
     lo, hi = int(lo), int(hi) + 1
@@ -204,8 +212,7 @@ def _split(path: Path, keys_cap: int, slice_keys: int) -> list[Path]:
     folder.mkdir()
     writer = BucketWriter(folder, bounds)
     for s in range(0, total, slice_keys):
-        writer.add(np.array(mm[s:s + slice_keys]))
-    del mm
+        writer.add(read_keys(path, s, slice_keys))
     path.unlink()
     return [writer.path(i) for i in range(bounds.shape[0] - 1)]
 

@@ -41,6 +41,7 @@ from shardtrain.data.extsort import (
     DegreeHistogram,
     edge_keys,
     plan_buckets,
+    read_keys,
     sort_buckets,
     write_array,
 )
@@ -286,26 +287,35 @@ def _as_ids(a: np.ndarray, where: str) -> np.ndarray:
 
 
 class NpySource(Source):
-    """A raw m x 2 integer array in a .npy file, memory-mapped."""
+    """A raw m x 2 integer array in a .npy file, read in chunks of rows (plain reads, not a
+    map: no page of the file stays in this process)."""
 
     def __init__(self, path: Path):
         super().__init__(path)
         require_regular_file(path)
-        try:
-            self.edges = np.load(path, mmap_mode="r", allow_pickle=False)
-        except (OSError, ValueError, EOFError) as exc:
-            msg = " ".join(str(exc).split()) or type(exc).__name__
-            raise InputError(f"{path}: not a readable .npy array: {msg}") from None
-        e = self.edges
-        if e.ndim != 2 or e.shape[1] != 2 or not np.issubdtype(e.dtype, np.integer):
-            raise InputError(f"{path}: an edge array must be m x 2 integers, got {e.dtype} "
-                             f"with shape {e.shape}")
+        with open_checked(path) as fh:
+            shape, self.dtype, self.fortran = readers._npy_header(fh, str(path))
+            self.offset = fh.tell()
+        if len(shape) != 2 or shape[1] != 2 or not np.issubdtype(self.dtype, np.integer):
+            raise InputError(f"{path}: an edge array must be m x 2 integers, got "
+                             f"{self.dtype} with shape {shape}")
+        self.rows = shape[0]
+        stored = os.stat(path).st_size - self.offset
+        if stored < 2 * self.rows * self.dtype.itemsize:
+            raise InputError(f"{path}: truncated: the header declares {self.rows:,} rows")
 
     def chunks(self, budget):
-        r = budget.chunk_rows
-        for s in range(0, self.edges.shape[0], r):
-            part = _as_ids(np.array(self.edges[s:s + r]), f"{self.path}: rows {s}..")
-            yield EdgeChunk(part[:, 0], part[:, 1],
+        r, m, dt = budget.chunk_rows, self.rows, self.dtype
+        for s in range(0, m, r):
+            k = min(r, m - s)
+            if self.fortran:     # column-major: all first ids, then all second ids
+                src = read_keys(self.path, s, k, dt, self.offset)
+                dst = read_keys(self.path, m + s, k, dt, self.offset)
+            else:
+                pair = read_keys(self.path, 2 * s, 2 * k, dt, self.offset).reshape(k, 2)
+                src, dst = pair[:, 0], pair[:, 1]
+            where = f"{self.path}: rows {s}.."
+            yield EdgeChunk(_as_ids(src, where), _as_ids(dst, where),
                             _at_rows(str(self.path), s))
 
 
@@ -699,14 +709,11 @@ def ingest(sources: list, out, *, budget: int, features=None, labels=None,
                 for ch in source.chunks(plan):
                     writer.add(edge_keys(ch.src, ch.dst, n))
                     bar.update(ch.src.shape[0])
-        spooled = np.memmap(spool_path, dtype=np.int64, mode="r") \
-            if spool_path.stat().st_size else np.zeros(0, np.int64)
-        pairs = spooled.reshape(-1, 2)
-        for s in range(0, pairs.shape[0], plan.chunk_rows):
-            part = np.array(pairs[s:s + plan.chunk_rows])
+        spooled = spool_path.stat().st_size // 16
+        for s in range(0, spooled, plan.chunk_rows):
+            part = read_keys(spool_path, 2 * s, 2 * plan.chunk_rows).reshape(-1, 2)
             writer.add(edge_keys(part[:, 0], part[:, 1], n))
             bar.update(part.shape[0])
-        del spooled, pairs
         spool_path.unlink()
         bar.close()
 
@@ -822,17 +829,17 @@ def _check_vertex_data(v: VertexData, n: int, n_where: str) -> None:
 def _write_vertex_data_and_manifest(tmp: Path, v: VertexData, n: int, result, idx,
                                     sources, notes, plan: Budget, rows: int) -> dict:
     full, structure = _Hash(), _Hash()
-    # the CSR arrays, read back in chunks: both hashes see them as int64 (Graph's dtypes)
-    indptr = np.load(tmp / "indptr.npy", mmap_mode="r", allow_pickle=False)
-    indices = np.load(tmp / "indices.npy", mmap_mode="r", allow_pickle=False)
+    # the CSR arrays, read back in chunks (not mapped): both hashes see them as int64, the
+    # in-memory Graph's dtype
     step = plan.chunk_rows * 4
-    for arr in (indptr, indices):
-        full.array_start(np.dtype(np.int64), arr.shape)
-        for s in range(0, arr.shape[0], step):
-            part = np.asarray(arr[s:s + step], dtype=np.int64)
+    for name, dtype, count in (("indptr", np.int64, n + 1), ("indices", idx, 2 * result.num_edges)):
+        full.array_start(np.dtype(np.int64), (count,))
+        head = len(_npy_header(np.dtype(dtype), (count,)))
+        for s in range(0, count, step):
+            part = read_keys(tmp / f"{name}.npy", s, min(step, count - s), dtype, head)
+            part = part.astype(np.int64, copy=False)
             full.update(part)
             structure.update(part)
-    del indptr, indices
     room = plan.total // 4
     feature_dtype = None
     if v.features is not None:
