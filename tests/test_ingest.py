@@ -384,7 +384,7 @@ def test_a_folder_that_is_not_a_graph_directory(tmp_path, run_cli):
     (tmp_path / "empty").mkdir()
     r = run_cli("survey", tmp_path / "empty", "--workers", "2")
     assert r.returncode == 2
-    assert "a folder without graph.json, not a graph directory" in _one_line(r)
+    assert "is a directory without graph.json, not a graph directory" in _one_line(r)
 
 
 # ---------------------------------------------------------------- the same results by CLI

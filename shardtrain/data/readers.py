@@ -545,7 +545,7 @@ def _load_graph_dir(path: Path, features, labels, input_dim, seed) -> LoadedGrap
     from shardtrain.data.graphdir import MANIFEST, is_graph_dir, open_graph_dir
 
     if not is_graph_dir(path):
-        raise InputError(f"{path}: a folder without {MANIFEST}, not a graph directory "
+        raise InputError(f"{path}: is a directory without {MANIFEST}, not a graph directory "
                          f"(`shardtrain ingest` writes one)")
     gd = open_graph_dir(path)
     n, m = gd.num_vertices, gd.num_edges
