@@ -215,6 +215,25 @@ def test_an_npz_bundle_gives_the_graph_of_the_file(tmp_path, compressed, fortran
     assert m1["structure_fingerprint"] == m2["structure_fingerprint"]
 
 
+@pytest.mark.parametrize("compressed", [False, True])
+def test_bundle_features_stream_in_chunks_and_a_bad_row_is_named(tmp_path, compressed):
+    rng = np.random.default_rng(2)
+    x = rng.normal(size=(3000, 16)).astype(np.float32)
+    x[2345, 3] = np.nan
+    path = tmp_path / "depots.npz"
+    (np.savez_compressed if compressed else np.savez)(
+        path, edges=rng.integers(0, 3000, (5000, 2)), features=x)
+    assert Budget(TINY).total // 4 < x.nbytes / 10            # read in many chunks
+    with pytest.raises(InputError, match=r"depots\.npz: key 'features': row 2345: NaN or "
+                                         r"infinite feature value"):
+        _ingest_file(tmp_path, path)
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["depots.npz"]
+    x[2345, 3] = 0
+    (np.savez_compressed if compressed else np.savez)(
+        path, edges=rng.integers(0, 3000, (5000, 2)), features=x)
+    _same_loaded(load_graph(path), load_graph(_ingest_file(tmp_path, path)))
+
+
 def test_features_and_labels_files_and_masks_made_from_the_seed(tmp_path):
     g = depot_graph(n=400)
     save_graph(tmp_path / "plain.npz", g)
@@ -468,8 +487,9 @@ def test_the_memory_estimate_against_the_measured_peak(tmp_path, budget):
     got = json.loads(r.stdout)
     extra = got["peak"] - got["before"]
     assert got["estimate"] <= budget
-    # the estimate is close: the measured working memory lies within 0.6..1.25 of it
-    assert 0.6 * got["estimate"] <= extra <= 1.25 * got["estimate"], got
+    # the estimate is close: the measured working memory lies within 0.8..1.15 of it
+    # (measured 0.97 and 1.00 when written)
+    assert 0.8 * got["estimate"] <= extra <= 1.15 * got["estimate"], got
 
 
 def test_a_killed_ingest_leaves_nothing_and_a_rerun_works(tmp_path):

@@ -1,6 +1,7 @@
 """Ingest: edges from any source we read, turned into a graph directory in bounded memory.
 
-Sources: `.npz` bundles (the edges member streamed from the zip; its vertex data read whole),
+Sources: `.npz` bundles (the edges and the features streamed from the zip in chunks; the
+labels and masks, O(n), read whole),
 Matrix Market `.mtx` and text edge lists (scanned in chunks by the byte scanner of
 `data.textscan`), raw binary `.npy` edge arrays (m x 2 integers, memory-mapped) and Apache
 Parquet files or folders of them (two integer columns, read row group by row group).
@@ -30,7 +31,7 @@ import sys
 import zipfile
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Callable, Iterator
+from typing import Any, Callable, Iterator
 
 import numpy as np
 
@@ -93,7 +94,7 @@ class EdgeChunk:
 
 @dataclass
 class VertexData:
-    features: np.ndarray | None = None    # an array or a read-only map
+    features: Any = None      # an array, a read-only map or _ZipRows (shape, dtype, [rows])
     features_where: str = ""
     labels: np.ndarray | None = None
     labels_where: str = ""
@@ -320,7 +321,7 @@ class NpySource(Source):
 
 
 class NpzSource(Source):
-    """A bundle: the edges member streamed out of the zip, vertex data read whole."""
+    """A bundle: the edges and features streamed out of the zip, labels and masks read whole."""
 
     def __init__(self, path: Path):
         super().__init__(path)
@@ -344,7 +345,7 @@ class NpzSource(Source):
                                  f"{', '.join(readers.NPZ_KEYS)})")
             if "edges" not in members:
                 raise InputError(f"{path}: missing key 'edges' (an m x 2 integer array)")
-            headers = {}
+            headers, orders = {}, {}
             for key, info in members.items():
                 try:
                     with bundle.open(info) as fh:
@@ -352,10 +353,10 @@ class NpzSource(Source):
                 except (zipfile.BadZipFile, OSError, EOFError) as exc:
                     raise InputError(f"{path}: key {key!r}: damaged ({exc})") from None
                 headers[key] = (shape, dtype)
-                if key == "edges":
-                    self.fortran = fortran
+                orders[key] = fortran
             readers._npz_check_headers(path, headers)
             self.edge_shape, self.edge_dtype = headers["edges"]
+            self.fortran = orders["edges"]
             self.member = members["edges"]
 
             def opener(info):
@@ -369,11 +370,24 @@ class NpzSource(Source):
                     raise InputError(f"{path}: key 'num_vertices' must be one non-negative "
                                      f"integer, got {nv.ravel()[0]}")
                 self.declared_n = int(nv.ravel()[0])
+            # features in row order stream out of the zip when copied (see _ZipRows);
+            # the O(n) labels and masks, and column-major features, are read whole
+            streamed = ("features" in members and not orders["features"]
+                        and len(headers["features"][0]) == 2)
             arrays = {k: readers._npy_read(opener(members[k]), f"{path}: key {k!r}",
                                            members[k].file_size)
-                      for k in ("features", "labels") + MASK_KEYS if k in members}
+                      for k in ("features", "labels") + MASK_KEYS
+                      if k in members and not (k == "features" and streamed)}
         v = self.vertex
-        if "features" in arrays:
+        if streamed:
+            shape, dtype = headers["features"]
+            where = f"{path}: key 'features'"
+            if not (np.issubdtype(dtype, np.floating) or np.issubdtype(dtype, np.integer)
+                    or dtype == np.bool_):
+                raise InputError(f"{where}: features must be numbers, got dtype {dtype}")
+            v.features = _ZipRows(path, members["features"], shape, dtype)
+            v.features_where = where
+        elif "features" in arrays:
             v.features = readers._check_feature_array(arrays["features"],
                                                       f"{path}: key 'features'")
             v.features_where = f"{path}: key 'features'"
@@ -424,6 +438,48 @@ class NpzSource(Source):
         if len(data) != nbytes:
             raise InputError(f"{self.path}: key 'edges': truncated")
         return np.frombuffer(data, dtype=self.edge_dtype)
+
+
+class _ZipRows:
+    """A row-major (n, d) array member of a zip, read in row slices taken in order (what
+    `_copy_vertex_array` asks for): never the whole array in memory."""
+
+    def __init__(self, path: Path, member, shape, dtype):
+        self.path, self.member = path, member
+        self.shape, self.dtype, self.ndim = tuple(shape), np.dtype(dtype), len(shape)
+        self.row_bytes = int(np.prod(self.shape[1:])) * self.dtype.itemsize
+        self._fh: Any = None
+        self._pos = 0
+        self._bundle: Any = None
+
+    def __getitem__(self, rows: slice) -> np.ndarray:
+        start, stop, _ = rows.indices(self.shape[0])
+        where = f"{self.path}: key 'features'"
+        try:
+            if self._fh is None or self._pos != start:
+                # a fresh stream (a compressed member can only be read forward)
+                self.close()
+                self._bundle = zipfile.ZipFile(self.path)
+                self._fh = self._bundle.open(self.member)
+                readers._npy_header(self._fh, where)
+                self._fh.seek(self._fh.tell() + start * self.row_bytes)
+            data = self._fh.read((stop - start) * self.row_bytes)
+        except (zipfile.BadZipFile, OSError, EOFError) as exc:
+            self.close()
+            raise InputError(f"{where}: damaged ({exc})") from None
+        self._pos = stop
+        if len(data) != (stop - start) * self.row_bytes:
+            self.close()
+            raise InputError(f"{where}: truncated")
+        if stop == self.shape[0]:
+            self.close()
+        return np.frombuffer(data, dtype=self.dtype).reshape((stop - start,) + self.shape[1:])
+
+    def close(self) -> None:
+        if self._fh is not None:
+            self._fh.close()
+            self._bundle.close()
+        self._fh, self._pos = None, 0
 
 
 class ParquetSource(Source):
