@@ -492,7 +492,9 @@ def test_the_memory_estimate_against_the_measured_peak(tmp_path, budget):
     assert 0.8 * got["estimate"] <= extra <= 1.15 * got["estimate"], got
 
 
-def test_a_killed_ingest_leaves_nothing_and_a_rerun_works(tmp_path):
+@pytest.mark.parametrize("sig", [signal.SIGKILL, signal.SIGTERM, signal.SIGINT],
+                         ids=lambda s: s.name)
+def test_a_killed_ingest_leaves_nothing_and_a_rerun_works(tmp_path, sig):
     from shardtrain.testing import faults
 
     src, dst = _messy_edges(1)
@@ -511,8 +513,10 @@ def test_a_killed_ingest_leaves_nothing_and_a_rerun_works(tmp_path):
         time.sleep(0.05)
     partial = [p for p in user.iterdir() if p.name.startswith(".g.")]
     assert len(partial) == 1 and any(partial[0].rglob("bucket-*"))    # mid-way, on disk
-    run.send_signal(signal.SIGKILL)
-    run.communicate(timeout=30)
+    run.send_signal(sig)
+    _, err = run.communicate(timeout=30)
+    if sig == signal.SIGINT:         # Ctrl-C: the command's own exit 4, one line
+        assert run.returncode == 4 and err.decode().strip() == "shardtrain: interrupted", err
     deadline = time.monotonic() + 10
     while len(list(user.iterdir())) > 1 and time.monotonic() < deadline:
         time.sleep(0.05)

@@ -24,9 +24,10 @@ import numpy as np
 
 from shardtrain.data.graph import EdgeCleanup
 
-# Working memory per item of each pass (bytes), measured with the benchmark's RSS sampler
-# on 1-10 M rows and rounded up; `Budget` turns a budget into sizes with them.
-BUCKETING_BYTES_PER_ROW = 96     # the chunk's ids, lo/hi, both keys, sort, slices
+# Working memory per item of each pass (bytes), counted from the arrays each pass holds at
+# once; `Budget` turns a budget into sizes with them. tests/test_ingest.py measures the peak
+# (VmHWM) of an ingest that fills its buckets at 0.97-1.00 of `Budget.working_bytes`.
+BUCKETING_BYTES_PER_ROW = 96     # the chunk's ids and bytes read, both keys and their parts
 SORT_BYTES_PER_KEY = 10          # the bucket's keys (8 B, sorted in place) and the kept mask
 SLICE_BYTES_PER_KEY = 48         # per key of a slice: compacted keys, rows, cols, masks
 BLOCK_SHIFT = 12                 # the degree histogram counts blocks of 4096 vertices
