@@ -20,6 +20,7 @@ from shardtrain.errors import (
 COMMANDS = {
     "demo": "demo",
     "synth": "synth",
+    "ingest": "ingest",
     "survey": "survey",
     "split": "split",
     "train": "train",

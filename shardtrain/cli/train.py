@@ -176,6 +176,12 @@ def _check_paths(args) -> None:
                 allow=(("--checkpoint", "--resume"),))
 
 
+def is_graph_dir(path: str) -> bool:
+    from shardtrain.data.graphdir import is_graph_dir as check
+
+    return check(path)
+
+
 def _is_shard_dir(path: str) -> bool:
     return Path(path).is_dir() and (Path(path) / MANIFEST_NAME).is_file()
 
@@ -211,9 +217,9 @@ def _check_options(args) -> tuple[TrainSettings, bool]:
                             ("--features", args.features), ("--labels", args.labels)):
             if given:
                 raise InputError(f"{flag}: not allowed with a shard directory ({args.graph})")
-    elif Path(args.graph).is_dir():
-        raise InputError(f"{args.graph}: a directory without {MANIFEST_NAME} "
-                         f"(not a shard directory)")
+    elif Path(args.graph).is_dir() and not is_graph_dir(args.graph):
+        raise InputError(f"{args.graph}: a directory without {MANIFEST_NAME} or graph.json "
+                         f"(neither a shard directory nor a graph directory)")
     elif args.reference:
         for flag, given in (("--method", args.method), ("--assignment", args.assignment)):
             if given:

@@ -8,7 +8,12 @@
                               "cleanup": {"self_loops", "duplicates"},
                               "structure_fingerprint" (= data.graph.structure_fingerprint of
                               the same edges), "fingerprint" (= data.graph.fingerprint of the
-                              same Graph), "sources": [...], "notes": [...]}
+                              same Graph), "sources": [...], "notes": [...],
+                              "ingest" (from `shardtrain ingest` only): {"rows",
+                              "memory_budget_bytes", "buckets", "largest_bucket_keys"}}
+                              notes: the readers' remarks (a skipped header, ignored zero
+                              entries, replaced vertex data); the cleanup and made-masks
+                              notes are made at load, as `readers.load_graph` does for a file
     GRAPH_DIR/indptr.npy      int64 (n + 1,)
     GRAPH_DIR/indices.npy     index_dtype (2m,), both directions, rows sorted, no loops/dups
     GRAPH_DIR/features.npy    optional (n, d) feature_dtype, vertex order
@@ -20,7 +25,8 @@ maps the arrays read-only, so holding one costs page cache, not process memory;
 `GraphDir.graph()` gives a `Graph` view over the maps (indices converted to int64 only when
 asked: `GraphDir.graph(load=True)` reads everything into memory, for graphs that fit).
 `write_graph_dir` writes a graph held in memory (tests, small graphs, synth); `ingest`
-writes large ones chunk by chunk.
+(`data.ingest`, with the external sort of `data.extsort`) writes large ones chunk by chunk.
+`readers.load_graph` of a directory gives the LoadedGraph of the file it was made from.
 """
 from __future__ import annotations
 

@@ -432,8 +432,12 @@ def load_graph(path: str | os.PathLike, *, features: str | os.PathLike | None = 
     The graph is made undirected and simple (see `csr_from_edges`); num_vertices is the
     bundle's `num_vertices`, the .mtx size, the feature (or label) row count, or else the
     largest id + 1. Missing split masks are made with `make_splits(labels, seed)`.
+    A graph directory (`shardtrain ingest`, `data.graphdir`) gives the same LoadedGraph as
+    the file it was made from.
     """
     path = Path(path)
+    if path.is_dir():
+        return _load_graph_dir(path, features, labels, input_dim, seed)
     suffix = _suffix(path, GRAPH_SUFFIXES, "graph")
     raw = _READERS[suffix](path)
     notes = list(raw.notes)
@@ -539,3 +543,59 @@ def _masks(path: Path, raw: _Raw, n: int, seed: int, notes: list[str]):
         raise InputError(f"{path}: labels given but no training vertex "
                          f"({'train_mask is empty' if raw.masks else 'no vertex is labelled'})")
     return train, val, test
+
+
+def _load_graph_dir(path: Path, features, labels, input_dim, seed) -> LoadedGraph:
+    """GRAPH_DIR read into memory with the in-memory Graph's dtypes: the same Graph, notes
+    (the ingest's reader notes, then these options', the made masks', the cleanup's) and
+    fingerprints as `load_graph` of the file it was ingested from."""
+    from shardtrain.data.graphdir import MANIFEST, is_graph_dir, open_graph_dir
+
+    if not is_graph_dir(path):
+        raise InputError(f"{path}: is a directory without {MANIFEST}, not a graph directory "
+                         f"(`shardtrain ingest` writes one)")
+    gd = open_graph_dir(path)
+    n, m = gd.num_vertices, gd.num_edges
+    stored = gd.features.nbytes if gd.features is not None else 0
+    require_memory(8 * (n + 1) + 16 * m + gd.indices.dtype.itemsize * 2 * m + stored
+                   + LOAD_BYTES_PER_VERTEX_DIR * n,
+                   f"{path}: {n:,} vertices and {m:,} edges")
+    notes = [str(x) for x in gd.manifest.get("notes", [])]
+    raw = _Raw(np.zeros(0, np.int64), np.zeros(0, np.int64), num_vertices=n,
+               features=None if gd.features is None else np.array(gd.features),
+               labels=None if gd.labels is None else np.array(gd.labels),
+               masks={k: np.array(a) for k, a in gd.masks.items()})
+    feat_where, label_where = f"{path}: features.npy", f"{path}: labels.npy"
+    if features is not None:
+        if raw.features is not None:
+            notes.append(f"--features {features} replaces the features in {path}")
+        raw.features, feat_where = load_features(features), f"--features {features}"
+    if labels is not None:
+        if raw.labels is not None:
+            notes.append(f"--labels {labels} replaces the labels in {path}")
+        raw.labels, label_where = load_labels(labels), f"--labels {labels}"
+    where = f"{path}: {n} vertices (declared in {MANIFEST})"
+    if raw.features is not None and raw.features.shape[0] != n:
+        raise InputError(f"{feat_where}: {raw.features.shape[0]} feature rows, but {where}")
+    if raw.labels is not None and raw.labels.shape[0] != n:
+        raise InputError(f"{label_where}: {raw.labels.shape[0]} labels, but {where}")
+    if raw.features is not None and input_dim is not None and raw.features.shape[1] != input_dim:
+        raise InputError(f"--input-dim {input_dim} does not match the "
+                         f"{raw.features.shape[1]} feature columns of {feat_where}")
+    if input_dim is not None and input_dim < 1:
+        raise InputError(f"--input-dim {input_dim}: must be at least 1")
+    masks = _masks(path, raw, n, seed, notes)
+    cleanup = gd.cleanup
+    if cleanup.self_loops or cleanup.duplicates:
+        notes.append(f"dropped {cleanup.self_loops} self-loops (vertices with a loop) and "
+                     f"{cleanup.duplicates} duplicate edges (rows repeating a pair, in either "
+                     f"direction)")
+    graph = Graph(np.array(gd.indptr), gd.indices.astype(np.int64), raw.features, raw.labels,
+                  *masks)
+    dim = graph.input_dim if graph.input_dim is not None else input_dim
+    return LoadedGraph(graph, cleanup, str(path), notes, dim)
+
+
+# loading a graph directory, per vertex: labels, masks and the split drawing (see
+# LOAD_BYTES_PER_LABELLED_VERTEX; counted whether or not there are labels)
+LOAD_BYTES_PER_VERTEX_DIR = 64
