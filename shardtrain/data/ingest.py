@@ -47,19 +47,19 @@ from shardtrain.data.extsort import (
     write_array,
 )
 from shardtrain.data.graph import EdgeCleanup
-from shardtrain.data.graphdir import FORMAT, MANIFEST, VERSION, index_dtype_for
+from shardtrain.data.graphdir import FORMAT, GRAPH_MANIFEST, VERSION, index_dtype_for
 from shardtrain.data.inputs import open_checked, require_regular_file
 from shardtrain.data.masks import MASK_KEYS
 from shardtrain.data.textscan import (
     TextTable,
-    _int_values,
-    _is_float,
-    _is_int,
-    _line_text,
-    _maybe_header,
-    _strip_comment,
-    _tokenize,
+    int_values,
+    is_float_token,
+    is_int_token,
+    line_text,
+    maybe_header,
     show,
+    strip_comment,
+    tokenize,
 )
 from shardtrain.errors import InputError
 from shardtrain.hooks import pause_point
@@ -174,25 +174,25 @@ class TextStream(TextTable):
         self.header_allowed = header_allowed
 
     def blocks(self) -> Iterator[tuple[np.ndarray, np.ndarray]]:
-        token_ok = _is_int if self.kind == "int" else _is_float
+        token_ok = is_int_token if self.kind == "int" else is_float_token
         line_offset = self.first_line
         header_possible = self.header_allowed
         for chunk in _text_chunks(self.path, self.start, self.chunk_bytes):
-            c = _tokenize(chunk)
+            c = tokenize(chunk)
             if header_possible and (~c.skip & (c.counts > 0)).any():
                 header_possible = False
-                h = _maybe_header(c, chunk)
+                h = maybe_header(c, chunk)
                 if h is not None:
                     c.skip[h] = True
                     self.header = (line_offset + h + 1,
-                                   show(_strip_comment(_line_text(chunk, h))))
+                                   show(strip_comment(line_text(chunk, h))))
             data_line = ~c.skip & (c.counts > 0)
             if self.columns is None and data_line.any():
                 self.columns = int(c.counts[np.argmax(data_line)])
             keep = data_line[c.line]
             self._check_chunk(c, chunk, data_line, keep, line_offset, token_ok)
             if self.kind == "int":
-                values = _int_values(c, keep)
+                values = int_values(c, keep)
             else:
                 values = self._float_values(c, chunk, data_line, line_offset, token_ok)
             lines = np.flatnonzero(data_line) + line_offset + 1
@@ -793,7 +793,7 @@ def ingest(sources: list, out, *, budget: int, features=None, labels=None,
         cleanup = result.cleanup      # its note is made when the directory is loaded
         manifest = _write_vertex_data_and_manifest(tmp, vertex, n, result, idx, sources,
                                                    notes, plan, rows)
-        write_json_atomic(tmp / MANIFEST, manifest)
+        write_json_atomic(tmp / GRAPH_MANIFEST, manifest)
     working = plan.working_bytes(rows, result.largest_bucket)
     return IngestResult(n, result.num_edges, rows, cleanup, result.buckets,
                         result.largest_bucket, working, manifest)

@@ -549,10 +549,10 @@ def _load_graph_dir(path: Path, features, labels, input_dim, seed) -> LoadedGrap
     """GRAPH_DIR read into memory with the in-memory Graph's dtypes: the same Graph, notes
     (the ingest's reader notes, then these options', the made masks', the cleanup's) and
     fingerprints as `load_graph` of the file it was ingested from."""
-    from shardtrain.data.graphdir import MANIFEST, is_graph_dir, open_graph_dir
+    from shardtrain.data.graphdir import GRAPH_MANIFEST, is_graph_dir, open_graph_dir
 
     if not is_graph_dir(path):
-        raise InputError(f"{path}: is a directory without {MANIFEST}, not a graph directory "
+        raise InputError(f"{path}: is a directory without {GRAPH_MANIFEST}, not a graph directory "
                          f"(`shardtrain ingest` writes one)")
     gd = open_graph_dir(path)
     n, m = gd.num_vertices, gd.num_edges
@@ -569,21 +569,23 @@ def _load_graph_dir(path: Path, features, labels, input_dim, seed) -> LoadedGrap
     if features is not None:
         if raw.features is not None:
             notes.append(f"--features {features} replaces the features in {path}")
-        raw.features, feat_where = load_features(features), f"--features {features}"
+        raw.features = load_features(features)
+        feat_where = f"{option('features')} {features}"
     if labels is not None:
         if raw.labels is not None:
             notes.append(f"--labels {labels} replaces the labels in {path}")
-        raw.labels, label_where = load_labels(labels), f"--labels {labels}"
-    where = f"{path}: {n} vertices (declared in {MANIFEST})"
+        raw.labels, label_where = load_labels(labels), f"{option('labels')} {labels}"
+    where = f"{path}: {n} vertices (declared in {GRAPH_MANIFEST})"
     if raw.features is not None and raw.features.shape[0] != n:
         raise InputError(f"{feat_where}: {raw.features.shape[0]} feature rows, but {where}")
     if raw.labels is not None and raw.labels.shape[0] != n:
         raise InputError(f"{label_where}: {raw.labels.shape[0]} labels, but {where}")
     if raw.features is not None and input_dim is not None and raw.features.shape[1] != input_dim:
-        raise InputError(f"--input-dim {input_dim} does not match the "
-                         f"{raw.features.shape[1]} feature columns of {feat_where}")
+        raise ParameterError("input_dim", f"does not match the {raw.features.shape[1]} "
+                                          f"feature columns of {feat_where}",
+                             value=input_dim, sep=" ")
     if input_dim is not None and input_dim < 1:
-        raise InputError(f"--input-dim {input_dim}: must be at least 1")
+        raise ParameterError("input_dim", "must be at least 1", value=input_dim)
     masks = _masks(path, raw, n, seed, notes)
     cleanup = gd.cleanup
     if cleanup.self_loops or cleanup.duplicates:

@@ -84,7 +84,7 @@ def _blank_comments(b: np.ndarray) -> np.ndarray:
     return out
 
 
-def _tokenize(chunk: bytes) -> _Chunk:
+def tokenize(chunk: bytes) -> _Chunk:
     b = _blank_comments(np.frombuffer(chunk, dtype=np.uint8))
     sep = _SEP[b]
     body = ~sep
@@ -124,7 +124,7 @@ def _empty_field_lines(c: _Chunk, data_line: np.ndarray) -> np.ndarray:
     return comma_line[empty & data_line[comma_line]]
 
 
-def _line_text(chunk: bytes, index: int) -> bytes:
+def line_text(chunk: bytes, index: int) -> bytes:
     """Line `index` (0-based) of a chunk, for error messages and header checks."""
     pos = 0
     for _ in range(index):
@@ -137,11 +137,11 @@ def show(raw: bytes, limit: int = 40) -> str:
     return repr(text if len(text) <= limit else text[:limit] + "...")
 
 
-def _is_int(tok: bytes) -> bool:
+def is_int_token(tok: bytes) -> bool:
     return re.fullmatch(rb"[+-]?[0-9]+", tok) is not None
 
 
-def _is_float(tok: bytes) -> bool:
+def is_float_token(tok: bytes) -> bool:
     if b"_" in tok:        # Python's float() takes 1_000; numpy's readers do not
         return False
     try:
@@ -151,7 +151,7 @@ def _is_float(tok: bytes) -> bool:
     return True
 
 
-def _strip_comment(raw: bytes) -> bytes:
+def strip_comment(raw: bytes) -> bytes:
     """The line up to its first '#' or '%' (a comment runs to the end of the line)."""
     cut = min((i for i in (raw.find(b"#"), raw.find(b"%")) if i >= 0), default=len(raw))
     return raw[:cut]
@@ -165,16 +165,16 @@ def _is_header(raw: bytes) -> bool:
     """The header rule, one for every text table and both readers: the first data line is a
     header when none of its fields looks like a number (`source,target`). `0 1 # note` is
     data; `1e3 5` or `0x10 5` is data too, and then an error naming the line."""
-    toks = [t for t in _SPLIT.split(_strip_comment(raw)) if t]
+    toks = [t for t in _SPLIT.split(strip_comment(raw)) if t]
     return bool(toks) and not any(_NUMBER_LIKE.match(t) for t in toks)
 
 
-def _maybe_header(c: _Chunk, chunk: bytes) -> int | None:
+def maybe_header(c: _Chunk, chunk: bytes) -> int | None:
     """Index of the first data line if it is a header (see `_is_header`)."""
     data = np.flatnonzero(~c.skip & (c.counts > 0))
     if data.shape[0] == 0:
         return None
-    if _is_header(_line_text(chunk, int(data[0]))):
+    if _is_header(line_text(chunk, int(data[0]))):
         return int(data[0])
     return None
 
@@ -186,7 +186,7 @@ def _first_data_line(path: Path, after: int = 0) -> tuple[int, bytes] | None:
         for line_no, raw in enumerate(fh, start=1):
             if line_no == 1 and raw.startswith(b"\xef\xbb\xbf"):
                 raw = raw[3:]
-            text = _strip_comment(raw).strip()
+            text = strip_comment(raw).strip()
             if line_no > after and any(_SPLIT.split(text)):
                 return line_no, text
     return None
@@ -204,7 +204,7 @@ def _comment_char(path: Path) -> str:
     return "#"
 
 
-def _int_values(c: _Chunk, keep: np.ndarray) -> np.ndarray:
+def int_values(c: _Chunk, keep: np.ndarray) -> np.ndarray:
     """Parse the kept tokens (already checked to be [+-]?digits, <= 18 digits) as int64."""
     starts, ends = c.starts[keep], c.ends[keep]
     neg = c.b[starts] == ord("-")
@@ -279,27 +279,27 @@ class TextTable:
         raise InputError(f"{self.path}:{line_no}: {message}")
 
     def _read(self) -> tuple[np.ndarray, int]:
-        token_ok = _is_int if self.kind == "int" else _is_float
+        token_ok = is_int_token if self.kind == "int" else is_float_token
         parts: list[np.ndarray] = []
         rows = 0
         line_offset = 0
         header_possible = True
         for chunk in _chunks(self.path):
-            c = _tokenize(chunk)
+            c = tokenize(chunk)
             if header_possible and (~c.skip & (c.counts > 0)).any():
                 header_possible = False
-                h = _maybe_header(c, chunk)
+                h = maybe_header(c, chunk)
                 if h is not None:
                     c.skip[h] = True
                     self.header = (line_offset + h + 1,
-                                   show(_strip_comment(_line_text(chunk, h))))
+                                   show(strip_comment(line_text(chunk, h))))
             data_line = ~c.skip & (c.counts > 0)
             if self.columns is None and data_line.any():
                 self.columns = int(c.counts[np.argmax(data_line)])
             keep = data_line[c.line]
             self._check_chunk(c, chunk, data_line, keep, line_offset, token_ok)
             if self.kind == "int":
-                parts.append(_int_values(c, keep))
+                parts.append(int_values(c, keep))
             else:
                 parts.append(self._float_values(c, chunk, data_line, line_offset, token_ok))
             rows += int(data_line.sum())
@@ -335,18 +335,18 @@ class TextTable:
         if bad.shape[0] == 0:
             return
         first = int(bad.min())
-        raw = _line_text(chunk, first)
+        raw = line_text(chunk, first)
         self._explain(raw, line_offset + first + 1, token_ok)
 
     def _explain(self, raw: bytes, line_no: int, token_ok):
-        toks = [t for t in _SPLIT.split(_strip_comment(raw)) if t]
+        toks = [t for t in _SPLIT.split(strip_comment(raw)) if t]
         for t in toks:
             if not token_ok(t):
                 word = "an integer" if self.kind == "int" else "a number"
                 self._fail(line_no, f"{show(t)} is not {word} ({self.what})")
         if self.kind == "int" and any(len(t.lstrip(b"+-")) > _MAX_ID_DIGITS for t in toks):
             self._fail(line_no, f"number too large ({self.what})")
-        if _EMPTY_FIELD.search(_strip_comment(raw)):
+        if _EMPTY_FIELD.search(strip_comment(raw)):
             self._fail(line_no, f"empty field: nothing between two commas, or before the "
                                 f"first ({self.what})")
         self._fail(line_no, f"expected {self.columns} column{'s' * (self.columns != 1)}, "
@@ -372,8 +372,8 @@ class TextTable:
         if values is None or values.shape[0] != expected:
             # slow path, only on a bad file: name the first line with an unparsable token
             for i in np.flatnonzero(data_line):
-                raw = _line_text(chunk, int(i))
-                if not all(token_ok(t) for t in _SPLIT.split(_strip_comment(raw)) if t):
+                raw = line_text(chunk, int(i))
+                if not all(token_ok(t) for t in _SPLIT.split(strip_comment(raw)) if t):
                     self._explain(raw, line_offset + int(i) + 1, token_ok)
             self._fail(line_offset + 1, f"could not parse the numbers ({self.what})")
         return values
@@ -383,7 +383,7 @@ class TextTable:
         seen = 0
         line_offset = 0
         for i, chunk in enumerate(_chunks(self.path)):
-            c = _tokenize(chunk)
+            c = tokenize(chunk)
             if i == 0 and self.header is not None:
                 c.skip[self.header[0] - 1] = True
             data = np.flatnonzero(~c.skip & (c.counts > 0))
