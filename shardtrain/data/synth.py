@@ -235,9 +235,9 @@ class ParcelStream:
     but not the same draws: the in-memory version tops its routes up to an exact count of
     distinct routes, this one draws a few more routes than that in chunks (`route_chunks`,
     the excess estimated by `draws_needed`) and leaves repeats to the sort that builds the
-    CSR (`data.ingest`), so the route count is close to, not exactly, the in-memory one. Feature rows are
-    drawn per block of vertices from a generator keyed by (seed, block), so any block can be
-    made on its own and in any order.
+    CSR (`data.ingest`), so the route count is close to, not exactly, the in-memory one.
+    Feature rows are drawn per block of vertices from a generator keyed by (seed, block), so
+    any block can be made on its own and in any order.
 
     Memory: O(n) small arrays (labels int16, positions int32 while n < 2**31, propensity sums
     float64) and O(chunk) scratch; no O(m) array.
