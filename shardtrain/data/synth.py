@@ -53,6 +53,18 @@ MAX_SIGNAL = 1000.0
 
 def _check(vertices, avg_degree, classes, features, homophily, degree_exponent, signal,
            seed=0):
+    """Refuse bad options at the door, then a network too large for this machine's memory."""
+    _check_values(vertices, avg_degree, classes, features, homophily, degree_exponent, signal,
+                  seed)
+    routes = min(int(round(vertices * avg_degree / 2)), vertices * (vertices - 1) // 2)
+    require_memory(synth_bytes(vertices, routes, features),
+                   f"{option('vertices')} {vertices} {option('avg_degree')} {avg_degree:g} "
+                   f"{option('features')} {features}",
+                   what="generate the network")
+
+
+def _check_values(vertices, avg_degree, classes, features, homophily, degree_exponent, signal,
+                  seed=0):
     """Refuse bad options at the door, naming them: NaN and infinities included (every
     comparison with NaN is false, so each test is written to fail for it)."""
     for param, value in (("avg_degree", avg_degree), ("homophily", homophily),
@@ -78,11 +90,6 @@ def _check(vertices, avg_degree, classes, features, homophily, degree_exponent, 
         raise ParameterError("signal", f"must be between 0 and {MAX_SIGNAL:g}", value=signal)
     if seed < 0:
         raise ParameterError("seed", "must be >= 0", value=seed)
-    routes = min(int(round(vertices * avg_degree / 2)), vertices * (vertices - 1) // 2)
-    require_memory(synth_bytes(vertices, routes, features),
-                   f"{option('vertices')} {vertices} {option('avg_degree')} {avg_degree:g} "
-                   f"{option('features')} {features}",
-                   what="generate the network")
 
 
 class _RouteSampler:
@@ -218,3 +225,102 @@ def same_role_fraction(graph: Graph) -> float:
     if rows.shape[0] == 0:
         return 0.0
     return float(np.mean(graph.labels[rows] == graph.labels[graph.indices]))
+
+
+# --------------------------------------------------------------------------- streaming
+
+_FEATURE_BLOCK = 1 << 18   # feature rows drawn per block: bounds scratch memory
+
+
+class ParcelStream:
+    """The parcel network of `parcel_network`, drawn in pieces for graphs larger than memory.
+
+    The same generator family and parameters (roles from a Dirichlet share, power-law
+    propensities, routes from `_RouteSampler`, class-mean features, the Kipf & Welling split),
+    but not the same draws: the in-memory version tops its routes up to an exact count of
+    distinct routes, this one draws a few more routes than that in chunks (`route_chunks`,
+    the excess estimated by `draws_needed`) and leaves repeats to the sort that builds the
+    CSR (`data.ingest`), so the route count is close to, not exactly, the in-memory one.
+    Feature rows are drawn per block of vertices from a generator keyed by (seed, block), so
+    any block can be made on its own and in any order.
+
+    Memory: O(n) small arrays (labels int16, positions int32 while n < 2**31, propensity sums
+    float64) and O(chunk) scratch; no O(m) array.
+    """
+
+    def __init__(self, vertices: int, avg_degree: float, classes: int, features: int,
+                 seed: int, *, homophily: float = 0.8, degree_exponent: float = 2.5,
+                 signal: float = 1.5):
+        _check_values(vertices, avg_degree, classes, features, homophily, degree_exponent,
+                      signal, seed)
+        self.num_vertices, self.classes, self.features, self.seed = (
+            int(vertices), int(classes), int(features), int(seed))
+        n = self.num_vertices
+        rng = np.random.default_rng(seed)
+        share = rng.dirichlet(np.full(classes, 4.0))
+        label_type = np.int16 if classes < 2**15 else np.int64
+        self.labels = rng.choice(classes, size=n, p=share).astype(label_type)
+        theta = degree_propensities(n, avg_degree, degree_exponent, rng)
+        self._sampler = _RouteSampler(self.labels, theta, classes, homophily, rng)
+        del theta
+        if n < 2**31:                         # positions fit int32: half the memory
+            self._sampler.by_class = self._sampler.by_class.astype(np.int32)
+        self.target_routes = min(int(round(n * avg_degree / 2)), n * (n - 1) // 2)
+        self._means = (rng.standard_normal((classes, features))
+                       * (signal / np.sqrt(features))).astype(np.float32)
+
+    def draws_needed(self, pilot: int = _EDGE_CHUNK) -> int:
+        """Routes to draw so that about `target_routes` stay distinct. The in-memory version
+        tops up after deduplicating, which a stream cannot do; instead a pilot sample of
+        `pilot` draws (its own generator, keyed by the seed) measures the repeat fraction f
+        there. Repeats grow about linearly with the number of draws while they are rare (each
+        new draw meets a pair already drawn with probability ~ draws x sum p_uv^2), so at the
+        target the fraction is about f x target / pilot, and we draw target / (1 - that)."""
+        target = self.target_routes
+        pilot = min(pilot, target)
+        if pilot < 2:
+            return target
+        saved, self._sampler.rng = self._sampler.rng, np.random.default_rng([self.seed, 2])
+        try:
+            u, v = self._sampler.draw(pilot)
+        finally:
+            self._sampler.rng = saved
+        keep = u != v
+        n = np.int64(self.num_vertices)
+        keys = np.sort(np.minimum(u[keep], v[keep]).astype(np.int64) * n
+                       + np.maximum(u[keep], v[keep]))
+        repeats = int(np.count_nonzero(keys[1:] == keys[:-1]))
+        fraction = min(0.5, repeats / pilot * target / pilot)
+        return int(round(target / (1.0 - fraction)))
+
+    def route_chunks(self, chunk: int = _EDGE_CHUNK):
+        """(lo, hi) int64 arrays of `draws_needed()` routes in all, lo < hi (no loops;
+        repeats possible: the sort that builds the CSR drops them), `chunk` draws at a
+        time."""
+        total = self.draws_needed()
+        for start in range(0, total, chunk):
+            u, v = self._sampler.draw(min(chunk, total - start))
+            keep = u != v
+            u, v = u[keep].astype(np.int64), v[keep].astype(np.int64)
+            yield np.minimum(u, v), np.maximum(u, v)
+
+    def feature_rows(self, start: int, stop: int) -> np.ndarray:
+        """Features of vertices start..stop-1 (float32), the same whichever blocks are asked:
+        each _FEATURE_BLOCK-row block has its own generator keyed by (seed, block)."""
+        if not 0 <= start <= stop <= self.num_vertices:
+            raise ValueError(f"feature_rows({start}, {stop}): outside 0..{self.num_vertices}")
+        out = np.empty((stop - start, self.features), dtype=np.float32)
+        first = start // _FEATURE_BLOCK
+        for block in range(first, (stop - 1) // _FEATURE_BLOCK + 1 if stop > start else first):
+            lo = block * _FEATURE_BLOCK
+            hi = min(lo + _FEATURE_BLOCK, self.num_vertices)
+            rng = np.random.default_rng([self.seed, 1, block])
+            x = rng.standard_normal((hi - lo, self.features), dtype=np.float32)
+            x += self._means[self.labels[lo:hi]]
+            a, b = max(start, lo), min(stop, hi)
+            out[a - start:b - start] = x[a - lo:b - lo]
+        return out
+
+    def masks(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """(train, val, test) by the same protocol and seed as `parcel_network`."""
+        return make_splits(self.labels.astype(np.int64), self.seed)
