@@ -81,3 +81,47 @@ def test_feature_blocks_are_the_same_whichever_way_asked(both):
 def test_bad_options_named():
     with pytest.raises(InputError, match="avg_degree"):
         ParcelStream(100, float("nan"), 3, 4, 0)
+
+
+def _synth_dir(tmp_path, name, budget, seed=SEED):
+    import subprocess
+    import sys
+
+    out = tmp_path / name
+    done = subprocess.run([sys.executable, "-m", "shardtrain", "synth", "--out", str(out),
+                           "--vertices", "20000", "--avg-degree", "8", "--classes", "4",
+                           "--features", "3", "--seed", str(seed), "--memory-budget", budget],
+                          capture_output=True, text=True)
+    return out, done
+
+
+def test_synth_out_graph_dir_through_the_cli(tmp_path):
+    from shardtrain.data.graphdir import open_graph_dir
+
+    a, done = _synth_dir(tmp_path, "a", "64M")
+    assert done.returncode == 0, done.stderr
+    assert "wrote" in done.stdout
+    b, _ = _synth_dir(tmp_path, "b", "1M")        # many sort buckets
+    ga, gb = open_graph_dir(a), open_graph_dir(b)
+    # the same seed gives the same graph whatever the budget (the draws do not follow it)
+    assert ga.manifest["fingerprint"] == gb.manifest["fingerprint"]
+    assert gb.manifest["ingest"]["buckets"] > 1
+    stream = ParcelStream(20000, 8, 4, 3, SEED)
+    assert np.array_equal(ga.labels, stream.labels)
+    assert np.array_equal(ga.features, stream.feature_rows(0, 20000))
+    assert np.array_equal(ga.masks["train_mask"], stream.masks()[0])
+    assert abs(ga.num_edges - stream.target_routes) <= 0.01 * stream.target_routes
+    c, _ = _synth_dir(tmp_path, "c", "64M", seed=SEED + 1)
+    assert open_graph_dir(c).manifest["fingerprint"] != ga.manifest["fingerprint"]
+
+
+def test_synth_wants_exactly_one_output(tmp_path):
+    import subprocess
+    import sys
+
+    for extra in ([], [str(tmp_path / "x.npz"), "--out", str(tmp_path / "d")]):
+        done = subprocess.run([sys.executable, "-m", "shardtrain", "synth", *extra],
+                              capture_output=True, text=True)
+        assert done.returncode == 2
+        assert done.stderr.count("\n") == 1 and "give one output" in done.stderr
+    assert not (tmp_path / "d").exists() and not (tmp_path / "x.npz").exists()

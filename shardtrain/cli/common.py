@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 import re
+import sys
 
 from shardtrain import defaults
 from shardtrain.data.readers import LoadedGraph, load_graph
@@ -169,3 +170,27 @@ def parse_name_list(text: str, option: str) -> list[str]:
 # earlier private names, still imported by some commands
 _int = int_type
 _positive_int = positive_int_type
+
+
+class _Bar:
+    """A named tqdm bar on a terminal (stderr a tty); nothing otherwise."""
+
+    def __init__(self, name: str, total: int, unit: str):
+        from tqdm import tqdm
+
+        self.bar = tqdm(total=total or None, desc=name, unit=unit, unit_scale=True,
+                        file=sys.stderr, leave=False)
+
+    def update(self, k: int) -> None:
+        self.bar.update(k)
+
+    def close(self) -> None:
+        self.bar.close()
+
+
+def terminal_progress():
+    """A progress factory (name, total, unit) -> bar for the long passes: named tqdm bars
+    when stderr is a terminal, nothing otherwise."""
+    from shardtrain.data.ingest import no_progress
+
+    return _Bar if sys.stderr.isatty() else no_progress

@@ -10,12 +10,14 @@ the graph. Nothing is left behind when it fails or is killed.
 """
 from __future__ import annotations
 
-import sys
 import time
 from pathlib import Path
 
-from shardtrain.cli.common import add_memory_budget_argument, default_memory_budget
-from shardtrain.data.ingest import ProgressBar
+from shardtrain.cli.common import (
+    add_memory_budget_argument,
+    default_memory_budget,
+    terminal_progress,
+)
 from shardtrain.errors import InputError
 
 
@@ -37,24 +39,8 @@ def add_arguments(parser) -> None:
                         help="replace GRAPH_DIR if it exists (only once the new one is complete)")
 
 
-class _Bar(ProgressBar):
-    """A named tqdm bar on a terminal (stderr a tty); nothing otherwise."""
-
-    def __init__(self, name: str, total: int, unit: str):
-        from tqdm import tqdm
-
-        self.bar = tqdm(total=total or None, desc=name, unit=unit, unit_scale=True,
-                        file=sys.stderr, leave=False)
-
-    def update(self, k: int) -> None:
-        self.bar.update(k)
-
-    def close(self) -> None:
-        self.bar.close()
-
-
 def run(args) -> int:
-    from shardtrain.data.ingest import Progress, ingest, no_progress, open_source
+    from shardtrain.data.ingest import Progress, ingest, open_source
     from shardtrain.files import check_paths
     from shardtrain.units import human_bytes
 
@@ -70,7 +56,7 @@ def run(args) -> int:
     budget = args.memory_budget or default_memory_budget()
     start = time.perf_counter()
     sources = [open_source(p, args.src, args.dst) for p in args.sources]
-    progress: Progress = _Bar if sys.stderr.isatty() else no_progress
+    progress: Progress = terminal_progress()
     result = ingest(sources, out, budget=budget, features=args.features, labels=args.labels,
                     overwrite=args.overwrite, progress=progress)
     for note in result.manifest["notes"]:

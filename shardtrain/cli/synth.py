@@ -10,14 +10,19 @@ import time
 from pathlib import Path
 
 from shardtrain import defaults
-from shardtrain.cli.common import float_type, int_type
+from shardtrain.cli.common import add_memory_budget_argument, float_type, int_type
 from shardtrain.data.synth import edge_array, parcel_network, same_role_fraction
 from shardtrain.errors import InputError
 from shardtrain.files import check_paths, save_npz_atomic
 
 
 def add_arguments(parser) -> None:
-    parser.add_argument("out", metavar="OUT.npz", help="bundle to write")
+    parser.add_argument("out", metavar="OUT.npz", nargs="?",
+                        help="bundle to write (or --out GRAPH_DIR)")
+    parser.add_argument("--out", dest="out_dir", metavar="GRAPH_DIR",
+                        help="write a graph directory instead, drawn in pieces and sorted on "
+                             "disk (for networks larger than memory; same generator, not the "
+                             "same draws as OUT.npz)")
     d = defaults
     parser.add_argument("--vertices", type=int_type("--vertices"), default=d.SYNTH_VERTICES,
                         help=f"depots (default {d.SYNTH_VERTICES})")
@@ -40,9 +45,14 @@ def add_arguments(parser) -> None:
                              f"(default {d.DEGREE_EXPONENT:g})")
     parser.add_argument("--signal", type=float_type("--signal"), default=d.SIGNAL,
                         help=f"strength of the role signal in the features (default {d.SIGNAL:g})")
+    add_memory_budget_argument(parser)
 
 
 def run(args) -> int:
+    if (args.out is None) == (args.out_dir is None):
+        raise InputError("give one output: OUT.npz or --out GRAPH_DIR")
+    if args.out_dir is not None:
+        return _run_dir(args)
     out = Path(args.out)
     if out.suffix.lower() != ".npz":
         raise InputError(f"{out}: the output must be an .npz file")
@@ -59,5 +69,31 @@ def run(args) -> int:
     print(f"wrote {out}: {graph.num_vertices:,} depots, {graph.num_edges:,} routes, "
           f"{graph.num_classes} roles, {graph.input_dim} features, same-role routes "
           f"{same_role_fraction(graph):.3f}, max routes per depot {int(graph.degrees.max())} "
+          f"({time.perf_counter() - start:.1f} s)")
+    return 0
+
+
+def _run_dir(args) -> int:
+    """synth --out GRAPH_DIR: the streamed network through ingest's external sort."""
+    from shardtrain.cli.common import default_memory_budget, terminal_progress
+    from shardtrain.data.synth import ParcelStream, write_parcel_dir
+    from shardtrain.units import human_bytes
+
+    out = Path(args.out_dir)
+    if out.exists() and not out.is_dir():
+        raise InputError(f"--out {out}: exists and is not a directory")
+    if out.is_dir() and any(out.iterdir()):
+        raise InputError(f"--out {out}: directory exists and is not empty")
+    check_paths(replaced_dirs={"--out": out})
+    budget = args.memory_budget or default_memory_budget()
+    start = time.perf_counter()
+    stream = ParcelStream(args.vertices, args.avg_degree, args.classes, args.features,
+                          args.seed, homophily=args.homophily,
+                          degree_exponent=args.degree_exponent, signal=args.signal)
+    result = write_parcel_dir(stream, out, budget=budget, progress=terminal_progress())
+    print(f"wrote {out}/: {result.num_vertices:,} depots, {result.num_edges:,} routes, "
+          f"{args.classes} roles, {args.features} features; {result.cleanup.duplicates:,} "
+          f"repeated draws dropped; {result.buckets} sort bucket"
+          f"{'s' * (result.buckets != 1)} within {human_bytes(budget)} "
           f"({time.perf_counter() - start:.1f} s)")
     return 0

@@ -298,6 +298,9 @@ class ParcelStream:
         repeats possible: the sort that builds the CSR drops them), `chunk` draws at a
         time."""
         total = self.draws_needed()
+        # a generator of its own, keyed by the seed: every call draws the same routes (the
+        # ingest reads its sources twice)
+        self._sampler.rng = np.random.default_rng([self.seed, 3])
         for start in range(0, total, chunk):
             u, v = self._sampler.draw(min(chunk, total - start))
             keep = u != v
@@ -324,3 +327,46 @@ class ParcelStream:
     def masks(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """(train, val, test) by the same protocol and seed as `parcel_network`."""
         return make_splits(self.labels.astype(np.int64), self.seed)
+
+
+class _FeatureRows:
+    """The stream's features as the (n, d) float32 array ingest copies in row slices."""
+
+    def __init__(self, stream: ParcelStream):
+        self.stream = stream
+        self.shape = (stream.num_vertices, stream.features)
+        self.dtype = np.dtype(np.float32)
+        self.ndim = 2
+
+    def __getitem__(self, rows: slice) -> np.ndarray:
+        start, stop, _ = rows.indices(self.shape[0])
+        return self.stream.feature_rows(start, stop)
+
+
+def write_parcel_dir(stream: ParcelStream, out, *, budget: int, overwrite: bool = False,
+                     progress=None):
+    """Write the streamed network as a graph directory through ingest's external sort
+    (routes drawn twice, once per pass, the same both times; features, labels and masks
+    copied in row chunks). Returns ingest's `IngestResult`."""
+    from pathlib import Path
+
+    from shardtrain.data import ingest as ing
+
+    class _Parcel(ing.Source):
+        declared_n = stream.num_vertices
+
+        def chunks(self, budget_plan):
+            # a fixed chunk, not one from the budget: the draws (so the graph) depend on it
+            where = f"{self.path}"
+            for lo, hi in stream.route_chunks(chunk=_EDGE_CHUNK):
+                yield ing.EdgeChunk(lo, hi, lambda row: f"{where}: route {row}")
+
+    source = _Parcel(Path(f"synth:parcel-network(seed={stream.seed})"))
+    train, val, test = stream.masks()
+    source.vertex = ing.VertexData(
+        features=_FeatureRows(stream), features_where="synth features",
+        labels=stream.labels, labels_where="synth labels",
+        masks={"train_mask": train, "val_mask": val, "test_mask": test},
+        masks_where="synth masks")
+    return ing.ingest([source], out, budget=budget, overwrite=overwrite,
+                      progress=progress or ing.no_progress)
