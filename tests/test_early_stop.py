@@ -147,7 +147,7 @@ def test_partitioned_run_stops_at_the_reference_epoch(k, digits_shards, early_re
 
 
 def _partitioned_plan(shard_dir, settings, folder, k):
-    from shardtrain.train.coordinator import model_dims_of, shard_dir_facts
+    from shardtrain.train.accounting import model_dims_of, shard_dir_facts
 
     identity = ck.run_identity(settings, workers=k,
                                dims=model_dims_of(shard_dir_facts(shard_dir), settings),

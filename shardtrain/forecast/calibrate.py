@@ -141,8 +141,8 @@ def _time_row_moves(dtype, rng) -> dict:
     nbytes = buf.nbytes
     gather = _best_time(lambda: np.take(src, idx, axis=0, out=buf), repeats=5, budget_s=0.2)
     try:     # the worker's own way; a plain indexed add if the worker changes it
-        from shardtrain.train.worker import _selection
-        select = _selection(idx, n, dtype)
+        from shardtrain.train.halo import selection_matrix
+        select = selection_matrix(idx, n, dtype)
 
         def scatter_add():
             add_csr_product(select, buf, src)
