@@ -516,8 +516,8 @@ def transport_copy_speed(calibration: dict) -> float:
 def _shard_step_in_process(shard_dir: str, worker: int, settings_dict: dict,
                            num_classes: int, epochs: int) -> dict:
     from shardtrain.plan.shards import load_shard
+    from shardtrain.train.processes import pin_blas_threads
     from shardtrain.train.settings import TrainSettings
-    from shardtrain.train.worker import pin_blas_threads
 
     pin_blas_threads()
     return shard_step_seconds(load_shard(shard_dir, worker),

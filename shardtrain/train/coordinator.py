@@ -54,8 +54,9 @@ log = logging.getLogger(__name__)
 # given, like a spawned child, without paying the interpreter start per worker.
 START_METHOD: Final = "forkserver"
 PRELOAD = ["numpy", "scipy.sparse", "msgpack", "threadpoolctl", "shardtrain.train.worker",
-           "shardtrain.train.worker_process", "shardtrain.train.halo", "shardtrain.train.codec",
-           "shardtrain.train.model", "shardtrain.plan.shards", "shardtrain.transport.meter",
+           "shardtrain.train.processes", "shardtrain.train.worker_process",
+           "shardtrain.train.halo", "shardtrain.train.codec", "shardtrain.train.model",
+           "shardtrain.plan.shards", "shardtrain.transport.meter",
            "shardtrain.transport.pipes"]
 ERROR_GRACE_S = 0.5          # after a reported error, time to notice a silent death
 POLL_S = 0.2                 # the watch loop wakes at least this often

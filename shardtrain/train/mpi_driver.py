@@ -40,8 +40,9 @@ from shardtrain.train.codec import (
     pack_array,
     unpack_array,
 )
+from shardtrain.train.processes import pin_blas_threads
 from shardtrain.train.settings import TrainSettings
-from shardtrain.train.worker import pin_blas_threads, run_worker
+from shardtrain.train.worker import run_worker
 
 ROOT = 0
 TAG_START = 11          # rank 0 -> all: settings, shard facts, initial weights (or stop)

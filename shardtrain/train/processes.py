@@ -1,6 +1,6 @@
-"""Process-manager pieces shared by the pipes coordinator and the MPI driver: exit
-descriptions, stopping child processes, the open-file budget of a pipe mesh, BLAS pinning
-of children at start.
+"""Process-manager pieces shared by the pipes coordinator, its worker processes and the
+MPI driver: BLAS threads per process, exit descriptions, stopping child processes, the
+open-file budget of a pipe mesh.
 """
 from __future__ import annotations
 
@@ -10,9 +10,19 @@ import time
 from contextlib import contextmanager
 
 from shardtrain.errors import InputError
-from shardtrain.train.worker import BLAS_ENV
 
 JOIN_S = 5.0                 # how long stopped workers get before they are killed
+BLAS_ENV = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS")
+
+
+def pin_blas_threads(threads: int = 1) -> None:
+    """`threads` BLAS threads in this process (the --threads setting, default 1: the
+    workers are the parallelism). threadpoolctl raises the limit too, so a forkserver
+    child started with the pinned environment can still use more."""
+    for name in BLAS_ENV:
+        os.environ[name] = str(int(threads))
+    from threadpoolctl import threadpool_limits
+    threadpool_limits(int(threads))
 
 
 @contextmanager

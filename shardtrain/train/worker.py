@@ -8,8 +8,6 @@ The halo products it hands the model are `halo.HaloOps`; the model code is the r
 """
 from __future__ import annotations
 
-import logging
-import os
 import resource
 import time
 from contextlib import contextmanager
@@ -23,9 +21,6 @@ from shardtrain.train import model, stopping
 from shardtrain.train.halo import EVAL, FORWARD, HaloOps
 from shardtrain.train.settings import TrainSettings
 
-log = logging.getLogger(__name__)
-
-BLAS_ENV = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS")
 
 
 # ---------------------------------------------------------------- a straggler on purpose
@@ -238,15 +233,3 @@ def peak_rss_bytes() -> int:
     except OSError:
         pass
     return int(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss) * 1024
-
-
-# ---------------------------------------------------------------- the worker process
-
-def pin_blas_threads(threads: int = 1) -> None:
-    """`threads` BLAS threads in this process (the --threads setting, default 1: the
-    workers are the parallelism). threadpoolctl raises the limit too, so a forkserver
-    child started with the pinned environment can still use more."""
-    for name in BLAS_ENV:
-        os.environ[name] = str(int(threads))
-    from threadpoolctl import threadpool_limits
-    threadpool_limits(int(threads))

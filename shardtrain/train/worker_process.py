@@ -13,8 +13,9 @@ from dataclasses import dataclass
 from typing import TYPE_CHECKING, Callable
 
 from shardtrain.train.codec import encode_message, encode_summary
+from shardtrain.train.processes import pin_blas_threads
 from shardtrain.train.settings import TrainSettings
-from shardtrain.train.worker import pin_blas_threads, run_worker
+from shardtrain.train.worker import run_worker
 
 if TYPE_CHECKING:
     from shardtrain.transport.link import LinkModel
