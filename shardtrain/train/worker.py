@@ -21,8 +21,6 @@ from shardtrain.train import model, stopping
 from shardtrain.train.halo import EVAL, FORWARD, HaloOps
 from shardtrain.train.settings import TrainSettings
 
-
-
 # ---------------------------------------------------------------- a straggler on purpose
 
 class SlowCompute:
