@@ -167,7 +167,8 @@ def check_config(config: RunConfig, transport: str = "pipes") -> bool:
         raise InputError(f"{config.source}: a directory without {MANIFEST_NAME} "
                          f"(not a shard directory)")
     elif config.reference:
-        for flag, given in (("--method", config.method), ("--assignment", config.assignment)):
+        for flag, given in (("--method", config.method), ("--assignment", config.assignment),
+                            ("--workers", config.workers is not None)):
             if given:
                 raise InputError(f"{flag}: not allowed with --reference (no partition)")
     else:
