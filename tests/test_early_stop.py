@@ -147,7 +147,7 @@ def test_partitioned_run_stops_at_the_reference_epoch(k, digits_shards, early_re
 
 
 def _partitioned_plan(shard_dir, settings, folder, k):
-    from shardtrain.train.coordinator import model_dims_of, shard_dir_facts
+    from shardtrain.train.accounting import model_dims_of, shard_dir_facts
 
     identity = ck.run_identity(settings, workers=k,
                                dims=model_dims_of(shard_dir_facts(shard_dir), settings),
@@ -296,7 +296,9 @@ def test_reference_runs_blas_on_the_threads_setting(digits):
 
 def test_a_worker_process_raises_blas_to_the_threads_setting():
     # the coordinator starts workers with the environment pinned to one thread
-    code = ("from shardtrain.train.worker import pin_blas_threads; pin_blas_threads(2); "
+    # (numpy, hence BLAS, is loaded in a worker before it pins, as here)
+    code = ("import numpy; from shardtrain.train.processes import pin_blas_threads; "
+            "pin_blas_threads(2); "
             "from threadpoolctl import threadpool_info; "
             "print(sorted({i['num_threads'] for i in threadpool_info() "
             "if i['user_api'] == 'blas'}))")

@@ -7,7 +7,7 @@ import pytest
 import scipy.sparse as sp
 
 from shardtrain import compat
-from shardtrain.train import model, worker
+from shardtrain.train import halo, model
 
 
 @pytest.mark.parametrize("dtype", [np.float32, np.float64])
@@ -32,8 +32,8 @@ def test_split_blocks_give_the_bits_of_the_whole_product():
     a.sort_indices()
     m = np.random.default_rng(5).standard_normal((700, 5))
     z = np.zeros((400, 5))
-    compat.add_csr_product(worker._column_block(a, 0, 400), np.ascontiguousarray(m[:400]), z)
-    compat.add_csr_product(worker._column_block(a, 400, 700),
+    compat.add_csr_product(halo.column_block(a, 0, 400), np.ascontiguousarray(m[:400]), z)
+    compat.add_csr_product(halo.column_block(a, 400, 700),
                                np.ascontiguousarray(m[400:]), z)
     assert z.tobytes() == (a @ m).tobytes()
 
@@ -45,7 +45,7 @@ def test_selection_matrix_adds_rows_at_their_targets():
     out = np.random.default_rng(8).standard_normal((50, 3))
     want = out.copy()
     want[rows] += x
-    compat.add_csr_product(worker._selection(rows, 50, np.float64), x, out)
+    compat.add_csr_product(halo.selection_matrix(rows, 50, np.float64), x, out)
     assert out.tobytes() == want.tobytes()
 
 
@@ -54,8 +54,8 @@ def test_transpose_shares_a_symmetric_block_and_transposes_others():
     s = sp.random(60, 60, density=0.1, format="csr", random_state=9)
     sym = (s + s.T).tocsr()
     sym.sort_indices()
-    assert worker._transpose(sym) is sym
-    t = worker._transpose(s.tocsr())
+    assert halo.transpose_csr(sym) is sym
+    t = halo.transpose_csr(s.tocsr())
     assert (t != s.T).nnz == 0
 
 

@@ -276,7 +276,7 @@ def test_descriptor_count_follows_the_mesh(monkeypatch, pristine, tmp_path, grap
     import multiprocessing.process as mpp
 
     from shardtrain.plan.shards import build_shards, save_shards
-    from shardtrain.train import coordinator
+    from shardtrain.train import coordinator, processes
     from shardtrain.train.settings import TrainSettings
 
     peaks = {}
@@ -292,13 +292,13 @@ def test_descriptor_count_follows_the_mesh(monkeypatch, pristine, tmp_path, grap
         save_shards(d, build_shards(graph, np.arange(graph.num_vertices) % current, current),
                     meta={"method": "test"})
         open_now = len(os.listdir("/proc/self/fd")) - 1
-        predicted[current] = coordinator.descriptors_needed(current, open_now)
+        predicted[current] = processes.descriptors_needed(current, open_now)
         coordinator.train_partitioned(d, TrainSettings(epochs=1, hidden=4), timeout_s=30)
         assert peaks[current] <= predicted[current]
-    pairs = {k: len(coordinator.mesh_pairs(k)) for k in (4, 8)}
+    pairs = {k: len(processes.mesh_pairs(k)) for k in (4, 8)}
     growth = peaks[8] - peaks[4]
-    assert abs(growth - coordinator.FDS_PER_PAIR * (pairs[8] - pairs[4])) <= \
-        coordinator.FDS_PER_WORKER * 4, (peaks, pairs)
+    assert abs(growth - processes.FDS_PER_PAIR * (pairs[8] - pairs[4])) <= \
+        processes.FDS_PER_WORKER * 4, (peaks, pairs)
 
 
 def _limited(soft: int, hard: int):

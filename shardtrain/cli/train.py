@@ -20,20 +20,22 @@ same weights, bit for bit, as a run that was never interrupted. `--reference` ru
 from __future__ import annotations
 
 import math
-import shutil
-import signal
 import sys
-import tempfile
 from pathlib import Path
 
 import numpy as np
 
-from shardtrain.cli.common import add_graph_arguments, load_graph_from_args, positive_int_type
-from shardtrain.errors import InputError, Interrupted
-from shardtrain.train import rundoc
+from shardtrain.cli.common import add_graph_arguments, positive_int_type
+from shardtrain.errors import (
+    EXIT_BAD_INPUT,
+    EXIT_INTERRUPTED,
+    EXIT_RUN_FAILED,
+    InputError,
+    RunError,
+)
+from shardtrain.train import api
 from shardtrain.train.settings import DTYPES, TrainSettings, max_threads
 
-MANIFEST_NAME = "shards.json"
 WORKER_COLUMNS = [
     ("worker", "worker", None),
     ("compute_s", "compute s", "{:.3f}"),
@@ -141,14 +143,7 @@ def add_arguments(parser) -> None:
                              "rank per shard of SHARD_DIR, under mpiexec")
 
 
-# ---------------------------------------------------------------- validation
-
-def _settings(args) -> TrainSettings:
-    return TrainSettings(layers=args.layers, hidden=args.hidden, dropout=args.dropout,
-                         lr=args.lr, weight_decay=args.weight_decay, epochs=args.epochs,
-                         seed=args.seed, dtype=args.dtype, bias=bool(args.bias),
-                         early_stop=args.early_stop, threads=args.threads).validate()
-
+# ---------------------------------------------------------------- options
 
 def _check_output(path, option: str, suffix: str | None = None) -> None:
     if path is None:
@@ -176,85 +171,6 @@ def _check_paths(args) -> None:
                 allow=(("--checkpoint", "--resume"),))
 
 
-def is_graph_dir(path: str) -> bool:
-    from shardtrain.data.graphdir import is_graph_dir as check
-
-    return check(path)
-
-
-def _is_shard_dir(path: str) -> bool:
-    return Path(path).is_dir() and (Path(path) / MANIFEST_NAME).is_file()
-
-
-def _check_options(args) -> tuple[TrainSettings, bool]:
-    """Everything that can be checked without reading the graph; returns (settings,
-    whether the positional argument is a shard directory)."""
-    settings = _settings(args)
-    for option, value, top, why in LIMITS:
-        value = getattr(args, value)
-        if value is not None and value > top:
-            raise InputError(f"{option} {value}: must be at most {top:,} ({why})")
-    if not (math.isfinite(args.timeout) and 0 < args.timeout <= MAX_TIMEOUT_S):
-        raise InputError(f"--timeout {args.timeout:g}: must be a number of seconds > 0 and "
-                         f"at most {MAX_TIMEOUT_S:g} (the receive deadlines wait in whole "
-                         f"milliseconds of a C int)")
-    if not 0 <= args.imbalance < 1:
-        raise InputError(f"--imbalance {args.imbalance:g}: must lie in [0, 1)")
-    _check_output(args.json, "--json", ".json")
-    _check_output(args.weights, "--weights", ".npz")
-    _check_output(args.predictions, "--predictions", ".csv")
-    if getattr(args, "plot", None) is not None:
-        from shardtrain.report.plots import check_plot_dir
-        check_plot_dir(args.plot)
-    if args.init_weights is not None and not Path(args.init_weights).is_file():
-        raise InputError(f"--init-weights {args.init_weights}: no such file")
-    if not Path(args.graph).exists():
-        raise InputError(f"{args.graph}: no such file or directory")
-    shard_dir = _is_shard_dir(args.graph)
-    if shard_dir:
-        for flag, given in (("--reference", args.reference), ("--method", args.method),
-                            ("--assignment", args.assignment),
-                            ("--features", args.features), ("--labels", args.labels)):
-            if given:
-                raise InputError(f"{flag}: not allowed with a shard directory ({args.graph})")
-    elif Path(args.graph).is_dir() and not is_graph_dir(args.graph):
-        raise InputError(f"{args.graph}: a directory without {MANIFEST_NAME} or graph.json "
-                         f"(neither a shard directory nor a graph directory)")
-    elif args.reference:
-        for flag, given in (("--method", args.method), ("--assignment", args.assignment)):
-            if given:
-                raise InputError(f"{flag}: not allowed with --reference (no partition)")
-    else:
-        if args.workers is None and args.assignment is None:
-            raise InputError("--workers: give --workers K with --method M, --assignment "
-                             "FILE, or --reference to train on a graph")
-        if args.method is None and args.assignment is None:
-            raise InputError("--method: give --method M or --assignment FILE with --workers")
-    if args.workers is not None and args.workers < 1:
-        raise InputError(f"--workers {args.workers}: must be at least 1")
-    if args.method is not None:
-        from shardtrain.plan.partition import METHODS
-        if args.method not in METHODS:
-            raise InputError(f"--method {args.method!r}: expected one of {', '.join(METHODS)}")
-    if args.assignment is not None:
-        from shardtrain.data.readers import require_regular_file
-        require_regular_file(args.assignment, option="--assignment")
-    _check_paths(args)              # before the checkpoint lock creates its folder
-    _check_fault_options(args)
-    return settings, shard_dir
-
-
-DEFAULT_CHECKPOINT_EVERY = 10
-MAX_TIMEOUT_S = 1e6          # poll(2) takes a C int of milliseconds: 2**31 ms is ~2.1e6 s
-MAX_SLOW_FACTOR = 1000.0     # a straggler's sleep must stay within what time.sleep takes
-# (option, attribute, largest value, why): values above these cannot be used by the code
-LIMITS = (
-    ("--epochs", "epochs", 999_999, "checkpoint files are named by six-digit epochs"),
-    ("--checkpoint-every", "checkpoint_every", 999_999, "at most the largest --epochs"),
-    ("--max-frame-bytes", "max_frame_bytes", 2**62, "frame sizes are 64-bit integers"),
-)
-
-
 def parse_slow_workers(items: list[str]) -> dict[int, float]:
     """['1:3', '0:1.5'] -> {1: 3.0, 0: 1.5}; InputError naming --slow-worker."""
     out: dict[int, float] = {}
@@ -268,91 +184,13 @@ def parse_slow_workers(items: list[str]) -> dict[int, float]:
             raise InputError(f"--slow-worker {text!r}: expected W:FACTOR with W >= 0")
         if not (math.isfinite(f) and f >= 1):
             raise InputError(f"--slow-worker {text!r}: FACTOR must be a number >= 1")
-        if f > MAX_SLOW_FACTOR:
+        if f > api.MAX_SLOW_FACTOR:
             raise InputError(f"--slow-worker {text!r}: FACTOR must be at most "
-                             f"{MAX_SLOW_FACTOR:g} (the straggler's sleeps must stay finite)")
+                             f"{api.MAX_SLOW_FACTOR:g} (the straggler's sleeps must stay finite)")
         if w in out:
             raise InputError(f"--slow-worker {text!r}: worker {w} given twice")
         out[w] = f
     return out
-
-
-def _check_fault_options(args) -> None:
-    """--checkpoint, --checkpoint-every, --resume, --slow-worker, --max-frame-bytes."""
-    from shardtrain.train import checkpoint
-
-    extras = [(flag, given) for flag, given in (
-        ("--checkpoint", args.checkpoint), ("--checkpoint-every", args.checkpoint_every),
-        ("--resume", args.resume), ("--slow-worker", args.slow_worker),
-        ("--max-frame-bytes", args.max_frame_bytes)) if given]
-    for flag, _ in extras:
-        if args.reference and flag in ("--slow-worker", "--max-frame-bytes"):
-            raise InputError(f"{flag}: not available with --reference (partitioned runs only)")
-        if args.transport == "mpi" and flag != "--max-frame-bytes":
-            raise InputError(f"{flag}: not available with --transport mpi")
-    if args.checkpoint_every is not None and not (args.checkpoint or args.resume):
-        raise InputError("--checkpoint-every: give --checkpoint DIR as well")
-    slow = parse_slow_workers(args.slow_worker)
-    if args.workers is not None:
-        _check_slow_range(slow, args.workers)
-    if args.resume and args.init_weights:
-        raise InputError("--init-weights: not allowed with --resume (the checkpoint holds "
-                         "the weights)")
-    # held for the whole run (released by `run`): one run per checkpoint folder
-    locks = vars(args).setdefault("locks", [])
-    for option, folder in (("--resume", args.resume), ("--checkpoint", args.checkpoint)):
-        if folder and not any(Path(folder).resolve() == held.folder.resolve()
-                              for held in locks):
-            locks.append(checkpoint.lock_folder(folder, option))
-    args.resumed = checkpoint.read_checkpoint(args.resume) if args.resume else None
-    if args.resumed is not None and args.checkpoint is None:
-        args.checkpoint = args.resume
-    if args.checkpoint is not None:
-        checkpoint.check_folder(args.checkpoint, resuming_from=args.resume)
-        if args.checkpoint_every is None:
-            stored = (args.resumed.doc.get("checkpoint_every") if args.resumed is not None
-                      else None)
-            args.checkpoint_every = stored if isinstance(stored, int) and stored > 0 \
-                else DEFAULT_CHECKPOINT_EVERY
-
-
-def check_model_fits(dims, settings: TrainSettings) -> None:
-    """Refuse (naming --hidden/--layers) a model whose weights and Adam state (three
-    copies, every process holds them) alone exceed this machine's memory."""
-    import os
-
-    elements = sum(int(a) * int(b) + (int(b) if settings.bias else 0) for a, b in dims)
-    need = 3 * elements * settings.np_dtype.itemsize
-    try:
-        have = os.sysconf("SC_PHYS_PAGES") * os.sysconf("SC_PAGE_SIZE")
-    except (OSError, ValueError):
-        return
-    if need > have:
-        from shardtrain.units import human_bytes
-        raise InputError(f"--hidden {settings.hidden} --layers {settings.layers}: the "
-                         f"weights and optimiser state alone need {human_bytes(need)}, this "
-                         f"machine has {human_bytes(have)}")
-
-
-def _check_slow_range(slow: dict[int, float], workers: int) -> None:
-    for w in slow:
-        if w >= workers:
-            raise InputError(f"--slow-worker {w}:{slow[w]:g}: worker {w} does not exist "
-                             f"(workers 0..{workers - 1})")
-
-
-def load_init_weights(path, dims, settings: TrainSettings):
-    """Params from an .npz (no pickle), checked against the model: InputError naming it."""
-    from shardtrain.train import model
-
-    try:
-        with np.load(path, allow_pickle=False) as bundle:
-            arrays = {key: bundle[key] for key in bundle.files}
-    except (OSError, ValueError) as exc:
-        raise InputError(f"{path}: not a readable .npz of weights: "
-                         f"{' '.join(str(exc).split())}") from None
-    return model.params_from_arrays(arrays, dims, settings.bias, settings.np_dtype,
-                                    source=str(path))
 
 
 # ---------------------------------------------------------------- progress
@@ -442,158 +280,6 @@ def _traffic_lines(traffic: dict) -> list[str]:
             f"{traffic['frames']:,} frames"]
 
 
-# ---------------------------------------------------------------- the command
-
-def _emulated_link(args):
-    """--emulate-link parsed (a transport.link.LinkModel) or None; refused where no pipes run."""
-    if args.emulate_link is None:
-        return None
-    from shardtrain.transport.link import parse_link
-    link = parse_link(args.emulate_link, "--emulate-link")
-    if args.reference or args.transport == "mpi":
-        raise InputError("--emulate-link: not available with "
-                         f"{'--reference' if args.reference else '--transport mpi'} "
-                         "(it slows the pipes between worker processes)")
-    return link
-
-
-def run(args) -> int:
-    link = _emulated_link(args)
-    if args.transport == "mpi":
-        from shardtrain.cli.train_mpi import run_mpi
-        return run_mpi(args)
-    phase = ["checking the options"]
-    args.locks = []
-    with _signals_as_interrupt():
-        try:
-            return _run(args, phase, link)
-        except KeyboardInterrupt as exc:     # a signal outside the training loop
-            raise Interrupted(f"stopped by {getattr(exc, 'signal_name', 'Ctrl-C')} while "
-                              f"{phase[0]}; no worker is left and no temporary file (start "
-                              f"the same command again)") from None
-        finally:
-            for held in args.locks:
-                held.release()
-
-
-def _run(args, phase: list, link) -> int:
-    from shardtrain.hooks import pause_point
-
-    settings, from_shards = _check_options(args)
-
-    progress = None
-    tmp_dir = None
-    try:
-        if from_shards:
-            from shardtrain.plan.shards import check_shard_dir, split_counts
-            from shardtrain.train.coordinator import model_dims_of, shard_dir_facts
-
-            phase[0] = "checking the shard directory"
-            manifest = check_shard_dir(args.graph)
-            facts = shard_dir_facts(args.graph, manifest)
-            counts = split_counts(args.graph, manifest)
-            if settings.early_stop and not counts["val"]:
-                raise InputError(f"--early-stop: {args.graph} has no validation vertices "
-                                 f"(the validation split is empty)")
-            if args.workers is not None and args.workers != facts.workers:
-                raise InputError(f"--workers {args.workers}: {args.graph} holds "
-                                 f"{facts.workers} shards")
-            _check_descriptors(facts.workers)
-            dims = model_dims_of(facts, settings)
-            check_model_fits(dims, settings)
-            init = (load_init_weights(args.init_weights, dims, settings)
-                    if args.init_weights else None)
-            graph_doc = rundoc.graph_of_shards(args.graph, facts)
-            if not args.quiet:
-                print(_shard_dir_line(args.graph, facts, counts), flush=True)
-            shard_dir, labels = args.graph, None
-            graph_fp = _manifest_fingerprint(shard_dir)
-        else:
-            from shardtrain.train.reference import check_early_stop, check_trainable, model_dims
-
-            phase[0] = "reading the graph"
-            loaded = load_graph_from_args(args)
-            graph = loaded.graph
-            check_trainable(graph)
-            check_early_stop(graph, settings)
-            dims = model_dims(graph, settings)
-            check_model_fits(dims, settings)
-            init = (load_init_weights(args.init_weights, dims, settings)
-                    if args.init_weights else None)
-            assignment = None
-            if args.assignment is not None:
-                from shardtrain.plan.partition import load_assignment
-                assignment, k = load_assignment(args.assignment, graph.num_vertices)
-                if args.workers is not None and args.workers != k:
-                    raise InputError(f"--workers {args.workers}: {args.assignment} assigns "
-                                     f"vertices to {k} workers")
-                args.workers = k
-            elif not args.reference:
-                from shardtrain.plan.partition import check_workers
-                check_workers(args.workers, graph.num_vertices)
-            graph_doc = rundoc.graph_of_file(loaded.source, graph, loaded.notes)
-            if not args.quiet:
-                print(graph_line(graph), flush=True)
-            labels = graph.labels
-            from shardtrain.data.graph import fingerprint
-            graph_fp = fingerprint(graph)
-            if not args.reference:
-                _check_descriptors(args.workers)
-                tmp_dir = tempfile.mkdtemp(prefix="shardtrain-shards-")
-                shard_dir = str(Path(tmp_dir) / "shards")
-                _build_shard_dir(graph, args, assignment, shard_dir, dims, phase)
-        plan = (_reference_plan(args, settings, dims, graph_fp) if args.reference
-                else _checkpoint_plan(args, settings, shard_dir, dims, graph_fp))
-        progress = _Progress(settings.epochs, args.quiet,
-                             args.resumed.epoch if args.resumed is not None else 0)
-        phase[0] = "starting the training"
-        pause_point("training")
-        if args.reference:
-            result = _train_reference(graph, settings, init, plan, args.resumed, progress)
-        else:
-            from shardtrain.train.coordinator import train_partitioned
-            result = train_partitioned(shard_dir, settings, timeout_s=args.timeout,
-                                       init_params=init, on_epoch=progress,
-                                       max_frame_bytes=args.max_frame_bytes,
-                                       checkpoint=plan, resume=args.resumed,
-                                       slow=parse_slow_workers(args.slow_worker),
-                                       link=link)
-            if labels is None:
-                labels = result.labels
-        phase[0] = "writing the outputs"
-        progress.close()
-        progress = None
-    finally:
-        if progress is not None:
-            progress.close()
-        if tmp_dir is not None:
-            shutil.rmtree(tmp_dir, ignore_errors=True)
-
-    extra = {}
-    if args.resumed is not None:
-        extra["resumed_from"] = {"folder": str(args.resume), "epoch": args.resumed.epoch}
-    if plan is not None:
-        extra["checkpoint"] = {"folder": plan["folder"], "every": plan["every"]}
-    if args.slow_worker:
-        extra["slow_workers"] = {str(w): f
-                                 for w, f in parse_slow_workers(args.slow_worker).items()}
-    if link is not None:
-        extra["emulated_link"] = {"gbps": link.gbps, "latency_us": link.latency_us}
-    doc = rundoc.run_document(settings, graph_doc, result,
-                              mode="reference" if args.reference else "partitioned", **extra)
-    write_outputs(args, result, labels, doc)
-    if not args.quiet:
-        last = result.epochs[-1]
-        print(f"final: loss {last['loss']:.6f}  train {_acc(last['train_acc'])}  "
-              f"val {_acc(last['val_acc'])}  test {_acc(last['test_acc'])}")
-        _say_early_stop(result.early_stop, args.quiet)
-        if not args.reference:
-            print(_worker_table(result.workers))
-            for line in _traffic_lines(result.traffic):
-                print(line)
-    return 0
-
-
 def _count(mask) -> str:
     return "-" if mask is None else f"{int(np.count_nonzero(mask)):,}"
 
@@ -607,57 +293,15 @@ def graph_line(graph) -> str:
             f"{_count(graph.test_mask)} test")
 
 
-def _shard_dir_line(shard_dir, facts, counts: dict | None = None) -> str:
-    """The same line for a shard directory, from its manifest and, where given, the mask
-    counts of all its shards (`shards.split_counts`; an MPI rank 0 may see only its own
-    shard, so it shows the manifest's training count alone)."""
-    from shardtrain.plan.shards import load_manifest
-
-    m = load_manifest(shard_dir)
+def shard_dir_line(shard_dir, facts, m: dict, counts: dict | None = None) -> str:
+    """The same line for a shard directory, from its manifest `m` and, where given, the
+    mask counts of all its shards (`shards.split_counts`; an MPI rank 0 may see only its
+    own shard, so it shows the manifest's training count alone)."""
     split = (f"{int(m['num_train_global']):,} train" if counts is None else
              f"{counts['train']:,} train, {counts['val']:,} val, {counts['test']:,} test")
     return (f"graph: {facts.num_vertices:,} vertices, {int(m.get('num_edges') or 0):,} "
             f"edges, {facts.input_dim:,} features, {facts.num_classes:,} classes; split: "
             f"{split}; {facts.workers} shards in {shard_dir}")
-
-
-def _manifest_fingerprint(shard_dir):
-    from shardtrain.plan.shards import load_manifest
-
-    return load_manifest(shard_dir).get("graph_fingerprint")
-
-
-def _checkpoint_plan(args, settings, shard_dir, dims, graph_fp) -> dict | None:
-    """Check --slow-worker and --resume against the shards; the checkpoint plan or None."""
-    from shardtrain.train import checkpoint
-    from shardtrain.train.coordinator import shard_dir_facts
-
-    k = shard_dir_facts(shard_dir).workers
-    _check_slow_range(parse_slow_workers(args.slow_worker), k)
-    if args.checkpoint is None and args.resumed is None:
-        return None
-    identity = checkpoint.run_identity(settings, workers=k, dims=dims,
-                                       graph_fingerprint=graph_fp,
-                                       shards_fingerprint=checkpoint.shard_dir_fingerprint(
-                                           shard_dir))
-    if args.resumed is not None:
-        checkpoint.check_resumable(args.resumed, identity, epochs=settings.epochs,
-                                   graph_label=str(args.graph))
-    _check_not_stopped(args.resumed, settings)
-    return {"folder": str(args.checkpoint), "every": int(args.checkpoint_every),
-            "identity": identity}
-
-
-def _check_not_stopped(resumed, settings) -> None:
-    """A checkpoint written where early stopping ended its run has nothing to continue."""
-    early = getattr(resumed, "early", None) if resumed is not None else None
-    if not early or not settings.early_stop:
-        return
-    best = int(np.asarray(early.get("early_best_epoch", resumed.epoch)))
-    if resumed.epoch - best >= settings.early_stop:
-        raise InputError(f"--resume {resumed.folder}: that run stopped early at epoch "
-                         f"{resumed.epoch} (no better validation loss since epoch {best}, "
-                         f"--early-stop {settings.early_stop}); nothing to continue")
 
 
 def _say_early_stop(summary: dict | None, quiet: bool) -> None:
@@ -671,126 +315,121 @@ def _say_early_stop(summary: dict | None, quiet: bool) -> None:
           f"{summary['best_val_loss']:.6f})")
 
 
-def _reference_plan(args, settings, dims, graph_fp) -> dict | None:
-    """Check --resume against this reference run; the checkpoint plan or None."""
-    from shardtrain.train import checkpoint
+# ---------------------------------------------------------------- the command
 
-    if args.checkpoint is None and args.resumed is None:
-        return None
-    identity = checkpoint.run_identity(settings, workers=1, dims=dims,
-                                       graph_fingerprint=graph_fp, shards_fingerprint=None,
-                                       mode="reference")
-    if args.resumed is not None:
-        checkpoint.check_resumable(args.resumed, identity, epochs=settings.epochs,
-                                   graph_label=str(args.graph))
-    _check_not_stopped(args.resumed, settings)
-    return {"folder": str(args.checkpoint), "every": int(args.checkpoint_every),
-            "identity": identity}
+def config_of(args) -> api.RunConfig:
+    """The RunConfig the options describe (parsed, not yet checked: `api.run` checks)."""
+    link = None
+    if args.emulate_link is not None:
+        from shardtrain.transport.link import parse_link
+        link = parse_link(args.emulate_link, "--emulate-link")
+    settings = TrainSettings(layers=args.layers, hidden=args.hidden, dropout=args.dropout,
+                             lr=args.lr, weight_decay=args.weight_decay, epochs=args.epochs,
+                             seed=args.seed, dtype=args.dtype, bias=bool(args.bias),
+                             early_stop=args.early_stop, threads=args.threads)
+    return api.RunConfig(
+        source=args.graph, settings=settings,
+        mode="reference" if args.reference else "partitioned",
+        features=args.features, labels=args.labels, input_dim=args.input_dim,
+        workers=args.workers, method=args.method, assignment=args.assignment,
+        imbalance=args.imbalance, checkpoint=args.checkpoint,
+        checkpoint_every=args.checkpoint_every, resume=args.resume,
+        init_weights=args.init_weights, timeout_s=args.timeout,
+        max_frame_bytes=args.max_frame_bytes, link=link,
+        slow_workers=parse_slow_workers(args.slow_worker))
 
 
-def _train_reference(graph, settings, init, plan, resumed, progress):
-    """The single-process run, checkpointed per `plan`, continuing `resumed`; Ctrl-C
-    becomes Interrupted naming the checkpoint and the --resume that continues it."""
-    from shardtrain.errors import Interrupted
-    from shardtrain.train import checkpoint
-    from shardtrain.train.reference import train_reference
+def _check_outputs(args) -> None:
+    """The output options: names, folders, none an input or another output."""
+    _check_output(args.json, "--json", ".json")
+    _check_output(args.weights, "--weights", ".npz")
+    _check_output(args.predictions, "--predictions", ".csv")
+    if getattr(args, "plot", None) is not None:
+        from shardtrain.report.plots import check_plot_dir
+        check_plot_dir(args.plot)
+    _check_paths(args)
 
-    done = [resumed.epoch if resumed is not None else 0]
 
-    def on_epoch(rec):
-        done[0] = rec["epoch"]
-        progress(rec)
+class _Screen:
+    """The command's printing around `api.run`: the input line, the progress, the
+    closing lines; `deliver` writes the output files first."""
+
+    def __init__(self, args):
+        self.args = args
+        self.progress: _Progress | None = None
+
+    def ready(self, info: api.Ready) -> None:
+        if not self.args.quiet:
+            if info.graph is not None:
+                line = graph_line(info.graph)
+            else:
+                line = shard_dir_line(info.shard_dir, info.facts, info.manifest or {},
+                                      info.counts)
+            print(line, flush=True)
+        self.progress = _Progress(info.epochs, self.args.quiet, info.done)
+
+    def epoch(self, rec: dict) -> None:
+        if self.progress is not None:
+            self.progress(rec)
+
+    def close(self) -> None:
+        if self.progress is not None:
+            self.progress.close()
+            self.progress = None
+
+    def deliver(self, outcome: api.RunOutcome) -> None:
+        self.close()
+        args, result = self.args, outcome.result
+        write_outputs(args, result, outcome.labels, outcome.document)
+        if not args.quiet:
+            last = result.epochs[-1]
+            print(f"final: loss {last['loss']:.6f}  train {_acc(last['train_acc'])}  "
+                  f"val {_acc(last['val_acc'])}  test {_acc(last['test_acc'])}")
+            _say_early_stop(result.early_stop, args.quiet)
+            if outcome.mode == "partitioned":
+                print(_worker_table(result.workers))
+                for line in _traffic_lines(result.traffic):
+                    print(line)
+
+
+def run(args) -> int:
+    config = config_of(args)
+    screen = _Screen(args)
+    if args.transport == "mpi":
+        return _run_mpi_rank(config, args, screen)
     try:
-        return train_reference(
-            graph, settings, init_params=resumed.params if resumed is not None else init,
-            init_adam=resumed.adam if resumed is not None else None,
-            first_epoch=resumed.epoch + 1 if resumed is not None else 1, on_epoch=on_epoch,
-            init_early=resumed.early if resumed is not None else None,
-            on_epoch_end=None if plan is None else checkpoint.epoch_writer(plan,
-                                                                           settings.epochs))
-    except KeyboardInterrupt:
-        where = f"after epoch {done[0]}" if done[0] else "before the first epoch ended"
-        saved = None if plan is None else checkpoint.latest_epoch(plan["folder"])
-        if plan is None:
-            text = "no checkpoint was written (add --checkpoint DIR to be able to resume)"
-        elif saved is None:
-            text = f"no checkpoint was written yet in {plan['folder']} (nothing to resume)"
-        else:
-            text = (f"the latest checkpoint (epoch {saved}) is intact in {plan['folder']}: "
-                    f"run the same command with --resume {plan['folder']} to continue")
-        raise Interrupted(f"training stopped {where}; {text}") from None
+        api.run(config, transport="pipes", on_epoch=screen.epoch, on_ready=screen.ready,
+                check=lambda: _check_outputs(args), deliver=screen.deliver)
+    finally:
+        screen.close()
+    return 0
 
 
-class _Terminated(KeyboardInterrupt):
-    """SIGTERM or SIGHUP, handled like Ctrl-C: the coordinator stops the workers."""
-
-    def __init__(self, signal_name: str):
-        super().__init__(signal_name)
-        self.signal_name = signal_name
-
-
-STOP_SIGNALS = (signal.SIGINT, signal.SIGTERM, signal.SIGHUP)
-
-
-class _signals_as_interrupt:
-    """For the whole command, Ctrl-C, SIGTERM and SIGHUP raise in the main thread as Ctrl-C
-    does (exit 4 in every phase). Only the first one raises: later ones are ignored, so the
-    clean-up (stopping workers, removing temporary shards) is never cut short."""
-
-    def __enter__(self):
-        fired = [False]
-
-        def handler(signum, frame):
-            if fired[0]:
-                return
-            fired[0] = True
-            if signum == signal.SIGINT:
-                raise KeyboardInterrupt()
-            raise _Terminated(signal.Signals(signum).name)
-        self.saved = {}
-        try:
-            for sig in STOP_SIGNALS:
-                self.saved[sig] = signal.signal(sig, handler)
-        except ValueError:           # not the main thread (embedded use): leave them alone
-            for sig, old in self.saved.items():
-                signal.signal(sig, old)
-            self.saved = {}
-        return self
-
-    def __exit__(self, *exc):
-        for sig, old in self.saved.items():
-            signal.signal(sig, old)
-        return False
-
-
-def _check_descriptors(k: int) -> None:
-    """Enough open files for k workers, before anything is built (InputError otherwise)."""
-    from shardtrain.train.coordinator import ensure_descriptors
-
-    ensure_descriptors(k)
-
-
-def _build_shard_dir(graph, args, assignment, shard_dir: str, dims, phase: list) -> None:
-    """Partition (or take the given assignment) and save the shards for the workers."""
-    from shardtrain.hooks import pause_point
-    from shardtrain.plan.shards import build_shards, save_shards
-
-    k = args.workers
-    details = None
-    if assignment is None:
-        from shardtrain.plan.partition import partition_plan
-        phase[0] = "partitioning"
-        pause_point("partitioning")
-        assignment, details = partition_plan(graph, args.method, k, seed=args.seed,
-                                             imbalance=args.imbalance)
-    phase[0] = "building the shards"
-    pause_point("building shards")
-    shards = build_shards(graph, assignment, k)
-    from shardtrain.data.graph import fingerprint
-    meta = {"num_classes": dims[-1][1], "input_dim": dims[0][0],
-            "method": args.method or "assignment", "seed": args.seed,
-            "graph_fingerprint": fingerprint(graph)}
-    if details is not None:
-        meta["partition"] = details      # how the plan was made (METIS: scheme, balance)
-    save_shards(shard_dir, shards, meta=meta)
-    pause_point("shards built")
+def _run_mpi_rank(config: api.RunConfig, args, screen: _Screen) -> int:
+    """One rank of `mpiexec -n K shardtrain train SHARD_DIR --transport mpi`: rank 0 checks,
+    prints and writes; a failure after the start names its rank and ends the whole job."""
+    rank, size = api.mpi_rank_and_size()
+    try:
+        api.run(config, transport="mpi", on_epoch=screen.epoch, on_ready=screen.ready,
+                check=lambda: _check_outputs(args), deliver=screen.deliver)
+        return 0
+    except api.JobStopped as exc:
+        if exc.report:
+            print(f"shardtrain: error: {exc}", file=sys.stderr)
+        return exc.code
+    except BaseException as exc:  # noqa: BLE001 - one rank's failure must end every rank
+        screen.close()
+        if isinstance(exc, InputError):
+            code, what = EXIT_BAD_INPUT, "error"
+        elif isinstance(exc, RunError):
+            code, what = EXIT_RUN_FAILED, "run failed"
+        elif isinstance(exc, KeyboardInterrupt):
+            code, what = EXIT_INTERRUPTED, "interrupted"
+        else:                              # a bug: show where, then end the job all the same
+            import traceback
+            traceback.print_exc()
+            code, what = EXIT_RUN_FAILED, "internal error"
+        print(f"shardtrain: {what}: rank {rank} of {size}: {exc}", file=sys.stderr,
+              flush=True)
+        api.abort_mpi_job(code)
+        return code

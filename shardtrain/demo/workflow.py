@@ -104,10 +104,13 @@ def train_reference_pinned(graph, settings):    # TRAINING RUN: the reference
     """The reference with BLAS on one thread, like every worker (fewer busy threads)."""
     from threadpoolctl import threadpool_limits
 
-    from shardtrain.train.reference import train_reference
+    from shardtrain.train.api import RunConfig, run
 
-    with threadpool_limits(limits=1):
-        return train_reference(graph, settings)
+    with threadpool_limits(limits=1):       # in a thread: no signal handlers of its own
+        outcome = run(RunConfig(source=GRAPH_FILE, graph=graph, mode="reference",
+                                settings=settings), signals=False)
+    assert outcome is not None               # pipes and reference runs always return one
+    return outcome.result
 
 
 class _Clock:
@@ -182,7 +185,8 @@ def _run_steps(settings: DemoSettings, tmp: Path, say, clock: _Clock) -> DemoRes
     from shardtrain.forecast.calibrate import calibrate, with_graph_sparse
     from shardtrain.forecast.projection import forecast
     from shardtrain.plan.survey import SurveySettings, survey
-    from shardtrain.train.coordinator import train_partitioned
+    from shardtrain.train.api import RunConfig
+    from shardtrain.train.api import run as train
     from shardtrain.train.rundoc import graph_of_file, run_document
     from shardtrain.train.settings import TrainSettings
 
@@ -232,8 +236,10 @@ def _run_steps(settings: DemoSettings, tmp: Path, say, clock: _Clock) -> DemoRes
 
     # TRAINING RUN: the reference in a thread, the partitioned run here
     reference = Background(train_reference_pinned, graph, train_settings)
-    run = train_partitioned(tmp / SHARD_DIR, train_settings, timeout_s=TIMEOUT_S,
-                            on_epoch=progress)
+    outcome = train(RunConfig(source=str(tmp / SHARD_DIR), settings=train_settings,
+                              timeout_s=TIMEOUT_S), on_epoch=progress, signals=False)
+    assert outcome is not None               # pipes runs always return one
+    run = outcome.result
     ref = reference.result()
     check = compare_runs(run, ref, survey_plan, settings.epochs)
     failure = check_failure(check)

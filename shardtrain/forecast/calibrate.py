@@ -143,8 +143,8 @@ def _time_row_moves(dtype, rng) -> dict:
     nbytes = buf.nbytes
     gather = _best_time(lambda: np.take(src, idx, axis=0, out=buf), repeats=5, budget_s=0.2)
     try:     # the worker's own way; a plain indexed add if the worker changes it
-        from shardtrain.train.worker import _selection
-        select = _selection(idx, n, dtype)
+        from shardtrain.train.halo import selection_matrix
+        select = selection_matrix(idx, n, dtype)
 
         def scatter_add():
             add_csr_product(select, buf, src)
@@ -540,8 +540,8 @@ def transport_copy_speed(calibration: dict) -> float:
 def _shard_step_in_process(shard_dir: str, worker: int, settings_dict: dict,
                            num_classes: int, epochs: int) -> dict:
     from shardtrain.plan.shards import load_shard
+    from shardtrain.train.processes import pin_blas_threads
     from shardtrain.train.settings import TrainSettings
-    from shardtrain.train.worker import pin_blas_threads
 
     pin_blas_threads()
     return shard_step_seconds(load_shard(shard_dir, worker),

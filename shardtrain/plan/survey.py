@@ -80,16 +80,30 @@ def _ring_send_elements(size: int, k: int) -> np.ndarray:
     return np.asarray(ring_send_elements(size, k), dtype=np.int64)
 
 
+def peer_rows(send_ptrs, halo_ptrs) -> tuple[np.ndarray, np.ndarray]:
+    """(send_rows, halo_rows), both k x k int64, from every worker's `send_ptr` and
+    `halo_ptr` (in worker order; shard headers or a worker's summary carry them):
+    send_rows[p, q] = rows p sends q in a forward exchange; halo_rows[p, q] = rows of p's
+    halo owned by q. Every prediction below reads the shards through these two tables."""
+    send_rows = np.stack([np.diff(np.asarray(p, dtype=np.int64)) for p in send_ptrs])
+    halo_rows = np.stack([np.diff(np.asarray(p, dtype=np.int64)) for p in halo_ptrs])
+    return send_rows.astype(np.int64), halo_rows.astype(np.int64)
+
+
 def _peer_rows(shards) -> tuple[np.ndarray, np.ndarray]:
-    """(send_rows, halo_rows), both k x k int64: send_rows[p, q] = rows p sends q in a
-    forward exchange; halo_rows[p, q] = rows of p's halo owned by q."""
-    send_rows = np.stack([np.diff(s.send_ptr) for s in shards]).astype(np.int64)
-    halo_rows = np.stack([np.diff(s.halo_ptr) for s in shards]).astype(np.int64)
-    return send_rows, halo_rows
+    return peer_rows([s.send_ptr for s in shards], [s.halo_ptr for s in shards])
 
 
 def predict_traffic(shards, hops: list[LayerHop], itemsize: int, *,
                     param_elements: int) -> dict:
+    """`predict_traffic_of_rows` of the shards' `peer_rows`."""
+    return predict_traffic_of_rows(*_peer_rows(shards), hops, itemsize,
+                                   param_elements=param_elements)
+
+
+def predict_traffic_of_rows(send_rows: np.ndarray, halo_rows: np.ndarray,
+                            hops: list[LayerHop], itemsize: int, *,
+                            param_elements: int) -> dict:
     """Payload bytes (array data only, no framing) of one training epoch.
 
     Forward, layer l, p -> q: len(shard_p.send_to(q)) * forward_width_l * itemsize.
@@ -101,8 +115,7 @@ def predict_traffic(shards, hops: list[LayerHop], itemsize: int, *,
     `pair_bytes[p][q]`: halo bytes p sends q per epoch, forward + backward.
     `send_rows[p][q]`: rows p sends q in one forward exchange (= len(shard_p.send_to(q))).
     """
-    k = len(shards)
-    send_rows, halo_rows = _peer_rows(shards)
+    k = send_rows.shape[0]
     rows_sent = int(send_rows.sum())        # == halo_rows.sum() on consistent shards
     rows_back = int(halo_rows.sum())
     per_layer = []
@@ -158,6 +171,16 @@ def predict_run_payload(traffic: dict, epochs: int, evals: int, stop_votes: int 
 def predict_payload_breakdown(shards, hops: list[LayerHop], itemsize: int, *,
                               param_elements: int, epochs: int, evals: int,
                               stop_votes: int = 0) -> dict:
+    """`predict_payload_breakdown_of_rows` of the shards' `peer_rows`."""
+    return predict_payload_breakdown_of_rows(*_peer_rows(shards), hops, itemsize,
+                                             param_elements=param_elements, epochs=epochs,
+                                             evals=evals, stop_votes=stop_votes)
+
+
+def predict_payload_breakdown_of_rows(send_rows: np.ndarray, halo_rows: np.ndarray,
+                                      hops: list[LayerHop], itemsize: int, *,
+                                      param_elements: int, epochs: int, evals: int,
+                                      stop_votes: int = 0) -> dict:
     """Predicted payload of a run per (src, dst, kind, layer, direction), the trainer's
     counter keys: kind "halo" with direction "forward" / "backward" / "eval", and kind
     "allreduce" with layer -1 and direction "backward" (rank r sends to r+1 in the ring;
@@ -165,13 +188,12 @@ def predict_payload_breakdown(shards, hops: list[LayerHop], itemsize: int, *,
     Pairs that exchange nothing are left out. Sums to `predict_run_payload`.
     Loops over workers and their peers: meant for training-sized k, not for k = 1024.
     """
-    k = len(shards)
+    k = send_rows.shape[0]
     out: dict[tuple, int] = {}
-    for s in shards:
-        p = s.worker
-        for q in s.peers():
-            n_send = int(s.send_ptr[q + 1] - s.send_ptr[q])
-            n_halo = int(s.halo_ptr[q + 1] - s.halo_ptr[q])
+    for p in range(k):
+        for q in np.flatnonzero((send_rows[p] > 0) | (halo_rows[p] > 0)).tolist():
+            n_send = int(send_rows[p, q])
+            n_halo = int(halo_rows[p, q])
             for h in hops:
                 fwd = n_send * h.forward_width * itemsize
                 bwd = n_halo * h.backward_width * itemsize

@@ -6,7 +6,7 @@ the coordinator passes the text on to the workers itself). Its form:
 
     W@PHASE=ACTION        e.g.  1@epoch 2 backward exchange=kill
 
-Worker W performs ACTION the first time its phase text (see `worker.process_main`: "epoch
+Worker W performs ACTION the first time its phase text (see `worker_process.process_main`: "epoch
 E forward exchange, layer L", "epoch E backward exchange, layer L", "epoch E all-reduce",
 "epoch E compute", "epoch E checkpoint write", "epoch E checkpoint write, index not yet
 renamed", ...) starts with PHASE. ACTION is one of

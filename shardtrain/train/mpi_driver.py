@@ -1,14 +1,15 @@
 """Partitioned training with one MPI rank per shard: the same shards, the same worker code.
 
-`train_mpi` is collective: every rank of the communicator calls it with the same shard
+`train_partitioned` is collective (the MPI twin of `coordinator.train_partitioned`, reached
+as `api.run(config, transport="mpi")`): every rank of the communicator calls it with the same shard
 directory and settings. Rank r loads shard r only (`shards.load_shard`), wraps the
 communicator in an `MpiTransport` and runs `worker.run_worker`, exactly as a worker process
 of the pipes coordinator does; only the transport differs. Rank 0 plays the coordinator's
 part as well: it collects every rank's per-epoch reports and final summary and builds the
-same `PartitionedRunResult` as `coordinator.train_partitioned` (epoch records, traffic
+same `PartitionedRunResult` as `accounting.train_partitioned` (epoch records, traffic
 measured against predicted, per-worker rows).
 
-Control messages between the ranks and rank 0 are msgpack bytes (`worker.encode_message`,
+Control messages between the ranks and rank 0 are msgpack bytes (`codec.encode_message`,
 no pickle), sent point to point under tags of their own, so they never mix with the halo
 and all-reduce frames; like the pipes' control channel they are not counted in the profile.
 Every wait on them is polled under the same deadline as the transport's receives.
@@ -29,9 +30,19 @@ import time
 from typing import Callable, cast
 
 from shardtrain.errors import InputError, RunError
-from shardtrain.train import coordinator, worker
-from shardtrain.train.coordinator import PartitionedRunResult, ShardDirFacts
+from shardtrain.train import accounting
+from shardtrain.train.accounting import PartitionedRunResult, ShardDirFacts
+from shardtrain.train.codec import (
+    decode_message,
+    decode_summary,
+    encode_message,
+    encode_summary,
+    pack_array,
+    unpack_array,
+)
+from shardtrain.train.processes import pin_blas_threads
 from shardtrain.train.settings import TrainSettings
+from shardtrain.train.worker import run_worker
 
 ROOT = 0
 TAG_START = 11          # rank 0 -> all: settings, shard facts, initial weights (or stop)
@@ -111,7 +122,7 @@ def _recv_message(comm, source: int, tag: int, timeout_s: float, what: str) -> d
     req = comm.Irecv([buf, MPI.BYTE], source=status.Get_source(), tag=tag)
     _poll(comm, [req], timeout_s, what)
     try:
-        return worker.decode_message(bytes(buf))
+        return decode_message(bytes(buf))
     except Exception as exc:  # noqa: BLE001 - any decoding failure names the sender
         raise RunError(f"rank {comm.Get_rank()}: unreadable control message from rank "
                        f"{status.Get_source()} ({what}): {exc}") from None
@@ -127,7 +138,7 @@ class _Outbox:
     def send(self, dest: int, tag: int, msg: dict) -> None:
         from mpi4py import MPI
 
-        data = worker.encode_message(msg)
+        data = encode_message(msg)
         req = self.comm.Isend([data, MPI.BYTE], dest=dest, tag=tag)
         self.pending.append((req, data))
         self.pending = [(r, d) for r, d in self.pending if not r.Test()]
@@ -154,7 +165,7 @@ class _Book:
         bucket[w] = rep
         if len(bucket) == self.k:
             del self.pending[e]
-            rec = coordinator.epoch_record(e, [bucket[r] for r in range(self.k)])
+            rec = accounting.epoch_record(e, [bucket[r] for r in range(self.k)])
             self.records.append(rec)
             if self.on_epoch is not None:
                 self.on_epoch(rec)
@@ -208,15 +219,15 @@ def _start(comm, shard_dir, settings, init_params, timeout_s: float):
         if "stop" in msg:
             raise JobStopped("stopped by rank 0", int(msg["stop"]), report=False)
         packed = msg["init_params"]
-        init = None if packed is None else {k: worker.unpack_array(v)
+        init = None if packed is None else {k: unpack_array(v)
                                             for k, v in packed.items()}
         return (TrainSettings.from_dict(msg["settings"], source="start message of rank 0"),
                 ShardDirFacts(**msg["facts"]), init)
     try:
         if settings is None:
-            raise InputError("train_mpi: rank 0 needs the training settings")
+            raise InputError("mpi_driver.train_partitioned: rank 0 needs the training settings")
         settings.validate()
-        facts = coordinator.shard_dir_facts(shard_dir)
+        facts = accounting.shard_dir_facts(shard_dir)
         check_world(comm, facts, shard_dir)
         if init_params is not None and not isinstance(init_params, dict):
             from shardtrain.train import model
@@ -226,7 +237,7 @@ def _start(comm, shard_dir, settings, init_params, timeout_s: float):
         raise JobStopped(str(exc), EXIT_BAD_INPUT, report=True) from None
     msg = {"settings": settings.to_dict(), "facts": vars(facts),
            "init_params": None if init_params is None else
-           {name: worker.pack_array(a) for name, a in init_params.items()}}
+           {name: pack_array(a) for name, a in init_params.items()}}
     out = _Outbox(comm)
     for q in range(1, comm.Get_size()):
         out.send(q, TAG_START, msg)
@@ -268,7 +279,7 @@ def _check_shards(comm, shard_dir, timeout_s: float) -> None:
         raise JobStopped(first, EXIT_BAD_INPUT, report=True)
 
 
-def train_mpi(shard_dir, settings: TrainSettings | None, *, comm=None,
+def train_partitioned(shard_dir, settings: TrainSettings | None, *, comm=None,
               timeout_s: float = 60.0, init_params=None,
               on_epoch: Callable[[dict], None] | None = None, allreduce: str = "mpi",
               max_frame_bytes: int | None = None, load_shard=None,
@@ -293,7 +304,7 @@ def train_mpi(shard_dir, settings: TrainSettings | None, *, comm=None,
     settings, facts, init_params = _start(comm, shard_dir, settings, init_params, timeout_s)
     if load_shard is None:
         _check_shards(comm, shard_dir, timeout_s)
-    worker.pin_blas_threads(settings.threads)
+    pin_blas_threads(settings.threads)
     if load_shard is None:
         from shardtrain.plan.shards import load_shard
     shard = load_shard(shard_dir, rank)
@@ -312,20 +323,20 @@ def train_mpi(shard_dir, settings: TrainSettings | None, *, comm=None,
             book.drain()
 
     try:
-        summary = worker.run_worker(shard, settings, transport, profile, report,
+        summary = run_worker(shard, settings, transport, profile, report,
                                     num_classes=facts.num_classes, init_params=init_params,
                                     on_phase=on_phase)
     finally:
         transport.close()
     if book is None:
-        outbox.send(ROOT, TAG_SUMMARY, worker.encode_summary(summary))
+        outbox.send(ROOT, TAG_SUMMARY, encode_summary(summary))
         outbox.flush(timeout_s, "rank 0 to take the reports and the summary")
         return None
     book.wait_for(int(summary["epochs_run"]), timeout_s)   # fewer after an early stop
     summaries = [summary] + [None] * (size - 1)
     for q in range(1, size):
         msg = _recv_message(comm, q, TAG_SUMMARY, timeout_s, f"the summary of rank {q}")
-        summaries[q] = worker.decode_summary(msg)
-    coordinator.check_epochs_run(book.records, cast("list[dict]", summaries),  # all filled
+        summaries[q] = decode_summary(msg)
+    accounting.check_epochs_run(book.records, cast("list[dict]", summaries),  # all filled
                                  settings.epochs)
-    return coordinator.assemble_result(book.records, summaries, facts, settings)
+    return accounting.assemble_result(book.records, summaries, facts, settings)

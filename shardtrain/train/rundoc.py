@@ -25,7 +25,7 @@ def graph_of_file(source, graph, notes=()) -> dict:
 
 
 def graph_of_shards(shard_dir, facts) -> dict:
-    """The `graph` entry of a run on a shard directory (`coordinator.ShardDirFacts`)."""
+    """The `graph` entry of a run on a shard directory (`accounting.ShardDirFacts`)."""
     return {"shard_dir": str(shard_dir), "vertices": int(facts.num_vertices),
             "workers": int(facts.workers)}
 

@@ -1,0 +1,489 @@
+"""The library API of training: describe a run with a `RunConfig`, start it with `run`.
+
+    outcome = run(RunConfig(source="shards"), transport="pipes")
+    outcome.result.epochs, outcome.document        # the records; the run JSON
+
+A run trains on a graph file (partitioned over `workers` shards built in a temporary
+folder, or `mode="reference"`: single-process, the oracle), on an in-memory graph
+(`graph=`), or on a shard directory written by `shardtrain split`. `transport="pipes"`
+(default) starts one worker process per shard on this machine (`coordinator`);
+`transport="mpi"` is collective: every rank of the MPI job calls `run` with the same
+config, each trains its own shard (`mpi_driver`), and rank 0 gets the outcome (the other
+ranks get None).
+
+Every check of the config is made before anything is read, locked or started
+(`check_config`), with errors naming the command-line option of the value; the caller's
+own checks (`check=`, e.g. of its output paths) run next, then the checkpoint folders are
+locked. The caller sees the run through callbacks: `on_ready(Ready)` once the inputs are
+read (before partitioning and training), `on_epoch(record)` per epoch, and
+`deliver(outcome)` at the end, still inside the run (locks held, signals handled), to
+write and print its outputs. Nothing here prints.
+"""
+from __future__ import annotations
+
+import math
+from contextlib import ExitStack, nullcontext
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Callable
+
+import numpy as np
+
+from shardtrain.data.graphdir import GRAPH_MANIFEST, is_graph_dir
+from shardtrain.errors import EXIT_BAD_INPUT, InputError
+from shardtrain.plan.shards import SHARDS_MANIFEST as MANIFEST_NAME
+from shardtrain.train import rundoc, session
+from shardtrain.train.mpi_driver import JobStopped
+from shardtrain.train.settings import TrainSettings
+
+TRANSPORTS = ("pipes", "mpi")
+MODES = ("partitioned", "reference")
+MAX_TIMEOUT_S = 1e6          # poll(2) takes a C int of milliseconds: 2**31 ms is ~2.1e6 s
+MAX_SLOW_FACTOR = 1000.0     # a straggler's sleep must stay within what time.sleep takes
+MPI_STOP_TIMEOUT_S = 60.0    # how long rank 0 waits for the others to take a stop message
+# (option, RunConfig field or settings field, largest value, why): values above these
+# cannot be used by the code
+LIMITS = (
+    ("--epochs", "epochs", 999_999, "checkpoint files are named by six-digit epochs"),
+    ("--checkpoint-every", "checkpoint_every", 999_999, "at most the largest --epochs"),
+    ("--max-frame-bytes", "max_frame_bytes", 2**62, "frame sizes are 64-bit integers"),
+)
+
+
+@dataclass
+class RunConfig:
+    """One training run.
+
+    source: a graph file (.npz, .mtx, edge list) or a shard directory; graph: an
+    in-memory `Graph` instead of a file (source is then only its label in the run JSON).
+    features, labels, input_dim: how to read a graph file (`readers.load_graph`).
+    mode: "partitioned" or "reference" (single-process; graph sources only).
+    workers, method, assignment (a vertex -> worker file), imbalance: the partition of a
+    graph source (a shard directory brings its own; `workers`, if given, must agree).
+    checkpoint, checkpoint_every, resume: checkpoint folder, epochs between checkpoints
+    (default 10, or the resumed run's), a folder to resume from. init_weights: an .npz of
+    weights to start from. timeout_s: deadline of every receive; max_frame_bytes: the
+    largest halo/all-reduce frame accepted (None: 2 GiB); link: a `transport.link.LinkModel`
+    to emulate; slow_workers: {worker: factor >= 1} stragglers. The BLAS threads per
+    process are `settings.threads`.
+    """
+
+    source: str
+    settings: TrainSettings = field(default_factory=TrainSettings)
+    mode: str = "partitioned"
+    graph: Any = None
+    features: str | None = None
+    labels: str | None = None
+    input_dim: int | None = None
+    workers: int | None = None
+    method: str | None = None
+    assignment: str | None = None
+    imbalance: float = 0.03
+    checkpoint: str | None = None
+    checkpoint_every: int | None = None
+    resume: str | None = None
+    init_weights: str | None = None
+    timeout_s: float = 60.0
+    max_frame_bytes: int | None = None
+    link: Any = None
+    slow_workers: dict[int, float] = field(default_factory=dict)
+
+    @property
+    def reference(self) -> bool:
+        return self.mode == "reference"
+
+
+@dataclass
+class Ready:
+    """What `on_ready` is told once the inputs are read: the graph (a graph source) or the
+    shard directory, its facts, manifest and split counts (None under MPI, where rank 0
+    reads only the manifest); the epochs to run and those already done (a resume)."""
+
+    epochs: int
+    done: int = 0
+    graph: Any = None
+    shard_dir: str | None = None
+    facts: Any = None
+    manifest: dict | None = None
+    counts: dict | None = None
+
+
+@dataclass
+class RunOutcome:
+    """What `run` returns: the result (`reference.RunResult` or
+    `accounting.PartitionedRunResult`), the run JSON (`rundoc.run_document`), the labels
+    by global id for the predictions file (None where unknown) and the mode."""
+
+    result: Any
+    document: dict
+    labels: np.ndarray | None
+    mode: str
+    transport: str
+
+
+# ---------------------------------------------------------------- checks
+
+def is_shard_dir(path) -> bool:
+    return Path(path).is_dir() and (Path(path) / MANIFEST_NAME).is_file()
+
+
+def check_config(config: RunConfig, transport: str = "pipes") -> bool:
+    """Everything that can be checked without reading the inputs; returns whether the
+    source is a shard directory. InputError naming the option otherwise."""
+    if transport not in TRANSPORTS:
+        raise InputError(f"--transport {transport!r}: expected one of {', '.join(TRANSPORTS)}")
+    if config.mode not in MODES:
+        raise InputError(f"mode {config.mode!r}: expected one of {', '.join(MODES)}")
+    if config.link is not None and (config.reference or transport == "mpi"):
+        raise InputError("--emulate-link: not available with "
+                         f"{'--reference' if config.reference else '--transport mpi'} "
+                         "(it slows the pipes between worker processes)")
+    if transport == "mpi" and not is_shard_dir(config.source):
+        raise InputError(f"--transport mpi: {config.source} is not a shard directory (write "
+                         f"one with `shardtrain split`; every rank must see it at this path)")
+    settings = config.settings.validate()
+    for option, name, top, why in LIMITS:
+        value = getattr(settings if name == "epochs" else config, name)
+        if value is not None and value > top:
+            raise InputError(f"{option} {value}: must be at most {top:,} ({why})")
+    if not (math.isfinite(config.timeout_s) and 0 < config.timeout_s <= MAX_TIMEOUT_S):
+        raise InputError(f"--timeout {config.timeout_s:g}: must be a number of seconds > 0 "
+                         f"and at most {MAX_TIMEOUT_S:g} (the receive deadlines wait in "
+                         f"whole milliseconds of a C int)")
+    if not 0 <= config.imbalance < 1:
+        raise InputError(f"--imbalance {config.imbalance:g}: must lie in [0, 1)")
+    if config.init_weights is not None and not Path(config.init_weights).is_file():
+        raise InputError(f"--init-weights {config.init_weights}: no such file")
+    from_shards = config.graph is None and is_shard_dir(config.source)
+    if config.graph is None and not Path(config.source).exists():
+        raise InputError(f"{config.source}: no such file or directory")
+    if from_shards:
+        for flag, given in (("--reference", config.reference), ("--method", config.method),
+                            ("--assignment", config.assignment),
+                            ("--features", config.features), ("--labels", config.labels)):
+            if given:
+                raise InputError(f"{flag}: not allowed with a shard directory "
+                                 f"({config.source})")
+    elif (config.graph is None and Path(config.source).is_dir()
+          and not is_graph_dir(config.source)):
+        raise InputError(f"{config.source}: a directory without {MANIFEST_NAME} or "
+                         f"{GRAPH_MANIFEST} (neither a shard directory nor a graph directory)")
+    elif config.reference:
+        for flag, given in (("--method", config.method), ("--assignment", config.assignment),
+                            ("--workers", config.workers is not None)):
+            if given:
+                raise InputError(f"{flag}: not allowed with --reference (no partition)")
+    else:
+        if config.workers is None and config.assignment is None:
+            raise InputError("--workers: give --workers K with --method M, --assignment "
+                             "FILE, or --reference to train on a graph")
+        if config.method is None and config.assignment is None:
+            raise InputError("--method: give --method M or --assignment FILE with --workers")
+    if config.workers is not None and config.workers < 1:
+        raise InputError(f"--workers {config.workers}: must be at least 1")
+    if config.method is not None:
+        from shardtrain.plan.partition import METHODS
+        if config.method not in METHODS:
+            raise InputError(f"--method {config.method!r}: expected one of "
+                             f"{', '.join(METHODS)}")
+    if config.assignment is not None:
+        from shardtrain.data.readers import require_regular_file
+        require_regular_file(config.assignment, option="--assignment")
+    _check_run_options(config, transport)
+    return from_shards
+
+
+def _check_run_options(config: RunConfig, transport: str) -> None:
+    """--checkpoint, --checkpoint-every, --resume, --slow-worker, --max-frame-bytes."""
+    extras = [flag for flag, given in (
+        ("--checkpoint", config.checkpoint), ("--checkpoint-every", config.checkpoint_every),
+        ("--resume", config.resume), ("--slow-worker", config.slow_workers),
+        ("--max-frame-bytes", config.max_frame_bytes)) if given]
+    for flag in extras:
+        if config.reference and flag in ("--slow-worker", "--max-frame-bytes"):
+            raise InputError(f"{flag}: not available with --reference (partitioned runs only)")
+        if transport == "mpi" and flag != "--max-frame-bytes":
+            raise InputError(f"{flag}: not available with --transport mpi")
+    if config.checkpoint_every is not None and not (config.checkpoint or config.resume):
+        raise InputError("--checkpoint-every: give --checkpoint DIR as well")
+    for w, f in config.slow_workers.items():
+        if not (isinstance(w, int) and w >= 0 and math.isfinite(f) and
+                1 <= f <= MAX_SLOW_FACTOR):
+            raise InputError(f"--slow-worker {w}:{f:g}: expected W >= 0 and 1 <= FACTOR <= "
+                             f"{MAX_SLOW_FACTOR:g}")
+    if config.workers is not None:
+        check_slow_range(config.slow_workers, config.workers)
+    if config.resume and config.init_weights:
+        raise InputError("--init-weights: not allowed with --resume (the checkpoint holds "
+                         "the weights)")
+
+
+def check_slow_range(slow: dict[int, float], workers: int) -> None:
+    for w in slow:
+        if w >= workers:
+            raise InputError(f"--slow-worker {w}:{slow[w]:g}: worker {w} does not exist "
+                             f"(workers 0..{workers - 1})")
+
+
+def check_model_fits(dims, settings: TrainSettings) -> None:
+    """Refuse (naming --hidden/--layers) a model whose weights and Adam state (three
+    copies, every process holds them) alone exceed this machine's memory."""
+    import os
+
+    elements = sum(int(a) * int(b) + (int(b) if settings.bias else 0) for a, b in dims)
+    need = 3 * elements * settings.np_dtype.itemsize
+    try:
+        have = os.sysconf("SC_PHYS_PAGES") * os.sysconf("SC_PAGE_SIZE")
+    except (OSError, ValueError):
+        return
+    if need > have:
+        from shardtrain.units import human_bytes
+        raise InputError(f"--hidden {settings.hidden} --layers {settings.layers}: the "
+                         f"weights and optimiser state alone need {human_bytes(need)}, this "
+                         f"machine has {human_bytes(have)}")
+
+
+def load_init_weights(path, dims, settings: TrainSettings):
+    """Params from an .npz (no pickle), checked against the model: InputError naming it."""
+    from shardtrain.train import model
+
+    try:
+        with np.load(path, allow_pickle=False) as bundle:
+            arrays = {key: bundle[key] for key in bundle.files}
+    except (OSError, ValueError) as exc:
+        raise InputError(f"{path}: not a readable .npz of weights: "
+                         f"{' '.join(str(exc).split())}") from None
+    return model.params_from_arrays(arrays, dims, settings.bias, settings.np_dtype,
+                                    source=str(path))
+
+
+# ---------------------------------------------------------------- the run
+
+def run(config: RunConfig, *, transport: str = "pipes",
+        on_epoch: Callable[[dict], None] | None = None,
+        on_ready: Callable[[Ready], None] | None = None,
+        check: Callable[[], None] | None = None,
+        deliver: Callable[[RunOutcome], None] | None = None,
+        signals: bool = True) -> RunOutcome | None:
+    """Train as `config` says over `transport` ("pipes" or "mpi"); see the module text.
+
+    `signals`: turn Ctrl-C, SIGTERM and SIGHUP into `Interrupted` for the whole run (pipes
+    only; `session.signals_as_interrupt`). Under MPI, `mpi_driver.JobStopped` means rank 0's
+    checks failed before training (exit with its code); any other error happened after
+    the start: report it and call `abort_mpi_job`.
+    """
+    if transport == "mpi":
+        return _run_mpi(config, on_epoch, on_ready, check, deliver)
+    sess = session.Session()
+    with session.signals_as_interrupt() if signals else nullcontext():
+        try:
+            return _run_pipes(config, transport, sess, on_epoch, on_ready, check, deliver)
+        except KeyboardInterrupt as exc:     # a signal outside the training loop
+            raise sess.interrupted(exc) from None
+        finally:
+            sess.release()
+
+
+def _run_pipes(config, transport, sess, on_epoch, on_ready, check, deliver) -> RunOutcome:
+    from shardtrain.hooks import pause_point
+
+    from_shards = check_config(config, transport)
+    if check is not None:
+        check()                  # the caller's checks, before a checkpoint lock makes a folder
+    ckpts = session.open_checkpoints(sess, config.checkpoint, config.checkpoint_every,
+                                     config.resume)
+    settings = config.settings
+    done = ckpts.resumed.epoch if ckpts.resumed is not None else 0
+    with ExitStack() as stack:
+        labels = None
+        graph = None
+        if from_shards:
+            from shardtrain.plan.shards import check_shard_dir, load_manifest, split_counts
+            from shardtrain.train.accounting import model_dims_of, shard_dir_facts
+            from shardtrain.train.processes import ensure_descriptors
+
+            sess.phase = "checking the shard directory"
+            manifest = check_shard_dir(config.source)
+            facts = shard_dir_facts(config.source, manifest)
+            counts = split_counts(config.source, manifest)
+            if settings.early_stop and not counts["val"]:
+                raise InputError(f"--early-stop: {config.source} has no validation vertices "
+                                 f"(the validation split is empty)")
+            if config.workers is not None and config.workers != facts.workers:
+                raise InputError(f"--workers {config.workers}: {config.source} holds "
+                                 f"{facts.workers} shards")
+            ensure_descriptors(facts.workers)
+            dims = model_dims_of(facts, settings)
+            check_model_fits(dims, settings)
+            init = (load_init_weights(config.init_weights, dims, settings)
+                    if config.init_weights else None)
+            graph_doc = rundoc.graph_of_shards(config.source, facts)
+            if on_ready is not None:
+                on_ready(Ready(settings.epochs, done, shard_dir=str(config.source),
+                               facts=facts, manifest=load_manifest(config.source),
+                               counts=counts))
+            shard_dir = config.source
+            graph_fp = load_manifest(shard_dir).get("graph_fingerprint")
+            workers = facts.workers
+        else:
+            from shardtrain.data.graph import fingerprint
+            from shardtrain.train.reference import (
+                check_early_stop,
+                check_trainable,
+                model_dims,
+            )
+
+            sess.phase = "reading the graph"
+            graph, graph_doc = _load_graph(config)
+            check_trainable(graph)
+            check_early_stop(graph, settings)
+            dims = model_dims(graph, settings)
+            check_model_fits(dims, settings)
+            init = (load_init_weights(config.init_weights, dims, settings)
+                    if config.init_weights else None)
+            assignment = None
+            workers = config.workers
+            if config.assignment is not None:
+                from shardtrain.plan.partition import load_assignment
+                assignment, k = load_assignment(config.assignment, graph.num_vertices)
+                if workers is not None and workers != k:
+                    raise InputError(f"--workers {workers}: {config.assignment} assigns "
+                                     f"vertices to {k} workers")
+                workers = k
+            elif not config.reference:
+                from shardtrain.plan.partition import check_workers
+                check_workers(workers, graph.num_vertices)
+            if on_ready is not None:
+                on_ready(Ready(settings.epochs, done, graph=graph))
+            labels = graph.labels
+            graph_fp = fingerprint(graph)
+            shard_dir = None
+            if not config.reference:
+                from shardtrain.train.processes import ensure_descriptors
+
+                assert workers is not None      # checked above or set by the assignment
+                ensure_descriptors(workers)
+                shard_dir = stack.enter_context(session.temporary_folder())
+                session.build_shard_dir(sess, graph, workers=workers, method=config.method,
+                                        assignment=assignment, seed=settings.seed,
+                                        imbalance=config.imbalance, dims=dims,
+                                        shard_dir=shard_dir)
+        if not config.reference:
+            from shardtrain.train.accounting import shard_dir_facts
+
+            workers = shard_dir_facts(shard_dir).workers
+            check_slow_range(config.slow_workers, workers)
+        plan = session.checkpoint_plan(ckpts, settings, workers=workers or 1, dims=dims,
+                                       graph_fp=graph_fp, shard_dir=shard_dir,
+                                       source_label=str(config.source))
+        sess.phase = "starting the training"
+        pause_point("training")
+        if config.reference:
+            result = session.train_reference_checkpointed(graph, settings, init, plan,
+                                                          ckpts.resumed, on_epoch)
+        else:
+            from shardtrain.train.coordinator import train_partitioned
+            result = train_partitioned(shard_dir, settings, timeout_s=config.timeout_s,
+                                       init_params=init, on_epoch=on_epoch,
+                                       max_frame_bytes=config.max_frame_bytes,
+                                       checkpoint=plan, resume=ckpts.resumed,
+                                       slow=dict(config.slow_workers), link=config.link)
+            if labels is None:
+                labels = result.labels
+        sess.phase = "writing the outputs"
+    extra: dict = {}
+    if ckpts.resumed is not None:
+        extra["resumed_from"] = {"folder": str(config.resume),
+                                 "epoch": ckpts.resumed.epoch}
+    if plan is not None:
+        extra["checkpoint"] = {"folder": plan["folder"], "every": plan["every"]}
+    if config.slow_workers:
+        extra["slow_workers"] = {str(w): f for w, f in config.slow_workers.items()}
+    if config.link is not None:
+        extra["emulated_link"] = {"gbps": config.link.gbps,
+                                  "latency_us": config.link.latency_us}
+    mode = "reference" if config.reference else "partitioned"
+    doc = rundoc.run_document(settings, graph_doc, result, mode=mode, **extra)
+    outcome = RunOutcome(result, doc, labels, mode, transport)
+    if deliver is not None:
+        deliver(outcome)
+    return outcome
+
+
+def _load_graph(config: RunConfig):
+    """(graph, the run JSON's graph entry) of a graph source."""
+    if config.graph is not None:
+        return config.graph, rundoc.graph_of_file(config.source, config.graph)
+    from shardtrain.data.readers import load_graph
+
+    loaded = load_graph(config.source, features=config.features, labels=config.labels,
+                        input_dim=config.input_dim, seed=config.settings.seed)
+    return loaded.graph, rundoc.graph_of_file(loaded.source, loaded.graph, loaded.notes)
+
+
+# ---------------------------------------------------------------- under MPI
+
+def _prepare_mpi(config: RunConfig, check):
+    """Rank 0's checks: (settings, shard facts, manifest, init weights); InputError
+    otherwise."""
+    from shardtrain.plan.shards import load_manifest
+    from shardtrain.train.accounting import model_dims_of, shard_dir_facts
+
+    check_config(config, "mpi")
+    if check is not None:
+        check()
+    settings = config.settings
+    facts = shard_dir_facts(config.source)
+    if config.workers is not None and config.workers != facts.workers:
+        raise InputError(f"--workers {config.workers}: {config.source} holds "
+                         f"{facts.workers} shards")
+    dims = model_dims_of(facts, settings)
+    check_model_fits(dims, settings)
+    init = (load_init_weights(config.init_weights, dims, settings)
+            if config.init_weights else None)
+    return settings, facts, load_manifest(config.source), init
+
+
+def _run_mpi(config, on_epoch, on_ready, check, deliver) -> RunOutcome | None:
+    from shardtrain.train import mpi_driver
+
+    comm = mpi_driver.world()
+    settings: TrainSettings | None = None
+    facts = init = None
+    if comm.Get_rank() == mpi_driver.ROOT:
+        try:
+            settings, facts, manifest, init = _prepare_mpi(config, check)
+        except InputError as exc:
+            mpi_driver.stop_job(comm, EXIT_BAD_INPUT, MPI_STOP_TIMEOUT_S)
+            raise JobStopped(str(exc), EXIT_BAD_INPUT, report=True) from None
+        if on_ready is not None:
+            on_ready(Ready(settings.epochs, 0, shard_dir=str(config.source), facts=facts,
+                           manifest=manifest))
+    result = mpi_driver.train_partitioned(config.source, settings, comm=comm,
+                                          timeout_s=config.timeout_s, init_params=init,
+                                          on_epoch=on_epoch,
+                                          max_frame_bytes=config.max_frame_bytes)
+    if result is None:
+        return None
+    assert settings is not None and facts is not None      # rank 0 set them
+    doc = rundoc.run_document(settings, rundoc.graph_of_shards(config.source, facts), result,
+                              mode="partitioned", transport="mpi")
+    outcome = RunOutcome(result, doc, result.labels, "partitioned", "mpi")
+    if deliver is not None:
+        deliver(outcome)
+    return outcome
+
+
+def mpi_rank_and_size() -> tuple[int, int]:
+    """This process's rank and the job's size (InputError when mpi4py is missing)."""
+    from shardtrain.train import mpi_driver
+
+    comm = mpi_driver.world()
+    return comm.Get_rank(), comm.Get_size()
+
+
+def abort_mpi_job(code: int) -> None:
+    """End every rank of the MPI job with exit status `code` (after reporting the error)."""
+    from shardtrain.train import mpi_driver
+
+    mpi_driver.abort_job(mpi_driver.world(), code)

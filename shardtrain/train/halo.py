@@ -1,0 +1,138 @@
+"""Â_P's products on one shard over a transport: the halo kernels of a worker.
+
+Per layer, the model calls two closures built here from the shard (see the layout CONTRACT
+in `shardtrain/plan/shards.py`) and the transport:
+- propagate(l, M): send M[send_to(q)] to every peer q, receive q's rows straight into
+  their slice of a preallocated M_halo buffer, return Â_P [M; M_halo] (computed as
+  A_oo M + A_oh M_halo, see HaloOps);
+- propagate_t(l, G): Â_Pᵀ G has a row per owned AND halo column; the halo rows belong to
+  their owners, so send (A_ohᵀ G)[halo_from(q)] back to q and add what each peer sends for
+  my send rows at send_to(q) (indices are unique per peer) to A_ooᵀ G.
+"""
+from __future__ import annotations
+
+from typing import Callable
+
+import numpy as np
+import scipy.sparse as sp
+
+from shardtrain.compat import add_csr_product
+from shardtrain.transport.base import Transport
+from shardtrain.transport.wire import KIND_HALO
+
+FORWARD, BACKWARD, EVAL = "forward", "backward", "eval"
+
+
+class HaloOps:
+    """propagate / propagate_t of one shard over a transport, with buffers reused per
+    (layer, width): the halo rows received forward, the send blocks, the receive blocks.
+
+    Â_P is kept split by columns into its owned block A_oo (n_owned x n_owned) and halo
+    block A_oh (n_owned x n_halo), in the training dtype, with their transposes:
+    - forward:  Z = A_oo M + A_oh M_halo, both accumulated into one fresh output, so M is
+      never copied into a stacked [M; M_halo] and every row sums its entries in the same
+      column order as Â_P [M; M_halo] would (the same bits);
+    - backward: the halo rows A_ohᵀ G go to their owners first, then A_ooᵀ G is computed
+      and the peers' contributions are added at the send rows.
+    """
+
+    def __init__(self, shard, transport: Transport, profile, dtype):
+        self.shard, self.transport, self.profile = shard, transport, profile
+        self.n_owned = shard.num_owned
+        self.n_local = shard.num_owned + shard.num_halo
+        self.dtype = np.dtype(dtype)
+        with profile.phase("compute"):
+            adj = shard.adj.astype(self.dtype, copy=False)   # (n_owned, n_owned + n_halo)
+            adj = adj.tocsr() if adj.format != "csr" else adj
+            self.adj_own = column_block(adj, 0, self.n_owned)
+            self.adj_halo = column_block(adj, self.n_owned, self.n_local)
+            del adj
+            self.adj_own_t = transpose_csr(self.adj_own)        # once, not per hop
+            self.adj_halo_t = self.adj_halo.T.tocsr()
+        self.peers = shard.peers()
+        self.send_idx = {q: shard.send_to(q) for q in self.peers}
+        self.halo_rows = {q: shard.halo_from(q) for q in self.peers}
+        with profile.phase("compute"):
+            # out[send_to(q)] += received rows, as one pass of a 0/1 selection matrix (the
+            # send rows are unique per peer, so each output row gets at most one 1.0 * x)
+            self.scatter = {q: selection_matrix(self.send_idx[q], self.n_owned, self.dtype)
+                            for q in self.peers}
+        self.epoch = 0
+        self._blocks: dict[tuple, np.ndarray] = {}
+        self.on_phase: Callable[[str], None] = lambda text: None
+
+    def _block(self, key: tuple, rows: int, width: int) -> np.ndarray:
+        buf = self._blocks.get(key)
+        if buf is None or buf.shape != (rows, width):
+            buf = self._blocks[key] = np.empty((rows, width), dtype=self.dtype)
+        return buf
+
+    def propagate(self, direction: str) -> Callable[[int, np.ndarray], np.ndarray]:
+        def propagate(layer: int, m: np.ndarray) -> np.ndarray:
+            self.on_phase(f"epoch {self.epoch} {direction} exchange, layer {layer}")
+            width = m.shape[1]
+            with self.profile.phase("compute"):
+                m = np.ascontiguousarray(m, dtype=self.dtype)
+                outgoing = {}
+                for q in self.peers:
+                    idx = self.send_idx[q]
+                    buf = self._block(("send", layer, width, q), idx.shape[0], width)
+                    outgoing[q] = np.take(m, idx, axis=0, out=buf)
+                halo = self._block(("halo", layer, width), self.n_local - self.n_owned,
+                                   width)
+                incoming = {q: halo[self.halo_rows[q]] for q in self.peers}
+            with self.profile.phase("exchange"):
+                self.transport.exchange(outgoing, incoming, kind=KIND_HALO, epoch=self.epoch,
+                                        layer=layer, direction=direction)
+            self.on_phase(f"epoch {self.epoch} compute")
+            with self.profile.phase("compute"):
+                z = np.zeros((self.n_owned, width), dtype=self.dtype)   # fresh: the model's
+                add_csr_product(self.adj_own, m, z)
+                add_csr_product(self.adj_halo, halo, z)
+                return z
+        return propagate
+
+    def propagate_t(self, layer: int, g: np.ndarray) -> np.ndarray:
+        self.on_phase(f"epoch {self.epoch} backward exchange, layer {layer}")
+        width = g.shape[1]
+        with self.profile.phase("compute"):
+            g = np.ascontiguousarray(g, dtype=self.dtype)
+            halo = self._block(("halo_t", layer, width), self.n_local - self.n_owned, width)
+            halo.fill(0)
+            add_csr_product(self.adj_halo_t, g, halo)          # rows owned by the peers
+            outgoing = {q: halo[self.halo_rows[q]] for q in self.peers}
+            incoming = {q: self._block(("recv", layer, width, q), self.send_idx[q].shape[0],
+                                       width) for q in self.peers}
+        with self.profile.phase("exchange"):
+            self.transport.exchange(outgoing, incoming, kind=KIND_HALO, epoch=self.epoch,
+                                    layer=layer, direction=BACKWARD)
+        self.on_phase(f"epoch {self.epoch} compute")
+        with self.profile.phase("compute"):
+            out = np.zeros((self.n_owned, width), dtype=self.dtype)
+            add_csr_product(self.adj_own_t, g, out)
+            for q in self.peers:
+                add_csr_product(self.scatter[q], incoming[q], out)
+            return out
+
+
+def selection_matrix(rows: np.ndarray, n: int, dtype):
+    """CSR (n, len(rows)) with a 1 at (rows[i], i): S @ X puts row i of X at rows[i]."""
+    m = rows.shape[0]
+    return sp.csr_matrix((np.ones(m, dtype=dtype), (rows, np.arange(m))), shape=(n, m))
+
+
+def transpose_csr(a):
+    """aᵀ as CSR, or `a` itself when a is symmetric bit for bit (Â's owned block is: its
+    values are d_i^-1/2 d_j^-1/2), which saves a copy of the largest block."""
+    t = a.T.tocsr()
+    t.sort_indices()
+    same = (np.array_equal(t.indptr, a.indptr) and np.array_equal(t.indices, a.indices)
+            and np.array_equal(t.data, a.data))
+    return a if same else t
+
+
+def column_block(adj, lo: int, hi: int):
+    """Columns lo..hi-1 of a CSR matrix with sorted indices, renumbered from 0 (CSR, the
+    row order of entries kept)."""
+    block = adj[:, lo:hi]
+    return block.tocsr() if block.format != "csr" else block
