@@ -26,6 +26,7 @@ import numpy as np
 from shardtrain.plan.streaming import (
     chunk_entries,
     default_memory_budget,
+    require_metis_fits,
     stream_partition,
     vertex_chunks,
 )
@@ -174,6 +175,9 @@ def stream_survey(gd, methods: list[str], workers_list: list[int], settings: Sur
     dims, hops = model_shape(shape, settings)
     itemsize = np.dtype(settings.dtype).itemsize
     budget = default_memory_budget() if memory_budget is None else int(memory_budget)
+    if assignment is None and max(workers_list) > 1:
+        for method in methods:                 # refused before any plan is made
+            require_metis_fits(gd, method, budget)
     plans: list[dict] = []
     chunk_counts: list[dict] = []
     start = time.perf_counter()

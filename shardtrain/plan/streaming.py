@@ -39,15 +39,17 @@ METIS_METHODS = ("metis", "metis-balanced", "metis-volume")
 CHUNK_BYTES_PER_ENTRY = 48
 # ... and per vertex of a chunk (its row offsets, owners, degrees): 32 bytes
 CHUNK_BYTES_PER_VERTEX = 32
-MIN_CHUNK_ENTRIES = 1 << 16        # below this the per-chunk Python overhead dominates
+MIN_CHUNK_ENTRIES = 4096           # below this the per-chunk Python overhead dominates
 
 # METIS on a graph directory: the graph read into memory as the in-memory path holds it
-# (int64 indptr and indices: 8 (n + 1) + 16 m), plus what METIS and pymetis allocate.
-# Measured peak (RssAnon, `benchmarks/bench_stream_survey.py --metis-factor`) over the
-# loaded graph on parcel networks of 0.1-1 M edges, recursive and k-way at k = 4..64:
-# at most METIS_BYTES_PER_ENTRY per CSR entry plus METIS_BYTES_PER_VERTEX per vertex.
-METIS_BYTES_PER_ENTRY = 40
-METIS_BYTES_PER_VERTEX = 160
+# (int64 indptr and indices: 8 (n + 1) + 16 m), plus what METIS, pymetis and the plan's
+# candidates allocate. Measured peak RssAnon over the loaded graph (`python
+# benchmarks/bench_stream_survey.py --metis-memory`), parcel networks of 0.5-3.2 M CSR
+# entries at k = 4..256: 16-145 B per entry (the most where both schemes and the
+# vertex+edge plan run); the estimate takes 150 B per entry plus 200 B per vertex, above
+# every measured peak.
+METIS_BYTES_PER_ENTRY = 150
+METIS_BYTES_PER_VERTEX = 200
 
 
 def default_memory_budget() -> int:
@@ -114,6 +116,21 @@ def stream_range(n: int, k: int) -> np.ndarray:
     return out
 
 
+def require_metis_fits(gd, method: str, memory_budget: int | None) -> None:
+    """InputError, one line, when a METIS method's estimated memory exceeds the budget."""
+    if method not in METIS_METHODS:
+        return
+    budget = default_memory_budget() if memory_budget is None else int(memory_budget)
+    need = metis_memory_bytes(gd.num_vertices, gd.num_edges)
+    if need > budget:
+        from shardtrain.units import human_bytes
+
+        raise InputError(f"--method {method}: METIS would need about {human_bytes(need)} of "
+                         f"memory for {gd.path}, over --memory-budget {human_bytes(budget)}; "
+                         f"use a streaming method ({', '.join(STREAMING_METHODS)}) or a "
+                         f"larger budget")
+
+
 def stream_partition(gd, method: str, k: int, *, seed: int = 0, imbalance: float = 0.03,
                      memory_budget: int | None = None, on_pass=None
                      ) -> tuple[np.ndarray, dict]:
@@ -138,15 +155,7 @@ def stream_partition(gd, method: str, k: int, *, seed: int = 0, imbalance: float
         # a Graph view over the maps: int32 indices and mapped offsets, nothing read whole
         return fennel(gd.graph(), k, seed=seed, imbalance=imbalance, on_pass=on_pass).astype(
             small, copy=False), {"method": method}
-    budget = default_memory_budget() if memory_budget is None else int(memory_budget)
-    need = metis_memory_bytes(n, gd.num_edges)
-    if need > budget:
-        from shardtrain.units import human_bytes
-
-        raise InputError(f"--method {method}: METIS would need about {human_bytes(need)} of "
-                         f"memory for {gd.path}, over --memory-budget {human_bytes(budget)}; "
-                         f"use a streaming method ({', '.join(STREAMING_METHODS)}) or a "
-                         f"larger budget")
+    require_metis_fits(gd, method, memory_budget)
     assignment, details = partition_plan(gd.graph(load=True), method, k, seed=seed,
                                          imbalance=imbalance)
     return assignment.astype(small), details
