@@ -21,6 +21,7 @@ from shardtrain.data.readers import load_graph
 from shardtrain.data.synth import parcel_network
 from shardtrain.errors import InputError
 from shardtrain.plan.partition import load_assignment, partition_plan
+from shardtrain.plan.shards import check_shard_dir, load_shard
 from shardtrain.plan.stream_survey import count_plan, stream_survey
 from shardtrain.plan.streaming import (
     load_assignment_mapped,
@@ -229,3 +230,35 @@ def test_metis_refused_on_the_command_line(pair, run_cli):
     assert bad.returncode == 2 and "--memory-budget 'lots'" in bad.stderr
     vdata = run_cli("survey", folder, "--features", folder / "indptr.npy")
     assert vdata.returncode == 2 and "--features" in vdata.stderr
+
+
+# ---------------------------------------------------------------- split
+
+def _shard_dirs_equal(a: Path, b: Path) -> None:
+    ma, mb = (json.loads((d / "shards.json").read_text()) for d in (a, b))
+    ma["meta"].pop("source")
+    mb["meta"].pop("source")
+    assert ma == mb                                  # split id included: same shard contents
+    for name in ma["files"]:
+        with np.load(a / name, allow_pickle=False) as za, \
+                np.load(b / name, allow_pickle=False) as zb:
+            assert sorted(za.files) == sorted(zb.files)
+            for key in za.files:
+                x, y = za[key], zb[key]
+                assert x.dtype == y.dtype and x.shape == y.shape, (name, key)
+                np.testing.assert_array_equal(x, y, err_msg=f"{name} {key}")
+
+
+@pytest.mark.parametrize("how", [("--method", "fennel", "--workers", "6"),
+                                 ("--method", "metis", "--workers", "3"),
+                                 ("--assignment", "mine.npy")])
+def test_split_of_a_graph_dir_writes_the_shards_of_the_file(pair, run_cli, tmp_path, how):
+    file, folder, g = pair
+    np.save(tmp_path / "mine.npy", (np.arange(g.num_vertices) % 4).astype(np.int64))
+    how = tuple(str(tmp_path / x) if x.endswith(".npy") else x for x in how)
+    for graph, out in ((file, "from_file"), (folder, "from_dir")):
+        r = run_cli("split", graph, *how, "--out", tmp_path / out)
+        assert r.returncode == 0, r.stderr
+    _shard_dirs_equal(tmp_path / "from_file", tmp_path / "from_dir")
+    manifest = check_shard_dir(tmp_path / "from_dir")      # what a worker checks first
+    assert load_shard(tmp_path / "from_dir", manifest["workers"] - 1).num_owned > 0
