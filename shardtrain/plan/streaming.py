@@ -19,6 +19,7 @@ from pathlib import Path
 
 import numpy as np
 
+from shardtrain.data.graph import Graph
 from shardtrain.errors import InputError
 from shardtrain.plan.partition import (
     METHODS,
@@ -86,9 +87,12 @@ def vertex_chunks(indptr: np.ndarray, max_entries: int, max_vertices: int | None
 
 
 def chunk_entries(budget: int, num_vertices: int, k: int) -> int:
-    """CSR entries per survey chunk under `budget` bytes, after the O(n) arrays (the
-    assignment) and the O(k^2) counters a plan holds; never below MIN_CHUNK_ENTRIES."""
-    fixed = num_vertices * (owner_dtype(k).itemsize + 4) + 3 * k * k * 8
+    """CSR entries per survey chunk under `budget` bytes, after the interpreter, the O(n)
+    arrays (the assignment) and the O(k^2) counters a plan holds; never below MIN_CHUNK_ENTRIES."""
+    from shardtrain.plan.survey import BASELINE_RSS_BYTES
+
+    # the interpreter with numpy and scipy counts against the budget too
+    fixed = num_vertices * (owner_dtype(k).itemsize + 4) + 3 * k * k * 8 + BASELINE_RSS_BYTES
     return max((int(budget) - fixed) // CHUNK_BYTES_PER_ENTRY, MIN_CHUNK_ENTRIES)
 
 
@@ -152,8 +156,9 @@ def stream_partition(gd, method: str, k: int, *, seed: int = 0, imbalance: float
     if method == "range":
         return stream_range(n, k), {"method": method}
     if method == "fennel":
-        # a Graph view over the maps: int32 indices and mapped offsets, nothing read whole
-        return fennel(gd.graph(), k, seed=seed, imbalance=imbalance, on_pass=on_pass).astype(
+        # plain array views of the maps (int32 indices, mapped offsets): nothing read whole
+        view = Graph(np.asarray(gd.indptr), np.asarray(gd.indices))
+        return fennel(view, k, seed=seed, imbalance=imbalance, on_pass=on_pass).astype(
             small, copy=False), {"method": method}
     require_metis_fits(gd, method, memory_budget)
     assignment, details = partition_plan(gd.graph(load=True), method, k, seed=seed,
