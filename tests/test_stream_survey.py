@@ -232,6 +232,14 @@ def test_metis_refused_on_the_command_line(pair, run_cli):
     assert vdata.returncode == 2 and "--features" in vdata.stderr
 
 
+def test_split_refuses_metis_over_the_budget_and_writes_nothing(pair, run_cli, tmp_path):
+    _, folder, _ = pair
+    r = run_cli("split", folder, "--method", "metis", "--workers", "4", "--memory-budget",
+                "1M", "--out", tmp_path / "shards")
+    assert r.returncode == 2 and "METIS would need about" in r.stderr
+    assert "Traceback" not in r.stderr and not (tmp_path / "shards").exists()
+
+
 # ---------------------------------------------------------------- split
 
 def _shard_dirs_equal(a: Path, b: Path) -> None:

@@ -37,6 +37,10 @@ def add_arguments(parser) -> None:
                      help="vertex -> worker file (.npy, or one worker id per line)")
     parser.add_argument("--imbalance", metavar="X", type=_imbalance, default=0.03,
                         help="allowed excess of the largest part over the mean (default 0.03)")
+    parser.add_argument("--memory-budget", metavar="SIZE", default=None,
+                        help="for a graph directory: memory METIS may use, e.g. 4G (default a "
+                             "quarter of this machine's memory); the streaming methods and "
+                             "the shard writer need far less")
     parser.add_argument("--out", metavar="DIR", required=True, help="shard directory to write")
     parser.add_argument("--overwrite", action="store_true",
                         help="replace DIR if it exists (only once the new shards are complete)")
@@ -73,7 +77,10 @@ def run(args) -> int:
     from shardtrain.data.graphdir import is_graph_dir
 
     if is_graph_dir(args.graph):
-        return _run_graph_dir(args, out)
+        from shardtrain.units import parse_size
+
+        budget = None if args.memory_budget is None else parse_size(args.memory_budget)
+        return _run_graph_dir(args, out, budget)
     loaded = load_graph_from_args(args)
     graph = loaded.graph
     start = time.perf_counter()
@@ -121,7 +128,7 @@ def run(args) -> int:
     return 0
 
 
-def _run_graph_dir(args, out: Path) -> int:
+def _run_graph_dir(args, out: Path, budget: int | None) -> int:
     """GRAPH is a graph directory: the plan streams, and the shards are built and written
     one at a time (`plan.stream_split`), the same files as a split of the graph in memory."""
     from shardtrain.data.graphdir import open_graph_dir
@@ -145,7 +152,7 @@ def _run_graph_dir(args, out: Path) -> int:
         k = args.workers
         check_workers(k, gd.num_vertices)
         assignment, details = stream_partition(gd, args.method, k, seed=args.seed,
-                                               imbalance=args.imbalance)
+                                               imbalance=args.imbalance, memory_budget=budget)
         method = args.method
     partitioned = time.perf_counter()
     man = gd.manifest

@@ -129,7 +129,7 @@ def stream_survey_plan(gd, method: str, k: int, *, hops, itemsize: int, seed: in
     t1, c1 = time.perf_counter(), time.process_time()
     passes["partition"] = t1 - t0
     entries = entries_per_chunk or chunk_entries(memory_budget, gd.num_vertices, k)
-    chunks = vertex_chunks(gd.indptr, entries)
+    chunks = vertex_chunks(gd.indptr, entries, entries)   # rows bounded too: isolated ones
     bar = progress(f"{method} k={k} count", 2 * gd.num_edges) if progress else None
     counts = count_plan(gd.indptr, gd.indices, assignment, k, chunks,
                         on_chunk=None if bar is None else bar.update)
