@@ -29,3 +29,24 @@ def human_bytes(n: float) -> str:
         return f"{sign}{int(n)} B"
     text = f"{n:.0f}" if n >= 100 else f"{n:.1f}" if n >= 10 else f"{n:.2f}"
     return f"{sign}{text} {unit}"
+
+
+_SIZE_FACTORS = {"": 1, "B": 1, "K": 2**10, "M": 2**20, "G": 2**30, "T": 2**40, "P": 2**50}
+
+
+def parse_size(text: str, option: str = "--memory-budget") -> int:
+    """'512M' -> 536870912: an integer or decimal number of bytes with an optional binary
+    suffix K, M, G, T or P (powers of 1024; 'KiB', 'KB', 'k' and a trailing 'B' are taken
+    too). InputError naming `option` for anything else, and for sizes below one byte."""
+    import re
+
+    from shardtrain.errors import InputError
+
+    match = re.fullmatch(r"\s*(\d+(?:\.\d*)?|\.\d+)\s*([kKmMgGtTpP]?)(?:i?[bB])?\s*",
+                         str(text))
+    if match is None:
+        raise InputError(f"{option} {text!r}: expected a size such as 512M, 4G or 1073741824")
+    value = float(match.group(1)) * _SIZE_FACTORS[match.group(2).upper()]
+    if value < 1 or value > 2**62:
+        raise InputError(f"{option} {text!r}: must be between 1 byte and 4 EiB")
+    return int(value)

@@ -359,7 +359,7 @@ def test_bad_parquet_is_one_line_exit_2_naming_file_and_row_group(tmp_path, run_
 
 
 @pytest.mark.parametrize("text,option", [
-    ("routes.csv", None), ("--memory-budget", "12Q"), ("--memory-budget", "100K")])
+    ("routes.csv", None), ("--memory-budget", "12Q"), ("--memory-budget", "10K")])
 def test_bad_text_and_bad_options_are_one_line_exit_2(tmp_path, run_cli, text, option):
     path = tmp_path / "routes.csv"
     path.write_text("0,1\n1,2\n2,x\n")

@@ -9,6 +9,7 @@ import sys
 from shardtrain import defaults
 from shardtrain.data.readers import LoadedGraph, load_graph
 from shardtrain.errors import InputError
+from shardtrain.units import parse_size
 
 
 def add_graph_arguments(parser: argparse.ArgumentParser) -> None:
@@ -49,25 +50,7 @@ def load_graph_from_args(args: argparse.Namespace) -> LoadedGraph:
                       input_dim=args.input_dim, seed=args.seed)
 
 
-_SIZE = re.compile(r"(\d+(?:\.\d*)?|\.\d+)\s*([kmgt]?)(i?b?)", re.IGNORECASE)
-_SIZE_POWER = {"": 0, "k": 1, "m": 2, "g": 3, "t": 4}
-MIN_MEMORY_BUDGET = 1 << 20
-
-
-def parse_size(text: str, option: str) -> int:
-    """'512M', '4G', '1.5GiB', '300000' -> bytes. K, M, G, T are powers of 1024, with an
-    optional 'i' and 'B' ('4GB' = '4GiB' = '4G'); a plain number is bytes."""
-    match = _SIZE.fullmatch(str(text).strip())
-    if match is None:
-        raise InputError(f"{option} {text!r}: expected a size such as 512M, 4G or 1.5G")
-    return int(float(match.group(1)) * 1024 ** _SIZE_POWER[match.group(2).lower()])
-
-
-def default_memory_budget() -> int:
-    """A quarter of the memory this process can count on (`data.memory.memory_limit`)."""
-    from shardtrain.data.memory import memory_limit
-
-    return max(MIN_MEMORY_BUDGET, memory_limit()[0] // 4)
+MIN_MEMORY_BUDGET = 64 << 10      # below this no pass has room for a useful chunk
 
 
 def memory_budget_type(option: str = "--memory-budget"):
@@ -78,7 +61,7 @@ def memory_budget_type(option: str = "--memory-budget"):
 
         value = parse_size(text, option)
         if value < MIN_MEMORY_BUDGET:
-            raise InputError(f"{option} {text!r}: must be at least 1M")
+            raise InputError(f"{option} {text!r}: must be at least 64K")
         limit, said = memory_limit()
         if value > limit:
             raise InputError(f"{option} {text!r}: more than the memory there is ({said})")
@@ -86,13 +69,14 @@ def memory_budget_type(option: str = "--memory-budget"):
     return convert
 
 
-def add_memory_budget_argument(parser: argparse.ArgumentParser) -> None:
-    """--memory-budget SIZE (default: a quarter of physical memory), for every command
-    that streams."""
+def add_memory_budget_argument(parser: argparse.ArgumentParser, help: str | None = None
+                               ) -> None:
+    """--memory-budget SIZE (default None: `data.memory.default_memory_budget`, a quarter
+    of physical memory), for every command that streams; parsed by `units.parse_size`."""
     parser.add_argument("--memory-budget", metavar="SIZE", type=memory_budget_type(),
                         default=None,
-                        help="working memory to stay within, e.g. 512M or 4G (default: a "
-                             "quarter of this machine's memory)")
+                        help=help or "working memory to stay within, e.g. 512M or 4G "
+                                     "(default: a quarter of this machine's memory)")
 
 
 def int_type(option: str):

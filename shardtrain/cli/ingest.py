@@ -15,9 +15,9 @@ from pathlib import Path
 
 from shardtrain.cli.common import (
     add_memory_budget_argument,
-    default_memory_budget,
     terminal_progress,
 )
+from shardtrain.data.memory import default_memory_budget
 from shardtrain.errors import InputError
 
 

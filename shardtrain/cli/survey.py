@@ -15,11 +15,13 @@ from pathlib import Path
 from shardtrain import defaults
 from shardtrain.cli.common import (
     add_graph_arguments,
+    add_memory_budget_argument,
     add_plan_shape_arguments,
     load_graph_from_args,
     parse_int_list,
     parse_name_list,
 )
+from shardtrain.data.graphdir import is_graph_dir
 from shardtrain.errors import InputError
 from shardtrain.files import check_paths, write_json_atomic, write_text_atomic
 from shardtrain.plan.survey import SurveySettings, check_plans, survey
@@ -96,6 +98,10 @@ def add_arguments(parser) -> None:
              "order) in place of --method; the worker count follows from it (--workers, "
              "if given, must agree)")
     add_plan_shape_arguments(parser)
+    add_memory_budget_argument(
+        parser, help="memory a survey of a graph directory may use, e.g. 512M or 4G (default "
+                     "a quarter of this machine's memory): sets the chunk of rows read at a "
+                     "time and whether METIS may run")
     add("--json", default=None, metavar="OUT.json", help="write the full survey as JSON")
     add("--csv", default=None, metavar="OUT.csv", help="write one row per plan as CSV")
     add("--plot", default=None, metavar="DIR",
@@ -170,6 +176,9 @@ def run(args) -> int:
                         "--labels": args.labels, "--assignment": args.assignment},
                 outputs={"--json": args.json, "--csv": args.csv}, out_dirs={"--plot": args.plot})
     settings = _settings(args)
+    budget = args.memory_budget
+    if is_graph_dir(args.graph):
+        return _run_graph_dir(args, methods, workers, settings, budget)
     loaded = load_graph_from_args(args)
     graph = loaded.graph
     assignment = None
@@ -187,16 +196,68 @@ def run(args) -> int:
     for note in getattr(loaded, "notes", None) or []:
         print(note, file=sys.stderr)
 
-    def progress(plan):
-        print(f"  {plan['method']:<14} k={plan['workers']:<5} partition "
-              f"{plan['partition_s']:.2f} s, shards {plan['build_s']:.2f} s", file=sys.stderr)
-
-    result = survey(graph, methods, workers, settings, assignment=assignment, on_plan=progress)
+    result = survey(graph, methods, workers, settings, assignment=assignment,
+                    on_plan=_plan_line)
     result["graph"]["source"] = str(getattr(loaded, "source", args.graph))
+    _report(args, result)
+    return 0
+
+
+def _plan_line(plan) -> None:
+    print(f"  {plan['method']:<14} k={plan['workers']:<5} partition "
+          f"{plan['partition_s']:.2f} s, shards {plan['build_s']:.2f} s", file=sys.stderr)
+
+
+def _bar_factory():
+    """A named tqdm bar per pass on a terminal; None (no bars) otherwise."""
+    if not sys.stderr.isatty():
+        return None
+    from tqdm import tqdm
+
+    def make(name: str, total):
+        return tqdm(total=total, desc=name, unit="pass" if total is None else "entry",
+                    unit_scale=total is not None, leave=False, file=sys.stderr)
+    return make
+
+
+def _run_graph_dir(args, methods, workers, settings, budget) -> int:
+    """GRAPH is a graph directory: plans and survey stream over its mapped arrays."""
+    from shardtrain.data.graphdir import open_graph_dir
+    from shardtrain.plan.stream_survey import stream_survey
+    from shardtrain.plan.streaming import load_assignment_mapped
+
+    for option, value in (("--features", args.features), ("--labels", args.labels)):
+        if value is not None:
+            raise InputError(f"{option}: {args.graph} is a graph directory, which holds its "
+                             f"own vertex data (give it to `ingest` instead)")
+    gd = open_graph_dir(args.graph)
+    assignment = None
+    if args.assignment is not None:
+        assignment, k = load_assignment_mapped(args.assignment, gd.num_vertices)
+        if args.workers is not None and workers != [k]:
+            raise InputError(f"--workers {args.workers}: {args.assignment} assigns "
+                             f"vertices to {k} workers")
+        methods, workers = [f"file:{Path(args.assignment).name}"], [k]
+
+    def line(plan) -> None:
+        print(f"  {plan['method']:<14} k={plan['workers']:<5} partition "
+              f"{plan['partition_s']:.2f} s, count {plan['build_s']:.2f} s", file=sys.stderr)
+
+    result = stream_survey(gd, methods, workers, settings, assignment=assignment,
+                           memory_budget=budget, on_plan=line, progress=_bar_factory())
+    result["graph"]["source"] = str(args.graph)
+    stream = result["streaming"]
+    print(f"streamed under a memory budget of {human_bytes(stream['memory_budget_bytes'])}: "
+          f"peak {human_bytes(stream['peak_rss_bytes'])} (anonymous + shared; mapped file "
+          f"pages {human_bytes(stream['peak_file_rss_bytes'])} beside)", file=sys.stderr)
+    _report(args, result)
+    return 0
+
+
+def _report(args, result: dict) -> None:
     m = result["model"]
     print(f"{result['graph']['vertices']:,} vertices, {result['graph']['edges']:,} edges; "
           f"GCN {' -> '.join(str(d) for d in [m['dims'][0][0]] + [d[1] for d in m['dims']])} "
           f"({m['dtype']}); traffic is payload per training epoch")
     print(format_table(table_rows(result), TABLE_COLUMNS))
     _write_outputs(args, result)
-    return 0

@@ -75,7 +75,8 @@ def run(args) -> int:
 
 def _run_dir(args) -> int:
     """synth --out GRAPH_DIR: the streamed network through ingest's external sort."""
-    from shardtrain.cli.common import default_memory_budget, terminal_progress
+    from shardtrain.cli.common import terminal_progress
+    from shardtrain.data.memory import default_memory_budget
     from shardtrain.data.synth import ParcelStream, write_parcel_dir
     from shardtrain.units import human_bytes
 

@@ -111,3 +111,9 @@ def require_memory(nbytes: int, source: str, what: str = "load") -> None:
     if nbytes > limit:
         raise InputError(f"{source}: would need {human_bytes(nbytes)} of memory to {what} "
                          f"({said})")
+
+
+def default_memory_budget() -> int:
+    """`--memory-budget`'s default for every command that streams: a quarter of the memory
+    this process can count on (`memory_limit`), at least 64 MiB."""
+    return max(memory_limit()[0] // 4, 64 << 20)

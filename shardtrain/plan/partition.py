@@ -240,7 +240,7 @@ def range_blocks(graph: Graph, k: int, *, seed: int = 0, imbalance: float = 0.03
 # ----------------------------------------------------------------------------- streaming
 
 def fennel(graph: Graph, k: int, *, seed: int = 0, imbalance: float = 0.03,
-           passes: int = 8) -> np.ndarray:
+           passes: int = 8, on_pass=None) -> np.ndarray:
     """Fennel streaming partitioning (Tsourakakis, Gkantsidis, Radunovic & Vojnovic, WSDM
     2014): vertex v goes to argmax_i |N(v) ∩ P_i| - alpha*gamma*|P_i|^(gamma-1), with
     gamma = 1.5, alpha = sqrt(k) m / n^1.5, and parts at the load limit (1+imbalance) n/k closed.
@@ -249,7 +249,10 @@ def fennel(graph: Graph, k: int, *, seed: int = 0, imbalance: float = 0.03,
     vertices again with sizes reset, counting neighbours not yet placed in this pass at their
     part from the previous pass. One pass leaves the early vertices, which saw no placed
     neighbour, scattered; a few passes repair that (up to `passes`, stopping early once a
-    pass changes nothing). A pass costs O(m + n k).
+    pass changes nothing). A pass costs O(m + n k); `on_pass(i)` is called after pass i
+    (progress and per-pass timings of the streaming survey). Works on any Graph whose
+    arrays are memory maps with int32 indices (a `GraphDir.graph()`), and returns the
+    assignment in `owner_dtype(k)`.
 
     Vertices stream in a seeded random order, as in the paper's experiments: an order that
     follows the communities would spread each one over all parts before any neighbour is
@@ -259,16 +262,19 @@ def fennel(graph: Graph, k: int, *, seed: int = 0, imbalance: float = 0.03,
     a part's remaining room within a batch take their next best open part.
     """
     n = graph.num_vertices
+    small = owner_dtype(k)           # the assignment: 2 bytes per vertex up to 32767 parts
     if k == 1:
-        return np.zeros(n, dtype=np.int64)
+        return np.zeros(n, dtype=small)
     gamma = 1.5
     alpha = np.sqrt(k) * max(graph.num_edges, 1) / n ** 1.5
     capacity = max(int(np.ceil(n / k)), int((1.0 + imbalance) * n / k))   # hard load limit
     batch = int(min(max(8, imbalance * n / (2 * k)), 65536))
-    stream = np.random.default_rng(seed).permutation(n)
-    part = np.full(n, -1, dtype=np.int64)       # the previous pass's answer (-1: none yet)
+    # the same seeded order at any size, held as int32 where the ids fit (half the memory)
+    stream = np.random.default_rng(seed).permutation(n).astype(
+        np.int32 if n < 2**31 else np.int64)
+    part = np.full(n, -1, dtype=small)          # the previous pass's answer (-1: none yet)
     indptr, indices = graph.indptr, graph.indices
-    for _ in range(passes):
+    for _pass in range(passes):
         previous = part.copy()
         sizes = np.zeros(k, dtype=np.float64)
         for start in range(0, n, batch):        # a loop over batches, not over vertices
@@ -284,9 +290,17 @@ def fennel(graph: Graph, k: int, *, seed: int = 0, imbalance: float = 0.03,
             counts = np.bincount(row[placed] * k + nbr_part[placed], minlength=b * k)
             score = counts.reshape(b, k) - alpha * gamma * np.sqrt(sizes)
             part[vertices] = _choose_within_capacity(score, sizes, capacity)
+        if on_pass is not None:
+            on_pass(_pass)
         if np.array_equal(part, previous):
             break
     return part
+
+
+def owner_dtype(k: int) -> np.dtype:
+    """The smallest signed dtype for worker ids 0..k-1 and -1 (an assignment held by a
+    streaming pass, which stays O(n) small)."""
+    return np.dtype(np.int16 if k < 2**15 else np.int32)
 
 
 def _choose_within_capacity(score: np.ndarray, sizes: np.ndarray, capacity: int) -> np.ndarray:

@@ -244,20 +244,40 @@ def predict_memory(shard, hops: list[LayerHop], itemsize: int, *, param_elements
     falls a little short: the rest is short-lived temporaries of the products and the loss,
     not modelled term by term).
     """
-    n, h = shard.num_owned, shard.num_halo
-    s = int(shard.send_ptr[-1])
     adj = shard.adj
-    nnz = int(adj.nnz)
+    return predict_memory_counts(
+        shard.num_owned, shard.num_halo, int(shard.send_ptr[-1]), int(adj.nnz),
+        int(np.count_nonzero(adj.indices >= shard.num_owned)),
+        int(np.count_nonzero(np.diff(shard.send_ptr))), shard.workers, hops, itemsize,
+        param_elements=param_elements, input_dim=input_dim,
+        feature_itemsize=feature_itemsize, dropout=dropout,
+        index_itemsizes=(adj.indptr.dtype.itemsize, adj.indices.dtype.itemsize),
+        value_itemsize=adj.data.dtype.itemsize)
+
+
+def local_index_itemsize(nnz: int, ncols: int) -> int:
+    """Index width of a shard's local CSR: scipy keeps (or narrows to) int32 indices when
+    its entries and columns fit, as `build_shards` hands it int32 or fitting int64 arrays."""
+    return 4 if max(nnz, ncols) <= 2**31 - 1 else 8
+
+
+def predict_memory_counts(n: int, h: int, s: int, nnz: int, nnz_halo: int, peers: int,
+                          k: int, hops: list[LayerHop], itemsize: int, *, param_elements: int,
+                          input_dim: int, feature_itemsize: int | None = None,
+                          dropout: bool = True, index_itemsizes: tuple[int, int] | None = None,
+                          value_itemsize: int = 8) -> int:
+    """`predict_memory` from a worker's counts alone: owned n, halo h, rows sent s, entries
+    of Â nnz (self-loops included) of which nnz_halo in halo columns, send peers, k."""
     b = int(itemsize)
-    ip, ix = adj.indptr.dtype.itemsize, adj.indices.dtype.itemsize
+    if index_itemsizes is None:
+        index_itemsizes = (local_index_itemsize(nnz, n + h),) * 2
+    ip, ix = index_itemsizes
     fb = b if feature_itemsize is None else int(feature_itemsize)
     total = BASELINE_RSS_BYTES
-    total += (n + h + s) * 8 + 2 * shard.send_ptr.nbytes
-    total += (n + 1) * ip + nnz * (ix + adj.data.dtype.itemsize)     # shard's Â
+    total += (n + h + s) * 8 + 2 * (k + 1) * 8
+    total += (n + 1) * ip + nnz * (ix + value_itemsize)     # shard's Â
     total += 2 * (n + 1) * ip + nnz * (ix + b)       # owned and halo column blocks of Â
-    nnz_halo = int(np.count_nonzero(adj.indices >= n))
     total += (h + 1) * ip + nnz_halo * (ix + b)      # the halo block's transpose
-    peers = int(np.count_nonzero(np.diff(shard.send_ptr)))
     total += peers * (n + 1) * 4 + s * (4 + b)       # selection matrices (scatter-add)
     total += n * input_dim * b + (n * input_dim * fb if fb != b else 0) + n * 8 + 3 * n
     backward_peak = 0
@@ -313,21 +333,36 @@ def survey_plan(graph, method: str, k: int, *, hops: list[LayerHop], itemsize: i
                                       input_dim=hops[0].d_in, feature_itemsize=fsize)
                        for s in shards])
     del shards            # refcounting frees them now: the next plan starts clean
+    return plan_record(method, k, graph.num_vertices, owned, halo, local_edges, cut_entries,
+                       memory, traffic, details,
+                       {"partition_s": t1 - t0, "build_s": t2 - t1,
+                        "partition_cpu_s": c1 - c0, "build_cpu_s": c2 - c1})
+
+
+def plan_record(method: str, k: int, num_vertices: int, owned, halo, local_edges,
+                cut_entries, memory, traffic: dict, details: dict, times: dict) -> dict:
+    """One plan of the survey JSON from per-worker counts (both surveys write it)."""
+    owned, halo = np.asarray(owned, dtype=np.int64), np.asarray(halo, dtype=np.int64)
+    local_edges = np.asarray(local_edges, dtype=np.int64)
+    memory = np.asarray(memory, dtype=np.int64)
     pair = np.asarray(traffic["pair_bytes"], dtype=np.int64)
     ring = np.asarray(traffic["allreduce_bytes_per_worker"], dtype=np.int64)
     # a ring rank receives what its predecessor sends
     sent = pair.sum(axis=1) + ring
     received = pair.sum(axis=0) + np.roll(ring, 1)
-    cut = int(cut_entries.sum() // 2)
+    cut = int(np.asarray(cut_entries, dtype=np.int64).sum() // 2)
     shard_rows = [{"worker": w, "owned": int(owned[w]), "halo": int(halo[w]),
                    "local_edges": int(local_edges[w]), "memory_bytes": int(memory[w]),
                    "bytes_sent": int(sent[w]), "bytes_received": int(received[w])}
                   for w in range(k)]
+    timing = {key: times[key] for key in ("partition_s", "build_s", "partition_cpu_s",
+                                          "build_cpu_s") if key in times}
+    more = {key: v for key, v in times.items() if key not in timing}
     return SurveyPlan(
         method=method,
         workers=k,
         edge_cut=cut,
-        replication_factor=float((owned.sum() + halo.sum()) / graph.num_vertices),
+        replication_factor=float((owned.sum() + halo.sum()) / num_vertices),
         max_memory_bytes=int(memory.max()),
         epoch_payload_bytes=epoch_payload_bytes(traffic),
         shards=shard_rows,
@@ -337,10 +372,10 @@ def survey_plan(graph, method: str, k: int, *, hops: list[LayerHop], itemsize: i
                    "halo": _max_over_mean(halo),
                    "bytes_sent": _max_over_mean(sent)},
         partition=details,
-        partition_s=t1 - t0,
-        build_s=t2 - t1,
-        partition_cpu_s=c1 - c0,      # this process's CPU time: the machine may be shared
-        build_cpu_s=c2 - c1,
+        # partition_s, build_s and their *_cpu_s (this process's CPU time: the machine may
+        # be shared); the streaming survey adds its seconds per pass after them
+        **timing,
+        extra=more,
     ).to_dict()
 
 
@@ -405,10 +440,17 @@ def survey(graph, methods: list[str], workers_list: list[int], settings: SurveyS
             plans.append(plan)
             if on_plan is not None:
                 on_plan(plan)
+    return survey_document(graph.num_vertices, graph.num_edges, structure_fingerprint(graph),
+                           settings, dims, hops, plans)
+
+
+def survey_document(num_vertices: int, num_edges: int, structure: str,
+                    settings: SurveySettings, dims, hops: list[LayerHop], plans: list) -> dict:
+    """The survey JSON around its plans (both surveys write it)."""
     return {
-        "graph": {"vertices": graph.num_vertices, "edges": graph.num_edges,
+        "graph": {"vertices": num_vertices, "edges": num_edges,
                   "input_dim": dims[0][0], "classes": dims[-1][1],
-                  "structure_fingerprint": structure_fingerprint(graph)},
+                  "structure_fingerprint": structure},
         "model": {"layers": settings.layers, "hidden": settings.hidden,
                   "dtype": settings.dtype, "bias": settings.bias,
                   "parameters": parameter_elements(hops, bias=settings.bias),
