@@ -1,6 +1,6 @@
 """Compare two snapshots of ``scripts/outputs_snapshot.py``: every JSON, CSV and npz file.
 
-    python scripts/outputs_diff.py BEFORE_DIR AFTER_DIR
+    python scripts/outputs_diff.py BEFORE_DIR AFTER_DIR     (or two JSON files)
 
 JSON documents must be equal key by key except timing fields: a key ending in ``_s``, holding
 ``_s_per_``, named ``seconds`` or ending in ``rss_bytes`` (and everything under such a key),
@@ -47,6 +47,10 @@ def differences(a: object, b: object, path: str, out: list[str],
 
 
 def compare(before: Path, after: Path) -> list[str]:
+    if before.is_file() and after.is_file():        # two JSON documents
+        found: list[str] = []
+        differences(json.loads(before.read_text()), json.loads(after.read_text()), "", found)
+        return found
     kept = {".json", ".csv", ".npz"}
     names_a = {p.relative_to(before) for p in before.rglob("*") if p.suffix in kept}
     names_b = {p.relative_to(after) for p in after.rglob("*") if p.suffix in kept}
@@ -54,7 +58,7 @@ def compare(before: Path, after: Path) -> list[str]:
     out += [f"{name}: only after" for name in sorted(names_b - names_a)]
     for name in sorted(names_a & names_b):
         fa, fb = before / name, after / name
-        found: list[str] = []
+        found = []
         if name.suffix == ".json":
             differences(json.loads(fa.read_text()), json.loads(fb.read_text()), "", found,
                         TIMED_CHOICES.get(name.as_posix(), ()))

@@ -12,6 +12,8 @@ import io
 import sys
 from pathlib import Path
 
+import numpy as np
+
 from shardtrain import defaults
 from shardtrain.cli.common import (
     add_graph_arguments,
@@ -22,7 +24,7 @@ from shardtrain.cli.common import (
     parse_name_list,
 )
 from shardtrain.data.graphdir import is_graph_dir
-from shardtrain.errors import InputError
+from shardtrain.errors import InputError, RunError
 from shardtrain.files import check_paths, write_json_atomic, write_text_atomic
 from shardtrain.plan.survey import SurveySettings, check_plans, survey
 from shardtrain.report.tables import format_table
@@ -102,6 +104,10 @@ def add_arguments(parser) -> None:
         parser, help="memory a survey of a graph directory may use, e.g. 512M or 4G (default "
                      "a quarter of this machine's memory): sets the chunk of rows read at a "
                      "time and whether METIS may run")
+    add("--transport", default="local", choices=("local", "mpi"),
+        help="local (default): one process; mpi: run under `mpiexec -n R` on a graph "
+             "directory, each rank counting a block of its vertex chunks (rank 0 partitions "
+             "and writes the same JSON as one process)")
     add("--json", default=None, metavar="OUT.json", help="write the full survey as JSON")
     add("--csv", default=None, metavar="OUT.csv", help="write one row per plan as CSV")
     add("--plot", default=None, metavar="DIR",
@@ -161,6 +167,57 @@ def _write_outputs(args, result: dict) -> None:
 
 
 def run(args) -> int:
+    if args.transport == "mpi":
+        return _run_mpi(args)
+    return _run(args)
+
+
+class _Agreement:
+    """Under MPI every rank checks the options and inputs itself; before the first
+    collective they agree (one all-reduce) on whether all passed. The lowest failing rank
+    then reports its error (one line), the others leave with the same exit status quietly;
+    a failure after that point ends the job (`abort`), or the others would wait for ever."""
+
+    def __init__(self, group):
+        self.group, self.done = group, False
+
+    def __call__(self, error: Exception | None) -> bool:
+        """True when every rank passed; else raise `error` on the reporting rank."""
+        g = self.group
+        self.done = True
+        failed = np.array([g.size if error is None else g.rank], dtype=np.int64)
+        first = -int(g.allreduce(-failed, op="max")[0])      # the lowest failing rank
+        if first == g.size:
+            return True
+        if g.rank == first and error is not None:
+            raise error
+        return False
+
+
+def _run_mpi(args) -> int:
+    try:
+        from shardtrain.transport.mpi import MpiGroup
+
+        group = MpiGroup()
+    except ImportError:
+        raise InputError("--transport mpi: mpi4py is not installed (pip install "
+                         "'shardtrain[mpi]')") from None
+    agree = _Agreement(group)
+    try:
+        return _run(args, group=group, agree=agree)
+    except (InputError, RunError) as exc:
+        if agree.done:               # past the agreement: the other ranks are in a collective
+            from shardtrain.cli.flags import cli_message
+
+            print(f"shardtrain: run failed (rank {group.rank}): {cli_message(exc)}",
+                  file=sys.stderr, flush=True)
+            group.abort(3)
+        if agree(exc):
+            raise AssertionError("unreachable: this rank failed") from None
+        return 2 if isinstance(exc, InputError) else 3
+
+
+def _run(args, group=None, agree=None) -> int:
     # cheap option checks first, then the graph, then the checks that need the graph
     if args.assignment is not None and args.method is not None:
         raise InputError("--assignment: give it in place of --method, not with it")
@@ -172,13 +229,18 @@ def run(args) -> int:
         from shardtrain.report.plots import check_plot_dir
 
         check_plot_dir(args.plot)
-    check_paths(inputs={"GRAPH": args.graph, "--features": args.features,
-                        "--labels": args.labels, "--assignment": args.assignment},
-                outputs={"--json": args.json, "--csv": args.csv}, out_dirs={"--plot": args.plot})
+    if group is not None and not is_graph_dir(args.graph):
+        raise InputError(f"--transport mpi: {args.graph} is not a graph directory (the "
+                         f"survey streams over one: write it with `shardtrain ingest`)")
+    if group is None or group.rank == 0:       # one rank writes the outputs (and probes them)
+        check_paths(inputs={"GRAPH": args.graph, "--features": args.features,
+                            "--labels": args.labels, "--assignment": args.assignment},
+                    outputs={"--json": args.json, "--csv": args.csv},
+                    out_dirs={"--plot": args.plot})
     settings = _settings(args)
     budget = args.memory_budget
     if is_graph_dir(args.graph):
-        return _run_graph_dir(args, methods, workers, settings, budget)
+        return _run_graph_dir(args, methods, workers, settings, budget, group, agree)
     loaded = load_graph_from_args(args)
     graph = loaded.graph
     assignment = None
@@ -220,8 +282,9 @@ def _bar_factory():
     return make
 
 
-def _run_graph_dir(args, methods, workers, settings, budget) -> int:
-    """GRAPH is a graph directory: plans and survey stream over its mapped arrays."""
+def _run_graph_dir(args, methods, workers, settings, budget, group=None, agree=None) -> int:
+    """GRAPH is a graph directory: plans and survey stream over its mapped arrays (with a
+    `group` of MPI ranks, each counting its block of chunks; rank 0 prints and writes)."""
     from shardtrain.data.graphdir import open_graph_dir
     from shardtrain.plan.stream_survey import stream_survey
     from shardtrain.plan.streaming import load_assignment_mapped
@@ -239,12 +302,26 @@ def _run_graph_dir(args, methods, workers, settings, budget) -> int:
                              f"vertices to {k} workers")
         methods, workers = [f"file:{Path(args.assignment).name}"], [k]
 
-    def line(plan) -> None:
-        print(f"  {plan['method']:<14} k={plan['workers']:<5} partition "
-              f"{plan['partition_s']:.2f} s, count {plan['build_s']:.2f} s", file=sys.stderr)
+    lead = group is None or group.rank == 0
 
+    def line(plan) -> None:
+        if lead:
+            print(f"  {plan['method']:<14} k={plan['workers']:<5} partition "
+                  f"{plan['partition_s']:.2f} s, count {plan['build_s']:.2f} s",
+                  file=sys.stderr)
+
+    if agree is not None:
+        from shardtrain.plan.stream_survey import check_stream_survey
+
+        # every check the survey makes before its first plan, then the ranks agree
+        check_stream_survey(gd, methods, workers, settings, assignment=assignment,
+                            memory_budget=budget)
+        agree(None)
     result = stream_survey(gd, methods, workers, settings, assignment=assignment,
-                           memory_budget=budget, on_plan=line, progress=_bar_factory())
+                           memory_budget=budget, on_plan=line,
+                           progress=_bar_factory() if lead else None, group=group)
+    if not lead:
+        return 0
     result["graph"]["source"] = str(args.graph)
     stream = result["streaming"]
     print(f"streamed under a memory budget of {human_bytes(stream['memory_budget_bytes'])}: "

@@ -95,6 +95,26 @@ def count_plan(indptr: np.ndarray, indices: np.ndarray, owner: np.ndarray, k: in
             "send_rows": send.reshape(k, k)}
 
 
+def _shared_partition(gd, method: str, k: int, seed: int, imbalance: float,
+                      memory_budget: int, group):
+    """Rank 0's `stream_partition`, broadcast: the assignment (owner_dtype(k), n) and its
+    details as JSON text (buffers only, nothing pickled)."""
+    import json
+
+    from shardtrain.plan.partition import owner_dtype
+
+    dtype = owner_dtype(k)
+    if group.rank == 0:
+        assignment, details = stream_partition(gd, method, k, seed=seed, imbalance=imbalance,
+                                               memory_budget=memory_budget)
+        assignment = np.ascontiguousarray(assignment, dtype=dtype)
+        text = json.dumps(details).encode()
+    else:
+        assignment, text = np.empty(gd.num_vertices, dtype=dtype), None
+    group.bcast(assignment)
+    return assignment, json.loads(group.bcast_bytes(text).decode())
+
+
 def _feature_itemsize(gd) -> int | None:
     dtype = gd.manifest.get("feature_dtype")
     return None if dtype is None else np.dtype(dtype).itemsize
@@ -103,14 +123,23 @@ def _feature_itemsize(gd) -> int | None:
 def stream_survey_plan(gd, method: str, k: int, *, hops, itemsize: int, seed: int,
                        imbalance: float, memory_budget: int, assignment=None,
                        bias: bool = False, entries_per_chunk: int | None = None,
-                       progress=None, chunk_log: list | None = None) -> dict:
+                       progress=None, chunk_log: list | None = None, group=None) -> dict:
     """One plan of a graph directory, the same record as `survey.survey_plan` plus
     "pass_s" (seconds per pass: each restreaming pass of fennel, the counting pass).
-    `progress(name, total)` returns a bar with update(n) and close(), or None."""
+    `progress(name, total)` returns a bar with update(n) and close(), or None.
+
+    `group` (e.g. `transport.mpi.MpiGroup`: rank, size, bcast, bcast_bytes, allreduce):
+    several processes share the plan. Rank 0 partitions and broadcasts the assignment and
+    its details (partitioning stays in one process); every rank counts its own block of the
+    chunks, and the counts are summed over the ranks, so every rank holds the same record
+    as one process would make (timings aside)."""
     t0, c0 = time.perf_counter(), time.process_time()
     details = {"method": method}
     passes: dict[str, float] = {}
-    if assignment is None:
+    if group is not None and group.size > 1 and assignment is None:
+        assignment, details = _shared_partition(gd, method, k, seed, imbalance,
+                                                memory_budget, group)
+    elif assignment is None:
         bar = progress(f"{method} k={k} partition", None) if progress and method == "fennel" \
             else None
         last = [t0]
@@ -131,8 +160,14 @@ def stream_survey_plan(gd, method: str, k: int, *, hops, itemsize: int, seed: in
     entries = entries_per_chunk or chunk_entries(memory_budget, gd.num_vertices, k)
     chunks = vertex_chunks(gd.indptr, entries, entries)   # rows bounded too: isolated ones
     bar = progress(f"{method} k={k} count", 2 * gd.num_edges) if progress else None
-    counts = count_plan(gd.indptr, gd.indices, assignment, k, chunks,
+    mine = chunks
+    if group is not None and group.size > 1:    # a contiguous block of chunks per rank
+        blocks = np.array_split(np.arange(len(chunks)), group.size)[group.rank]
+        mine = [chunks[i] for i in blocks]
+    counts = count_plan(gd.indptr, gd.indices, assignment, k, mine,
                         on_chunk=None if bar is None else bar.update)
+    if group is not None and group.size > 1:
+        counts = {key: group.allreduce(value) for key, value in counts.items()}
     if bar is not None:
         bar.close()
     del assignment
@@ -162,22 +197,34 @@ def stream_survey_plan(gd, method: str, k: int, *, hops, itemsize: int, seed: in
                        memory, traffic, details, times)
 
 
-def stream_survey(gd, methods: list[str], workers_list: list[int], settings: SurveySettings,
-                  *, assignment=None, memory_budget: int | None = None, on_plan=None,
-                  progress=None, entries_per_chunk: int | None = None) -> dict:
-    """`survey.survey` of a graph directory (a `GraphDir`), streaming: the same JSON, with
-    the memory budget, the peak memory measured (RssAnon + RssShmem; mapped file pages
-    beside) and the seconds of every pass under "streaming"."""
-    from shardtrain.plan.memwatch import MemoryWatch
-
-    shape = _Shape(gd)
-    check_plans(shape, [] if assignment is not None else methods, workers_list, settings)
-    dims, hops = model_shape(shape, settings)
-    itemsize = np.dtype(settings.dtype).itemsize
+def check_stream_survey(gd, methods: list[str], workers_list: list[int],
+                        settings: SurveySettings, *, assignment=None,
+                        memory_budget: int | None = None) -> int:
+    """Every check `stream_survey` makes before its first plan (InputError naming the
+    parameter); returns the memory budget in bytes."""
+    check_plans(_Shape(gd), [] if assignment is not None else methods, workers_list, settings)
     budget = default_memory_budget() if memory_budget is None else int(memory_budget)
     if assignment is None and max(workers_list) > 1:
         for method in methods:                 # refused before any plan is made
             require_metis_fits(gd, method, budget)
+    return budget
+
+
+def stream_survey(gd, methods: list[str], workers_list: list[int], settings: SurveySettings,
+                  *, assignment=None, memory_budget: int | None = None, on_plan=None,
+                  progress=None, entries_per_chunk: int | None = None, group=None) -> dict:
+    """`survey.survey` of a graph directory (a `GraphDir`), streaming: the same JSON, with
+    the memory budget, the peak memory measured (RssAnon + RssShmem; mapped file pages
+    beside) and the seconds of every pass under "streaming". With a `group` of ranks (see
+    `stream_survey_plan`) every rank returns the same document; its peaks are the largest
+    of any rank."""
+    from shardtrain.plan.memwatch import MemoryWatch
+
+    budget = check_stream_survey(gd, methods, workers_list, settings, assignment=assignment,
+                                 memory_budget=memory_budget)
+    shape = _Shape(gd)
+    dims, hops = model_shape(shape, settings)
+    itemsize = np.dtype(settings.dtype).itemsize
     plans: list[dict] = []
     chunk_counts: list[dict] = []
     start = time.perf_counter()
@@ -189,14 +236,18 @@ def stream_survey(gd, methods: list[str], workers_list: list[int], settings: Sur
                                           memory_budget=budget, assignment=assignment,
                                           bias=settings.bias, progress=progress,
                                           entries_per_chunk=entries_per_chunk,
-                                          chunk_log=chunk_counts)
+                                          chunk_log=chunk_counts, group=group)
                 plans.append(plan)
                 if on_plan is not None:
                     on_plan(plan)
     doc = survey_document(gd.num_vertices, gd.num_edges,
                           gd.manifest["structure_fingerprint"], settings, dims, hops, plans)
+    peak, peak_file = watch.peak, watch.peak_file
+    if group is not None and group.size > 1:
+        peak, peak_file = (int(x) for x in group.allreduce(
+            np.array([peak, peak_file], dtype=np.int64), op="max"))
     doc["streaming"] = {"memory_budget_bytes": budget,
-                        "peak_rss_bytes": watch.peak,            # RssAnon + RssShmem
-                        "peak_file_rss_bytes": watch.peak_file,  # mapped pages, not counted
+                        "peak_rss_bytes": peak,            # RssAnon + RssShmem
+                        "peak_file_rss_bytes": peak_file,  # mapped pages, not counted
                         "chunks": chunk_counts, "total_s": time.perf_counter() - start}
     return doc

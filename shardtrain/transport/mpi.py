@@ -226,3 +226,45 @@ class MpiTransport:
         finally:
             self.profile.add_wait(time.perf_counter() - t_start)
         return statuses
+
+
+class MpiGroup:
+    """The few collectives a job of ranks needs besides the halo transport (the streaming
+    survey under MPI): broadcast from rank 0 and sums/maxima over all ranks, on numpy
+    buffers only (uppercase mpi4py calls: nothing is pickled). Each call is non-blocking
+    underneath and waited for with naps, so a rank waiting for rank 0's partition leaves
+    the core to it (MPICH would spin inside a blocking collective)."""
+
+    def __init__(self, comm=None, *, nap_s: float = NAP_MAX_S):
+        self.comm = _mpi().COMM_WORLD if comm is None else comm
+        self.rank, self.size = int(self.comm.Get_rank()), int(self.comm.Get_size())
+        self.nap_s = nap_s
+
+    def _wait(self, req) -> None:
+        while not req.Test():
+            time.sleep(self.nap_s)
+
+    def bcast(self, buf: np.ndarray) -> np.ndarray:
+        """Rank 0's `buf` into every rank's `buf` (same shape and dtype everywhere)."""
+        buf = np.ascontiguousarray(buf)
+        self._wait(self.comm.Ibcast(buf, root=0))
+        return buf
+
+    def bcast_bytes(self, data: bytes | None) -> bytes:
+        """Rank 0's bytes on every rank (the length first, then the bytes)."""
+        n = np.array([0 if data is None else len(data)], dtype=np.int64)
+        self.bcast(n)
+        buf = np.frombuffer(data, dtype=np.uint8).copy() if self.rank == 0 and data \
+            else np.zeros(int(n[0]), dtype=np.uint8)
+        return self.bcast(buf).tobytes()
+
+    def allreduce(self, buf: np.ndarray, op: str = "sum") -> np.ndarray:
+        """The elementwise sum (or "max") of `buf` over all ranks, on every rank."""
+        mpi = _mpi()
+        send = np.ascontiguousarray(buf)
+        out = np.empty_like(send)
+        self._wait(self.comm.Iallreduce(send, out, op=mpi.SUM if op == "sum" else mpi.MAX))
+        return out
+
+    def abort(self, code: int) -> None:
+        self.comm.Abort(code)
