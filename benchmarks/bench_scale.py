@@ -183,9 +183,11 @@ def main() -> int:
                                            "--memory-budget", args.memory_budget], env)
         src.unlink()
         run["graph_dir_bytes"] = dir_bytes(ingest_dir)
+        # the edge source carries no vertex data: the model's shape is given
         run["survey"] = run_measured(py + ["survey", str(ingest_dir), "--method", args.methods,
                                            "--workers", args.workers, "--memory-budget",
-                                           args.memory_budget, "--json",
+                                           args.memory_budget, "--input-dim",
+                                           str(args.features), "--classes", "6", "--json",
                                            str(here / "survey.json")], env)
         for step in ("synth", "ingest", "survey"):
             run[step]["seconds_per_edge"] = run[step]["wall_s"] / max(m, 1)
