@@ -100,9 +100,13 @@ def test_metis_over_the_budget_is_refused_naming_the_streaming_methods(pair):
     _, folder, _ = pair
     gd = open_graph_dir(folder)
     need = metis_memory_bytes(gd.num_vertices, gd.num_edges)
-    with pytest.raises(InputError, match=r"--method metis: METIS would need about .* "
-                                         r"\(random, range, fennel\)"):
+    with pytest.raises(InputError, match=r"method metis: METIS would need about .* "
+                                         r"\(random, range, fennel\)") as caught:
         stream_partition(gd, "metis", 4, memory_budget=need - 1)
+    # the library names the parameter; the command line words it as the options
+    from shardtrain.cli.flags import cli_message
+    assert cli_message(caught.value).startswith("--method metis: METIS would need")
+    assert "over --memory-budget" in cli_message(caught.value)
     stream_partition(gd, "metis", 4, memory_budget=need)          # fits: runs
 
 

@@ -22,7 +22,7 @@ FLAGS = {
     "early_stop": "--early-stop", "threads": "--threads",
     # plans
     "method": "--method", "workers": "--workers", "imbalance": "--imbalance",
-    "assignment": "--assignment",
+    "assignment": "--assignment", "memory_budget": "--memory-budget",
     # forecast
     "link_gbps": "--link-gbps", "latency_us": "--latency-us",
     "speed_factor": "--speed-factor", "cores": "--cores",

@@ -21,7 +21,7 @@ import numpy as np
 
 from shardtrain.data.graph import Graph
 from shardtrain.data.memory import default_memory_budget
-from shardtrain.errors import InputError
+from shardtrain.errors import InputError, ParameterError, option
 from shardtrain.plan.partition import (
     METHODS,
     _splitmix64,
@@ -123,10 +123,11 @@ def require_metis_fits(gd, method: str, memory_budget: int | None) -> None:
     if need > budget:
         from shardtrain.units import human_bytes
 
-        raise InputError(f"--method {method}: METIS would need about {human_bytes(need)} of "
-                         f"memory for {gd.path}, over --memory-budget {human_bytes(budget)}; "
-                         f"use a streaming method ({', '.join(STREAMING_METHODS)}) or a "
-                         f"larger budget")
+        raise ParameterError("method", f"METIS would need about {human_bytes(need)} of "
+                             f"memory for {gd.path}, over {option('memory_budget')} "
+                             f"{human_bytes(budget)}; use a streaming method "
+                             f"({', '.join(STREAMING_METHODS)}) or a larger budget",
+                             value=method)
 
 
 def stream_partition(gd, method: str, k: int, *, seed: int = 0, imbalance: float = 0.03,
@@ -136,11 +137,12 @@ def stream_partition(gd, method: str, k: int, *, seed: int = 0, imbalance: float
     by the named method, equal to `partition_plan` of the same graph in memory.
     `on_pass(i)`: called after each restreaming pass of fennel."""
     if method not in METHODS:
-        raise InputError(f"--method {method!r}: unknown; expected one of {', '.join(METHODS)}")
+        raise ParameterError("method", f"unknown; expected one of {', '.join(METHODS)}",
+                             value=repr(method))
     n = gd.num_vertices
     check_workers(k, n)
     if not (0.0 <= imbalance < 1.0):
-        raise InputError(f"--imbalance {imbalance}: must be in [0, 1)")
+        raise ParameterError("imbalance", "must be in [0, 1)", value=imbalance)
     k = int(k)
     small = owner_dtype(k)
     if k == 1:
@@ -160,7 +162,7 @@ def stream_partition(gd, method: str, k: int, *, seed: int = 0, imbalance: float
     return assignment.astype(small), details
 
 
-def load_assignment_mapped(path, num_vertices: int, option: str = "--assignment"
+def load_assignment_mapped(path, num_vertices: int, param: str = "assignment"
                            ) -> tuple[np.ndarray, int]:
     """A user's partition for a graph directory: `.npy` memory-mapped and checked chunk by
     chunk (the same checks and messages as `partition.load_assignment`), returned in
@@ -169,9 +171,9 @@ def load_assignment_mapped(path, num_vertices: int, option: str = "--assignment"
     from shardtrain.plan.partition import load_assignment
 
     path = Path(path)
-    require_regular_file(path, option=option)
+    require_regular_file(path, param=param)
     if path.suffix != ".npy":
-        a, k = load_assignment(path, num_vertices, option)
+        a, k = load_assignment(path, num_vertices, param)
         return a.astype(owner_dtype(k)), k
     try:
         a = np.load(path, mmap_mode="r", allow_pickle=False)
