@@ -28,9 +28,9 @@ from shardtrain.train.settings import TrainSettings
 
 PACKAGE = Path(__file__).resolve().parents[1] / "shardtrain"
 
-# modules being rebuilt elsewhere that still word their messages with flags (to move to
-# ParameterError); nothing else below cli/ may start an error message with "--"
-NOT_YET_MOVED = {"train/coordinator.py", "train/worker.py", "train/mpi_driver.py"}
+# modules that still word their messages with flags (to move to ParameterError): none;
+# nothing below cli/ may start an error message with "--"
+NOT_YET_MOVED: set[str] = set()
 
 
 def _library_modules():
@@ -88,7 +88,8 @@ def test_every_parameter_the_library_names_has_an_option_or_is_declared_not_one(
     assert all(flag.startswith("--") for flag in FLAGS.values())
 
 
-_ERRORS = ("InputError", "ParameterError", "RunError", "refuse", "_fail", "_Bad")
+_ERRORS = ("InputError", "ParameterError", "RunError", "Interrupted", "ValueError", "refuse",
+           "_fail", "_Bad")
 
 
 def _message_texts(tree):
