@@ -21,6 +21,11 @@ BIAS = False
 EARLY_STOP = 0
 THREADS = 1
 
+# a training run (train.api.RunConfig, train.session, cli/train.py)
+TRANSPORT = "pipes"                    # worker processes on this machine
+TIMEOUT_S = 60.0                       # deadline of every halo/all-reduce receive
+CHECKPOINT_EVERY = 10                  # epochs between checkpoints
+
 # partition plans (plan.partition, survey, split, forecast)
 IMBALANCE = 0.03                       # METIS load imbalance tolerance
 # what a survey or forecast compares unless told otherwise: metis-volume is left out because

@@ -59,8 +59,9 @@ class RunError(_Worded):
     """A run that started but could not finish (worker death, corrupt frame, timeout)."""
 
 
-class Interrupted(Exception):
-    """The run was stopped by a signal; the message says how to resume."""
+class Interrupted(_Worded):
+    """The run was stopped by a signal; the message says how to resume (naming the
+    parameters to give as `option`s)."""
 
 
 class ParameterError(InputError):
@@ -87,6 +88,13 @@ class ParameterError(InputError):
     def __reduce__(self):   # the default would call __init__ with the message alone
         return (_parameter_error, (self.param, self.text, self.value, self.sep, self.prefix,
                                    self.params[1:]))
+
+
+def marked(exc: BaseException) -> str:
+    """The message of `exc` with its parameter mentions still marked, to pass on as text
+    (a worker process's error, sent to the coordinator): an error made from it names them
+    as its own reader does."""
+    return Exception.__str__(exc) if isinstance(exc, _Worded) else str(exc)
 
 
 def _parameter_error(param, text, value, sep, prefix, also) -> ParameterError:

@@ -412,7 +412,7 @@ def test_a_checkpoint_folder_serves_one_run_at_a_time(capsys, graph_file, tmp_pa
         held.release()
     assert main(["train", str(graph_file), "--reference", "--epochs", "2", "--quiet",
                  "--checkpoint", str(folder)]) == 0
-    held = checkpoint.lock_folder(folder, "--resume")   # the finished run let go of it
+    held = checkpoint.lock_folder(folder, "resume")   # the finished run let go of it
     try:
         assert main(["train", str(graph_file), "--reference", "--epochs", "3", "--quiet",
                      "--resume", str(folder)]) == 2

@@ -20,6 +20,10 @@ FLAGS = {
     "dropout": "--dropout", "lr": "--lr", "weight_decay": "--weight-decay",
     "epochs": "--epochs", "dtype": "--dtype", "bias": "--bias",
     "early_stop": "--early-stop", "threads": "--threads",
+    # a training run (train.api.RunConfig, api.run's transport)
+    "transport": "--transport", "timeout_s": "--timeout", "init_weights": "--init-weights",
+    "checkpoint_every": "--checkpoint-every", "max_frame_bytes": "--max-frame-bytes",
+    "slow_workers": "--slow-worker", "link": "--emulate-link",
     # plans
     "method": "--method", "workers": "--workers", "imbalance": "--imbalance",
     "assignment": "--assignment", "memory_budget": "--memory-budget",
@@ -37,8 +41,9 @@ FLAGS = {
     "emulate_link": "--emulate-link",
 }
 
-# parameters a library may name that no option sets (the message keeps the Python name)
-NOT_OPTIONS: frozenset[str] = frozenset()
+# parameters a library may name that no option sets (the message keeps the Python name):
+# RunConfig.mode, which `train` sets with --reference
+NOT_OPTIONS: frozenset[str] = frozenset({"mode"})
 
 
 def flag_of(param: str) -> str:

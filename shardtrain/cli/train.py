@@ -25,6 +25,7 @@ from pathlib import Path
 
 import numpy as np
 
+from shardtrain import defaults
 from shardtrain.cli.common import add_graph_arguments, positive_int_type
 from shardtrain.errors import (
     EXIT_BAD_INPUT,
@@ -35,6 +36,7 @@ from shardtrain.errors import (
 )
 from shardtrain.train import api
 from shardtrain.train.settings import DTYPES, TrainSettings, max_threads
+from shardtrain.transport.frames import DEFAULT_MAX_FRAME_BYTES
 
 WORKER_COLUMNS = [
     ("worker", "worker", None),
@@ -80,46 +82,53 @@ def add_arguments(parser) -> None:
                        help="vertex -> worker file to partition by (.npy, or one worker id "
                             "per line); the worker count follows from it (--workers, if "
                             "given, must agree)")
-    parser.add_argument("--imbalance", type=_number("--imbalance", float), default=0.03,
-                        help="allowed partition imbalance (default 0.03)")
-    d = TrainSettings()
-    parser.add_argument("--layers", type=_number("--layers", int), default=d.layers,
-                        help=f"GCN layers (default {d.layers})")
-    parser.add_argument("--hidden", type=_number("--hidden", int), default=d.hidden,
-                        help=f"hidden width (default {d.hidden})")
-    parser.add_argument("--dropout", type=_number("--dropout", float), default=d.dropout,
-                        help=f"dropout rate on every layer's input (default {d.dropout})")
-    parser.add_argument("--lr", type=_number("--lr", float), default=d.lr,
-                        help=f"Adam learning rate (default {d.lr})")
+    parser.add_argument("--imbalance", type=_number("--imbalance", float),
+                        default=defaults.IMBALANCE,
+                        help=f"allowed partition imbalance (default {defaults.IMBALANCE:g})")
+    parser.add_argument("--layers", type=_number("--layers", int), default=defaults.LAYERS,
+                        help=f"GCN layers (default {defaults.LAYERS})")
+    parser.add_argument("--hidden", type=_number("--hidden", int), default=defaults.HIDDEN,
+                        help=f"hidden width (default {defaults.HIDDEN})")
+    parser.add_argument("--dropout", type=_number("--dropout", float),
+                        default=defaults.DROPOUT, help=f"dropout rate on every layer's input "
+                                                       f"(default {defaults.DROPOUT})")
+    parser.add_argument("--lr", type=_number("--lr", float), default=defaults.LR,
+                        help=f"Adam learning rate (default {defaults.LR})")
     parser.add_argument("--weight-decay", type=_number("--weight-decay", float),
-                        default=d.weight_decay,
-                        help=f"L2 penalty on the first layer's weights (default {d.weight_decay})")
-    parser.add_argument("--epochs", type=_number("--epochs", int), default=d.epochs,
-                        help=f"training epochs (default {d.epochs})")
-    parser.add_argument("--dtype", default=d.dtype,
-                        help=f"{' or '.join(DTYPES)} (default {d.dtype})")
+                        default=defaults.WEIGHT_DECAY,
+                        help=f"L2 penalty on the first layer's weights (default "
+                             f"{defaults.WEIGHT_DECAY})")
+    parser.add_argument("--epochs", type=_number("--epochs", int), default=defaults.EPOCHS,
+                        help=f"training epochs (default {defaults.EPOCHS})")
+    parser.add_argument("--dtype", default=defaults.DTYPE,
+                        help=f"{' or '.join(DTYPES)} (default {defaults.DTYPE})")
     parser.add_argument("--bias", action="store_true", help="add a bias to every layer")
-    parser.add_argument("--early-stop", type=_number("--early-stop", int), default=0,
+    parser.add_argument("--early-stop", type=_number("--early-stop", int),
+                        default=defaults.EARLY_STOP,
                         metavar="N", help="stop when the validation loss has not improved "
                         "(become strictly lower than the best so far) for N epochs; the "
-                        "final weights and predictions are the best epoch's (default 0: "
-                        "off; the GCN paper uses 10)")
-    parser.add_argument("--threads", type=_threads_type, default=d.threads, metavar="N",
+                        f"final weights and predictions are the best epoch's (default "
+                        f"{defaults.EARLY_STOP}: off; the GCN paper uses 10)")
+    parser.add_argument("--threads", type=_threads_type, default=defaults.THREADS,
+                        metavar="N",
                         help=f"BLAS threads per process, the same in both modes: the "
-                        f"reference's one process, each worker (default {d.threads}: the "
-                        f"workers are the parallelism, and the reference then gets the "
+                        f"reference's one process, each worker (default {defaults.THREADS}: "
+                        f"the workers are the parallelism, and the reference then gets the "
                         f"CPU of one worker; at most {max_threads()})")
-    parser.add_argument("--timeout", type=_number("--timeout", float), default=60.0,
-                        metavar="S", help="deadline of every halo/all-reduce receive (default 60)")
+    parser.add_argument("--timeout", type=_number("--timeout", float),
+                        default=defaults.TIMEOUT_S, metavar="S",
+                        help=f"deadline of every halo/all-reduce receive (default "
+                             f"{defaults.TIMEOUT_S:g})")
     parser.add_argument("--max-frame-bytes", type=positive_int_type("--max-frame-bytes"),
-                        metavar="N", help="refuse halo/all-reduce frames larger than N bytes "
-                                          "(default 2 GiB)")
+                        metavar="N", help=f"refuse halo/all-reduce frames larger than N bytes "
+                                          f"(default {DEFAULT_MAX_FRAME_BYTES >> 30} GiB)")
     parser.add_argument("--checkpoint", metavar="DIR",
                         help="write checkpoints (weights, Adam state, epoch, run identity) "
                              "into DIR, atomically")
     parser.add_argument("--checkpoint-every", type=positive_int_type("--checkpoint-every"),
-                        metavar="N", help="epochs between checkpoints (default 10; one is "
-                                          "always written after the last epoch)")
+                        metavar="N", help=f"epochs between checkpoints (default "
+                                          f"{defaults.CHECKPOINT_EVERY}; one is always "
+                                          f"written after the last epoch)")
     parser.add_argument("--resume", metavar="DIR",
                         help="continue the run whose checkpoint is in DIR (same graph, "
                              "settings and workers; checkpoints go on into DIR)")
@@ -138,7 +147,7 @@ def add_arguments(parser) -> None:
                         help="make the pipes no faster than a network link of GBPS Gbit/s per "
                              "worker and LATENCY_US microseconds per call (to check a "
                              "forecast on this machine; partitioned runs over pipes only)")
-    parser.add_argument("--transport", choices=("pipes", "mpi"), default="pipes",
+    parser.add_argument("--transport", choices=api.TRANSPORTS, default=defaults.TRANSPORT,
                         help="pipes: worker processes on this machine (default); mpi: one "
                              "rank per shard of SHARD_DIR, under mpiexec")
 
@@ -322,7 +331,7 @@ def config_of(args) -> api.RunConfig:
     link = None
     if args.emulate_link is not None:
         from shardtrain.transport.link import parse_link
-        link = parse_link(args.emulate_link, "--emulate-link")
+        link = parse_link(args.emulate_link, "link")
     settings = TrainSettings(layers=args.layers, hidden=args.hidden, dropout=args.dropout,
                              lr=args.lr, weight_decay=args.weight_decay, epochs=args.epochs,
                              seed=args.seed, dtype=args.dtype, bias=bool(args.bias),
@@ -398,7 +407,7 @@ def run(args) -> int:
     if args.transport == "mpi":
         return _run_mpi_rank(config, args, screen)
     try:
-        api.run(config, transport="pipes", on_epoch=screen.epoch, on_ready=screen.ready,
+        api.run(config, transport=args.transport, on_epoch=screen.epoch, on_ready=screen.ready,
                 check=lambda: _check_outputs(args), deliver=screen.deliver)
     finally:
         screen.close()

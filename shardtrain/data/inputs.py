@@ -11,11 +11,10 @@ _FILE_KINDS = ((stat.S_ISFIFO, "a named pipe (FIFO)"), (stat.S_ISCHR, "a charact
                (stat.S_ISBLK, "a block device"), (stat.S_ISSOCK, "a socket"))
 
 
-def require_regular_file(path: str | os.PathLike, what: str = "file",
-                         option: str | None = None, *, param: str | None = None) -> Path:
+def require_regular_file(path: str | os.PathLike, what: str = "file", *,
+                         param: str | None = None) -> Path:
     """`path` as a Path when it is a regular file (symbolic links followed), else InputError;
     with `param` (the caller's parameter, e.g. "assignment") a `ParameterError` naming it.
-    `option` (text put before the path as it is) is kept for callers not yet moved to `param`.
 
     Checked with os.stat before anything opens the file: opening a FIFO for reading blocks
     until a writer comes, and a character device can be read without end. Every reader of a
@@ -26,7 +25,7 @@ def require_regular_file(path: str | os.PathLike, what: str = "file",
     def refuse(text: str):
         if param is not None:
             return ParameterError(param, text, value=path)
-        return InputError(f"{option} {path}: {text}" if option else f"{path}: {text}")
+        return InputError(f"{path}: {text}")
 
     try:
         mode = os.stat(path).st_mode

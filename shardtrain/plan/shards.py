@@ -309,7 +309,6 @@ def shard_stats(shards: list[Shard]) -> dict[str, np.ndarray]:
 # ----------------------------------------------------------------------------- shard directories
 
 SHARDS_MANIFEST = "shards.json"           # the one name of a shard directory's index
-MANIFEST = SHARDS_MANIFEST               # the old name, until train/coordinator.py moves
 FORMAT = "shardtrain-shards"
 # version 2: `split_id` and per-worker `owned` counts in the manifest; each shard's header
 # holds 8 values and its own copy of the split id (version 1 directories: re-run split)

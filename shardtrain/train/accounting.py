@@ -46,11 +46,11 @@ class ShardDirFacts:
 def shard_dir_facts(shard_dir, manifest: dict | None = None) -> ShardDirFacts:
     """Worker count, graph size, classes and feature width from the shard manifest
     (checked by `shards.load_manifest`; pass `manifest` when it is already read)."""
-    from shardtrain.plan.shards import MANIFEST, load_manifest
+    from shardtrain.plan.shards import SHARDS_MANIFEST, load_manifest
 
     m = manifest if manifest is not None else load_manifest(shard_dir)
     if m.get("input_dim") is None:
-        raise InputError(f"{os.path.join(str(shard_dir), MANIFEST)}: the shards have no "
+        raise InputError(f"{os.path.join(str(shard_dir), SHARDS_MANIFEST)}: the shards have no "
                          f"vertex features (input_dim null): nothing to train on")
     return ShardDirFacts(workers=m["workers"], num_vertices=m["num_vertices"],
                          num_classes=m["num_classes"], input_dim=m["input_dim"])

@@ -12,7 +12,8 @@ config, each trains its own shard (`mpi_driver`), and rank 0 gets the outcome (t
 ranks get None).
 
 Every check of the config is made before anything is read, locked or started
-(`check_config`), with errors naming the command-line option of the value; the caller's
+(`check_config`), with errors naming the parameter of the value (a `ParameterError`; the
+command line words it with its option); the caller's
 own checks (`check=`, e.g. of its output paths) run next, then the checkpoint folders are
 locked. The caller sees the run through callbacks: `on_ready(Ready)` once the inputs are
 read (before partitioning and training), `on_epoch(record)` per epoch, and
@@ -29,9 +30,10 @@ from typing import Any, Callable
 
 import numpy as np
 
+from shardtrain import defaults
 from shardtrain.data.graphdir import GRAPH_MANIFEST, is_graph_dir
-from shardtrain.errors import EXIT_BAD_INPUT, InputError
-from shardtrain.plan.shards import SHARDS_MANIFEST as MANIFEST_NAME
+from shardtrain.errors import EXIT_BAD_INPUT, InputError, ParameterError, option
+from shardtrain.plan.shards import SHARDS_MANIFEST
 from shardtrain.train import rundoc, session
 from shardtrain.train.mpi_driver import JobStopped
 from shardtrain.train.settings import TrainSettings
@@ -41,12 +43,12 @@ MODES = ("partitioned", "reference")
 MAX_TIMEOUT_S = 1e6          # poll(2) takes a C int of milliseconds: 2**31 ms is ~2.1e6 s
 MAX_SLOW_FACTOR = 1000.0     # a straggler's sleep must stay within what time.sleep takes
 MPI_STOP_TIMEOUT_S = 60.0    # how long rank 0 waits for the others to take a stop message
-# (option, RunConfig field or settings field, largest value, why): values above these
-# cannot be used by the code
+# (RunConfig field or settings field, largest value, why): values above these cannot be
+# used by the code
 LIMITS = (
-    ("--epochs", "epochs", 999_999, "checkpoint files are named by six-digit epochs"),
-    ("--checkpoint-every", "checkpoint_every", 999_999, "at most the largest --epochs"),
-    ("--max-frame-bytes", "max_frame_bytes", 2**62, "frame sizes are 64-bit integers"),
+    ("epochs", 999_999, "checkpoint files are named by six-digit epochs"),
+    ("checkpoint_every", 999_999, f"at most the largest {option('epochs')}"),
+    ("max_frame_bytes", 2**62, "frame sizes are 64-bit integers"),
 )
 
 
@@ -78,12 +80,12 @@ class RunConfig:
     workers: int | None = None
     method: str | None = None
     assignment: str | None = None
-    imbalance: float = 0.03
+    imbalance: float = defaults.IMBALANCE
     checkpoint: str | None = None
     checkpoint_every: int | None = None
     resume: str | None = None
     init_weights: str | None = None
-    timeout_s: float = 60.0
+    timeout_s: float = defaults.TIMEOUT_S
     max_frame_bytes: int | None = None
     link: Any = None
     slow_workers: dict[int, float] = field(default_factory=dict)
@@ -124,109 +126,120 @@ class RunOutcome:
 # ---------------------------------------------------------------- checks
 
 def is_shard_dir(path) -> bool:
-    return Path(path).is_dir() and (Path(path) / MANIFEST_NAME).is_file()
+    return Path(path).is_dir() and (Path(path) / SHARDS_MANIFEST).is_file()
 
 
-def check_config(config: RunConfig, transport: str = "pipes") -> bool:
+_MPI = f"{option('transport')} mpi"     # "with transport mpi" (the CLI: "--transport mpi")
+
+
+def check_config(config: RunConfig, transport: str = defaults.TRANSPORT) -> bool:
     """Everything that can be checked without reading the inputs; returns whether the
-    source is a shard directory. InputError naming the option otherwise."""
+    source is a shard directory. A ParameterError naming the RunConfig field (or
+    `transport`) otherwise."""
     if transport not in TRANSPORTS:
-        raise InputError(f"--transport {transport!r}: expected one of {', '.join(TRANSPORTS)}")
+        raise ParameterError("transport", f"expected one of {', '.join(TRANSPORTS)}",
+                             value=repr(transport))
     if config.mode not in MODES:
-        raise InputError(f"mode {config.mode!r}: expected one of {', '.join(MODES)}")
+        raise ParameterError("mode", f"expected one of {', '.join(MODES)}",
+                             value=repr(config.mode))
     if config.link is not None and (config.reference or transport == "mpi"):
-        raise InputError("--emulate-link: not available with "
-                         f"{'--reference' if config.reference else '--transport mpi'} "
-                         "(it slows the pipes between worker processes)")
+        raise ParameterError("link", "not available with "
+                             f"{option('reference') if config.reference else _MPI} "
+                             "(it slows the pipes between worker processes)")
     if transport == "mpi" and not is_shard_dir(config.source):
-        raise InputError(f"--transport mpi: {config.source} is not a shard directory (write "
-                         f"one with `shardtrain split`; every rank must see it at this path)")
+        raise ParameterError("transport", f"{config.source} is not a shard directory (write "
+                             f"one with `shardtrain split`; every rank must see it at this "
+                             f"path)", value="mpi")
     settings = config.settings.validate()
-    for option, name, top, why in LIMITS:
+    for name, top, why in LIMITS:
         value = getattr(settings if name == "epochs" else config, name)
         if value is not None and value > top:
-            raise InputError(f"{option} {value}: must be at most {top:,} ({why})")
+            raise ParameterError(name, f"must be at most {top:,} ({why})", value=value)
     if not (math.isfinite(config.timeout_s) and 0 < config.timeout_s <= MAX_TIMEOUT_S):
-        raise InputError(f"--timeout {config.timeout_s:g}: must be a number of seconds > 0 "
-                         f"and at most {MAX_TIMEOUT_S:g} (the receive deadlines wait in "
-                         f"whole milliseconds of a C int)")
+        raise ParameterError("timeout_s", f"must be a number of seconds > 0 and at most "
+                             f"{MAX_TIMEOUT_S:g} (the receive deadlines wait in whole "
+                             f"milliseconds of a C int)", value=f"{config.timeout_s:g}")
     if not 0 <= config.imbalance < 1:
-        raise InputError(f"--imbalance {config.imbalance:g}: must lie in [0, 1)")
+        raise ParameterError("imbalance", "must lie in [0, 1)", value=f"{config.imbalance:g}")
     if config.init_weights is not None and not Path(config.init_weights).is_file():
-        raise InputError(f"--init-weights {config.init_weights}: no such file")
+        raise ParameterError("init_weights", "no such file", value=config.init_weights)
     from_shards = config.graph is None and is_shard_dir(config.source)
     if config.graph is None and not Path(config.source).exists():
         raise InputError(f"{config.source}: no such file or directory")
     if from_shards:
-        for flag, given in (("--reference", config.reference), ("--method", config.method),
-                            ("--assignment", config.assignment),
-                            ("--features", config.features), ("--labels", config.labels)):
+        for name, given in (("reference", config.reference), ("method", config.method),
+                            ("assignment", config.assignment),
+                            ("features", config.features), ("labels", config.labels)):
             if given:
-                raise InputError(f"{flag}: not allowed with a shard directory "
-                                 f"({config.source})")
+                raise ParameterError(name, f"not allowed with a shard directory "
+                                           f"({config.source})")
     elif (config.graph is None and Path(config.source).is_dir()
           and not is_graph_dir(config.source)):
-        raise InputError(f"{config.source}: a directory without {MANIFEST_NAME} or "
+        raise InputError(f"{config.source}: a directory without {SHARDS_MANIFEST} or "
                          f"{GRAPH_MANIFEST} (neither a shard directory nor a graph directory)")
     elif config.reference:
-        for flag, given in (("--method", config.method), ("--assignment", config.assignment),
-                            ("--workers", config.workers is not None)):
+        for name, given in (("method", config.method), ("assignment", config.assignment),
+                            ("workers", config.workers is not None)):
             if given:
-                raise InputError(f"{flag}: not allowed with --reference (no partition)")
+                raise ParameterError(name, f"not allowed with {option('reference')} "
+                                           f"(no partition)")
     else:
         if config.workers is None and config.assignment is None:
-            raise InputError("--workers: give --workers K with --method M, --assignment "
-                             "FILE, or --reference to train on a graph")
+            raise ParameterError("workers", f"give {option('workers')} K with "
+                                 f"{option('method')} M, {option('assignment')} FILE, or "
+                                 f"{option('reference')} to train on a graph")
         if config.method is None and config.assignment is None:
-            raise InputError("--method: give --method M or --assignment FILE with --workers")
+            raise ParameterError("method", f"give {option('method')} M or "
+                                 f"{option('assignment')} FILE with {option('workers')}")
     if config.workers is not None and config.workers < 1:
-        raise InputError(f"--workers {config.workers}: must be at least 1")
+        raise ParameterError("workers", "must be at least 1", value=config.workers)
     if config.method is not None:
         from shardtrain.plan.partition import METHODS
         if config.method not in METHODS:
-            raise InputError(f"--method {config.method!r}: expected one of "
-                             f"{', '.join(METHODS)}")
+            raise ParameterError("method", f"expected one of {', '.join(METHODS)}",
+                                 value=repr(config.method))
     if config.assignment is not None:
         from shardtrain.data.readers import require_regular_file
-        require_regular_file(config.assignment, option="--assignment")
+        require_regular_file(config.assignment, param="assignment")
     _check_run_options(config, transport)
     return from_shards
 
 
 def _check_run_options(config: RunConfig, transport: str) -> None:
-    """--checkpoint, --checkpoint-every, --resume, --slow-worker, --max-frame-bytes."""
-    extras = [flag for flag, given in (
-        ("--checkpoint", config.checkpoint), ("--checkpoint-every", config.checkpoint_every),
-        ("--resume", config.resume), ("--slow-worker", config.slow_workers),
-        ("--max-frame-bytes", config.max_frame_bytes)) if given]
-    for flag in extras:
-        if config.reference and flag in ("--slow-worker", "--max-frame-bytes"):
-            raise InputError(f"{flag}: not available with --reference (partitioned runs only)")
-        if transport == "mpi" and flag != "--max-frame-bytes":
-            raise InputError(f"{flag}: not available with --transport mpi")
+    """checkpoint, checkpoint_every, resume, slow_workers, max_frame_bytes."""
+    extras = [name for name, given in (
+        ("checkpoint", config.checkpoint), ("checkpoint_every", config.checkpoint_every),
+        ("resume", config.resume), ("slow_workers", config.slow_workers),
+        ("max_frame_bytes", config.max_frame_bytes)) if given]
+    for name in extras:
+        if config.reference and name in ("slow_workers", "max_frame_bytes"):
+            raise ParameterError(name, f"not available with {option('reference')} "
+                                       f"(partitioned runs only)")
+        if transport == "mpi" and name != "max_frame_bytes":
+            raise ParameterError(name, f"not available with {_MPI}")
     if config.checkpoint_every is not None and not (config.checkpoint or config.resume):
-        raise InputError("--checkpoint-every: give --checkpoint DIR as well")
+        raise ParameterError("checkpoint_every", f"give {option('checkpoint')} DIR as well")
     for w, f in config.slow_workers.items():
         if not (isinstance(w, int) and w >= 0 and math.isfinite(f) and
                 1 <= f <= MAX_SLOW_FACTOR):
-            raise InputError(f"--slow-worker {w}:{f:g}: expected W >= 0 and 1 <= FACTOR <= "
-                             f"{MAX_SLOW_FACTOR:g}")
+            raise ParameterError("slow_workers", f"expected W >= 0 and 1 <= FACTOR <= "
+                                 f"{MAX_SLOW_FACTOR:g}", value=f"{w}:{f:g}")
     if config.workers is not None:
         check_slow_range(config.slow_workers, config.workers)
     if config.resume and config.init_weights:
-        raise InputError("--init-weights: not allowed with --resume (the checkpoint holds "
-                         "the weights)")
+        raise ParameterError("init_weights", f"not allowed with {option('resume')} (the "
+                             f"checkpoint holds the weights)")
 
 
 def check_slow_range(slow: dict[int, float], workers: int) -> None:
     for w in slow:
         if w >= workers:
-            raise InputError(f"--slow-worker {w}:{slow[w]:g}: worker {w} does not exist "
-                             f"(workers 0..{workers - 1})")
+            raise ParameterError("slow_workers", f"worker {w} does not exist (workers "
+                                 f"0..{workers - 1})", value=f"{w}:{slow[w]:g}")
 
 
 def check_model_fits(dims, settings: TrainSettings) -> None:
-    """Refuse (naming --hidden/--layers) a model whose weights and Adam state (three
+    """Refuse (naming hidden and layers) a model whose weights and Adam state (three
     copies, every process holds them) alone exceed this machine's memory."""
     import os
 
@@ -238,9 +251,9 @@ def check_model_fits(dims, settings: TrainSettings) -> None:
         return
     if need > have:
         from shardtrain.units import human_bytes
-        raise InputError(f"--hidden {settings.hidden} --layers {settings.layers}: the "
-                         f"weights and optimiser state alone need {human_bytes(need)}, this "
-                         f"machine has {human_bytes(have)}")
+        raise InputError(f"{option('hidden')} {settings.hidden} {option('layers')} "
+                         f"{settings.layers}: the weights and optimiser state alone need "
+                         f"{human_bytes(need)}, this machine has {human_bytes(have)}")
 
 
 def load_init_weights(path, dims, settings: TrainSettings):
@@ -259,7 +272,7 @@ def load_init_weights(path, dims, settings: TrainSettings):
 
 # ---------------------------------------------------------------- the run
 
-def run(config: RunConfig, *, transport: str = "pipes",
+def run(config: RunConfig, *, transport: str = defaults.TRANSPORT,
         on_epoch: Callable[[dict], None] | None = None,
         on_ready: Callable[[Ready], None] | None = None,
         check: Callable[[], None] | None = None,
@@ -307,11 +320,11 @@ def _run_pipes(config, transport, sess, on_epoch, on_ready, check, deliver) -> R
             facts = shard_dir_facts(config.source, manifest)
             counts = split_counts(config.source, manifest)
             if settings.early_stop and not counts["val"]:
-                raise InputError(f"--early-stop: {config.source} has no validation vertices "
-                                 f"(the validation split is empty)")
+                raise ParameterError("early_stop", f"{config.source} has no validation "
+                                     f"vertices (the validation split is empty)")
             if config.workers is not None and config.workers != facts.workers:
-                raise InputError(f"--workers {config.workers}: {config.source} holds "
-                                 f"{facts.workers} shards")
+                raise ParameterError("workers", f"{config.source} holds {facts.workers} "
+                                     f"shards", value=config.workers)
             ensure_descriptors(facts.workers)
             dims = model_dims_of(facts, settings)
             check_model_fits(dims, settings)
@@ -347,8 +360,8 @@ def _run_pipes(config, transport, sess, on_epoch, on_ready, check, deliver) -> R
                 from shardtrain.plan.partition import load_assignment
                 assignment, k = load_assignment(config.assignment, graph.num_vertices)
                 if workers is not None and workers != k:
-                    raise InputError(f"--workers {workers}: {config.assignment} assigns "
-                                     f"vertices to {k} workers")
+                    raise ParameterError("workers", f"{config.assignment} assigns vertices "
+                                         f"to {k} workers", value=workers)
                 workers = k
             elif not config.reference:
                 from shardtrain.plan.partition import check_workers
@@ -373,20 +386,21 @@ def _run_pipes(config, transport, sess, on_epoch, on_ready, check, deliver) -> R
 
             workers = shard_dir_facts(shard_dir).workers
             check_slow_range(config.slow_workers, workers)
-        plan = session.checkpoint_plan(ckpts, settings, workers=workers or 1, dims=dims,
-                                       graph_fp=graph_fp, shard_dir=shard_dir,
-                                       source_label=str(config.source))
+        schedule = session.checkpoint_schedule(ckpts, settings, workers=workers or 1,
+                                               dims=dims, graph_fp=graph_fp,
+                                               shard_dir=shard_dir,
+                                               source_label=str(config.source))
         sess.phase = "starting the training"
         pause_point("training")
         if config.reference:
-            result = session.train_reference_checkpointed(graph, settings, init, plan,
+            result = session.train_reference_checkpointed(graph, settings, init, schedule,
                                                           ckpts.resumed, on_epoch)
         else:
             from shardtrain.train.coordinator import train_partitioned
             result = train_partitioned(shard_dir, settings, timeout_s=config.timeout_s,
                                        init_params=init, on_epoch=on_epoch,
                                        max_frame_bytes=config.max_frame_bytes,
-                                       checkpoint=plan, resume=ckpts.resumed,
+                                       checkpoint=schedule, resume=ckpts.resumed,
                                        slow=dict(config.slow_workers), link=config.link)
             if labels is None:
                 labels = result.labels
@@ -395,8 +409,8 @@ def _run_pipes(config, transport, sess, on_epoch, on_ready, check, deliver) -> R
     if ckpts.resumed is not None:
         extra["resumed_from"] = {"folder": str(config.resume),
                                  "epoch": ckpts.resumed.epoch}
-    if plan is not None:
-        extra["checkpoint"] = {"folder": plan["folder"], "every": plan["every"]}
+    if schedule is not None:
+        extra["checkpoint"] = {"folder": schedule["folder"], "every": schedule["every"]}
     if config.slow_workers:
         extra["slow_workers"] = {str(w): f for w, f in config.slow_workers.items()}
     if config.link is not None:
@@ -435,8 +449,8 @@ def _prepare_mpi(config: RunConfig, check):
     settings = config.settings
     facts = shard_dir_facts(config.source)
     if config.workers is not None and config.workers != facts.workers:
-        raise InputError(f"--workers {config.workers}: {config.source} holds "
-                         f"{facts.workers} shards")
+        raise ParameterError("workers", f"{config.source} holds {facts.workers} shards",
+                             value=config.workers)
     dims = model_dims_of(facts, settings)
     check_model_fits(dims, settings)
     init = (load_init_weights(config.init_weights, dims, settings)

@@ -48,11 +48,6 @@ _FREE_SETTINGS = ("epochs", "threads")
 _ABSENT_MEANS = {"early_stop": 0}     # settings older checkpoints do not record
 
 
-def _param(name: str) -> str:
-    """A parameter name; a flag ("--resume") from callers not yet moved is taken as one."""
-    return name[2:].replace("-", "_") if name.startswith("--") else name
-
-
 def state_file_name(epoch: int) -> str:
     return f"state-{epoch:06d}.npz"
 
@@ -130,26 +125,27 @@ def write_checkpoint(folder, epoch: int, params: dict, adam_state: dict, identit
     return folder / INDEX
 
 
-def epoch_writer(plan: dict, last_epoch: int, *,
+def epoch_writer(schedule: dict, last_epoch: int, *,
                  before_commit: Callable[[int], None] | None = None,
                  on_stage: Callable[[int, str], None] | None = None):
     """An end-of-epoch hook `(epoch, params, adam) -> {"checkpoint": epoch} | None` that
-    writes a checkpoint every plan["every"] epochs and after `last_epoch` into
-    plan["folder"] (created here; its parent must exist). `plan` is {"folder", "every",
-    "identity"}; `before_commit(epoch)` as in `write_checkpoint`; `on_stage(epoch, "write" |
-    "done")` brackets each write (the worker names its phase with it)."""
+    writes a checkpoint every schedule["every"] epochs and after `last_epoch` into
+    schedule["folder"] (created here; its parent must exist). `schedule` is {"folder",
+    "every", "identity"}; `before_commit(epoch)` as in `write_checkpoint`;
+    `on_stage(epoch, "write" | "done")` brackets each write (the worker names its phase
+    with it)."""
     from shardtrain.train import model
 
-    Path(plan["folder"]).mkdir(exist_ok=True)
+    Path(schedule["folder"]).mkdir(exist_ok=True)
     stage = on_stage or (lambda epoch, what: None)
 
     def write(epoch: int, params, adam, *, early=None, last: bool = False) -> dict | None:
         # `early` (stopping.EarlyStop) is saved with the state; `last`: the run stops here
-        if epoch % plan["every"] and epoch != last_epoch and not last:
+        if epoch % schedule["every"] and epoch != last_epoch and not last:
             return None
         stage(epoch, "write")
-        write_checkpoint(plan["folder"], epoch, model.params_to_arrays(params), adam.state(),
-                         plan["identity"], every=plan["every"],
+        write_checkpoint(schedule["folder"], epoch, model.params_to_arrays(params),
+                         adam.state(), schedule["identity"], every=schedule["every"],
                          before_commit=(None if before_commit is None
                                         else lambda: before_commit(epoch)),
                          early_state=None if early is None else early.state())
@@ -185,7 +181,6 @@ def has_checkpoint(folder) -> bool:
 def read_checkpoint(folder, param: str = "resume") -> Checkpoint:
     """The committed checkpoint in `folder`; a ParameterError naming `param` and the folder,
     or an InputError naming the file."""
-    param = _param(param)
     folder = Path(folder)
     index = folder / INDEX
     if not folder.is_dir():
@@ -255,7 +250,7 @@ def check_resumable(ckpt: Checkpoint, identity: dict, *, epochs: int,
 
 
 def check_folder(folder, *, resuming_from=None) -> Path:
-    """The --checkpoint folder: it may be missing (the run creates it; its parent must
+    """The `checkpoint` folder: it may be missing (the run creates it; its parent must
     exist); one holding another run's checkpoint is refused unless that run is the one
     being resumed."""
     folder = Path(folder)
@@ -304,7 +299,6 @@ def lock_folder(folder, param: str = "checkpoint") -> FolderLock:
     import fcntl
     import os
 
-    param = _param(param)
     folder = Path(folder)
     if folder.exists() and not folder.is_dir():
         raise ParameterError(param, "exists and is not a folder", value=folder)

@@ -24,8 +24,9 @@ from dataclasses import replace
 from multiprocessing.connection import Connection, wait
 from typing import Callable, Final, cast
 
+from shardtrain import defaults
 from shardtrain.compat import worker_log_receiver
-from shardtrain.errors import Interrupted, RunError
+from shardtrain.errors import Interrupted, RunError, option
 from shardtrain.train import model
 from shardtrain.train.accounting import (
     PartitionedRunResult,
@@ -98,7 +99,8 @@ class _EpochBook:
 
 # ---------------------------------------------------------------- the run
 
-def train_partitioned(shard_dir, settings: TrainSettings, *, timeout_s: float = 60.0,
+def train_partitioned(shard_dir, settings: TrainSettings, *,
+                      timeout_s: float = defaults.TIMEOUT_S,
                       init_params=None, on_epoch: Callable[[dict], None] | None = None,
                       link=None, max_frame_bytes: int | None = None,
                       load_shard=None, facts: "ShardDirFacts | None" = None,
@@ -121,7 +123,7 @@ def train_partitioned(shard_dir, settings: TrainSettings, *, timeout_s: float = 
 
     A worker that dies or fails is a RunError naming it, its exit status or signal and its
     last phase; Ctrl-C (KeyboardInterrupt) stops every worker and becomes Interrupted,
-    naming the latest checkpoint and the `--resume DIR` that continues from it.
+    naming the latest checkpoint and the `resume` folder that continues from it.
     """
     from shardtrain import hooks
     from shardtrain.transport import frames
@@ -192,29 +194,29 @@ def train_partitioned(shard_dir, settings: TrainSettings, *, timeout_s: float = 
     return assemble_result(records, summaries, facts, settings, epochs_run=len(records))
 
 
-def _interrupted_text(book: _EpochBook, plan: dict | None) -> str:
+def _interrupted_text(book: _EpochBook, schedule: dict | None) -> str:
     """What an interrupted run says: where it stopped and how to go on."""
     done = [e for e in book.last_epoch if e is not None]
     where = (f"after epoch {min(done)}" if len(done) == book.k else "before the first epoch "
              "ended")
-    if plan is None:
-        return (f"workers stopped {where}; no checkpoint was written (add --checkpoint DIR "
-                f"to be able to resume)")
+    if schedule is None:
+        return (f"workers stopped {where}; no checkpoint was written (add "
+                f"{option('checkpoint')} DIR to be able to resume)")
     from shardtrain.train.checkpoint import INDEX
 
     epoch = book.checkpoint
     try:                       # worker 0 may have committed one after its last report
         import json
-        with open(os.path.join(plan["folder"], INDEX), encoding="utf-8") as fh:
+        with open(os.path.join(schedule["folder"], INDEX), encoding="utf-8") as fh:
             epoch = int(json.load(fh)["epoch"])
     except (OSError, ValueError, KeyError, TypeError):
         pass
     if epoch is None:
         return (f"workers stopped {where}; no checkpoint was written yet in "
-                f"{plan['folder']} (nothing to resume)")
+                f"{schedule['folder']} (nothing to resume)")
     return (f"workers stopped {where}; the latest checkpoint (epoch {epoch}) is intact in "
-            f"{plan['folder']}: run the same command with --resume {plan['folder']} to "
-            f"continue")
+            f"{schedule['folder']}: run the same command with {option('resume')} "
+            f"{schedule['folder']} to continue")
 
 
 def _phase_text(buf) -> str:

@@ -29,7 +29,8 @@ from __future__ import annotations
 import time
 from typing import Callable, cast
 
-from shardtrain.errors import InputError, RunError
+from shardtrain import defaults
+from shardtrain.errors import InputError, ParameterError, RunError
 from shardtrain.train import accounting
 from shardtrain.train.accounting import PartitionedRunResult, ShardDirFacts
 from shardtrain.train.codec import (
@@ -63,12 +64,13 @@ class JobStopped(Exception):
 
 
 def world():
-    """MPI.COMM_WORLD; InputError naming the option when mpi4py is not installed."""
+    """MPI.COMM_WORLD; a ParameterError naming `transport` when mpi4py is not installed."""
     try:
         from mpi4py import MPI
     except ImportError as exc:
-        raise InputError(f"--transport mpi: mpi4py cannot be imported ({exc}); install the "
-                         f"'mpi' extra: pip install 'shardtrain[mpi]'") from None
+        raise ParameterError("transport", f"mpi4py cannot be imported ({exc}); install the "
+                             f"'mpi' extra: pip install 'shardtrain[mpi]'",
+                             value="mpi") from None
     return MPI.COMM_WORLD
 
 
@@ -280,7 +282,7 @@ def _check_shards(comm, shard_dir, timeout_s: float) -> None:
 
 
 def train_partitioned(shard_dir, settings: TrainSettings | None, *, comm=None,
-              timeout_s: float = 60.0, init_params=None,
+              timeout_s: float = defaults.TIMEOUT_S, init_params=None,
               on_epoch: Callable[[dict], None] | None = None, allreduce: str = "mpi",
               max_frame_bytes: int | None = None, load_shard=None,
               on_phase: Callable[[str], None] | None = None) -> PartitionedRunResult | None:

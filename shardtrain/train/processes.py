@@ -9,14 +9,14 @@ import signal
 import time
 from contextlib import contextmanager
 
-from shardtrain.errors import InputError
+from shardtrain.errors import ParameterError
 
 JOIN_S = 5.0                 # how long stopped workers get before they are killed
 BLAS_ENV = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS")
 
 
 def pin_blas_threads(threads: int = 1) -> None:
-    """`threads` BLAS threads in this process (the --threads setting, default 1: the
+    """`threads` BLAS threads in this process (the `threads` setting, default 1: the
     workers are the parallelism). threadpoolctl raises the limit too, so a forkserver
     child started with the pinned environment can still use more."""
     for name in BLAS_ENV:
@@ -90,8 +90,8 @@ def _open_descriptors() -> int:
 
 def ensure_descriptors(k: int) -> None:
     """Make room for a run of k workers before anything starts: raise the soft limit of
-    open files up to the hard limit when that suffices, else an InputError naming
-    `ulimit -n`."""
+    open files up to the hard limit when that suffices, else a ParameterError about
+    `workers` naming `ulimit -n`."""
     import resource
 
     need = descriptors_needed(k)
@@ -105,9 +105,9 @@ def ensure_descriptors(k: int) -> None:
             return
         except (OSError, ValueError):
             pass
-    raise InputError(f"--workers {k}: {k} worker processes need about {need:,} open files, "
-                     f"but this shell allows {soft:,} (hard limit {hard:,}): raise it with "
-                     f"`ulimit -n {need}` or use fewer workers")
+    raise ParameterError("workers", f"{k} worker processes need about {need:,} open files, "
+                         f"but this shell allows {soft:,} (hard limit {hard:,}): raise it "
+                         f"with `ulimit -n {need}` or use fewer workers", value=k)
 
 
 def mesh_pairs(k: int, peer_sets: list[set[int]] | None = None) -> set[tuple[int, int]]:

@@ -1,5 +1,5 @@
 """What one training run holds around its training: the checkpoint folders it locks and the
-plan of checkpoints it writes, the temporary shard folder it builds, its signal handling and
+schedule of checkpoints it writes, the temporary shard folder it builds, its signal handling and
 the phase it is in (for the line an interruption prints). Used by `api.run`.
 
 Signals: for the whole run, Ctrl-C, SIGTERM and SIGHUP raise in the main thread as Ctrl-C
@@ -19,12 +19,13 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
-from shardtrain.errors import InputError, Interrupted
+from shardtrain import defaults
+from shardtrain.errors import Interrupted, ParameterError, option
 
 if TYPE_CHECKING:
     from shardtrain.train.checkpoint import Checkpoint
 
-DEFAULT_CHECKPOINT_EVERY = 10
+DEFAULT_CHECKPOINT_EVERY = defaults.CHECKPOINT_EVERY
 STOP_SIGNALS = (signal.SIGINT, signal.SIGTERM, signal.SIGHUP)
 
 
@@ -103,15 +104,15 @@ class Checkpoints:
 
 def open_checkpoints(session: Session, folder: str | None, every: int | None,
                      resume: str | None) -> Checkpoints:
-    """Lock the --resume and --checkpoint folders for the whole run (one run per folder),
+    """Lock the `resume` and `checkpoint` folders for the whole run (one run per folder),
     read the checkpoint resumed, check the folder written and fill in the interval (the
     resumed run's, else DEFAULT_CHECKPOINT_EVERY)."""
     from shardtrain.train import checkpoint
 
-    for option, path in (("--resume", resume), ("--checkpoint", folder)):
+    for param, path in (("resume", resume), ("checkpoint", folder)):
         if path and not any(Path(path).resolve() == held.folder.resolve()
                             for held in session.locks):
-            session.locks.append(checkpoint.lock_folder(path, option))
+            session.locks.append(checkpoint.lock_folder(path, param))
     resumed = checkpoint.read_checkpoint(resume) if resume else None
     if resumed is not None and folder is None:
         folder = resume
@@ -124,9 +125,9 @@ def open_checkpoints(session: Session, folder: str | None, every: int | None,
     return Checkpoints(folder, every, resume, resumed)
 
 
-def checkpoint_plan(ckpts: Checkpoints, settings, *, workers: int, dims, graph_fp,
-                    shard_dir=None, source_label: str) -> dict | None:
-    """Check the resumed checkpoint against this run; the checkpoint plan ({"folder",
+def checkpoint_schedule(ckpts: Checkpoints, settings, *, workers: int, dims, graph_fp,
+                        shard_dir=None, source_label: str) -> dict | None:
+    """Check the resumed checkpoint against this run; the checkpoint schedule ({"folder",
     "every", "identity"}) or None. `shard_dir` None: a reference run."""
     from shardtrain.train import checkpoint
 
@@ -156,16 +157,17 @@ def check_not_stopped(resumed, settings) -> None:
         return
     best = int(np.asarray(early.get("early_best_epoch", resumed.epoch)))
     if resumed.epoch - best >= settings.early_stop:
-        raise InputError(f"--resume {resumed.folder}: that run stopped early at epoch "
-                         f"{resumed.epoch} (no better validation loss since epoch {best}, "
-                         f"--early-stop {settings.early_stop}); nothing to continue")
+        raise ParameterError("resume", f"that run stopped early at epoch {resumed.epoch} (no "
+                             f"better validation loss since epoch {best}, "
+                             f"{option('early_stop')} {settings.early_stop}); nothing to "
+                             f"continue", value=resumed.folder)
 
 
 # ---------------------------------------------------------------- the reference run
 
-def train_reference_checkpointed(graph, settings, init, plan, resumed, on_epoch):
-    """The single-process run, checkpointed per `plan`, continuing `resumed`; Ctrl-C
-    becomes Interrupted naming the checkpoint and the --resume that continues it."""
+def train_reference_checkpointed(graph, settings, init, schedule, resumed, on_epoch):
+    """The single-process run, checkpointed per `schedule`, continuing `resumed`; Ctrl-C
+    becomes Interrupted naming the checkpoint and the `resume` that continues it."""
     from shardtrain.train import checkpoint
     from shardtrain.train.reference import train_reference
 
@@ -181,18 +183,20 @@ def train_reference_checkpointed(graph, settings, init, plan, resumed, on_epoch)
             init_adam=resumed.adam if resumed is not None else None,
             first_epoch=resumed.epoch + 1 if resumed is not None else 1, on_epoch=each_epoch,
             init_early=resumed.early if resumed is not None else None,
-            on_epoch_end=None if plan is None else checkpoint.epoch_writer(plan,
-                                                                           settings.epochs))
+            on_epoch_end=None if schedule is None else checkpoint.epoch_writer(
+                schedule, settings.epochs))
     except KeyboardInterrupt:
         where = f"after epoch {done[0]}" if done[0] else "before the first epoch ended"
-        saved = None if plan is None else checkpoint.latest_epoch(plan["folder"])
-        if plan is None:
-            text = "no checkpoint was written (add --checkpoint DIR to be able to resume)"
+        saved = None if schedule is None else checkpoint.latest_epoch(schedule["folder"])
+        if schedule is None:
+            text = (f"no checkpoint was written (add {option('checkpoint')} DIR to be able "
+                    f"to resume)")
         elif saved is None:
-            text = f"no checkpoint was written yet in {plan['folder']} (nothing to resume)"
+            text = f"no checkpoint was written yet in {schedule['folder']} (nothing to resume)"
         else:
-            text = (f"the latest checkpoint (epoch {saved}) is intact in {plan['folder']}: "
-                    f"run the same command with --resume {plan['folder']} to continue")
+            text = (f"the latest checkpoint (epoch {saved}) is intact in "
+                    f"{schedule['folder']}: run the same command with {option('resume')} "
+                    f"{schedule['folder']} to continue")
         raise Interrupted(f"training stopped {where}; {text}") from None
 
 
@@ -221,7 +225,7 @@ def build_shard_dir(session: Session, graph, *, workers: int, method: str | None
         from shardtrain.plan.partition import partition_plan
         session.phase = "partitioning"
         pause_point("partitioning")
-        assert method is not None          # checked: --method or --assignment
+        assert method is not None          # checked: method or assignment
         assignment, details = partition_plan(graph, method, workers, seed=seed,
                                              imbalance=imbalance)
     session.phase = "building the shards"

@@ -15,6 +15,7 @@ from typing import Callable
 
 import numpy as np
 
+from shardtrain.errors import ParameterError
 from shardtrain.plan import schedule
 from shardtrain.plan.schedule import layer_dims, layer_hops
 from shardtrain.train import model, stopping
@@ -28,7 +29,7 @@ class SlowCompute:
     """A profile whose compute phases take `factor` times as long: after each one it
     sleeps (factor - 1) x the compute time it measured (its own, without nested phases),
     inside the phase, so the profile books the delay as compute and the other workers'
-    waits show what a straggler costs them (--slow-worker)."""
+    waits show what a straggler costs them (`slow_workers`)."""
 
     def __init__(self, profile, factor: float):
         self._profile, self.factor = profile, float(factor)
@@ -214,8 +215,8 @@ def _global_val_loss(val_sum: float, val_count: int, allreduce) -> float:
     assert vote.size == schedule.VOTE_ELEMENTS and vote.itemsize == schedule.VOTE_ITEMSIZE
     allreduce(vote)
     if vote[1] == 0:
-        raise ValueError("--early-stop: the graph has no validation vertices (the "
-                         "validation split is empty)")
+        raise ParameterError("early_stop", "the graph has no validation vertices (the "
+                                           "validation split is empty)")
     return float(vote[0] / vote[1])
 
 

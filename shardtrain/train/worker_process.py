@@ -12,6 +12,7 @@ import signal
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Callable
 
+from shardtrain.errors import marked
 from shardtrain.train.codec import encode_message, encode_summary
 from shardtrain.train.processes import pin_blas_threads
 from shardtrain.train.settings import TrainSettings
@@ -119,13 +120,14 @@ def process_main(rank: int, size: int, shard_dir: str, settings_dict: dict, num_
             init_params, init_adam = resume["params"], resume["adam"]
             init_early = resume.get("early")
             epochs = range(int(resume["epoch"]) + 1, settings.epochs + 1)
-        plan = options.checkpoint if rank == 0 else None
+        schedule = options.checkpoint if rank == 0 else None
         summary = run_worker(shard, settings, transport, profile,
                              lambda rec: send({"type": "epoch", **rec}),
                              num_classes=num_classes, init_params=init_params,
                              init_adam=init_adam, epochs_range=epochs, on_phase=on_phase,
-                             on_epoch_end=(_checkpoint_writer(plan, settings.epochs, on_phase)
-                                           if plan else None),
+                             on_epoch_end=(_checkpoint_writer(schedule, settings.epochs,
+                                                              on_phase)
+                                           if schedule else None),
                              slow_factor=float(options.slow or 1.0),
                              init_early=init_early)
         send({"type": "done", **encode_summary(summary)})
@@ -133,8 +135,11 @@ def process_main(rank: int, size: int, shard_dir: str, settings_dict: dict, num_
         status = 1
         log.debug("worker %d failed", rank, exc_info=True)
         try:
+            # the text keeps its parameter mentions: the coordinator's RunError words them
+            # as its caller does (the command line: options)
+            text = marked(exc)
             send({"type": "error", "worker": rank, "phase": phase[0],
-                  "message": f"{type(exc).__name__}: {exc}" if not str(exc) == "" else
+                  "message": f"{type(exc).__name__}: {text}" if text else
                   type(exc).__name__})
         except (OSError, ValueError):
             pass
@@ -148,8 +153,8 @@ def process_main(rank: int, size: int, shard_dir: str, settings_dict: dict, num_
         raise SystemExit(status)
 
 
-def _checkpoint_writer(plan: dict, last_epoch: int, on_phase: Callable[[str], None]):
-    """Worker 0's end-of-epoch hook: every plan["every"] epochs and at the last one, write
+def _checkpoint_writer(schedule: dict, last_epoch: int, on_phase: Callable[[str], None]):
+    """Worker 0's end-of-epoch hook: every schedule["every"] epochs and at the last one, write
     the weights and Adam state (identical on every worker after the all-reduce, so one
     writer is enough and nothing large crosses the control pipe)."""
     from shardtrain.train import checkpoint
@@ -158,6 +163,6 @@ def _checkpoint_writer(plan: dict, last_epoch: int, on_phase: Callable[[str], No
         on_phase(f"epoch {epoch} checkpoint write" if what == "write" else f"epoch {epoch} compute")
 
     return checkpoint.epoch_writer(
-        plan, last_epoch, on_stage=stage,
+        schedule, last_epoch, on_stage=stage,
         before_commit=lambda epoch: on_phase(f"epoch {epoch} checkpoint write, index not yet "
                                              f"renamed"))

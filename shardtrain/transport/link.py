@@ -55,11 +55,7 @@ _LINK = re.compile(rf"^\s*({_NUMBER})\s*(?::\s*({_NUMBER})\s*)?$")
 
 
 def parse_link(text: str, param: str = "emulate_link") -> LinkModel:
-    """'GBPS[:LATENCY_US]' (e.g. '10', '0.1:50') -> LinkModel; ParameterError naming `param`
-    (a flag such as "--emulate-link", from callers not yet moved to parameter names, is
-    taken as that name)."""
-    if param.startswith("--"):
-        param = param[2:].replace("-", "_")
+    """'GBPS[:LATENCY_US]' (e.g. '10', '0.1:50') -> LinkModel; ParameterError naming `param`."""
     m = _LINK.match(text or "")
     if not m:
         raise ParameterError(param, f"expected GBPS[:LATENCY_US] such as 10 or 0.1:50, "
