@@ -22,7 +22,7 @@ from shardtrain.plan.shards import (
     _VERTEX_DATA,
     FORMAT,
     FORMAT_VERSION,
-    MANIFEST,
+    SHARDS_MANIFEST,
     Shard,
     _build_one,
     _index_dtype,
@@ -178,6 +178,6 @@ def save_shards_streaming(path, gd, assignment: np.ndarray, k: int, *, meta: dic
             save_npz_atomic(tmp / shard_file_name(s.worker), **arrays)
             if on_shard is not None:
                 on_shard("write", s.worker)
-        write_json_atomic(tmp / MANIFEST, manifest)
+        write_json_atomic(tmp / SHARDS_MANIFEST, manifest)
     return {**manifest, "stats": {"owned": owned, "halo": halo,
                                   "edge_cut": cut_entries // 2}}
