@@ -11,7 +11,7 @@ import scipy.io
 import scipy.sparse as sp
 
 from shardtrain.data import textscan
-from shardtrain.data.readers import load_features, load_graph, load_labels, make_splits
+from shardtrain.data.readers import load_features, load_graph, load_labels, make_masks
 from shardtrain.errors import InputError
 from shardtrain.files import (
     atomic_directory,
@@ -163,27 +163,27 @@ def test_masks_from_bundle_are_kept(tmp_path):
     assert g.labels.dtype == np.int64
 
 
-# ----------------------------------------------------------------------------- make_splits
+# ----------------------------------------------------------------------------- make_masks
 
 def test_make_splits_follows_the_gcn_protocol():
     # Kipf & Welling (ICLR 2017): 20 labelled vertices per class train, 500 val, 1000 test
     rng = np.random.default_rng(0)
     labels = rng.integers(0, 7, size=5000)
     labels[rng.random(5000) < 0.1] = -1
-    train, val, test = make_splits(labels, seed=4)
+    train, val, test = make_masks(labels, seed=4)
     assert np.array_equal(np.bincount(labels[train], minlength=7), np.full(7, 20))
     assert val.sum() == 500 and test.sum() == 1000
     assert not (train & val).any() and not (train & test).any() and not (val & test).any()
     assert (labels[train | val | test] >= 0).all()
-    again = make_splits(labels, seed=4)
+    again = make_masks(labels, seed=4)
     assert all(np.array_equal(a, b) for a, b in zip((train, val, test), again))
-    other = make_splits(labels, seed=5)
+    other = make_masks(labels, seed=5)
     assert not np.array_equal(train, other[0])
 
 
 def test_make_splits_scales_down_on_small_data():
     labels = np.repeat(np.arange(3), [30, 8, 1])
-    train, val, test = make_splits(labels, seed=0)
+    train, val, test = make_masks(labels, seed=0)
     assert np.bincount(labels[train], minlength=3).tolist() == [15, 4, 1]
     rest = 39 - 20
     assert val.sum() + test.sum() == rest

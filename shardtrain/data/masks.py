@@ -6,7 +6,7 @@ import numpy as np
 MASK_KEYS = ("train_mask", "val_mask", "test_mask")
 
 
-def make_splits(labels: np.ndarray, seed: int, per_class: int = 20, val: int = 500,
+def make_masks(labels: np.ndarray, seed: int, per_class: int = 20, val: int = 500,
                 test: int = 1000) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """(train, val, test) bool masks, deterministic from `seed`.
 

@@ -19,7 +19,7 @@ import scipy.sparse as sp
 
 from shardtrain.data.graph import EdgeCleanup, Graph, csr_from_edges
 from shardtrain.data.inputs import open_checked, require_regular_file
-from shardtrain.data.masks import MASK_KEYS, make_splits
+from shardtrain.data.masks import MASK_KEYS, make_masks
 from shardtrain.data.memory import feature_bytes_of, graph_load_bytes, require_memory
 from shardtrain.data.textscan import TextTable, show
 from shardtrain.errors import InputError, ParameterError, option
@@ -431,7 +431,7 @@ def load_graph(path: str | os.PathLike, *, features: str | os.PathLike | None = 
 
     The graph is made undirected and simple (see `csr_from_edges`); num_vertices is the
     bundle's `num_vertices`, the .mtx size, the feature (or label) row count, or else the
-    largest id + 1. Missing split masks are made with `make_splits(labels, seed)`.
+    largest id + 1. Missing split masks are made with `make_masks(labels, seed)`.
     A graph directory (`shardtrain ingest`, `data.graphdir`) gives the same LoadedGraph as
     the file it was made from.
     """
@@ -536,7 +536,7 @@ def _masks(path: Path, raw: _Raw, n: int, seed: int, notes: list[str]):
             out.append(m)
         train, val, test = out
     else:
-        train, val, test = make_splits(raw.labels, seed)
+        train, val, test = make_masks(raw.labels, seed)
         notes.append(f"made split masks from --seed {seed}: {int(train.sum())} train, "
                      f"{int(val.sum())} validation, {int(test.sum())} test")
     if not train.any():

@@ -19,7 +19,7 @@ import numpy as np
 from shardtrain import defaults
 from shardtrain.data.graph import Graph, csr_from_edges
 from shardtrain.data.memory import require_memory, synth_bytes
-from shardtrain.data.readers import make_splits
+from shardtrain.data.readers import make_masks
 from shardtrain.errors import ParameterError, option
 
 ROLE_NAMES = ("hub", "urban", "suburban", "rural", "cross-dock", "returns", "airport",
@@ -207,7 +207,7 @@ def parcel_network(vertices: int, avg_degree: float, classes: int, features: int
     means = rng.standard_normal((classes, features)) * (signal / np.sqrt(features))
     x = rng.standard_normal((n, features), dtype=np.float32)
     x += means.astype(np.float32)[labels]
-    train, val, test = make_splits(labels, seed)
+    train, val, test = make_masks(labels, seed)
     return Graph(indptr, indices, x, labels, train, val, test)
 
 
@@ -326,7 +326,7 @@ class ParcelStream:
 
     def masks(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """(train, val, test) by the same protocol and seed as `parcel_network`."""
-        return make_splits(self.labels.astype(np.int64), self.seed)
+        return make_masks(self.labels.astype(np.int64), self.seed)
 
 
 class _FeatureRows:
