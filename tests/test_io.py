@@ -165,7 +165,7 @@ def test_masks_from_bundle_are_kept(tmp_path):
 
 # ----------------------------------------------------------------------------- make_masks
 
-def test_make_splits_follows_the_gcn_protocol():
+def test_make_masks_follows_the_gcn_protocol():
     # Kipf & Welling (ICLR 2017): 20 labelled vertices per class train, 500 val, 1000 test
     rng = np.random.default_rng(0)
     labels = rng.integers(0, 7, size=5000)
@@ -181,7 +181,7 @@ def test_make_splits_follows_the_gcn_protocol():
     assert not np.array_equal(train, other[0])
 
 
-def test_make_splits_scales_down_on_small_data():
+def test_make_masks_scales_down_on_small_data():
     labels = np.repeat(np.arange(3), [30, 8, 1])
     train, val, test = make_masks(labels, seed=0)
     assert np.bincount(labels[train], minlength=3).tolist() == [15, 4, 1]
