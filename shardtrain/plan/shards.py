@@ -414,21 +414,27 @@ def save_shards(path, shards: list[Shard], *, meta: dict, overwrite: bool = Fals
     ).to_dict()
     with atomic_directory(path, overwrite=overwrite) as tmp:
         for s in shards:
-            arrays = {name: getattr(s, name) for name in _INDEX_ARRAYS}
-            arrays.update(adj_indptr=s.adj.indptr, adj_indices=s.adj.indices,
-                          adj_data=s.adj.data, adj_shape=np.asarray(s.adj.shape, dtype=np.int64),
-                          header=np.asarray([s.worker, s.workers, s.num_vertices_global,
-                                             s.num_train_global, s.num_owned, s.num_halo,
-                                             -1 if input_dim is None else int(input_dim),
-                                             int(num_classes)], dtype=np.int64),
-                          split_id=np.asarray(split_id))
-            for name in _VERTEX_DATA:
-                value = getattr(s, name)
-                if value is not None:
-                    arrays[name] = value
-            save_npz_atomic(tmp / shard_file_name(s.worker), **arrays)
+            save_npz_atomic(tmp / shard_file_name(s.worker),
+                            **shard_arrays(s, input_dim, num_classes, split_id))
         write_json_atomic(tmp / SHARDS_MANIFEST, manifest)
     return manifest
+
+
+def shard_arrays(s: Shard, input_dim, num_classes: int, split_id: str) -> dict:
+    """The arrays of one shard file (the layout CONTRACT above), for every shard writer."""
+    arrays = {name: getattr(s, name) for name in _INDEX_ARRAYS}
+    arrays.update(adj_indptr=s.adj.indptr, adj_indices=s.adj.indices,
+                  adj_data=s.adj.data, adj_shape=np.asarray(s.adj.shape, dtype=np.int64),
+                  header=np.asarray([s.worker, s.workers, s.num_vertices_global,
+                                     s.num_train_global, s.num_owned, s.num_halo,
+                                     -1 if input_dim is None else int(input_dim),
+                                     int(num_classes)], dtype=np.int64),
+                  split_id=np.asarray(split_id))
+    for name in _VERTEX_DATA:
+        value = getattr(s, name)
+        if value is not None:
+            arrays[name] = value
+    return arrays
 
 
 def load_manifest(path) -> dict:

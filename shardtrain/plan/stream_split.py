@@ -18,8 +18,6 @@ import scipy.sparse as sp
 
 from shardtrain.errors import InputError
 from shardtrain.plan.shards import (
-    _INDEX_ARRAYS,
-    _VERTEX_DATA,
     FORMAT,
     FORMAT_VERSION,
     SHARDS_MANIFEST,
@@ -27,6 +25,7 @@ from shardtrain.plan.shards import (
     _build_one,
     _index_dtype,
     _ptr_by_group,
+    shard_arrays,
     shard_file_name,
 )
 
@@ -163,19 +162,8 @@ def save_shards_streaming(path, gd, assignment: np.ndarray, k: int, *, meta: dic
     }
     with atomic_directory(path, overwrite=overwrite) as tmp:
         for s in iter_shards(gd, assignment, k):
-            arrays = {name: getattr(s, name) for name in _INDEX_ARRAYS}
-            arrays.update(adj_indptr=s.adj.indptr, adj_indices=s.adj.indices,
-                          adj_data=s.adj.data, adj_shape=np.asarray(s.adj.shape, dtype=np.int64),
-                          header=np.asarray([s.worker, s.workers, s.num_vertices_global,
-                                             s.num_train_global, s.num_owned, s.num_halo,
-                                             -1 if input_dim is None else int(input_dim),
-                                             int(num_classes)], dtype=np.int64),
-                          split_id=np.asarray(split_id))
-            for name in _VERTEX_DATA:
-                value = getattr(s, name)
-                if value is not None:
-                    arrays[name] = value
-            save_npz_atomic(tmp / shard_file_name(s.worker), **arrays)
+            save_npz_atomic(tmp / shard_file_name(s.worker),
+                            **shard_arrays(s, input_dim, num_classes, split_id))
             if on_shard is not None:
                 on_shard("write", s.worker)
         write_json_atomic(tmp / SHARDS_MANIFEST, manifest)
