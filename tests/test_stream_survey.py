@@ -101,7 +101,7 @@ def test_metis_over_the_budget_is_refused_naming_the_streaming_methods(pair):
     gd = open_graph_dir(folder)
     need = metis_memory_bytes(gd.num_vertices, gd.num_edges)
     with pytest.raises(InputError, match=r"method metis: METIS would need about .* "
-                                         r"\(random, range, fennel\)") as caught:
+                                         r"\(random, range, fennel, ldg\)") as caught:
         stream_partition(gd, "metis", 4, memory_budget=need - 1)
     # the library names the parameter; the command line words it as the options
     from shardtrain.cli.flags import cli_message
@@ -173,10 +173,10 @@ def test_survey_of_a_graph_dir_writes_the_survey_of_the_file(pair, run_cli, tmp_
     file, folder, _ = pair
     common = ("--workers", "2,4,16", "--hidden", "12", "--dtype", "float64")
     want = _survey_cli(run_cli, tmp_path, file, "file", "--method",
-                       "random,range,fennel,metis", *common)
+                       "random,range,fennel,ldg,metis", *common)
     # a tiny budget: the counting pass reads many small chunks
-    streamed = _survey_cli(run_cli, tmp_path, folder, "dir", "--method", "random,range,fennel",
-                           "--memory-budget", "64K", *common)
+    streamed = _survey_cli(run_cli, tmp_path, folder, "dir", "--method",
+                           "random,range,fennel,ldg", "--memory-budget", "64K", *common)
     metis = _survey_cli(run_cli, tmp_path, folder, "metis", "--method", "metis", *common)
     assert all(c["chunks"] > 1 for c in streamed["streaming"]["chunks"])
     assert streamed["streaming"]["memory_budget_bytes"] == 64 * 1024
@@ -229,7 +229,7 @@ def test_metis_refused_on_the_command_line(pair, run_cli):
     assert r.returncode == 2 and "Traceback" not in r.stderr
     lines = [line for line in r.stderr.splitlines() if line.strip()]
     assert len(lines) == 1 and "METIS would need about" in lines[0]
-    assert "random, range, fennel" in lines[0] and r.stdout == ""
+    assert "random, range, fennel, ldg" in lines[0] and r.stdout == ""
     bad = run_cli("survey", folder, "--memory-budget", "lots")
     assert bad.returncode == 2 and "--memory-budget 'lots'" in bad.stderr
     vdata = run_cli("survey", folder, "--features", folder / "indptr.npy")

@@ -262,11 +262,46 @@ def fennel(graph: Graph, k: int, *, seed: int = 0, imbalance: float = 0.03,
     a part's remaining room within a batch take their next best open part.
     """
     n = graph.num_vertices
-    small = owner_dtype(k)           # the assignment: 2 bytes per vertex up to 32767 parts
     if k == 1:
-        return np.zeros(n, dtype=small)
+        return np.zeros(n, dtype=owner_dtype(k))
     gamma = 1.5
     alpha = np.sqrt(k) * max(graph.num_edges, 1) / n ** 1.5
+
+    def score(counts: np.ndarray, sizes: np.ndarray, capacity: int) -> np.ndarray:
+        return counts - alpha * gamma * np.sqrt(sizes)
+
+    return _restream(graph, k, score, seed=seed, imbalance=imbalance, passes=passes,
+                     on_pass=on_pass)
+
+
+def ldg(graph: Graph, k: int, *, seed: int = 0, imbalance: float = 0.03,
+        passes: int = 8, on_pass=None) -> np.ndarray:
+    """Linear deterministic greedy (Stanton & Kliot, KDD 2012; definition from memory):
+    vertex v goes to argmax_i |N(v) ∩ P_i| * (1 - |P_i| / C), C the load limit
+    (1+imbalance) n/k; a vertex with no placed neighbour (every score 0) goes to the least
+    loaded part. Restreamed, batched, seeded and load-limited exactly as `fennel` (see
+    there); only the score differs: a multiplicative penalty of the part's fill instead of
+    Fennel's additive one."""
+    n = graph.num_vertices
+    if k == 1:
+        return np.zeros(n, dtype=owner_dtype(k))
+
+    def score(counts: np.ndarray, sizes: np.ndarray, capacity: int) -> np.ndarray:
+        out = counts * (1.0 - sizes / capacity)
+        alone = ~counts.any(axis=1)             # no placed neighbour: the least loaded part
+        out[alone] = -sizes
+        return out
+
+    return _restream(graph, k, score, seed=seed, imbalance=imbalance, passes=passes,
+                     on_pass=on_pass)
+
+
+def _restream(graph: Graph, k: int, score, *, seed: int, imbalance: float, passes: int,
+              on_pass=None) -> np.ndarray:
+    """The restreamed, batched greedy pass shared by `fennel` and `ldg`:
+    `score(counts (b, k), sizes (k,), capacity)` -> (b, k) scores of a batch."""
+    n = graph.num_vertices
+    small = owner_dtype(k)           # the assignment: 2 bytes per vertex up to 32767 parts
     capacity = max(int(np.ceil(n / k)), int((1.0 + imbalance) * n / k))   # hard load limit
     batch = int(min(max(8, imbalance * n / (2 * k)), 65536))
     # the same seeded order at any size, held as int32 where the ids fit (half the memory)
@@ -288,8 +323,8 @@ def fennel(graph: Graph, k: int, *, seed: int = 0, imbalance: float = 0.03,
             nbr_part = part[indices[edge]]
             placed = nbr_part >= 0
             counts = np.bincount(row[placed] * k + nbr_part[placed], minlength=b * k)
-            score = counts.reshape(b, k) - alpha * gamma * np.sqrt(sizes)
-            part[vertices] = _choose_within_capacity(score, sizes, capacity)
+            scores = score(counts.reshape(b, k), sizes, capacity)
+            part[vertices] = _choose_within_capacity(scores, sizes, capacity)
         if on_pass is not None:
             on_pass(_pass)
         if np.array_equal(part, previous):
@@ -334,6 +369,7 @@ METHODS = {
     "metis-balanced": metis_balanced,
     "metis-volume": metis_volume,
     "fennel": fennel,
+    "ldg": ldg,
     "random": random,
     "range": range_blocks,
 }

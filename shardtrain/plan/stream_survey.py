@@ -140,13 +140,13 @@ def stream_survey_plan(gd, method: str, k: int, *, hops, itemsize: int, seed: in
         assignment, details = _shared_partition(gd, method, k, seed, imbalance,
                                                 memory_budget, group)
     elif assignment is None:
-        bar = progress(f"{method} k={k} partition", None) if progress and method == "fennel" \
-            else None
+        restreamed = method in ("fennel", "ldg")
+        bar = progress(f"{method} k={k} partition", None) if progress and restreamed else None
         last = [t0]
 
         def on_pass(i: int) -> None:
             now = time.perf_counter()
-            passes[f"fennel_pass_{i + 1}"] = now - last[0]
+            passes[f"{method}_pass_{i + 1}"] = now - last[0]
             last[0] = now
             if bar is not None:
                 bar.update(1)

@@ -27,11 +27,12 @@ from shardtrain.plan.partition import (
     _splitmix64,
     check_workers,
     fennel,
+    ldg,
     owner_dtype,
     partition_plan,
 )
 
-STREAMING_METHODS = ("random", "range", "fennel")
+STREAMING_METHODS = ("random", "range", "fennel", "ldg")
 METIS_METHODS = ("metis", "metis-balanced", "metis-volume")
 
 # Bytes of process memory per CSR entry (one direction of an edge) of one survey chunk:
@@ -151,10 +152,11 @@ def stream_partition(gd, method: str, k: int, *, seed: int = 0, imbalance: float
         return stream_random(n, k, seed), {"method": method}
     if method == "range":
         return stream_range(n, k), {"method": method}
-    if method == "fennel":
+    if method in ("fennel", "ldg"):
         # plain array views of the maps (int32 indices, mapped offsets): nothing read whole
         view = Graph(np.asarray(gd.indptr), np.asarray(gd.indices))
-        return fennel(view, k, seed=seed, imbalance=imbalance, on_pass=on_pass).astype(
+        greedy = fennel if method == "fennel" else ldg
+        return greedy(view, k, seed=seed, imbalance=imbalance, on_pass=on_pass).astype(
             small, copy=False), {"method": method}
     require_metis_fits(gd, method, memory_budget)
     assignment, details = partition_plan(gd.graph(load=True), method, k, seed=seed,
