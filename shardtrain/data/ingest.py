@@ -59,6 +59,7 @@ from shardtrain.data.textscan import (
     maybe_header,
     show,
     strip_comment,
+    text_chunks,
     tokenize,
 )
 from shardtrain.errors import InputError
@@ -131,35 +132,6 @@ def _at_rows(prefix: str, first: int, fmt: str = "{prefix}: row {row}") -> Calla
 # ---------------------------------------------------------------- text
 
 
-def _text_chunks(path: Path, start: int, size: int) -> Iterator[bytes]:
-    """The file from byte `start` in pieces of about `size` bytes, each ending at a newline
-    (as textscan's reader cuts them, at a size the budget chooses)."""
-    with open_checked(path) as fh:
-        fh.seek(start)
-        carry = b""
-        first = start == 0
-        while True:
-            try:
-                block = fh.read(size)
-            except OSError as exc:
-                raise InputError(f"{path}: cannot read: {exc.strerror or exc}") from None
-            if first:
-                first = False
-                if block.startswith(b"\xef\xbb\xbf"):  # UTF-8 byte-order mark
-                    block = block[3:]
-            if not block:
-                if carry:
-                    yield carry + b"\n"
-                return
-            data = carry + block
-            cut = data.rfind(b"\n")
-            if cut < 0:
-                carry = data
-                continue
-            carry = data[cut + 1:]
-            yield data[:cut + 1]
-
-
 class TextStream(TextTable):
     """`TextTable`'s byte scanner run chunk by chunk: `blocks()` yields (rows x columns
     values, 1-based line of each row) with the same checks and messages, never the whole
@@ -177,7 +149,7 @@ class TextStream(TextTable):
         token_ok = is_int_token if self.kind == "int" else is_float_token
         line_offset = self.first_line
         header_possible = self.header_allowed
-        for chunk in _text_chunks(self.path, self.start, self.chunk_bytes):
+        for chunk in text_chunks(self.path, self.start, self.chunk_bytes):
             c = tokenize(chunk)
             if header_possible and (~c.skip & (c.counts > 0)).any():
                 header_possible = False

@@ -31,12 +31,20 @@ _SPLIT = re.compile(rb"[\s,]+")
 
 def _chunks(path: Path) -> Iterator[bytes]:
     """The file in pieces of about _CHUNK_BYTES, each ending with a newline."""
+    return text_chunks(path, 0, _CHUNK_BYTES)
+
+
+def text_chunks(path: Path, start: int, size: int) -> Iterator[bytes]:
+    """The file from byte `start` in pieces of about `size` bytes, each ending at a newline
+    (a UTF-8 byte-order mark at the very start is dropped; a last line without a newline
+    gets one). The readers and ingest cut text the same way."""
     with open_checked(path) as fh:
+        fh.seek(start)
         carry = b""
-        first = True
+        first = start == 0
         while True:
             try:
-                block = fh.read(_CHUNK_BYTES)
+                block = fh.read(size)
             except OSError as exc:
                 raise InputError(f"{path}: cannot read: {exc.strerror or exc}") from None
             if first:
