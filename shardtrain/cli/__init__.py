@@ -40,7 +40,9 @@ prediction, and forecasts the epoch time on the link speed and CPUs you describe
 
 Workflow: try `shardtrain demo` first (the whole workflow on an invented parcel-delivery
 network, one HTML page). Then, on your graph: synth (a demo graph; or bring your own .npz,
-.mtx or edge-list file) -> survey -> split -> train -> forecast -> report.
+.mtx or edge-list file) -> survey -> split -> train -> forecast -> report. A graph larger
+than memory: ingest (edge files or Parquet into a memory-mapped graph directory, which every
+command takes) -> survey -> split -> train under MPI.
 `shardtrain COMMAND --help` describes each command.
 """
 
