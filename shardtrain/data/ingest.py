@@ -297,20 +297,8 @@ class NpzSource(Source):
 
     def __init__(self, path: Path):
         super().__init__(path)
-        require_regular_file(path)
-        try:
-            bundle = zipfile.ZipFile(path)
-        except (zipfile.BadZipFile, OSError, ValueError) as exc:
-            with open_checked(path) as fh:
-                single = fh.read(6) == b"\x93NUMPY"
-            if single:
-                raise InputError(f"{path}: not an .npz bundle (a single array)") from None
-            raise InputError(f"{path}: not a readable .npz bundle: {exc}") from None
+        bundle, members = readers.open_npz(path)
         with bundle:
-            members = {}
-            for info in bundle.infolist():
-                key = info.filename[:-4] if info.filename.endswith(".npy") else info.filename
-                members[key] = info
             unknown = sorted(set(members) - set(readers.NPZ_KEYS))
             if unknown:
                 raise InputError(f"{path}: unknown key {unknown[0]!r} (allowed: "

@@ -246,7 +246,9 @@ def _npz_memory(path: Path, headers: dict, num_vertices: int | None) -> None:
     require_memory(need, f"{path}: {n:,} vertices and {m:,} edge rows")
 
 
-def _read_npz(path: Path) -> _Raw:
+def open_npz(path: Path) -> tuple[zipfile.ZipFile, dict]:
+    """(the open bundle, {key: ZipInfo}) of an .npz file, or one line saying why not; the
+    in-memory reader and ingest open bundles here."""
     require_regular_file(path)
     try:
         bundle = zipfile.ZipFile(path)
@@ -256,11 +258,16 @@ def _read_npz(path: Path) -> _Raw:
         if single:
             raise InputError(f"{path}: not an .npz bundle (a single array)") from None
         raise InputError(f"{path}: not a readable .npz bundle: {exc}") from None
+    members = {}
+    for info in bundle.infolist():
+        key = info.filename[:-4] if info.filename.endswith(".npy") else info.filename
+        members[key] = info
+    return bundle, members
+
+
+def _read_npz(path: Path) -> _Raw:
+    bundle, members = open_npz(path)
     with bundle:
-        members = {}
-        for info in bundle.infolist():
-            key = info.filename[:-4] if info.filename.endswith(".npy") else info.filename
-            members[key] = info
         unknown = sorted(set(members) - set(NPZ_KEYS))
         if unknown:
             raise InputError(f"{path}: unknown key {unknown[0]!r} (allowed: {', '.join(NPZ_KEYS)})")
