@@ -15,6 +15,7 @@ import pytest
 from helpers import depot_graph, save_graph
 
 from shardtrain.cli import main
+from shardtrain.forecast.calibrate import CALIBRATION_VERSION
 
 TRAIN = ["--epochs", "4", "--dtype", "float64", "--hidden", "8", "--quiet", "--timeout", "20"]
 W2 = ["--workers", "2", "--method", "random"]
@@ -37,12 +38,12 @@ def inputs(tmp_path_factory):
     (d / "garbage.json").write_text("{not json\n")
     (d / "unknown.json").write_text(json.dumps({"what": 1}) + "\n")
     (d / "cal_bad_speed.json").write_text(json.dumps(
-        {"version": 1, "dtype": "float32", "threads": 1,
+        {"version": CALIBRATION_VERSION, "dtype": "float32", "threads": 1,
          "sparse": [{"nnz": 10, "width": 8, "nnz_cols_per_s": -1.0}],
          "dense": [{"d_in": 16, "d_out": 16, "flops_per_s": 1e9}],
          "elementwise": {"bytes_per_s": 1e9}, "dropout_masks": {"elements_per_s": 1e8}}))
     (d / "cal_no_dense.json").write_text(json.dumps(
-        {"version": 1, "dtype": "float32", "sparse": [], "elementwise": {}}))
+        {"version": CALIBRATION_VERSION, "dtype": "float32", "sparse": [], "elementwise": {}}))
     assert main(["survey", str(d / "g.npz"), *W2, "--json", str(d / "survey.json")]) == 0
     return d
 
@@ -259,7 +260,7 @@ def test_a_calibration_cache_is_kept_replaced_or_refused(inputs, tmp_path):
     """--calibration semantics: missing -> time and write; ours for this dtype -> used;
     ours for another dtype or version -> re-timed and replaced; anything else refused
     (the cases above). The calibration is a dict of our own making (no outside source)."""
-    from shardtrain.forecast.calibrate import CALIBRATION_VERSION, from_flops, read_calibration
+    from shardtrain.forecast.calibrate import from_flops, read_calibration
 
     assert read_calibration(tmp_path / "new.json", "float32") is None
     cal = dict(from_flops(1e9, "float32"), pipe={"bytes_per_s": 1e9})
@@ -270,3 +271,8 @@ def test_a_calibration_cache_is_kept_replaced_or_refused(inputs, tmp_path):
     (tmp_path / "old.json").write_text(json.dumps(dict(cal, version=CALIBRATION_VERSION + 1,
                                                        sparse=None)))
     assert read_calibration(tmp_path / "old.json", "float32") is None
+    # A version-1 cache (written before the copying cost was timed) is re-timed, not used.
+    v1 = {k: v for k, v in cal.items() if k != "transport_copy"}
+    (tmp_path / "v1.json").write_text(json.dumps(dict(v1, version=1)))
+    assert CALIBRATION_VERSION == 2
+    assert read_calibration(tmp_path / "v1.json", "float32") is None
