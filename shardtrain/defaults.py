@@ -20,6 +20,8 @@ DTYPE = "float32"
 BIAS = False
 EARLY_STOP = 0
 THREADS = 1
+MODEL = "gcn"                          # plan.schedule.MODELS: gcn, sage, gin, gat
+HEADS = 8                              # GAT heads per hidden layer (Velickovic et al. 2018)
 
 # a training run (train.api.RunConfig, train.session, cli/train.py)
 TRANSPORT = "pipes"                    # worker processes on this machine

@@ -19,7 +19,8 @@ FLAGS = {
     "layers": "--layers", "hidden": "--hidden", "classes": "--classes",
     "dropout": "--dropout", "lr": "--lr", "weight_decay": "--weight-decay",
     "epochs": "--epochs", "dtype": "--dtype", "bias": "--bias",
-    "early_stop": "--early-stop", "threads": "--threads",
+    "early_stop": "--early-stop", "threads": "--threads", "model": "--model",
+    "heads": "--heads",
     # a training run (train.api.RunConfig, api.run's transport)
     "transport": "--transport", "timeout_s": "--timeout", "init_weights": "--init-weights",
     "checkpoint_every": "--checkpoint-every", "max_frame_bytes": "--max-frame-bytes",

@@ -18,7 +18,7 @@ from shardtrain import defaults
 from shardtrain.data.graph import structure_fingerprint
 from shardtrain.documents import ABSENT, Document
 from shardtrain.errors import ParameterError
-from shardtrain.plan.schedule import LayerHop, layer_dims, layer_hops
+from shardtrain.plan.schedule import LayerHop, layer_dims, layer_hops, layer_param_shapes
 from shardtrain.transport.wire import KIND_ALLREDUCE, KIND_HALO, NO_LAYER
 
 # Resident memory of an idle worker interpreter with numpy and scipy.sparse imported,
@@ -67,9 +67,11 @@ class SurveyPlan(Document):
 
 
 def parameter_elements(hops: list[LayerHop], *, bias: bool = False) -> int:
-    """Number of trainable scalars: W_l (d_in x d_out) per layer, plus b_l (d_out) with bias.
-    The worker all-reduces exactly these gradients as one flat array each epoch."""
-    return int(sum(h.d_in * h.d_out + (h.d_out if bias else 0) for h in hops))
+    """Number of trainable scalars: for GCN W_l (d_in x d_out) per layer, plus b_l (d_out)
+    with bias; for every model the arrays of `schedule.layer_param_shapes`. The worker
+    all-reduces exactly these gradients as one flat array each epoch."""
+    return int(sum(int(np.prod(shape)) for h in hops
+                   for _, shape, _ in layer_param_shapes(h, bias)))
 
 
 def _ring_send_elements(size: int, k: int) -> np.ndarray:

@@ -112,7 +112,8 @@ def assemble_result(records, summaries, facts: ShardDirFacts, settings: TrainSet
         labels[s["owned"]] = s["labels"]
     dims = model_dims_of(facts, settings)
     params = model.params_from_arrays(summaries[0]["params"], dims, settings.bias,
-                                      settings.np_dtype, source="worker 0")
+                                      settings.np_dtype, source="worker 0",
+                                      hops=settings.hops(dims))
     merged = merge([s["profile"] for s in summaries])
     traffic = traffic_account(merged, [s["profile"] for s in summaries],
                               [s["send_ptr"] for s in summaries],
@@ -133,9 +134,7 @@ def assemble_result(records, summaries, facts: ShardDirFacts, settings: TrainSet
 
 
 def model_dims_of(facts: ShardDirFacts, settings: TrainSettings) -> list[tuple[int, int]]:
-    from shardtrain.plan.schedule import layer_dims
-
-    return layer_dims(facts.input_dim, settings.hidden, facts.num_classes, settings.layers)
+    return settings.model_dims(facts.input_dim, facts.num_classes)
 
 
 def traffic_account(merged: dict, profiles: list[dict], send_ptrs: list, halo_ptrs: list,
@@ -149,9 +148,8 @@ def traffic_account(merged: dict, profiles: list[dict], send_ptrs: list, halo_pt
     early stop); `evals`: its evaluation forwards (default `epochs`); `stop_votes`: its
     early-stopping votes (see `survey.stop_vote_bytes`)."""
     from shardtrain.plan import survey
-    from shardtrain.plan.schedule import layer_hops
 
-    hops = layer_hops(dims)
+    hops = settings.hops(dims)
     itemsize = settings.np_dtype.itemsize
     elements = survey.parameter_elements(hops, bias=settings.bias)
     send_rows, halo_rows = survey.peer_rows(send_ptrs, halo_ptrs)

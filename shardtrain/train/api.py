@@ -243,7 +243,9 @@ def check_model_fits(dims, settings: TrainSettings) -> None:
     copies, every process holds them) alone exceed this machine's memory."""
     import os
 
-    elements = sum(int(a) * int(b) + (int(b) if settings.bias else 0) for a, b in dims)
+    from shardtrain.plan.survey import parameter_elements
+
+    elements = parameter_elements(settings.hops(dims), bias=settings.bias)
     need = 3 * elements * settings.np_dtype.itemsize
     try:
         have = os.sysconf("SC_PHYS_PAGES") * os.sysconf("SC_PAGE_SIZE")
@@ -267,7 +269,7 @@ def load_init_weights(path, dims, settings: TrainSettings):
         raise InputError(f"{path}: not a readable .npz of weights: "
                          f"{' '.join(str(exc).split())}") from None
     return model.params_from_arrays(arrays, dims, settings.bias, settings.np_dtype,
-                                    source=str(path))
+                                    source=str(path), hops=settings.hops(dims))
 
 
 # ---------------------------------------------------------------- the run

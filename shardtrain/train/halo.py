@@ -36,13 +36,16 @@ class HaloOps:
       and the peers' contributions are added at the send rows.
     """
 
-    def __init__(self, shard, transport: Transport, profile, dtype):
+    def __init__(self, shard, transport: Transport, profile, dtype, adj=None):
+        """`adj`: the operator to multiply by, of Â_P's shape and local columns (a model's
+        `models.common.operator_matrix`); default the shard's Â_P."""
         self.shard, self.transport, self.profile = shard, transport, profile
         self.n_owned = shard.num_owned
         self.n_local = shard.num_owned + shard.num_halo
         self.dtype = np.dtype(dtype)
         with profile.phase("compute"):
-            adj = shard.adj.astype(self.dtype, copy=False)   # (n_owned, n_owned + n_halo)
+            adj = (shard.adj if adj is None else adj).astype(self.dtype, copy=False)
+            # (n_owned, n_owned + n_halo)
             adj = adj.tocsr() if adj.format != "csr" else adj
             self.adj_own = column_block(adj, 0, self.n_owned)
             self.adj_halo = column_block(adj, self.n_owned, self.n_local)
@@ -115,6 +118,55 @@ class HaloOps:
             return out
 
 
+    # GAT multiplies by per-edge attention it computes itself: it needs the halo rows as
+    # they are ([M; M_halo]) and hands back gradient rows for every local column.
+
+    def gather(self, direction: str) -> Callable[[int, np.ndarray], np.ndarray]:
+        """gather(l, M) -> [M; M_halo] (n_owned + n_halo rows, fresh), the halo rows
+        received from their owners as `propagate` receives them."""
+        def gather(layer: int, m: np.ndarray) -> np.ndarray:
+            self.on_phase(f"epoch {self.epoch} {direction} exchange, layer {layer}")
+            width = m.shape[1]
+            with self.profile.phase("compute"):
+                m = np.ascontiguousarray(m, dtype=self.dtype)
+                out = np.empty((self.n_local, width), dtype=self.dtype)  # fresh: the model's
+                out[:self.n_owned] = m
+                halo = out[self.n_owned:]
+                outgoing = {}
+                for q in self.peers:
+                    idx = self.send_idx[q]
+                    buf = self._block(("send", layer, width, q), idx.shape[0], width)
+                    outgoing[q] = np.take(m, idx, axis=0, out=buf)
+                incoming = {q: halo[self.halo_rows[q]] for q in self.peers}
+            with self.profile.phase("exchange"):
+                self.transport.exchange(outgoing, incoming, kind=KIND_HALO, epoch=self.epoch,
+                                        layer=layer, direction=direction)
+            self.on_phase(f"epoch {self.epoch} compute")
+            return out
+        return gather
+
+    def gather_t(self, layer: int, g: np.ndarray) -> np.ndarray:
+        """G has n_owned + n_halo rows: send the halo rows G[n_owned:] back to their
+        owners, return G's owned rows plus what the peers send for my send rows."""
+        self.on_phase(f"epoch {self.epoch} backward exchange, layer {layer}")
+        width = g.shape[1]
+        with self.profile.phase("compute"):
+            g = np.ascontiguousarray(g, dtype=self.dtype)
+            halo = g[self.n_owned:]
+            outgoing = {q: halo[self.halo_rows[q]] for q in self.peers}
+            incoming = {q: self._block(("recv", layer, width, q), self.send_idx[q].shape[0],
+                                       width) for q in self.peers}
+        with self.profile.phase("exchange"):
+            self.transport.exchange(outgoing, incoming, kind=KIND_HALO, epoch=self.epoch,
+                                    layer=layer, direction=BACKWARD)
+        self.on_phase(f"epoch {self.epoch} compute")
+        with self.profile.phase("compute"):
+            out = g[:self.n_owned].copy()
+            for q in self.peers:
+                add_csr_product(self.scatter[q], incoming[q], out)
+            return out
+
+
 def selection_matrix(rows: np.ndarray, n: int, dtype):
     """CSR (n, len(rows)) with a 1 at (rows[i], i): S @ X puts row i of X at rows[i]."""
     m = rows.shape[0]
@@ -136,3 +188,4 @@ def column_block(adj, lo: int, hi: int):
     row order of entries kept)."""
     block = adj[:, lo:hi]
     return block.tocsr() if block.format != "csr" else block
+

@@ -15,44 +15,107 @@ H_{l+1} = ReLU(Z_l); no ReLU on the last layer; softmax cross-entropy on the tra
 """
 from __future__ import annotations
 
-from typing import Callable
+from typing import Callable, NamedTuple
 
 import numpy as np
 
 from shardtrain.errors import InputError
-from shardtrain.plan.schedule import LayerHop
+from shardtrain.plan.schedule import LayerHop, layer_hops, layer_param_shapes
+from shardtrain.train.models import gat, gin, sage
 
-Params = list[tuple[np.ndarray, "np.ndarray | None"]]
-Grads = list[tuple[np.ndarray, "np.ndarray | None"]]
+Params = list  # per layer: (w, b) for GCN, a SageLayer/GinLayer/GatLayer for the others
+Grads = list    # shaped like Params
 Propagate = Callable[[int, np.ndarray], np.ndarray]
 Drop = Callable[[int, np.ndarray], np.ndarray]
 
 
+# ---------------------------------------------------------------- parameters
+
+class SageLayer(NamedTuple):
+    """GraphSAGE layer parameters (saved as w_self{l}, w_neigh{l}, b{l})."""
+    w_self: np.ndarray
+    w_neigh: np.ndarray
+    b: "np.ndarray | None"
+
+
+class GinLayer(NamedTuple):
+    """GIN layer parameters (saved as w_a{l}, w_b{l}, b_a{l}, b_b{l})."""
+    w_a: np.ndarray
+    w_b: np.ndarray
+    b_a: "np.ndarray | None"
+    b_b: "np.ndarray | None"
+
+
+class GatLayer(NamedTuple):
+    """GAT layer parameters (saved as w{l}, att_src{l}, att_dst{l}, b{l})."""
+    w: np.ndarray
+    att_src: np.ndarray
+    att_dst: np.ndarray
+    b: "np.ndarray | None"
+
+
+# a GCN layer is the plain tuple (w, b); the other models' layers are these NamedTuples,
+# whose fields are the names of `schedule.layer_param_shapes`
+LAYER_TYPES = {"sage": SageLayer, "gin": GinLayer, "gat": GatLayer}
+GCN_FIELDS = ("w", "b")
+
+
+def _fields(layer) -> tuple[str, ...]:
+    return getattr(layer, "_fields", GCN_FIELDS)
+
+
+def _layer_of(model: str, values: dict):
+    """A layer tuple of `model` from {field: array} (missing biases None)."""
+    if model == "gcn":
+        return (values["w"], values.get("b"))
+    kind = LAYER_TYPES[model]
+    return kind(*(values.get(f) for f in kind._fields))
+
+
+def _model_of(hops) -> str:
+    return hops[0].model if hops else "gcn"
+
+
 # ---------------------------------------------------------------- initialisation
 
-def glorot_init(dims: list[tuple[int, int]], seed: int, dtype, bias: bool = False) -> Params:
-    """Glorot & Bengio (2010) uniform weights, limit sqrt(6 / (d_in + d_out)); zero biases.
+def glorot_init(dims: list[tuple[int, int]], seed: int, dtype, bias: bool = False,
+                hops: list[LayerHop] | None = None) -> Params:
+    """Glorot & Bengio (2010) uniform weights, limit sqrt(6 / (fan_in + fan_out)); zero biases.
 
-    Drawn in float64 from one numpy Generator, layer by layer, then cast: float32 and float64
-    runs start from the same weights up to rounding.
+    Drawn in float64 from one numpy Generator, layer by layer and inside a layer in name
+    order (`schedule.layer_param_shapes`), then cast: float32 and float64 runs start from
+    the same weights up to rounding. A weight matrix (d_in x d_out) has the fans of its two
+    dimensions; GAT's attention array (K x d) is K vectors of d, each Glorot as a (d x 1)
+    matrix: limit sqrt(6 / (d + 1)) (from memory of the paper's code). `hops` gives the model
+    (`schedule.model_hops`); without it the model is GCN over `dims`.
     """
     rng = np.random.default_rng(seed)
+    if hops is None:
+        hops = layer_hops(dims)
+    model = _model_of(hops)
     params: Params = []
-    for d_in, d_out in dims:
-        limit = np.sqrt(6.0 / (d_in + d_out))
-        w = rng.uniform(-limit, limit, size=(d_in, d_out)).astype(dtype)
-        b = np.zeros(d_out, dtype=dtype) if bias else None
-        params.append((w, b))
+    for hop in hops:
+        values = {}
+        for field, shape, kind in layer_param_shapes(hop, bias):
+            if kind == "bias":
+                values[field] = np.zeros(shape, dtype=dtype)
+                continue
+            fan_in, fan_out = (shape[1], 1) if kind == "att" else shape
+            limit = np.sqrt(6.0 / (fan_in + fan_out))
+            values[field] = rng.uniform(-limit, limit, size=shape).astype(dtype)
+        params.append(_layer_of(model, values))
     return params
 
 
 def param_names(params: Params) -> list[str]:
-    """Names in flatten order: w0, b0 (when biased), w1, ... (keys of the weights .npz)."""
+    """Names in flatten order: w0, b0 (when biased), w1, ... for GCN; the model's fields
+    with the layer number for the others (w_self0, w_neigh0, b0, ...): keys of the
+    weights .npz."""
     names = []
-    for l, (_, b) in enumerate(params):
-        names.append(f"w{l}")
-        if b is not None:
-            names.append(f"b{l}")
+    for l, layer in enumerate(params):
+        for field, value in zip(_fields(layer), layer):
+            if value is not None:
+                names.append(f"{field}{l}")
     return names
 
 
@@ -62,19 +125,21 @@ def params_to_arrays(params: Params) -> dict[str, np.ndarray]:
 
 
 def params_from_arrays(arrays, dims: list[tuple[int, int]], bias: bool, dtype,
-                       source: str = "weights") -> Params:
+                       source: str = "weights", hops: list[LayerHop] | None = None) -> Params:
     """Check names and shapes against the model and return Params in `dtype`.
 
     `arrays` is any mapping name -> array (e.g. an opened .npz). Errors name `source`.
+    `hops` gives the model (`schedule.model_hops`); without it, GCN over `dims`.
     """
+    if hops is None:
+        hops = layer_hops(dims)
+    model = _model_of(hops)
     params: Params = []
     expected = set()
-    for l, (d_in, d_out) in enumerate(dims):
-        shapes: dict[str, tuple[int, ...]] = {f"w{l}": (d_in, d_out)}
-        if bias:
-            shapes[f"b{l}"] = (d_out,)
+    for l, hop in enumerate(hops):
         got = {}
-        for key, shape in shapes.items():
+        for field, shape, _ in layer_param_shapes(hop, bias):
+            key = f"{field}{l}"
             expected.add(key)
             if key not in arrays:
                 raise InputError(f"{source}: missing array '{key}' (expected shape {shape})")
@@ -84,12 +149,13 @@ def params_from_arrays(arrays, dims: list[tuple[int, int]], bias: bool, dtype,
                                  f"the model needs {shape}")
             if not np.issubdtype(a.dtype, np.floating) or not np.all(np.isfinite(a)):
                 raise InputError(f"{source}: array '{key}' must be finite floating point")
-            got[key] = a.astype(dtype, copy=True)
-        params.append((got[f"w{l}"], got.get(f"b{l}")))
+            got[field] = a.astype(dtype, copy=True)
+        params.append(_layer_of(model, got))
     extra = sorted(set(arrays.keys()) - expected)
     if extra:
-        raise InputError(f"{source}: unexpected array '{extra[0]}' for a {len(dims)}-layer "
-                         f"model {'with' if bias else 'without'} bias")
+        name = "" if model == "gcn" else f" {model}"
+        raise InputError(f"{source}: unexpected array '{extra[0]}' for a {len(hops)}-layer"
+                         f"{name} model {'with' if bias else 'without'} bias")
     return params
 
 
@@ -241,14 +307,21 @@ def no_dropout(layer: int, h: np.ndarray) -> np.ndarray:
 
 # ---------------------------------------------------------------- forward and backward
 
+_OTHER_MODELS = {"sage": sage, "gin": gin, "gat": gat}
+
+
 def forward(params: Params, x: np.ndarray, hops: list[LayerHop], propagate: Propagate,
-            drop: Drop) -> tuple[np.ndarray, dict]:
+            drop: Drop, local=None) -> tuple[np.ndarray, dict]:
     """Logits of the rows this process owns, and what backward needs.
 
     `drop(layer, h)` must be elementwise and linear in h (h * mask, or the identity);
     backward applies the same drop to the gradient of the dropped input. `propagate` must
-    return a fresh array (the bias is added to it in place).
+    return a fresh array (the bias is added to it in place). The model is `hops[0].model`:
+    GCN here, the others in `train/models/` (GAT also needs `local`, a
+    `models.common.LocalGraph`, and `propagate` returning [M; M_halo]).
     """
+    if _model_of(hops) != "gcn":
+        return _OTHER_MODELS[_model_of(hops)].forward(params, x, hops, propagate, drop, local)
     h = x
     cache: dict = {"drop": drop, "h": [], "hd": [], "a": []}
     last = len(params) - 1
@@ -277,7 +350,11 @@ def backward(params: Params, cache: dict, dlogits: np.ndarray, hops: list[LayerH
     Aggregate-first:  dW = Aᵀ dZ,  dA = dZ Wᵀ,  dH' = Âᵀ dA (skipped for layer 0:
     the features need no gradient, so layer 0 then has no backward exchange).
     Dropout: dH = drop(dH'); ReLU: dZ_{l-1} = dH * [H > 0].
+    (GCN; the other models' backward is in `train/models/`.)
     """
+    if _model_of(hops) != "gcn":
+        return _OTHER_MODELS[_model_of(hops)].backward(params, cache, dlogits, hops,
+                                                       propagate_t)
     drop = cache["drop"]
     grads: Grads = [None] * len(params)  # type: ignore[list-item]
     dz = dlogits
@@ -347,27 +424,34 @@ def mean_loss(total: float, count: int) -> float | None:
     return None if count == 0 else float(total) / count
 
 
+def _first_weights(layer) -> list[int]:
+    """Positions of the weight matrices in a layer tuple (fields named w...)."""
+    return [i for i, f in enumerate(_fields(layer)) if f.startswith("w")]
+
+
 def weight_decay_penalty(params: Params, wd: float) -> float:
-    """wd * 0.5 * ||W0||^2: first layer's weights only (Kipf & Welling 2017)."""
-    w0 = params[0][0]
-    return float(wd) * 0.5 * float(np.dot(w0.ravel(), w0.ravel()))
+    """wd * 0.5 * sum of ||W||^2 over the first layer's weight matrices (Kipf & Welling
+    2017: W0 for GCN; w_self0 + w_neigh0, w_a0 + w_b0, w0 for the others; GAT's
+    attention vectors and all biases are not decayed)."""
+    total = 0.0
+    for i in _first_weights(params[0]):
+        w0 = params[0][i]
+        total += float(np.dot(w0.ravel(), w0.ravel()))
+    return float(wd) * 0.5 * total
 
 
 def add_weight_decay(grads: Grads, params: Params, wd: float) -> None:
-    """dW0 += wd * W0, in place (after the all-reduce, so it is added once)."""
+    """dW += wd * W for the first layer's weight matrices, in place (after the all-reduce,
+    so it is added once)."""
     if wd:
-        grads[0][0][...] += params[0][0].dtype.type(wd) * params[0][0]
+        for i in _first_weights(params[0]):
+            grads[0][i][...] += params[0][i].dtype.type(wd) * params[0][i]
 
 
 # ---------------------------------------------------------------- flat gradient vector
 
 def _leaves(tree) -> list[np.ndarray]:
-    out = []
-    for w, b in tree:
-        out.append(w)
-        if b is not None:
-            out.append(b)
-    return out
+    return [a for layer in tree for a in layer if a is not None]
 
 
 def flatten(grads: Grads) -> np.ndarray:
@@ -379,14 +463,15 @@ def unflatten(flat: np.ndarray, like_params: Params) -> Grads:
     """Split a flat vector back into per-layer (dw, db) shaped like `like_params` (views)."""
     out: Grads = []
     pos = 0
-    for w, b in like_params:
-        dw = flat[pos:pos + w.size].reshape(w.shape)
-        pos += w.size
-        db = None
-        if b is not None:
-            db = flat[pos:pos + b.size].reshape(b.shape)
-            pos += b.size
-        out.append((dw, db))
+    for layer in like_params:
+        values = []
+        for p in layer:
+            if p is None:
+                values.append(None)
+                continue
+            values.append(flat[pos:pos + p.size].reshape(p.shape))
+            pos += p.size
+        out.append(type(layer)(*values) if hasattr(layer, "_fields") else tuple(values))
     if pos != flat.size:
         raise ValueError(f"flat gradient has {flat.size} entries, the model {pos}")
     return out
@@ -450,13 +535,14 @@ class Adam:
 def train_step(params: Params, adam: Adam, x: np.ndarray, labels: np.ndarray,
                train_mask: np.ndarray, n_train_global: int, hops: list[LayerHop],
                propagate: Propagate, propagate_t: Propagate, drop: Drop,
-               allreduce: Callable[[np.ndarray], None], weight_decay: float) -> float:
+               allreduce: Callable[[np.ndarray], None], weight_decay: float,
+               local=None) -> float:
     """Forward, loss, backward, all-reduce of the flat gradient, weight decay, Adam step.
 
     Returns this process's loss part (without the weight-decay penalty; compute that with
     `weight_decay_penalty` BEFORE the step, at the weights this forward used).
     """
-    logits, cache = forward(params, x, hops, propagate, drop)
+    logits, cache = forward(params, x, hops, propagate, drop, local)
     loss_part, dlogits = loss_and_grad(logits, labels, train_mask, n_train_global)
     del logits
     grads = backward(params, cache, dlogits, hops, propagate_t)

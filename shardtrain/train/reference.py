@@ -20,8 +20,8 @@ from scipy.sparse.csgraph import reverse_cuthill_mckee
 
 from shardtrain.data.graph import Graph, normalized_adjacency
 from shardtrain.errors import InputError, ParameterError, option
-from shardtrain.plan.schedule import layer_dims, layer_hops
 from shardtrain.train import model, stopping
+from shardtrain.train.models.common import local_graph, operator_matrix
 from shardtrain.train.settings import TrainSettings
 
 
@@ -48,7 +48,7 @@ def check_trainable(graph: Graph) -> None:
 
 def model_dims(graph: Graph, settings: TrainSettings) -> list[tuple[int, int]]:
     assert graph.input_dim is not None     # callers ran check_trainable (features given)
-    return layer_dims(graph.input_dim, settings.hidden, graph.num_classes, settings.layers)
+    return settings.model_dims(graph.input_dim, graph.num_classes)
 
 
 def _noop_allreduce(flat: np.ndarray) -> None:
@@ -114,18 +114,25 @@ def _train(graph, settings, init_params, init_adam, first_epoch, on_epoch, on_ep
     if reorder:
         a_hat = a_hat[order][:, order]
         a_hat.sort_indices()
-    a_hat = a_hat.astype(dtype)
+    local = None
+    if settings.model == "gat":
+        local = local_graph(a_hat, order)
+    operator = operator_matrix(settings.model, a_hat).astype(dtype)
+    operator_t = operator
+    if settings.model == "sage":      # D⁻¹A is not symmetric
+        operator_t = operator.T.tocsr()
+    del a_hat
     x = np.ascontiguousarray(graph.features[order], dtype=dtype)
     labels = graph.labels[order]
     dims = model_dims(graph, settings)
-    hops = layer_hops(dims)
+    hops = settings.hops(dims)
     if init_params is None:
-        params = model.glorot_init(dims, settings.seed, dtype, settings.bias)
+        params = model.glorot_init(dims, settings.seed, dtype, settings.bias, hops=hops)
     else:
         arrays = init_params if isinstance(init_params, dict) \
             else model.params_to_arrays(init_params)
         params = model.params_from_arrays(arrays, dims, settings.bias, dtype,
-                                          source="initial weights")
+                                          source="initial weights", hops=hops)
     adam = model.Adam(params, settings.lr)
     if init_adam is not None:
         adam.load_state(init_adam, source="initial optimiser state")
@@ -137,15 +144,23 @@ def _train(graph, settings, init_params, init_adam, first_epoch, on_epoch, on_ep
     assert masks[0] is not None     # check_trainable refused a graph without a training split
 
     def propagate(layer, m):
-        return a_hat @ m
+        return operator @ m
 
     def propagate_t(layer, g):
-        return a_hat @ g            # Â is symmetric (bit for bit: d_i^-1/2 d_j^-1/2)
+        return operator_t @ g       # Â is symmetric (bit for bit: d_i^-1/2 d_j^-1/2)
+
+    if settings.model == "gat":     # no halo: the local rows are all rows
+        def propagate(layer, m):
+            return m
+
+        def propagate_t(layer, g):
+            return g
 
     early = None
     if settings.early_stop:
         early = stopping.EarlyStop.from_state(settings.early_stop, init_early or {}, dims,
-                                              settings.bias, dtype, source="early-stop state")
+                                              settings.bias, dtype, source="early-stop state",
+                                              hops=hops)
     best_logits = None
     records = []
     logits = None
@@ -155,9 +170,9 @@ def _train(graph, settings, init_params, init_adam, first_epoch, on_epoch, on_ep
         drop = model.Dropout(settings.seed, epoch, settings.dropout, global_ids)
         loss_part = model.train_step(params, adam, x, labels, masks[0], n_train, hops,
                                      propagate, propagate_t, drop, _noop_allreduce,
-                                     settings.weight_decay)
+                                     settings.weight_decay, local=local)
         epoch_s = time.perf_counter() - start
-        logits, _ = model.forward(params, x, hops, propagate, model.no_dropout)
+        logits, _ = model.forward(params, x, hops, propagate, model.no_dropout, local)
         acc = [model.accuracy(c, t) for c, t in
                zip(model.correct_counts(logits, labels, masks), totals)]
         val_loss = model.mean_loss(*model.cross_entropy_sum(logits, labels, masks[1]))
@@ -184,7 +199,8 @@ def _train(graph, settings, init_params, init_adam, first_epoch, on_epoch, on_ep
         assert early.best_params is not None    # update() ran: at least one epoch did
         params = early.best_params
         if best_logits is None:      # best epoch before a resume: evaluate its weights again
-            best_logits, _ = model.forward(params, x, hops, propagate, model.no_dropout)
+            best_logits, _ = model.forward(params, x, hops, propagate, model.no_dropout,
+                                           local)
         logits = best_logits
     assert logits is not None       # first_epoch <= epochs: the loop ran at least once
     predictions = np.empty(n, dtype=np.int64)

@@ -16,8 +16,10 @@ import numpy as np
 
 from shardtrain import defaults
 from shardtrain.errors import InputError, ParameterError
+from shardtrain.plan.schedule import MODELS, LayerHop, layer_dims, model_hops
 
 DTYPES = ("float32", "float64")
+MAX_HEADS = 1024
 
 
 @dataclass
@@ -33,6 +35,8 @@ class TrainSettings:
     bias: bool = defaults.BIAS
     early_stop: int = defaults.EARLY_STOP
     threads: int = defaults.THREADS
+    model: str = defaults.MODEL
+    heads: int = defaults.HEADS
 
     def validate(self) -> "TrainSettings":
         """Raise a ParameterError naming the first bad setting (the CLI names its option)."""
@@ -58,7 +62,19 @@ class TrainSettings:
              "an integer >= 0 (0: off)", self.early_stop)
         need(_is_int(self.threads) and 1 <= self.threads <= max_threads(), "threads",
              f"an integer in 1..{max_threads()} (4 x this machine's cores)", self.threads)
+        need(self.model in MODELS, "model", "one of " + ", ".join(MODELS), self.model)
+        need(_is_int(self.heads) and 1 <= self.heads <= MAX_HEADS, "heads",
+             f"an integer in 1..{MAX_HEADS}", self.heads)
         return self
+
+    def hops(self, dims: list[tuple[int, int]]) -> list[LayerHop]:
+        """The exchange schedule of this model over `dims` (`model_dims`' output)."""
+        return model_hops(dims, self.model, hidden=self.hidden, heads=self.heads)
+
+    def model_dims(self, input_dim: int, classes: int) -> list[tuple[int, int]]:
+        """(d_in, d_out) per layer of this model (GAT: d_out per head)."""
+        return layer_dims(int(input_dim), self.hidden, int(classes), self.layers,
+                          model=self.model, heads=self.heads)
 
     @property
     def np_dtype(self) -> np.dtype:

@@ -74,7 +74,7 @@ class EarlyStop:
 
     @classmethod
     def from_state(cls, patience: int, arrays: dict, dims, bias: bool, dtype,
-                   source: str = "checkpoint") -> "EarlyStop":
+                   source: str = "checkpoint", hops=None) -> "EarlyStop":
         """Rebuild from `state()` arrays (InputError naming `source` when incomplete)."""
         es = cls(patience)
         if not arrays:
@@ -88,7 +88,8 @@ class EarlyStop:
                    if k.startswith(f"{PREFIX}best_") and k not in
                    (f"{PREFIX}best_epoch", f"{PREFIX}best_loss")}
         es.best_params = model.params_from_arrays(weights, dims, bias, dtype,
-                                                  source=f"{source} (best weights)")
+                                                  source=f"{source} (best weights)",
+                                                  hops=hops)
         return es
 
 

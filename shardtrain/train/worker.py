@@ -17,9 +17,9 @@ import numpy as np
 
 from shardtrain.errors import ParameterError
 from shardtrain.plan import schedule
-from shardtrain.plan.schedule import layer_dims, layer_hops
 from shardtrain.train import model, stopping
 from shardtrain.train.halo import EVAL, FORWARD, HaloOps
+from shardtrain.train.models.common import local_graph, operator_matrix
 from shardtrain.train.settings import TrainSettings
 from shardtrain.transport.base import Transport
 
@@ -55,8 +55,7 @@ class SlowCompute:
 # ---------------------------------------------------------------- the training loop
 
 def shard_dims(shard, settings: TrainSettings, num_classes: int) -> list[tuple[int, int]]:
-    return layer_dims(int(shard.features.shape[1]), settings.hidden, num_classes,
-                      settings.layers)
+    return settings.model_dims(int(shard.features.shape[1]), num_classes)
 
 
 def _split_masks(shard) -> list:
@@ -100,14 +99,14 @@ def run_worker(shard, settings: TrainSettings, transport: Transport, profile,
     if slow_factor > 1.0:
         profile = SlowCompute(profile, slow_factor)
     dims = shard_dims(shard, settings, num_classes)
-    hops = layer_hops(dims)
+    hops = settings.hops(dims)
     if init_params is None:
-        params = model.glorot_init(dims, settings.seed, dtype, settings.bias)
+        params = model.glorot_init(dims, settings.seed, dtype, settings.bias, hops=hops)
     else:
         arrays = init_params if isinstance(init_params, dict) else \
             model.params_to_arrays(init_params)
         params = model.params_from_arrays(arrays, dims, settings.bias, dtype,
-                                          source="initial weights")
+                                          source="initial weights", hops=hops)
     adam = model.Adam(params, settings.lr)
     if init_adam is not None:
         adam.load_state(init_adam, source="initial optimiser state")
@@ -120,9 +119,22 @@ def run_worker(shard, settings: TrainSettings, transport: Transport, profile,
     totals = [0 if m is None else int(np.count_nonzero(m)) for m in masks]
     train_mask = shard.train_mask if shard.train_mask is not None \
         else np.zeros(shard.num_owned, dtype=bool)
-    ops = HaloOps(shard, transport, profile, dtype)
+    local = None
+    if settings.model == "gcn":
+        ops = HaloOps(shard, transport, profile, dtype)
+    else:
+        with profile.phase("compute"):
+            operator = operator_matrix(settings.model, shard.adj)
+        ops = HaloOps(shard, transport, profile, dtype, adj=operator)
     ops.on_phase = on_phase
     propagate_train, propagate_eval = ops.propagate(FORWARD), ops.propagate(EVAL)
+    propagate_t = ops.propagate_t
+    if settings.model == "gat":
+        # GAT's products are its own (attention per edge): the exchange hands it [T; T_halo]
+        with profile.phase("compute"):
+            local = local_graph(shard.adj, np.concatenate([shard.owned, shard.halo]))
+        propagate_train, propagate_eval = ops.gather(FORWARD), ops.gather(EVAL)
+        propagate_t = ops.gather_t
 
     def allreduce(flat: np.ndarray) -> None:
         on_phase(f"epoch {ops.epoch} all-reduce")
@@ -133,7 +145,8 @@ def run_worker(shard, settings: TrainSettings, transport: Transport, profile,
     early = None
     if settings.early_stop:
         early = stopping.EarlyStop.from_state(settings.early_stop, init_early or {}, dims,
-                                              settings.bias, dtype, source="early-stop state")
+                                              settings.bias, dtype, source="early-stop state",
+                                              hops=hops)
     best_logits = None
     epochs_run = 0
     logits = None
@@ -146,12 +159,13 @@ def run_worker(shard, settings: TrainSettings, transport: Transport, profile,
             drop = model.Dropout(settings.seed, epoch, settings.dropout, shard.owned)
             loss_part = model.train_step(params, adam, x, labels, train_mask,
                                          shard.num_train_global, hops, propagate_train,
-                                         ops.propagate_t, drop, allreduce,
-                                         settings.weight_decay)
+                                         propagate_t, drop, allreduce,
+                                         settings.weight_decay, local=local)
         step_s = time.perf_counter() - start
         on_phase(f"epoch {epoch} evaluation")
         with profile.phase("compute"):
-            logits, _ = model.forward(params, x, hops, propagate_eval, model.no_dropout)
+            logits, _ = model.forward(params, x, hops, propagate_eval, model.no_dropout,
+                                      local)
             correct = model.correct_counts(logits, labels, masks)
             val_sum, val_count = model.cross_entropy_sum(logits, labels, masks[1])
         eval_s = time.perf_counter() - start - step_s
@@ -183,7 +197,7 @@ def run_worker(shard, settings: TrainSettings, transport: Transport, profile,
             on_phase("evaluation of the best epoch's weights")
             with profile.phase("compute"):
                 best_logits, _ = model.forward(params, x, hops, propagate_eval,
-                                               model.no_dropout)
+                                               model.no_dropout, local)
             extra_evals = 1
         logits = best_logits
     on_phase("finished")

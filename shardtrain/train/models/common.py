@@ -1,0 +1,129 @@
+"""What the models beside GCN share: their operators, the local structure, edge dropout."""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.sparse as sp
+
+_MASK64 = (1 << 64) - 1
+
+
+def params_like(layer, values):
+    """`values` in the layer's own tuple type (a NamedTuple of the model's fields)."""
+    return type(layer)(*values)
+
+
+def operator_matrix(model: str, adj_hat):
+    """The model's aggregation operator from Â's rows (CSR, float64, shape (rows, cols),
+    the self-loop of row i at column i, as a shard's `adj` and the full Â both are):
+
+    - sage: D⁻¹A (Hamilton et al. 2017, mean aggregator): Â's pattern without the
+      self-loops, every entry of row i equal to 1/deg(i); a row without neighbours is empty
+      (the vertex aggregates zero). Only the row's own degree is needed, which the row's
+      owner has.
+    - gin: A + I (Xu et al. 2019, GIN-0: H + A H): Â's pattern, every entry 1.
+    - gcn, gat: Â itself (GAT uses only its pattern, N(v) ∪ {v}).
+    The shards therefore store Â for every model; each worker derives its operator.
+    """
+    if model in ("gcn", "gat"):
+        return adj_hat
+    a = adj_hat.tocsr()
+    indptr = np.asarray(a.indptr, dtype=np.int64)
+    indices = np.asarray(a.indices)
+    rows = np.repeat(np.arange(a.shape[0], dtype=np.int64), np.diff(indptr))
+    if model == "gin":
+        return sp.csr_matrix((np.ones(indices.size), indices.copy(), indptr.copy()),
+                             shape=a.shape)
+    if model != "sage":
+        raise ValueError(f"unknown model {model!r}")
+    keep = indices != rows
+    counts = np.bincount(rows[keep], minlength=a.shape[0]).astype(np.int64)
+    new_ptr = np.zeros(a.shape[0] + 1, dtype=np.int64)
+    np.cumsum(counts, out=new_ptr[1:])
+    inv = np.zeros(a.shape[0])
+    np.divide(1.0, counts, out=inv, where=counts > 0)
+    return sp.csr_matrix((inv[rows[keep]], indices[keep].copy(), new_ptr), shape=a.shape)
+
+
+@dataclass
+class LocalGraph:
+    """The rows a process owns as CSR over its local columns ([owned | halo]), with the
+    global id of every local column (GAT's attention and its dropout keys).
+
+    `indptr` (rows + 1), `indices` (local column per entry, sorted within a row, the
+    self-loop included), `rows` (row per entry), `col_ids` (global id per local column).
+    """
+    indptr: np.ndarray
+    indices: np.ndarray
+    rows: np.ndarray
+    col_ids: np.ndarray
+
+    @property
+    def num_rows(self) -> int:
+        return int(self.indptr.shape[0] - 1)
+
+    @property
+    def num_cols(self) -> int:
+        return int(self.col_ids.shape[0])
+
+
+def local_graph(adj_hat, col_ids: np.ndarray) -> LocalGraph:
+    """LocalGraph of Â's rows (a shard's `adj` with col_ids = [owned | halo], or the whole
+    Â with col_ids = the row order's ids)."""
+    a = adj_hat.tocsr()
+    indptr = np.asarray(a.indptr, dtype=np.int64)
+    rows = np.repeat(np.arange(a.shape[0], dtype=np.int64), np.diff(indptr))
+    return LocalGraph(indptr, np.asarray(a.indices, dtype=np.int64), rows,
+                      np.asarray(col_ids, dtype=np.int64))
+
+
+def _mix64(x: np.ndarray) -> np.ndarray:
+    """SplitMix64's finaliser (Steele, Lea & Flood 2014), on uint64 arrays, in place."""
+    x ^= x >> np.uint64(30)
+    x *= np.uint64(0xBF58476D1CE4E5B9)
+    x ^= x >> np.uint64(27)
+    x *= np.uint64(0x94D049BB133111EB)
+    x ^= x >> np.uint64(31)
+    return x
+
+
+def _mix_int(v: int) -> int:
+    v = (v + 0x9E3779B97F4A7C15) & _MASK64
+    v = ((v ^ (v >> 30)) * 0xBF58476D1CE4E5B9) & _MASK64
+    v = ((v ^ (v >> 27)) * 0x94D049BB133111EB) & _MASK64
+    return v ^ (v >> 31)
+
+
+EDGE_DOMAIN = 0x6174746E      # keeps the edge stream apart from the vertex masks' stream
+
+
+def edge_keep_mask(seed: int, epoch: int, layer: int, heads: int, src_ids: np.ndarray,
+                   dst_ids: np.ndarray, threshold: int) -> np.ndarray:
+    """Boolean (E, heads): True where attention coefficient (dst, src, head) is kept.
+
+    Counter-based: entry (e, h) depends only on (seed, epoch, layer, head h, global id of
+    the destination vertex, global id of the source vertex), so every process layout
+    draws the same. Key of (seed, epoch, layer, head) by chained SplitMix64; per entry the
+    SplitMix64 finaliser of key + dst * golden + src * (another odd constant); kept when
+    its top 16 bits are >= `threshold` (the vertex masks' rule: P(kept) = 1 - threshold /
+    2^16).
+    """
+    base = _mix_int(_mix_int(_mix_int(_mix_int(int(seed) & _MASK64) ^ EDGE_DOMAIN)
+                             ^ (int(epoch) & _MASK64)) ^ (int(layer) & _MASK64))
+    head_keys = np.array([_mix_int(base ^ h) for h in range(heads)], dtype=np.uint64)
+    pair = np.asarray(dst_ids).astype(np.uint64) * np.uint64(0x9E3779B97F4A7C15)
+    pair += np.asarray(src_ids).astype(np.uint64) * np.uint64(0xD1B54A32D192ED03)
+    x = pair[:, None] + head_keys[None, :]
+    _mix64(x)
+    return (x >> np.uint64(48)).astype(np.uint32) >= np.uint32(threshold)
+
+
+def elu(z: np.ndarray) -> np.ndarray:
+    """ELU (Clevert et al. 2016, alpha 1): z for z > 0, exp(z) - 1 otherwise."""
+    return np.where(z > 0, z, np.expm1(np.minimum(z, 0)))
+
+
+def elu_grad(z: np.ndarray) -> np.ndarray:
+    """d ELU / dz: 1 for z > 0, exp(z) otherwise."""
+    return np.where(z > 0, np.ones_like(z), np.exp(np.minimum(z, 0)))

@@ -1,0 +1,141 @@
+"""GAT (Veličković, Cucurull, Casanova, Romero, Liò & Bengio, ICLR 2018), from memory.
+
+Layer l with K heads (K = `--heads` on hidden layers, 1 on the output layer), width d per
+head: H' = drop_l(H), T = H' W (K·d columns, head h in columns h·d..h·d+d-1); for every
+vertex v and every u in N(v) ∪ {v} (the pattern of Â):
+    e_vu,h = LeakyReLU_0.2(att_src_h · T_h[u] + att_dst_h · T_h[v]),
+    α_v·,h = softmax over u of e_v·,h (the row maximum subtracted first, for stability),
+    out_h[v] = Σ_u drop(α_vu,h) T_h[u],
+with drop(α) the inverted dropout of the layer's rate, keyed by (seed, epoch, layer,
+head, global id of v, global id of u) (`common.edge_keep_mask`). Hidden layers
+concatenate the heads, add b and apply ELU; the output layer is its single head (+ b),
+no activation.
+
+Through the schedule: `propagate(l, T)` returns [T; T_halo] (T of every local column,
+the exchange of `schedule.model_hops`: K·d columns per halo row), so the attention terms
+att_src · T[u] of halo sources are computed where they are used, not sent. Backward
+returns, per local column u, dT[u] = Σ_v α'_vu dOut[v] + ds_src[u] att_src: the gradient
+rows of T with the attention-source terms folded in (K·d columns, not K·d + K); the
+owner adds them up (`propagate_t`) and adds its own ds_dst[v] att_dst. The attention
+vectors' gradients are sums over edges, each edge owned by its destination's owner, so
+they are local partial sums like every weight gradient.
+"""
+from __future__ import annotations
+
+import numpy as np
+import scipy.sparse as sp
+
+from shardtrain.train.models.common import edge_keep_mask, elu, elu_grad, params_like
+
+SLOPE = 0.2      # LeakyReLU's negative slope in the paper
+
+
+def _edge_scale(drop, layer: int, heads: int, local):
+    """(E, heads) inverted-dropout factors of the attention, or None (no dropout)."""
+    rate = getattr(drop, "rate", 0.0)
+    if not rate:
+        return None
+    from shardtrain.train.model import _threshold, mask_scale
+    keep = edge_keep_mask(drop.seed, drop.epoch, layer, heads,
+                          local.col_ids[local.indices], drop.global_ids[local.rows],
+                          _threshold(rate))
+    return keep * mask_scale(rate, np.float64)
+
+
+def attention(t_loc: np.ndarray, t_own: np.ndarray, att_src: np.ndarray,
+              att_dst: np.ndarray, local) -> tuple[np.ndarray, np.ndarray]:
+    """(α, pre): α (E, K) the softmax per row and head, pre (E, K) the scores before the
+    LeakyReLU. t_loc (n_cols, K, d), t_own (n_rows, K, d)."""
+    s_src = np.einsum("ckd,kd->ck", t_loc, att_src)
+    s_dst = np.einsum("rkd,kd->rk", t_own, att_dst)
+    pre = s_src[local.indices] + s_dst[local.rows]
+    e = np.where(pre > 0, pre, SLOPE * pre)
+    if local.num_rows == 0:
+        return e, pre
+    starts = local.indptr[:-1]
+    e -= np.maximum.reduceat(e, starts, axis=0)[local.rows]
+    np.exp(e, out=e)
+    e /= np.add.reduceat(e, starts, axis=0)[local.rows]
+    return e, pre
+
+
+def _head_matrix(values: np.ndarray, local) -> sp.csr_matrix:
+    return sp.csr_matrix((values, local.indices, local.indptr),
+                         shape=(local.num_rows, local.num_cols))
+
+
+def forward(params, x, hops, propagate, drop, local=None):
+    if local is None:
+        raise ValueError("gat needs the local structure (local=)")
+    h = x
+    cache: dict = {"drop": drop, "local": local, "layers": []}
+    last = len(params) - 1
+    for l, ((w, att_src, att_dst, b), hop) in enumerate(zip(params, hops)):
+        k, d = hop.heads, hop.d_out
+        hd = drop(l, h)
+        t = hd @ w
+        t_loc = propagate(l, t).reshape(-1, k, d)
+        alpha, pre = attention(t_loc, t.reshape(-1, k, d), att_src, att_dst, local)
+        scale = _edge_scale(drop, l, k, local)
+        coef = alpha if scale is None else alpha * scale.astype(alpha.dtype)
+        z = np.empty((local.num_rows, k, d), dtype=t.dtype)
+        for head in range(k):           # a loop over heads, not vertices
+            z[:, head, :] = _head_matrix(coef[:, head], local) @ t_loc[:, head, :]
+        z = z.reshape(local.num_rows, k * d)
+        if b is not None:
+            z += b
+        cache["layers"].append({"h": h, "hd": hd, "t_loc": t_loc, "alpha": alpha,
+                                "pre": pre, "scale": scale, "coef": coef, "z": z})
+        h = elu(z) if l < last else z
+    return h, cache
+
+
+def backward(params, cache, dlogits, hops, propagate_t):
+    """Per layer, heads h, edges (v, u): dα'_vu = dOut_h[v] · T_h[u]; dα = dα' · mask;
+    softmax: de_vu = α_vu (dα_vu - Σ_u' α_vu' dα_vu'); LeakyReLU: dpre = de · (1 or 0.2);
+    ds_src[u] = Σ_v dpre_vu, ds_dst[v] = Σ_u dpre_vu; datt_src_h = Σ_u ds_src[u] T_h[u],
+    datt_dst_h = Σ_v ds_dst[v] T_h[v]; dT_loc[u] = Σ_v α'_vu dOut_h[v] + ds_src[u] att_src_h,
+    dT = propagate_t(dT_loc) + ds_dst att_dst; dW = H'ᵀ dT, dH' = dT Wᵀ; ELU' between
+    layers."""
+    drop, local = cache["drop"], cache["local"]
+    grads = []
+    dz = dlogits
+    for l in range(len(params) - 1, -1, -1):
+        (w, att_src, att_dst, b), hop = params[l], hops[l]
+        c = cache["layers"][l]
+        k, d = hop.heads, hop.d_out
+        t_loc, alpha, coef = c["t_loc"], c["alpha"], c["coef"]
+        n_rows = local.num_rows
+        db = dz.sum(axis=0) if b is not None else None
+        dz3 = np.ascontiguousarray(dz).reshape(n_rows, k, d)
+        dt_loc = np.empty_like(t_loc)
+        dcoef = np.empty_like(alpha)
+        for head in range(k):
+            dt_loc[:, head, :] = _head_matrix(coef[:, head], local).T @ dz3[:, head, :]
+            dcoef[:, head] = np.einsum("ed,ed->e", dz3[local.rows, head, :],
+                                       t_loc[local.indices, head, :])
+        dalpha = dcoef if c["scale"] is None else dcoef * c["scale"].astype(dcoef.dtype)
+        weighted = alpha * dalpha
+        if n_rows:
+            row_sums = np.add.reduceat(weighted, local.indptr[:-1], axis=0)[local.rows]
+        else:
+            row_sums = weighted
+        de = weighted - alpha * row_sums
+        dpre = np.where(c["pre"] > 0, de, SLOPE * de)
+        ds_src = np.stack([np.bincount(local.indices, weights=dpre[:, head],
+                                       minlength=local.num_cols) for head in range(k)],
+                          axis=1).astype(dpre.dtype)
+        ds_dst = (np.add.reduceat(dpre, local.indptr[:-1], axis=0) if n_rows
+                  else np.zeros((0, k), dtype=dpre.dtype))
+        t_own = t_loc[:n_rows]
+        datt_src = np.einsum("ck,ckd->kd", ds_src, t_loc)
+        datt_dst = np.einsum("rk,rkd->kd", ds_dst, t_own)
+        dt_loc += ds_src[:, :, None] * att_src[None, :, :]
+        dt = propagate_t(l, dt_loc.reshape(local.num_cols, k * d))
+        dt += (ds_dst[:, :, None] * att_dst[None, :, :]).reshape(n_rows, k * d)
+        dw = c["hd"].T @ dt
+        grads.append(params_like(params[l], (dw, datt_src, datt_dst, db)))
+        if l > 0:
+            dhd = dt @ w.T
+            dz = drop(l, dhd) * elu_grad(cache["layers"][l - 1]["z"])
+    return grads[::-1]
