@@ -19,7 +19,11 @@ def test_training_defaults_are_the_gcn_papers():
     assert asdict(TrainSettings()) == {
         "layers": d.LAYERS, "hidden": d.HIDDEN, "dropout": d.DROPOUT, "lr": d.LR,
         "weight_decay": d.WEIGHT_DECAY, "epochs": d.EPOCHS, "seed": d.SEED, "dtype": d.DTYPE,
-        "bias": d.BIAS, "early_stop": d.EARLY_STOP, "threads": d.THREADS}
+        "bias": d.BIAS, "early_stop": d.EARLY_STOP, "threads": d.THREADS, "model": d.MODEL,
+        "heads": d.HEADS}
+    # the model family's defaults: GCN as before; GAT's 8 heads on hidden layers
+    # (Velickovic et al., ICLR 2018, transductive setup, from memory)
+    assert (d.MODEL, d.HEADS) == ("gcn", 8)
 
 
 def test_settings_values_read_the_defaults():

@@ -34,6 +34,7 @@ from shardtrain.errors import (
     InputError,
     RunError,
 )
+from shardtrain.plan.schedule import MODELS
 from shardtrain.train import api
 from shardtrain.train.settings import DTYPES, TrainSettings, max_threads
 from shardtrain.transport.frames import DEFAULT_MAX_FRAME_BYTES
@@ -85,8 +86,14 @@ def add_arguments(parser) -> None:
     parser.add_argument("--imbalance", type=_number("--imbalance", float),
                         default=defaults.IMBALANCE,
                         help=f"allowed partition imbalance (default {defaults.IMBALANCE:g})")
+    parser.add_argument("--model", default=defaults.MODEL, metavar="NAME",
+                        help=f"message-passing model: {', '.join(MODELS)} (default "
+                             f"{defaults.MODEL}; see README 'Models')")
+    parser.add_argument("--heads", type=_number("--heads", int), default=defaults.HEADS,
+                        metavar="K", help=f"attention heads per hidden layer of --model gat "
+                                          f"(default {defaults.HEADS})")
     parser.add_argument("--layers", type=_number("--layers", int), default=defaults.LAYERS,
-                        help=f"GCN layers (default {defaults.LAYERS})")
+                        help=f"layers (default {defaults.LAYERS})")
     parser.add_argument("--hidden", type=_number("--hidden", int), default=defaults.HIDDEN,
                         help=f"hidden width (default {defaults.HIDDEN})")
     parser.add_argument("--dropout", type=_number("--dropout", float),
@@ -335,7 +342,8 @@ def config_of(args) -> api.RunConfig:
     settings = TrainSettings(layers=args.layers, hidden=args.hidden, dropout=args.dropout,
                              lr=args.lr, weight_decay=args.weight_decay, epochs=args.epochs,
                              seed=args.seed, dtype=args.dtype, bias=bool(args.bias),
-                             early_stop=args.early_stop, threads=args.threads)
+                             early_stop=args.early_stop, threads=args.threads,
+                             model=args.model, heads=args.heads)
     return api.RunConfig(
         source=args.graph, settings=settings,
         mode="reference" if args.reference else "partitioned",
@@ -401,7 +409,37 @@ class _Screen:
                     print(line)
 
 
+def _write_initial_weights(args) -> int:
+    """`--epochs 0 --weights OUT.npz`: the initial weights (Glorot, or --init-weights
+    checked against the model), nothing trained. Under MPI rank 0 writes them."""
+    from shardtrain.files import save_npz_atomic
+    from shardtrain.train import model
+
+    if not args.weights:
+        raise InputError("--epochs 0: trains nothing; give --weights OUT.npz to write the "
+                         "initial weights")
+    for flag, given in (("--json", args.json), ("--predictions", args.predictions),
+                        ("--checkpoint", args.checkpoint), ("--resume", args.resume),
+                        ("--plot", getattr(args, "plot", None))):
+        if given:
+            raise InputError(f"{flag}: not written with --epochs 0 (only --weights is)")
+    if args.transport == "mpi" and api.mpi_rank_and_size()[0] != 0:
+        return 0
+    args.epochs = 1                       # a valid config; initial_weights trains nothing
+    config = config_of(args)
+    _check_outputs(args)
+    params = api.initial_weights(config)
+    save_npz_atomic(args.weights, **model.params_to_arrays(params))
+    if not args.quiet:
+        names = ", ".join(model.param_names(params))
+        print(f"initial weights of {config.settings.model} ({names}) written to "
+              f"{args.weights}; nothing trained (--epochs 0)")
+    return 0
+
+
 def run(args) -> int:
+    if args.epochs == 0:
+        return _write_initial_weights(args)
     config = config_of(args)
     screen = _Screen(args)
     if args.transport == "mpi":

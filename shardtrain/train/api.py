@@ -272,6 +272,39 @@ def load_init_weights(path, dims, settings: TrainSettings):
                                     source=str(path), hops=settings.hops(dims))
 
 
+# ---------------------------------------------------------------- initial weights
+
+def initial_weights(config: RunConfig):
+    """The weights a run of `config` would start from (`--init-weights`, else Glorot of the
+    settings' seed), as Params, without training: what `train --epochs 0 --weights OUT`
+    writes. `config.settings.epochs` may be 0 here (and only here). Reads the graph's
+    feature width and classes (or a shard directory's manifest)."""
+    from dataclasses import replace
+
+    from shardtrain.train import model
+
+    settings = config.settings
+    if settings.epochs == 0:
+        settings = replace(settings, epochs=1)
+    config = replace(config, settings=settings)
+    from_shards = check_config(config)
+    if from_shards:
+        from shardtrain.train.accounting import model_dims_of, shard_dir_facts
+
+        dims = model_dims_of(shard_dir_facts(config.source), settings)
+    else:
+        from shardtrain.train.reference import check_trainable, model_dims
+
+        graph, _ = _load_graph(config)
+        check_trainable(graph)
+        dims = model_dims(graph, settings)
+    check_model_fits(dims, settings)
+    if config.init_weights:
+        return load_init_weights(config.init_weights, dims, settings)
+    return model.glorot_init(dims, settings.seed, settings.np_dtype, settings.bias,
+                             hops=settings.hops(dims))
+
+
 # ---------------------------------------------------------------- the run
 
 def run(config: RunConfig, *, transport: str = defaults.TRANSPORT,

@@ -36,6 +36,7 @@ from typing import Callable
 
 import numpy as np
 
+from shardtrain import defaults
 from shardtrain.errors import InputError, ParameterError, option
 from shardtrain.files import read_json_document
 
@@ -45,7 +46,8 @@ INDEX = "checkpoint.json"
 _STATE_RE = re.compile(r"state-\d{6}\.npz")
 # settings a resume may change: how long the run goes on, how many BLAS threads it uses
 _FREE_SETTINGS = ("epochs", "threads")
-_ABSENT_MEANS = {"early_stop": 0}     # settings older checkpoints do not record
+# settings older checkpoints do not record (what they trained with: GCN, where heads is moot)
+_ABSENT_MEANS = {"early_stop": 0, "model": defaults.MODEL, "heads": defaults.HEADS}
 
 
 def state_file_name(epoch: int) -> str:

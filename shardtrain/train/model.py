@@ -56,7 +56,8 @@ class GatLayer(NamedTuple):
 
 # a GCN layer is the plain tuple (w, b); the other models' layers are these NamedTuples,
 # whose fields are the names of `schedule.layer_param_shapes`
-LAYER_TYPES = {"sage": SageLayer, "gin": GinLayer, "gat": GatLayer}
+LAYER_TYPES: dict[str, type[SageLayer] | type[GinLayer] | type[GatLayer]] = {
+    "sage": SageLayer, "gin": GinLayer, "gat": GatLayer}
 GCN_FIELDS = ("w", "b")
 
 
@@ -69,7 +70,8 @@ def _layer_of(model: str, values: dict):
     if model == "gcn":
         return (values["w"], values.get("b"))
     kind = LAYER_TYPES[model]
-    return kind(*(values.get(f) for f in kind._fields))
+    fields: list = [values.get(f) for f in kind._fields]
+    return kind(*fields)
 
 
 def _model_of(hops) -> str:
@@ -356,7 +358,7 @@ def backward(params: Params, cache: dict, dlogits: np.ndarray, hops: list[LayerH
         return _OTHER_MODELS[_model_of(hops)].backward(params, cache, dlogits, hops,
                                                        propagate_t)
     drop = cache["drop"]
-    grads: Grads = [None] * len(params)  # type: ignore[list-item]
+    grads: Grads = [None] * len(params)
     dz = dlogits
     for l in range(len(params) - 1, -1, -1):
         (w, b), hop = params[l], hops[l]
@@ -464,7 +466,7 @@ def unflatten(flat: np.ndarray, like_params: Params) -> Grads:
     out: Grads = []
     pos = 0
     for layer in like_params:
-        values = []
+        values: list = []
         for p in layer:
             if p is None:
                 values.append(None)
