@@ -177,3 +177,40 @@ def test_bad_model_options_are_one_line_exit_2(tmp_path, graph, args, option):
     assert done.returncode == 2
     assert done.stderr.count("\n") == 1 and option in done.stderr
     assert "Traceback" not in done.stderr
+
+
+@pytest.mark.mpi
+@pytest.mark.parametrize("kind", MODELS)
+def test_mpi_run_equals_reference(tmp_path, graph, kind):
+    # reference: the single-process trainer of the same model; 3 ranks over MPI
+    from helpers import launch_mpi, mpiexec
+
+    from shardtrain.plan.partition import partition
+    from shardtrain.plan.shards import build_shards, save_shards
+
+    mpiexec()
+    k = 3
+    shard_dir = tmp_path / "shards"
+    save_shards(shard_dir, build_shards(graph, partition(graph, "random", k, seed=0), k),
+                meta={"method": "random", "seed": 0, "num_classes": graph.num_classes,
+                      "input_dim": graph.input_dim})
+    out, weights = tmp_path / "run.json", tmp_path / "w.npz"
+    proc, _ = launch_mpi(k, ["-m", "shardtrain", "train", str(shard_dir), "--transport", "mpi",
+                             "--model", kind, "--heads", "3", "--layers", "2", "--hidden", "8",
+                             "--dropout", "0.5", "--epochs", "3", "--seed", "7", "--dtype",
+                             "float64", "--bias", "--quiet", "--json", str(out),
+                             "--weights", str(weights)])
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    doc = json.loads(out.read_text())
+    ref = reference(graph, kind, 0)
+    assert doc["settings"]["model"] == kind
+    assert np.allclose([e["loss"] for e in doc["epochs"]], [e["loss"] for e in ref.epochs],
+                       rtol=RTOL, atol=0)
+    with np.load(weights, allow_pickle=False) as w:
+        got = {name: w[name] for name in w.files}
+    want = model.params_to_arrays(ref.params)
+    assert sorted(got) == sorted(want)
+    for name in want:
+        assert np.allclose(got[name], want[name], rtol=RTOL, atol=0), name
+    t = doc["traffic"]
+    assert t["measured_payload_bytes"] == t["predicted_payload_bytes"] > 0
