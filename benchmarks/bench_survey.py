@@ -90,7 +90,7 @@ def _write_memory_shard(path: str, vertices: int, edges: int, features: int) -> 
              adj_data=shard.adj.data, num_train=shard.num_train_global, **arrays)
 
 
-def _memory_check_child(path: str, hidden: int, dtype: str) -> None:
+def _memory_check_child(path: str, hidden: int, dtype: str, model: str = "gcn") -> None:
     """Run in a fresh process: load the shard, predict, train 3 epochs, report peak RSS."""
     import json
 
@@ -109,23 +109,26 @@ def _memory_check_child(path: str, hidden: int, dtype: str) -> None:
                   num_train_global=int(a["num_train"]), **{k: a[k] for k in SHARD_ARRAYS})
     del a
     features, classes = shard.features.shape[1], 6
-    hops = layer_hops(layer_dims(features, hidden, classes, 2))
+    settings = TrainSettings(layers=2, hidden=hidden, epochs=3, dtype=dtype, model=model)
+    hops = settings.hops(settings.model_dims(features, classes))
     predicted = sv.predict_memory(shard, hops, np.dtype(dtype).itemsize,
                                   param_elements=sv.parameter_elements(hops),
                                   input_dim=features, feature_itemsize=shard.features.itemsize)
-    settings = TrainSettings(layers=2, hidden=hidden, epochs=3, dtype=dtype)
     worker.run_worker(shard, settings, _NoPeers(), Profile(0), lambda r: None,
                       num_classes=classes)
     measured = _status_kib("VmHWM") * 1024
-    print(json.dumps({"dtype": dtype, "owned": n, "nnz": int(adj.nnz), "features": features,
+    print(json.dumps({"model": model, "dtype": dtype, "owned": n, "nnz": int(adj.nnz),
+                      "features": features,
                       "hidden": hidden, "predicted_bytes": predicted,
                       "measured_peak_rss_bytes": measured,
                       "predicted_over_measured": predicted / measured}))
 
 
-# (features, hidden, dtype): transform-first in both layers, in both dtypes, and
-# aggregate-first in layer 0 (features < hidden)
-MEMORY_CONFIGS = ((128, 64, "float32"), (128, 64, "float64"), (16, 64, "float32"))
+# (features, hidden, dtype, model): GCN transform-first in both layers, in both dtypes, and
+# aggregate-first in layer 0 (features < hidden); each other model once (GAT: 8 heads of 8)
+MEMORY_CONFIGS = ((128, 64, "float32", "gcn"), (128, 64, "float64", "gcn"),
+                  (16, 64, "float32", "gcn"), (128, 64, "float32", "sage"),
+                  (128, 64, "float32", "gin"), (128, 8, "float32", "gat"))
 
 
 def _memory_check(configs=MEMORY_CONFIGS, vertices=200_000, edges=1_000_000) -> list[dict]:
@@ -135,16 +138,17 @@ def _memory_check(configs=MEMORY_CONFIGS, vertices=200_000, edges=1_000_000) -> 
 
     out = []
     with tempfile.TemporaryDirectory() as tmp:
-        for features, hidden, dtype in configs:
+        for features, hidden, dtype, model in configs:
             path = os.path.join(tmp, f"shard{features}.npz")
             if not os.path.exists(path):
                 _write_memory_shard(path, vertices, edges, features)
             r = subprocess.run([sys.executable, __file__, "--memory-check-child", path,
-                                "--hidden", str(hidden), "--dtype", dtype, "--out", "-"],
+                                "--hidden", str(hidden), "--dtype", dtype, "--model", model,
+                                "--out", "-"],
                                capture_output=True, text=True, check=True)
             row = json.loads(r.stdout.strip().splitlines()[-1])
             out.append(row)
-            print(f"  memory {features}-{hidden} {dtype}: predicted "
+            print(f"  memory {model} {features}-{hidden} {dtype}: predicted "
                   f"{row['predicted_bytes'] / 2**20:.0f} MiB, measured "
                   f"{row['measured_peak_rss_bytes'] / 2**20:.0f} MiB", file=sys.stderr)
     return out
@@ -192,10 +196,19 @@ def main(argv=None) -> int:
     ap.add_argument("--seed", type=int, default=0)
     ap.add_argument("--dtype", default="float32", help=argparse.SUPPRESS)
     ap.add_argument("--skip-memory-check", action="store_true")
+    ap.add_argument("--memory-only", action="store_true",
+                    help="only the memory check (--memory-vertices, --memory-edges)")
+    ap.add_argument("--memory-vertices", type=int, default=200_000)
+    ap.add_argument("--memory-edges", type=int, default=1_000_000)
+    ap.add_argument("--model", default="gcn", help=argparse.SUPPRESS)
     ap.add_argument("--memory-check-child", default=None, help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
     if args.memory_check_child:
-        _memory_check_child(args.memory_check_child, args.hidden, args.dtype)
+        _memory_check_child(args.memory_check_child, args.hidden, args.dtype, args.model)
+        return 0
+    if args.memory_only:
+        rows = _memory_check(vertices=args.memory_vertices, edges=args.memory_edges)
+        write_json_atomic(args.out, {"memory_check": rows})
         return 0
     workers = [int(x) for x in args.workers.split(",")]
     methods = args.methods.split(",") if args.methods else list(DEFAULT_METHODS)

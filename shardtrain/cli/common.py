@@ -33,8 +33,12 @@ def add_plan_shape_arguments(parser: argparse.ArgumentParser) -> None:
     """The model shape and partition options a survey or forecast plans for (not trained)."""
     add = parser.add_argument
     d = defaults
+    add("--model", default=d.MODEL, metavar="NAME",
+        help=f"message-passing model: gcn, sage, gin, gat (default {d.MODEL})")
+    add("--heads", type=int_type("--heads"), default=d.HEADS, metavar="K",
+        help=f"attention heads per hidden layer of --model gat (default {d.HEADS})")
     add("--layers", type=positive_int_type("--layers"), default=d.LAYERS,
-        help=f"GCN layers (default {d.LAYERS})")
+        help=f"layers (default {d.LAYERS})")
     add("--hidden", type=positive_int_type("--hidden"), default=d.HIDDEN,
         help=f"hidden width (default {d.HIDDEN})")
     add("--dtype", default=d.DTYPE, help=f"training dtype, float32 or float64 (default {d.DTYPE})")

@@ -94,7 +94,8 @@ def _survey_and_measure(graph, methods, workers, settings, dropout, cores=None):
     if graph.features is None or graph.labels is None:
         raise InputError("--measure-compute: the graph needs features and labels to train")
     train = TrainSettings(layers=settings.layers, hidden=settings.hidden, dropout=dropout,
-                          dtype=settings.dtype, bias=settings.bias, seed=settings.seed)
+                          dtype=settings.dtype, bias=settings.bias, seed=settings.seed,
+                          model=settings.model, heads=settings.heads)
     head, plans, measured = None, [], {}
     for method in methods:
         for k in workers:
@@ -257,7 +258,8 @@ def run(args) -> int:
 
         settings = SurveySettings(layers=args.layers, hidden=args.hidden, dtype=args.dtype,
                                   classes=args.classes, input_dim=args.input_dim,
-                                  bias=args.bias, imbalance=args.imbalance, seed=args.seed)
+                                  bias=args.bias, imbalance=args.imbalance, seed=args.seed,
+                                  model=args.model, heads=args.heads)
         workers = workers or parse_int_list(DEFAULT_WORKERS, "--workers")
         methods = methods or parse_name_list(DEFAULT_METHODS, "--method")
         loaded = load_graph_from_args(args)

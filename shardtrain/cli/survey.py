@@ -123,7 +123,8 @@ def _check_output(path: str | None, option: str) -> None:
 def _settings(args) -> SurveySettings:
     return SurveySettings(layers=args.layers, hidden=args.hidden, dtype=args.dtype,
                           classes=args.classes, input_dim=args.input_dim, bias=args.bias,
-                          imbalance=args.imbalance, seed=args.seed)
+                          imbalance=args.imbalance, seed=args.seed, model=args.model,
+                          heads=args.heads)
 
 
 def table_rows(result: dict) -> list[dict]:
@@ -331,10 +332,18 @@ def _run_graph_dir(args, methods, workers, settings, budget, group=None, agree=N
     return 0
 
 
+def model_label(m: dict) -> str:
+    """'GCN', 'SAGE', 'GIN' or 'GAT x8 heads' for a survey's "model" entry (a survey
+    written before the model family reads as GCN)."""
+    name = str(m.get("name", "gcn")).upper()
+    return f"{name} x{m['heads']} heads" if "heads" in m else name
+
+
 def _report(args, result: dict) -> None:
     m = result["model"]
     print(f"{result['graph']['vertices']:,} vertices, {result['graph']['edges']:,} edges; "
-          f"GCN {' -> '.join(str(d) for d in [m['dims'][0][0]] + [d[1] for d in m['dims']])} "
+          f"{model_label(m)} "
+          f"{' -> '.join(str(d) for d in [m['dims'][0][0]] + [d[1] for d in m['dims']])} "
           f"({m['dtype']}); traffic is payload per training epoch")
     print(format_table(table_rows(result), TABLE_COLUMNS))
     _write_outputs(args, result)

@@ -320,6 +320,12 @@ def shard_dir_line(shard_dir, facts, m: dict, counts: dict | None = None) -> str
             f"{split}; {facts.workers} shards in {shard_dir}")
 
 
+def model_label(args) -> str:
+    """'gcn 2x16', 'gat 2x8, 8 heads': the model a run trains, in its closing line."""
+    heads = f", {args.heads} heads" if args.model == "gat" else ""
+    return f"{args.model} {args.layers}x{args.hidden}{heads}"
+
+
 def _say_early_stop(summary: dict | None, quiet: bool) -> None:
     """The closing line of an early-stopping run: where it stopped, which weights it kept."""
     if quiet or summary is None:
@@ -400,7 +406,8 @@ class _Screen:
         write_outputs(args, result, outcome.labels, outcome.document)
         if not args.quiet:
             last = result.epochs[-1]
-            print(f"final: loss {last['loss']:.6f}  train {_acc(last['train_acc'])}  "
+            print(f"final ({model_label(args)}): loss {last['loss']:.6f}  "
+                  f"train {_acc(last['train_acc'])}  "
                   f"val {_acc(last['val_acc'])}  test {_acc(last['test_acc'])}")
             _say_early_stop(result.early_stop, args.quiet)
             if outcome.mode == "partitioned":

@@ -265,11 +265,54 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
         return np.where((msgs > 0) | (in_msgs > 0),
                         call_s + np.maximum(wire, copy_s * (out_bytes + in_bytes)), 0.0)
 
+    def gat_forward(tl: _Timeline, h: dict, train: bool) -> None:
+        """GAT layer (`train/models/gat.py`): T = H W, [T; T_halo], scores per edge and
+        head, softmax, dropout on α, one sparse product per head, ELU."""
+        l, d_in, d_out, fw = h["layer"], h["d_in"], h["d_out"], h["forward_width"]
+        heads = int(h.get("heads", 1))
+        edges = nnz * heads
+        tl.compute(gemm(n, d_in, fw))                                          # T = H W
+        if k > 1 and fw:
+            tl.compute(row_moves(sent_rows * fw * b, 0))
+            tl.exchange(f"forward {l}", link(sent_rows, fw, fwd_msgs, back_rows, bwd_msgs))
+        tl.compute(passes((n + halo) * fw * b * 3))                  # [T; T_halo], att terms
+        tl.compute(passes(edges * b * 12))                           # scores, softmax
+        if train and dropout > 0:
+            tl.compute(draw_masks(edges) + passes(edges * b * 2))
+        for _ in range(heads):
+            tl.compute(sparse(d_out))                                          # α_h T_h
+        if l < len(hops) - 1:
+            tl.compute(passes(n * fw * 3 * b))                                 # ELU
+
+    def gat_backward(tl: _Timeline, h: dict) -> None:
+        l, d_in, d_out, bw = h["layer"], h["d_in"], h["d_out"], h["backward_width"]
+        heads = int(h.get("heads", 1))
+        edges = nnz * heads
+        for _ in range(heads):
+            tl.compute(sparse(d_out))                                          # α_hᵀ dOut_h
+        tl.compute(passes(edges * d_out * b * 3 + edges * b * 16))   # dα, softmax', scores'
+        tl.compute(passes((n + halo) * bw * b * 3))                  # attention terms of dT
+        if k > 1 and bw:
+            tl.exchange(f"backward {l}", link(back_rows, bw, bwd_msgs, sent_rows, fwd_msgs))
+            tl.compute(row_moves(0, sent_rows * bw * b))
+        tl.compute(gemm(n, d_in, bw))                                          # dW
+        if l > 0:
+            tl.compute(gemm(n, bw, d_in))                                      # dH
+            tl.compute(passes(n * d_in * 5 * b))                               # dropout, ELU'
+
     def forward(tl: _Timeline, train: bool) -> None:
         for h in hops:
             l, d_in, d_out, fw = h["layer"], h["d_in"], h["d_out"], h["forward_width"]
+            kind = h.get("model", "gcn")
             if train and dropout > 0:
                 tl.compute(draw_masks(n * d_in) + passes(n * d_in * 3 * b))     # mask, h*mask
+            if kind == "gat":
+                gat_forward(tl, h, train)
+                continue
+            if kind == "gin":          # the MLP's first width; its second product below
+                d_out = int(h.get("inner", d_out))
+            if kind == "sage":
+                tl.compute(gemm(n, d_in, d_out) + passes(n * d_out * 3 * b))   # self path
             if h["transform_first"]:
                 tl.compute(gemm(n, d_in, d_out))
             if k > 1 and fw:
@@ -279,6 +322,9 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
             tl.compute(sparse(fw))
             if not h["transform_first"]:
                 tl.compute(gemm(n, d_in, d_out))
+            if kind == "gin":
+                tl.compute(passes(n * d_out * 2 * b) + gemm(n, d_out, h["d_out"]))
+                d_out = h["d_out"]
             if l < len(hops) - 1:
                 tl.compute(passes(n * d_out * 2 * b))                          # ReLU
         tl.compute(passes(n * classes * 8 * b))                                # softmax, loss
@@ -287,6 +333,19 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
         for h in reversed(hops):
             l, d_in, d_out = h["layer"], h["d_in"], h["d_out"]
             bw = h["backward_width"]
+            kind = h.get("model", "gcn")
+            if kind == "gat":
+                gat_backward(tl, h)
+                continue
+            if kind == "gin":          # dW_b, dQ, ReLU'; then as GCN with the MLP's width
+                inner = int(h.get("inner", d_out))
+                tl.compute(gemm(n, inner, d_out) + gemm(n, d_out, inner)
+                           + passes(n * inner * 3 * b))
+                d_out = inner
+            if kind == "sage":         # dW_self, and dH's self part
+                tl.compute(gemm(n, d_in, d_out))
+                if l > 0:
+                    tl.compute(gemm(n, d_out, d_in) + passes(n * d_in * 3 * b))
             if h["transform_first"]:
                 tl.compute(sparse(d_out))                                      # dT = Â^T dZ
                 if k > 1 and bw:

@@ -25,6 +25,7 @@ class LayerHop:
 
 # the message-passing models a run can train (the first is the default)
 MODELS = ("gcn", "sage", "gin", "gat")
+MAX_HEADS = 1024        # GAT heads per layer we accept
 
 
 def layer_dims(input_dim: int, hidden: int, classes: int, layers: int, *, model: str = "gcn",

@@ -18,7 +18,15 @@ from shardtrain import defaults
 from shardtrain.data.graph import structure_fingerprint
 from shardtrain.documents import ABSENT, Document
 from shardtrain.errors import ParameterError
-from shardtrain.plan.schedule import LayerHop, layer_dims, layer_hops, layer_param_shapes
+from shardtrain.plan.schedule import (
+    MAX_HEADS,
+    MODELS,
+    LayerHop,
+    layer_dims,
+    layer_param_shapes,
+    model_hops,
+    output_width,
+)
 from shardtrain.transport.wire import KIND_ALLREDUCE, KIND_HALO, NO_LAYER
 
 # Resident memory of an idle worker interpreter with numpy and scipy.sparse imported,
@@ -42,6 +50,8 @@ class SurveySettings:
     bias: bool = defaults.BIAS
     imbalance: float = defaults.IMBALANCE
     seed: int = defaults.SEED
+    model: str = defaults.MODEL     # schedule.MODELS
+    heads: int = defaults.HEADS     # GAT heads per hidden layer
 
 
 @dataclass(kw_only=True)
@@ -292,9 +302,49 @@ def predict_memory_counts(n: int, h: int, s: int, nnz: int, nnz_halo: int, peers
         total += cache + (not hop.transform_first) * n * hop.d_in * b
         d_h = 3 * n * hop.d_in * b + n * hop.d_in if hop.layer > 0 else 0
         backward_peak = max(backward_peak, (n * fw + n * hop.d_out) * b + d_h)
-    total += 2 * n * hops[-1].d_out * b + backward_peak
+    total += 2 * n * output_width(hops[-1]) * b + backward_peak
     total += 5 * param_elements * b
+    total += _model_memory(n, h, s, nnz, nnz_halo, hops, b, ip, ix)
     return int(total)
+
+
+def _model_memory(n: int, h: int, s: int, nnz: int, nnz_halo: int, hops: list[LayerHop],
+                  b: int, ip: int, ix: int) -> int:
+    """What the models beside GCN hold beyond GCN's terms (0 for GCN), from the arrays of
+    `train/models/` and `models.common`:
+    - sage: its operator D⁻¹A in float64 (int64 indptr; nnz - n entries), and the owned
+      block's transpose (D⁻¹A is not symmetric);
+    - gin: its operator A + I in float64, and per layer the MLP's P1 and Q (n x hidden);
+    - gat: the local structure (indptr, indices, rows, column ids: int64); per layer T of
+      every local column ((n + h) x K·d), the attention α, scores, dropped-out α
+      (E x K x b) and the dropout factors (E x K x 8, float64), the output before ELU
+      (n x K·d); the backward working set: dT of the local columns, six E x K arrays of
+      the softmax's gradient, the attention-source gradients ((n + h) x K x 8); without
+      GCN's halo receive buffers (the gather writes into its fresh output)."""
+    model = hops[0].model if hops else "gcn"
+    if model == "gcn":
+        return 0
+    extra = 0
+    if model == "sage":
+        own = nnz - nnz_halo - n
+        extra += (n + 1) * 8 + (nnz - n) * (ix + 8)
+        extra += (n + 1) * ip + own * (ix + b)
+        extra -= n * (2 * ix + b + 8)          # GCN's column blocks counted the self-loops
+    elif model == "gin":
+        extra += (n + 1) * 8 + nnz * (ix + 8)
+        extra += sum(2 * n * hop.inner * b for hop in hops)
+    elif model == "gat":
+        extra += (n + 1) * 8 + 2 * nnz * 8 + (n + h) * 8
+        peak = 0
+        for hop in hops:
+            kd = hop.heads * hop.d_out
+            extra += (n + h) * kd * b + 3 * nnz * hop.heads * b + nnz * hop.heads * 8
+            extra += n * kd * b
+            extra -= (h * hop.forward_width + h * hop.backward_width) * b
+            peak = max(peak, (n + h) * kd * b + 6 * nnz * hop.heads * b
+                       + (n + h) * hop.heads * 8)
+        extra += peak
+    return extra
 
 
 def _max_over_mean(values: np.ndarray) -> dict:
@@ -397,8 +447,10 @@ def model_shape(graph, settings: SurveySettings) -> tuple[list[tuple[int, int]],
                              f"{' and '.join(m[2] for m in missing)}",
                              also=tuple(m[0] for m in missing[1:]))
     assert input_dim is not None and classes is not None   # refused above when missing
-    dims = layer_dims(int(input_dim), settings.hidden, int(classes), settings.layers)
-    return dims, layer_hops(dims)
+    dims = layer_dims(int(input_dim), settings.hidden, int(classes), settings.layers,
+                      model=settings.model, heads=settings.heads)
+    return dims, model_hops(dims, settings.model, hidden=settings.hidden,
+                            heads=settings.heads)
 
 
 def check_plans(graph, methods: list[str], workers_list: list[int],
@@ -422,6 +474,12 @@ def check_plans(graph, methods: list[str], workers_list: list[int],
         raise ParameterError("dtype", f"must be float32 or float64, got {settings.dtype!r}")
     if not 0.0 <= settings.imbalance < 1.0:
         raise ParameterError("imbalance", f"must be in [0, 1), got {settings.imbalance}")
+    if settings.model not in MODELS:
+        raise ParameterError("model", f"must be one of {', '.join(MODELS)} (got "
+                                      f"{settings.model!r})")
+    if not 1 <= settings.heads <= MAX_HEADS:
+        raise ParameterError("heads", f"must be an integer in 1..{MAX_HEADS} (got "
+                                      f"{settings.heads})")
     model_shape(graph, settings)
 
 
@@ -453,13 +511,18 @@ def survey_document(num_vertices: int, num_edges: int, structure: str,
         "graph": {"vertices": num_vertices, "edges": num_edges,
                   "input_dim": dims[0][0], "classes": dims[-1][1],
                   "structure_fingerprint": structure},
-        "model": {"layers": settings.layers, "hidden": settings.hidden,
+        "model": {"name": settings.model,
+                  **({"heads": settings.heads} if settings.model == "gat" else {}),
+                  "layers": settings.layers, "hidden": settings.hidden,
                   "dtype": settings.dtype, "bias": settings.bias,
                   "parameters": parameter_elements(hops, bias=settings.bias),
                   "dims": [list(d) for d in dims],
                   "hops": [{"layer": h.layer, "d_in": h.d_in, "d_out": h.d_out,
                             "transform_first": h.transform_first,
                             "forward_width": h.forward_width,
-                            "backward_width": h.backward_width} for h in hops]},
+                            "backward_width": h.backward_width,
+                            **({} if h.model == "gcn" else
+                               {"model": h.model, "heads": h.heads, "inner": h.inner})}
+                           for h in hops]},
         "plans": plans,
     }

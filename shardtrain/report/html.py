@@ -238,7 +238,9 @@ def survey_section(doc: dict, plot_dir: Path, plan: dict | None = None) -> str:
     dims = m.get("dims") or []
     shape = " -> ".join(str(d) for d in ([dims[0][0]] + [d[1] for d in dims])) if dims else None
     return (_facts([("vertices", f"{g.get('vertices', 0):,}"), ("edges", f"{g.get('edges', 0):,}"),
-                    ("GCN widths", shape), ("dtype", m.get("dtype"))])
+                    ("model", str(m.get("name", "gcn")).upper()
+                     + (f" ({m['heads']} heads)" if "heads" in m else "")),
+                    ("widths", shape), ("dtype", m.get("dtype"))])
             + '<p class="note">Traffic is predicted payload per training epoch (array bytes, '
               "no framing), summed over all workers.</p>"
             + _table(rows, cols)
@@ -256,7 +258,10 @@ def run_section(doc: dict, plot_dir: Path) -> str:
              ("vertices", f"{vertices:,}" if vertices is not None else None),
              ("edges", f"{edges:,}" if edges is not None else None),
              ("mode", doc.get("mode")),
-             ("workers", len(doc["workers"]) if doc.get("workers") else None)]
+             ("workers", len(doc["workers"]) if doc.get("workers") else None),
+             # a run JSON written before the model family trained GCN
+             ("model", str(s.get("model", "gcn")).upper()
+              + (f" ({s['heads']} heads)" if s.get("model") == "gat" and "heads" in s else ""))]
     facts += [(label, s[k]) for k, label in (
         ("method", "method"), ("layers", "layers"), ("hidden", "hidden width"),
         ("dtype", "dtype"), ("epochs", "epochs"), ("lr", "learning rate"),

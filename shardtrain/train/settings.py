@@ -16,10 +16,9 @@ import numpy as np
 
 from shardtrain import defaults
 from shardtrain.errors import InputError, ParameterError
-from shardtrain.plan.schedule import MODELS, LayerHop, layer_dims, model_hops
+from shardtrain.plan.schedule import MAX_HEADS, MODELS, LayerHop, layer_dims, model_hops
 
 DTYPES = ("float32", "float64")
-MAX_HEADS = 1024
 
 
 @dataclass

@@ -164,8 +164,9 @@ def run_worker(shard, settings: TrainSettings, transport: Transport, profile,
         step_s = time.perf_counter() - start
         on_phase(f"epoch {epoch} evaluation")
         with profile.phase("compute"):
-            logits, _ = model.forward(params, x, hops, propagate_eval, model.no_dropout,
-                                      local)
+            # [0]: the evaluation's cache is not kept alive into the next step
+            logits = model.forward(params, x, hops, propagate_eval, model.no_dropout,
+                                   local)[0]
             correct = model.correct_counts(logits, labels, masks)
             val_sum, val_count = model.cross_entropy_sum(logits, labels, masks[1])
         eval_s = time.perf_counter() - start - step_s
