@@ -111,9 +111,10 @@ def backward(params, cache, dlogits, hops, propagate_t):
         dt_loc = np.empty_like(t_loc)
         dcoef = np.empty_like(alpha)
         for head in range(k):
-            dt_loc[:, head, :] = _head_matrix(coef[:, head], local).T @ dz3[:, head, :]
-            dcoef[:, head] = np.einsum("ed,ed->e", dz3[local.rows, head, :],
-                                       t_loc[local.indices, head, :])
+            dz_h = np.ascontiguousarray(dz3[:, head, :])
+            t_h = np.ascontiguousarray(t_loc[:, head, :])
+            dt_loc[:, head, :] = _head_matrix(coef[:, head], local).T @ dz_h
+            dcoef[:, head] = np.einsum("ed,ed->e", dz_h[local.rows], t_h[local.indices])
         dalpha = dcoef if c["scale"] is None else dcoef * c["scale"].astype(dcoef.dtype)
         weighted = alpha * dalpha
         if n_rows:
