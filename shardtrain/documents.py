@@ -513,8 +513,12 @@ def _check_survey(doc: dict) -> None:
 
 def _check_checkpoint(doc: dict) -> None:
     dims = doc["dims"]
+    settings = doc.get("settings") or {}
+    # GAT's hidden layers give their heads concatenated (heads x width per head)
+    heads = settings.get("heads", 1) if settings.get("model") == "gat" else 1
+    heads = heads if isinstance(heads, int) and heads >= 1 else 1
     for i in range(1, len(dims)):
-        if dims[i][0] != dims[i - 1][1]:
+        if dims[i][0] != dims[i - 1][1] * heads:
             raise _Bad(f"dims[{i}]", "must take the width the layer before it gives")
     stream = doc.get("random_stream") or {}
     if "next_epoch" in stream and stream["next_epoch"] != doc["epoch"] + 1:

@@ -114,6 +114,7 @@ def test_payload_per_layer_follows_each_models_schedule(tmp_path, graph, kind):
         assert by.get((h.layer, "backward"), 0) == rows * h.backward_width * 8
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("kind", MODELS)
 def test_cli_initial_weights_round_trip(tmp_path, graph, kind):
     """--epochs 0 --weights writes the initial weights under the issue's names; a
@@ -214,3 +215,66 @@ def test_mpi_run_equals_reference(tmp_path, graph, kind):
         assert np.allclose(got[name], want[name], rtol=RTOL, atol=0), name
     t = doc["traffic"]
     assert t["measured_payload_bytes"] == t["predicted_payload_bytes"] > 0
+
+
+@pytest.mark.parametrize("kind", MODELS)
+def test_survey_plan_equals_the_trainers_measured_payload(tmp_path, graph, kind):
+    # The trained run's byte counters are the outside measurement: the survey's plan of
+    # the same model (id-order shards, no process started) predicts them exactly.
+    from shardtrain.plan import survey as sv
+
+    a = np.random.default_rng(8).integers(0, 3, graph.num_vertices)
+    settings = TrainSettings(**{**settings_of(kind, 0).to_dict(), "epochs": 2,
+                                "dtype": "float32", "bias": False})
+    run, _ = run_partitioned(tmp_path, graph, a, 3, settings)
+    shape = sv.SurveySettings(layers=settings.layers, hidden=settings.hidden, model=kind,
+                              heads=settings.heads)
+    dims, hops = sv.model_shape(graph, shape)
+    assert hops == settings.hops(settings.model_dims(graph.input_dim, graph.num_classes))
+    params = sv.parameter_elements(hops)
+    assert params == model.flatten(model.glorot_init(dims, 0, np.float32, hops=hops)).size
+    plan = sv.survey_plan(graph, "given", 3, hops=hops, itemsize=4, seed=0, imbalance=0.03,
+                          assignment=a)
+    predicted = sv.predict_run_payload(plan["traffic"], settings.epochs, settings.epochs)
+    assert run.traffic["measured_payload_bytes"] == predicted > 0
+
+
+def test_survey_json_names_the_model(tmp_path, graph):
+    path = tmp_path / "g.npz"
+    save_graph(path, graph)
+    out = tmp_path / "s.json"
+    done = subprocess.run([sys.executable, "-m", "shardtrain", "survey", str(path), "--model",
+                           "gat", "--heads", "3", "--workers", "2", "--method", "random",
+                           "--json", str(out)], capture_output=True, text=True, timeout=120)
+    assert done.returncode == 0, done.stderr
+    doc = json.loads(out.read_text())
+    assert doc["model"]["name"] == "gat" and doc["model"]["heads"] == 3
+    assert [h["forward_width"] for h in doc["model"]["hops"]] == [3 * 16, 4]
+    assert "GAT x3 heads" in done.stdout
+    bad = subprocess.run([sys.executable, "-m", "shardtrain", "survey", str(path), "--model",
+                          "gat", "--heads", "0"], capture_output=True, text=True, timeout=120)
+    assert bad.returncode == 2 and bad.stderr.count("\n") == 1 and "--heads" in bad.stderr
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("kind", MODELS)
+def test_resume_continues_bit_for_bit(tmp_path, graph, kind):
+    # a run stopped at epoch 3 and resumed to 6 equals the run of 6 epochs, bit for bit,
+    # with early stopping's state carried (its best weights copied in the model's layout)
+    path = tmp_path / "g.npz"
+    save_graph(path, graph)
+    common = [sys.executable, "-m", "shardtrain", "train", str(path), "--workers", "2",
+              "--method", "metis", "--model", kind, "--heads", "2", "--dtype", "float64",
+              "--early-stop", "3", "--quiet"]
+
+    def train(*args):
+        done = subprocess.run([*common, *args], capture_output=True, text=True, timeout=120)
+        assert done.returncode == 0, done.stderr
+
+    train("--epochs", "6", "--json", str(tmp_path / "full.json"))
+    train("--epochs", "3", "--checkpoint", str(tmp_path / "ck"), "--checkpoint-every", "1")
+    train("--epochs", "6", "--resume", str(tmp_path / "ck"), "--json",
+          str(tmp_path / "resumed.json"))
+    full = json.loads((tmp_path / "full.json").read_text())["epochs"]
+    resumed = json.loads((tmp_path / "resumed.json").read_text())["epochs"]
+    assert [e["loss"] for e in resumed] == [e["loss"] for e in full][3:]

@@ -121,6 +121,15 @@ def param_names(params: Params) -> list[str]:
     return names
 
 
+def copy_params(params: Params) -> Params:
+    """A deep copy of the arrays, in the layers' own tuple types."""
+    out = []
+    for layer in params:
+        values = [None if a is None else a.copy() for a in layer]
+        out.append(type(layer)(*values) if hasattr(layer, "_fields") else tuple(values))
+    return out
+
+
 def params_to_arrays(params: Params) -> dict[str, np.ndarray]:
     """{name: array} for saving (see `param_names`)."""
     return dict(zip(param_names(params), _leaves(params)))

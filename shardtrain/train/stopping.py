@@ -44,8 +44,7 @@ class EarlyStop:
                     or (math.isnan(self.best_loss) and not math.isnan(val_loss)))
         if improved:
             self.best_epoch, self.best_loss = int(epoch), float(val_loss)
-            self.best_params = [(w.copy(), None if b is None else b.copy())
-                                for w, b in params]
+            self.best_params = model.copy_params(params)
         return improved
 
     def should_stop(self, epoch: int) -> bool:
