@@ -6,6 +6,8 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.sparse as sp
 
+from shardtrain.compat import add_csr_product
+
 _MASK64 = (1 << 64) - 1
 
 
@@ -58,6 +60,7 @@ class LocalGraph:
     indices: np.ndarray
     rows: np.ndarray
     col_ids: np.ndarray
+    _by_col: tuple | None = None
 
     @property
     def num_rows(self) -> int:
@@ -66,6 +69,50 @@ class LocalGraph:
     @property
     def num_cols(self) -> int:
         return int(self.col_ids.shape[0])
+
+    @property
+    def counts(self) -> np.ndarray:
+        """Entries per row (every row has its self-loop)."""
+        return np.diff(self.indptr)
+
+    def by_column(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """(perm, col_indptr, rows[perm]): the entries in column order, the transpose's
+        CSR structure (computed once)."""
+        if self._by_col is None:
+            perm = np.argsort(self.indices, kind="stable")
+            col_ptr = np.zeros(self.num_cols + 1, dtype=np.int64)
+            np.cumsum(np.bincount(self.indices, minlength=self.num_cols), out=col_ptr[1:])
+            self._by_col = (perm, col_ptr, self.rows[perm])
+        return self._by_col
+
+    def product(self, values: np.ndarray, x: np.ndarray) -> np.ndarray:
+        """(rows x cols matrix with `values` at the entries) @ x, x (num_cols, w)."""
+        out = np.zeros((self.num_rows, x.shape[1]), dtype=x.dtype)
+        add_csr_product(_Csr(self.indptr, self.indices, values.astype(x.dtype, copy=False),
+                             (self.num_rows, self.num_cols)), x, out)
+        return out
+
+    def product_t(self, values: np.ndarray, g: np.ndarray) -> np.ndarray:
+        """(the same matrix)ᵀ @ g, g (num_rows, w): rows of every local column."""
+        perm, col_ptr, rows = self.by_column()
+        out = np.zeros((self.num_cols, g.shape[1]), dtype=g.dtype)
+        add_csr_product(_Csr(col_ptr, rows, values[perm].astype(g.dtype, copy=False),
+                             (self.num_cols, self.num_rows)), g, out)
+        return out
+
+
+@dataclass
+class _Csr:
+    """The fields `compat.add_csr_product` reads of a CSR matrix, without scipy's checks
+    (the structure is a LocalGraph's, checked when it was built)."""
+    indptr: np.ndarray
+    indices: np.ndarray
+    data: np.ndarray
+    shape: tuple[int, int]
+    format: str = "csr"
+
+    def __matmul__(self, x):
+        return sp.csr_matrix((self.data, self.indices, self.indptr), shape=self.shape) @ x
 
 
 def local_graph(adj_hat, col_ids: np.ndarray) -> LocalGraph:
@@ -120,10 +167,17 @@ def edge_keep_mask(seed: int, epoch: int, layer: int, heads: int, src_ids: np.nd
 
 
 def elu(z: np.ndarray) -> np.ndarray:
-    """ELU (Clevert et al. 2016, alpha 1): z for z > 0, exp(z) - 1 otherwise."""
-    return np.where(z > 0, z, np.expm1(np.minimum(z, 0)))
+    """ELU (Clevert et al. 2016, alpha 1): z for z > 0, exp(z) - 1 otherwise, as
+    max(z, 0) + expm1(min(z, 0)) (one of the two terms is 0)."""
+    out = np.maximum(z, 0)
+    neg = np.minimum(z, 0)
+    np.expm1(neg, out=neg)
+    out += neg
+    return out
 
 
 def elu_grad(z: np.ndarray) -> np.ndarray:
-    """d ELU / dz: 1 for z > 0, exp(z) otherwise."""
-    return np.where(z > 0, np.ones_like(z), np.exp(np.minimum(z, 0)))
+    """d ELU / dz: 1 for z > 0, exp(z) otherwise, i.e. exp(min(z, 0))."""
+    g = np.minimum(z, 0)
+    np.exp(g, out=g)
+    return g

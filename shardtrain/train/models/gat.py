@@ -23,7 +23,6 @@ they are local partial sums like every weight gradient.
 from __future__ import annotations
 
 import numpy as np
-import scipy.sparse as sp
 
 from shardtrain.train.models.common import edge_keep_mask, elu, elu_grad, params_like
 
@@ -48,20 +47,17 @@ def attention(t_loc: np.ndarray, t_own: np.ndarray, att_src: np.ndarray,
     LeakyReLU. t_loc (n_cols, K, d), t_own (n_rows, K, d)."""
     s_src = np.einsum("ckd,kd->ck", t_loc, att_src)
     s_dst = np.einsum("rkd,kd->rk", t_own, att_dst)
-    pre = s_src[local.indices] + s_dst[local.rows]
-    e = np.where(pre > 0, pre, SLOPE * pre)
+    counts = local.counts
+    pre = s_src[local.indices]
+    pre += np.repeat(s_dst, counts, axis=0)
+    e = np.maximum(pre, SLOPE * pre)          # LeakyReLU (slope < 1)
     if local.num_rows == 0:
         return e, pre
     starts = local.indptr[:-1]
-    e -= np.maximum.reduceat(e, starts, axis=0)[local.rows]
+    e -= np.repeat(np.maximum.reduceat(e, starts, axis=0), counts, axis=0)
     np.exp(e, out=e)
-    e /= np.add.reduceat(e, starts, axis=0)[local.rows]
+    e /= np.repeat(np.add.reduceat(e, starts, axis=0), counts, axis=0)
     return e, pre
-
-
-def _head_matrix(values: np.ndarray, local) -> sp.csr_matrix:
-    return sp.csr_matrix((values, local.indices, local.indptr),
-                         shape=(local.num_rows, local.num_cols))
 
 
 def forward(params, x, hops, propagate, drop, local=None):
@@ -80,7 +76,8 @@ def forward(params, x, hops, propagate, drop, local=None):
         coef = alpha if scale is None else alpha * scale.astype(alpha.dtype)
         z = np.empty((local.num_rows, k, d), dtype=t.dtype)
         for head in range(k):           # a loop over heads, not vertices
-            z[:, head, :] = _head_matrix(coef[:, head], local) @ t_loc[:, head, :]
+            z[:, head, :] = local.product(np.ascontiguousarray(coef[:, head]),
+                                          np.ascontiguousarray(t_loc[:, head, :]))
         z = z.reshape(local.num_rows, k * d)
         if b is not None:
             z += b
@@ -110,18 +107,22 @@ def backward(params, cache, dlogits, hops, propagate_t):
         dz3 = np.ascontiguousarray(dz).reshape(n_rows, k, d)
         dt_loc = np.empty_like(t_loc)
         dcoef = np.empty_like(alpha)
+        counts = local.counts
         for head in range(k):
             dz_h = np.ascontiguousarray(dz3[:, head, :])
             t_h = np.ascontiguousarray(t_loc[:, head, :])
-            dt_loc[:, head, :] = _head_matrix(coef[:, head], local).T @ dz_h
-            dcoef[:, head] = np.einsum("ed,ed->e", dz_h[local.rows], t_h[local.indices])
+            dt_loc[:, head, :] = local.product_t(np.ascontiguousarray(coef[:, head]), dz_h)
+            dcoef[:, head] = np.einsum("ed,ed->e", np.repeat(dz_h, counts, axis=0),
+                                       t_h[local.indices])
         dalpha = dcoef if c["scale"] is None else dcoef * c["scale"].astype(dcoef.dtype)
         weighted = alpha * dalpha
         if n_rows:
-            row_sums = np.add.reduceat(weighted, local.indptr[:-1], axis=0)[local.rows]
+            row_sums = np.repeat(np.add.reduceat(weighted, local.indptr[:-1], axis=0),
+                                 counts, axis=0)
         else:
             row_sums = weighted
-        de = weighted - alpha * row_sums
+        de = weighted
+        de -= alpha * row_sums
         dpre = np.where(c["pre"] > 0, de, SLOPE * de)
         ds_src = np.stack([np.bincount(local.indices, weights=dpre[:, head],
                                        minlength=local.num_cols) for head in range(k)],
