@@ -1,4 +1,7 @@
-"""GCN maths written out: Glorot init, dropout masks, forward, backward, loss, Adam.
+"""GCN maths written out: Glorot init, dropout masks, forward, backward, loss, Adam; and
+the parameters, initialisation, weight decay and dispatch of the other models of the
+family (`schedule.MODELS`: GraphSAGE, GIN, GAT), whose forward and backward live in
+`train/models/` and follow the same rules below.
 
 The model knows nothing of shards or transports. It multiplies by Â only through two
 functions it is handed:

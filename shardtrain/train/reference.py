@@ -1,6 +1,9 @@
-"""Single-process, full-graph GCN training: the oracle partitioned training must equal.
+"""Single-process, full-graph training of any model of the family (GCN, GraphSAGE, GIN,
+GAT): the oracle partitioned training must equal.
 
-No shards, no workers, no transport: propagate is Â @ M and the all-reduce is a no-op.
+No shards, no workers, no transport: propagate is Â @ M (the model's operator, derived
+from Â by `models.common.operator_matrix`; for GAT the rows themselves) and the
+all-reduce is a no-op.
 It calls the same `model.train_step` as the worker, with the same dropout keys (global
 vertex ids, epoch numbers 1..epochs), so the two differ only by the order of sums.
 
