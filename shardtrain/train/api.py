@@ -23,6 +23,8 @@ write and print its outputs. Nothing here prints.
 from __future__ import annotations
 
 import math
+import sys
+import time
 from contextlib import ExitStack, nullcontext
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -496,8 +498,18 @@ def mpi_rank_and_size() -> tuple[int, int]:
     return comm.Get_rank(), comm.Get_size()
 
 
+# The launcher forwards a rank's stderr on its own schedule and Abort ends the forwarder too.
+MPI_ABORT_GRACE_S = 0.5
+
+
 def abort_mpi_job(code: int) -> None:
-    """End every rank of the MPI job with exit status `code` (after reporting the error)."""
+    """End every rank of the MPI job with exit status `code` (after reporting the error).
+
+    The error line has been written and flushed; the pause lets the launcher pass it on
+    before the job is torn down (without it the line was sometimes lost).
+    """
     from shardtrain.train import mpi_driver
 
+    sys.stderr.flush()
+    time.sleep(MPI_ABORT_GRACE_S)
     mpi_driver.abort_job(mpi_driver.world(), code)
