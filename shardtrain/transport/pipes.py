@@ -163,7 +163,8 @@ class _Recv:
 class _Reader:
     """Progress thread: the frame being read from one peer (prefix, header, then the payload
     into the matched receive `target`)."""
-    __slots__ = ("peer", "fd", "prefix", "header", "stage", "got", "need", "target", "last")
+    __slots__ = ("peer", "fd", "prefix", "header", "stage", "got", "need", "target", "last",
+                 "parsed")
 
     def __init__(self, peer: int, fd: int):
         self.peer, self.fd = peer, fd
@@ -176,6 +177,7 @@ class _Reader:
         self.header: bytearray | None = None
         self.stage, self.got, self.need = 0, 0, frames.PREFIX_BYTES
         self.target = None
+        self.parsed: dict | None = None     # a header read and not matched yet (parked)
 
 
 class _Op:
@@ -250,6 +252,7 @@ class PipeTransport:
         self._stop = False
         self._failure: BaseException | None = None
         self._ops: list[_Op] = []                      # outstanding: not yet waited for
+        self._waiting: _Op | None = None               # the op the caller is blocked on
         self._outq: dict[int, deque[_Send]] = {q: deque() for q in self._send_fd}
         self._posted: dict[int, list[_Recv]] = {q: [] for q in self._recv_fd}
         self._readers = {q: _Reader(q, fd) for q, fd in self._recv_fd.items()}
@@ -354,6 +357,10 @@ class PipeTransport:
     def _finish(self, op: _Op, *, started: bool = True) -> None:
         """The caller's side of `wait()`: block, count, report the time, raise."""
         t0 = time.perf_counter()
+        if not op.event.is_set():
+            with self._mu:
+                self._waiting = op
+            self._wake()                    # a parked frame may now be judged (see _match)
         while not op.event.wait(0.5):
             thread = self._thread
             if thread is None or not thread.is_alive():     # cannot happen: belt and braces
@@ -365,6 +372,7 @@ class PipeTransport:
                         op.event.set()
         t1 = time.perf_counter()
         with self._mu:
+            self._waiting = None
             if op in self._ops:
                 self._ops.remove(op)
         for src, dst, payload, framing in op.counts:
@@ -431,6 +439,11 @@ class PipeTransport:
                 wanted.append((s.fd, _OUT))
                 by_fd[s.fd] = s
             for q, rd in self._readers.items():
+                if rd.parsed is not None:
+                    if not self._match(rd):
+                        continue                # waits for this rank, not for the peer
+                    if rd.target is None:       # an empty payload: done already
+                        continue
                 if rd.target is None and not self._posted[q]:
                     rd.last = None
                     continue
@@ -482,7 +495,7 @@ class PipeTransport:
     def _read_posted(self, rd: _Reader, now: float) -> None:
         """Read frames from rd.peer while receives from it are posted (progress thread)."""
         posted = self._posted[rd.peer]
-        while rd.target is not None or posted:
+        while rd.parsed is None and (rd.target is not None or posted):
             if rd.stage == 0:
                 view = memoryview(rd.prefix)[rd.got:]
             elif rd.stage == 1:
@@ -508,23 +521,50 @@ class PipeTransport:
                 continue
             if rd.stage == 1:
                 assert rd.header is not None
-                header = frames.decode_header(rd.header, peer=rd.peer,
-                                              max_frame_bytes=self.max_frame_bytes)
-                key = tuple(header[k] for k in _KEY)
-                match = next((r for r in posted
-                              if r.op is not None and r.op.key == key), posted[0])
-                assert match.op is not None
-                frames.check_expected(header, peer=rd.peer, dtype=match.dest.dtype,
-                                      shape=match.dest.shape, **match.op.meta)
-                posted.remove(match)
-                match.framing = frames.PREFIX_BYTES + rd.need
-                rd.target, rd.stage, rd.got, rd.need = match, 2, 0, header["nbytes"]
+                rd.parsed = frames.decode_header(rd.header, peer=rd.peer,
+                                                 max_frame_bytes=self.max_frame_bytes)
+                if not self._match(rd):
+                    return                  # parked until its receive is posted
                 if rd.need:
                     continue
-            r = rd.target
-            assert r is not None and r.op is not None
-            rd.reset()
-            self._part_done(r.op, rd.peer, self.rank, r.dest.nbytes, r.framing)
+            self._complete_read(rd)
+
+    def _match(self, rd: _Reader) -> bool:
+        """Give the parked header of rd.peer's next frame the posted receive of its key.
+
+        None posted: it stays parked (its exchange may not have been started yet) unless
+        the caller is blocked waiting for a receive from that peer: then no receive can be
+        posted before that one, which can never arrive behind this frame, and the frame is
+        checked against it (a FrameError saying what was expected)."""
+        header = rd.parsed
+        assert header is not None
+        key = tuple(header[k] for k in _KEY)
+        posted = self._posted[rd.peer]
+        match = next((r for r in posted if r.op is not None and r.op.key == key), None)
+        if match is None:
+            waiting = self._waiting
+            blocked = [r for r in (waiting.recvs if waiting is not None else ())
+                       if r.peer == rd.peer and r in posted]
+            if not blocked:
+                return False
+            match = blocked[0]
+        assert match.op is not None
+        frames.check_expected(header, peer=rd.peer, dtype=match.dest.dtype,
+                              shape=match.dest.shape, **match.op.meta)
+        posted.remove(match)
+        match.framing = frames.PREFIX_BYTES + rd.need
+        rd.parsed = None
+        rd.target, rd.stage, rd.got, rd.need = match, 2, 0, header["nbytes"]
+        rd.last = time.perf_counter()
+        if not rd.need:
+            self._complete_read(rd)
+        return True
+
+    def _complete_read(self, rd: _Reader) -> None:
+        r = rd.target
+        assert r is not None and r.op is not None
+        rd.reset()
+        self._part_done(r.op, rd.peer, self.rank, r.dest.nbytes, r.framing)
 
     def _eof_reader(self, rd: _Reader, meta: dict) -> RunError:
         what = frames.describe(meta)
