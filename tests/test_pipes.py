@@ -344,3 +344,36 @@ def test_a_wrong_frame_for_a_started_exchange_is_named_by_wait():
         t.exchange({}, {1: np.empty(4)}, kind="halo", epoch=7, layer=1, direction="forward")
     ends[1].close()
     t.close()
+
+
+def test_debug_check_names_an_outgoing_array_modified_before_wait(monkeypatch):
+    from shardtrain.transport import wire
+    monkeypatch.setattr(wire, "CHECK_OUTGOING", True)
+    ts = _threads()
+    out = np.zeros(300_000)
+    got = {}
+
+    def fn(r, t):
+        if r == 0:
+            h = t.exchange_start({1: out}, {}, kind="halo", epoch=0, layer=0,
+                                 direction="forward")
+            out[-1] = 1.0                    # the caller breaks the promise
+            try:
+                h.wait()
+                got["error"] = None
+            except RunError as exc:
+                got["error"] = str(exc)
+            kept = np.zeros(4)                # and keeps it: no error
+            t.exchange_start({1: kept}, {}, kind="halo", epoch=1, layer=0,
+                             direction="forward").wait()
+        else:
+            t.exchange({}, {0: np.empty_like(out)}, kind="halo", epoch=0, layer=0,
+                       direction="forward")
+            t.exchange({}, {0: np.empty(4)}, kind="halo", epoch=1, layer=0,
+                       direction="forward")
+    _both(ts, fn)
+    assert got["error"] == ("the outgoing array to worker 1 was modified before wait() "
+                            "returned (halo forward, layer 0, epoch 0): a started exchange "
+                            "sends it in place")
+    for t in ts:
+        t.close()

@@ -65,6 +65,7 @@ from shardtrain.transport.wire import (
     check_frame_size,
     check_receive_buffer,
     name_workers,
+    outgoing_guard,
     wire_array,
 )
 
@@ -101,6 +102,7 @@ class MpiHandle:
     def __init__(self, transport: MpiTransport, op: _MpiOp):
         self._transport, self._op = transport, op
         self._waited = False
+        self._guard = outgoing_guard({q: a for q, a, _h in op.prepared}, op.meta)
 
     def done(self) -> bool:
         """One test of the requests (this also lets MPI move the data)."""
@@ -111,7 +113,10 @@ class MpiHandle:
         if self._waited:
             return
         self._waited = True
+        guard, self._guard = self._guard, None
         self._transport._complete(self._op, started=True)
+        if guard is not None:
+            guard()
 
 
 class MpiTransport:

@@ -76,6 +76,7 @@ from shardtrain.transport.wire import (
     check_frame_size,
     check_receive_buffer,
     name_workers,
+    outgoing_guard,
     wire_array,
 )
 
@@ -145,6 +146,11 @@ class _Send:
         self.held = False
 
 
+def _array_of(s: _Send) -> np.ndarray:
+    """The bytes of a send's payload, as an array (for the outgoing debug check)."""
+    return np.frombuffer(s.views[1], dtype=np.uint8)
+
+
 class _Recv:
     __slots__ = ("peer", "fd", "dest", "prefix", "header", "stage", "got", "need", "framing",
                  "op")
@@ -208,9 +214,10 @@ class _Op:
 class PipeHandle:
     """A started exchange of a `PipeTransport` (see `base.ExchangeHandle`)."""
 
-    def __init__(self, transport: PipeTransport, op: _Op):
+    def __init__(self, transport: PipeTransport, op: _Op, guard=None):
         self._transport, self._op = transport, op
         self._waited = False
+        self._guard = guard                 # wire.outgoing_guard (debug check) or None
 
     def done(self) -> bool:
         """True when `wait()` would return (or raise) at once."""
@@ -222,6 +229,8 @@ class PipeHandle:
             return
         self._waited = True
         self._transport._finish(self._op)
+        if self._guard is not None:
+            self._guard()
 
 
 class PipeTransport:
@@ -278,7 +287,8 @@ class PipeTransport:
         if any(op.key == key for op in self._ops):
             raise ValueError(f"worker {self.rank} already has an exchange "
                              f"({frames.describe(meta)}) outstanding")
-        return PipeHandle(self, self._post(sends, recvs, meta))
+        guard = outgoing_guard({s.peer: _array_of(s) for s in sends}, meta)
+        return PipeHandle(self, self._post(sends, recvs, meta), guard)
 
     def allreduce_sum(self, buf: np.ndarray, *, epoch: int) -> None:
         """Sum the 1-D contiguous `buf` over all workers in place (ring all-reduce)."""
