@@ -254,10 +254,9 @@ def overlapped(t, rank, k, hold) -> dict:
     is_handle = isinstance(h_a, ExchangeHandle) and isinstance(h_b, ExchangeHandle)
     h_b.wait()
     h_a.wait()
-    ok["two outstanding"] = is_handle and all(np.array_equal(inc_a[q], _payload(q, rank, e, np.float32))
-                                and np.array_equal(inc_b[q], _payload(rank, q, e + 1,
-                                                                      np.float64))
-                                for q in peers)
+    ok["two outstanding"] = is_handle and all(
+        np.array_equal(inc_a[q], _payload(q, rank, e, np.float32))
+        and np.array_equal(inc_b[q], _payload(rank, q, e + 1, np.float64)) for q in peers)
     ok["blocking between"] = all(np.all(inc_c[q] == 10.0 * q) for q in peers)
     ok["allreduce between"] = bool(np.all(buf == k * (k + 1) / 2))
 
