@@ -9,6 +9,13 @@ measured run):
       t_start + latency_us * 1e-6 + 8 * (bytes of frames 0..i) / (gbps * 1e9)
   where t_start is when the call began. The sender holds back the frame's last byte until
   then (it sleeps the difference; if the real pipe was slower, nothing is added).
+- Calls that overlap (a started exchange, `exchange_start`, still sending when the next call
+  begins) share the one interface: a call's frames queue behind the frames of the calls
+  before it, so t_start is the later of the call's start and the moment the interface has
+  serialised every earlier frame (`Interface.schedule`). The sender holds a started
+  exchange's last bytes back in the transport's progress thread, so the emulated transfer
+  runs while the caller computes. For calls one after the other (every call blocking) this
+  is the rule above unchanged.
 - Not emulated: contention at the receiver (several senders into one interface), switch
   queues, packet loss, or any cost of the pipe itself beyond the max() above.
 - Profile: the sender's held-back time counts in its "exchange"/"allreduce" phase (it is
@@ -48,6 +55,21 @@ class LinkModel:
             sent += n
             due.append(start + self.latency_us * 1e-6 + self.seconds(sent))
         return due
+
+
+class Interface:
+    """One worker's emulated interface: the due times of each call's frames, the calls'
+    frames queued one after the other (see the module docstring)."""
+
+    def __init__(self, model: LinkModel):
+        self.model = model
+        self.free_at = 0.0        # when the interface has serialised every frame so far
+
+    def schedule(self, start: float, frame_bytes: list[int]) -> list[float]:
+        """Due times of a call's frames (back to back from max(start, free_at))."""
+        begin = max(start, self.free_at)
+        self.free_at = begin + self.model.seconds(sum(frame_bytes))
+        return self.model.due_times(begin, frame_bytes)
 
 
 _NUMBER = r"(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][-+]?\d+)?"
