@@ -417,7 +417,9 @@ CALIBRATION = Obj(required={
 _SETTINGS = Obj(required={"seed": Int()},
                 optional={"layers": Int(min=1), "hidden": Int(min=1),
                           "dropout": Num(min=0, max=1), "lr": Num(min=0),
-                          "weight_decay": Num(min=0), "dtype": DTYPE, "bias": Bool()})
+                          "weight_decay": Num(min=0), "dtype": DTYPE, "bias": Bool(),
+                          "halo_keep": Num(min=0, max=1),
+                          "halo_format": Str(nullable=True, max_len=16)})
 CHECKPOINT = Obj(required={
     "format": Str(choices=("shardtrain-checkpoint",)), "version": Int(),
     "epoch": Int(min=1, max=1 << 40),
