@@ -40,6 +40,7 @@ FLAGS = {
     # outputs and folders
     "plot": "--plot", "out": "--out", "overwrite": "--overwrite",
     "checkpoint": "--checkpoint", "resume": "--resume", "reference": "--reference",
+    "single_process": "--single-process",
     "emulate_link": "--emulate-link",
 }
 
