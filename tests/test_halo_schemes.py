@@ -231,3 +231,38 @@ def test_every_scheme_still_beats_the_edgeless_model_on_digits():
         print(f"digits, keep {keep}, format {fmt}: GCN {acc:.3f}, edgeless {mlp:.3f}")
         # margin of 0.05 as in tests/test_model_accuracy.py (common practice)
         assert acc >= mlp + 0.05, (keep, fmt)
+
+
+# ---------------------------------------------------------------- over MPI
+
+@pytest.mark.mpi
+def test_mpi_run_under_both_schemes_equals_the_single_process_formulation(tmp_path, graph):
+    import json
+
+    from helpers import launch_mpi, mpiexec
+
+    from shardtrain.plan.shards import build_shards, save_shards
+
+    mpiexec()
+    k, s = 3, settings(0.3, "int8")
+    a = assignment(graph, k, "random")
+    shard_dir = tmp_path / "shards"
+    save_shards(shard_dir, build_shards(graph, a, k),
+                meta={"method": "random", "seed": 0, "num_classes": graph.num_classes,
+                      "input_dim": graph.input_dim})
+    out = tmp_path / "run.json"
+    args = ["--layers", "3", "--hidden", "16", "--dropout", "0.5", "--epochs", "3", "--seed",
+            "7", "--dtype", "float64", "--bias", "--halo-keep", "0.3", "--halo-format", "int8"]
+    proc, _ = launch_mpi(k, ["-m", "shardtrain", "train", str(shard_dir), "--transport", "mpi",
+                             *args, "--quiet", "--json", str(out)])
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    doc = json.loads(out.read_text())
+    single = train_single_process(graph, s, a)
+    got = [e["loss"] for e in doc["epochs"]]
+    assert np.allclose(got, [e["loss"] for e in single.epochs], rtol=RTOL, atol=0)
+    t = doc["traffic"]
+    assert t["measured_payload_bytes"] == t["predicted_payload_bytes"] > 0
+    assert t["breakdown_matches"] and t["sender_receiver_consistent"]
+    (tmp_path / "pipes").mkdir()
+    pipes, _ = run_partitioned(tmp_path / "pipes", graph, a, k, s)
+    assert t["breakdown"] == json.loads(json.dumps(pipes.traffic["breakdown"]))
