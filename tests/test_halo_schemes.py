@@ -266,3 +266,35 @@ def test_mpi_run_under_both_schemes_equals_the_single_process_formulation(tmp_pa
     (tmp_path / "pipes").mkdir()
     pipes, _ = run_partitioned(tmp_path / "pipes", graph, a, k, s)
     assert t["breakdown"] == json.loads(json.dumps(pipes.traffic["breakdown"]))
+
+
+# ---------------------------------------------------------------- the survey's prediction
+
+@pytest.mark.parametrize("keep, fmt", [(0.3, None), (1.0, "int8"), (0.3, "bfloat16")])
+def test_survey_predicts_the_trained_runs_payload_byte_for_byte(graph, keep, fmt):
+    # source of truth: the trained run's byte counters (transport/meter.py), against a
+    # survey that starts no process and replays the keep choices of seed 7, 3 epochs
+    from shardtrain.plan.survey import SurveySettings, predict_run_payload, survey
+    from shardtrain.train.api import RunConfig, run
+
+    s = settings(keep, fmt)
+    doc = survey(graph, ["metis"], [3], SurveySettings(
+        layers=3, hidden=16, dtype="float64", bias=True, seed=7, epochs=3, halo_keep=keep,
+        halo_format=fmt))
+    plan = doc["plans"][0]
+    trained = run(RunConfig(source="depots", graph=graph, settings=s, workers=3,
+                            method="metis"), signals=False)
+    assert trained is not None
+    t = trained.result.traffic
+    assert predict_run_payload(plan["traffic"], 3, 3) == t["measured_payload_bytes"]
+    scheme = plan["traffic"]["halo_scheme"]
+    halo = [r for r in t["breakdown"] if r["kind"] == "halo" and r["direction"] != "eval"]
+    assert scheme["training_halo_bytes"] == sum(r["measured_payload_bytes"] for r in halo)
+    # the expectation per epoch, by hand from the exact float64 survey: P x rows x the
+    # wire bytes of a row (int8: w + 4, bfloat16: 2 w, float64: 8 w)
+    exact = survey(graph, ["metis"], [3], SurveySettings(
+        layers=3, hidden=16, dtype="float64", bias=True, seed=7))["plans"][0]["traffic"]
+    row = {"int8": lambda w: w + 4, "bfloat16": lambda w: 2 * w, None: lambda w: 8 * w}[fmt]
+    want = keep * sum(lay["forward_bytes"] / (8 * lay["forward_width"]) *
+                      row(lay["forward_width"]) for lay in exact["per_layer"])
+    assert scheme["expected_forward_bytes"] == pytest.approx(want, rel=1e-6)

@@ -234,3 +234,25 @@ def expected_epoch_halo_bytes(halo_rows: np.ndarray, hops: list[LayerHop], dtype
     fwd = sum(rows * scheme.row_bytes(h.forward_width, dtype) for h in hops)
     bwd = sum(rows * scheme.row_bytes(h.backward_width, dtype) for h in hops)
     return {"forward_bytes": p * fwd, "backward_bytes": p * bwd}
+
+
+def plan_scheme_traffic(halos: list[np.ndarray], halo_ptrs: list, hops: list[LayerHop], dtype,
+                        scheme: HaloScheme, *, seed: int, epochs: int) -> dict:
+    """What a survey plan records of a scheme: the halo payload of every training epoch
+    1..`epochs` for `seed` (the replay of the keep choices: what the trainer will measure),
+    their sum, and the per-epoch expectation (`expected_epoch_halo_bytes`)."""
+    kept = kept_halo_rows(halos, halo_ptrs, scheme, seed, range(1, epochs + 1))
+    per_epoch_rows = kept.sum(axis=(1, 2))                      # (epochs,)
+    fwd_row = sum(scheme.row_bytes(h.forward_width, dtype) for h in hops)
+    bwd_row = sum(scheme.row_bytes(h.backward_width, dtype) for h in hops)
+    halo_rows = np.stack([np.diff(np.asarray(p, dtype=np.int64)) for p in halo_ptrs])
+    expected = expected_epoch_halo_bytes(halo_rows, hops, dtype, scheme)
+    forward = (per_epoch_rows * fwd_row).astype(np.int64)
+    backward = (per_epoch_rows * bwd_row).astype(np.int64)
+    return {**scheme.to_dict(), "seed": int(seed), "epochs": int(epochs),
+            "kept_fraction": keep_threshold(scheme.keep) / KEEP_ONE,
+            "expected_forward_bytes": float(expected["forward_bytes"]),
+            "expected_backward_bytes": float(expected["backward_bytes"]),
+            "forward_bytes_per_epoch": forward.tolist(),
+            "backward_bytes_per_epoch": backward.tolist(),
+            "training_halo_bytes": int(forward.sum() + backward.sum())}
