@@ -187,18 +187,25 @@ def test_scheme_products_are_block_structured_by_worker(graph):
 
 # ---------------------------------------------------------------- refused at the door
 
-@pytest.mark.parametrize("args, needle", [
-    (["--halo-keep", "0"], "--halo-keep"), (["--halo-keep", "1.5"], "--halo-keep"),
-    (["--halo-keep", "nan"], "--halo-keep"), (["--halo-format", "int4"], "--halo-format")])
-def test_bad_scheme_values_are_refused_with_one_line(tmp_path, graph, args, needle):
+@pytest.mark.parametrize("command, args, needle", [
+    ("train", ["--halo-keep", "0"], "--halo-keep"),
+    ("train", ["--halo-keep", "1.5"], "--halo-keep"),
+    ("train", ["--halo-keep", "nan"], "--halo-keep"),
+    ("train", ["--halo-format", "int4"], "--halo-format"),
+    ("sweep", ["--halo-keep", "1,0"], "--halo-keep"),
+    ("sweep", ["--halo-format", "int8,int4"], "--halo-format"),
+    ("survey", ["--halo-keep", "1.5"], "--halo-keep"),
+    ("forecast", ["--halo-format", "int4"], "--halo-format")])
+def test_bad_scheme_values_are_refused_with_one_line(tmp_path, graph, command, args, needle):
     import subprocess
     import sys
 
     from helpers import save_graph
     path = tmp_path / "g.npz"
     save_graph(path, graph)
-    proc = subprocess.run([sys.executable, "-m", "shardtrain", "train", str(path), "--workers",
-                           "2", "--method", "random", "--epochs", "1", *args],
+    proc = subprocess.run([sys.executable, "-m", "shardtrain", command, str(path), "--workers",
+                           "2", "--method", "random", *args] +
+                          (["--epochs", "1"] if command != "forecast" else []),
                           capture_output=True, text=True, timeout=60)
     assert proc.returncode == 2
     lines = proc.stderr.strip().splitlines()
@@ -298,3 +305,43 @@ def test_survey_predicts_the_trained_runs_payload_byte_for_byte(graph, keep, fmt
     want = keep * sum(lay["forward_bytes"] / (8 * lay["forward_width"]) *
                       row(lay["forward_width"]) for lay in exact["per_layer"])
     assert scheme["expected_forward_bytes"] == pytest.approx(want, rel=1e-6)
+
+
+# ---------------------------------------------------------------- the sweep
+
+@pytest.mark.slow
+def test_sweep_trains_every_combination_and_prices_it_against_the_exact_run(tmp_path, graph):
+    import json
+    import subprocess
+    import sys
+
+    from helpers import save_graph
+
+    from shardtrain.plan.survey import SurveySettings, survey
+
+    path = tmp_path / "g.npz"
+    save_graph(path, graph)
+    out, plots = tmp_path / "sweep.json", tmp_path / "plots"
+    proc = subprocess.run([sys.executable, "-m", "shardtrain", "sweep", str(path), "--workers",
+                           "3", "--method", "metis", "--halo-keep", "1,0.3", "--halo-format",
+                           "float32,int8", "--epochs", "3", "--seed", "7", "--layers", "3",
+                           "--json", str(out), "--plot", str(plots), "--quiet"],
+                          capture_output=True, text=True, timeout=300)
+    assert proc.returncode == 0, proc.stderr[-2000:]
+    doc = json.loads(out.read_text())
+    schemes_run = [(r["scheme"]["halo_keep"], r["scheme"]["halo_format"]) for r in doc["rows"]]
+    # float32 is the training dtype: the same run as the exact one, trained once, first
+    assert schemes_run == [(1.0, None), (1.0, "int8"), (0.3, None), (0.3, "int8")]
+    assert all(r["payload_equals_prediction"] for r in doc["rows"])
+    assert doc["rows"][0]["halo_payload_ratio"] == 1.0
+    # each row's halo payload is the survey's replay of its scheme (seed 7, 3 epochs)
+    for r in doc["rows"][1:]:
+        plan = survey(graph, ["metis"], [3], SurveySettings(
+            layers=3, seed=7, epochs=3, halo_keep=r["scheme"]["halo_keep"],
+            halo_format=r["scheme"]["halo_format"]))["plans"][0]
+        assert r["halo_payload_per_epoch"] * 3 == plan["traffic"]["halo_scheme"][
+            "training_halo_bytes"]
+        assert r["halo_payload_ratio"] < 1
+    assert sorted(p.name for p in plots.iterdir()) == ["sweep_accuracy.png",
+                                                        "sweep_epoch_time.png"]
+    assert "keep 0.3, int8" in proc.stdout
