@@ -345,3 +345,13 @@ def test_sweep_trains_every_combination_and_prices_it_against_the_exact_run(tmp_
     assert sorted(p.name for p in plots.iterdir()) == ["sweep_accuracy.png",
                                                         "sweep_epoch_time.png"]
     assert "keep 0.3, int8" in proc.stdout
+
+
+def test_the_reference_refuses_a_scheme_it_would_not_apply(graph):
+    from shardtrain.errors import ParameterError
+    from shardtrain.train.api import RunConfig, check_config
+
+    with pytest.raises(ParameterError) as err:
+        check_config(RunConfig(source="depots", graph=graph, mode="reference",
+                               settings=settings(0.5)))
+    assert err.value.param == "halo_keep"

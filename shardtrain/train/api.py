@@ -160,6 +160,11 @@ def check_config(config: RunConfig, transport: str = defaults.TRANSPORT) -> bool
     settings = config.settings.validate()
     if config.single_process:
         _check_single_process(config, transport)
+    if config.reference and not settings.scheme.exact(settings.np_dtype):
+        name = "halo_keep" if settings.scheme.sampled else "halo_format"
+        raise ParameterError(name, f"not available with {option('reference')} (no halo; "
+                                   f"{option('single_process')} with {option('workers')} "
+                                   f"computes a scheme's run in one process)")
     for name, top, why in LIMITS:
         value = getattr(settings if name == "epochs" else config, name)
         if value is not None and value > top:
