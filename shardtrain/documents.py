@@ -43,7 +43,7 @@ MAX_COUNT = 1 << 62            # vertices, edges, bytes: below int64's range
 MAX_LIST = 1 << 24             # items in one list (epochs, plans, shards ...)
 MAX_BYTES: dict[str | None, int] = {      # looked up by kind, which may be None
     "checkpoint": 16 << 20, "calibration": 16 << 20, "survey": 1 << 30,
-    "run": 1 << 30, "forecast": 1 << 30}
+    "run": 1 << 30, "forecast": 1 << 30, "sweep": 1 << 30}
 DEFAULT_MAX_BYTES = 256 << 20
 
 
@@ -494,7 +494,19 @@ MANIFEST = Steps((
     Obj(optional={"meta": Obj(says="an object")}),
 ))
 
+_RATIO = Num(min=0, nullable=True)
+SWEEP_ROW = Obj(required={"scheme": Obj(), "halo_payload_per_epoch": Num(min=0)},
+                optional={"halo_payload_ratio": _RATIO, "epoch_s": SECONDS_OR_NULL,
+                          "epoch_s_ratio": _RATIO, "final_test_acc": FRACTION_OR_NULL,
+                          "test_acc_at_best_val": FRACTION_OR_NULL,
+                          "final_test_acc_points": Num(nullable=True),
+                          "test_acc_at_best_val_points": Num(nullable=True),
+                          "best_val_epoch": Int(min=1), "payload_equals_prediction": Bool()})
+SWEEP = Obj(required={"kind": Str(choices=("sweep",)), "rows": List(SWEEP_ROW, min_len=1)},
+            optional={"graph": GRAPH_FACTS, "workers": Int(min=1, nullable=True),
+                      "epochs": Int(min=1), "method": Str(max_len=256)})
 SHAPES = {"checkpoint": CHECKPOINT, "survey": SURVEY, "run": RUN, "forecast": FORECAST,
+          "sweep": SWEEP,
           "calibration": CALIBRATION, "manifest": MANIFEST}
 
 

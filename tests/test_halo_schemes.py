@@ -345,6 +345,14 @@ def test_sweep_trains_every_combination_and_prices_it_against_the_exact_run(tmp_
     assert sorted(p.name for p in plots.iterdir()) == ["sweep_accuracy.png",
                                                         "sweep_epoch_time.png"]
     assert "keep 0.3, int8" in proc.stdout
+    # the report page shows the sweep: its table and its two pictures
+    page = tmp_path / "page.html"
+    rep = subprocess.run([sys.executable, "-m", "shardtrain", "report", str(out), "--html",
+                          str(page)], capture_output=True, text=True, timeout=120)
+    assert rep.returncode == 0, rep.stderr
+    html = page.read_text()
+    assert "Halo schemes compared" in html and html.count("<img") == 2
+    assert "keep 0.3, int8" in html
 
 
 def test_the_reference_refuses_a_scheme_it_would_not_apply(graph):

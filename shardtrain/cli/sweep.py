@@ -149,7 +149,6 @@ def run(args) -> int:
                   f"{row['final_test_acc']:.3f}", file=sys.stderr, flush=True)
 
     doc = sweep(config, axes, on_run=line)
-    doc["graph"] = str(args.graph)
     doc["method"] = args.method or "assignment"
     if args.emulate_link is not None:
         doc["emulated_link"] = args.emulate_link

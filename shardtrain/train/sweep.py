@@ -57,6 +57,7 @@ def sweep(config, axes: dict[str, list], *, transport: str = defaults.TRANSPORT,
     base = config.settings
     seen: list[dict] = []
     rows: list[dict] = []
+    graph: dict = {}
     for combo in combinations(axes):
         settings = replace(base, **combo).validate()
         key = _normal(combo, settings.dtype)
@@ -65,6 +66,7 @@ def sweep(config, axes: dict[str, list], *, transport: str = defaults.TRANSPORT,
         seen.append(key)
         outcome = run(replace(config, settings=settings), transport=transport, signals=False)
         assert outcome is not None          # pipes: the one process gets the outcome
+        graph = graph or dict(outcome.document["graph"])
         row = run_row(combo, outcome.result)
         if rows:
             add_ratios(row, rows[0])
@@ -73,9 +75,9 @@ def sweep(config, axes: dict[str, list], *, transport: str = defaults.TRANSPORT,
         rows.append(row)
         if on_run is not None:
             on_run(row)
-    return {"format": "shardtrain-sweep", "version": 1, "axes": {k: list(v) for k, v in
-                                                                   axes.items()},
-            "workers": rows and rows[0]["workers"], "epochs": base.epochs,
+    return {"kind": "sweep", "format": "shardtrain-sweep", "version": 1,
+            "axes": {k: list(v) for k, v in axes.items()}, "graph": graph,
+            "workers": rows[0]["workers"] if rows else None, "epochs": base.epochs,
             "settings": base.to_dict(), "rows": rows}
 
 
