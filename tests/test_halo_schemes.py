@@ -363,3 +363,29 @@ def test_the_reference_refuses_a_scheme_it_would_not_apply(graph):
         check_config(RunConfig(source="depots", graph=graph, mode="reference",
                                settings=settings(0.5)))
     assert err.value.param == "halo_keep"
+
+
+# ---------------------------------------------------------------- resume
+
+def test_a_resumed_scheme_run_ends_on_the_uninterrupted_runs_bits(tmp_path, graph):
+    # the keep choices and rounding noise are keyed by the epoch, so epochs 3..4 after a
+    # checkpoint at 2 draw what the uninterrupted run drew (and the resume refuses a
+    # checkpoint written under another scheme)
+    from helpers import save_graph
+
+    from shardtrain.cli import main
+
+    save_graph(tmp_path / "g.npz", graph)
+    common = ["train", str(tmp_path / "g.npz"), "--workers", "3", "--method", "random",
+              "--dtype", "float64", "--seed", "5", "--quiet", "--halo-keep", "0.3",
+              "--halo-format", "int8"]
+    assert main([*common, "--epochs", "4", "--weights", str(tmp_path / "full.npz")]) == 0
+    assert main([*common, "--epochs", "2", "--checkpoint", str(tmp_path / "ck")]) == 0
+    assert main([*common, "--epochs", "4", "--resume", str(tmp_path / "ck"), "--weights",
+                 str(tmp_path / "resumed.npz")]) == 0
+    with np.load(tmp_path / "full.npz") as a, np.load(tmp_path / "resumed.npz") as b:
+        assert sorted(a.files) == sorted(b.files)
+        for name in a.files:
+            np.testing.assert_array_equal(a[name], b[name])
+    other = [a if a != "0.3" else "0.5" for a in common]
+    assert main([*other, "--epochs", "4", "--resume", str(tmp_path / "ck")]) == 2

@@ -18,6 +18,14 @@ column of Â_halo is scaled by 1/P (`keep_scale`), a dropped one is zero: Ã_hal
 Without a format R_f and R_b are the identity, and the products are Ã(e) = Â_own + Ã_halo(e)
 collapsed, and its transpose. The evaluation forward is Â itself (exact).
 With every scheme off Ã = Â and R = identity: the run is the reference's.
+
+Equality with the workers (float64, relative 1e-9, docs/design.md §1.7): the sums run in
+another order, so the rows a codec receives differ from the workers' in the last bits; the
+codecs are step functions, so a row lying within that rounding of a step (a float32 or
+float16 rounding boundary, an int8 level, its float32 scale's rounding) could round the
+other way. For float64 rows that happens with a probability of about 2^-52 relative to
+the step, per entry (the scale: about 2^-28 per row, and then it moves the row by one
+float32 ulp only); the tests' runs never meet one.
 """
 from __future__ import annotations
 
