@@ -32,6 +32,9 @@ def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--out", required=True, help="JSON file of the results")
     ap.add_argument("--vertices", type=int, default=defaults.DEMO_VERTICES)
+    ap.add_argument("--avg-degree", type=float, default=defaults.SYNTH_AVG_DEGREE)
+    ap.add_argument("--features", type=int, default=defaults.SYNTH_FEATURES)
+    ap.add_argument("--hidden", type=int, default=defaults.HIDDEN)
     ap.add_argument("--workers", type=int, default=4)
     ap.add_argument("--method", default="metis")
     ap.add_argument("--epochs", type=int, default=defaults.DEMO_EPOCHS)
@@ -45,10 +48,11 @@ def main(argv=None) -> int:
     t0 = time.perf_counter()
     per_seed = []
     for seed in seeds:
-        graph = parcel_network(args.vertices, defaults.SYNTH_AVG_DEGREE, defaults.SYNTH_CLASSES,
-                               defaults.SYNTH_FEATURES, seed)
+        graph = parcel_network(args.vertices, args.avg_degree, defaults.SYNTH_CLASSES,
+                               args.features, seed)
         config = RunConfig(source=f"parcel network {args.vertices} (seed {seed})", graph=graph,
-                           settings=TrainSettings(epochs=args.epochs, seed=seed),
+                           settings=TrainSettings(epochs=args.epochs, seed=seed,
+                                                  hidden=args.hidden),
                            workers=args.workers, method=args.method)
         doc = sweep(config, axes, on_run=lambda r: print(r["scheme"], r["halo_payload_ratio"],
                                                          r["final_test_acc"], file=sys.stderr))
@@ -72,7 +76,9 @@ def main(argv=None) -> int:
     result = {"benchmark": "halo schemes on the demo parcel network",
               "command": "python benchmarks/bench_schemes.py " + " ".join(
                   sys.argv[1:] if argv is None else argv),
-              "vertices": args.vertices, "workers": args.workers, "method": args.method,
+              "vertices": args.vertices, "avg_degree": args.avg_degree,
+              "features": args.features, "hidden": args.hidden, "workers": args.workers,
+              "method": args.method,
               "epochs": args.epochs, "seeds": seeds, "rows": rows, "per_seed": per_seed,
               "wall_s": time.perf_counter() - t0, "load_average": os.getloadavg(),
               "cores": os.cpu_count()}
