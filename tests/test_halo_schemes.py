@@ -297,6 +297,9 @@ def test_survey_predicts_the_trained_runs_payload_byte_for_byte(graph, keep, fmt
     scheme = plan["traffic"]["halo_scheme"]
     halo = [r for r in t["breakdown"] if r["kind"] == "halo" and r["direction"] != "eval"]
     assert scheme["training_halo_bytes"] == sum(r["measured_payload_bytes"] for r in halo)
+    run_expected = t["predicted_per_epoch"]["halo_scheme"]
+    for key in ("expected_forward_bytes", "expected_backward_bytes"):
+        assert run_expected[key] == pytest.approx(scheme[key], rel=1e-12)
     # the expectation per epoch, by hand from the exact float64 survey: P x rows x the
     # wire bytes of a row (int8: w + 4, bfloat16: 2 w, float64: 8 w)
     exact = survey(graph, ["metis"], [3], SurveySettings(

@@ -295,9 +295,19 @@ def _traffic_lines(traffic: dict) -> list[str]:
 
     m, p = traffic["measured_payload_bytes"], traffic["predicted_payload_bytes"]
     verdict = "equal" if m == p else f"DIFFERENT by {m - p:+,} bytes"
-    return [f"payload: measured {m:,} bytes ({human_bytes(m)}), predicted {p:,} bytes "
-            f"({verdict}); framing {traffic['measured_framing_bytes']:,} bytes in "
-            f"{traffic['frames']:,} frames"]
+    lines = [f"payload: measured {m:,} bytes ({human_bytes(m)}), predicted {p:,} bytes "
+             f"({verdict}); framing {traffic['measured_framing_bytes']:,} bytes in "
+             f"{traffic['frames']:,} frames"]
+    scheme = (traffic.get("predicted_per_epoch") or {}).get("halo_scheme")
+    if scheme is not None:
+        train = sum(r["measured_payload_bytes"] for r in traffic["breakdown"]
+                    if r["kind"] == "halo" and r["direction"] != "eval")
+        expected = scheme["expected_forward_bytes"] + scheme["expected_backward_bytes"]
+        lines.append(f"halo scheme: keep {scheme['halo_keep']:g}, format "
+                     f"{scheme['halo_format'] or 'the training dtype'}: training halo "
+                     f"{human_bytes(train)} in all (expected {human_bytes(expected)} per "
+                     f"epoch); the evaluation forward exchanges the full halo, exact")
+    return lines
 
 
 def _count(mask) -> str:

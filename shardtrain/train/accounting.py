@@ -180,9 +180,11 @@ def traffic_account(merged: dict, profiles: list[dict], send_ptrs: list, halo_pt
         breakdown_pred.update(schemes.scheme_payload_breakdown(
             kept, halo_rows, hops, settings.np_dtype, scheme, evals=evals))
         predicted_total = int(sum(breakdown_pred.values()))
+        expected = schemes.expected_epoch_halo_bytes(halo_rows, hops, settings.np_dtype,
+                                                     scheme)
         predicted = dict(predicted, halo_scheme=dict(
-            scheme.to_dict(), **schemes.expected_epoch_halo_bytes(
-                halo_rows, hops, settings.np_dtype, scheme)))
+            scheme.to_dict(), expected_forward_bytes=expected["forward_bytes"],
+            expected_backward_bytes=expected["backward_bytes"]))
 
     def key_of(src, dst, kind, layer, direction):
         if kind == KIND_ALLREDUCE:
