@@ -43,7 +43,7 @@ MAX_COUNT = 1 << 62            # vertices, edges, bytes: below int64's range
 MAX_LIST = 1 << 24             # items in one list (epochs, plans, shards ...)
 MAX_BYTES: dict[str | None, int] = {      # looked up by kind, which may be None
     "checkpoint": 16 << 20, "calibration": 16 << 20, "survey": 1 << 30,
-    "run": 1 << 30, "forecast": 1 << 30}
+    "run": 1 << 30, "forecast": 1 << 30, "sweep": 1 << 30}
 DEFAULT_MAX_BYTES = 256 << 20
 
 
@@ -368,7 +368,8 @@ RUN_WORKER = Obj(required={"worker": Int(min=0, max=MAX_WORKERS)},
 RUN = Obj(optional={"epochs": List(EPOCH),
                     "settings": Obj(optional={"epochs": Int(min=0), "layers": Int(min=1),
                                               "hidden": Int(min=1)}),
-                    "graph": GRAPH_FACTS, "mode": Str(choices=("reference", "partitioned")),
+                    "graph": GRAPH_FACTS,
+                    "mode": Str(choices=("reference", "partitioned", "single-process")),
                     "workers": List(RUN_WORKER, max_len=MAX_WORKERS),
                     "traffic": Obj(optional={"measured_payload_bytes": COUNT,
                                              "predicted_payload_bytes": COUNT,
@@ -417,7 +418,9 @@ CALIBRATION = Obj(required={
 _SETTINGS = Obj(required={"seed": Int()},
                 optional={"layers": Int(min=1), "hidden": Int(min=1),
                           "dropout": Num(min=0, max=1), "lr": Num(min=0),
-                          "weight_decay": Num(min=0), "dtype": DTYPE, "bias": Bool()})
+                          "weight_decay": Num(min=0), "dtype": DTYPE, "bias": Bool(),
+                          "halo_keep": Num(min=0, max=1),
+                          "halo_format": Str(nullable=True, max_len=16)})
 CHECKPOINT = Obj(required={
     "format": Str(choices=("shardtrain-checkpoint",)), "version": Int(),
     "epoch": Int(min=1, max=1 << 40),
@@ -491,7 +494,19 @@ MANIFEST = Steps((
     Obj(optional={"meta": Obj(says="an object")}),
 ))
 
+_RATIO = Num(min=0, nullable=True)
+SWEEP_ROW = Obj(required={"scheme": Obj(), "halo_payload_per_epoch": Num(min=0)},
+                optional={"halo_payload_ratio": _RATIO, "epoch_s": SECONDS_OR_NULL,
+                          "epoch_s_ratio": _RATIO, "final_test_acc": FRACTION_OR_NULL,
+                          "test_acc_at_best_val": FRACTION_OR_NULL,
+                          "final_test_acc_points": Num(nullable=True),
+                          "test_acc_at_best_val_points": Num(nullable=True),
+                          "best_val_epoch": Int(min=1), "payload_equals_prediction": Bool()})
+SWEEP = Obj(required={"kind": Str(choices=("sweep",)), "rows": List(SWEEP_ROW, min_len=1)},
+            optional={"graph": GRAPH_FACTS, "workers": Int(min=1, nullable=True),
+                      "epochs": Int(min=1), "method": Str(max_len=256)})
 SHAPES = {"checkpoint": CHECKPOINT, "survey": SURVEY, "run": RUN, "forecast": FORECAST,
+          "sweep": SWEEP,
           "calibration": CALIBRATION, "manifest": MANIFEST}
 
 

@@ -15,7 +15,7 @@ from typing import Any, Callable
 from shardtrain.errors import InputError
 from shardtrain.units import human_bytes, human_seconds
 
-KINDS = ("survey", "run", "forecast")
+KINDS = ("survey", "run", "forecast", "sweep")
 
 CSS = """
 body { font: 15px/1.45 Georgia, 'DejaVu Serif', serif; color: #1d2330; background: #fbfaf7;
@@ -341,10 +341,44 @@ def forecast_section(doc: dict, plot_dir: Path) -> str:
             + _table(rows, cols, mark_key="marked") + _figures(forecast_plots(doc, plot_dir)))
 
 
+def sweep_section(doc: dict, plot_dir: Path) -> str:
+    """A `shardtrain sweep`'s rows: each halo scheme against the exact one."""
+    from shardtrain.report.plots import scheme_label, sweep_plots
+
+    def points(v):
+        return "" if v is None else f"{v:+.1f}"
+
+    def ratio(v):
+        return "" if v is None else f"{v:.3f}"
+
+    rows = [dict(r, label=scheme_label(r["scheme"]),
+                 payload_ratio=ratio(r.get("halo_payload_ratio")),
+                 time_ratio=ratio(r.get("epoch_s_ratio")),
+                 final_points=points(r.get("final_test_acc_points")),
+                 best_points=points(r.get("test_acc_at_best_val_points")))
+            for r in doc["rows"]]
+    cols = [("label", "scheme", None), ("halo_payload_per_epoch", "halo/epoch", human_bytes),
+            ("payload_ratio", "x exact", None), ("epoch_s", "epoch", human_seconds),
+            ("time_ratio", "x exact", None),
+            ("final_test_acc", "test acc", lambda v: "" if v is None else f"{v:.3f}"),
+            ("final_points", "points", None),
+            ("test_acc_at_best_val", "test @ best val",
+             lambda v: "" if v is None else f"{v:.3f}"), ("best_points", "points", None)]
+    facts = [("workers", doc.get("workers")), ("method", doc.get("method")),
+             ("epochs", doc.get("epochs")), ("emulated link", doc.get("emulated_link"))]
+    return (_facts(facts)
+            + '<p class="note">Each halo scheme trained in turn; halo payload: the measured '
+              "training exchanges (forward and backward) per epoch, equal to the survey's "
+              "prediction; epoch: the median measured training step; accuracy points "
+              "against the exact scheme.</p>"
+            + _table(rows, cols) + _figures(sweep_plots(doc, plot_dir)))
+
+
 SECTIONS: dict[str, tuple[str, Callable[..., str]]] = {   # survey's takes the plan too
     "survey": ("Survey of partition plans", survey_section),
     "run": ("Training run", run_section),
-    "forecast": ("Forecast", forecast_section)}
+    "forecast": ("Forecast", forecast_section),
+    "sweep": ("Halo schemes compared", sweep_section)}
 
 
 def run_plan(documents: list[tuple[str, str, dict]]) -> dict | None:
