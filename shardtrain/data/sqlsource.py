@@ -94,7 +94,8 @@ def parse_url(url: str, param: str) -> SqlUrl:
 
 def short(text: str, secret: str | None = None) -> str:
     """A server's message on one line, shortened, a password never in it."""
-    line = " ".join(str(text).split())
+    lines = [x for x in str(text).strip().splitlines() if x.strip()]
+    line = " ".join((lines[0] if lines else type(text).__name__).split())
     if secret:
         line = line.replace(secret, "***")
     return line if len(line) <= MESSAGE_CHARS else line[:MESSAGE_CHARS - 3] + "..."
