@@ -55,7 +55,7 @@ def add_arguments(parser) -> None:
 
 
 def run(args) -> int:
-    from shardtrain.data.ingest import Progress, ingest, open_source
+    from shardtrain.data.ingest import Progress, Source, ingest, open_source
     from shardtrain.files import check_paths
     from shardtrain.units import human_bytes
 
@@ -87,6 +87,7 @@ def run(args) -> int:
                         "--labels": args.labels}, replaced_dirs={"--out": out})
     budget = args.memory_budget or default_memory_budget()
     start = time.perf_counter()
+    sources: list[Source]
     if args.sql is not None:
         from shardtrain.data.sqlsource import SqlSource
         sources = [SqlSource(args.sql, args.edges_query, args.vertices_query)]

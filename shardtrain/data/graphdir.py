@@ -212,6 +212,8 @@ def read_vertex_ids(path) -> np.ndarray | None:
     if rec is None:
         return None
     n = manifest.get("num_vertices")
+    if not isinstance(n, int) or n < 0:
+        raise InputError(f"{path / GRAPH_MANIFEST}: num_vertices must be an integer >= 0")
     kind = rec.get("kind") if isinstance(rec, dict) else None
     if kind == "int":
         a = _map(path, ID_FILE[:-4])

@@ -30,9 +30,9 @@ from urllib.parse import quote, unquote, urlsplit, urlunsplit
 
 import numpy as np
 
-from shardtrain.data.ingest import EdgeChunk, Source, VertexData, _at_rows
 from shardtrain.data.extsort import read_keys
-from shardtrain.errors import InputError, ParameterError
+from shardtrain.data.ingest import EdgeChunk, Source, VertexData, _at_rows
+from shardtrain.errors import InputError, ParameterError, option
 
 FETCH_ROWS = 1 << 16          # rows per fetchmany (a list of Python tuples: ~120 B a row)
 MESSAGE_CHARS = 160           # a server message is shortened to this
@@ -74,8 +74,8 @@ def parse_url(url: str, param: str) -> SqlUrl:
     masked = mask_url(url)
     scheme = url.partition("://")[0].lower() if "://" in url else ""
     if scheme not in SCHEMES:
-        raise ParameterError(param, f"not a database URL: expected sqlite:///PATH or "
-                                    f"postgresql://USER@HOST:PORT/DB", value=masked)
+        raise ParameterError(param, "not a database URL: expected sqlite:///PATH or "
+                                    "postgresql://USER@HOST:PORT/DB", value=masked)
     if scheme == "sqlite":
         rest = url.split("://", 1)[1]
         if not rest.startswith("/") or len(rest) < 2:
@@ -92,7 +92,7 @@ def parse_url(url: str, param: str) -> SqlUrl:
     return SqlUrl("postgresql", url, masked, password=password)
 
 
-def short(text: str, secret: str | None = None) -> str:
+def short(text: object, secret: str | None = None) -> str:
     """A server's message on one line, shortened, a password never in it."""
     lines = [x for x in str(text).strip().splitlines() if x.strip()]
     line = " ".join((lines[0] if lines else type(text).__name__).split())
@@ -214,7 +214,6 @@ class Database:
 
 
 def param_word(param: str) -> str:
-    from shardtrain.errors import option
     return option(param)
 
 
@@ -278,6 +277,11 @@ def show_id(v) -> str:
 
 # ---------------------------------------------------------------- batches -> arrays
 
+def _is_null(a: np.ndarray) -> np.ndarray:
+    """Where an object array holds None (elementwise, in numpy)."""
+    return np.asarray(a == None)  # noqa: E711 - elementwise comparison of an object array
+
+
 def _first_row(mask: np.ndarray) -> int:
     return int(np.argmax(mask))
 
@@ -295,9 +299,9 @@ def id_column(values: Any, where: str, first_row: int, kind: str | None
         got, out = "text", text_ids(a)
     else:
         obj = np.asarray(values, dtype=object) if a.dtype != object else a
-        null = np.equal(obj, None)
+        null = _is_null(obj)
         if null.any():
-            row = _first_row(null.reshape(null.shape[0], -1).any(axis=1))
+            row = _first_row(np.asarray(null.reshape(null.shape[0], -1).any(axis=1)))
             raise InputError(f"{where}: row {first_row + row + 1}: NULL vertex id")
         if a.dtype.kind == "f":
             row = _first_row((a != np.floor(a)).reshape(a.shape[0], -1).any(axis=1)
@@ -318,7 +322,7 @@ def number_column(col: np.ndarray, where: str, name: str, first_row: int,
                   ids_of_rows: np.ndarray, null_is: float | None = None) -> np.ndarray:
     """A column of an object array as float64; NULL (unless `null_is`) and text refused,
     naming the row and its vertex id."""
-    null = np.equal(col, None)
+    null = _is_null(col)
     if null.any():
         if null_is is None:
             row = _first_row(null)
@@ -347,7 +351,7 @@ class VertexRows:
 def read_vertices(db: Database, query: str) -> VertexRows:
     """The vertices query: ids, labels (NULL -> -1), features; sorted by id; duplicate ids
     refused."""
-    what = "--vertices-query"
+    what = option("vertices_query")
     where = f"{db.where}: {what} {first_words(query)}"
     id_parts, label_parts, feat_parts = [], [], []
     kind: str | None = None
@@ -438,7 +442,7 @@ class SqlSource(Source):
                 v.labels = None
                 self.notes.append(f"{self.url.masked}: the vertices query's label column "
                                   f"holds no label (all NULL): ingested without labels")
-        what = "--edges-query"
+        what = option("edges_query")
         where = f"{self.db.where}: {what} {first_words(self.edges_query)}"
         codes_path, dict_path = work / "sql-codes.bin", work / "sql-ids.bin"
         self.spool = work / "sql-edges.bin"
@@ -472,8 +476,9 @@ class SqlSource(Source):
         self.rows = seen
         if missing:
             raise InputError(f"{where}: {missing:,} edge row{'s' * (missing != 1)} name"
-                             f"{'s' * (missing == 1)} a vertex id the --vertices-query did not "
-                             f"return (first: {show_id(first_missing)})")
+                             f"{'s' * (missing == 1)} a vertex id the "
+                             f"{option('vertices_query')} did not return (first: "
+                             f"{show_id(first_missing)})")
         if vertices is not None:
             ids = vertices.ids
             self.id_kind = vertices.kind
@@ -481,7 +486,7 @@ class SqlSource(Source):
             got = union.result()
             if got is None:
                 raise InputError(f"{where}: returned no rows (no edges, and no "
-                                 f"--vertices-query to give vertices)")
+                                 f"{option('vertices_query')} to give vertices)")
             ids = got
             self.id_kind = kind or "int"
             # second pass: local codes -> global codes
@@ -504,7 +509,7 @@ class SqlSource(Source):
             k = min(r, self.rows - s)
             pair = read_keys(self.spool, 2 * s, 2 * k).reshape(k, 2)
             yield EdgeChunk(pair[:, 0], pair[:, 1],
-                            _at_rows(f"{self.url.masked}: --edges-query", s))
+                            _at_rows(f"{self.url.masked}: {option('edges_query')}", s))
 
 
 # ---------------------------------------------------------------- predictions back
@@ -557,7 +562,7 @@ def check_prediction_target(url: str, table: str, replace: bool) -> PredictionTa
         db.close()
     if exists and not replace:
         raise ParameterError("predictions_table", f"exists in {parsed.masked} (add "
-                                                  f"--replace-table to replace it)",
+                                                  f"{option('replace_table')} to replace it)",
                              value=repr(table))
     return PredictionTarget(parsed, table, quoted, replace)
 
@@ -596,7 +601,7 @@ def write_predictions(target: PredictionTarget, ids: np.ndarray, predicted: np.n
                 idl = ids.tolist()
                 pl = predicted.astype(np.int64).tolist()
                 ll = [None] * n if lab is None else \
-                    np.where(lab >= 0, lab.astype(object), None).tolist()
+                    np.where(lab >= 0, lab.astype(object), np.array(None)).tolist()
                 half = n // 2
                 conn.executemany(f"INSERT INTO {target.quoted} VALUES (?, ?, ?)",
                                  zip(idl[:half], pl[:half], ll[:half]))
