@@ -214,7 +214,10 @@ def _survey_fields(path: Path) -> dict:
     return strip(doc)
 
 
-def test_sql_ingest_equals_file_ingest(db, tmp_path, capsys):
+@pytest.mark.parametrize("fetch_rows", [7, 1 << 16])
+def test_sql_ingest_equals_file_ingest(db, fetch_rows, tmp_path, capsys, monkeypatch):
+    from shardtrain.data import sqlsource
+    monkeypatch.setattr(sqlsource, "FETCH_ROWS", fetch_rows)    # 7: many batches to merge
     backend, url = db
     edges, labels, feats = karate()
     np.save(tmp_path / "e.npy", edges)
@@ -248,7 +251,9 @@ def test_sql_ingest_equals_file_ingest(db, tmp_path, capsys):
 # ---------------------------------------------------------------- original ids round trip
 
 @pytest.mark.parametrize("kind", ["text", "bigint"])
-def test_original_ids_round_trip_into_predictions(db, kind, tmp_path):
+def test_original_ids_round_trip_into_predictions(db, kind, tmp_path, monkeypatch):
+    from shardtrain.data import sqlsource
+    monkeypatch.setattr(sqlsource, "FETCH_ROWS", 5)
     backend, url = db
     edges, labels, feats = karate()
     rng = np.random.default_rng(7)
