@@ -483,3 +483,34 @@ def test_mask_url():
     assert mask_url("postgresql://u@h/db?password=x&sslmode=require") == \
         "postgresql://u@h/db?password=***&sslmode=require"
     assert mask_url("sqlite:///a.db") == "sqlite:///a.db"
+
+
+@pytest.mark.parametrize("ids", ["gapped", "big", "small-then-big", "negative"])
+@pytest.mark.parametrize("with_vertices", [False, True])
+def test_integer_ids_map_in_sorted_order(ids, with_vertices, tmp_path, monkeypatch):
+    """Ids that rise with the karate member number map back to the member numbers, so the
+    CSR is byte for byte the file ingest's; every id kind takes its own path (a table for
+    small non-negative ids, a binary search otherwise, a switch between them mid-stream)."""
+    from shardtrain.data import sqlsource
+    monkeypatch.setattr(sqlsource, "FETCH_ROWS", 5)
+    edges, labels, _ = karate()
+    v = np.arange(34, dtype=np.int64)
+    f = {"gapped": v * 7 + 3, "big": BIG + v * 1_000_003,
+         "small-then-big": np.where(v < 20, v, BIG + v), "negative": v - 40}[ids]
+    np.save(tmp_path / "e.npy", edges)
+    url = f"sqlite:///{tmp_path / 'ids.db'}"
+    _fill("sqlite", url, {"e": ("a INTEGER, b INTEGER", [(int(f[a]), int(f[b]))
+                                                        for a, b in edges]),
+                          "v": ("id INTEGER, c INTEGER", [(int(f[i]), int(labels[i]))
+                                                          for i in v[::-1]])})
+    args = ["ingest", "--sql", url, "--edges-query", "SELECT a, b FROM e",
+            "--out", tmp_path / "sql"]
+    if with_vertices:
+        args += ["--vertices-query", "SELECT id, c FROM v"]
+    assert _main(*args) == 0
+    assert _main("ingest", tmp_path / "e.npy", "--out", tmp_path / "file") == 0
+    for name in ("indptr.npy", "indices.npy"):
+        assert (tmp_path / "file" / name).read_bytes() == (tmp_path / "sql" / name).read_bytes()
+    assert read_vertex_ids(tmp_path / "sql").tolist() == f.tolist()
+    if with_vertices:
+        assert np.load(tmp_path / "sql" / "labels.npy").tolist() == labels.tolist()

@@ -269,6 +269,65 @@ def locate_ids(ids: np.ndarray, values: np.ndarray) -> tuple[np.ndarray, np.ndar
     return clipped, found
 
 
+class IntPresence:
+    """The set of integer ids seen: a presence table while they lie in [0, limit) (a scatter
+    per batch, no sort), else (once one falls outside) the sorted union of `IdUnion`."""
+
+    def __init__(self, limit: int) -> None:
+        self.limit = int(limit)
+        self.seen: np.ndarray | None = np.zeros(1 << 16, dtype=bool)
+        self.union = IdUnion()
+
+    def add(self, ids: np.ndarray) -> None:
+        if self.seen is not None and ids.shape[0]:
+            lo, hi = int(ids.min()), int(ids.max())
+            if lo >= 0 and hi < self.limit:
+                if hi >= self.seen.shape[0]:
+                    grown = np.zeros(min(self.limit, max(hi + 1, 2 * self.seen.shape[0])),
+                                     dtype=bool)
+                    grown[:self.seen.shape[0]] = self.seen
+                    self.seen = grown
+                self.seen[ids] = True
+                return
+            self.union.add(np.flatnonzero(self.seen).astype(np.int64))
+            self.seen = None
+        if ids.shape[0]:
+            self.union.add(sorted_unique(ids))
+
+    def result(self) -> np.ndarray | None:
+        if self.seen is not None:
+            got = np.flatnonzero(self.seen).astype(np.int64)
+            return got if got.shape[0] else None
+        return self.union.result()
+
+
+class IdLookup:
+    """Sorted distinct ids -> their positions: a table (a gather) for integer ids in
+    [0, limit), else a binary search. `identity` when the ids are 0..n-1 already."""
+
+    def __init__(self, ids: np.ndarray, limit: int) -> None:
+        self.ids = ids
+        n = ids.shape[0]
+        self.table: np.ndarray | None = None
+        self.identity = (ids.dtype.kind == "i" and n > 0 and int(ids[0]) == 0
+                         and int(ids[-1]) == n - 1)
+        if ids.dtype.kind == "i" and n and int(ids[0]) >= 0 and int(ids[-1]) < limit:
+            self.table = np.full(int(ids[-1]) + 1, -1, dtype=np.int64)
+            self.table[ids] = np.arange(n, dtype=np.int64)
+
+    def __call__(self, values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """(position of each value, whether it is an id at all)."""
+        if self.identity:
+            found = (values >= 0) & (values < self.ids.shape[0])
+            return np.where(found, values, 0), found
+        if self.table is not None:
+            inside = (values >= 0) & (values < self.table.shape[0])
+            pos = self.table[np.where(inside, values, 0)]
+            found = inside & (pos >= 0)
+            return np.where(found, pos, 0), found
+        return locate_ids(self.ids, values)
+
+
 def show_id(v) -> str:
     if isinstance(v, (bytes, np.bytes_)):
         return repr(bytes(v).decode("utf-8", "replace"))
@@ -426,11 +485,13 @@ class SqlSource(Source):
 
     def prepare(self, work: Path, budget) -> None:
         try:
-            self._prepare(work)
+            self._prepare(work, max(1 << 20, int(budget.total) // 16))
         finally:
             self.db.close()
 
-    def _prepare(self, work: Path) -> None:
+    def _prepare(self, work: Path, table_limit: int) -> None:
+        """The queries into the mapped spool; `table_limit`: the largest integer id an
+        id table may span (int64 per slot: a sixteenth of the budget)."""
         vertices = None
         if self.vertices_query is not None:
             vertices = read_vertices(self.db, self.vertices_query)
@@ -446,32 +507,37 @@ class SqlSource(Source):
         where = f"{self.db.where}: {what} {first_words(self.edges_query)}"
         codes_path, dict_path = work / "sql-codes.bin", work / "sql-ids.bin"
         self.spool = work / "sql-edges.bin"
-        union = IdUnion()
+        union = IdUnion()                           # text ids
+        presence = IntPresence(table_limit)         # integer ids
         batches: list[tuple[int, int, str]] = []    # rows, ids in the batch's dict, dtype
         missing = 0
         first_missing: Any = None
         kind = None if vertices is None else vertices.kind
+        lookup = None if vertices is None else IdLookup(vertices.ids, table_limit)
         seen = 0
         out_path = self.spool if vertices is not None else codes_path
         with open(out_path, "wb") as out, open(dict_path, "wb") as dict_out:
             for rows in self.db.batches(self.edges_query, what, (2, 2)):
                 pairs, kind = id_column(rows, where, seen, kind)
-                pairs = pairs.reshape(-1, 2)
-                seen += pairs.shape[0]
-                if vertices is not None:
-                    pos, found = locate_ids(vertices.ids, pairs.ravel())
+                flat = pairs.reshape(-1)
+                seen += flat.shape[0] // 2
+                if lookup is not None:
+                    pos, found = lookup(flat)
                     if not found.all():
                         bad_rows = ~found.reshape(-1, 2).all(axis=1)
                         missing += int(np.count_nonzero(bad_rows))
                         if first_missing is None:
-                            first_missing = pairs.ravel()[_first_row(~found)]
-                    out.write(pos.astype(np.int64).data)
-                else:
-                    uniq = sorted_unique(pairs.ravel())
-                    local = np.searchsorted(uniq, pairs.ravel()).astype(np.int64)
+                            first_missing = flat[_first_row(~found)]
+                    out.write(pos.astype(np.int64, copy=False).data)
+                elif kind == "int":        # raw ids now, mapped once the set is known
+                    out.write(np.ascontiguousarray(flat).data)
+                    presence.add(flat)
+                else:                      # text: codes into the batch's own sorted ids
+                    uniq = sorted_unique(flat)
+                    local = np.searchsorted(uniq, flat).astype(np.int64)
                     out.write(local.data)
                     dict_out.write(np.ascontiguousarray(uniq).data)
-                    batches.append((pairs.shape[0], uniq.shape[0], uniq.dtype.str))
+                    batches.append((flat.shape[0] // 2, uniq.shape[0], uniq.dtype.str))
                     union.add(uniq)
         self.rows = seen
         if missing:
@@ -483,24 +549,40 @@ class SqlSource(Source):
             ids = vertices.ids
             self.id_kind = vertices.kind
         else:
-            got = union.result()
+            got = presence.result() if kind == "int" else union.result()
             if got is None:
                 raise InputError(f"{where}: returned no rows (no edges, and no "
                                  f"{option('vertices_query')} to give vertices)")
             ids = got
             self.id_kind = kind or "int"
-            # second pass: local codes -> global codes
-            with open(codes_path, "rb") as codes, open(dict_path, "rb") as dicts, \
-                    open(self.spool, "wb") as out:
-                for nrows, nids, dt in batches:
-                    local = np.fromfile(codes, dtype=np.int64, count=2 * nrows)
-                    uniq = np.fromfile(dicts, dtype=np.dtype(dt), count=nids)
-                    glob = np.searchsorted(ids, uniq).astype(np.int64)
-                    out.write(glob[local].data)
-            codes_path.unlink()
+            if kind == "int":
+                self._map_raw(codes_path, IdLookup(ids, table_limit))
+            else:                          # second pass: local codes -> global codes
+                with open(codes_path, "rb") as codes, open(dict_path, "rb") as dicts, \
+                        open(self.spool, "wb") as out:
+                    for nrows, nids, dt in batches:
+                        local = np.fromfile(codes, dtype=np.int64, count=2 * nrows)
+                        uniq = np.fromfile(dicts, dtype=np.dtype(dt), count=nids)
+                        glob = np.searchsorted(ids, uniq).astype(np.int64)
+                        out.write(glob[local].data)
+                codes_path.unlink()
         dict_path.unlink(missing_ok=True)
         self.vertex_ids = ids
         self.declared_n = int(ids.shape[0])
+
+    def _map_raw(self, raw: Path, lookup: IdLookup) -> None:
+        """Raw integer ids -> 0..n-1 (nothing to do when they are 0..n-1 already)."""
+        assert self.spool is not None
+        if lookup.identity:
+            raw.rename(self.spool)
+            return
+        step = 1 << 21
+        total = 2 * self.rows
+        with open(self.spool, "wb") as out:
+            for s in range(0, total, step):
+                part = read_keys(raw, s, min(step, total - s))
+                out.write(lookup(part)[0].data)
+        raw.unlink()
 
     def chunks(self, budget):
         assert self.spool is not None
