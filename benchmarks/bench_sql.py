@@ -66,20 +66,20 @@ def _tree(pid: int) -> list[int]:
     return pids
 
 
-def _server_cpu(server_pid: int | None) -> float:
-    """CPU seconds of the server's process tree so far (postmaster and its backends)."""
+def _server_cpu(server_pid: int | None) -> dict[int, float]:
+    """CPU seconds of each process of the server's tree (postmaster and its backends)."""
     if server_pid is None:
-        return 0.0
+        return {}
     tick = os.sysconf("SC_CLK_TCK")
-    total = 0.0
+    out = {}
     for p in _tree(server_pid):
         try:
             with open(f"/proc/{p}/stat") as fh:
                 f = fh.read().rsplit(")", 1)[1].split()
-            total += (int(f[11]) + int(f[12])) / tick
+            out[p] = (int(f[11]) + int(f[12])) / tick
         except OSError:
             pass
-    return total
+    return out
 
 
 def run_measured(cmd: list[str], server_pid: int | None = None) -> dict:
@@ -88,10 +88,12 @@ def run_measured(cmd: list[str], server_pid: int | None = None) -> dict:
     start = time.perf_counter()
     proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     peak = [0]
+    server: dict[int, float] = {}
 
-    def sample():
+    def sample():      # a backend's CPU leaves the tree with it: keep each process's last
         while proc.poll() is None:
             peak[0] = max(peak[0], sum(_status(p) for p in _tree(proc.pid)))
+            server.update(_server_cpu(server_pid))
             time.sleep(0.02)
 
     t = threading.Thread(target=sample, daemon=True)
@@ -104,7 +106,7 @@ def run_measured(cmd: list[str], server_pid: int | None = None) -> dict:
         raise SystemExit(f"{' '.join(cmd)} failed: {err.strip()}")
     return {"wall_s": wall, "cpu_s": (after.ru_utime - before.ru_utime)
             + (after.ru_stime - before.ru_stime),
-            "server_cpu_s": _server_cpu(server_pid) - server_before,
+            "server_cpu_s": sum(c - server_before.get(p, 0.0) for p, c in server.items()),
             "peak_tree_bytes": peak[0], "stdout": out.strip().splitlines()[-1:]}
 
 
