@@ -259,7 +259,10 @@ def test_original_ids_round_trip_into_predictions(db, kind, tmp_path, monkeypatc
     rng = np.random.default_rng(7)
     order = rng.permutation(34)            # the database returns vertices in no id order
     if kind == "text":
-        names = np.array([f"depot-ü{v:02d},\"{'x' * (v % 3)}" for v in range(34)])
+        # commas, quotes, a tab and a backslash: CSV quoting and COPY's escapes both at work
+        tail = "\t\\"
+        names = np.array([f"depot-ü{v:02d},\"{'x' * (v % 3)}" + tail * (v % 5 == 0)
+                          for v in range(34)])
         idcol = "TEXT"
     else:
         names = np.array([BIG + 1_000_003 * v for v in range(34)], dtype=np.int64)
