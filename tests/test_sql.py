@@ -271,7 +271,7 @@ def test_original_ids_round_trip_into_predictions(db, kind, tmp_path, monkeypatc
     vrows = [(ids[v], None if v == 33 else int(labels[v]), float(feats[v, 0]), 1.0)
              for v in order]
     erows = [(ids[a], ids[b]) for a, b in edges]
-    _fill(backend, url, {"depots": (f"id {idcol}, club INTEGER, deg REAL, one REAL", vrows),
+    _fill(backend, url, {"depots": (f"id {idcol}, club INTEGER, deg NUMERIC, one REAL", vrows),
                          "routes": (f"a {idcol}, b {idcol}", erows)})
     gd = tmp_path / "g"
     assert _main("ingest", "--sql", url, "--edges-query", "SELECT a, b FROM routes",
@@ -279,6 +279,9 @@ def test_original_ids_round_trip_into_predictions(db, kind, tmp_path, monkeypatc
                  "--out", gd) == 0
     kept = read_vertex_ids(gd)
     assert sorted(kept.tolist()) == sorted(ids) and kept.tolist() == sorted(kept.tolist())
+    member = {ids[v]: v for v in range(34)}
+    rows_of = np.array([member[k] for k in kept.tolist()])
+    assert np.array_equal(np.load(gd / "features.npy"), feats[rows_of])   # NUMERIC as floats
     table = f"preds_{kind}"
     assert _main("train", gd, "--reference", "--epochs", "3", "--quiet", "--predictions",
                  tmp_path / "p.csv", "--predictions-sql", url, "--predictions-table",
@@ -377,6 +380,11 @@ BAD_CASES = {
                                    [(1, 0, "1.5"), (2, 1, "heavy"), (3, 0, "2")])},
                             "SELECT a, b FROM e", "SELECT id, c, f FROM v",
                             ["column 'f' holds", "not a number"]),
+    "numeric feature": ({"e": ("a INTEGER, b INTEGER", EDGES),
+                         "v": ("id INTEGER, c INTEGER, f NUMERIC", [(1, 0, 1.5), (2, 1, 2),
+                                                                    (3, 0, None)])},
+                        "SELECT a, b FROM e", "SELECT id, c, f FROM v",
+                        ["row 3 (vertex 3): NULL in column 'f'"]),
     "duplicate vertex": ({"e": ("a INTEGER, b INTEGER", EDGES),
                           "v": ("id INTEGER, c INTEGER", [(1, 0), (2, 1), (3, 0), (2, 0)])},
                          "SELECT a, b FROM e", "SELECT id, c FROM v",

@@ -142,13 +142,20 @@ class Database:
                 self.close()
                 raise InputError(f"{self.where}: {short(exc)}") from None
         else:
-            import psycopg
-
+            try:
+                import psycopg
+                from psycopg.types.numeric import FloatLoader
+            except ImportError:
+                raise InputError(f"{self.where}: PostgreSQL needs the psycopg package (pip "
+                                 f"install 'psycopg[binary]')") from None
             try:
                 self.conn = psycopg.connect(url.url, connect_timeout=CONNECT_TIMEOUT_S,
                                             autocommit=False)
                 if read_only:
                     self.conn.read_only = True
+                # numeric columns (features, labels) as floats, not Decimal objects: the
+                # vertices query reads text-format rows
+                self.conn.adapters.register_loader("numeric", FloatLoader)
             except psycopg.Error as exc:
                 self.close()
                 raise InputError(f"{self.where}: cannot connect: "
@@ -158,10 +165,11 @@ class Database:
         return InputError(f"{self.where}: {what} {first_words(query)}: "
                           f"{short(exc, self.url.password)}")
 
-    def batches(self, query: str, what: str, columns: tuple[int, int | None]
-                ) -> Iterator[list]:
+    def batches(self, query: str, what: str, columns: tuple[int, int | None],
+                binary: bool = True) -> Iterator[list]:
         """The rows of `query` in lists of at most FETCH_ROWS tuples; `columns` = (least,
-        most) number of result columns (most None: any)."""
+        most) number of result columns (most None: any); `binary`: PostgreSQL's binary
+        row format (integers and text ids), else text (numeric columns as floats)."""
         lo, hi = columns
         if self.url.kind == "sqlite":
             errors: tuple = (sqlite3.Error,)
@@ -169,7 +177,7 @@ class Database:
         else:
             import psycopg
             errors = (psycopg.Error,)
-            cur = self.conn.cursor(name="shardtrain_rows", binary=True)
+            cur = self.conn.cursor(name="shardtrain_rows", binary=binary)
             cur.itersize = FETCH_ROWS
         try:
             try:
@@ -415,7 +423,7 @@ def read_vertices(db: Database, query: str) -> VertexRows:
     id_parts, label_parts, feat_parts = [], [], []
     kind: str | None = None
     seen = 0
-    for rows in db.batches(query, what, (1, None)):
+    for rows in db.batches(query, what, (1, None), binary=False):
         obj = np.empty((len(rows), len(db.columns)), dtype=object)
         obj[:] = rows
         ids, kind = id_column(obj[:, 0].tolist(), where, seen, kind)
