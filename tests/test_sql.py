@@ -525,3 +525,25 @@ def test_integer_ids_map_in_sorted_order(ids, with_vertices, tmp_path, monkeypat
     assert read_vertex_ids(tmp_path / "sql").tolist() == f.tolist()
     if with_vertices:
         assert np.load(tmp_path / "sql" / "labels.npy").tolist() == labels.tolist()
+
+
+def test_shard_directory_keeps_the_original_ids(tmp_path):
+    """`split GRAPH_DIR` carries the text ids along; `train SHARD_DIR --predictions` names
+    the vertices by them, each with its own label."""
+    edges, labels, feats = karate()
+    names = [f"hub/{v:03d}" for v in range(34)]
+    url = f"sqlite:///{tmp_path / 'k.db'}"
+    _fill("sqlite", url, {
+        "v": ("id TEXT, club INTEGER, deg REAL", [(names[v], int(labels[v]), float(feats[v, 0]))
+                                                  for v in range(34)]),
+        "e": ("a TEXT, b TEXT", [(names[a], names[b]) for a, b in edges])})
+    assert _main("ingest", "--sql", url, "--edges-query", "SELECT a, b FROM e",
+                 "--vertices-query", "SELECT * FROM v", "--out", tmp_path / "g") == 0
+    assert _main("split", tmp_path / "g", "--workers", "2", "--method", "random",
+                 "--out", tmp_path / "s") == 0
+    assert _main("train", tmp_path / "s", "--epochs", "2", "--quiet", "--predictions",
+                 tmp_path / "p.csv") == 0
+    import csv
+    with open(tmp_path / "p.csv", newline="") as fh:
+        got = {r["vertex"]: int(r["label"]) for r in csv.DictReader(fh)}
+    assert got == {names[v]: int(labels[v]) for v in range(34)}

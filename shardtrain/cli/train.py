@@ -281,9 +281,18 @@ def predictions_csv(predicted: np.ndarray, labels: np.ndarray | None,
 def _vertex_ids(args) -> np.ndarray | None:
     """The original ids of GRAPH's vertices (a graph directory ingested from a database),
     else None (the ids are 0..n-1)."""
-    from shardtrain.data.graphdir import is_graph_dir, read_vertex_ids
+    from shardtrain.data.graphdir import is_graph_dir, read_vertex_id_files, read_vertex_ids
 
-    return read_vertex_ids(args.graph) if is_graph_dir(args.graph) else None
+    if is_graph_dir(args.graph):
+        return read_vertex_ids(args.graph)
+    if api.is_shard_dir(args.graph):       # split from a graph directory that kept its ids
+        from shardtrain.plan.shards import SHARDS_MANIFEST, load_manifest
+        m = load_manifest(args.graph)
+        rec = (m.get("meta") or {}).get("vertex_ids")
+        if rec is not None:
+            return read_vertex_id_files(Path(args.graph), rec, int(m["num_vertices"]),
+                                        Path(args.graph) / SHARDS_MANIFEST)
+    return None
 
 
 def write_outputs(args, result, labels, doc: dict) -> None:

@@ -214,6 +214,21 @@ def read_vertex_ids(path) -> np.ndarray | None:
     n = manifest.get("num_vertices")
     if not isinstance(n, int) or n < 0:
         raise InputError(f"{path / GRAPH_MANIFEST}: num_vertices must be an integer >= 0")
+    return read_vertex_id_files(path, rec, n, path / GRAPH_MANIFEST)
+
+
+def copy_vertex_ids(src, dst, record: dict) -> None:
+    """Copy the id files a "vertex_ids" record names from folder `src` into `dst` (a shard
+    directory keeps its graph's original ids)."""
+    import shutil
+
+    for name in record.get("files", []):
+        if name in (ID_FILE, ID_TEXT_FILE, ID_OFFSETS_FILE):
+            shutil.copyfile(Path(src) / name, Path(dst) / name)
+
+
+def read_vertex_id_files(path: Path, rec, n: int, manifest_file: Path) -> np.ndarray:
+    """The ids of a "vertex_ids" record `rec` held in folder `path` (n vertices)."""
     kind = rec.get("kind") if isinstance(rec, dict) else None
     if kind == "int":
         a = _map(path, ID_FILE[:-4])
@@ -221,7 +236,7 @@ def read_vertex_ids(path) -> np.ndarray | None:
             raise InputError(f"{path / ID_FILE}: expected int64 ({n},)")
         return np.array(a)
     if kind != "text":
-        raise InputError(f"{path / GRAPH_MANIFEST}: 'vertex_ids' must name kind int or text")
+        raise InputError(f"{manifest_file}: 'vertex_ids' must name kind int or text")
     offsets = _map(path, ID_OFFSETS_FILE[:-4])
     blob_file = path / ID_TEXT_FILE
     if offsets is None or offsets.dtype != np.int64 or offsets.shape != (n + 1,):
