@@ -24,6 +24,7 @@ from __future__ import annotations
 import re
 import sqlite3
 from dataclasses import dataclass
+from itertools import chain
 from pathlib import Path
 from typing import Any, Iterator
 from urllib.parse import quote, unquote, urlsplit, urlunsplit
@@ -385,6 +386,23 @@ def id_column(values: Any, where: str, first_row: int, kind: str | None
     return out, got
 
 
+def edge_pairs(rows: list, where: str, first_row: int, kind: str | None
+               ) -> tuple[np.ndarray, str]:
+    """A batch of (a, b) rows as a flat array of 2k ids (int64 or UTF-8 bytes) and its kind.
+    When every value is a Python int (the common case) they go straight into int64 (3x
+    faster than numpy's type inference); anything else takes `id_column`'s checks."""
+    values = chain.from_iterable(rows)
+    types = set(map(type, values))
+    if types == {int} and kind in (None, "int"):
+        try:
+            flat = np.fromiter(chain.from_iterable(rows), dtype=np.int64, count=2 * len(rows))
+            return flat, "int"
+        except OverflowError:
+            pass                        # beyond 64 bits: id_column says where
+    pairs, got = id_column(rows, where, first_row, kind)
+    return pairs.reshape(-1), got
+
+
 def number_column(col: np.ndarray, where: str, name: str, first_row: int,
                   ids_of_rows: np.ndarray, null_is: float | None = None) -> np.ndarray:
     """A column of an object array as float64; NULL (unless `null_is`) and text refused,
@@ -526,8 +544,7 @@ class SqlSource(Source):
         out_path = self.spool if vertices is not None else codes_path
         with open(out_path, "wb") as out, open(dict_path, "wb") as dict_out:
             for rows in self.db.batches(self.edges_query, what, (2, 2)):
-                pairs, kind = id_column(rows, where, seen, kind)
-                flat = pairs.reshape(-1)
+                flat, kind = edge_pairs(rows, where, seen, kind)
                 seen += flat.shape[0] // 2
                 if lookup is not None:
                     pos, found = lookup(flat)
