@@ -42,6 +42,10 @@ FLAGS = {
     "checkpoint": "--checkpoint", "resume": "--resume", "reference": "--reference",
     "single_process": "--single-process",
     "emulate_link": "--emulate-link",
+    # databases (ingest --sql, train --predictions-sql)
+    "sql": "--sql", "edges_query": "--edges-query", "vertices_query": "--vertices-query",
+    "predictions_sql": "--predictions-sql", "predictions_table": "--predictions-table",
+    "replace_table": "--replace-table",
 }
 
 # parameters a library may name that no option sets (the message keeps the Python name):

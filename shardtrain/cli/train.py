@@ -153,6 +153,15 @@ def add_arguments(parser) -> None:
     parser.add_argument("--init-weights", metavar="IN.npz", help="start from these weights")
     parser.add_argument("--predictions", metavar="OUT.csv",
                         help="write vertex,predicted,label (label empty where unknown)")
+    parser.add_argument("--predictions-sql", metavar="URL",
+                        help="also write the predictions into a database: sqlite:///PATH or "
+                             "postgresql://USER@HOST:PORT/DB (with --predictions-table)")
+    parser.add_argument("--predictions-table", metavar="NAME",
+                        help="the new table of (id, predicted, label) rows, written in one "
+                             "transaction (all rows or none); ids are the original ones")
+    parser.add_argument("--replace-table", action="store_true",
+                        help="replace --predictions-table if it exists (in the same "
+                             "transaction)")
     parser.add_argument("--quiet", action="store_true", help="no per-epoch output")
     parser.add_argument("--emulate-link", metavar="GBPS[:LATENCY_US]",
                         help="make the pipes no faster than a network link of GBPS Gbit/s per "
@@ -252,10 +261,25 @@ def epoch_line(rec: dict, epochs: int) -> str:
 
 # ---------------------------------------------------------------- outputs
 
-def predictions_csv(predicted: np.ndarray, labels: np.ndarray | None) -> str:
-    """vertex,predicted,label lines, label empty where unknown (vectorised text)."""
+def _csv_field(a: np.ndarray) -> np.ndarray:
+    """Text values as CSV fields: quoted (quotes doubled) where they hold , " or a newline."""
+    if a.dtype.kind != "U" or a.shape[0] == 0:
+        return a.astype(str)
+    special = np.zeros(a.shape[0], dtype=bool)
+    for ch in (",", '"', "\n", "\r"):
+        special |= np.strings.find(a, ch) >= 0
+    if not special.any():
+        return a
+    quoted = np.strings.add(np.strings.add('"', np.strings.replace(a, '"', '""')), '"')
+    return np.where(special, quoted, a)
+
+
+def predictions_csv(predicted: np.ndarray, labels: np.ndarray | None,
+                    vertex_ids: np.ndarray | None = None) -> str:
+    """vertex,predicted,label lines, label empty where unknown (vectorised text); `vertex_ids`
+    (the graph directory's original ids) name the vertices, else 0..n-1."""
     n = predicted.shape[0]
-    ids = np.arange(n).astype(str)
+    ids = np.arange(n).astype(str) if vertex_ids is None else _csv_field(vertex_ids)
     pred = predicted.astype(str)
     if labels is None:
         lab = np.full(n, "", dtype="<U1")
@@ -265,14 +289,42 @@ def predictions_csv(predicted: np.ndarray, labels: np.ndarray | None) -> str:
     return "vertex,predicted,label\n" + ("\n".join(rows.tolist()) + "\n" if n else "")
 
 
+def _vertex_ids(args) -> np.ndarray | None:
+    """The original ids of GRAPH's vertices (a graph directory ingested from a database),
+    else None (the ids are 0..n-1)."""
+    from shardtrain.data.graphdir import is_graph_dir, read_vertex_id_files, read_vertex_ids
+
+    if is_graph_dir(args.graph):
+        return read_vertex_ids(args.graph)
+    if api.is_shard_dir(args.graph):       # split from a graph directory that kept its ids
+        from shardtrain.plan.shards import SHARDS_MANIFEST, load_manifest
+        m = load_manifest(args.graph)
+        rec = (m.get("meta") or {}).get("vertex_ids")
+        if rec is not None:
+            return read_vertex_id_files(Path(args.graph), rec, int(m["num_vertices"]),
+                                        Path(args.graph) / SHARDS_MANIFEST)
+    return None
+
+
 def write_outputs(args, result, labels, doc: dict) -> None:
     from shardtrain.files import save_npz_atomic, write_json_atomic, write_text_atomic
     from shardtrain.train import model
 
+    ids = None
+    if args.predictions or getattr(args, "prediction_target", None) is not None:
+        ids = _vertex_ids(args)
+        if ids is not None and ids.shape[0] != result.predictions.shape[0]:
+            raise InputError(f"{args.graph}: {ids.shape[0]:,} original vertex ids for "
+                             f"{result.predictions.shape[0]:,} vertices")
+    target = getattr(args, "prediction_target", None)
+    if target is not None:       # first: the one output another program may fail to take
+        from shardtrain.data.sqlsource import write_predictions
+        known = ids if ids is not None else np.arange(result.predictions.shape[0])
+        write_predictions(target, known, result.predictions, labels)
     if args.weights:
         save_npz_atomic(args.weights, **model.params_to_arrays(result.params))
     if args.predictions:
-        write_text_atomic(args.predictions, predictions_csv(result.predictions, labels))
+        write_text_atomic(args.predictions, predictions_csv(result.predictions, labels, ids))
     if args.json:
         write_json_atomic(args.json, doc)
     if getattr(args, "plot", None):
@@ -380,6 +432,15 @@ def _check_outputs(args) -> None:
     _check_output(args.json, "--json", ".json")
     _check_output(args.weights, "--weights", ".npz")
     _check_output(args.predictions, "--predictions", ".csv")
+    args.prediction_target = None
+    if (args.predictions_sql is None) != (args.predictions_table is None):
+        raise InputError("--predictions-sql and --predictions-table: give both or neither")
+    if args.replace_table and args.predictions_table is None:
+        raise InputError("--replace-table: only with --predictions-table")
+    if args.predictions_sql is not None:
+        from shardtrain.data.sqlsource import check_prediction_target
+        args.prediction_target = check_prediction_target(
+            args.predictions_sql, args.predictions_table, args.replace_table)
     if getattr(args, "plot", None) is not None:
         from shardtrain.report.plots import check_plot_dir
         check_plot_dir(args.plot)
