@@ -53,6 +53,7 @@ import numpy as np
 
 from shardtrain import defaults
 from shardtrain.errors import InputError, ParameterError
+from shardtrain.forecast import roofline
 from shardtrain.forecast.calibrate import (
     dense_speed,
     elementwise_speed,
@@ -82,6 +83,36 @@ def frame_header_bytes(dtype: str, shape, *, kind: str = "halo", layer: int = 0,
 def link_seconds(nbytes, gbps: float):
     """Serialisation time of nbytes on a gbps link: bytes * 8 / (gbps * 1e9)."""
     return np.asarray(nbytes, dtype=np.float64) * 8.0 / (gbps * 1e9)
+
+
+def hop_wire_seconds(out_bytes, in_bytes, out_msgs, in_msgs, latency_s: float,
+                     gbps: float, *, receiver_contention: bool = True) -> np.ndarray:
+    """Each worker's time on its interface in one exchange (per worker arrays of the bytes
+    it sends and receives, framing included, and of its frames each way).
+
+    Full duplex, one interface per worker: the frames a worker sends leave one after the
+    other, and the frames it receives come in one after the other, each side at line rate.
+    With `receiver_contention` (what a real interface and `--emulate-link` do):
+    latency + 8 * max(sent, received) / bandwidth for a worker that sends or receives
+    anything; without it (the model before receiver contention was counted, kept to show
+    the difference): latency + 8 * sent / bandwidth for a worker that sends. The hop is a
+    barrier: it lasts as long as its slowest worker (`_Timeline`)."""
+    out_b = np.asarray(out_bytes, dtype=np.float64)
+    in_b = np.asarray(in_bytes, dtype=np.float64)
+    sends = np.asarray(out_msgs) > 0
+    if not receiver_contention:
+        return np.where(sends, latency_s + link_seconds(out_b, gbps), 0.0)
+    busy = sends | (np.asarray(in_msgs) > 0)
+    return np.where(busy, latency_s + link_seconds(np.maximum(out_b, in_b), gbps), 0.0)
+
+
+def host_link_seconds(nbytes, host_bytes_per_s: float | None):
+    """A worker with an accelerator: the bytes it sends and receives cross the host link
+    (device -> host before sending, host -> device after receiving), in series with the
+    network; 0 without an accelerator."""
+    if not host_bytes_per_s:
+        return 0.0
+    return np.asarray(nbytes, dtype=np.float64) / float(host_bytes_per_s)
 
 
 def ring_allreduce_seconds(size_bytes: float, k: int, gbps: float, latency_us: float) -> float:
@@ -173,8 +204,8 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
                   calibration: dict, speed_factor: float = defaults.SPEED_FACTOR,
                   cores: float | None = None,
                   dropout: float = defaults.DROPOUT, local_pipes: bool = False,
-                  classes: int | None = None, measured_compute: list[dict] | None = None
-                  ) -> dict:
+                  classes: int | None = None, measured_compute: list[dict] | None = None,
+                  receiver_contention: bool = True, worker=None) -> dict:
     """Forecast one training epoch (and one evaluation forward) of a survey plan.
 
     `model`: the survey's "model" (dtype, hops). `cores`: the plan runs on one machine with
@@ -211,6 +242,7 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
 
     stretch = max(1.0, k / cores) if cores else 1.0
     slow = stretch / speed_factor
+    host_bps = worker.host_link_bytes_per_s if worker is not None else None
     elem = elementwise_speed(calibration)
     masks = mask_speed(calibration)
     bandwidth = link_gbps
@@ -219,6 +251,8 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
     latency = latency_us * 1e-6
     call_s = float(calibration.get("exchange_call", {}).get("seconds_per_call", 0.0))
     copy_s = transport_copy_speed(calibration) * slow     # CPU s per byte sent or received
+    if worker is not None:
+        copy_s *= worker.copy_scale
     if measured_compute is not None and len(measured_compute) != k:
         raise InputError(f"plan {plan.get('method')}/{k}: measured compute of "
                          f"{len(measured_compute)} workers given")
@@ -232,24 +266,43 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
         return seconds
 
     def sparse(width):
+        if worker is not None:
+            return count("sparse", worker.seconds(
+                "sparse", *roofline.sparse_cost(nnz, n, n + halo, width, b)) * slow)
         speeds = np.array([sparse_speed(calibration, int(z), int(width)) for z in nnz])
         return count("sparse", (nnz * width / speeds + CALL_OVERHEAD_S) * slow)
 
     def gemm(rows, d_in, d_out):
+        if worker is not None:
+            return count("dense", worker.seconds(
+                "dense", *roofline.dense_cost(rows, d_in, d_out, b)) * slow)
         return count("dense", (2.0 * rows * d_in * d_out / dense_speed(calibration, d_in, d_out)
                                + CALL_OVERHEAD_S) * slow)
 
     def passes(nbytes):
+        if worker is not None:
+            return count("elementwise", worker.seconds(
+                "elementwise", *roofline.elementwise_cost(nbytes, b)) * slow)
         return count("elementwise",
                      (np.asarray(nbytes, dtype=np.float64) / elem + CALL_OVERHEAD_S) * slow)
 
     def row_moves(gathered, added):
         """Rows gathered into send blocks, gradient rows added back at scattered rows."""
+        if worker is not None:
+            gathered, added = np.broadcast_arrays(np.asarray(gathered, np.float64),
+                                                  np.asarray(added, np.float64))
+            t = np.where(gathered > 0, worker.seconds(
+                "gather", *roofline.row_move_cost(gathered)), 0.0) + np.where(
+                added > 0, worker.seconds("scatter", *roofline.row_move_cost(added)), 0.0)
+            return count("row_moves", t * slow)
         t = (np.asarray(gathered, dtype=np.float64) / gather_speed(calibration)
              + np.asarray(added, dtype=np.float64) / scatter_add_speed(calibration))
         return count("row_moves", (t + CALL_OVERHEAD_S) * slow)
 
     def draw_masks(elements):
+        if worker is not None:
+            return count("dropout_masks", worker.seconds(
+                "masks", *roofline.mask_cost(elements, b)) * slow)
         return count("dropout_masks", elements / masks * slow)
 
     def link(rows, width, msgs, in_rows, in_msgs):
@@ -261,7 +314,9 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
         header = frame_header_bytes(dtype, (rows.max() / max(msgs.max(), 1), width))
         out_bytes = rows * width * b + msgs * header
         in_bytes = in_rows * width * b + in_msgs * header
-        wire = np.where(msgs > 0, latency + link_seconds(out_bytes, bandwidth), 0.0)
+        wire = hop_wire_seconds(out_bytes, in_bytes, msgs, in_msgs, latency, bandwidth,
+                                receiver_contention=receiver_contention)
+        wire = wire + host_link_seconds(out_bytes + in_bytes, host_bps)
         return np.where((msgs > 0) | (in_msgs > 0),
                         call_s + np.maximum(wire, copy_s * (out_bytes + in_bytes)), 0.0)
 
@@ -324,6 +379,7 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
         per_rank = steps * call_s + np.maximum(steps * latency
                                                + link_seconds(ring + framing, bandwidth),
                                                copy_s * 2 * (ring + framing))
+        per_rank = per_rank + host_link_seconds(2 * (ring + framing), host_bps)
         train.compute(0.0)
         train.exchange("all-reduce", per_rank, kind="allreduce")
         train.compute(passes(np.full(k, size_bytes * (k - 1) / k * 3)))     # chunk adds
@@ -357,7 +413,9 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
         "bottleneck": max(path, key=path.get),
         "compute_parts_s": {kind: float(v.max()) for kind, v in train_parts.items()},
         "counted_compute_s": float(counted["train"].max()),
-        "compute_source": "measured" if measured_compute is not None else "counted",
+        "compute_source": ("measured" if measured_compute is not None
+                           else "roofline" if worker is not None else "counted"),
+        "receiver_contention": bool(receiver_contention),
         "transport_call_s": call_s,
         "transport_copy_s_per_byte": copy_s,
         "compute_stretch": stretch,
