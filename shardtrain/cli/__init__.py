@@ -25,6 +25,7 @@ COMMANDS = {
     "split": "split",
     "train": "train",
     "forecast": "forecast",
+    "calibrate": "calibrate",
     "report": "report",
 }
 

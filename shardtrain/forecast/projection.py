@@ -492,3 +492,116 @@ def forecast(survey_dict: dict, *, link_gbps_list, latency_us: float, calibratio
         "fastest": _pick(fastest),
         "fewest_meeting_target": _pick(meeting),
     }
+
+
+# ---------------------------------------------------------------- described workers
+
+def plan_memory_bytes(plan: dict) -> int | None:
+    """The predicted peak memory of the plan's largest worker (survey.predict_memory)."""
+    per = [s.get("memory_bytes") for s in plan.get("shards", [])]
+    if per and all(isinstance(m, int) for m in per):
+        return int(max(per))
+    m = plan.get("max_memory_bytes")
+    return int(m) if isinstance(m, int) else None
+
+
+def plan_price(workers: int, epoch_s: float, price_per_hour: float | None) -> dict:
+    """Price of one epoch on `workers` workers at `price_per_hour` each, and of 100
+    epochs (None without a price): workers x price per hour x epoch seconds / 3600."""
+    if price_per_hour is None:
+        return {"price_per_epoch": None, "price_per_100_epochs": None}
+    per_epoch = workers * float(price_per_hour) * float(epoch_s) / 3600.0
+    return {"price_per_epoch": per_epoch, "price_per_100_epochs": 100.0 * per_epoch}
+
+
+def _pick_spec(p: dict | None) -> dict | None:
+    if p is None:
+        return None
+    return {key: p[key] for key in ("spec", "method", "workers", "link_gbps", "epoch_s",
+                                    "price_per_epoch", "price_per_100_epochs")}
+
+
+def _fewest_meeting(plans: list[dict], target: float | None) -> dict | None:
+    """Fewest workers meeting the target among the plans that fit in memory; ties go to
+    the cheaper epoch, then the shorter one."""
+    if target is None:
+        return None
+    ok = [p for p in plans if p["fits_memory"] is not False and p["epoch_s"] <= target]
+    if not ok:
+        return None
+    return min(ok, key=lambda p: (p["workers"], p["price_per_epoch"] or 0.0, p["epoch_s"]))
+
+
+def forecast_on_specs(survey_dict: dict, specs, *, calibration: dict,
+                      target_epoch_s: float | None = None, dropout: float = defaults.DROPOUT,
+                      receiver_contention: bool = True) -> dict:
+    """Forecast every plan of a survey on every described worker (`specs.WorkerSpec`):
+    compute on the worker's roofline (`roofline.WorkerRoofs.of_spec`, efficiencies
+    calibrated in `calibration` unless the spec gives them), the spec's network and
+    latency, each plan's predicted peak memory per worker against the spec's memory (the
+    accelerator's when it has one; a plan that does not fit is marked and never chosen),
+    and its price when the spec has one. With `target_epoch_s`, per spec the fewest
+    workers meeting it, and overall the cheapest plan meeting it (by price per epoch;
+    None when no spec has a price)."""
+    from shardtrain.forecast.roofline import WorkerRoofs
+
+    if target_epoch_s is not None:
+        _check_positive("target_epoch_s", target_epoch_s)
+    model = survey_dict["model"]
+    classes = survey_dict.get("graph", {}).get("classes")
+    plans, per_spec, roofs_out = [], [], []
+    for spec in specs:
+        roofs = WorkerRoofs.of_spec(spec, calibration)
+        roofs_out.append(roofs.to_dict())
+        mine = []
+        for plan in survey_dict["plans"]:
+            p = forecast_plan(plan, model, link_gbps=spec.network_gbps,
+                              latency_us=spec.latency_us, calibration=calibration,
+                              dropout=dropout, classes=classes, worker=roofs,
+                              receiver_contention=receiver_contention)
+            memory = plan_memory_bytes(plan)
+            limit = spec.memory_limit_bytes()
+            p.update(spec=spec.name, memory_bytes=memory, memory_limit_bytes=limit,
+                     fits_memory=None if memory is None else memory <= limit,
+                     price_per_hour=spec.price_per_hour,
+                     **plan_price(p["workers"], p["epoch_s"], spec.price_per_hour))
+            mine.append(p)
+        fitting = [p for p in mine if p["fits_memory"] is not False]
+        fastest = min(fitting, key=lambda p: (p["epoch_s"], p["workers"])) if fitting else None
+        meeting = _fewest_meeting(mine, target_epoch_s)
+        for p in mine:
+            p["fastest"] = p is fastest
+            p["meets_target"] = None if target_epoch_s is None else (
+                p["epoch_s"] <= target_epoch_s and p["fits_memory"] is not False)
+            p["fewest_meeting_target"] = p is meeting
+        per_spec.append({"spec": spec.name, "fastest": _pick_spec(fastest),
+                         "fewest_meeting_target": _pick_spec(meeting),
+                         "plans_fitting_memory": len(fitting), "plans": len(mine)})
+        plans += mine
+    fitting = [p for p in plans if p["fits_memory"] is not False]
+    fastest = min(fitting, key=lambda p: (p["epoch_s"], p["workers"])) if fitting else None
+    priced = [p for p in plans if p["meets_target"] and p["price_per_epoch"] is not None]
+    cheapest = min(priced, key=lambda p: (p["price_per_epoch"], p["epoch_s"])) \
+        if priced else None
+    for p in plans:
+        p["cheapest_meeting_target"] = p is cheapest
+    return {
+        "kind": "forecast",
+        "graph": survey_dict.get("graph", {}),
+        "model": model,
+        "target_epoch_s": target_epoch_s,
+        "dropout": dropout,
+        "calibration": {key: calibration.get(key) for key in
+                        ("dtype", "threads", "calibration_s", "from_flops", "sparse_source")
+                        if key in calibration},
+        "includes_eval": False,
+        "compute_measured": False,
+        "receiver_contention": bool(receiver_contention),
+        "worker_specs": [s.to_dict() for s in specs],
+        "roofs": roofs_out,
+        "plans": plans,
+        "fastest": _pick_spec(fastest),
+        "fewest_meeting_target": _pick_spec(_fewest_meeting(plans, target_epoch_s)),
+        "per_spec": per_spec,
+        "cheapest_meeting_target": _pick_spec(cheapest),
+    }
