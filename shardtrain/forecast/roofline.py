@@ -191,18 +191,18 @@ def calibrated_efficiency(calibration: dict) -> dict:
     b = np.dtype(calibration["dtype"]).itemsize
     out: dict[str, float] = {}
 
-    def eff(nbytes, flops, seconds):
-        return float(roofline_seconds(nbytes, flops, bw, fl)) / max(seconds - CALL_S, 1e-9)
+    def eff(cost: tuple, seconds: float) -> float:
+        return float(roofline_seconds(cost[0], cost[1], bw, fl)) / max(seconds - CALL_S, 1e-9)
 
     sp = []
     for r in calibration["sparse"]:
         rows = r.get("rows", max(r["nnz"] // 10, 1))
         cols = r.get("cols", rows)
         seconds = r.get("seconds") or r["nnz"] * r["width"] / r["nnz_cols_per_s"]
-        sp.append(eff(*sparse_cost(r["nnz"], rows, cols, r["width"], b), seconds))
+        sp.append(eff(sparse_cost(r["nnz"], rows, cols, r["width"], b), seconds))
     out["sparse"] = _geomean(sp)
     out["dense"] = _geomean(
-        eff(*dense_cost(r["rows"], r["d_in"], r["d_out"], b),
+        eff(dense_cost(r["rows"], r["d_in"], r["d_out"], b),
             r.get("seconds") or 2.0 * r["rows"] * r["d_in"] * r["d_out"] / r["flops_per_s"])
         for r in calibration["dense"] if "rows" in r)
     out["elementwise"] = float(calibration["elementwise"]["bytes_per_s"]) / bw
@@ -213,7 +213,8 @@ def calibrated_efficiency(calibration: dict) -> dict:
     else:
         out["gather"], out["scatter"] = out["elementwise"] / 2, out["elementwise"] / 3
     per_element = 1.0 / float(calibration["dropout_masks"]["elements_per_s"])
-    out["masks"] = float(roofline_seconds(*mask_cost(1.0, b), bw, fl)) / per_element
+    mask_bytes, mask_flops = mask_cost(1.0, b)
+    out["masks"] = float(roofline_seconds(mask_bytes, mask_flops, bw, fl)) / per_element
     return out
 
 

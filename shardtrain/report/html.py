@@ -314,7 +314,7 @@ def forecast_specs_section(doc: dict, plot_dir: Path) -> str:
     facts = [("worker specs", doc.get("worker_spec_file")),
              ("target epoch", human_seconds(target) if target else None),
              ("receiver contention", "modelled" if doc.get("receiver_contention") else None)]
-    answer = []
+    answer: list[tuple[str, object]] = []
     for s in doc.get("per_spec", []):
         m = s.get("fewest_meeting_target") if target else s.get("fastest")
         if s.get("plans_fitting_memory") == 0:
