@@ -78,32 +78,48 @@ def test_threads_run_the_dense_products_only():
     assert roofline.parallel_efficiency(0.9, 8) == pytest.approx(0.729)
 
 
-def test_calibrated_efficiency_is_the_roofline_over_the_measured_time():
-    """A made-up calibration: stream 1e10 B/s, GEMM 1e11 flop/s; a dense product of 20 000 x
-    16 x 16 measured in 400 us moves (320 000 + 256 + 320 000) x 4 = 2 561 024 bytes and
-    does 2 x 20 000 x 256 = 1.024e7 flops: roofline max(256.1024 us, 102.4 us) =
-    256.1024 us, efficiency 256.1024 / (400 - 5) = 0.64836; an elementwise pass at 5e9 B/s
-    is 0.5 of the stream."""
+def test_calibrated_ceilings_are_the_roofline_over_the_measured_time():
+    """A made-up calibration: stream 1e10 B/s, GEMM 1e11 flop/s.
+    Dense 20 000 x 16 @ 16 x 16 in 400 us: (320 000 + 256 + 320 000) x 4 = 2 561 024 bytes
+    (256.1024 us at the stream) and 1.024e7 flops (102.4 us): bound by memory, bandwidth
+    ceiling 256.1024 / (400 - 5) = 0.64836.
+    Dense 20 000 x 256 @ 256 x 256 in 40 ms: 2.62144e9 flops (26.2144 ms at the GEMM
+    rate), 41 222 144 bytes (4.12 ms): bound by arithmetic, flop ceiling
+    26.2144 / (40 - 0.005) = 0.65544. An elementwise pass at 5e9 B/s: 0.5 of the stream."""
     cal = dict(FAST, roofline={"stream_bytes_per_s": 1e10, "flops_per_s": 1e11},
                dense=[{"rows": 20_000, "d_in": 16, "d_out": 16, "seconds": 400e-6,
-                       "flops_per_s": 1.024e7 / 400e-6}],
+                       "flops_per_s": 1.024e7 / 400e-6},
+                      {"rows": 20_000, "d_in": 256, "d_out": 256, "seconds": 40e-3,
+                       "flops_per_s": 2.62144e9 / 40e-3}],
                elementwise={"bytes_per_s": 5e9})
+    assert roofline.dense_cost(20_000, 256, 256, 4) == (41_222_144, 2.62144e9)
     eff = roofline.calibrated_efficiency(cal)
-    assert eff["dense"] == pytest.approx(256.1024 / 395, rel=1e-9)
-    assert eff["elementwise"] == pytest.approx(0.5)
-    # the defaults of a datasheet spec: calibrated x the achievable fraction of its peak
+    assert eff["dense"] == {"bandwidth": pytest.approx(256.1024 / 395, rel=1e-9),
+                            "flops": pytest.approx(26.2144 / 39.995, rel=1e-9)}
+    assert eff["elementwise"] == {"bandwidth": pytest.approx(0.5), "flops": 1.0}
+    # the defaults of a datasheet spec: calibrated x the achievable fraction of each roof
     roofs = WorkerRoofs.of_spec(_spec(efficiency={}), cal)
-    assert roofs.efficiency["elementwise"] == pytest.approx(0.5 * 0.8)
-    assert roofs.efficiency["dense"] == pytest.approx(256.1024 / 395 * 0.9)
+    assert roofs.efficiency["elementwise"] == {"bandwidth": pytest.approx(0.5 * 0.8),
+                                               "flops": pytest.approx(0.9)}
+    assert roofs.efficiency["dense"]["flops"] == pytest.approx(26.2144 / 39.995 * 0.9)
+    # one ceiling only: a single kernel bound by memory leaves the flop ceiling at the roof
+    assert roofline.fit_ceilings([(2e9, 1e6, 0.4)], 1e10, 1e11) == {
+        "bandwidth": pytest.approx(0.2 / (0.4 - 5e-6)), "flops": 1.0}
 
 
 def test_a_spec_of_this_machine_gives_back_its_measured_speeds():
     cal = dict(FAST, roofline={"stream_bytes_per_s": 2e10, "flops_per_s": 5e10},
                elementwise={"bytes_per_s": 1.2e10})
     spec = spec_of_this_machine(cal, memory_gib=8.0)
-    assert spec.cores == 1 and spec.memory_bandwidth_gbs == 20.0 and spec.peak_gflops == 50.0
+    # written as a datasheet gives them: measured / the fraction a measurement reaches
+    assert spec.cores == 1 and spec.memory_bandwidth_gbs == 25.0
+    assert spec.peak_gflops == pytest.approx(50.0 / 0.9, abs=1e-4) and not spec.efficiency
     roofs = WorkerRoofs.of_spec(spec, cal)
-    assert roofs.bandwidth["elementwise"] == pytest.approx(1.2e10, rel=1e-4)
+    # ... so that a forecast on it runs every kernel at the speed measured here
+    assert roofs.bandwidth["elementwise"] == pytest.approx(1.2e10, rel=1e-5)
+    assert roofs.flops["dense"] == pytest.approx(
+        5e10 * roofline.calibrated_efficiency(cal)["dense"]["flops"], rel=1e-5)
+    assert roofs.copy_scale == pytest.approx(1.0, rel=1e-5)
     again = parse_specs(parse_toml(specs_to_toml([spec], "c")), "x")
     assert again == [spec]
 
@@ -370,7 +386,8 @@ def test_calibrate_writes_a_spec_of_this_machine(tmp_path, monkeypatch, capsys):
     assert main(["calibrate", "--json", str(tmp_path / "cal.json"),
                  "--spec-out", str(tmp_path / "this.toml")]) == 0
     (spec,) = read_specs(tmp_path / "this.toml")
-    assert spec.cores == 1 and spec.memory_bandwidth_gbs == 8.0 and spec.peak_gflops == 2.0
+    assert spec.cores == 1 and spec.memory_bandwidth_gbs == 10.0     # 8 GB/s / 0.8
+    assert spec.peak_gflops == pytest.approx(2.0 / 0.9, abs=1e-4)
     assert json.loads((tmp_path / "cal.json").read_text()) == made
     # a kept calibration is used as it is, not timed again
     monkeypatch.setattr(cal_mod, "calibrate", lambda dtype="float32": 1 / 0)

@@ -6,9 +6,10 @@ moves B bytes between memory and the cores and does F flops cannot take less tha
 max(B / memory bandwidth, F / peak flop rate). Here every kernel class c of the worker's
 schedule costs
 
-    max(B / (bandwidth x e_c), F / (flop rate x e_c)) + per-call cost
+    max(B / (bandwidth x eb_c), F / (flop rate x ef_c)) + per-call cost
 
-where e_c, the kernel class's efficiency, is the fraction of the roofs it reaches.
+where eb_c and ef_c, the kernel class's efficiencies, are the fractions of the two roofs
+it reaches (its "ceilings" below the roofs, in the paper's words).
 Kernel classes and how their bytes and flops are counted (`*_cost` below):
 - "sparse": CSR (rows x cols, nnz entries) @ dense (cols x w): F = 2 nnz w;
   B = nnz (index + value bytes) + nnz w b (one row of the dense operand gathered per
@@ -25,9 +26,12 @@ Kernel classes and how their bytes and flops are counted (`*_cost` below):
 Calibration (`calibrate.calibrate` records it): this machine's own roofs are measured --
 a triad-style stream (`y = a x + y` in BLAS over arrays far larger than the caches: 3
 arrays x n x b bytes per pass, the STREAM convention of counting the bytes the kernel
-names) and a large single-precision product (`flops of GEMM`) -- and every kernel timed by
-the calibration gives e_c = (its roofline time at the measured roofs) / (its time - the
-per-call cost); a class's efficiency is the geometric mean over its timings.
+names) and a large single-precision product (`flops of GEMM`) -- and every kernel the
+calibration times (at shard-like sizes, `time_kernels`, besides the calibration's own
+small ones) gives the fraction of the binding roof it reached: (bytes / bandwidth) /
+(its time - the per-call cost) when memory binds, (flops / flop rate) / (...) when the
+arithmetic does; a class's ceiling is the geometric mean over its timings of that kind
+(`fit_ceilings`).
 
 Roofs of a described worker (`WorkerRoofs.of_spec`):
 - a CPU worker of C cores with the datasheet's memory bandwidth and peak flop rate:
@@ -41,7 +45,8 @@ Roofs of a described worker (`WorkerRoofs.of_spec`):
   2-thread stream and GEMM against 1 thread); beyond 2 threads we assume each doubling
   keeps the same fraction, P(t) = P(2) ** log2(t) (an assumption: this machine has 2
   cores and cannot check it);
-- e_c: the spec's `efficiency` table when it names c, else this machine's calibrated e_c;
+- eb_c, ef_c: the spec's `efficiency` table when it names c (one number: both), else this
+  machine's calibrated ceilings;
 - a worker with an accelerator runs every kernel on it, at its bandwidth and peak x
   `ACCELERATOR_EFFICIENCY` (common practice, from memory; they cannot be measured here),
   each call paying `ACCELERATOR_CALL_S`, and every halo block and gradient crosses the
@@ -57,8 +62,6 @@ from dataclasses import dataclass, field
 import numpy as np
 
 KERNEL_CLASSES = ("sparse", "dense", "elementwise", "gather", "scatter", "masks")
-# the roof that binds each class on a CPU (for the datasheet fraction of its default)
-FLOP_BOUND = frozenset({"dense", "masks"})
 MASK_FLOPS_PER_ELEMENT = 8.0     # the murmur finaliser: ~8 integer ops per 16-bit uniform
 DATASHEET_STREAM_FRACTION = 0.8  # common practice: triad / theoretical memory bandwidth
 DATASHEET_GEMM_FRACTION = 0.9    # common practice: large GEMM / theoretical peak flop/s
@@ -128,20 +131,25 @@ def _wall_best(fn, repeats: int, budget_s: float) -> float:
 
 def measure_roofs(dtype: str = "float32", threads: int = 1, *, seed: int = 0) -> dict:
     """This machine's stream bandwidth (bytes/s) and GEMM flop rate on `threads` BLAS
-    threads: the roofs of its roofline."""
+    threads: the roofs of its roofline. One thread: thread CPU time (as every kernel of
+    the calibration); more: wall time (the other threads' work is not on this one's
+    clock), so a machine shared with other work measures them low."""
     from scipy.linalg import blas
     from threadpoolctl import threadpool_limits
 
+    from shardtrain.forecast.calibrate import _best_time
+
     dt = np.dtype(dtype)
     rng = np.random.default_rng(seed)
-    x = rng.standard_normal(STREAM_ELEMENTS).astype(dt)
-    y = rng.standard_normal(STREAM_ELEMENTS).astype(dt)
+    x = rng.random(STREAM_ELEMENTS, dtype=np.float32).astype(dt, copy=False)
+    y = rng.random(STREAM_ELEMENTS, dtype=np.float32).astype(dt, copy=False)
     axpy = blas.saxpy if dt == np.float32 else blas.daxpy
-    a = rng.standard_normal((GEMM_SIZE, GEMM_SIZE)).astype(dt)
-    c = rng.standard_normal((GEMM_SIZE, GEMM_SIZE)).astype(dt)
+    a = rng.random((GEMM_SIZE, GEMM_SIZE), dtype=np.float32).astype(dt, copy=False)
+    c = rng.random((GEMM_SIZE, GEMM_SIZE), dtype=np.float32).astype(dt, copy=False)
+    best = _best_time if threads == 1 else _wall_best
     with threadpool_limits(limits=int(threads)):
-        stream_s = _wall_best(lambda: axpy(x, y, a=0.5), repeats=8, budget_s=0.6)
-        gemm_s = _wall_best(lambda: a @ c, repeats=6, budget_s=0.6)
+        stream_s = best(lambda: axpy(x, y, a=0.5), repeats=8, budget_s=0.6)
+        gemm_s = best(lambda: a @ c, repeats=6, budget_s=0.6)
     return {"threads": int(threads),
             "stream_bytes_per_s": 3.0 * x.nbytes / stream_s,
             "flops_per_s": 2.0 * GEMM_SIZE ** 3 / gemm_s,
@@ -149,8 +157,54 @@ def measure_roofs(dtype: str = "float32", threads: int = 1, *, seed: int = 0) ->
             "load_average": os.getloadavg()[0]}
 
 
+KERNEL_ROWS = 150_000             # rows of the timed kernels: their arrays beyond the caches
+SPARSE_KERNEL_WIDTHS = (16, 64, 256)
+DENSE_KERNEL_SHAPES = ((16, 16), (64, 16), (16, 6), (128, 128), (256, 64))
+ELEMENTWISE_KERNEL_WIDTH = 64
+
+
+def time_kernels(dtype: str = "float32", *, seed: int = 1) -> list[dict]:
+    """One thread's time of the sparse, dense and elementwise kernels at shard-like sizes
+    (`KERNEL_ROWS` rows, arrays larger than the caches, as a shard's are), with the bytes
+    and flops the roofline counts for each: what its efficiencies are calibrated on.
+    The sparse matrix is `calibrate._local_csr` (neighbours near the row, a tenth
+    anywhere)."""
+    from threadpoolctl import threadpool_limits
+
+    from shardtrain.forecast.calibrate import _best_time, _local_csr
+
+    dt = np.dtype(dtype)
+    b = dt.itemsize
+    rng = np.random.default_rng(seed)
+    n = KERNEL_ROWS
+    out = []
+    with threadpool_limits(limits=1):
+        a = _local_csr(n, 10, rng, dt)
+        for w in SPARSE_KERNEL_WIDTHS:
+            x = rng.random((n, w), dtype=np.float32).astype(dt, copy=False)
+            t = _best_time(lambda: a @ x, repeats=2, budget_s=0.2)
+            nbytes, flops = sparse_cost(a.nnz, n, n, w, b)
+            out.append({"class": "sparse", "nnz": int(a.nnz), "rows": n, "width": w,
+                        "bytes": float(nbytes), "flops": float(flops), "seconds": t})
+        for d_in, d_out in DENSE_KERNEL_SHAPES:
+            h = rng.random((n, d_in), dtype=np.float32).astype(dt, copy=False)
+            wt = rng.random((d_in, d_out), dtype=np.float32).astype(dt, copy=False)
+            t = _best_time(lambda: h @ wt, repeats=3, budget_s=0.2)
+            nbytes, flops = dense_cost(n, d_in, d_out, b)
+            out.append({"class": "dense", "rows": n, "d_in": d_in, "d_out": d_out,
+                        "bytes": float(nbytes), "flops": float(flops), "seconds": t})
+        v = rng.random(n * ELEMENTWISE_KERNEL_WIDTH, dtype=np.float32).astype(dt, copy=False) - 0.5
+        y = np.empty_like(v)
+        t = _best_time(lambda: np.maximum(v, 0, out=y), repeats=4, budget_s=0.3)
+        nbytes, flops = elementwise_cost(2 * v.nbytes, b)
+        out.append({"class": "elementwise", "elements": int(v.size), "bytes": float(nbytes),
+                    "flops": float(flops), "seconds": t})
+    return out
+
+
 def roofline_calibration(dtype: str = "float32") -> dict:
-    """The calibration's "roofline" entry: roofs on 1 and 2 threads."""
+    """The calibration's "roofline" entry: roofs on 1 and 2 threads, and the kernels
+    timed at shard-like sizes (`time_kernels`)."""
     one = measure_roofs(dtype, 1)
     two = measure_roofs(dtype, 2)
     return {"stream_bytes_per_s": one["stream_bytes_per_s"],
@@ -158,6 +212,7 @@ def roofline_calibration(dtype: str = "float32") -> dict:
             "two_threads": {"stream_bytes_per_s": two["stream_bytes_per_s"],
                             "flops_per_s": two["flops_per_s"]},
             "parallel_efficiency_2": parallel_efficiency_2(one, two),
+            "kernels": time_kernels(dtype),
             "load_average": one["load_average"]}
 
 
@@ -181,41 +236,64 @@ def _geomean(values) -> float:
     return float(np.exp(np.log(v).mean())) if v.size else 1.0
 
 
+def fit_ceilings(timings, bandwidth: float, flop_rate: float) -> dict:
+    """The two ceilings of one kernel class from its timings [(bytes, flops, seconds)]:
+    e_bandwidth = geometric mean of (bytes / bandwidth) / (seconds - per-call cost) over
+    the timings bound by memory, e_flops the same in flops over those bound by arithmetic;
+    which roof binds a timing is decided at the fitted ceilings (two rounds, starting from
+    the peaks). A ceiling no timing is bound by stays at the roof (1)."""
+    rows = [(float(b) / bandwidth, float(f) / flop_rate, max(float(t) - CALL_S, 1e-9))
+            for b, f, t in timings]
+    e_b = e_f = 1.0
+    for _ in range(2):
+        mem = [tb / t for tb, tf, t in rows if tb / e_b >= tf / e_f]
+        ari = [tf / t for tb, tf, t in rows if tb / e_b < tf / e_f]
+        e_b, e_f = (_geomean(mem) if mem else 1.0), (_geomean(ari) if ari else 1.0)
+    return {"bandwidth": e_b, "flops": e_f}
+
+
 def calibrated_efficiency(calibration: dict) -> dict:
-    """e_c of this machine for every kernel class, from the calibration's own timings and
-    its measured roofs (`calibration["roofline"]`); {} when it has no roofs."""
+    """This machine's ceilings {class: {"bandwidth": e, "flops": e}} (fractions of its
+    measured stream and GEMM roofs, `fit_ceilings`) from the calibration's own timings;
+    {} when it has no roofs. The kernels timed at shard-like sizes (`time_kernels`) are
+    used where there are some (a shard's arrays are beyond the caches, the calibration's
+    small kernels are not); the sparse products measured on the graph's own matrix
+    (`calibrate.with_graph_sparse`) before everything."""
     roof = calibration.get("roofline")
     if not roof:
         return {}
     bw, fl = float(roof["stream_bytes_per_s"]), float(roof["flops_per_s"])
     b = np.dtype(calibration["dtype"]).itemsize
-    out: dict[str, float] = {}
-
-    def eff(cost: tuple, seconds: float) -> float:
-        return float(roofline_seconds(cost[0], cost[1], bw, fl)) / max(seconds - CALL_S, 1e-9)
-
-    sp = []
+    timings: dict[str, list] = {c: [] for c in KERNEL_CLASSES}
     for r in calibration["sparse"]:
         rows = r.get("rows", max(r["nnz"] // 10, 1))
-        cols = r.get("cols", rows)
         seconds = r.get("seconds") or r["nnz"] * r["width"] / r["nnz_cols_per_s"]
-        sp.append(eff(sparse_cost(r["nnz"], rows, cols, r["width"], b), seconds))
-    out["sparse"] = _geomean(sp)
-    out["dense"] = _geomean(
-        eff(dense_cost(r["rows"], r["d_in"], r["d_out"], b),
-            r.get("seconds") or 2.0 * r["rows"] * r["d_in"] * r["d_out"] / r["flops_per_s"])
-        for r in calibration["dense"] if "rows" in r)
-    out["elementwise"] = float(calibration["elementwise"]["bytes_per_s"]) / bw
+        timings["sparse"].append((*sparse_cost(r["nnz"], rows, r.get("cols", rows),
+                                               r["width"], b), seconds))
+    for r in calibration["dense"]:
+        if "rows" in r:
+            seconds = r.get("seconds") or \
+                2.0 * r["rows"] * r["d_in"] * r["d_out"] / r["flops_per_s"]
+            timings["dense"].append((*dense_cost(r["rows"], r["d_in"], r["d_out"], b),
+                                     seconds))
+    elem = float(calibration["elementwise"]["bytes_per_s"])
+    timings["elementwise"].append((elem, elem / b, 1.0 + CALL_S))
+    kernels = roof.get("kernels") or []
+    for c in ("sparse", "dense", "elementwise"):
+        if c == "sparse" and calibration.get("sparse_source") == "graph":
+            continue
+        timed = [(k["bytes"], k["flops"], k["seconds"]) for k in kernels
+                 if k.get("class") == c]
+        if timed:
+            timings[c] = timed
     moves = calibration.get("row_moves")
-    if moves:
-        out["gather"] = float(moves["gather_bytes_per_s"]) * 2.0 / bw
-        out["scatter"] = float(moves["scatter_add_bytes_per_s"]) * 2.0 / bw
-    else:
-        out["gather"], out["scatter"] = out["elementwise"] / 2, out["elementwise"] / 3
-    per_element = 1.0 / float(calibration["dropout_masks"]["elements_per_s"])
-    mask_bytes, mask_flops = mask_cost(1.0, b)
-    out["masks"] = float(roofline_seconds(mask_bytes, mask_flops, bw, fl)) / per_element
-    return out
+    gather = float(moves["gather_bytes_per_s"]) if moves else elem / 2
+    scatter = float(moves["scatter_add_bytes_per_s"]) if moves else elem / 3
+    timings["gather"].append((2.0 * gather, 0.0, 1.0 + CALL_S))
+    timings["scatter"].append((2.0 * scatter, 0.0, 1.0 + CALL_S))
+    per_second = float(calibration["dropout_masks"]["elements_per_s"])
+    timings["masks"].append((*mask_cost(per_second, b), 1.0 + CALL_S))
+    return {c: fit_ceilings(timings[c], bw, fl) for c in KERNEL_CLASSES}
 
 
 # ---------------------------------------------------------------- a described worker
@@ -228,7 +306,7 @@ class WorkerRoofs:
     bandwidth: dict            # class -> achieved bytes/s
     flops: dict                # class -> achieved flop/s
     call_s: float
-    efficiency: dict           # class -> e_c used
+    efficiency: dict           # class -> {"bandwidth": e, "flops": e} used
     threads: dict              # class -> threads it runs on
     host_link_bytes_per_s: float | None = None   # accelerator: host <-> device
     copy_scale: float = 1.0    # transport copying: this machine's stream / the worker's
@@ -239,7 +317,8 @@ class WorkerRoofs:
                                 self.call_s)
 
     def to_dict(self) -> dict:
-        return {"name": self.name, "efficiency": dict(self.efficiency),
+        return {"name": self.name, "efficiency": {c: dict(e) for c, e in
+                                                  self.efficiency.items()},
                 "bandwidth_bytes_per_s": dict(self.bandwidth),
                 "flops_per_s": dict(self.flops), "call_s": self.call_s,
                 "threads": dict(self.threads),
@@ -247,8 +326,9 @@ class WorkerRoofs:
 
     @classmethod
     def of_spec(cls, spec, calibration: dict) -> WorkerRoofs:
-        """The roofs of `spec` (a `specs.WorkerSpec`), efficiencies from the spec or
-        calibrated on this machine (`calibration` must hold its "roofline")."""
+        """The roofs of `spec` (a `specs.WorkerSpec`), efficiencies from the spec (one
+        number per class: both ceilings) or calibrated on this machine (`calibration`
+        must hold its "roofline")."""
         here = calibrated_efficiency(calibration)
         if not here:
             raise ValueError("the calibration has no roofline: time it again")
@@ -256,38 +336,45 @@ class WorkerRoofs:
         p2 = roof.get("parallel_efficiency_2", {"bandwidth": 1.0, "flops": 1.0})
         acc = spec.accelerator
         notes = []
+        here_elem = here["elementwise"]["bandwidth"]
         if acc is not None:
-            eff = {c: float(acc.efficiency.get(c, ACCELERATOR_EFFICIENCY[c]))
+            eff = {c: _both(acc.efficiency.get(c, ACCELERATOR_EFFICIENCY[c]))
                    for c in KERNEL_CLASSES}
-            bw = {c: acc.memory_bandwidth_gbs * 1e9 * eff[c] for c in KERNEL_CLASSES}
-            fl = {c: acc.peak_gflops * 1e9 * eff[c] for c in KERNEL_CLASSES}
+            bw = {c: acc.memory_bandwidth_gbs * 1e9 * eff[c]["bandwidth"]
+                  for c in KERNEL_CLASSES}
+            fl = {c: acc.peak_gflops * 1e9 * eff[c]["flops"] for c in KERNEL_CLASSES}
             notes.append("kernels on the accelerator; efficiencies "
                          + ("from the spec" if acc.efficiency else "common practice defaults"))
             host_bw = spec.memory_bandwidth_gbs * 1e9 * DATASHEET_STREAM_FRACTION \
-                / spec.cores * here["elementwise"]
+                / spec.cores * here_elem
             return cls(spec.name, bw, fl, ACCELERATOR_CALL_S, eff,
                        {c: 1 for c in KERNEL_CLASSES},
                        host_link_bytes_per_s=acc.host_link_gbs * 1e9,
-                       copy_scale=float(roof["stream_bytes_per_s"]) * here["elementwise"]
-                       / host_bw, notes=notes)
+                       copy_scale=float(roof["stream_bytes_per_s"]) * here_elem / host_bw,
+                       notes=notes)
         eff = {}
         for c in KERNEL_CLASSES:
             if c in spec.efficiency:
-                eff[c] = float(spec.efficiency[c])
-            else:
-                eff[c] = here[c] * (DATASHEET_GEMM_FRACTION if c in FLOP_BOUND
-                                    else DATASHEET_STREAM_FRACTION)
+                eff[c] = _both(spec.efficiency[c])
+            else:   # this machine's ceilings, as fractions of a datasheet's figures
+                eff[c] = {"bandwidth": here[c]["bandwidth"] * DATASHEET_STREAM_FRACTION,
+                          "flops": here[c]["flops"] * DATASHEET_GEMM_FRACTION}
         threads = {c: (spec.cores if c == "dense" else 1) for c in KERNEL_CLASSES}
         bw, fl = {}, {}
         for c in KERNEL_CLASSES:
             t = threads[c]
             share_bw = t * parallel_efficiency(p2["bandwidth"], t) / spec.cores
             share_fl = t * parallel_efficiency(p2["flops"], t) / spec.cores
-            bw[c] = spec.memory_bandwidth_gbs * 1e9 * eff[c] * share_bw
-            fl[c] = spec.peak_gflops * 1e9 * eff[c] * share_fl
+            bw[c] = spec.memory_bandwidth_gbs * 1e9 * eff[c]["bandwidth"] * share_bw
+            fl[c] = spec.peak_gflops * 1e9 * eff[c]["flops"] * share_fl
         if spec.cores > 2:
             notes.append(f"parallel efficiency beyond 2 threads assumed P(t) = P(2)^log2(t)"
                          f" (P(2) = {p2['flops']:.2f} for flops)")
         # copying frames is a streaming pass on one thread: scale this machine's cost
-        copy_scale = float(roof["stream_bytes_per_s"]) * here["elementwise"] / bw["elementwise"]
+        copy_scale = float(roof["stream_bytes_per_s"]) * here_elem / bw["elementwise"]
         return cls(spec.name, bw, fl, CALL_S, eff, threads, copy_scale=copy_scale, notes=notes)
+
+
+def _both(value) -> dict:
+    """A spec's one efficiency number for a class: both of its ceilings."""
+    return {"bandwidth": float(value), "flops": float(value)}

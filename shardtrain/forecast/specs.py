@@ -246,11 +246,13 @@ def specs_to_toml(specs: list[WorkerSpec], comment: str = "") -> str:
 def spec_of_this_machine(calibration: dict, *, name: str = "this-machine",
                          memory_gib: float | None = None, network_gbps: float = 10.0,
                          latency_us: float = 20.0) -> WorkerSpec:
-    """A spec of one core of this machine from its calibration: the measured stream and
-    GEMM roofs as its bandwidth and peak, its calibrated kernel efficiencies written out
-    (so a forecast on this spec uses exactly what was measured here), its memory (total
-    RAM unless given); the network is not measured: `network_gbps`, `latency_us`."""
-    from shardtrain.forecast.roofline import calibrated_efficiency
+    """A spec of one core of this machine from its calibration, written as a datasheet
+    would give it: its measured stream bandwidth / `DATASHEET_STREAM_FRACTION` and GEMM
+    flop rate / `DATASHEET_GEMM_FRACTION` (the figures a datasheet would show for what
+    was measured), no efficiency table (so a forecast on this spec uses this machine's
+    calibrated efficiencies, on the user's graph where it was measured), its memory
+    (total RAM unless given). The network is not measured: `network_gbps`, `latency_us`."""
+    from shardtrain.forecast.roofline import DATASHEET_GEMM_FRACTION, DATASHEET_STREAM_FRACTION
 
     roof = calibration.get("roofline")
     if not roof:
@@ -258,9 +260,9 @@ def spec_of_this_machine(calibration: dict, *, name: str = "this-machine",
     if memory_gib is None:
         import os
         memory_gib = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES") / GIB
-    eff = {k: round(v, 4) for k, v in calibrated_efficiency(calibration).items()}
-    return WorkerSpec(name=name, cores=1, memory_gib=round(float(memory_gib), 2),
-                      memory_bandwidth_gbs=round(roof["stream_bytes_per_s"] / 1e9, 3),
-                      peak_gflops=round(roof["flops_per_s"] / 1e9, 3),
-                      network_gbps=float(network_gbps), latency_us=float(latency_us),
-                      efficiency=eff)
+    return WorkerSpec(
+        name=name, cores=1, memory_gib=round(float(memory_gib), 2),
+        memory_bandwidth_gbs=round(roof["stream_bytes_per_s"] / 1e9
+                                   / DATASHEET_STREAM_FRACTION, 4),
+        peak_gflops=round(roof["flops_per_s"] / 1e9 / DATASHEET_GEMM_FRACTION, 4),
+        network_gbps=float(network_gbps), latency_us=float(latency_us))
