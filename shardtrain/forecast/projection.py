@@ -14,9 +14,11 @@ The epoch follows the worker's schedule, step by step, for every worker at once:
   the counted proportions;
 - halo exchange, one per layer and direction that moves bytes: the link model of
   `shardtrain.transport.link` -- each worker has one full-duplex interface; the frames it
-  sends in one exchange leave one after the other, so it is done after
-  latency + 8 * (its payload + framing bytes) / bandwidth. An exchange is a barrier for the
-  workers that take part, so the hop takes as long as its busiest sender;
+  sends in one exchange leave one after the other, and the frames it receives come in one
+  after the other (receiver contention: several peers sending to one worker share its
+  interface), so it is done after latency + 8 * max(bytes it sends, bytes it receives,
+  payload + framing) / bandwidth (`hop_wire_seconds`). An exchange is a barrier for the
+  workers that take part, so the hop takes as long as its busiest worker;
 - all-reduce: ring (Patarasuk & Yuan 2009), 2(k-1) steps, each one link call carrying one
   chunk of about size/k elements: 2(k-1) x (latency + 8 * chunk bytes / bandwidth);
 - every transport call (exchange or ring step) also pays the calibrated fixed cost of a
@@ -37,6 +39,12 @@ The epoch follows the worker's schedule, step by step, for every worker at once:
   compares the forecast CPU with the run's);
 - waiting: exchanges synchronise, so between two of them every worker waits for the
   slowest: wait = max - own, per compute phase and per exchange.
+
+- on a described worker (`forecast_on_specs`, `shardtrain forecast --worker-spec`), every
+  kernel is costed on the worker's roofline instead (`forecast.roofline`), a worker with an
+  accelerator also moves its halo blocks and gradients over the host link
+  (`host_link_seconds`), each plan's predicted peak memory per worker is checked against the
+  worker's memory, and its price per epoch is the workers' price per hour x epoch / 3600.
 
 `epoch_s` is the critical path of one training step (forward, loss, backward, all-reduce,
 Adam step). The evaluation forward (no dropout, forward exchanges only) that the trainer
@@ -216,7 +224,10 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
     worker (in worker order): each worker's compute phases are then scaled so that they add
     up to its measured CPU seconds of a training step (and of an evaluation forward),
     keeping the counted split between exchanges. The calibration's `exchange_call` (when
-    present) adds its fixed cost to every transport call.
+    present) adds its fixed cost to every transport call. `worker`: a
+    `roofline.WorkerRoofs`: every kernel costed on its roofline (speed_factor then 1).
+    `receiver_contention`: False gives the model without it (a hop as long as its busiest
+    sender), kept to compare.
     Returns the plan-level critical path and a per-worker split.
     """
     _check_positive("link_gbps", link_gbps)
