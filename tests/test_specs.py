@@ -393,3 +393,25 @@ def test_calibrate_writes_a_spec_of_this_machine(tmp_path, monkeypatch, capsys):
     monkeypatch.setattr(cal_mod, "calibrate", lambda dtype="float32": 1 / 0)
     assert main(["calibrate", "--json", str(tmp_path / "cal.json")]) == 0
     assert "kept" in capsys.readouterr().out
+
+
+def test_forecast_shape_checks_the_new_keys():
+    """documents.FORECAST names the keys a forecast on worker specs adds: a hand-edited
+    value of the wrong kind is refused naming the key."""
+    out = fc.forecast_on_specs(_survey_with_memory(), [_spec(price_per_hour=1.0)],
+                               calibration=FAST, target_epoch_s=100.0)
+    doc = json.loads(json.dumps(out))
+    documents.validate(json.loads(json.dumps(doc)), "forecast", "f.json")
+    for path, bad, key in ((("plans", 0, "fits_memory"), "yes", "plans[0].fits_memory"),
+                           (("plans", 0, "price_per_epoch"), -1, "plans[0].price_per_epoch"),
+                           (("cheapest_meeting_target", "spec"), 3,
+                            "cheapest_meeting_target.spec"),
+                           (("per_spec", 0, "fewest_meeting_target"), "x",
+                            "per_spec[0].fewest_meeting_target")):
+        edited = json.loads(json.dumps(doc))
+        node = edited
+        for part in path[:-1]:
+            node = node[part]
+        node[path[-1]] = bad
+        with pytest.raises(InputError, match=key.replace("[", r"\[").replace("]", r"\]")):
+            documents.validate(edited, "forecast", "f.json")
