@@ -234,8 +234,11 @@ class Calibration(Document):
     extra: dict = field(default_factory=dict)
 
 
-def calibrate(dtype: str = "float32", *, seed: int = 0) -> dict:
-    """Time sparse, dense and elementwise kernels with BLAS on one thread (a few seconds)."""
+def calibrate(dtype: str = "float32", *, seed: int = 0, roofline: bool = True) -> dict:
+    """Time sparse, dense and elementwise kernels with BLAS on one thread (a few seconds).
+    `roofline=False` leaves out the roofs and shard-sized kernels of the roofline model
+    (a few seconds more; only a forecast on worker specs needs them): such a calibration is
+    for use at once, not for a file (the calibration shape requires them)."""
     if dtype not in ("float32", "float64"):
         raise ParameterError("dtype", f"{dtype!r} is not float32 or float64")
     rng = np.random.default_rng(seed)
@@ -248,7 +251,7 @@ def calibrate(dtype: str = "float32", *, seed: int = 0) -> dict:
         rows = _time_row_moves(np.dtype(dtype), rng)
     from shardtrain.forecast.roofline import roofline_calibration
 
-    roofs = roofline_calibration(dtype)
+    roofs = roofline_calibration(dtype) if roofline else ABSENT
     pipe = _time_pipe()
     call = exchange_call_seconds()
     copy = transport_copy_seconds(fixed_cpu_s=call["cpu_s_per_call"])
