@@ -415,3 +415,14 @@ def test_forecast_shape_checks_the_new_keys():
         node[path[-1]] = bad
         with pytest.raises(InputError, match=key.replace("[", r"\[").replace("]", r"\]")):
             documents.validate(edited, "forecast", "f.json")
+
+
+def test_calibrate_refuses_a_file_that_is_not_a_calibration(run_cli, tmp_path):
+    (tmp_path / "other.json").write_text(json.dumps({"plans": []}))
+    r = run_cli("calibrate", "--json", tmp_path / "other.json", "--spec-out",
+                tmp_path / "this.toml")
+    assert r.returncode == 2
+    lines = r.stderr.strip().splitlines()
+    assert len(lines) == 1 and lines[0].count("--json") == 1 and "other.json" in lines[0]
+    assert not (tmp_path / "this.toml").exists()
+    assert json.loads((tmp_path / "other.json").read_text()) == {"plans": []}
