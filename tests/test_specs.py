@@ -53,7 +53,9 @@ def test_roofline_worked_examples():
     Sparse, nnz 1000, 100 x 150, width 16, 4-byte index and value: B = 1000 x 8 + 1000 x
     16 x 4 + 100 x 16 x 4 + 101 x 4 = 78 804 bytes, F = 32 000 flops: 15.7608 us (bound
     by bandwidth) + 5 us."""
-    roofs = WorkerRoofs.of_spec(_spec(), FAST)
+    # (this machine's one core streams 100 GB/s here: it does not cap the spec's 10)
+    cal = dict(FAST, roofline=dict(FAST["roofline"], stream_bytes_per_s=1e11))
+    roofs = WorkerRoofs.of_spec(_spec(), cal)
     assert roofs.bandwidth["dense"] == pytest.approx(5e9)
     assert roofs.flops["dense"] == pytest.approx(50e9)
     b, f = roofline.dense_cost(1000, 64, 32, 4)
@@ -65,14 +67,23 @@ def test_roofline_worked_examples():
 
 
 def test_threads_run_the_dense_products_only():
-    """A 4-core worker: the dense products (BLAS) on 4 threads at 4 x P(4) / 4 of the
-    roofs, P(4) = P(2)^2; the sparse and elementwise kernels on one thread, 1/4 of them."""
+    """A 4-core worker of 400 GFLOP/s and 40 GB/s, every ceiling 0.5, on a machine whose one
+    core streams 4 GB/s (5 GB/s in datasheet terms, / 0.8): the dense products (BLAS) on 4
+    threads get 4 x P(4) / 4 of the flop rate, P(4) = P(2)^2 = 0.81, and min(40, 4 x 0.64 x
+    5) = 12.8 GB/s of bandwidth; the sparse and elementwise kernels on one thread get 1/4
+    of the flop rate and min(40, 5) = 5 GB/s, each x 0.5."""
     cal = dict(FAST, roofline=dict(FAST["roofline"],
                                    parallel_efficiency_2={"bandwidth": 0.8, "flops": 0.9}))
+    assert FAST["roofline"]["stream_bytes_per_s"] == 4e9
     roofs = WorkerRoofs.of_spec(_spec(cores=4, peak_gflops=400.0, memory_bandwidth_gbs=40.0),
                                 cal)
     assert roofs.flops["dense"] == pytest.approx(400e9 * 0.5 * 0.81)
-    assert roofs.bandwidth["sparse"] == pytest.approx(40e9 * 0.5 / 4)
+    assert roofs.bandwidth["dense"] == pytest.approx(12.8e9 * 0.5)
+    assert roofs.flops["sparse"] == pytest.approx(400e9 * 0.5 / 4)
+    assert roofs.bandwidth["sparse"] == pytest.approx(5e9 * 0.5)
+    # a worker whose total is below one core's here: its total caps every kernel
+    small = WorkerRoofs.of_spec(_spec(memory_bandwidth_gbs=2.0), cal)
+    assert small.bandwidth["sparse"] == pytest.approx(2e9 * 0.5)
     assert roofs.threads == {"sparse": 1, "dense": 4, "elementwise": 1, "gather": 1,
                              "scatter": 1, "masks": 1}
     assert roofline.parallel_efficiency(0.9, 8) == pytest.approx(0.729)

@@ -37,8 +37,12 @@ Roofs of a described worker (`WorkerRoofs.of_spec`):
 - a CPU worker of C cores with the datasheet's memory bandwidth and peak flop rate:
   achievable roofs = datasheet x `DATASHEET_STREAM_FRACTION` (bandwidth) and
   x `DATASHEET_GEMM_FRACTION` (flops) (common practice: a triad reaches about 80 % of the
-  theoretical memory bandwidth, a large GEMM about 90 % of the peak), shared evenly by its
-  cores; a kernel on t threads gets t x P(t) / C of them, P the parallel efficiency.
+  theoretical memory bandwidth, a large GEMM about 90 % of the peak). A kernel on t
+  threads gets t x P(t) / C of the flop rate (P the parallel efficiency), and of the
+  bandwidth min(the worker's, t x P(t) x one core's), one core's being what one core of
+  this machine draws (its measured stream, in datasheet terms / the same fraction): an
+  assumption -- one core's bandwidth is bounded by the misses it keeps in flight, which
+  varies less between machines than their totals do, and a datasheet does not give it.
   Which kernels run on several threads is the worker's code as it is: the dense products
   (BLAS, `--threads`) on C threads; the sparse products (scipy), the elementwise passes,
   the row moves and the masks (numpy) on one. P(1) = 1; P(2) is measured here (the
@@ -360,12 +364,14 @@ class WorkerRoofs:
                 eff[c] = {"bandwidth": here[c]["bandwidth"] * DATASHEET_STREAM_FRACTION,
                           "flops": here[c]["flops"] * DATASHEET_GEMM_FRACTION}
         threads = {c: (spec.cores if c == "dense" else 1) for c in KERNEL_CLASSES}
+        # one core's bandwidth, in datasheet terms (x the efficiency gives what it draws)
+        core_bw = float(roof["stream_bytes_per_s"]) / DATASHEET_STREAM_FRACTION
         bw, fl = {}, {}
         for c in KERNEL_CLASSES:
             t = threads[c]
-            share_bw = t * parallel_efficiency(p2["bandwidth"], t) / spec.cores
+            cores_bw = t * parallel_efficiency(p2["bandwidth"], t) * core_bw
             share_fl = t * parallel_efficiency(p2["flops"], t) / spec.cores
-            bw[c] = spec.memory_bandwidth_gbs * 1e9 * eff[c]["bandwidth"] * share_bw
+            bw[c] = min(spec.memory_bandwidth_gbs * 1e9, cores_bw) * eff[c]["bandwidth"]
             fl[c] = spec.peak_gflops * 1e9 * eff[c]["flops"] * share_fl
         if spec.cores > 2:
             notes.append(f"parallel efficiency beyond 2 threads assumed P(t) = P(2)^log2(t)"
