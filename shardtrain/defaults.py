@@ -67,3 +67,6 @@ DEMO_LINKS_GBPS = (1.0, 10.0)
 def listed(values) -> str:
     """(2, 4, 8) -> '2,4,8' and (1.0, 10.0) -> '1,10': a list default as an option takes it."""
     return ",".join(f"{v:g}" if isinstance(v, float) else str(v) for v in values)
+
+# calibrate --spec-out: the network of the written spec (this machine's is not measured)
+SPEC_NETWORK_GBPS = 10.0

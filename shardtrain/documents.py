@@ -389,17 +389,34 @@ FORECAST_PLAN = Obj(required={"method": Str(max_len=256), "workers": WORKERS,
                                                    "compute_s", "exchange_s", "allreduce_s",
                                                    "wait_s")}), max_len=MAX_WORKERS),
                         "steps": List(Obj(optional={"seconds": SECONDS_OR_NULL})),
-                        "fastest": Bool(), "fewest_meeting_target": Bool()})
+                        "fastest": Bool(), "fewest_meeting_target": Bool(),
+                        # forecast --worker-spec: the described worker, memory fit, price
+                        "spec": Str(max_len=256), "memory_bytes": Int(min=0, nullable=True),
+                        "memory_limit_bytes": COUNT, "fits_memory": Bool(nullable=True),
+                        "price_per_hour": Num(min=0, nullable=True),
+                        "price_per_epoch": Num(min=0, nullable=True),
+                        "price_per_100_epochs": Num(min=0, nullable=True),
+                        "cheapest_meeting_target": Bool(), "receiver_contention": Bool()})
 PICKED = Obj(required={"method": Str(), "workers": WORKERS,
                        "link_gbps": Num(min=0, above=True), "epoch_s": SECONDS},
+             optional={"spec": Str(max_len=256), "price_per_epoch": Num(min=0, nullable=True),
+                       "price_per_100_epochs": Num(min=0, nullable=True)},
              nullable=True)
+SPEC_ANSWER = Obj(required={"spec": Str(max_len=256), "fastest": PICKED,
+                            "fewest_meeting_target": PICKED},
+                  optional={"plans_fitting_memory": COUNT, "plans": COUNT})
 FORECAST = Obj(required={"plans": List(FORECAST_PLAN, min_len=1)},
                optional={"kind": Str(choices=("forecast",)), "graph": GRAPH_FACTS,
                          "model": Obj(), "latency_us": Num(min=0),
                          "speed_factor": Num(min=0, above=True),
                          "target_epoch_s": Num(min=0, above=True, nullable=True),
                          "cores": Int(min=1, nullable=True), "fastest": PICKED,
-                         "fewest_meeting_target": PICKED})
+                         "fewest_meeting_target": PICKED,
+                         "per_spec": List(SPEC_ANSWER, max_len=256),
+                         "cheapest_meeting_target": PICKED,
+                         "worker_specs": List(Obj(required={"name": Str(max_len=256)}),
+                                              max_len=256),
+                         "receiver_contention": Bool()})
 
 POSITIVE = Num(min=0, above=True)
 CALIBRATION = Obj(required={
@@ -409,7 +426,13 @@ CALIBRATION = Obj(required={
     "dense": List(Obj(required={"d_in": Int(min=1), "d_out": Int(min=1),
                                 "flops_per_s": POSITIVE}), min_len=1, max_len=4096),
     "elementwise": Obj(required={"bytes_per_s": POSITIVE}),
-    "dropout_masks": Obj(required={"elements_per_s": POSITIVE})},
+    "dropout_masks": Obj(required={"elements_per_s": POSITIVE}),
+    "roofline": Obj(required={"stream_bytes_per_s": POSITIVE, "flops_per_s": POSITIVE},
+                    optional={"two_threads": Obj(required={"stream_bytes_per_s": POSITIVE,
+                                                           "flops_per_s": POSITIVE}),
+                              "parallel_efficiency_2": Obj(required={
+                                  "bandwidth": Num(min=0, above=True, max=1),
+                                  "flops": Num(min=0, above=True, max=1)})})},
     optional={"pipe": Obj(required={"bytes_per_s": POSITIVE}, nullable=True),
               "threads": Int(min=1), "calibration_s": SECONDS_OR_NULL,
               "exchange_call": Obj(optional={"seconds_per_call": SECONDS}),

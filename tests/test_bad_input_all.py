@@ -15,6 +15,7 @@ import pytest
 from helpers import depot_graph, save_graph
 
 from shardtrain.cli import main
+from shardtrain.errors import ParameterError
 from shardtrain.forecast.calibrate import CALIBRATION_VERSION
 
 TRAIN = ["--epochs", "4", "--dtype", "float64", "--hidden", "8", "--quiet", "--timeout", "20"]
@@ -274,5 +275,13 @@ def test_a_calibration_cache_is_kept_replaced_or_refused(inputs, tmp_path):
     # A version-1 cache (written before the copying cost was timed) is re-timed, not used.
     v1 = {k: v for k, v in cal.items() if k != "transport_copy"}
     (tmp_path / "v1.json").write_text(json.dumps(dict(v1, version=1)))
-    assert CALIBRATION_VERSION == 2
+    assert CALIBRATION_VERSION == 3
     assert read_calibration(tmp_path / "v1.json", "float32") is None
+    # A version-2 cache (written before the roofs were measured) is re-timed, not used.
+    v2 = {k: v for k, v in cal.items() if k != "roofline"}
+    (tmp_path / "v2.json").write_text(json.dumps(dict(v2, version=2)))
+    assert read_calibration(tmp_path / "v2.json", "float32") is None
+    # ... while a version-3 file without them is refused as not usable
+    (tmp_path / "v3.json").write_text(json.dumps(v2))
+    with pytest.raises(ParameterError, match="roofline"):
+        read_calibration(tmp_path / "v3.json", "float32")

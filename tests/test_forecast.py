@@ -74,9 +74,16 @@ def test_hand_worked_two_worker_plan(monkeypatch):
     for w in out["per_worker"]:
         total = w["compute_s"] + w["exchange_s"] + w["allreduce_s"] + w["wait_s"]
         assert total == pytest.approx(out["epoch_s"], rel=1e-12)
-    # worker 0 is the busiest sender forward, worker 1 backward (it returns 30 rows)
+    # worker 0 is the busiest sender forward, worker 1 backward (it returns 30 rows); with
+    # receiver contention the 30 rows also keep their receiver as busy (a tie: the lowest
+    # rank is named), so only the model without it tells the two hops apart
     hops = {s["step"]: s["busiest_worker"] for s in out["steps"]}
+    assert hops == {"forward 0": 0, "backward 0": 0, "all-reduce": 0}
+    alone = fc.forecast_plan(plan, model, link_gbps=gbps, latency_us=lat, calibration=FAST,
+                             dropout=0.0, receiver_contention=False)
+    hops = {s["step"]: s["busiest_worker"] for s in alone["steps"]}
     assert hops == {"forward 0": 0, "backward 0": 1, "all-reduce": 0}
+    assert alone["exchange_s"] == pytest.approx(out["exchange_s"], rel=1e-12)
     assert out["epoch_s"] == pytest.approx(out["compute_s"] + out["exchange_s"]
                                            + out["allreduce_s"], rel=1e-12)
 

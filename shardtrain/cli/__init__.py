@@ -26,6 +26,7 @@ COMMANDS = {
     "train": "train",
     "forecast": "forecast",
     "sweep": "sweep",
+    "calibrate": "calibrate",
     "report": "report",
 }
 

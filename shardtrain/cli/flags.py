@@ -38,7 +38,7 @@ FLAGS = {
     "vertices": "--vertices", "avg_degree": "--avg-degree", "homophily": "--homophily",
     "degree_exponent": "--degree-exponent", "signal": "--signal",
     # outputs and folders
-    "plot": "--plot", "out": "--out", "overwrite": "--overwrite",
+    "plot": "--plot", "out": "--out", "overwrite": "--overwrite", "json": "--json",
     "checkpoint": "--checkpoint", "resume": "--resume", "reference": "--reference",
     "single_process": "--single-process",
     "emulate_link": "--emulate-link",

@@ -255,7 +255,7 @@ def _run_steps(settings: DemoSettings, tmp: Path, say, clock: _Clock) -> DemoRes
     # 4. the forecast, from this machine's kernels timed once (sparse on the graph's own Â)
     say(f"[4/5] forecasting links of {' and '.join(f'{g:g}' for g in settings.links_gbps)} "
         f"Gbit/s (timing this machine's kernels first)")
-    calibration = with_graph_sparse(calibrate(train_settings.dtype), graph,
+    calibration = with_graph_sparse(calibrate(train_settings.dtype, roofline=False), graph,
                                     train_settings.dtype)
     forecast_dict = forecast(survey_dict, link_gbps_list=list(settings.links_gbps),
                              latency_us=settings.latency_us, calibration=calibration,

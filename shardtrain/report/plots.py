@@ -333,7 +333,12 @@ def forecast_plots(forecast: dict, out_dir) -> list[str]:
     paths: list[str] = []
     if not plans:
         return paths
-    links = sorted({p["link_gbps"] for p in plans})
+    # one panel per link speed; per described worker kind when the forecast has them
+    def panel(p):
+        return p.get("spec") or p["link_gbps"]
+
+    links = list(dict.fromkeys(panel(p) for p in plans)) if plans[0].get("spec") \
+        else sorted({p["link_gbps"] for p in plans})
     methods = list(dict.fromkeys(p["method"] for p in plans))
     styles = method_styles(methods)
     n = len(links)
@@ -347,16 +352,16 @@ def forecast_plots(forecast: dict, out_dir) -> list[str]:
     for i, g in enumerate(links):
         ax = axes[i // cols][i % cols]
         for m in methods:
-            ps = sorted((p for p in plans if p["link_gbps"] == g and p["method"] == m),
+            ps = sorted((p for p in plans if panel(p) == g and p["method"] == m),
                         key=lambda p: p["workers"])
             if ps:
                 ax.plot([p["workers"] for p in ps], [p["epoch_s"] for p in ps], label=m,
                         **styles[m])
         for p in plans:
-            if p["link_gbps"] == g and p.get("fastest"):
+            if panel(p) == g and p.get("fastest"):
                 ax.plot(p["workers"], p["epoch_s"], marker="*", markersize=16, color="gold",
                         markeredgecolor="black", linestyle="none", label="fastest")
-            if p["link_gbps"] == g and p.get("fewest_meeting_target"):
+            if panel(p) == g and p.get("fewest_meeting_target"):
                 ax.plot(p["workers"], p["epoch_s"], marker="D", markersize=11,
                         markerfacecolor="none", markeredgecolor="crimson",
                         markeredgewidth=2, linestyle="none",
@@ -368,7 +373,7 @@ def forecast_plots(forecast: dict, out_dir) -> list[str]:
         ax.set_ylim(lo / 1.5, max(hi, target or 0) * 1.5)
         _log_seconds_axis(ax.yaxis)
         _workers_axis(ax, [p["workers"] for p in plans])
-        ax.set_title(f"link {g:g} Gbit/s", fontsize=10)
+        ax.set_title(f"link {g:g} Gbit/s" if isinstance(g, float) else str(g), fontsize=10)
         ax.grid(True, which="major", alpha=0.3)
         if i % cols == 0:
             ax.set_ylabel("forecast time of one training epoch")

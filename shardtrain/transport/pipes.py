@@ -380,6 +380,16 @@ class PipeTransport:
                             f"worker {self.rank}: the progress thread of the pipes stopped "
                             f"({frames.describe(op.meta)})")
                         op.event.set()
+        if self.link is not None and op.recvs and op.error is None:
+            # the receiving side of the interface (link.py): the incoming frames, one after
+            # the other, from the call's start; sleeping the rest is transfer time
+            due = self.link.receive_due(op.started,
+                                        sum(r.dest.nbytes + r.framing for r in op.recvs))
+            op.link_until = max(op.link_until, due)
+            op.finished = max(op.finished or 0.0, due)
+            left = due - time.perf_counter()
+            if left > 0:
+                time.sleep(left)
         t1 = time.perf_counter()
         with self._mu:
             self._waiting = None
@@ -638,6 +648,7 @@ class PipeTransport:
             poller.register(r.fd, _IN)
             by_fd[r.fd] = r
         pending = len(by_fd)
+        first_byte = math.inf      # link emulation: when the first incoming byte was there
         held: list[_Send] = []
         last_progress = start
         first = True
@@ -679,6 +690,8 @@ class PipeTransport:
                         held.append(st)
                 else:
                     moved = self._read(st, meta)
+                    if moved and first_byte == math.inf:
+                        first_byte = t1
                     if st.stage == 3:
                         poller.unregister(fd)
                         pending -= 1
@@ -692,6 +705,18 @@ class PipeTransport:
                     held.remove(s)
                     s.held = False
                     poller.register(s.fd, _OUT)
+        if self.link is not None and recvs:
+            self._hold_receive(recvs, min(first_byte, time.perf_counter()))
+
+    def _hold_receive(self, recvs: list[_Recv], first_byte: float) -> None:
+        """Link emulation at the receiving side: the call does not end before its incoming
+        frames, one after the other, have crossed this worker's interface
+        (`LinkModel.receive_due`); the sleep is transfer time, not waiting."""
+        assert self.link is not None
+        received = sum(r.dest.nbytes + r.framing for r in recvs)
+        left = self.link.receive_due(first_byte, received) - time.perf_counter()
+        if left > 0:
+            time.sleep(left)
 
     def _write(self, s: _Send, meta: dict) -> int:
         """Write what the pipe takes; hold back the last byte until the link says it is due."""
