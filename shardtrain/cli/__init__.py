@@ -23,6 +23,7 @@ COMMANDS = {
     "ingest": "ingest",
     "survey": "survey",
     "split": "split",
+    "update": "update",
     "train": "train",
     "forecast": "forecast",
     "report": "report",

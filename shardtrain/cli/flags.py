@@ -27,6 +27,10 @@ FLAGS = {
     # plans
     "method": "--method", "workers": "--workers", "imbalance": "--imbalance",
     "assignment": "--assignment", "memory_budget": "--memory-budget",
+    # update (plan/update.py)
+    "add_edges": "--add-edges", "remove_edges": "--remove-edges",
+    "add_vertices": "--add-vertices", "allow_missing": "--allow-missing",
+    "repartition_above": "--repartition-above", "fresh": "--no-fresh",
     # forecast
     "link_gbps": "--link-gbps", "latency_us": "--latency-us",
     "speed_factor": "--speed-factor", "cores": "--cores",
