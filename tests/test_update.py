@@ -278,3 +278,45 @@ def test_bad_deltas_are_refused_naming_the_file_and_line(tmp_path, run_cli):
     r = run_cli("update", tmp_path / "old", "--add-edges", tmp_path / "far.txt",
                 "--out", tmp_path / "old", "--overwrite")
     assert r.returncode == 2 and "Traceback" not in r.stderr
+
+
+_TIMES = ("partition_s", "build_s", "partition_cpu_s", "build_cpu_s")
+
+
+def _without(doc: dict, *, label: bool) -> dict:
+    """A survey JSON without its timings (and, with `label`, the plan's name and source)."""
+    doc = json.loads(json.dumps(doc))
+    for plan in doc["plans"]:
+        for key in _TIMES:
+            plan.pop(key, None)
+        if label:
+            plan.pop("method")
+            plan.pop("partition")
+    if label:
+        doc["graph"].pop("source")
+    return doc
+
+
+def test_survey_of_a_shard_dir_is_the_survey_of_its_graph_and_assignment(tmp_path, run_cli):
+    g = depot_graph()
+    _split(g, "metis", 4, tmp_path / "old")
+    files = _delta(tmp_path, g, add=30, remove=20, new=8)
+    upd.update_plan(tmp_path / "old", tmp_path / "new", fresh=False, **files)
+    expected = _networkx_graph(g, files)
+    held = upd.read_shard_graph(tmp_path / "new")
+    meta = load_manifest(tmp_path / "new")["meta"]
+    save_shards(tmp_path / "scratch", build_shards(expected, held.assignment, 4), meta=meta)
+    save_graph(tmp_path / "new.npz", expected)
+    np.save(tmp_path / "a.npy", held.assignment)
+    docs = {}
+    for name, args in (("new", [tmp_path / "new"]), ("scratch", [tmp_path / "scratch"]),
+                       ("file", [tmp_path / "new.npz", "--assignment", tmp_path / "a.npy"])):
+        r = run_cli("survey", *args, "--json", tmp_path / f"{name}.json")
+        assert r.returncode == 0, r.stderr
+        docs[name] = json.loads((tmp_path / f"{name}.json").read_text())
+    assert docs["new"]["plans"][0]["method"] == "metis"
+    assert _without(docs["new"], label=False)["plans"] == \
+        _without(docs["scratch"], label=False)["plans"]
+    assert _without(docs["new"], label=True) == _without(docs["file"], label=True)
+    r = run_cli("survey", tmp_path / "new", "--method", "metis")
+    assert r.returncode == 2 and "shard directory" in r.stderr

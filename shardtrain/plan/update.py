@@ -43,6 +43,7 @@ from shardtrain.data.readers import EdgeRows, read_edge_rows, read_vertex_bundle
 from shardtrain.errors import InputError, ParameterError, option
 from shardtrain.plan.partition import METHODS, partition_plan, place_vertices
 from shardtrain.plan.shards import (
+    SHARDS_MANIFEST,
     Shard,
     _index_dtype,
     check_shard_dir,
@@ -67,6 +68,11 @@ class ShardGraph:
     manifest: dict
     shards: list[Shard]
     notes: list = field(default_factory=list)
+
+
+def is_shard_dir(path) -> bool:
+    """A folder with a shard manifest (`shards.SHARDS_MANIFEST`)."""
+    return Path(path).is_dir() and (Path(path) / SHARDS_MANIFEST).is_file()
 
 
 def read_shard_graph(path: str | os.PathLike) -> ShardGraph:
