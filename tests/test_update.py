@@ -320,3 +320,48 @@ def test_survey_of_a_shard_dir_is_the_survey_of_its_graph_and_assignment(tmp_pat
     assert _without(docs["new"], label=True) == _without(docs["file"], label=True)
     r = run_cli("survey", tmp_path / "new", "--method", "metis")
     assert r.returncode == 2 and "shard directory" in r.stderr
+
+
+def test_repartition_above_writes_the_fresh_plan_when_the_update_drifted(tmp_path, run_cli):
+    from shardtrain import documents
+
+    g = depot_graph()
+    _split(g, "metis", 4, tmp_path / "old")
+    files = _delta(tmp_path, g, add=150, remove=60, new=40, seed=11)
+    args = []
+    for key, path in files.items():
+        args += ["--" + key.replace("_", "-"), path]
+    r = run_cli("update", tmp_path / "old", *args, "--out", tmp_path / "kept",
+                "--json", tmp_path / "kept.json", "--repartition-above", "100000")
+    assert r.returncode == 0, r.stderr
+    kept = documents.validate(json.loads((tmp_path / "kept.json").read_text()), "update",
+                              "kept.json")
+    excess = kept["payload_excess_percent"]
+    assert excess > 0          # the precondition of the case below: the update drifted
+    assert not kept["repartitioned"] and kept["output_plan"] == "updated"
+    r = run_cli("update", tmp_path / "old", *args, "--out", tmp_path / "fresh",
+                "--json", tmp_path / "fresh.json", "--repartition-above", f"{excess / 2:g}")
+    assert r.returncode == 0, r.stderr
+    assert "wrote the FRESH plan" in r.stdout
+    rep = documents.validate(json.loads((tmp_path / "fresh.json").read_text()), "update",
+                             "fresh.json")
+    assert rep["repartitioned"] and rep["output_plan"] == "fresh"
+    assert rep["rebuilt"] == [0, 1, 2, 3]
+    # the fresh plan is METIS's partition of the new graph, seed and limit of the old plan
+    expected = _networkx_graph(g, files)
+    a, _ = partition_plan(expected, "metis", 4, seed=0, imbalance=0.03)
+    assert np.array_equal(upd.read_shard_graph(tmp_path / "fresh").assignment, a)
+    meta = load_manifest(tmp_path / "fresh")["meta"]
+    save_shards(tmp_path / "scratch", build_shards(expected, a, 4), meta=meta)
+    _shard_files_equal(tmp_path / "fresh", tmp_path / "scratch")
+    # the fresh plan's figures in the report are the survey's of that plan
+    r = run_cli("survey", tmp_path / "fresh", "--json", tmp_path / "sv.json")
+    plan = json.loads((tmp_path / "sv.json").read_text())["plans"][0]
+    assert rep["fresh"]["epoch_payload_bytes"] == plan["epoch_payload_bytes"]
+    assert rep["fresh"]["edge_cut"] == plan["edge_cut"]
+    for name, figures in (("old", kept["before"]), ("kept", kept["after"])):
+        r = run_cli("survey", tmp_path / name, "--json", tmp_path / "sv.json")
+        plan = json.loads((tmp_path / "sv.json").read_text())["plans"][0]
+        assert figures["epoch_payload_bytes"] == plan["epoch_payload_bytes"], name
+        assert figures["replication_factor"] == plan["replication_factor"], name
+        assert figures["owned_max_over_mean"] == plan["imbalance"]["owned"]["max_over_mean"]
