@@ -42,6 +42,7 @@ FLAGS = {
     # outputs and folders
     "plot": "--plot", "out": "--out", "overwrite": "--overwrite",
     "checkpoint": "--checkpoint", "resume": "--resume", "reference": "--reference",
+    "warm_start": "--warm-start",
     "emulate_link": "--emulate-link",
 }
 
