@@ -39,6 +39,7 @@ FLAGS = {
     # synth
     "vertices": "--vertices", "avg_degree": "--avg-degree", "homophily": "--homophily",
     "degree_exponent": "--degree-exponent", "signal": "--signal",
+    "grow": "--grow", "growth": "--growth",
     # outputs and folders
     "plot": "--plot", "out": "--out", "overwrite": "--overwrite",
     "checkpoint": "--checkpoint", "resume": "--resume", "reference": "--reference",
