@@ -292,15 +292,27 @@ def changed_workers(graph: Graph, assignment: np.ndarray, touched: np.ndarray,
 
 # ----------------------------------------------------------------------------- drift
 
-def plan_figures(graph: Graph, assignment: np.ndarray, k: int, settings, label: str) -> dict:
-    """The plan's edge cut, replication factor, imbalances and payload per epoch (the
-    survey's figures of this graph and assignment, `survey.survey_plan`)."""
-    from shardtrain.plan.survey import model_shape, survey_plan
+def plan_figures(graph: Graph, shards: list[Shard] | None, settings, label: str, *,
+                 assignment: np.ndarray | None = None, k: int = 0) -> dict:
+    """The plan's edge cut, replication factor, imbalances and payload per epoch: the
+    survey's figures (`survey.plan_of_shards`) of these built shards of `graph` (any local
+    order), or, with `shards` None, of `graph` split by `assignment` into `k` shards
+    (`survey.survey_plan`)."""
+    from shardtrain.plan.survey import model_shape, plan_of_shards, survey_plan
 
     _, hops = model_shape(graph, settings)
-    plan = survey_plan(graph, label, k, hops=hops, itemsize=np.dtype(settings.dtype).itemsize,
-                       seed=settings.seed, imbalance=settings.imbalance,
-                       assignment=assignment, bias=settings.bias)
+    itemsize = np.dtype(settings.dtype).itemsize
+    if shards is None:
+        assert assignment is not None
+        plan = survey_plan(graph, label, k, hops=hops,
+                           itemsize=itemsize, seed=settings.seed,
+                           imbalance=settings.imbalance, assignment=assignment,
+                           bias=settings.bias)
+    else:
+        fsize = None if graph.features is None else graph.features.dtype.itemsize
+        plan = plan_of_shards(shards, label, graph.num_vertices, hops=hops, itemsize=itemsize,
+                              bias=settings.bias, feature_itemsize=fsize,
+                              details={"method": label}, times={})
     imb = plan["imbalance"]
     return {"edge_cut": plan["edge_cut"], "replication_factor": plan["replication_factor"],
             "owned_max_over_mean": imb["owned"]["max_over_mean"],
@@ -369,10 +381,23 @@ def update_plan(shard_dir, out, *, add_edges=None, remove_edges=None, add_vertic
     if settings is None:
         settings = SurveySettings(imbalance=imbalance, seed=manifest.get("seed") or 0,
                                   input_dim=meta.get("input_dim"))
-    before = plan_figures(old, held.assignment, k, settings, method)
-    after = plan_figures(new, assignment, k, settings, method)
-    fresh_doc, fresh_assignment, fresh_details = None, None, None
     notes = list(held.notes) + list(applied.notes)
+    before = plan_figures(old, held.shards, settings, method)
+    # the updated plan's shards: its figures are read off them, whichever plan is written
+    num_train = 0 if new.train_mask is None else int(np.count_nonzero(new.train_mask))
+    ix = _index_dtype(new.indices.shape[0] + n_new)
+    kept, hit = {}, set(changed.tolist())
+    for s in held.shards:
+        if s.worker in hit or s.adj.indices.dtype != ix:
+            continue
+        kept[s.worker] = dataclasses.replace(s, num_vertices_global=n_new,
+                                             num_train_global=num_train)
+    rebuilt = [w for w in range(k) if w not in kept]
+    shards = rebuild_shards(new, assignment, k, rebuilt, kept)
+    t3 = time.perf_counter()
+    times["build_s"] = t3 - t2
+    after = plan_figures(new, shards, settings, method)
+    fresh_doc, fresh_assignment, fresh_details = None, None, None
     if fresh:
         if method not in METHODS:
             notes.append(f"the plan was made by {method!r}, not a partition method: no fresh "
@@ -380,34 +405,23 @@ def update_plan(shard_dir, out, *, add_edges=None, remove_edges=None, add_vertic
         else:
             fresh_assignment, fresh_details = partition_plan(
                 new, method, k, seed=int(manifest.get("seed") or 0), imbalance=imbalance)
-            fresh_doc = plan_figures(new, fresh_assignment, k, settings, method)
-    t3 = time.perf_counter()
-    times["drift_s"] = t3 - t2
+            fresh_doc = plan_figures(new, None, settings, method, assignment=fresh_assignment,
+                                    k=k)
+    t4 = time.perf_counter()
+    times["drift_s"] = t4 - t3
     excess = None
     if fresh_doc is not None and fresh_doc["epoch_payload_bytes"] > 0:
         excess = 100.0 * (after["epoch_payload_bytes"] / fresh_doc["epoch_payload_bytes"] - 1)
     repartitioned = (repartition_above is not None and excess is not None
                      and excess > repartition_above)
-
     if repartitioned:
         assert fresh_assignment is not None
         assignment = fresh_assignment
         shards = rebuild_shards(new, assignment, k, range(k), {})
         meta["partition"] = fresh_details
         rebuilt = list(range(k))
-    else:
-        num_train = 0 if new.train_mask is None else int(np.count_nonzero(new.train_mask))
-        ix = _index_dtype(new.indices.shape[0] + n_new)
-        kept, hit = {}, set(changed.tolist())
-        for s in held.shards:
-            if s.worker in hit or s.adj.indices.dtype != ix:
-                continue
-            kept[s.worker] = dataclasses.replace(s, num_vertices_global=n_new,
-                                                 num_train_global=num_train)
-        rebuilt = [w for w in range(k) if w not in kept]
-        shards = rebuild_shards(new, assignment, k, rebuilt, kept)
+        times["build_s"] += time.perf_counter() - t4
     t4 = time.perf_counter()
-    times["build_s"] = t4 - t3
     new_fp = fingerprint(new)
     record = {"from_split": manifest["split_id"], "vertices_added": n_new - n_old,
               "edges_added": applied.edges_added, "edges_removed": applied.edges_removed,
