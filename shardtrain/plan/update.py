@@ -34,10 +34,9 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
-import scipy.sparse as sp
 
 from shardtrain import defaults
-from shardtrain.data.graph import Graph, csr_from_edges, fingerprint
+from shardtrain.data.graph import Graph, fingerprint
 from shardtrain.data.masks import MASK_KEYS
 from shardtrain.data.readers import EdgeRows, read_edge_rows, read_vertex_bundle
 from shardtrain.errors import InputError, ParameterError, option
@@ -199,11 +198,9 @@ def _check_ids(rows: EdgeRows, n_old: int, n_new: int) -> None:
                          f"{added}")
 
 
-def _upper_keys(graph: Graph, base: int) -> np.ndarray:
-    """Sorted keys lo * base + hi of the graph's edges, each once."""
-    rows = np.repeat(np.arange(graph.num_vertices, dtype=np.int64), graph.degrees)
-    upper = rows < graph.indices
-    return rows[upper] * np.int64(base) + graph.indices[upper]
+def _sorted_unique(keys: np.ndarray) -> np.ndarray:
+    keys = np.sort(keys)
+    return keys[np.concatenate([[True], keys[1:] != keys[:-1]])] if keys.shape[0] else keys
 
 
 def _member(sorted_keys: np.ndarray, keys: np.ndarray) -> np.ndarray:
@@ -212,6 +209,12 @@ def _member(sorted_keys: np.ndarray, keys: np.ndarray) -> np.ndarray:
         return np.zeros(keys.shape[0], dtype=bool)
     at = np.minimum(np.searchsorted(sorted_keys, keys), sorted_keys.shape[0] - 1)
     return sorted_keys[at] == keys
+
+
+def _both_ways(upper: np.ndarray, base: int) -> np.ndarray:
+    """Sorted directed keys row * base + col of undirected keys lo * base + hi."""
+    lo, hi = np.divmod(upper, np.int64(base))
+    return np.sort(np.concatenate([upper, hi * np.int64(base) + lo]))
 
 
 @dataclass
@@ -228,63 +231,82 @@ def apply_delta(graph: Graph, delta: Delta, *, allow_missing: bool = False) -> A
 
     Refused (InputError naming the file and row): an id that neither exists nor is added,
     a negative id, a removal of an edge the graph does not have (skipped, with a note,
-    under `allow_missing`), vertex data that does not fit the graph's."""
+    under `allow_missing`), vertex data that does not fit the graph's. An edge removed and
+    added again is no change. O(m) passes over the graph's entries (its directed keys are
+    already sorted) plus sorts of the delta's rows; no sort of the whole edge set."""
     n_old = graph.num_vertices
     n_new = n_old + delta.new_vertices
+    base = np.int64(n_new)
     notes: list[str] = []
     vertex_data = _new_vertex_data(graph, delta)
-    old_keys = _upper_keys(graph, n_new)
-    keep = np.ones(old_keys.shape[0], dtype=bool)
+    rows = np.repeat(np.arange(n_old, dtype=np.int64), graph.degrees)
+    old_dir = rows * base + graph.indices          # ascending: rows, then sorted columns
+    upper = rows < graph.indices
+    old_up = old_dir[upper]
+    del rows, upper
+    removed = np.zeros(0, dtype=np.int64)
     if delta.remove is not None:
-        rows = delta.remove
-        _check_ids(rows, n_old, n_new)
-        lo, hi = np.minimum(rows.src, rows.dst), np.maximum(rows.src, rows.dst)
-        rkey = lo * np.int64(n_new) + hi
-        found = _member(old_keys, rkey) & (lo != hi)
+        rem = delta.remove
+        _check_ids(rem, n_old, n_new)
+        lo, hi = np.minimum(rem.src, rem.dst), np.maximum(rem.src, rem.dst)
+        rkey = lo * base + hi
+        found = _member(old_up, rkey) & (lo != hi)
         if not found.all():
             r = int(np.argmin(found))
             missing = int(np.count_nonzero(~found))
             if not allow_missing:
-                raise InputError(f"{rows.locate(r)}: edge {int(rows.src[r])} "
-                                 f"{int(rows.dst[r])} is not in the graph (removal of a "
+                raise InputError(f"{rem.locate(r)}: edge {int(rem.src[r])} "
+                                 f"{int(rem.dst[r])} is not in the graph (removal of a "
                                  f"missing edge; {option('allow_missing')} skips such rows)")
-            notes.append(f"{rows.locate(r)}: and {missing - 1} more removal rows name no "
+            notes.append(f"{rem.locate(r)}: and {missing - 1} more removal rows name no "
                          f"edge of the graph: skipped ({missing} rows)")
-        rkey = np.sort(rkey[found])
-        keep = ~_member(rkey, old_keys)
-    kept = old_keys[keep]
-    src, dst = np.divmod(kept, np.int64(n_new))
+        removed = _sorted_unique(rkey[found])
+    added = np.zeros(0, dtype=np.int64)
     if delta.add is not None:
-        rows = delta.add
-        _check_ids(rows, n_old, n_new)
-        src, dst = np.concatenate([src, rows.src]), np.concatenate([dst, rows.dst])
-    indptr, indices, _ = csr_from_edges(src, dst, n_new)
-    del src, dst
+        add = delta.add
+        _check_ids(add, n_old, n_new)
+        lo, hi = np.minimum(add.src, add.dst), np.maximum(add.src, add.dst)
+        added = _sorted_unique((lo * base + hi)[lo != hi])
+    came = added[~_member(old_up, added)]          # not in the graph before
+    gone = removed[~_member(added, removed)]       # removed and not added again
+    if delta.add is not None and delta.add.src.shape[0] > came.shape[0]:
+        notes.append(f"{delta.add.src.shape[0] - came.shape[0]} added edge rows change "
+                     f"nothing (loops, repeats, or edges already present)")
+    keep = np.ones(old_dir.shape[0], dtype=bool)
+    keep[np.searchsorted(old_dir, _both_ways(gone, n_new))] = False
+    # two ascending runs: the stable sort (a merge of runs for integers) is linear here
+    new_dir = np.sort(np.concatenate([old_dir[keep], _both_ways(came, n_new)]), kind="stable")
+    del old_dir, keep
+    new_rows, indices = np.divmod(new_dir, base)
+    del new_dir
+    indptr = np.zeros(n_new + 1, dtype=np.int64)
+    np.cumsum(np.bincount(new_rows, minlength=n_new), out=indptr[1:])
+    del new_rows
     new = Graph(indptr, indices, **vertex_data)
-    new_keys = _upper_keys(new, n_new)
-    gone = old_keys[~_member(new_keys, old_keys)]
-    came = new_keys[~_member(old_keys, new_keys)]
-    if delta.add is not None:
-        dropped = delta.add.src.shape[0] - came.shape[0]
-        if dropped:
-            notes.append(f"{dropped} added edge rows change nothing (loops, repeats, or "
-                         f"edges already present)")
     ends = np.concatenate([gone, came])
     touched = np.zeros(n_new, dtype=bool)
-    touched[ends // n_new] = True
-    touched[ends % n_new] = True
+    touched[ends // base] = True
+    touched[ends % base] = True
     touched[n_old:] = True
     return Applied(new, np.flatnonzero(touched), int(came.shape[0]), int(gone.shape[0]),
                    notes)
+
+
+def neighbours_of(graph: Graph, vertices: np.ndarray) -> np.ndarray:
+    """The concatenated adjacency rows of `vertices` (vectorised gather of CSR slices)."""
+    starts = graph.indptr[vertices]
+    lengths = graph.indptr[vertices + 1] - starts
+    if lengths.sum() == 0:
+        return np.zeros(0, dtype=np.int64)
+    offsets = np.repeat(starts - (np.cumsum(lengths) - lengths), lengths)
+    return graph.indices[np.arange(int(lengths.sum()), dtype=np.int64) + offsets]
 
 
 def changed_workers(graph: Graph, assignment: np.ndarray, touched: np.ndarray,
                     k: int) -> np.ndarray:
     """Workers owning a touched vertex or a neighbour of one in `graph` (the new graph; a
     removed edge's ends are both touched): the shards whose arrays change (module doc)."""
-    structure = sp.csr_matrix((np.ones(graph.indices.shape[0], dtype=np.int8), graph.indices,
-                               graph.indptr), shape=(graph.num_vertices,) * 2)
-    rows = np.concatenate([touched, structure[touched].indices.astype(np.int64)])
+    rows = np.concatenate([touched, neighbours_of(graph, touched)])
     hit = np.zeros(k, dtype=bool)
     hit[assignment[rows]] = True
     return np.flatnonzero(hit)
