@@ -365,3 +365,30 @@ def test_repartition_above_writes_the_fresh_plan_when_the_update_drifted(tmp_pat
         assert figures["epoch_payload_bytes"] == plan["epoch_payload_bytes"], name
         assert figures["replication_factor"] == plan["replication_factor"], name
         assert figures["owned_max_over_mean"] == plan["imbalance"]["owned"]["max_over_mean"]
+
+
+def test_new_vertices_from_features_and_labels_files(tmp_path, run_cli):
+    """--features/--labels give the same update as the same rows in an --add-vertices
+    bundle (masks false): the shard files are equal array for array."""
+    g = depot_graph()
+    _split(g, "metis", 4, tmp_path / "old")
+    rng = np.random.default_rng(4)
+    x, y = rng.normal(size=(5, g.input_dim)), rng.integers(0, 4, 5)
+    np.save(tmp_path / "x.npy", x)
+    np.savetxt(tmp_path / "y.txt", y, fmt="%d")
+    np.savez(tmp_path / "v.npz", features=x, labels=y)
+    n = g.num_vertices
+    (tmp_path / "add.txt").write_text("".join(f"{n + i} {i}\n" for i in range(5)))
+    a = ["--add-edges", tmp_path / "add.txt", "--no-fresh"]
+    r = run_cli("update", tmp_path / "old", *a, "--features", tmp_path / "x.npy", "--labels",
+                tmp_path / "y.txt", "--out", tmp_path / "files")
+    assert r.returncode == 0, r.stderr
+    r = run_cli("update", tmp_path / "old", *a, "--add-vertices", tmp_path / "v.npz",
+                "--out", tmp_path / "bundle")
+    assert r.returncode == 0, r.stderr
+    mf, mb = load_manifest(tmp_path / "files"), load_manifest(tmp_path / "bundle")
+    assert mf["split_id"] == mb["split_id"] and mf["num_vertices"] == n + 5
+    np.savetxt(tmp_path / "y3.txt", y[:3], fmt="%d")
+    err = _bad(run_cli, tmp_path, "--add-edges", tmp_path / "add.txt", "--features",
+               tmp_path / "x.npy", "--labels", tmp_path / "y3.txt")
+    assert "--labels" in err and "3 labels for 5" in err

@@ -6,10 +6,11 @@ against the current plan (under the same load limit as the `fennel` method), reb
 the shards whose rows change and keeps the others, and writes NEW_DIR atomically: the same
 shards as a split of the new graph with that assignment. New vertices get ids after the
 existing ones, in the order of the --add-vertices bundle (.npz: features, labels, masks,
-or num_vertices). It prints the plan's edge cut, replication factor, imbalances and payload
-per epoch before and after the update and for a fresh partition of the new graph by the
-plan's method (--no-fresh skips that); --repartition-above X writes the fresh plan instead
-when the updated plan's payload exceeds the fresh one's by more than X %.
+or num_vertices), or of the --features/--labels files. It prints the plan's edge cut,
+replication factor, imbalances and payload per epoch before and after the update and for
+a fresh partition of the new graph by the plan's method (--no-fresh skips that);
+--repartition-above X writes the fresh plan instead when the updated plan's payload
+exceeds the fresh one's by more than X %.
 """
 from __future__ import annotations
 
@@ -41,6 +42,10 @@ def add_arguments(parser) -> None:
     add("--add-vertices", metavar="FILE", help="new vertices (.npz: features, labels, "
         "train_mask, val_mask, test_mask, or num_vertices); they get the ids after the "
         "existing ones, in bundle order")
+    add("--features", metavar="FILE", help="the new vertices' features instead of "
+        "--add-vertices (.npy or .csv, one row per new vertex)")
+    add("--labels", metavar="FILE", help="the new vertices' labels (.npy or one integer per "
+        "line, -1 = none); masks of new vertices are all false")
     add("--allow-missing", action="store_true",
         help="skip removals of edges the graph does not have (with a note) instead of refusing")
     add("--out", metavar="NEW_DIR", required=True, help="shard directory to write")
@@ -92,7 +97,8 @@ def run(args) -> int:
         raise InputError(f"--out {out}: directory exists and is not empty (add --overwrite)")
     if args.json is not None and not Path(args.json).parent.is_dir():
         raise InputError(f"--json: folder {Path(args.json).parent} does not exist")
-    if args.add_edges is None and args.remove_edges is None and args.add_vertices is None:
+    if (args.add_edges is None and args.remove_edges is None and args.add_vertices is None
+            and args.features is None and args.labels is None):
         raise InputError("--add-edges: give at least one of --add-edges, --remove-edges, "
                          "--add-vertices")
     if args.repartition_above is not None and args.no_fresh:
@@ -101,7 +107,8 @@ def run(args) -> int:
         raise InputError(f"--imbalance {args.imbalance}: must be in [0, 1), e.g. 0.03")
     check_paths(inputs={"SHARD_DIR": args.shard_dir, "--add-edges": args.add_edges,
                         "--remove-edges": args.remove_edges,
-                        "--add-vertices": args.add_vertices},
+                        "--add-vertices": args.add_vertices, "--features": args.features,
+                        "--labels": args.labels},
                 outputs={"--json": args.json}, replaced_dirs={"--out": out})
     manifest = load_manifest(args.shard_dir)
     meta = manifest.get("meta") or {}
@@ -113,6 +120,7 @@ def run(args) -> int:
                               seed=manifest.get("seed") or defaults.SEED)
     result = update_plan(args.shard_dir, out, add_edges=args.add_edges,
                          remove_edges=args.remove_edges, add_vertices=args.add_vertices,
+                         features=args.features, labels=args.labels,
                          allow_missing=args.allow_missing, fresh=not args.no_fresh,
                          repartition_above=args.repartition_above, settings=settings,
                          imbalance=args.imbalance, overwrite=args.overwrite)

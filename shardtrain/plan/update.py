@@ -139,7 +139,32 @@ class Delta:
         return 0 if self.vertices is None else int(self.vertices["num_vertices"])
 
 
-def read_delta(add_edges=None, remove_edges=None, add_vertices=None) -> Delta:
+def read_delta(add_edges=None, remove_edges=None, add_vertices=None, *, features=None,
+               labels=None) -> Delta:
+    """The delta's files read and checked on their own (`features`/`labels`: the new
+    vertices' rows as `--features`/`--labels` files, in place of an `add_vertices` bundle)."""
+    if features is not None or labels is not None:
+        from shardtrain.data.readers import load_features, load_labels
+
+        if add_vertices is not None:
+            raise ParameterError("features" if features is not None else "labels",
+                                 f"give the new vertices in {option('add_vertices')} or as "
+                                 f"{option('features')}/{option('labels')} files, not both")
+        bundle: dict = {}
+        if features is not None:
+            bundle["features"] = load_features(features)
+        if labels is not None:
+            bundle["labels"] = load_labels(labels)
+        rows = {key: int(v.shape[0]) for key, v in bundle.items()}
+        if len(set(rows.values())) > 1:
+            raise ParameterError("labels", f"{rows['labels']} labels for "
+                                           f"{rows['features']} new feature rows "
+                                           f"({option('features')} {features})", value=labels)
+        bundle["num_vertices"] = next(iter(rows.values()))
+        delta = read_delta(add_edges, remove_edges)
+        delta.vertices = bundle
+        delta.vertices_file = str(features if features is not None else labels)
+        return delta
     return Delta(
         add=None if add_edges is None else read_edge_rows(add_edges, param="add_edges"),
         remove=None if remove_edges is None else read_edge_rows(remove_edges,
@@ -359,7 +384,7 @@ def check_repartition_above(value) -> None:
 
 
 def update_plan(shard_dir, out, *, add_edges=None, remove_edges=None, add_vertices=None,
-                allow_missing: bool = False, fresh: bool = True,
+                features=None, labels=None, allow_missing: bool = False, fresh: bool = True,
                 repartition_above: float | None = None, settings=None,
                 imbalance: float | None = None, overwrite: bool = False) -> UpdateResult:
     """Update the plan of `shard_dir` by the delta and write it to `out` (atomically).
@@ -377,13 +402,15 @@ def update_plan(shard_dir, out, *, add_edges=None, remove_edges=None, add_vertic
     if repartition_above is not None and not fresh:
         raise ParameterError("repartition_above", f"needs the fresh plan (drop "
                                                   f"{option('fresh')})", value=repartition_above)
-    if add_edges is None and remove_edges is None and add_vertices is None:
+    if (add_edges is None and remove_edges is None and add_vertices is None
+            and features is None and labels is None):
         raise ParameterError("add_edges", "give at least one of it, "
                              f"{option('remove_edges')} or {option('add_vertices')}")
     times = {}
     t0 = time.perf_counter()
     held = read_shard_graph(shard_dir)
-    delta = read_delta(add_edges, remove_edges, add_vertices)
+    delta = read_delta(add_edges, remove_edges, add_vertices, features=features,
+                       labels=labels)
     t1 = time.perf_counter()
     times["read_s"] = t1 - t0
     old, k, manifest = held.graph, held.workers, held.manifest
