@@ -4,6 +4,9 @@ For every method x worker count, the graph is partitioned and its shards built (
 only); nothing is trained and no process is started, so worker counts far beyond this
 machine (up to 1024 and more) can be compared. Traffic is the payload the trainer will
 measure: forward and backward halo exchanges and the ring all-reduce of one epoch.
+GRAPH may also be a shard directory (from `split` or `update`): the plan it holds is
+surveyed, on the graph read back from its shards (the same JSON as a survey of that graph
+with that assignment).
 """
 from __future__ import annotations
 
