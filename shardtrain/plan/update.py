@@ -399,6 +399,8 @@ def update_plan(shard_dir, out, *, add_edges=None, remove_edges=None, add_vertic
     from shardtrain.plan.survey import SurveySettings
 
     check_repartition_above(repartition_above)
+    if imbalance is not None and not 0.0 <= imbalance < 1.0:
+        raise ParameterError("imbalance", "must be in [0, 1)", value=imbalance)
     if repartition_above is not None and not fresh:
         raise ParameterError("repartition_above", f"needs the fresh plan (drop "
                                                   f"{option('fresh')})", value=repartition_above)
