@@ -69,6 +69,8 @@ def add_arguments(parser) -> None:
     add("--bias", action="store_true", help="the model has biases (more to all-reduce)")
     add("--classes", type=positive_int_type("--classes"), default=None, metavar="C",
         help="number of classes, when the graph has no labels")
+    add("--input-dim", metavar="D", type=positive_int_type("--input-dim"), default=None,
+        help="feature width the payload is counted for, when the shards have no features")
 
 
 def _row(name: str, figures: dict | None) -> str:
@@ -113,7 +115,9 @@ def run(args) -> int:
     manifest = load_manifest(args.shard_dir)
     meta = manifest.get("meta") or {}
     settings = SurveySettings(layers=args.layers, hidden=args.hidden, dtype=args.dtype,
-                              classes=args.classes, input_dim=meta.get("input_dim"),
+                              classes=args.classes,
+                              input_dim=(args.input_dim if args.input_dim is not None
+                                         else meta.get("input_dim")),
                               bias=args.bias,
                               imbalance=(args.imbalance if args.imbalance is not None
                                          else meta.get("imbalance", defaults.IMBALANCE)),
