@@ -48,6 +48,7 @@ SYNTH_VERTICES = 10_000
 SYNTH_AVG_DEGREE = 10.0
 SYNTH_CLASSES = 6
 SYNTH_FEATURES = 32
+SYNTH_GROWTH = 0.05                     # synth --grow: new depots per week, share of n
 HOMOPHILY = 0.8
 DEGREE_EXPONENT = 2.5
 SIGNAL = 1.5

@@ -528,9 +528,35 @@ SWEEP_ROW = Obj(required={"scheme": Obj(), "halo_payload_per_epoch": Num(min=0)}
 SWEEP = Obj(required={"kind": Str(choices=("sweep",)), "rows": List(SWEEP_ROW, min_len=1)},
             optional={"graph": GRAPH_FACTS, "workers": Int(min=1, nullable=True),
                       "epochs": Int(min=1), "method": Str(max_len=256)})
+# `shardtrain update --json` (plan/update.py): the plan's figures before and after the
+# update and for a fresh partition of the new graph (null with --no-fresh)
+PLAN_FIGURES = Obj(required={"edge_cut": COUNT, "replication_factor": Num(min=0),
+                             "owned_max_over_mean": Num(min=0, nullable=True),
+                             "local_edges_max_over_mean": Num(min=0, nullable=True),
+                             "halo_max_over_mean": Num(min=0, nullable=True),
+                             "bytes_sent_max_over_mean": Num(min=0, nullable=True),
+                             "epoch_payload_bytes": COUNT})
+UPDATE = Obj(required={"format": Str(choices=("shardtrain-update",)), "version": Int(min=1),
+                       "method": Str(max_len=256), "workers": WORKERS,
+                       "graph": Obj(required={key: COUNT for key in (
+                           "vertices_before", "vertices_after", "edges_before",
+                           "edges_after")}),
+                       "delta": Obj(required={key: COUNT for key in (
+                           "vertices_added", "edges_added", "edges_removed",
+                           "touched_vertices")}),
+                       "rebuilt": List(Int(min=0, max=MAX_WORKERS), max_len=MAX_WORKERS),
+                       "kept": List(Int(min=0, max=MAX_WORKERS), max_len=MAX_WORKERS),
+                       "before": PLAN_FIGURES, "after": PLAN_FIGURES,
+                       "fresh": Obj(nullable=True, required=PLAN_FIGURES.required),
+                       "payload_excess_percent": Num(nullable=True),
+                       "repartition_above": Num(min=0, nullable=True),
+                       "repartitioned": Bool(),
+                       "output_plan": Str(choices=("updated", "fresh"))},
+             optional={"shard_dir": Str(), "out": Str(), "split_id": Str(),
+                       "seconds": Obj(), "notes": List(Str())})
+
 SHAPES = {"checkpoint": CHECKPOINT, "survey": SURVEY, "run": RUN, "forecast": FORECAST,
-          "sweep": SWEEP,
-          "calibration": CALIBRATION, "manifest": MANIFEST}
+          "sweep": SWEEP, "calibration": CALIBRATION, "manifest": MANIFEST, "update": UPDATE}
 
 
 # ---------------------------------------------------------------- cross-field checks

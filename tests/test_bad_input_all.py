@@ -90,6 +90,26 @@ CASES = [
     ("synth exponent", ["synth", "{out}/s.npz", "--vertices", "50", "--degree-exponent",
                         "0.5"], r"--degree-exponent"),
     ("synth seed", ["synth", "{out}/s.npz", "--vertices", "50", "--seed", "1.5"], r"--seed"),
+    ("synth grow weeks", ["synth", "{out}/s.npz", "--vertices", "50", "--grow", "0"],
+     r"--grow"),
+    ("synth growth alone", ["synth", "{out}/s.npz", "--vertices", "50", "--growth", "0.2"],
+     r"--growth: give --grow"),
+    # update (tests/test_update.py has the bad deltas)
+    ("update nothing to do", ["update", "{shards}", "--out", "{out}/u"], r"--add-edges"),
+    ("update edges file missing", ["update", "{shards}", "--add-edges", "{out}/none.txt",
+                                   "--out", "{out}/u"], r"none\.txt"),
+    ("update repartition without fresh", ["update", "{shards}", "--add-edges",
+                                          "{d}/assign_short.txt", "--no-fresh",
+                                          "--repartition-above", "10", "--out", "{out}/u"],
+     r"--repartition-above: needs the fresh plan"),
+    ("update not a shard dir", ["update", "{d}/empty", "--add-edges", "{d}/assign_short.txt",
+                                "--out", "{out}/u"], r"empty/shards\.json"),
+    # train --warm-start
+    ("train warm-start missing", ["train", "{shards}", *TRAIN, "--warm-start", "{out}/none"],
+     r"--warm-start .*none: no such folder"),
+    ("train warm-start with resume", ["train", "{shards}", *TRAIN, "--warm-start", "{ck}",
+                                      "--resume", "{ck}"], r"--resume: not allowed with "
+                                                           r"--warm-start"),
     # split
     ("split method", ["split", "{g}", "--workers", "2", "--method", "nosuch", "--out",
                       "{out}/sh"], r"--method"),

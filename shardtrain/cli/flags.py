@@ -29,6 +29,10 @@ FLAGS = {
     # plans
     "method": "--method", "workers": "--workers", "imbalance": "--imbalance",
     "assignment": "--assignment", "memory_budget": "--memory-budget",
+    # update (plan/update.py)
+    "add_edges": "--add-edges", "remove_edges": "--remove-edges",
+    "add_vertices": "--add-vertices", "allow_missing": "--allow-missing",
+    "repartition_above": "--repartition-above", "fresh": "--no-fresh",
     # forecast
     "link_gbps": "--link-gbps", "latency_us": "--latency-us",
     "speed_factor": "--speed-factor", "cores": "--cores",
@@ -37,10 +41,12 @@ FLAGS = {
     # synth
     "vertices": "--vertices", "avg_degree": "--avg-degree", "homophily": "--homophily",
     "degree_exponent": "--degree-exponent", "signal": "--signal",
+    "grow": "--grow", "growth": "--growth",
     # outputs and folders
     "plot": "--plot", "out": "--out", "overwrite": "--overwrite", "json": "--json",
     "checkpoint": "--checkpoint", "resume": "--resume", "reference": "--reference",
     "single_process": "--single-process",
+    "warm_start": "--warm-start",
     "emulate_link": "--emulate-link",
     # databases (ingest --sql, train --predictions-sql)
     "sql": "--sql", "edges_query": "--edges-query", "vertices_query": "--vertices-query",

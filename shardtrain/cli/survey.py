@@ -4,6 +4,9 @@ For every method x worker count, the graph is partitioned and its shards built (
 only); nothing is trained and no process is started, so worker counts far beyond this
 machine (up to 1024 and more) can be compared. Traffic is the payload the trainer will
 measure: forward and backward halo exchanges and the ring all-reduce of one epoch.
+GRAPH may also be a shard directory (from `split` or `update`): the plan it holds is
+surveyed, on the graph read back from its shards (the same JSON as a survey of that graph
+with that assignment).
 """
 from __future__ import annotations
 
@@ -257,6 +260,10 @@ def _run(args, group=None, agree=None) -> int:
                     out_dirs={"--plot": args.plot})
     settings = _settings(args)
     budget = args.memory_budget
+    from shardtrain.plan.update import is_shard_dir
+
+    if is_shard_dir(args.graph):
+        return _run_shard_dir(args, settings)
     if is_graph_dir(args.graph):
         if (settings.halo_keep, settings.halo_format) != (defaults.HALO_KEEP,
                                                           defaults.HALO_FORMAT):
@@ -283,6 +290,34 @@ def _run(args, group=None, agree=None) -> int:
     result = survey(graph, methods, workers, settings, assignment=assignment,
                     on_plan=_plan_line)
     result["graph"]["source"] = str(getattr(loaded, "source", args.graph))
+    _report(args, result)
+    return 0
+
+
+def _run_shard_dir(args, settings) -> int:
+    """GRAPH is a shard directory (`split`, `update`): survey the plan it holds, on the
+    graph read back from its shards (`plan.update.read_shard_graph`): the same JSON as a
+    survey of that graph with that assignment, the plan labelled by the manifest's method."""
+    from shardtrain.plan.update import read_shard_graph
+
+    for option, value in (("--features", args.features), ("--labels", args.labels),
+                          ("--assignment", args.assignment), ("--method", args.method),
+                          ("--workers", args.workers)):
+        if value is not None:
+            raise InputError(f"{option}: {args.graph} is a shard directory, which holds its "
+                             f"own plan and vertex data")
+    held = read_shard_graph(args.graph)
+    meta = held.manifest.get("meta") or {}
+    if settings.input_dim is None and meta.get("input_dim") is not None:
+        import dataclasses
+
+        settings = dataclasses.replace(settings, input_dim=int(meta["input_dim"]))
+    label = held.manifest.get("method") or "assignment"
+    for note in held.notes:
+        print(note, file=sys.stderr)
+    result = survey(held.graph, [label], [held.workers], settings,
+                    assignment=held.assignment, on_plan=_plan_line)
+    result["graph"]["source"] = str(args.graph)
     _report(args, result)
     return 0
 

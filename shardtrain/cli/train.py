@@ -143,6 +143,11 @@ def add_arguments(parser) -> None:
     parser.add_argument("--resume", metavar="DIR",
                         help="continue the run whose checkpoint is in DIR (same graph, "
                              "settings and workers; checkpoints go on into DIR)")
+    parser.add_argument("--warm-start", metavar="DIR",
+                        help="continue from the checkpoint in DIR taken on another graph (an "
+                             "older version of this one, e.g. before `shardtrain update`): "
+                             "its weights and Adam state; --epochs more epochs, numbered on "
+                             "from the checkpoint's; the model shape must be the same")
     parser.add_argument("--slow-worker", metavar="W:FACTOR", action="append", default=[],
                         help="make worker W's compute FACTOR (>= 1) times slower, to see the "
                              "wait a straggler causes (repeatable)")
@@ -192,7 +197,8 @@ def _check_paths(args) -> None:
 
     check_paths(inputs={"GRAPH": args.graph, "--features": args.features,
                         "--labels": args.labels, "--assignment": args.assignment,
-                        "--init-weights": args.init_weights, "--resume": args.resume},
+                        "--init-weights": args.init_weights, "--resume": args.resume,
+                        "--warm-start": args.warm_start},
                 outputs={"--json": args.json, "--weights": args.weights,
                          "--predictions": args.predictions},
                 out_dirs={"--plot": getattr(args, "plot", None),
@@ -422,7 +428,7 @@ def config_of(args) -> api.RunConfig:
         workers=args.workers, method=args.method, assignment=args.assignment,
         imbalance=args.imbalance, checkpoint=args.checkpoint,
         checkpoint_every=args.checkpoint_every, resume=args.resume,
-        init_weights=args.init_weights, timeout_s=args.timeout,
+        warm_start=args.warm_start, init_weights=args.init_weights, timeout_s=args.timeout,
         max_frame_bytes=args.max_frame_bytes, link=link,
         slow_workers=parse_slow_workers(args.slow_worker))
 

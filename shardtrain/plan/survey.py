@@ -328,7 +328,7 @@ def survey_plan(graph, method: str, k: int, *, hops: list[LayerHop], itemsize: i
     `itemsize`), `traffic["halo_scheme"]` is `schemes.plan_scheme_traffic` (every epoch's
     halo payload for `seed` and `epochs`, and the expectation per epoch) and the plan's
     `epoch_payload_bytes` uses the expectation."""
-    from shardtrain.plan.shards import build_shards, shard_stats
+    from shardtrain.plan.shards import build_shards
 
     t0, c0 = time.perf_counter(), time.process_time()
     details = {"method": method}             # how the plan was made (METIS: scheme, balance)
@@ -342,6 +342,26 @@ def survey_plan(graph, method: str, k: int, *, hops: list[LayerHop], itemsize: i
     # (tests/test_survey.py checks the prediction against a trained run's measurement).
     shards = build_shards(graph, assignment, k, with_vertex_data=False, order="id")
     t2, c2 = time.perf_counter(), time.process_time()
+    fsize = None if graph.features is None else graph.features.dtype.itemsize
+    plan = plan_of_shards(shards, method, graph.num_vertices, hops=hops, itemsize=itemsize,
+                          bias=bias, feature_itemsize=fsize, details=details,
+                          scheme=scheme, seed=seed, epochs=epochs,
+                          times={"partition_s": t1 - t0, "build_s": t2 - t1,
+                                 "partition_cpu_s": c1 - c0, "build_cpu_s": c2 - c1})
+    del shards            # refcounting frees them now: the next plan starts clean
+    return plan
+
+
+def plan_of_shards(shards, method: str, num_vertices: int, *, hops: list[LayerHop],
+                   itemsize: int, bias: bool, feature_itemsize: int | None, details: dict,
+                   times: dict, scheme=None, seed: int = 0,
+                   epochs: int = defaults.EPOCHS) -> dict:
+    """The survey's plan record of a full list of built shards, in any local order (every
+    count read is order-invariant): `survey_plan`'s, and `update`'s of the shards it
+    holds or builds anyway. `scheme`, `seed`, `epochs`: as `survey_plan`'s."""
+    from shardtrain.plan.shards import shard_stats
+
+    k = len(shards)
     params = parameter_elements(hops, bias=bias)
     traffic = predict_traffic(shards, hops, itemsize, param_elements=params)
     dtype = np.dtype(f"f{itemsize}")
@@ -355,15 +375,11 @@ def survey_plan(graph, method: str, k: int, *, hops: list[LayerHop], itemsize: i
     # entries of the local Â in halo columns: each cut edge appears once on either side
     cut_entries = np.array([np.count_nonzero(s.adj.indices >= s.num_owned) for s in shards])
     owned, halo, local_edges = stats["owned"], stats["halo"], stats["local_edges"]
-    fsize = None if graph.features is None else graph.features.dtype.itemsize
     memory = np.array([predict_memory(s, hops, itemsize, param_elements=params,
-                                      input_dim=hops[0].d_in, feature_itemsize=fsize)
+                                      input_dim=hops[0].d_in, feature_itemsize=feature_itemsize)
                        for s in shards])
-    del shards            # refcounting frees them now: the next plan starts clean
-    return plan_record(method, k, graph.num_vertices, owned, halo, local_edges, cut_entries,
-                       memory, traffic, details,
-                       {"partition_s": t1 - t0, "build_s": t2 - t1,
-                        "partition_cpu_s": c1 - c0, "build_cpu_s": c2 - c1})
+    return plan_record(method, k, num_vertices, owned, halo, local_edges, cut_entries,
+                       memory, traffic, details, times)
 
 
 def plan_record(method: str, k: int, num_vertices: int, owned, halo, local_edges,

@@ -181,7 +181,15 @@ CAPTIONS = {
                            "panel per link speed, one line per partition method.",
     "forecast_worker_times": "Forecast split of one training epoch of the fastest plan, per "
                              "worker.",
+    "drift": "Payload per training epoch of the updated plan (vertices kept on their "
+             "workers, new ones placed by the Fennel score) and of a fresh partition of each "
+             "week's network by the same method; labels: the updated plan's excess.",
 }
+
+
+def figures_html(paths: list[str]) -> str:
+    """The pictures as embedded <figure>s with their captions (`CAPTIONS` by file stem)."""
+    return _figures(paths)
 
 
 def _figures(paths: list[str]) -> str:

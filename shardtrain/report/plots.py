@@ -442,3 +442,33 @@ def sweep_plots(doc: dict, out_dir) -> list[str]:
         fig.tight_layout()
         paths.append(_save(fig, out_dir, name))
     return paths
+
+
+def drift_plot(weeks: list[dict], out_dir, name: str = "drift.png") -> str:
+    """Payload per training epoch of the updated plan and of a fresh partition of each
+    week's network (`update` reports, in week order), and the updated plan's excess."""
+    Path(out_dir).mkdir(parents=True, exist_ok=True)
+    x = [w["week"] for w in weeks]
+    fig, ax = plt.subplots(figsize=(5.2, 3.2))
+    ax.plot(x, [w["after"]["epoch_payload_bytes"] for w in weeks], marker="o",
+            label="updated plan")
+    fresh = [(w["week"], w["fresh"]["epoch_payload_bytes"]) for w in weeks if w.get("fresh")]
+    if fresh:
+        ax.plot([f[0] for f in fresh], [f[1] for f in fresh], marker="s", linestyle="--",
+                label="fresh partition")
+    for w in weeks:
+        if w.get("payload_excess_percent") is not None:
+            ax.annotate(f"{w['payload_excess_percent']:+.1f} %",
+                        (w["week"], w["after"]["epoch_payload_bytes"]),
+                        textcoords="offset points", xytext=(0, 7), ha="center", fontsize=8)
+    top = max(w["after"]["epoch_payload_bytes"] for w in weeks)
+    _linear_bytes_axis(ax.yaxis, top * 1.15)
+    ax.set_ylim(0, top * 1.15)
+    ax.xaxis.set_major_locator(MultipleLocator(1))
+    ax.set_xlabel("week")
+    ax.set_ylabel("payload per training epoch")
+    ax.set_title("drift of the plan as the network grows", fontsize=10)
+    ax.grid(True, alpha=0.3)
+    ax.legend(fontsize=8, loc="lower right")
+    fig.tight_layout()
+    return _save(fig, out_dir, name)

@@ -68,11 +68,14 @@ class RunConfig:
     workers, method, assignment (a vertex -> worker file), imbalance: the partition of a
     graph source (a shard directory brings its own; `workers`, if given, must agree).
     checkpoint, checkpoint_every, resume: checkpoint folder, epochs between checkpoints
-    (default 10, or the resumed run's), a folder to resume from. init_weights: an .npz of
-    weights to start from. timeout_s: deadline of every receive; max_frame_bytes: the
-    largest halo/all-reduce frame accepted (None: 2 GiB); link: a `transport.link.LinkModel`
-    to emulate; slow_workers: {worker: factor >= 1} stragglers. The BLAS threads per
-    process are `settings.threads`.
+    (default 10, or the resumed run's), a folder to resume from. warm_start: a checkpoint
+    folder of a run on another graph (an older version of this one) to continue from: its
+    weights and Adam state, the epochs numbered on after its epoch (`settings.epochs` more
+    of them), early stopping started afresh; the model shape must be the same.
+    init_weights: an .npz of weights to start from. timeout_s: deadline of every receive;
+    max_frame_bytes: the largest halo/all-reduce frame accepted (None: 2 GiB); link: a
+    `transport.link.LinkModel` to emulate; slow_workers: {worker: factor >= 1} stragglers.
+    The BLAS threads per process are `settings.threads`.
     """
 
     source: str
@@ -89,6 +92,7 @@ class RunConfig:
     checkpoint: str | None = None
     checkpoint_every: int | None = None
     resume: str | None = None
+    warm_start: str | None = None
     init_weights: str | None = None
     timeout_s: float = defaults.TIMEOUT_S
     max_frame_bytes: int | None = None
@@ -229,6 +233,7 @@ def _check_single_process(config: RunConfig, transport: str) -> None:
         raise ParameterError("single_process", f"not available with {_MPI} (one process)")
     for name, given in (("checkpoint", config.checkpoint), ("resume", config.resume),
                         ("checkpoint_every", config.checkpoint_every),
+                        ("warm_start", config.warm_start),
                         ("slow_workers", config.slow_workers),
                         ("max_frame_bytes", config.max_frame_bytes), ("link", config.link)):
         if given:
@@ -259,6 +264,15 @@ def _check_run_options(config: RunConfig, transport: str) -> None:
     if config.resume and config.init_weights:
         raise ParameterError("init_weights", f"not allowed with {option('resume')} (the "
                              f"checkpoint holds the weights)")
+    if config.warm_start is not None:
+        if transport == "mpi":
+            raise ParameterError("warm_start", f"not available with {_MPI}")
+        for name, given in (("resume", config.resume), ("init_weights", config.init_weights)):
+            if given:
+                raise ParameterError(name, f"not allowed with {option('warm_start')} (the "
+                                           f"checkpoint holds the weights)")
+        if not Path(config.warm_start).is_dir():
+            raise ParameterError("warm_start", "no such folder", value=config.warm_start)
 
 
 def check_slow_range(slow: dict[int, float], workers: int) -> None:
@@ -284,6 +298,45 @@ def check_model_fits(dims, settings: TrainSettings) -> None:
         raise InputError(f"{option('hidden')} {settings.hidden} {option('layers')} "
                          f"{settings.layers}: the weights and optimiser state alone need "
                          f"{human_bytes(need)}, this machine has {human_bytes(have)}")
+
+
+def read_warm_start(folder, settings: TrainSettings):
+    """(the checkpoint in `folder` with its early-stopping state left out, the settings
+    with `epochs` counted on from its epoch)."""
+    import dataclasses
+
+    from shardtrain.train import checkpoint
+
+    ckpt = checkpoint.read_checkpoint(folder, param="warm_start")
+    total = ckpt.epoch + settings.epochs
+    top = dict((name, limit) for name, limit, _ in LIMITS)["epochs"]
+    if total > top:
+        raise ParameterError("epochs", f"the checkpoint in {folder} is at epoch {ckpt.epoch}: "
+                                       f"{ckpt.epoch} + {settings.epochs} is above {top:,}",
+                             value=settings.epochs)
+    return (dataclasses.replace(ckpt, early={}),
+            dataclasses.replace(settings, epochs=total))
+
+
+def check_warm_start(ckpt, dims, settings: TrainSettings) -> None:
+    """Refuse (one line naming warm_start) a checkpoint of another model shape: layers and
+    widths (feature width, hidden, classes), bias, or dtype."""
+    from shardtrain.train import model
+
+    theirs = [list(map(int, d)) for d in ckpt.doc["dims"]]
+    mine = [list(map(int, d)) for d in dims]
+    if theirs != mine:
+        raise ParameterError("warm_start", f"the checkpoint's model has layers {theirs}, this "
+                                           f"run's has {mine} (another feature width, hidden "
+                                           f"width, layer count or class count)",
+                             value=ckpt.folder)
+    their_dtype = ckpt.doc["settings"].get("dtype")
+    if their_dtype != settings.dtype:
+        raise ParameterError("warm_start", f"the checkpoint was trained in {their_dtype}, this "
+                                           f"run asks for {settings.dtype}",
+                             value=ckpt.folder)
+    model.params_from_arrays(ckpt.params, dims, settings.bias, settings.np_dtype,
+                             source=f"{option('warm_start')} {ckpt.folder}")
 
 
 def load_init_weights(path, dims, settings: TrainSettings):
@@ -337,6 +390,10 @@ def _run_pipes(config, transport, sess, on_epoch, on_ready, check, deliver) -> R
                                      config.resume)
     settings = config.settings
     done = ckpts.resumed.epoch if ckpts.resumed is not None else 0
+    warm = None
+    if config.warm_start is not None:
+        warm, settings = read_warm_start(config.warm_start, settings)
+        done = warm.epoch
     with ExitStack() as stack:
         labels = None
         graph = None
@@ -358,6 +415,8 @@ def _run_pipes(config, transport, sess, on_epoch, on_ready, check, deliver) -> R
             ensure_descriptors(facts.workers)
             dims = model_dims_of(facts, settings)
             check_model_fits(dims, settings)
+            if warm is not None:
+                check_warm_start(warm, dims, settings)
             init = (load_init_weights(config.init_weights, dims, settings)
                     if config.init_weights else None)
             graph_doc = rundoc.graph_of_shards(config.source, facts)
@@ -382,6 +441,8 @@ def _run_pipes(config, transport, sess, on_epoch, on_ready, check, deliver) -> R
             check_early_stop(graph, settings)
             dims = model_dims(graph, settings)
             check_model_fits(dims, settings)
+            if warm is not None:
+                check_warm_start(warm, dims, settings)
             init = (load_init_weights(config.init_weights, dims, settings)
                     if config.init_weights else None)
             assignment = None
@@ -431,7 +492,7 @@ def _run_pipes(config, transport, sess, on_epoch, on_ready, check, deliver) -> R
         pause_point("training")
         if config.reference:
             result = session.train_reference_checkpointed(graph, settings, init, schedule,
-                                                          ckpts.resumed, on_epoch)
+                                                          ckpts.resumed or warm, on_epoch)
         elif config.single_process:
             from shardtrain.train.single_process import train_single_process
             assert graph is not None and assignment is not None   # a graph source, split
@@ -442,7 +503,7 @@ def _run_pipes(config, transport, sess, on_epoch, on_ready, check, deliver) -> R
             result = train_partitioned(shard_dir, settings, timeout_s=config.timeout_s,
                                        init_params=init, on_epoch=on_epoch,
                                        max_frame_bytes=config.max_frame_bytes,
-                                       checkpoint=schedule, resume=ckpts.resumed,
+                                       checkpoint=schedule, resume=ckpts.resumed or warm,
                                        slow=dict(config.slow_workers), link=config.link)
             if labels is None:
                 labels = result.labels
@@ -451,6 +512,10 @@ def _run_pipes(config, transport, sess, on_epoch, on_ready, check, deliver) -> R
     if ckpts.resumed is not None:
         extra["resumed_from"] = {"folder": str(config.resume),
                                  "epoch": ckpts.resumed.epoch}
+    if warm is not None:
+        extra["warm_start"] = {"folder": str(config.warm_start), "epoch": warm.epoch,
+                               "graph_fingerprint": warm.doc.get("graph_fingerprint"),
+                               "shards_fingerprint": warm.doc.get("shards_fingerprint")}
     if schedule is not None:
         extra["checkpoint"] = {"folder": schedule["folder"], "every": schedule["every"]}
     if config.slow_workers:
