@@ -19,6 +19,8 @@ Shims:
 - `worker_log_receiver(ctx, sub_handler, name)`: multiprocessing-logging's handler with its
   queue made in the run's multiprocessing context (it replaces an attribute the library's
   __init__ sets); the standard library's QueueListener when that does not take.
+- `parse_toml(text)`: the standard library's `tomllib` (Python 3.11+); on 3.10, where it
+  does not exist, None (the caller refuses a TOML file and asks for JSON).
 """
 from __future__ import annotations
 
@@ -283,3 +285,13 @@ def worker_log_receiver(ctx, sub_handler: logging.Handler, name: str):
     _fall_back("worker_log_receiver", "multiprocessing-logging's handler no longer assigns "
                "its queue in __init__; using logging.handlers.QueueListener")
     return _StdlibReceiver(ctx, sub_handler)
+
+
+def parse_toml(text: str):
+    """The TOML document `text` as a dict (`tomllib.loads`); None where this Python has no
+    `tomllib` (3.10). A malformed document raises ValueError (`TOMLDecodeError` is one)."""
+    try:
+        import tomllib  # type: ignore[import-not-found,unused-ignore]
+    except ModuleNotFoundError:   # Python 3.10
+        return None
+    return tomllib.loads(text)

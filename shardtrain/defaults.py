@@ -22,6 +22,9 @@ EARLY_STOP = 0
 THREADS = 1
 MODEL = "gcn"                          # plan.schedule.MODELS: gcn, sage, gin, gat
 HEADS = 8                              # GAT heads per hidden layer (Velickovic et al. 2018)
+# halo schemes (plan.schemes.HaloScheme): every halo row kept, in the training dtype (exact)
+HALO_KEEP = 1.0
+HALO_FORMAT: str | None = None
 
 # a training run (train.api.RunConfig, train.session, cli/train.py)
 TRANSPORT = "pipes"                    # worker processes on this machine
@@ -47,6 +50,7 @@ SYNTH_VERTICES = 10_000
 SYNTH_AVG_DEGREE = 10.0
 SYNTH_CLASSES = 6
 SYNTH_FEATURES = 32
+SYNTH_GROWTH = 0.05                     # synth --grow: new depots per week, share of n
 HOMOPHILY = 0.8
 DEGREE_EXPONENT = 2.5
 SIGNAL = 1.5
@@ -66,3 +70,6 @@ DEMO_LINKS_GBPS = (1.0, 10.0)
 def listed(values) -> str:
     """(2, 4, 8) -> '2,4,8' and (1.0, 10.0) -> '1,10': a list default as an option takes it."""
     return ",".join(f"{v:g}" if isinstance(v, float) else str(v) for v in values)
+
+# calibrate --spec-out: the network of the written spec (this machine's is not measured)
+SPEC_NETWORK_GBPS = 10.0

@@ -43,7 +43,7 @@ MAX_COUNT = 1 << 62            # vertices, edges, bytes: below int64's range
 MAX_LIST = 1 << 24             # items in one list (epochs, plans, shards ...)
 MAX_BYTES: dict[str | None, int] = {      # looked up by kind, which may be None
     "checkpoint": 16 << 20, "calibration": 16 << 20, "survey": 1 << 30,
-    "run": 1 << 30, "forecast": 1 << 30}
+    "run": 1 << 30, "forecast": 1 << 30, "sweep": 1 << 30}
 DEFAULT_MAX_BYTES = 256 << 20
 
 
@@ -368,7 +368,8 @@ RUN_WORKER = Obj(required={"worker": Int(min=0, max=MAX_WORKERS)},
 RUN = Obj(optional={"epochs": List(EPOCH),
                     "settings": Obj(optional={"epochs": Int(min=0), "layers": Int(min=1),
                                               "hidden": Int(min=1)}),
-                    "graph": GRAPH_FACTS, "mode": Str(choices=("reference", "partitioned")),
+                    "graph": GRAPH_FACTS,
+                    "mode": Str(choices=("reference", "partitioned", "single-process")),
                     "workers": List(RUN_WORKER, max_len=MAX_WORKERS),
                     "traffic": Obj(optional={"measured_payload_bytes": COUNT,
                                              "predicted_payload_bytes": COUNT,
@@ -388,17 +389,34 @@ FORECAST_PLAN = Obj(required={"method": Str(max_len=256), "workers": WORKERS,
                                                    "compute_s", "exchange_s", "allreduce_s",
                                                    "wait_s")}), max_len=MAX_WORKERS),
                         "steps": List(Obj(optional={"seconds": SECONDS_OR_NULL})),
-                        "fastest": Bool(), "fewest_meeting_target": Bool()})
+                        "fastest": Bool(), "fewest_meeting_target": Bool(),
+                        # forecast --worker-spec: the described worker, memory fit, price
+                        "spec": Str(max_len=256), "memory_bytes": Int(min=0, nullable=True),
+                        "memory_limit_bytes": COUNT, "fits_memory": Bool(nullable=True),
+                        "price_per_hour": Num(min=0, nullable=True),
+                        "price_per_epoch": Num(min=0, nullable=True),
+                        "price_per_100_epochs": Num(min=0, nullable=True),
+                        "cheapest_meeting_target": Bool(), "receiver_contention": Bool()})
 PICKED = Obj(required={"method": Str(), "workers": WORKERS,
                        "link_gbps": Num(min=0, above=True), "epoch_s": SECONDS},
+             optional={"spec": Str(max_len=256), "price_per_epoch": Num(min=0, nullable=True),
+                       "price_per_100_epochs": Num(min=0, nullable=True)},
              nullable=True)
+SPEC_ANSWER = Obj(required={"spec": Str(max_len=256), "fastest": PICKED,
+                            "fewest_meeting_target": PICKED},
+                  optional={"plans_fitting_memory": COUNT, "plans": COUNT})
 FORECAST = Obj(required={"plans": List(FORECAST_PLAN, min_len=1)},
                optional={"kind": Str(choices=("forecast",)), "graph": GRAPH_FACTS,
                          "model": Obj(), "latency_us": Num(min=0),
                          "speed_factor": Num(min=0, above=True),
                          "target_epoch_s": Num(min=0, above=True, nullable=True),
                          "cores": Int(min=1, nullable=True), "fastest": PICKED,
-                         "fewest_meeting_target": PICKED})
+                         "fewest_meeting_target": PICKED,
+                         "per_spec": List(SPEC_ANSWER, max_len=256),
+                         "cheapest_meeting_target": PICKED,
+                         "worker_specs": List(Obj(required={"name": Str(max_len=256)}),
+                                              max_len=256),
+                         "receiver_contention": Bool()})
 
 POSITIVE = Num(min=0, above=True)
 CALIBRATION = Obj(required={
@@ -408,7 +426,13 @@ CALIBRATION = Obj(required={
     "dense": List(Obj(required={"d_in": Int(min=1), "d_out": Int(min=1),
                                 "flops_per_s": POSITIVE}), min_len=1, max_len=4096),
     "elementwise": Obj(required={"bytes_per_s": POSITIVE}),
-    "dropout_masks": Obj(required={"elements_per_s": POSITIVE})},
+    "dropout_masks": Obj(required={"elements_per_s": POSITIVE}),
+    "roofline": Obj(required={"stream_bytes_per_s": POSITIVE, "flops_per_s": POSITIVE},
+                    optional={"two_threads": Obj(required={"stream_bytes_per_s": POSITIVE,
+                                                           "flops_per_s": POSITIVE}),
+                              "parallel_efficiency_2": Obj(required={
+                                  "bandwidth": Num(min=0, above=True, max=1),
+                                  "flops": Num(min=0, above=True, max=1)})})},
     optional={"pipe": Obj(required={"bytes_per_s": POSITIVE}, nullable=True),
               "threads": Int(min=1), "calibration_s": SECONDS_OR_NULL,
               "exchange_call": Obj(optional={"seconds_per_call": SECONDS}),
@@ -417,7 +441,9 @@ CALIBRATION = Obj(required={
 _SETTINGS = Obj(required={"seed": Int()},
                 optional={"layers": Int(min=1), "hidden": Int(min=1),
                           "dropout": Num(min=0, max=1), "lr": Num(min=0),
-                          "weight_decay": Num(min=0), "dtype": DTYPE, "bias": Bool()})
+                          "weight_decay": Num(min=0), "dtype": DTYPE, "bias": Bool(),
+                          "halo_keep": Num(min=0, max=1),
+                          "halo_format": Str(nullable=True, max_len=16)})
 CHECKPOINT = Obj(required={
     "format": Str(choices=("shardtrain-checkpoint",)), "version": Int(),
     "epoch": Int(min=1, max=1 << 40),
@@ -491,8 +517,46 @@ MANIFEST = Steps((
     Obj(optional={"meta": Obj(says="an object")}),
 ))
 
+_RATIO = Num(min=0, nullable=True)
+SWEEP_ROW = Obj(required={"scheme": Obj(), "halo_payload_per_epoch": Num(min=0)},
+                optional={"halo_payload_ratio": _RATIO, "epoch_s": SECONDS_OR_NULL,
+                          "epoch_s_ratio": _RATIO, "final_test_acc": FRACTION_OR_NULL,
+                          "test_acc_at_best_val": FRACTION_OR_NULL,
+                          "final_test_acc_points": Num(nullable=True),
+                          "test_acc_at_best_val_points": Num(nullable=True),
+                          "best_val_epoch": Int(min=1), "payload_equals_prediction": Bool()})
+SWEEP = Obj(required={"kind": Str(choices=("sweep",)), "rows": List(SWEEP_ROW, min_len=1)},
+            optional={"graph": GRAPH_FACTS, "workers": Int(min=1, nullable=True),
+                      "epochs": Int(min=1), "method": Str(max_len=256)})
+# `shardtrain update --json` (plan/update.py): the plan's figures before and after the
+# update and for a fresh partition of the new graph (null with --no-fresh)
+PLAN_FIGURES = Obj(required={"edge_cut": COUNT, "replication_factor": Num(min=0),
+                             "owned_max_over_mean": Num(min=0, nullable=True),
+                             "local_edges_max_over_mean": Num(min=0, nullable=True),
+                             "halo_max_over_mean": Num(min=0, nullable=True),
+                             "bytes_sent_max_over_mean": Num(min=0, nullable=True),
+                             "epoch_payload_bytes": COUNT})
+UPDATE = Obj(required={"format": Str(choices=("shardtrain-update",)), "version": Int(min=1),
+                       "method": Str(max_len=256), "workers": WORKERS,
+                       "graph": Obj(required={key: COUNT for key in (
+                           "vertices_before", "vertices_after", "edges_before",
+                           "edges_after")}),
+                       "delta": Obj(required={key: COUNT for key in (
+                           "vertices_added", "edges_added", "edges_removed",
+                           "touched_vertices")}),
+                       "rebuilt": List(Int(min=0, max=MAX_WORKERS), max_len=MAX_WORKERS),
+                       "kept": List(Int(min=0, max=MAX_WORKERS), max_len=MAX_WORKERS),
+                       "before": PLAN_FIGURES, "after": PLAN_FIGURES,
+                       "fresh": Obj(nullable=True, required=PLAN_FIGURES.required),
+                       "payload_excess_percent": Num(nullable=True),
+                       "repartition_above": Num(min=0, nullable=True),
+                       "repartitioned": Bool(),
+                       "output_plan": Str(choices=("updated", "fresh"))},
+             optional={"shard_dir": Str(), "out": Str(), "split_id": Str(),
+                       "seconds": Obj(), "notes": List(Str())})
+
 SHAPES = {"checkpoint": CHECKPOINT, "survey": SURVEY, "run": RUN, "forecast": FORECAST,
-          "calibration": CALIBRATION, "manifest": MANIFEST}
+          "sweep": SWEEP, "calibration": CALIBRATION, "manifest": MANIFEST, "update": UPDATE}
 
 
 # ---------------------------------------------------------------- cross-field checks

@@ -15,6 +15,7 @@ import pytest
 from helpers import depot_graph, save_graph
 
 from shardtrain.cli import main
+from shardtrain.errors import ParameterError
 from shardtrain.forecast.calibrate import CALIBRATION_VERSION
 
 TRAIN = ["--epochs", "4", "--dtype", "float64", "--hidden", "8", "--quiet", "--timeout", "20"]
@@ -89,6 +90,26 @@ CASES = [
     ("synth exponent", ["synth", "{out}/s.npz", "--vertices", "50", "--degree-exponent",
                         "0.5"], r"--degree-exponent"),
     ("synth seed", ["synth", "{out}/s.npz", "--vertices", "50", "--seed", "1.5"], r"--seed"),
+    ("synth grow weeks", ["synth", "{out}/s.npz", "--vertices", "50", "--grow", "0"],
+     r"--grow"),
+    ("synth growth alone", ["synth", "{out}/s.npz", "--vertices", "50", "--growth", "0.2"],
+     r"--growth: give --grow"),
+    # update (tests/test_update.py has the bad deltas)
+    ("update nothing to do", ["update", "{shards}", "--out", "{out}/u"], r"--add-edges"),
+    ("update edges file missing", ["update", "{shards}", "--add-edges", "{out}/none.txt",
+                                   "--out", "{out}/u"], r"none\.txt"),
+    ("update repartition without fresh", ["update", "{shards}", "--add-edges",
+                                          "{d}/assign_short.txt", "--no-fresh",
+                                          "--repartition-above", "10", "--out", "{out}/u"],
+     r"--repartition-above: needs the fresh plan"),
+    ("update not a shard dir", ["update", "{d}/empty", "--add-edges", "{d}/assign_short.txt",
+                                "--out", "{out}/u"], r"empty/shards\.json"),
+    # train --warm-start
+    ("train warm-start missing", ["train", "{shards}", *TRAIN, "--warm-start", "{out}/none"],
+     r"--warm-start .*none: no such folder"),
+    ("train warm-start with resume", ["train", "{shards}", *TRAIN, "--warm-start", "{ck}",
+                                      "--resume", "{ck}"], r"--resume: not allowed with "
+                                                           r"--warm-start"),
     # split
     ("split method", ["split", "{g}", "--workers", "2", "--method", "nosuch", "--out",
                       "{out}/sh"], r"--method"),
@@ -291,5 +312,13 @@ def test_a_calibration_cache_is_kept_replaced_or_refused(inputs, tmp_path):
     # A version-1 cache (written before the copying cost was timed) is re-timed, not used.
     v1 = {k: v for k, v in cal.items() if k != "transport_copy"}
     (tmp_path / "v1.json").write_text(json.dumps(dict(v1, version=1)))
-    assert CALIBRATION_VERSION == 2
+    assert CALIBRATION_VERSION == 3
     assert read_calibration(tmp_path / "v1.json", "float32") is None
+    # A version-2 cache (written before the roofs were measured) is re-timed, not used.
+    v2 = {k: v for k, v in cal.items() if k != "roofline"}
+    (tmp_path / "v2.json").write_text(json.dumps(dict(v2, version=2)))
+    assert read_calibration(tmp_path / "v2.json", "float32") is None
+    # ... while a version-3 file without them is refused as not usable
+    (tmp_path / "v3.json").write_text(json.dumps(v2))
+    with pytest.raises(ParameterError, match="roofline"):
+        read_calibration(tmp_path / "v3.json", "float32")

@@ -20,10 +20,12 @@ def test_training_defaults_are_the_gcn_papers():
         "layers": d.LAYERS, "hidden": d.HIDDEN, "dropout": d.DROPOUT, "lr": d.LR,
         "weight_decay": d.WEIGHT_DECAY, "epochs": d.EPOCHS, "seed": d.SEED, "dtype": d.DTYPE,
         "bias": d.BIAS, "early_stop": d.EARLY_STOP, "threads": d.THREADS, "model": d.MODEL,
-        "heads": d.HEADS}
+        "heads": d.HEADS, "halo_keep": d.HALO_KEEP, "halo_format": d.HALO_FORMAT}
     # the model family's defaults: GCN as before; GAT's 8 heads on hidden layers
     # (Velickovic et al., ICLR 2018, transductive setup, from memory)
     assert (d.MODEL, d.HEADS) == ("gcn", 8)
+    # halo schemes off by default: every halo row, in the training dtype (exact)
+    assert (d.HALO_KEEP, d.HALO_FORMAT) == (1.0, None)
 
 
 def test_settings_values_read_the_defaults():

@@ -45,9 +45,37 @@ def test_quick_demo_writes_every_output_and_names_the_report_last(quick_demo):
     assert sorted(p.name for p in (out / "plots").glob("*.png"))
     last = proc.stdout.strip().splitlines()[-1]
     assert last == f"report: {out / 'report.html'}"
-    assert "[1/5]" in proc.stderr and "[5/5]" in proc.stderr
+    assert "[1/6]" in proc.stderr and "[6/6]" in proc.stderr
     # nothing half-written: no temporary names left anywhere
     assert not [p for p in out.parent.rglob("*") if ".tmp" in p.name]
+
+
+@pytest.mark.slow
+def test_the_network_grows_four_weeks_and_training_restarts_warm(quick_demo):
+    from shardtrain import documents
+    from shardtrain.plan.shards import load_manifest
+
+    out, proc = quick_demo
+    assert proc.returncode == 0, proc.stderr
+    growth = out / "growth"
+    reports = [documents.validate(_json(growth, f"week{w:02d}.update.json"), "update",
+                                  f"week{w:02d}")
+               for w in range(1, 5)]
+    for before, after in zip(reports, reports[1:]):          # each week builds on the last
+        assert after["graph"]["vertices_before"] == before["graph"]["vertices_after"]
+        assert after["before"] == before["after"]
+    shards = load_manifest(growth / "shards-week04")
+    assert shards["num_vertices"] == reports[-1]["graph"]["vertices_after"]
+    assert not (growth / "shards-week01").exists()          # only the last week's shards
+    warm = _json(growth, "warm-restart.run.json")
+    epochs = _json(out, "run.json")["settings"]["epochs"]
+    assert warm["warm_start"]["epoch"] == epochs
+    assert warm["epochs"][0]["epoch"] == epochs + 1
+    assert warm["graph"]["vertices"] == shards["num_vertices"]
+    assert (out / "plots" / "drift.png").is_file()
+    page = (out / "report.html").read_text(encoding="utf-8")
+    assert "The network grows" in page and "warm restart" in page
+    assert len(_json(out, "demo.json")["growth"]["weeks"]) == 4
 
 
 @pytest.mark.slow
@@ -203,7 +231,7 @@ def test_a_failing_step_leaves_nothing_behind(tmp_path, monkeypatch):
     with pytest.raises(RunError, match="on purpose"):
         demo.run_demo(demo.DemoSettings.quick(out=str(tmp_path / "out"), vertices=300),
                       on_step=steps.append)
-    assert steps and steps[0].startswith("[1/5]")
+    assert steps and steps[0].startswith("[1/6]")
     assert list(tmp_path.iterdir()) == []
 
 

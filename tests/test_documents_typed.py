@@ -100,7 +100,7 @@ PLAN_KEYS = ["method", "workers", "edge_cut", "replication_factor", "max_memory_
              "partition_s", "build_s", "partition_cpu_s", "build_cpu_s"]
 CALIBRATION_KEYS = ["version", "dtype", "threads", "sparse", "dense", "elementwise",
                     "dropout_masks", "row_moves", "pipe", "exchange_call", "transport_copy",
-                    "calibration_s"]
+                    "roofline", "calibration_s"]
 
 
 def test_manifest_round_trip_is_byte_identical(shard_dir):
@@ -122,7 +122,7 @@ def test_survey_plan_and_calibration_round_trip():
         assert json_text(again) == json_text(plan) and list(again) == PLAN_KEYS
     cal = from_flops(1e9)
     assert list(cal) == ["version", "dtype", "threads", "sparse", "dense", "elementwise",
-                         "dropout_masks", "calibration_s", "from_flops"]
+                         "dropout_masks", "roofline", "calibration_s", "from_flops"]
     assert json_text(Calibration.from_dict(cal).to_dict()) == json_text(cal)
     full = Calibration(**{k: {} for k in CALIBRATION_KEYS if k not in
                           ("version", "dtype", "threads", "sparse", "dense")},

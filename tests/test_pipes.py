@@ -235,3 +235,145 @@ def test_bad_link_option_names_the_option(text):
     with pytest.raises(InputError, match=r"^emulate_link: ") as info:   # the parameter
         parse_link(text)
     assert cli_message(info.value).startswith("--emulate-link: ")      # the option
+
+
+# --- started exchanges (exchange_start): what only the pipes show -------------------------
+
+def _busy(check, limit_s=30.0) -> bool:
+    """Compute until `check()` (or `limit_s`): the caller is busy, not in the transport."""
+    a = np.random.default_rng(1).standard_normal((100, 100))
+    deadline = time.monotonic() + limit_s
+    while time.monotonic() < deadline and not check():
+        a = np.tanh(a @ a)
+    return bool(check())
+
+
+def test_started_exchange_hides_the_emulated_link_time_behind_compute():
+    # 0.05 Gbit/s: the 250 kB frame needs >= 40 ms on the link (link.py's model, a lower
+    # bound). Both workers start the exchange and compute until it is done: the whole time
+    # in flight is hidden (the caller was never blocked for it), and it is at least the
+    # link's time. A blocking exchange over the same link hides nothing.
+    link = LinkModel(gbps=0.05, latency_us=0)
+    ts = _threads(link=link)
+    payload = np.arange(250_000 // 8, dtype=np.float64)
+    meta = {"kind": "halo", "epoch": 0, "layer": 0, "direction": "forward"}
+    link_s = _frame_bytes(payload, source=0, **meta) * 8 / 5e7
+    seen = {}
+
+    def fn(r, t):
+        inc = {1 - r: np.empty_like(payload)}
+        h = t.exchange_start({1 - r: payload}, inc, **meta)
+        seen["done before wait", r] = _busy(h.done)
+        h.wait()
+        seen["data", r] = np.array_equal(inc[1 - r], payload)
+        t.exchange({1 - r: payload}, inc, kind="halo", epoch=1, layer=0, direction="forward")
+    _both(ts, fn)
+    for r, t in enumerate(ts):
+        assert seen["done before wait", r] and seen["data", r]
+        ov = t.profile.to_dict()["overlap"]
+        assert ov["handles"] == 1                         # the blocking exchange adds none
+        assert ov["blocked_s"] == 0.0                      # done before wait: never blocked
+        assert ov["hidden_s"] == ov["in_flight_s"] >= link_s
+        t.close()
+
+
+def test_overlapping_calls_queue_on_the_one_emulated_interface():
+    # Worker 0 starts two exchanges to worker 1 back to back: on its one interface the
+    # second frame leaves after the first (link.py), so it cannot arrive before
+    # latency + both frames at 0.1 Gbit/s. Lower bound only.
+    link = LinkModel(gbps=0.1, latency_us=10_000)
+    ts = _threads(link=link)
+    a, b = np.zeros(100_000 // 8), np.ones(150_000 // 8)
+    meta = {"kind": "halo", "epoch": 0, "direction": "forward"}
+    stamps = {}
+
+    def fn(r, t):
+        if r == 0:
+            stamps["start"] = time.perf_counter()
+            h1 = t.exchange_start({1: a}, {}, layer=0, **meta)
+            h2 = t.exchange_start({1: b}, {}, layer=1, **meta)
+            h1.wait()
+            h2.wait()
+        else:
+            ia, ib = np.empty_like(a), np.empty_like(b)
+            h1 = t.exchange_start({}, {0: ia}, layer=0, **meta)
+            h2 = t.exchange_start({}, {0: ib}, layer=1, **meta)
+            h2.wait()
+            stamps["second"] = time.perf_counter()
+            h1.wait()
+            assert np.array_equal(ia, a) and np.array_equal(ib, b)
+    _both(ts, fn)
+    both = sum(_frame_bytes(x, source=0, layer=i, **meta) for i, x in enumerate((a, b)))
+    assert stamps["second"] - stamps["start"] >= 0.01 + both * 8 / 1e8
+    for t in ts:
+        t.close()
+
+
+def test_receives_are_matched_by_key_not_by_posting_order():
+    # Worker 1 posts its receives in the other order than worker 0 sends the frames: each
+    # frame still lands in the buffer of its own (kind, epoch, layer, direction).
+    ts = _threads()
+    big = {layer: np.full((300_000,), float(layer)) for layer in (1, 2)}   # > pipe buffer
+
+    def fn(r, t):
+        if r == 0:
+            hs = [t.exchange_start({1: big[layer]}, {}, kind="halo", epoch=3, layer=layer,
+                                   direction="forward") for layer in (1, 2)]
+        else:
+            inc = {layer: np.empty(300_000) for layer in (1, 2)}
+            hs = [t.exchange_start({}, {0: inc[layer]}, kind="halo", epoch=3, layer=layer,
+                                   direction="forward") for layer in (2, 1)]
+        for h in hs:
+            h.wait()
+        if r == 1:
+            assert all(np.array_equal(inc[layer], big[layer]) for layer in (1, 2))
+    _both(ts, fn)
+    for t in ts:
+        t.close()
+
+
+def test_a_wrong_frame_for_a_started_exchange_is_named_by_wait():
+    ends, t = _pair()
+    h = t.exchange_start({}, {1: np.empty(4)}, kind="halo", epoch=5, layer=1,
+                         direction="forward")
+    _raw(ends, frames.encode_frame(np.arange(4.0), kind="halo", epoch=6, layer=1,
+                                   direction="forward", source=1), close=False)
+    with pytest.raises(FrameError, match="frame from worker 1: expected epoch 5, got 6"):
+        h.wait()
+    with pytest.raises(FrameError):           # the transport is not usable any more
+        t.exchange({}, {1: np.empty(4)}, kind="halo", epoch=7, layer=1, direction="forward")
+    ends[1].close()
+    t.close()
+
+
+def test_debug_check_names_an_outgoing_array_modified_before_wait(monkeypatch):
+    from shardtrain.transport import wire
+    monkeypatch.setattr(wire, "CHECK_OUTGOING", True)
+    ts = _threads()
+    out = np.zeros(300_000)
+    got = {}
+
+    def fn(r, t):
+        if r == 0:
+            h = t.exchange_start({1: out}, {}, kind="halo", epoch=0, layer=0,
+                                 direction="forward")
+            out[-1] = 1.0                    # the caller breaks the promise
+            try:
+                h.wait()
+                got["error"] = None
+            except RunError as exc:
+                got["error"] = str(exc)
+            kept = np.zeros(4)                # and keeps it: no error
+            t.exchange_start({1: kept}, {}, kind="halo", epoch=1, layer=0,
+                             direction="forward").wait()
+        else:
+            t.exchange({}, {0: np.empty_like(out)}, kind="halo", epoch=0, layer=0,
+                       direction="forward")
+            t.exchange({}, {0: np.empty(4)}, kind="halo", epoch=1, layer=0,
+                       direction="forward")
+    _both(ts, fn)
+    assert got["error"] == ("the outgoing array to worker 1 was modified before wait() "
+                            "returned (halo forward, layer 0, epoch 0): a started exchange "
+                            "sends it in place")
+    for t in ts:
+        t.close()

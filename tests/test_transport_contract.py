@@ -32,7 +32,7 @@ from helpers import launch_mpi
 
 from shardtrain.errors import RunError
 from shardtrain.transport import frames
-from shardtrain.transport.base import Transport
+from shardtrain.transport.base import ExchangeHandle, Transport
 from shardtrain.transport.loopback import LoopbackTransport
 from shardtrain.transport.meter import Profile, merge
 from shardtrain.transport.pipes import PIPE_BYTES, PipeTransport, make_pipe_mesh, ring_pairs
@@ -198,13 +198,153 @@ def death(t, rank, k, hold) -> dict:
                                      epoch=0, layer=0, direction="forward"))
 
 
+# ---------------------------------------------------------------- started exchanges
+
+OVERLAP_EPOCH = 10           # epochs of the frames of `overlapped` (10..13)
+BUSY_S = 60.0                # the caller computes at most this long waiting for the bytes
+
+
+def _started(t, out, inc, **meta) -> dict:
+    """`exchange` as start + compute + wait: where the error came from, and how long."""
+    t0 = time.perf_counter()
+    try:
+        h = t.exchange_start(out, inc, **meta)
+    except RunError as exc:
+        return {"error": str(exc), "type": type(exc).__name__, "raised_in": "start",
+                "elapsed_s": time.perf_counter() - t0}
+    np.linalg.svd(np.ones((64, 64)))                # the caller computes meanwhile
+    try:
+        h.wait()
+    except RunError as exc:
+        return {"error": str(exc), "type": type(exc).__name__, "raised_in": "wait",
+                "elapsed_s": time.perf_counter() - t0}
+    return {"error": None, "elapsed_s": time.perf_counter() - t0}
+
+
+def _busy_until(check) -> tuple[bool, int]:
+    """Compute (matrix products) until `check()` or BUSY_S; (check passed, rounds)."""
+    a = np.random.default_rng(0).standard_normal((120, 120))
+    deadline, rounds = time.monotonic() + BUSY_S, 0
+    while time.monotonic() < deadline:
+        if check():
+            return True, rounds
+        a = np.tanh(a @ a)
+        rounds += 1
+    return bool(check()), rounds
+
+
+def overlapped(t, rank, k, hold) -> dict:
+    """Started exchanges: two outstanding at once (different keys) with a blocking exchange
+    and an all-reduce between their start and their wait, waited for in reverse order; one
+    whose bytes must have moved while the caller computed; the same key twice."""
+    peers = [q for q in range(k) if q != rank]
+    e = OVERLAP_EPOCH
+    ok = {}
+    inc_a = {q: np.empty((_rows(q, rank), WIDTH), np.float32) for q in peers}
+    inc_b = {q: np.empty((_rows(rank, q), WIDTH)) for q in peers}
+    out_a = {q: _payload(rank, q, e, np.float32) for q in peers}
+    out_b = {q: _payload(q, rank, e + 1, np.float64) for q in peers}     # other sizes
+    h_a = t.exchange_start(out_a, inc_a, kind="halo", epoch=e, layer=1, direction="forward")
+    h_b = t.exchange_start(out_b, inc_b, kind="halo", epoch=e, layer=2, direction="backward")
+    inc_c = {q: np.empty((5, 3)) for q in peers}
+    t.exchange({q: np.full((5, 3), 10.0 * rank) for q in peers}, inc_c, kind="halo",
+               epoch=e, layer=0, direction="forward")
+    buf = np.full(1001, float(rank + 1))
+    t.allreduce_sum(buf, epoch=e)
+    is_handle = isinstance(h_a, ExchangeHandle) and isinstance(h_b, ExchangeHandle)
+    h_b.wait()
+    h_a.wait()
+    ok["two outstanding"] = is_handle and all(
+        np.array_equal(inc_a[q], _payload(q, rank, e, np.float32))
+        and np.array_equal(inc_b[q], _payload(rank, q, e + 1, np.float64)) for q in peers)
+    ok["blocking between"] = all(np.all(inc_c[q] == 10.0 * q) for q in peers)
+    ok["allreduce between"] = bool(np.all(buf == k * (k + 1) / 2))
+
+    # Overlap: the peers' large frames (several pipe buffers each) must land while this
+    # rank computes. Pipes and loopback: the buffer itself is watched, and done() (which
+    # only reads a flag there) must follow: the frames were read, and this rank's own
+    # frames read by its peers, with no call into the transport. MPI moves a large message
+    # only inside the library, so there the caller's compute is interleaved with done(),
+    # which tests the requests (see transport/mpi.py).
+    inc_d = {q: np.zeros((_rows(q, rank), WIDTH)) for q in peers}
+    want = {q: _payload(q, rank, e + 2, np.float64) for q in peers}
+    h_d = t.exchange_start({q: _payload(rank, q, e + 2, np.float64) for q in peers}, inc_d,
+                           kind="halo", epoch=e + 2, layer=1, direction="forward")
+    calls_mpi = type(t).__name__.startswith("Mpi")
+    filled, rounds = _busy_until(
+        h_d.done if calls_mpi else
+        lambda: all(np.array_equal(inc_d[q], want[q]) for q in peers) and h_d.done())
+    done_before = h_d.done()
+    h_d.wait()
+    ok["data after wait"] = all(np.array_equal(inc_d[q], want[q]) for q in peers)
+
+    h_e = t.exchange_start({}, {}, kind="halo", epoch=e + 3, layer=0, direction="forward")
+    try:
+        t.exchange_start({}, {}, kind="halo", epoch=e + 3, layer=0, direction="forward")
+        same_key = "nothing"
+    except ValueError as exc:
+        same_key = "ValueError" if "outstanding" in str(exc) else str(exc)
+    h_e.wait()
+    h_e.wait()                                   # a second wait returns at once
+    return {"ok": ok, "filled_before_wait": filled, "done_before_wait": done_before,
+            "rounds": rounds, "same_key": same_key}
+
+
+def closing(t, rank, k, hold) -> dict:
+    """A handle whose frames cannot arrive (no rank sends them) when the transport closes."""
+    peers = [q for q in range(k) if q != rank]
+    h = t.exchange_start({}, {q: np.empty(3) for q in peers}, kind="halo",
+                         epoch=OVERLAP_EPOCH + 4, layer=0, direction="forward")
+    t.close()
+    try:
+        h.wait()
+    except RunError as exc:
+        return {"type": type(exc).__name__, "message": str(exc)}   # ("error" would abort MPI)
+    return {"type": None}
+
+
+def silent_started(t, rank, k, hold) -> dict:
+    if rank == 0:
+        return _started(t, {}, {1: np.empty(3)}, kind="halo", epoch=0, layer=0,
+                        direction="forward")
+    hold()
+    return {}
+
+
+def wrong_started(t, rank, k, hold) -> dict:
+    if rank == 0:
+        return _started(t, {}, {1: np.empty(4)}, kind="halo", epoch=0, layer=0,
+                        direction="forward")
+    t.exchange_start({0: np.zeros(4)}, {}, kind="halo", epoch=9, layer=0,
+                     direction="forward").wait()
+    hold()
+    return {}
+
+
+def death_started(t, rank, k, hold) -> dict:
+    if rank == 1:
+        hold("dying")
+        os.kill(os.getpid(), signal.SIGKILL)
+    return _started(t, {1: _payload(0, 1, 0, np.float64)},
+                    {1: np.empty((_rows(1, 0), WIDTH))}, kind="halo", epoch=0, layer=0,
+                    direction="forward")
+
+
 GROUPS = {  # group -> (scenarios, k or None for any, transport timeout)
     "mesh": ((bad_arguments, mesh, allreduce), None, 30.0),
     "alone": ((bad_arguments, alone), 1, 30.0),
     "silent": ((silent,), 2, DEADLINE_S),
     "wrong": ((wrong,), 2, 10.0),
     "death": ((death,), 2, SLOW_PEER_TIMEOUT_S),
+    "overlap": ((overlapped, closing), None, 30.0),
+    "silent-started": ((silent_started,), 2, DEADLINE_S),
+    "wrong-started": ((wrong_started,), 2, 10.0),
+    "death-started": ((death_started,), 2, SLOW_PEER_TIMEOUT_S),
 }
+SCENARIO_OF = {"silent": "silent", "wrong": "wrong", "death": "death",
+               "silent-started": "silent_started", "wrong-started": "wrong_started",
+               "death-started": "death_started"}
+STYLES = ("", "-started")     # blocking exchange; exchange_start + wait
 
 
 def run_group(t, rank, k, group, hold) -> dict:
@@ -476,12 +616,15 @@ def test_a_single_rank_exchanges_nothing_and_keeps_its_bits(transport, tmp_path_
     assert r["profile"]["bytes_sent"] == r["profile"]["bytes_received"] == 0
 
 
+@pytest.mark.parametrize("style", STYLES)
 @pytest.mark.parametrize("transport", TRANSPORTS)
-def test_a_silent_peer_is_a_run_error_at_the_deadline(transport, tmp_path_factory):
+def test_a_silent_peer_is_a_run_error_at_the_deadline(transport, style, tmp_path_factory):
     if transport == "loopback":
         pytest.skip(NO_PEERS)
-    res = ran(transport, "silent", 2, tmp_path_factory)
-    got = res["ranks"][0]["silent"]
+    res = ran(transport, "silent" + style, 2, tmp_path_factory)
+    got = res["ranks"][0][SCENARIO_OF["silent" + style]]
+    if style:
+        assert got["raised_in"] == "wait"
     assert got["type"] == "RunError"
     assert got["error"] == ("timed out after 1 s waiting for worker 1 "
                             "(halo forward, layer 0, epoch 0)")
@@ -493,27 +636,33 @@ def test_a_silent_peer_is_a_run_error_at_the_deadline(transport, tmp_path_factor
         assert res["seconds"] < 30                   # ... and the waiting rank went with it
 
 
+@pytest.mark.parametrize("style", STYLES)
 @pytest.mark.parametrize("transport", TRANSPORTS)
-def test_a_frame_other_than_the_expected_one_is_named(transport, tmp_path_factory):
+def test_a_frame_other_than_the_expected_one_is_named(transport, style, tmp_path_factory):
     if transport == "loopback":
         pytest.skip(NO_PEERS)
-    res = ran(transport, "wrong", 2, tmp_path_factory)
-    got = res["ranks"][0]["wrong"]
+    res = ran(transport, "wrong" + style, 2, tmp_path_factory)
+    got = res["ranks"][0][SCENARIO_OF["wrong" + style]]
+    if style:
+        assert got["raised_in"] == "wait"
     assert got["type"] == "FrameError"
     assert got["error"].startswith("frame from worker 1: expected epoch 0, got 9")
     if transport.startswith("mpi"):
         assert res["returncode"] != 0 and res["seconds"] < 30
 
 
+@pytest.mark.parametrize("style", STYLES)
 @pytest.mark.parametrize("transport", TRANSPORTS)
-def test_a_dead_peer_ends_the_call_naming_it_not_a_hang(transport, tmp_path_factory):
+def test_a_dead_peer_ends_the_call_naming_it_not_a_hang(transport, style, tmp_path_factory):
     if transport == "loopback":
         pytest.skip(NO_PEERS)
-    res = ran(transport, "death", 2, tmp_path_factory)
+    res = ran(transport, "death" + style, 2, tmp_path_factory)
     pid = res["notes"][1]["pid"]
     if transport == "pipes":
         assert res["ranks"][1] == {"died": True}
-        got = res["ranks"][0]["death"]
+        got = res["ranks"][0][SCENARIO_OF["death" + style]]
+        if style:
+            assert got["raised_in"] == "wait"
         assert got["type"] == "RunError"
         assert re.search(r"^worker 1 closed its pipe \(it has probably exited\)", got["error"])
         assert got["elapsed_s"] < SLOW_PEER_TIMEOUT_S / 2     # the pipe said so: no timeout
@@ -525,6 +674,87 @@ def test_a_dead_peer_ends_the_call_naming_it_not_a_hang(transport, tmp_path_fact
         assert "Killed" in res["output"]
         assert res["ranks"][0] is None                      # rank 0 never finished its call
         assert res["seconds"] < SLOW_PEER_TIMEOUT_S / 2
+
+
+def _overlap_rows(rank, k) -> dict:
+    """The halo rows `overlapped` must count on `rank` (the frames of its three started
+    exchanges and its one blocking exchange, as `frames.encode_header` encodes them): the
+    same oracle as `_mesh_rows`, which the blocking exchanges meet."""
+    rows: dict[tuple, list[int]] = {}
+    e = OVERLAP_EPOCH
+
+    def add(src, dst, epoch, layer, direction, dtype, shape):
+        row = rows.setdefault((src, dst, "halo", layer, direction), [0, 0, 0])
+        row[0] += int(np.prod(shape)) * np.dtype(dtype).itemsize
+        row[1] += _header("halo", epoch, layer, direction, src, dtype, shape)
+        row[2] += 1
+
+    for q in range(k):
+        if q == rank:
+            continue
+        for src, dst in ((rank, q), (q, rank)):
+            add(src, dst, e, 1, "forward", np.float32, (_rows(src, dst), WIDTH))
+            add(src, dst, e, 2, "backward", np.float64, (_rows(dst, src), WIDTH))
+            add(src, dst, e, 0, "forward", np.float64, (5, 3))
+            add(src, dst, e + 2, 1, "forward", np.float64, (_rows(src, dst), WIDTH))
+    return rows
+
+
+OVERLAP_K = (1, 2, 3)
+
+
+def _overlap_run(transport, k, tmp_path_factory):
+    if transport == "loopback" and k > 1:
+        pytest.skip(NO_PEERS)
+    if transport != "loopback" and k == 1:
+        pytest.skip("size 1 of a peer transport is covered by the 'alone' group")
+    return ran(transport, "overlap", k, tmp_path_factory)
+
+
+@pytest.mark.parametrize("k", OVERLAP_K)
+@pytest.mark.parametrize("transport", TRANSPORTS)
+def test_started_exchanges_overlap_and_keep_frames_apart(transport, k, tmp_path_factory):
+    res = _overlap_run(transport, k, tmp_path_factory)
+    for r in res["ranks"]:
+        got = r["overlapped"]
+        assert got["ok"] == {name: True for name in got["ok"]}, got["ok"]
+        assert len(got["ok"]) == 4
+        # the bytes moved while the caller computed, before it called wait() (pipes: the
+        # caller made no transport call meanwhile; MPI: only done())
+        assert got["filled_before_wait"] and got["done_before_wait"]
+        assert got["same_key"] == "ValueError"
+        ov = r["profile"]["overlap"]
+        assert ov["handles"] == 4                    # a, b, d and the empty one (e)
+        assert ov["hidden_s"] == pytest.approx(ov["in_flight_s"] - ov["blocked_s"], abs=1e-9)
+
+
+@pytest.mark.parametrize("k", OVERLAP_K)
+@pytest.mark.parametrize("transport", TRANSPORTS)
+def test_started_exchanges_are_counted_as_blocking_ones(transport, k, tmp_path_factory):
+    res = _overlap_run(transport, k, tmp_path_factory)
+    for rank, r in enumerate(res["ranks"]):
+        assert _counted(r["profile"], "halo") == _overlap_rows(rank, k)
+        ring = _counted(r["profile"], "allreduce")
+        assert sum(v[2] for key, v in ring.items() if key[0] == rank) == 2 * (k - 1)
+    totals = merge([r["profile"] for r in res["ranks"]])
+    assert totals["consistent"], totals["mismatches"]
+
+
+@pytest.mark.parametrize("k", OVERLAP_K)
+@pytest.mark.parametrize("transport", TRANSPORTS)
+def test_closing_with_a_handle_outstanding_fails_its_wait(transport, k, tmp_path_factory):
+    res = _overlap_run(transport, k, tmp_path_factory)
+    # Every rank closes with the receive posted; a rank whose peer closed first may learn of
+    # it from the pipe (end-of-file) before it closes itself: a RunError naming that peer.
+    what = "(halo forward, layer 0, epoch 14)"
+    for rank, r in enumerate(res["ranks"]):
+        got = r["closing"]
+        assert got["type"] == "RunError", got
+        assert (got["message"] == f"worker {rank}: the transport was closed with an "
+                                  f"exchange outstanding {what}"
+                or re.fullmatch(r"worker \d closed its pipe \(it has probably exited\) before "
+                                rf"sending {re.escape(what[1:-1])} to worker {rank}",
+                                got["message"])), got
 
 
 # ---------------------------------------------------------------- loopback's absent peers

@@ -23,8 +23,11 @@ COMMANDS = {
     "ingest": "ingest",
     "survey": "survey",
     "split": "split",
+    "update": "update",
     "train": "train",
     "forecast": "forecast",
+    "sweep": "sweep",
+    "calibrate": "calibrate",
     "report": "report",
 }
 
@@ -42,7 +45,8 @@ Workflow: try `shardtrain demo` first (the whole workflow on an invented parcel-
 network, one HTML page). Then, on your graph: synth (a demo graph; or bring your own .npz,
 .mtx or edge-list file) -> survey -> split -> train -> forecast -> report. A graph larger
 than memory: ingest (edge files or Parquet into a memory-mapped graph directory, which every
-command takes) -> survey -> split -> train under MPI.
+command takes) -> survey -> split -> train under MPI. A graph that keeps changing: update
+(a delta applied to the shards, with the plan's drift) -> train --warm-start.
 `shardtrain COMMAND --help` describes each command.
 """
 

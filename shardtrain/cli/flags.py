@@ -21,6 +21,8 @@ FLAGS = {
     "epochs": "--epochs", "dtype": "--dtype", "bias": "--bias",
     "early_stop": "--early-stop", "threads": "--threads", "model": "--model",
     "heads": "--heads",
+    # halo schemes (plan.schemes.HaloScheme; train, survey, forecast, sweep)
+    "halo_keep": "--halo-keep", "halo_format": "--halo-format",
     # a training run (train.api.RunConfig, api.run's transport)
     "transport": "--transport", "timeout_s": "--timeout", "init_weights": "--init-weights",
     "checkpoint_every": "--checkpoint-every", "max_frame_bytes": "--max-frame-bytes",
@@ -28,6 +30,10 @@ FLAGS = {
     # plans
     "method": "--method", "workers": "--workers", "imbalance": "--imbalance",
     "assignment": "--assignment", "memory_budget": "--memory-budget",
+    # update (plan/update.py)
+    "add_edges": "--add-edges", "remove_edges": "--remove-edges",
+    "add_vertices": "--add-vertices", "allow_missing": "--allow-missing",
+    "repartition_above": "--repartition-above", "fresh": "--no-fresh",
     # forecast
     "link_gbps": "--link-gbps", "latency_us": "--latency-us",
     "speed_factor": "--speed-factor", "cores": "--cores",
@@ -36,10 +42,17 @@ FLAGS = {
     # synth
     "vertices": "--vertices", "avg_degree": "--avg-degree", "homophily": "--homophily",
     "degree_exponent": "--degree-exponent", "signal": "--signal",
+    "grow": "--grow", "growth": "--growth",
     # outputs and folders
-    "plot": "--plot", "out": "--out", "overwrite": "--overwrite",
+    "plot": "--plot", "out": "--out", "overwrite": "--overwrite", "json": "--json",
     "checkpoint": "--checkpoint", "resume": "--resume", "reference": "--reference",
+    "single_process": "--single-process",
+    "warm_start": "--warm-start",
     "emulate_link": "--emulate-link",
+    # databases (ingest --sql, train --predictions-sql)
+    "sql": "--sql", "edges_query": "--edges-query", "vertices_query": "--vertices-query",
+    "predictions_sql": "--predictions-sql", "predictions_table": "--predictions-table",
+    "replace_table": "--replace-table",
 }
 
 # parameters a library may name that no option sets (the message keeps the Python name):

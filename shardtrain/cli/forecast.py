@@ -8,6 +8,13 @@ sparse products are timed on the graph's own adjacency. Each link speed in
 --link-gbps (Gbit/s per worker; default the presets 1,10,25,100) is forecast for every plan.
 The table marks the fastest plan and the plan with the fewest workers meeting
 --target-epoch-s.
+
+With --worker-spec FILE (TOML or JSON: the machines you could buy, figures off their
+datasheets; see examples/worker-specs.toml) every plan is forecast on every worker the file
+describes: compute on the worker's roofline (calibrated on this machine), its network and
+latency, its memory (plans that do not fit are marked and never chosen) and its price. With
+--target-epoch-s it names, per worker kind, the fewest workers meeting the target with their
+price per epoch and per 100 epochs, and overall the cheapest plan meeting it.
 """
 from __future__ import annotations
 
@@ -19,9 +26,11 @@ from shardtrain import defaults
 from shardtrain.cli.common import (
     add_graph_arguments,
     add_plan_shape_arguments,
+    add_scheme_arguments,
     load_graph_from_args,
     parse_int_list,
     parse_name_list,
+    scheme_settings,
 )
 from shardtrain.errors import InputError
 from shardtrain.report.tables import format_table
@@ -61,6 +70,11 @@ def add_arguments(parser) -> None:
     add("--dropout", type=float, default=defaults.DROPOUT,
         help=f"dropout rate of training (default {defaults.DROPOUT:g})")
     add_plan_shape_arguments(parser)
+    add_scheme_arguments(parser)
+    add("--worker-spec", default=None, metavar="FILE",
+        help="forecast on the workers described in FILE (.toml [[worker]] tables, or a "
+             "JSON list): replaces --link-gbps, --latency-us, --speed-factor and "
+             "--flops-per-worker")
     add("--json", default=None, metavar="OUT.json", help="write the forecast as JSON")
     add("--plot", default=None, metavar="DIR", help="write PNG pictures of the forecast to DIR")
 
@@ -122,6 +136,19 @@ def _check_options(args) -> None:
         _check_positive_opt(args.flops_per_worker, "--flops-per-worker")
         if args.calibration:
             raise InputError("--flops-per-worker: give it or --calibration, not both")
+    if args.worker_spec is not None:
+        for value, default, option in ((args.link_gbps, DEFAULT_LINKS, "--link-gbps"),
+                                       (args.latency_us, defaults.LATENCY_US, "--latency-us"),
+                                       (args.speed_factor, defaults.SPEED_FACTOR,
+                                        "--speed-factor"),
+                                       (args.flops_per_worker, None, "--flops-per-worker"),
+                                       (args.cores, None, "--cores")):
+            if value != default:
+                raise InputError(f"{option}: the worker spec describes each worker; leave "
+                                 f"{option} out with --worker-spec")
+        if args.measure_compute:
+            raise InputError("--measure-compute: compute on a described worker is its "
+                             "roofline; leave --measure-compute out with --worker-spec")
     if args.cores is not None and args.cores < 1:
         raise InputError(f"--cores: must be >= 1, got {args.cores}")
     if not 0.0 <= args.dropout < 1.0:
@@ -142,7 +169,7 @@ def _check_options(args) -> None:
     cal = args.calibration if args.flops_per_worker is None else None
     cal_exists = cal is not None and Path(cal).exists() and not Path(cal).is_dir()
     check_paths(inputs={"GRAPH": args.graph, "--features": args.features,
-                        "--labels": args.labels,
+                        "--labels": args.labels, "--worker-spec": args.worker_spec,
                         "--calibration": cal if cal_exists else None},
                 outputs={"--json": args.json,
                          "--calibration": None if cal_exists or (cal and Path(cal).is_dir())
@@ -230,6 +257,77 @@ def summary_lines(result: dict) -> list[str]:
     return out
 
 
+SPEC_COLUMNS = [
+    ("spec", "worker", None), ("method", "method", None), ("workers", "workers", "{:,}"),
+    ("epoch_s", "epoch", human_seconds), ("compute_s", "compute", human_seconds),
+    ("exchange_s", "exchange", human_seconds), ("allreduce_s", "all-reduce", human_seconds),
+    ("memory", "memory/worker", None), ("price", "price/epoch", None),
+    ("price_100", "per 100 epochs", None), ("bottleneck", "bound by", None),
+    ("mark", "", None),
+]
+
+
+def _money(v) -> str:
+    return "-" if v is None else f"{v:.4g}"
+
+
+def spec_table_rows(result: dict) -> list[dict]:
+    from shardtrain.units import human_bytes
+
+    rows = []
+    for p in result["plans"]:
+        marks = []
+        if p.get("fits_memory") is False:
+            marks.append("does not fit in memory")
+        if p.get("fastest"):
+            marks.append("<- fastest")
+        if p.get("fewest_meeting_target"):
+            marks.append("<- fewest meeting target")
+        if p.get("cheapest_meeting_target"):
+            marks.append("<- cheapest meeting target")
+        mem = p.get("memory_bytes")
+        rows.append(dict(p, mark="; ".join(marks),
+                         memory="-" if mem is None else
+                         f"{human_bytes(mem)} of {human_bytes(p['memory_limit_bytes'])}",
+                         price=_money(p.get("price_per_epoch")),
+                         price_100=_money(p.get("price_per_100_epochs")),
+                         bottleneck=BOUND_NAMES.get(p["bottleneck"], p["bottleneck"])))
+    return rows
+
+
+def spec_summary_lines(result: dict) -> list[str]:
+    out = []
+    t = result.get("target_epoch_s")
+    for s in result["per_spec"]:
+        if s["plans_fitting_memory"] == 0:
+            out.append(f"{s['spec']}: no plan fits in its memory")
+            continue
+        if t is None:
+            f = s["fastest"]
+            out.append(f"{s['spec']}: fastest {f['method']} on {f['workers']} workers, "
+                       f"{human_seconds(f['epoch_s'])} per epoch")
+            continue
+        m = s["fewest_meeting_target"]
+        if m is None:
+            out.append(f"{s['spec']}: no plan meets {human_seconds(t)} per epoch")
+        else:
+            price = "" if m["price_per_epoch"] is None else \
+                (f", {_money(m['price_per_epoch'])} per epoch, "
+                 f"{_money(m['price_per_100_epochs'])} per 100 epochs")
+            out.append(f"{s['spec']}: fewest workers meeting {human_seconds(t)}: "
+                       f"{m['workers']} ({m['method']}, {human_seconds(m['epoch_s'])}"
+                       f"{price})")
+    if t is not None:
+        c = result.get("cheapest_meeting_target")
+        if c is not None:
+            out.append(f"cheapest meeting {human_seconds(t)}: {c['workers']} x {c['spec']} "
+                       f"({c['method']}), {_money(c['price_per_epoch'])} per epoch, "
+                       f"{_money(c['price_per_100_epochs'])} per 100 epochs")
+        elif any(s["fewest_meeting_target"] for s in result["per_spec"]):
+            out.append("cheapest meeting the target: no price given (price_per_hour)")
+    return out
+
+
 def run(args) -> int:
     from shardtrain.files import write_json_atomic
     from shardtrain.forecast.calibrate import from_flops, load_or_calibrate
@@ -239,6 +337,11 @@ def run(args) -> int:
     workers = parse_int_list(args.workers, "--workers") if args.workers is not None else None
     methods = parse_name_list(args.method, "--method") if args.method is not None else None
     _check_options(args)
+    specs = None
+    if args.worker_spec is not None:                 # a bad spec file costs no work
+        from shardtrain.forecast.specs import read_specs
+
+        specs = read_specs(args.worker_spec)
     source = str(args.graph)
     graph, measured = None, None
     is_survey = source.lower().endswith(".json")
@@ -246,6 +349,9 @@ def run(args) -> int:
         if args.measure_compute:
             raise InputError("--measure-compute: needs the graph (its shards are trained), "
                              f"not a survey JSON ({source})")
+        if (args.halo_keep, args.halo_format) != (defaults.HALO_KEEP, defaults.HALO_FORMAT):
+            raise InputError(f"--halo-keep/--halo-format: {source} is a survey, which carries "
+                             f"its own halo scheme (give them to `survey`)")
         survey_dict = _select(read_survey_json(source), workers, methods, source)
     cached = None
     if args.flops_per_worker is None and args.calibration:   # a bad file costs no work
@@ -259,7 +365,8 @@ def run(args) -> int:
         settings = SurveySettings(layers=args.layers, hidden=args.hidden, dtype=args.dtype,
                                   classes=args.classes, input_dim=args.input_dim,
                                   bias=args.bias, imbalance=args.imbalance, seed=args.seed,
-                                  model=args.model, heads=args.heads)
+                                  model=args.model, heads=args.heads,
+                                  epochs=1, **scheme_settings(args))
         workers = workers or parse_int_list(DEFAULT_WORKERS, "--workers")
         methods = methods or parse_name_list(DEFAULT_METHODS, "--method")
         loaded = load_graph_from_args(args)
@@ -285,6 +392,8 @@ def run(args) -> int:
             from shardtrain.forecast.calibrate import with_graph_sparse
 
             calibration = with_graph_sparse(calibration, graph, dtype)
+    if specs is not None:
+        return _run_on_specs(args, survey_dict, specs, calibration, source)
     result = forecast(survey_dict, link_gbps_list=links, latency_us=args.latency_us,
                       calibration=calibration, speed_factor=args.speed_factor,
                       target_epoch_s=args.target_epoch_s, cores=args.cores,
@@ -296,6 +405,31 @@ def run(args) -> int:
           f"(+eval: the evaluation forward, not included in epoch)")
     print(format_table(table_rows(result), TABLE_COLUMNS))
     for line in summary_lines(result):
+        print(line)
+    if args.json:
+        write_json_atomic(args.json, result)
+    if args.plot:
+        from shardtrain.report.plots import forecast_plots
+
+        Path(args.plot).mkdir(parents=True, exist_ok=True)
+        forecast_plots(result, args.plot)
+    return 0
+
+
+def _run_on_specs(args, survey_dict: dict, specs, calibration: dict, source: str) -> int:
+    from shardtrain.files import write_json_atomic
+    from shardtrain.forecast.projection import forecast_on_specs
+
+    result = forecast_on_specs(survey_dict, specs, calibration=calibration,
+                               target_epoch_s=args.target_epoch_s, dropout=args.dropout)
+    result["source"] = source
+    result["worker_spec_file"] = str(args.worker_spec)
+    g = result["graph"]
+    print(f"{g.get('vertices', 0):,} vertices, {g.get('edges', 0):,} edges; "
+          f"{len(specs)} worker kinds from {args.worker_spec}; one training epoch "
+          f"(compute on each worker's roofline, its network and latency)")
+    print(format_table(spec_table_rows(result), SPEC_COLUMNS))
+    for line in spec_summary_lines(result):
         print(line)
     if args.json:
         write_json_atomic(args.json, result)

@@ -45,20 +45,46 @@ def add_arguments(parser) -> None:
                              f"(default {d.DEGREE_EXPONENT:g})")
     parser.add_argument("--signal", type=float_type("--signal"), default=d.SIGNAL,
                         help=f"strength of the role signal in the features (default {d.SIGNAL:g})")
+    parser.add_argument("--grow", type=int_type("--grow"), default=None, metavar="WEEKS",
+                        help="also write one delta per week of growth beside OUT.npz "
+                             "(OUT.weekWW.vertices.npz and OUT.weekWW.edges.npz, for "
+                             "`shardtrain update --add-vertices ... --add-edges ...`)")
+    parser.add_argument("--growth", type=float_type("--growth"), default=d.SYNTH_GROWTH,
+                        metavar="RATE", help=f"new depots per week as a share of the network "
+                                             f"(default {d.SYNTH_GROWTH:g}); new ones attach "
+                                             f"preferentially to busy depots")
     add_memory_budget_argument(parser)
+
+
+def week_files(out: Path, week: int) -> tuple[Path, Path]:
+    """(vertices, edges) bundles of one week's delta beside OUT.npz."""
+    stem = out.with_suffix("")
+    return (stem.with_name(f"{stem.name}.week{week:02d}.vertices.npz"),
+            stem.with_name(f"{stem.name}.week{week:02d}.edges.npz"))
 
 
 def run(args) -> int:
     if (args.out is None) == (args.out_dir is None):
         raise InputError("give one output: OUT.npz or --out GRAPH_DIR")
     if args.out_dir is not None:
+        if args.grow is not None:
+            raise InputError("--grow: writes deltas beside OUT.npz, not with --out GRAPH_DIR")
         return _run_dir(args)
     out = Path(args.out)
     if out.suffix.lower() != ".npz":
         raise InputError(f"{out}: the output must be an .npz file")
     if not out.parent.is_dir():
         raise InputError(f"{out}: folder {out.parent} does not exist")
-    check_paths(outputs={"OUT.npz": out})
+    weekly = {}
+    if args.grow is not None:
+        from shardtrain.data.synth import _check_growth
+
+        _check_growth(args.grow, args.growth)
+        for week in range(1, args.grow + 1):
+            weekly[f"--grow week {week}"] = list(week_files(out, week))
+    elif args.growth != defaults.SYNTH_GROWTH:
+        raise InputError("--growth: give --grow WEEKS as well")
+    check_paths(outputs={"OUT.npz": out, **weekly})
     start = time.perf_counter()
     graph = parcel_network(args.vertices, args.avg_degree, args.classes, args.features,
                            args.seed, homophily=args.homophily,
@@ -70,6 +96,18 @@ def run(args) -> int:
           f"{graph.num_classes} roles, {graph.input_dim} features, same-role routes "
           f"{same_role_fraction(graph):.3f}, max routes per depot {int(graph.degrees.max())} "
           f"({time.perf_counter() - start:.1f} s)")
+    if args.grow is not None:
+        from shardtrain.data.synth import grow_parcel_network
+
+        deltas = grow_parcel_network(graph, args.grow, args.growth, args.seed,
+                                     homophily=args.homophily)
+        for week, delta in enumerate(deltas, start=1):
+            vertices, edges = week_files(out, week)
+            save_npz_atomic(vertices, **delta["vertices"])
+            save_npz_atomic(edges, edges=delta["edges"])
+            print(f"wrote week {week}: {vertices.name} "
+                  f"({delta['vertices']['labels'].shape[0]:,} new depots), {edges.name} "
+                  f"({delta['edges'].shape[0]:,} new routes)")
     return 0
 
 

@@ -26,7 +26,12 @@ from pathlib import Path
 import numpy as np
 
 from shardtrain import defaults
-from shardtrain.cli.common import add_graph_arguments, positive_int_type
+from shardtrain.cli.common import (
+    add_graph_arguments,
+    add_scheme_arguments,
+    positive_int_type,
+    scheme_settings,
+)
 from shardtrain.errors import (
     EXIT_BAD_INPUT,
     EXIT_INTERRUPTED,
@@ -122,6 +127,12 @@ def add_arguments(parser) -> None:
                         f"reference's one process, each worker (default {defaults.THREADS}: "
                         f"the workers are the parallelism, and the reference then gets the "
                         f"CPU of one worker; at most {max_threads()})")
+    add_scheme_arguments(parser)
+    parser.add_argument("--single-process", action="store_true",
+                        help="with --workers K --method M (or --assignment): compute in ONE "
+                             "process exactly what the K-worker run computes under the halo "
+                             "scheme (the same sampled halos and rounding); with every "
+                             "scheme off it equals --reference")
     parser.add_argument("--timeout", type=_number("--timeout", float),
                         default=defaults.TIMEOUT_S, metavar="S",
                         help=f"deadline of every halo/all-reduce receive (default "
@@ -139,6 +150,11 @@ def add_arguments(parser) -> None:
     parser.add_argument("--resume", metavar="DIR",
                         help="continue the run whose checkpoint is in DIR (same graph, "
                              "settings and workers; checkpoints go on into DIR)")
+    parser.add_argument("--warm-start", metavar="DIR",
+                        help="continue from the checkpoint in DIR taken on another graph (an "
+                             "older version of this one, e.g. before `shardtrain update`): "
+                             "its weights and Adam state; --epochs more epochs, numbered on "
+                             "from the checkpoint's; the model shape must be the same")
     parser.add_argument("--slow-worker", metavar="W:FACTOR", action="append", default=[],
                         help="make worker W's compute FACTOR (>= 1) times slower, to see the "
                              "wait a straggler causes (repeatable)")
@@ -149,6 +165,15 @@ def add_arguments(parser) -> None:
     parser.add_argument("--init-weights", metavar="IN.npz", help="start from these weights")
     parser.add_argument("--predictions", metavar="OUT.csv",
                         help="write vertex,predicted,label (label empty where unknown)")
+    parser.add_argument("--predictions-sql", metavar="URL",
+                        help="also write the predictions into a database: sqlite:///PATH or "
+                             "postgresql://USER@HOST:PORT/DB (with --predictions-table)")
+    parser.add_argument("--predictions-table", metavar="NAME",
+                        help="the new table of (id, predicted, label) rows, written in one "
+                             "transaction (all rows or none); ids are the original ones")
+    parser.add_argument("--replace-table", action="store_true",
+                        help="replace --predictions-table if it exists (in the same "
+                             "transaction)")
     parser.add_argument("--quiet", action="store_true", help="no per-epoch output")
     parser.add_argument("--emulate-link", metavar="GBPS[:LATENCY_US]",
                         help="make the pipes no faster than a network link of GBPS Gbit/s per "
@@ -179,7 +204,8 @@ def _check_paths(args) -> None:
 
     check_paths(inputs={"GRAPH": args.graph, "--features": args.features,
                         "--labels": args.labels, "--assignment": args.assignment,
-                        "--init-weights": args.init_weights, "--resume": args.resume},
+                        "--init-weights": args.init_weights, "--resume": args.resume,
+                        "--warm-start": args.warm_start},
                 outputs={"--json": args.json, "--weights": args.weights,
                          "--predictions": args.predictions},
                 out_dirs={"--plot": getattr(args, "plot", None),
@@ -248,10 +274,25 @@ def epoch_line(rec: dict, epochs: int) -> str:
 
 # ---------------------------------------------------------------- outputs
 
-def predictions_csv(predicted: np.ndarray, labels: np.ndarray | None) -> str:
-    """vertex,predicted,label lines, label empty where unknown (vectorised text)."""
+def _csv_field(a: np.ndarray) -> np.ndarray:
+    """Text values as CSV fields: quoted (quotes doubled) where they hold , " or a newline."""
+    if a.dtype.kind != "U" or a.shape[0] == 0:
+        return a.astype(str)
+    special = np.zeros(a.shape[0], dtype=bool)
+    for ch in (",", '"', "\n", "\r"):
+        special |= np.strings.find(a, ch) >= 0
+    if not special.any():
+        return a
+    quoted = np.strings.add(np.strings.add('"', np.strings.replace(a, '"', '""')), '"')
+    return np.where(special, quoted, a)
+
+
+def predictions_csv(predicted: np.ndarray, labels: np.ndarray | None,
+                    vertex_ids: np.ndarray | None = None) -> str:
+    """vertex,predicted,label lines, label empty where unknown (vectorised text); `vertex_ids`
+    (the graph directory's original ids) name the vertices, else 0..n-1."""
     n = predicted.shape[0]
-    ids = np.arange(n).astype(str)
+    ids = np.arange(n).astype(str) if vertex_ids is None else _csv_field(vertex_ids)
     pred = predicted.astype(str)
     if labels is None:
         lab = np.full(n, "", dtype="<U1")
@@ -261,14 +302,42 @@ def predictions_csv(predicted: np.ndarray, labels: np.ndarray | None) -> str:
     return "vertex,predicted,label\n" + ("\n".join(rows.tolist()) + "\n" if n else "")
 
 
+def _vertex_ids(args) -> np.ndarray | None:
+    """The original ids of GRAPH's vertices (a graph directory ingested from a database),
+    else None (the ids are 0..n-1)."""
+    from shardtrain.data.graphdir import is_graph_dir, read_vertex_id_files, read_vertex_ids
+
+    if is_graph_dir(args.graph):
+        return read_vertex_ids(args.graph)
+    if api.is_shard_dir(args.graph):       # split from a graph directory that kept its ids
+        from shardtrain.plan.shards import SHARDS_MANIFEST, load_manifest
+        m = load_manifest(args.graph)
+        rec = (m.get("meta") or {}).get("vertex_ids")
+        if rec is not None:
+            return read_vertex_id_files(Path(args.graph), rec, int(m["num_vertices"]),
+                                        Path(args.graph) / SHARDS_MANIFEST)
+    return None
+
+
 def write_outputs(args, result, labels, doc: dict) -> None:
     from shardtrain.files import save_npz_atomic, write_json_atomic, write_text_atomic
     from shardtrain.train import model
 
+    ids = None
+    if args.predictions or getattr(args, "prediction_target", None) is not None:
+        ids = _vertex_ids(args)
+        if ids is not None and ids.shape[0] != result.predictions.shape[0]:
+            raise InputError(f"{args.graph}: {ids.shape[0]:,} original vertex ids for "
+                             f"{result.predictions.shape[0]:,} vertices")
+    target = getattr(args, "prediction_target", None)
+    if target is not None:       # first: the one output another program may fail to take
+        from shardtrain.data.sqlsource import write_predictions
+        known = ids if ids is not None else np.arange(result.predictions.shape[0])
+        write_predictions(target, known, result.predictions, labels)
     if args.weights:
         save_npz_atomic(args.weights, **model.params_to_arrays(result.params))
     if args.predictions:
-        write_text_atomic(args.predictions, predictions_csv(result.predictions, labels))
+        write_text_atomic(args.predictions, predictions_csv(result.predictions, labels, ids))
     if args.json:
         write_json_atomic(args.json, doc)
     if getattr(args, "plot", None):
@@ -291,9 +360,19 @@ def _traffic_lines(traffic: dict) -> list[str]:
 
     m, p = traffic["measured_payload_bytes"], traffic["predicted_payload_bytes"]
     verdict = "equal" if m == p else f"DIFFERENT by {m - p:+,} bytes"
-    return [f"payload: measured {m:,} bytes ({human_bytes(m)}), predicted {p:,} bytes "
-            f"({verdict}); framing {traffic['measured_framing_bytes']:,} bytes in "
-            f"{traffic['frames']:,} frames"]
+    lines = [f"payload: measured {m:,} bytes ({human_bytes(m)}), predicted {p:,} bytes "
+             f"({verdict}); framing {traffic['measured_framing_bytes']:,} bytes in "
+             f"{traffic['frames']:,} frames"]
+    scheme = (traffic.get("predicted_per_epoch") or {}).get("halo_scheme")
+    if scheme is not None:
+        train = sum(r["measured_payload_bytes"] for r in traffic["breakdown"]
+                    if r["kind"] == "halo" and r["direction"] != "eval")
+        expected = scheme["expected_forward_bytes"] + scheme["expected_backward_bytes"]
+        lines.append(f"halo scheme: keep {scheme['halo_keep']:g}, format "
+                     f"{scheme['halo_format'] or 'the training dtype'}: training halo "
+                     f"{human_bytes(train)} in all (expected {human_bytes(expected)} per "
+                     f"epoch); the evaluation forward exchanges the full halo, exact")
+    return lines
 
 
 def _count(mask) -> str:
@@ -349,15 +428,20 @@ def config_of(args) -> api.RunConfig:
                              lr=args.lr, weight_decay=args.weight_decay, epochs=args.epochs,
                              seed=args.seed, dtype=args.dtype, bias=bool(args.bias),
                              early_stop=args.early_stop, threads=args.threads,
-                             model=args.model, heads=args.heads)
+                             model=args.model, heads=args.heads, **scheme_settings(args))
+    mode = "reference" if args.reference else "partitioned"
+    if args.single_process:
+        if args.reference:
+            raise InputError("--single-process: not allowed with --reference (give "
+                             "--workers K --method M or --assignment FILE)")
+        mode = "single-process"
     return api.RunConfig(
-        source=args.graph, settings=settings,
-        mode="reference" if args.reference else "partitioned",
+        source=args.graph, settings=settings, mode=mode,
         features=args.features, labels=args.labels, input_dim=args.input_dim,
         workers=args.workers, method=args.method, assignment=args.assignment,
         imbalance=args.imbalance, checkpoint=args.checkpoint,
         checkpoint_every=args.checkpoint_every, resume=args.resume,
-        init_weights=args.init_weights, timeout_s=args.timeout,
+        warm_start=args.warm_start, init_weights=args.init_weights, timeout_s=args.timeout,
         max_frame_bytes=args.max_frame_bytes, link=link,
         slow_workers=parse_slow_workers(args.slow_worker))
 
@@ -367,6 +451,15 @@ def _check_outputs(args) -> None:
     _check_output(args.json, "--json", ".json")
     _check_output(args.weights, "--weights", ".npz")
     _check_output(args.predictions, "--predictions", ".csv")
+    args.prediction_target = None
+    if (args.predictions_sql is None) != (args.predictions_table is None):
+        raise InputError("--predictions-sql and --predictions-table: give both or neither")
+    if args.replace_table and args.predictions_table is None:
+        raise InputError("--replace-table: only with --predictions-table")
+    if args.predictions_sql is not None:
+        from shardtrain.data.sqlsource import check_prediction_target
+        args.prediction_target = check_prediction_target(
+            args.predictions_sql, args.predictions_table, args.replace_table)
     if getattr(args, "plot", None) is not None:
         from shardtrain.report.plots import check_plot_dir
         check_plot_dir(args.plot)

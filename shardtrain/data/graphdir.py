@@ -19,6 +19,10 @@
     GRAPH_DIR/features.npy    optional (n, d) feature_dtype, vertex order
     GRAPH_DIR/labels.npy      optional (n,) int64, -1 = unlabelled
     GRAPH_DIR/train_mask.npy, val_mask.npy, test_mask.npy   optional (n,) bool
+    GRAPH_DIR/vertex_ids.npy  optional int64 (n,): the original id of vertex i (SQL ingest),
+                              or, for text ids, vertex_ids.utf8 (UTF-8 bytes back to back) +
+                              vertex_ids_offsets.npy int64 (n + 1,); manifest "vertex_ids":
+                              {"kind": "int" | "text", "files": [...]} (`read_vertex_ids`)
 
 The same invariants as `data.graph.Graph` (it is a Graph kept on disk). `open_graph_dir`
 maps the arrays read-only, so holding one costs page cache, not process memory;
@@ -166,3 +170,92 @@ def write_graph_dir(graph: Graph, path, *, cleanup: EdgeCleanup | None = None,
         for key, a in masks.items():
             np.save(tmp / f"{key}.npy", np.asarray(a, dtype=bool))
         write_json_atomic(tmp / GRAPH_MANIFEST, manifest)
+
+
+# ---------------------------------------------------------------- original vertex ids
+
+ID_FILE = "vertex_ids.npy"            # int64 (n,): vertex i's original integer id
+ID_TEXT_FILE = "vertex_ids.utf8"      # text ids: UTF-8 bytes of every id, back to back
+ID_OFFSETS_FILE = "vertex_ids_offsets.npy"   # int64 (n + 1,): id i is bytes [o[i], o[i+1])
+
+
+def write_vertex_ids(folder: Path, ids: np.ndarray) -> dict:
+    """Write the original ids of vertices 0..n-1 (int64, or UTF-8 bytes as an 'S' array) into
+    `folder`; returns the manifest's "vertex_ids" record. Text is a blob plus offsets (no
+    object arrays, nothing to unpickle)."""
+    folder = Path(folder)       # the temporary folder of an atomic directory
+    if ids.dtype.kind in "iu":
+        np.save(folder / ID_FILE, np.asarray(ids, dtype=np.int64), allow_pickle=False)
+        return {"kind": "int", "files": [ID_FILE]}
+    width = ids.dtype.itemsize
+    lengths = np.strings.str_len(ids).astype(np.int64)
+    mat = np.ascontiguousarray(ids).view(np.uint8).reshape(ids.shape[0], width)
+    blob = mat[np.arange(width)[None, :] < lengths[:, None]]
+    offsets = np.zeros(ids.shape[0] + 1, dtype=np.int64)
+    np.cumsum(lengths, out=offsets[1:])
+    with open(folder / ID_TEXT_FILE, "wb") as fh:
+        fh.write(blob.data)
+    np.save(folder / ID_OFFSETS_FILE, offsets, allow_pickle=False)
+    return {"kind": "text", "files": [ID_TEXT_FILE, ID_OFFSETS_FILE]}
+
+
+def read_vertex_ids(path) -> np.ndarray | None:
+    """The original ids of a graph directory's vertices: int64, or str (decoded UTF-8);
+    None when the directory keeps none (its ids are 0..n-1). InputError naming the file for
+    anything inconsistent."""
+    from shardtrain.files import read_json_document
+
+    path = Path(path)
+    manifest = read_json_document(path / GRAPH_MANIFEST, format=FORMAT, version=VERSION,
+                                  what="graph directory manifest")
+    rec = manifest.get("vertex_ids")
+    if rec is None:
+        return None
+    n = manifest.get("num_vertices")
+    if not isinstance(n, int) or n < 0:
+        raise InputError(f"{path / GRAPH_MANIFEST}: num_vertices must be an integer >= 0")
+    return read_vertex_id_files(path, rec, n, path / GRAPH_MANIFEST)
+
+
+def copy_vertex_ids(src, dst, record: dict) -> None:
+    """Copy the id files a "vertex_ids" record names from folder `src` into `dst` (a shard
+    directory keeps its graph's original ids)."""
+    import shutil
+
+    for name in record.get("files", []):
+        if name in (ID_FILE, ID_TEXT_FILE, ID_OFFSETS_FILE):
+            shutil.copyfile(Path(src) / name, Path(dst) / name)
+
+
+def read_vertex_id_files(path: Path, rec, n: int, manifest_file: Path) -> np.ndarray:
+    """The ids of a "vertex_ids" record `rec` held in folder `path` (n vertices)."""
+    kind = rec.get("kind") if isinstance(rec, dict) else None
+    if kind == "int":
+        a = _map(path, ID_FILE[:-4])
+        if a is None or a.dtype != np.int64 or a.shape != (n,):
+            raise InputError(f"{path / ID_FILE}: expected int64 ({n},)")
+        return np.array(a)
+    if kind != "text":
+        raise InputError(f"{manifest_file}: 'vertex_ids' must name kind int or text")
+    offsets = _map(path, ID_OFFSETS_FILE[:-4])
+    blob_file = path / ID_TEXT_FILE
+    if offsets is None or offsets.dtype != np.int64 or offsets.shape != (n + 1,):
+        raise InputError(f"{path / ID_OFFSETS_FILE}: expected int64 ({n + 1},)")
+    try:
+        blob = np.fromfile(blob_file, dtype=np.uint8)
+    except OSError as exc:
+        raise InputError(f"{blob_file}: cannot read ({exc.strerror})") from None
+    offsets = np.array(offsets)
+    lengths = np.diff(offsets)
+    if offsets[0] != 0 or (lengths < 0).any() or offsets[-1] != blob.shape[0]:
+        raise InputError(f"{path / ID_OFFSETS_FILE}: offsets must rise from 0 to the "
+                         f"{blob.shape[0]:,} bytes of {ID_TEXT_FILE}")
+    try:
+        bytes(blob).decode("utf-8")
+    except UnicodeDecodeError as exc:
+        raise InputError(f"{blob_file}: not UTF-8 at byte {exc.start}") from None
+    width = max(1, int(lengths.max()) if lengths.shape[0] else 1)
+    mat = np.zeros((lengths.shape[0], width), dtype=np.uint8)
+    inside = np.arange(width)[None, :] < lengths[:, None]
+    mat[inside] = blob
+    return np.strings.decode(mat.view(f"S{width}").ravel(), "utf-8")

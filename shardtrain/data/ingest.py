@@ -118,6 +118,14 @@ class Source:
     def chunks(self, budget: Budget) -> Iterator[EdgeChunk]:
         raise NotImplementedError
 
+    def prepare(self, work: Path, budget: Budget) -> None:
+        """Work done once before the passes, in the ingest's work folder (a database source
+        runs its queries here)."""
+
+    def describe(self) -> str:
+        """The source as the manifest's "sources" list names it."""
+        return str(self.path)
+
 
 def _at_lines(path: Path, lines: np.ndarray) -> Callable[[int], str]:
     """Row of a chunk -> "file:line"."""
@@ -672,13 +680,15 @@ def ingest(sources: list, out, *, budget: int, features=None, labels=None,
 
     plan = Budget(int(budget))
     out = Path(out)
-    vertex = _merge_vertex_data(sources, features, labels)
     notes: list[str] = []
 
     with _Watcher() as watch, atomic_directory(out, overwrite=overwrite) as tmp:
         watch(tmp)
         work = tmp / ".work"
         work.mkdir()
+        for source in sources:
+            source.prepare(work, plan)
+        vertex = _merge_vertex_data(sources, features, labels)
         # pass 1: read, check, count; spool what is costly to parse again
         hist = DegreeHistogram()
         rows = loop_rows = 0
@@ -753,6 +763,10 @@ def ingest(sources: list, out, *, budget: int, features=None, labels=None,
         cleanup = result.cleanup      # its note is made when the directory is loaded
         manifest = _write_vertex_data_and_manifest(tmp, vertex, n, result, idx, sources,
                                                    notes, plan, rows)
+        ids = [s.vertex_ids for s in sources if getattr(s, "vertex_ids", None) is not None]
+        if ids:
+            from shardtrain.data.graphdir import write_vertex_ids
+            manifest["vertex_ids"] = write_vertex_ids(tmp, ids[0])
         write_json_atomic(tmp / GRAPH_MANIFEST, manifest)
     working = plan.working_bytes(rows, result.largest_bucket)
     return IngestResult(n, result.num_edges, rows, cleanup, result.buckets,
@@ -888,6 +902,6 @@ def _write_vertex_data_and_manifest(tmp: Path, v: VertexData, n: int, result, id
         "cleanup": {"self_loops": result.cleanup.self_loops,
                     "duplicates": result.cleanup.duplicates},
         "structure_fingerprint": structure.hex(), "fingerprint": full.hex(),
-        "sources": [str(s.path) for s in sources], "notes": notes,
+        "sources": [s.describe() for s in sources], "notes": notes,
         "ingest": {"rows": rows, "memory_budget_bytes": plan.total,
                    "buckets": result.buckets, "largest_bucket_keys": result.largest_bucket}}

@@ -414,6 +414,80 @@ def _load_npy(path: Path, labelled: bool = False) -> np.ndarray:
     return read_npy(path, _vertex_data_memory(path, labelled))
 
 
+# --------------------------------------------------------------------------- deltas
+
+@dataclass
+class EdgeRows:
+    """The edge rows of a file as written (ids unchecked, loops and repeats kept), and where
+    each row is: `locate(row)` -> "file:line" (text) or "file: edges[row]" (.npz)."""
+
+    src: np.ndarray
+    dst: np.ndarray
+    locate: Callable[[int], str]
+    notes: list
+
+
+def read_edge_rows(path: str | os.PathLike, *, param: str) -> EdgeRows:
+    """Edge rows of any graph file format (`.npz` key 'edges', `.mtx`, text edge lists), for
+    the edge files of a delta (`plan.update`); ids are the caller's to check."""
+    path = require_regular_file(path, param=param)
+    raw = _READERS[_suffix(path, GRAPH_SUFFIXES, param)](path)
+    assert raw.locate_edge is not None        # every format reader sets it
+    return EdgeRows(np.asarray(raw.src, dtype=np.int64), np.asarray(raw.dst, dtype=np.int64),
+                    raw.locate_edge, list(raw.notes))
+
+
+VERTEX_KEYS = ("num_vertices", "features", "labels") + MASK_KEYS
+
+
+def read_vertex_bundle(path: str | os.PathLike, *, param: str) -> dict:
+    """New vertices as an `.npz` bundle: any of `features` (rows x width), `labels`,
+    `train_mask`, `val_mask`, `test_mask`, `num_vertices` (needed when there is neither
+    features nor labels); every array checked as `load_graph` checks it and all of one
+    length. Returns {"num_vertices": n, key: array, ...}; InputError naming the file."""
+    path = require_regular_file(path, param=param)
+    _suffix(path, (".npz",), param)
+    bundle, members = open_npz(path)
+    with bundle:
+        unknown = sorted(set(members) - set(VERTEX_KEYS))
+        if unknown:
+            raise InputError(f"{path}: unknown key {unknown[0]!r} (allowed: "
+                             f"{', '.join(VERTEX_KEYS)})")
+        arrays = {}
+        for key, info in members.items():
+            try:
+                arrays[key] = _npy_read(lambda info=info: bundle.open(info),
+                                        f"{path}: key {key!r}", info.file_size)
+            except (zipfile.BadZipFile, OSError, EOFError) as exc:
+                raise InputError(f"{path}: key {key!r}: damaged ({exc})") from None
+    out: dict = {}
+    if "features" in arrays:
+        out["features"] = _check_feature_array(arrays["features"], f"{path}: key 'features'")
+    if "labels" in arrays:
+        out["labels"] = _check_label_array(arrays["labels"], f"{path}: key 'labels'")
+    for key in MASK_KEYS:
+        if key in arrays:
+            m = arrays[key]
+            if m.dtype != np.bool_ or m.ndim != 1:
+                raise InputError(f"{path}: key {key!r} must be a 1-D bool array, "
+                                 f"got {m.dtype} with shape {m.shape}")
+            out[key] = m
+    lengths = {key: int(v.shape[0]) for key, v in out.items()}
+    if "num_vertices" in arrays:
+        nv = arrays["num_vertices"]
+        if nv.size != 1 or not np.issubdtype(nv.dtype, np.integer) or int(nv.ravel()[0]) < 0:
+            raise InputError(f"{path}: key 'num_vertices' must be one non-negative integer")
+        lengths["num_vertices"] = int(nv.ravel()[0])
+    if not lengths:
+        raise InputError(f"{path}: holds no vertices (give 'features', 'labels' or "
+                         f"'num_vertices')")
+    if len(set(lengths.values())) > 1:
+        text = ", ".join(f"{key} {n}" for key, n in lengths.items())
+        raise InputError(f"{path}: keys disagree on the number of new vertices ({text})")
+    out["num_vertices"] = next(iter(lengths.values()))
+    return out
+
+
 # --------------------------------------------------------------------------- load_graph
 
 def _check_ids(raw: _Raw, n: int, where: str) -> None:

@@ -141,6 +141,12 @@ class _RouteSampler:
     def draw(self, count: int) -> tuple[np.ndarray, np.ndarray]:
         pos_u = self._pick(count, 0, self.cum.shape[0] - 1)
         cu = self.label_sorted[pos_u]
+        return self.by_class[pos_u], self.partners(cu)
+
+    def partners(self, cu: np.ndarray) -> np.ndarray:
+        """One endpoint per entry of the roles `cu`: in that role with probability
+        `homophily`, else in another by its share of theta; within a role ~ theta."""
+        count = cu.shape[0]
         cv = cu.copy()
         if self.classes > 1:
             cross = np.flatnonzero(self.rng.random(count) >= self.homophily)
@@ -153,7 +159,7 @@ class _RouteSampler:
             if k:
                 pos_v[order[bounds[c]:bounds[c + 1]]] = self._pick(k, int(self.first[c]),
                                                                    int(self.last[c]))
-        return self.by_class[pos_u], self.by_class[pos_v]
+        return self.by_class[pos_v]
 
 
 def _route_keys(sampler: _RouteSampler, n: int, target: int, rng) -> np.ndarray:
@@ -209,6 +215,84 @@ def parcel_network(vertices: int, avg_degree: float, classes: int, features: int
     x += means.astype(np.float32)[labels]
     train, val, test = make_masks(labels, seed)
     return Graph(indptr, indices, x, labels, train, val, test)
+
+
+# --------------------------------------------------------------------------- growth
+
+def _check_growth(weeks: int, growth: float) -> None:
+    if not isinstance(weeks, int) or not 1 <= weeks <= 520:
+        raise ParameterError("grow", "must be a number of weeks from 1 to 520", value=weeks)
+    if not (math.isfinite(growth) and 0.0 < growth <= 1.0):
+        raise ParameterError("growth", "must be a rate in (0, 1], e.g. 0.05", value=growth)
+
+
+def grow_parcel_network(graph: Graph, weeks: int, growth: float, seed: int, *,
+                        homophily: float = defaults.HOMOPHILY) -> list[dict]:
+    """`weeks` weekly deltas of a growing parcel network, each against the network after
+    the weeks before it: {"vertices": {features, labels, train_mask, val_mask, test_mask},
+    "edges": (r, 2) int64 routes, new ids after the current ones}.
+
+    Each week about `growth` x n new depots open, each with max(1, Poisson(d/2)) routes (d
+    the current mean routes per depot) to existing depots chosen by preferential attachment
+    (Barabási & Albert 1999): probability ~ routes + 1, so busy regions attract the new
+    depots, in the depot's own role with probability `homophily` (as in `parcel_network`);
+    and round(growth x m / 2) new routes join existing depots, both ends ~ routes + 1 (the
+    second end by role as above). Roles follow the current role shares; a new depot's
+    statistics are its role's current mean plus unit noise, float32 as the network's. New
+    depots are in no training or validation split (they are what gets predicted: test if
+    labelled). Routes already present, loops and repeats are left out, so every row of a
+    delta changes the network. Deterministic for a seed; vectorised per week.
+    """
+    _check_growth(weeks, growth)
+    if graph.labels is None or graph.features is None:
+        raise ParameterError("grow", "needs a network with roles and statistics")
+    deltas = []
+    labels, x = graph.labels, graph.features
+    indptr, indices = graph.indptr, graph.indices
+    classes = int(labels.max()) + 1
+    for week in range(1, weeks + 1):
+        rng = np.random.default_rng([seed, 15, week])
+        n = indptr.shape[0] - 1
+        m = indices.shape[0] // 2
+        degree = np.diff(indptr)
+        sampler = _RouteSampler(labels, degree + 1.0, classes, homophily, rng)
+        n_add = max(1, int(round(growth * n)))
+        share = np.bincount(labels, minlength=classes) / n
+        new_labels = rng.choice(classes, size=n_add, p=share).astype(np.int64)
+        counts = np.bincount(labels, minlength=classes)
+        means = np.zeros((classes, x.shape[1]))
+        np.add.at(means, labels, x.astype(np.float64))
+        means /= np.maximum(counts, 1)[:, None]
+        new_x = (means[new_labels] + rng.standard_normal((n_add, x.shape[1]))).astype(x.dtype)
+        routes_per = np.maximum(1, rng.poisson(m / n, size=n_add))      # d/2 = m/n
+        src = np.repeat(np.arange(n, n + n_add, dtype=np.int64), routes_per)
+        dst = sampler.partners(np.repeat(new_labels, routes_per))
+        u, v = sampler.draw(int(round(growth * m / 2)))
+        src, dst = np.concatenate([src, u]), np.concatenate([dst, v])
+        lo, hi = np.minimum(src, dst), np.maximum(src, dst)
+        n_new = n + n_add
+        key = np.sort((lo * np.int64(n_new) + hi)[lo != hi])
+        key = key[np.concatenate([[True], key[1:] != key[:-1]])] if key.shape[0] else key
+        rows = np.repeat(np.arange(n, dtype=np.int64), degree)
+        old = rows * np.int64(n_new) + indices
+        at = np.minimum(np.searchsorted(old, key), max(old.shape[0] - 1, 0))
+        if old.shape[0]:
+            key = key[old[at] != key]
+        lo, hi = np.divmod(key, np.int64(n_new))
+        empty = np.zeros(n_add, dtype=bool)
+        deltas.append({"vertices": {"features": new_x, "labels": new_labels,
+                                    "train_mask": empty, "val_mask": empty,
+                                    "test_mask": np.ones(n_add, dtype=bool)},
+                       "edges": np.stack([lo, hi], axis=1)})
+        labels = np.concatenate([labels, new_labels])
+        x = np.concatenate([x, new_x])
+        all_rows = np.concatenate([rows, lo, hi])
+        all_cols = np.concatenate([indices, hi, lo])
+        order = np.argsort(all_rows * np.int64(n_new) + all_cols, kind="stable")
+        indices = all_cols[order]
+        indptr = np.zeros(n_new + 1, dtype=np.int64)
+        np.cumsum(np.bincount(all_rows, minlength=n_new), out=indptr[1:])
+    return deltas
 
 
 def edge_array(graph: Graph) -> np.ndarray:

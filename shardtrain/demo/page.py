@@ -23,7 +23,8 @@ def summary_html(result_facts: list[tuple[str, str]]) -> str:
 
 def write_demo_report(folder: Path, out_html: Path, facts: list[tuple[str, str]],
                       plot_dir: Path, choice: dict | None = None,
-                      title: str = "shardtrain demo: a parcel-delivery network") -> None:
+                      title: str = "shardtrain demo: a parcel-delivery network",
+                      growth: dict | None = None) -> None:
     """The page of `report.build_html` for the folder's survey, run and forecast JSONs, with
     the demo's summary after the title, the survey's heat map of the plan the demo
     chose (`choice`), and
@@ -31,8 +32,13 @@ def write_demo_report(folder: Path, out_html: Path, facts: list[tuple[str, str]]
     from shardtrain.files import write_text_atomic
     from shardtrain.report.html import build_html, collect_documents
 
+    intro = summary_html(facts)
+    if growth:
+        from shardtrain.demo.growth import growth_html
+
+        intro += growth_html(growth)
     write_text_atomic(out_html, build_html(collect_documents([folder]), title,
-                                           plot_dir=plot_dir, intro_html=summary_html(facts),
+                                           plot_dir=plot_dir, intro_html=intro,
                                            survey_plan=choice))
 
 
@@ -64,6 +70,10 @@ def summary_facts(r: "DemoResult", settings_doc: dict) -> list[tuple[str, str]]:
                       f"{human_seconds(f['compute_s'])}, "
                       f"exchange {human_seconds(f['exchange_s'])}, all-reduce "
                       f"{human_seconds(f['allreduce_s'])}; bound by {f['bottleneck']})"))
+    if r.growth:
+        from shardtrain.demo.growth import growth_facts
+
+        facts.extend(growth_facts(r.growth))
     facts.append(("time until this report", f"{r.total_s:.1f} s on this machine (" + ", ".join(
         f"{k} {v:.1f} s" for k, v in r.seconds.items()) + ")"))
     return facts

@@ -17,6 +17,10 @@ FORECAST_FILE = "forecast.json"
 REPORT_FILE = "report.html"
 SUMMARY_FILE = "demo.json"       # also marks a folder as a demo's, for --overwrite
 SHARD_DIR = "shards"
+CHECKPOINT_DIR = "checkpoint"    # the main run's last checkpoint, for the warm restart
+GROWTH_DIR = "growth"            # weekly deltas, update reports, the last week's shards
+GROWTH_WEEKS = 4
+WARM_EPOCHS = 10                 # epochs of the warm restart (at most the demo's epochs)
 PLOT_DIR = "plots"
 
 METHODS = defaults.DEMO_METHODS

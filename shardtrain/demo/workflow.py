@@ -11,15 +11,19 @@
    epoch's loss and the final weights agree to a relative 1e-9 and that the measured payload
    equals the survey's prediction byte for byte;
 4. forecast two link speeds for every surveyed plan with this machine's calibration;
-5. draw the pictures (into plots/) and write the self-contained HTML report around them.
+5. grow the network for four weeks (`growth`): each week's delta applied to the shards with
+   `update`, the drift against a fresh partition, then a warm restart of training on the
+   last week's shards from the checkpoint of step 3;
+6. draw the pictures (into plots/) and write the self-contained HTML report around them.
 
 Modules: `settings` (DemoSettings, file names, the output-folder check), `choice` (which
 plan it trains and why), `check` (the equality and payload check), `page` (its part of
-the HTML report), `background` (the reference's thread); this module runs the steps. The
+the HTML report), `background` (the reference's thread), `growth` (the growing network);
+this module runs the steps. The
 two calls that start training runs are marked "TRAINING RUN" below.
 
 Everything goes into a temporary sibling of the output folder, which is renamed into place
-only when all five steps succeeded (`files.atomic_directory`): a failed or interrupted demo
+only when all six steps succeeded (`files.atomic_directory`): a failed or interrupted demo
 leaves nothing behind. Nothing here prints: progress goes to `on_step(text)`, and
 `run_demo` returns a `DemoResult` for the command line to summarise.
 """
@@ -38,8 +42,10 @@ from shardtrain.demo.check import check_failure, compare_runs
 from shardtrain.demo.choice import build_choice_shards, choice_forecasts, pick
 from shardtrain.demo.page import accuracy_text, summary_facts, write_demo_report
 from shardtrain.demo.settings import (
+    CHECKPOINT_DIR,
     FORECAST_FILE,
     GRAPH_FILE,
+    GROWTH_WEEKS,
     PLOT_DIR,
     REPORT_FILE,
     RUN_FILE,
@@ -69,6 +75,7 @@ class DemoResult:
     forecast: list[dict]        # the chosen plan at each link speed
     fastest: dict | None        # the fastest surveyed plan over all link speeds
     settings_doc: dict = field(default_factory=dict)  # the training settings used
+    growth: dict = field(default_factory=dict)      # `growth.run_growth`: weekly updates
     seconds: dict = field(default_factory=dict)     # wall seconds per step
     total_s: float = 0.0
 
@@ -126,7 +133,7 @@ class _Clock:
 
 def run_demo(settings: DemoSettings, on_step: Callable[[str], None] | None = None
              ) -> DemoResult:
-    """Run the five steps into `settings.out` (see the module docstring); parent folders
+    """Run the six steps into `settings.out` (see the module docstring); parent folders
     it creates are removed again when it fails."""
     settings = settings.validate()
     say = on_step or (lambda text: None)
@@ -154,9 +161,9 @@ def _run_into(settings: DemoSettings, out: Path, say) -> DemoResult:
         result.seconds = dict(clock.seconds)
         facts = summary_facts(result, result.settings_doc)
         t = time.perf_counter()
-        say("[5/5] drawing the pictures and writing the HTML report")
+        say("[6/6] drawing the pictures and writing the HTML report")
         write_demo_report(tmp, tmp / REPORT_FILE, facts, tmp / PLOT_DIR,
-                          choice=result.choice)
+                          choice=result.choice, growth=result.growth)
         clock.step("report", t)
         result.seconds = dict(clock.seconds)
         result.total_s = time.perf_counter() - clock.start
@@ -176,7 +183,9 @@ def _summary_doc(r: DemoResult, settings: DemoSettings) -> dict:
                      "links_gbps": list(settings.links_gbps), "latency_us": settings.latency_us},
             "graph": r.graph, "plan": r.choice, "final": r.final, "chance": r.chance,
             "check": {k: v for k, v in r.check.items() if k != "weight_rel_diff"},
-            "forecast": r.forecast, "fastest": r.fastest, "seconds": r.seconds,
+            "forecast": r.forecast, "fastest": r.fastest,
+            "growth": {k: v for k, v in r.growth.items() if k != "plot"},
+            "seconds": r.seconds,
             "total_s": r.total_s}
 
 
@@ -194,7 +203,7 @@ def _run_steps(settings: DemoSettings, tmp: Path, say, clock: _Clock) -> DemoRes
 
     # 1. the network
     t = time.perf_counter()
-    say(f"[1/5] synthesizing the parcel network: {settings.vertices:,} depots, "
+    say(f"[1/6] synthesizing the parcel network: {settings.vertices:,} depots, "
         f"{settings.classes} roles (seed {settings.seed})")
     loaded = synthesize(settings, tmp / GRAPH_FILE)
     graph = loaded.graph
@@ -210,7 +219,7 @@ def _run_steps(settings: DemoSettings, tmp: Path, say, clock: _Clock) -> DemoRes
                                      dtype=train_settings.dtype, bias=train_settings.bias,
                                      seed=settings.seed)
     workers_list = settings.surveyed_workers
-    say(f"[2/5] surveying {len(settings.methods)} methods x workers "
+    say(f"[2/6] surveying {len(settings.methods)} methods x workers "
         f"{','.join(map(str, workers_list))}")
     survey_dict = survey(graph, list(settings.methods), workers_list, survey_settings)
     survey_dict["graph"]["source"] = GRAPH_FILE
@@ -221,7 +230,7 @@ def _run_steps(settings: DemoSettings, tmp: Path, say, clock: _Clock) -> DemoRes
     choice = pick(survey_dict, settings.workers)
     survey_plan = next(p for p in survey_dict["plans"]
                        if p["method"] == choice["method"] and p["workers"] == choice["workers"])
-    say(f"[3/5] best plan for {choice['workers']} workers: {choice['method']} "
+    say(f"[3/6] best plan for {choice['workers']} workers: {choice['method']} "
         f"({choice['reason']})")
     build_choice_shards(graph, choice, settings, tmp / SHARD_DIR)
     say(f"      training {settings.epochs} epochs on {choice['workers']} worker processes and, "
@@ -237,7 +246,9 @@ def _run_steps(settings: DemoSettings, tmp: Path, say, clock: _Clock) -> DemoRes
     # TRAINING RUN: the reference in a thread, the partitioned run here
     reference = Background(train_reference_pinned, graph, train_settings)
     outcome = train(RunConfig(source=str(tmp / SHARD_DIR), settings=train_settings,
-                              timeout_s=TIMEOUT_S), on_epoch=progress, signals=False)
+                              timeout_s=TIMEOUT_S, checkpoint=str(tmp / CHECKPOINT_DIR),
+                              checkpoint_every=settings.epochs),
+                    on_epoch=progress, signals=False)
     assert outcome is not None               # pipes runs always return one
     run = outcome.result
     ref = reference.result()
@@ -253,20 +264,29 @@ def _run_steps(settings: DemoSettings, tmp: Path, say, clock: _Clock) -> DemoRes
     t = clock.step("train", t)
 
     # 4. the forecast, from this machine's kernels timed once (sparse on the graph's own Â)
-    say(f"[4/5] forecasting links of {' and '.join(f'{g:g}' for g in settings.links_gbps)} "
+    say(f"[4/6] forecasting links of {' and '.join(f'{g:g}' for g in settings.links_gbps)} "
         f"Gbit/s (timing this machine's kernels first)")
-    calibration = with_graph_sparse(calibrate(train_settings.dtype), graph,
+    calibration = with_graph_sparse(calibrate(train_settings.dtype, roofline=False), graph,
                                     train_settings.dtype)
     forecast_dict = forecast(survey_dict, link_gbps_list=list(settings.links_gbps),
                              latency_us=settings.latency_us, calibration=calibration,
                              dropout=train_settings.dropout)
     forecast_dict["source"] = SURVEY_FILE
     write_json_atomic(tmp / FORECAST_FILE, forecast_dict)
-    clock.step("forecast", t)
+    t = clock.step("forecast", t)
+
+    # 5. the network grows: four weekly updates, their drift, a warm restart
+    from shardtrain.demo.growth import run_growth
+
+    say(f"[5/6] growing the network: {GROWTH_WEEKS} weekly updates of the plan, then a "
+        f"warm restart")
+    growth = run_growth(tmp, graph, tmp / SHARD_DIR, tmp / CHECKPOINT_DIR, train_settings,
+                        survey_settings, tmp / PLOT_DIR, say)
+    clock.step("growth", t)
 
     return DemoResult(out_dir=tmp, report=tmp / REPORT_FILE, files=[], graph=graph_facts,
                       choice=choice, final=dict(run.epochs[-1]),
                       chance=chance_levels(graph), check=check,
                       forecast=choice_forecasts(forecast_dict, choice),
                       fastest=forecast_dict.get("fastest"),
-                      settings_doc=train_settings.to_dict())
+                      settings_doc=train_settings.to_dict(), growth=growth)

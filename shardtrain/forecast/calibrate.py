@@ -8,6 +8,8 @@ Three speeds are measured, in the training dtype:
 - elementwise passes (ReLU, dropout, an Adam-like update): bytes touched per second;
 - the model's own dropout-mask generator: mask elements per second;
 - one OS pipe: bytes per second (only used to check a forecast against a run on pipes);
+- the roofs of a roofline model (`forecast.roofline`): a triad-style stream's bytes per second
+  and a large GEMM's flop/s, on 1 and on 2 threads;
 - one transport call's fixed cost (`exchange_call_seconds`), paid by every exchange and
   every all-reduce step however few bytes it moves;
 - the transport's own CPU per byte (`transport_copy_seconds`): a worker copies every frame it
@@ -34,7 +36,9 @@ from shardtrain.errors import InputError, ParameterError, name_parameter
 
 # 2: the transport's copying cost (`transport_copy`) is timed; a version-1 file lacks it and
 # would forecast no copying, so it is re-timed rather than used.
-CALIBRATION_VERSION = 2
+# 3: this machine's roofs (`roofline`: stream bandwidth and GEMM flop rate on 1 and 2
+# threads) and the sparse timings' rows and columns, which the roofline model needs.
+CALIBRATION_VERSION = 3
 SPARSE_WIDTHS = (8, 32, 128)
 SPARSE_SIZES = ((20_000, 10), (200_000, 10))   # (rows, non-zeros per row)
 DENSE_SHAPES = ((20_000, 16, 16), (20_000, 128, 16), (20_000, 128, 128))  # rows, d_in, d_out
@@ -79,7 +83,7 @@ def _time_sparse(dtype, rng) -> list[dict]:
             x = rng.standard_normal((rows, width)).astype(dtype)
             t = _best_time(lambda: a @ x, repeats=5, budget_s=0.3)
             out.append({"nnz": int(a.nnz), "width": width, "seconds": t,
-                        "nnz_cols_per_s": a.nnz * width / t})
+                        "nnz_cols_per_s": a.nnz * width / t, "rows": rows, "cols": rows})
     return out
 
 
@@ -223,14 +227,18 @@ class Calibration(Document):
     pipe: dict | None = ABSENT          # {bytes_per_s, ...}; None: no pipe measured
     exchange_call: dict = ABSENT        # {seconds_per_call, cpu_s_per_call, ...}
     transport_copy: dict = ABSENT       # {cpu_s_per_byte, ...}
+    roofline: dict = ABSENT             # {stream_bytes_per_s, flops_per_s, two_threads, ...}
     calibration_s: float | None = ABSENT
     from_flops: float = ABSENT          # made by `from_flops` from one given speed
     sparse_source: str = ABSENT         # "graph": sparse speeds measured on the graph's Â
     extra: dict = field(default_factory=dict)
 
 
-def calibrate(dtype: str = "float32", *, seed: int = 0) -> dict:
-    """Time sparse, dense and elementwise kernels with BLAS on one thread (a few seconds)."""
+def calibrate(dtype: str = "float32", *, seed: int = 0, roofline: bool = True) -> dict:
+    """Time sparse, dense and elementwise kernels with BLAS on one thread (a few seconds).
+    `roofline=False` leaves out the roofs and shard-sized kernels of the roofline model
+    (a few seconds more; only a forecast on worker specs needs them): such a calibration is
+    for use at once, not for a file (the calibration shape requires them)."""
     if dtype not in ("float32", "float64"):
         raise ParameterError("dtype", f"{dtype!r} is not float32 or float64")
     rng = np.random.default_rng(seed)
@@ -241,13 +249,16 @@ def calibrate(dtype: str = "float32", *, seed: int = 0) -> dict:
         elementwise = _time_elementwise(np.dtype(dtype), rng)
         masks = _time_dropout_masks(np.dtype(dtype), rng)
         rows = _time_row_moves(np.dtype(dtype), rng)
+    from shardtrain.forecast.roofline import roofline_calibration
+
+    roofs = roofline_calibration(dtype) if roofline else ABSENT
     pipe = _time_pipe()
     call = exchange_call_seconds()
     copy = transport_copy_seconds(fixed_cpu_s=call["cpu_s_per_call"])
     return Calibration(version=CALIBRATION_VERSION, dtype=dtype, threads=1,
                        sparse=sparse, dense=dense, elementwise=elementwise,
                        dropout_masks=masks, row_moves=rows, pipe=pipe, exchange_call=call,
-                       transport_copy=copy,
+                       transport_copy=copy, roofline=roofs,
                        calibration_s=time.perf_counter() - t0).to_dict()
 
 
@@ -277,7 +288,8 @@ def sparse_on_matrix(adj, dtype: str = "float32", *, widths=SPARSE_WIDTHS,
                 x = rng.standard_normal((a.shape[1], width)).astype(dt)
                 t = _best_time(lambda: a @ x, repeats=4, budget_s=0.3)
                 out.append({"nnz": int(a.nnz), "width": int(width), "seconds": t,
-                            "nnz_cols_per_s": a.nnz * width / t, "source": "graph"})
+                            "nnz_cols_per_s": a.nnz * width / t, "source": "graph",
+                            "rows": int(a.shape[0]), "cols": int(a.shape[1])})
     return out
 
 
@@ -306,6 +318,8 @@ def from_flops(flops_per_s: float, dtype: str = "float32") -> dict:
                                     "bytes_per_s": 4.0 * flops_per_s},
                        dropout_masks={"elements": 0, "seconds": 0.0,
                                       "elements_per_s": flops_per_s / 20.0},
+                       roofline={"stream_bytes_per_s": 4.0 * flops_per_s,
+                                 "flops_per_s": flops_per_s},
                        calibration_s=0.0, from_flops=flops_per_s).to_dict()
 
 

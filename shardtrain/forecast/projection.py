@@ -14,9 +14,11 @@ The epoch follows the worker's schedule, step by step, for every worker at once:
   the counted proportions;
 - halo exchange, one per layer and direction that moves bytes: the link model of
   `shardtrain.transport.link` -- each worker has one full-duplex interface; the frames it
-  sends in one exchange leave one after the other, so it is done after
-  latency + 8 * (its payload + framing bytes) / bandwidth. An exchange is a barrier for the
-  workers that take part, so the hop takes as long as its busiest sender;
+  sends in one exchange leave one after the other, and the frames it receives come in one
+  after the other (receiver contention: several peers sending to one worker share its
+  interface), so it is done after latency + 8 * max(bytes it sends, bytes it receives,
+  payload + framing) / bandwidth (`hop_wire_seconds`). An exchange is a barrier for the
+  workers that take part, so the hop takes as long as its busiest worker;
 - all-reduce: ring (Patarasuk & Yuan 2009), 2(k-1) steps, each one link call carrying one
   chunk of about size/k elements: 2(k-1) x (latency + 8 * chunk bytes / bandwidth);
 - every transport call (exchange or ring step) also pays the calibrated fixed cost of a
@@ -38,6 +40,12 @@ The epoch follows the worker's schedule, step by step, for every worker at once:
 - waiting: exchanges synchronise, so between two of them every worker waits for the
   slowest: wait = max - own, per compute phase and per exchange.
 
+- on a described worker (`forecast_on_specs`, `shardtrain forecast --worker-spec`), every
+  kernel is costed on the worker's roofline instead (`forecast.roofline`), a worker with an
+  accelerator also moves its halo blocks and gradients over the host link
+  (`host_link_seconds`), each plan's predicted peak memory per worker is checked against the
+  worker's memory, and its price per epoch is the workers' price per hour x epoch / 3600.
+
 `epoch_s` is the critical path of one training step (forward, loss, backward, all-reduce,
 Adam step). The evaluation forward (no dropout, forward exchanges only) that the trainer
 runs for the accuracies is forecast apart as `eval_s`; `epoch_with_eval_s` adds it.
@@ -53,6 +61,7 @@ import numpy as np
 
 from shardtrain import defaults
 from shardtrain.errors import InputError, ParameterError
+from shardtrain.forecast import roofline
 from shardtrain.forecast.calibrate import (
     dense_speed,
     elementwise_speed,
@@ -82,6 +91,36 @@ def frame_header_bytes(dtype: str, shape, *, kind: str = "halo", layer: int = 0,
 def link_seconds(nbytes, gbps: float):
     """Serialisation time of nbytes on a gbps link: bytes * 8 / (gbps * 1e9)."""
     return np.asarray(nbytes, dtype=np.float64) * 8.0 / (gbps * 1e9)
+
+
+def hop_wire_seconds(out_bytes, in_bytes, out_msgs, in_msgs, latency_s: float,
+                     gbps: float, *, receiver_contention: bool = True) -> np.ndarray:
+    """Each worker's time on its interface in one exchange (per worker arrays of the bytes
+    it sends and receives, framing included, and of its frames each way).
+
+    Full duplex, one interface per worker: the frames a worker sends leave one after the
+    other, and the frames it receives come in one after the other, each side at line rate.
+    With `receiver_contention` (what a real interface and `--emulate-link` do):
+    latency + 8 * max(sent, received) / bandwidth for a worker that sends or receives
+    anything; without it (the model before receiver contention was counted, kept to show
+    the difference): latency + 8 * sent / bandwidth for a worker that sends. The hop is a
+    barrier: it lasts as long as its slowest worker (`_Timeline`)."""
+    out_b = np.asarray(out_bytes, dtype=np.float64)
+    in_b = np.asarray(in_bytes, dtype=np.float64)
+    sends = np.asarray(out_msgs) > 0
+    if not receiver_contention:
+        return np.where(sends, latency_s + link_seconds(out_b, gbps), 0.0)
+    busy = sends | (np.asarray(in_msgs) > 0)
+    return np.where(busy, latency_s + link_seconds(np.maximum(out_b, in_b), gbps), 0.0)
+
+
+def host_link_seconds(nbytes, host_bytes_per_s: float | None):
+    """A worker with an accelerator: the bytes it sends and receives cross the host link
+    (device -> host before sending, host -> device after receiving), in series with the
+    network; 0 without an accelerator."""
+    if not host_bytes_per_s:
+        return 0.0
+    return np.asarray(nbytes, dtype=np.float64) / float(host_bytes_per_s)
 
 
 def ring_allreduce_seconds(size_bytes: float, k: int, gbps: float, latency_us: float) -> float:
@@ -173,8 +212,8 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
                   calibration: dict, speed_factor: float = defaults.SPEED_FACTOR,
                   cores: float | None = None,
                   dropout: float = defaults.DROPOUT, local_pipes: bool = False,
-                  classes: int | None = None, measured_compute: list[dict] | None = None
-                  ) -> dict:
+                  classes: int | None = None, measured_compute: list[dict] | None = None,
+                  receiver_contention: bool = True, worker=None) -> dict:
     """Forecast one training epoch (and one evaluation forward) of a survey plan.
 
     `model`: the survey's "model" (dtype, hops). `cores`: the plan runs on one machine with
@@ -185,7 +224,14 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
     worker (in worker order): each worker's compute phases are then scaled so that they add
     up to its measured CPU seconds of a training step (and of an evaluation forward),
     keeping the counted split between exchanges. The calibration's `exchange_call` (when
-    present) adds its fixed cost to every transport call.
+    present) adds its fixed cost to every transport call. `worker`: a
+    `roofline.WorkerRoofs`: every kernel costed on its roofline (speed_factor then 1).
+    `receiver_contention`: False gives the model without it (a hop as long as its busiest
+    sender), kept to compare.
+    A halo scheme in `model["halo_scheme"]` (the survey's, `plan.schemes`) shrinks the
+    TRAINING exchanges: a fraction P of the halo rows (the expectation), each of
+    `HaloScheme.row_bytes` on the wire; the evaluation forward stays exact. (The row
+    selection and the codec's own CPU are not modelled.)
     Returns the plan-level critical path and a per-worker split.
     """
     _check_positive("link_gbps", link_gbps)
@@ -201,6 +247,12 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
     n = np.array([s["owned"] for s in shards], dtype=np.float64)
     halo = np.array([s["halo"] for s in shards], dtype=np.float64)
     nnz = np.array([s["local_edges"] for s in shards], dtype=np.float64) + n  # + self-loops
+    from shardtrain.plan.schemes import KEEP_ONE, HaloScheme, keep_threshold
+
+    entry = model.get("halo_scheme") or {}
+    scheme = HaloScheme(entry.get("halo_keep", defaults.HALO_KEEP),
+                        entry.get("halo_format", defaults.HALO_FORMAT)).check()
+    kept = keep_threshold(scheme.keep) / KEEP_ONE
     S = _send_rows(plan, hops, b)
     sent_rows = S.sum(axis=1)          # rows p sends, summed over its peers
     back_rows = S.sum(axis=0)          # p's halo rows: gradients p sends back to owners
@@ -211,6 +263,7 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
 
     stretch = max(1.0, k / cores) if cores else 1.0
     slow = stretch / speed_factor
+    host_bps = worker.host_link_bytes_per_s if worker is not None else None
     elem = elementwise_speed(calibration)
     masks = mask_speed(calibration)
     bandwidth = link_gbps
@@ -219,6 +272,8 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
     latency = latency_us * 1e-6
     call_s = float(calibration.get("exchange_call", {}).get("seconds_per_call", 0.0))
     copy_s = transport_copy_speed(calibration) * slow     # CPU s per byte sent or received
+    if worker is not None:
+        copy_s *= worker.copy_scale
     if measured_compute is not None and len(measured_compute) != k:
         raise InputError(f"plan {plan.get('method')}/{k}: measured compute of "
                          f"{len(measured_compute)} workers given")
@@ -232,36 +287,64 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
         return seconds
 
     def sparse(width):
+        if worker is not None:
+            return count("sparse", worker.seconds(
+                "sparse", *roofline.sparse_cost(nnz, n, n + halo, width, b)) * slow)
         speeds = np.array([sparse_speed(calibration, int(z), int(width)) for z in nnz])
         return count("sparse", (nnz * width / speeds + CALL_OVERHEAD_S) * slow)
 
     def gemm(rows, d_in, d_out):
+        if worker is not None:
+            return count("dense", worker.seconds(
+                "dense", *roofline.dense_cost(rows, d_in, d_out, b)) * slow)
         return count("dense", (2.0 * rows * d_in * d_out / dense_speed(calibration, d_in, d_out)
                                + CALL_OVERHEAD_S) * slow)
 
     def passes(nbytes):
+        if worker is not None:
+            return count("elementwise", worker.seconds(
+                "elementwise", *roofline.elementwise_cost(nbytes, b)) * slow)
         return count("elementwise",
                      (np.asarray(nbytes, dtype=np.float64) / elem + CALL_OVERHEAD_S) * slow)
 
     def row_moves(gathered, added):
         """Rows gathered into send blocks, gradient rows added back at scattered rows."""
+        if worker is not None:
+            gathered, added = np.broadcast_arrays(np.asarray(gathered, np.float64),
+                                                  np.asarray(added, np.float64))
+            t = np.where(gathered > 0, worker.seconds(
+                "gather", *roofline.row_move_cost(gathered)), 0.0) + np.where(
+                added > 0, worker.seconds("scatter", *roofline.row_move_cost(added)), 0.0)
+            return count("row_moves", t * slow)
         t = (np.asarray(gathered, dtype=np.float64) / gather_speed(calibration)
              + np.asarray(added, dtype=np.float64) / scatter_add_speed(calibration))
         return count("row_moves", (t + CALL_OVERHEAD_S) * slow)
 
     def draw_masks(elements):
+        if worker is not None:
+            return count("dropout_masks", worker.seconds(
+                "masks", *roofline.mask_cost(elements, b)) * slow)
         return count("dropout_masks", elements / masks * slow)
 
-    def link(rows, width, msgs, in_rows, in_msgs):
+    def link(rows, width, msgs, in_rows, in_msgs, train=True):
         """Each worker's part of one exchange: it sends `rows` in `msgs` frames and receives
         `in_rows` in `in_msgs`; done when the link has carried its frames AND it has copied
-        what it sent and received (its own CPU, overlapping the link's time)."""
+        what it sent and received (its own CPU, overlapping the link's time). A training
+        exchange under a halo scheme sends the kept fraction of rows in its wire format."""
         if k == 1:
             return np.zeros(k)
-        header = frame_header_bytes(dtype, (rows.max() / max(msgs.max(), 1), width))
-        out_bytes = rows * width * b + msgs * header
-        in_bytes = in_rows * width * b + in_msgs * header
-        wire = np.where(msgs > 0, latency + link_seconds(out_bytes, bandwidth), 0.0)
+        share, row = (kept, scheme.row_bytes(width, dtype)) if train else (1.0, width * b)
+        wire_dtype, wire_width = dtype, width
+        if train and scheme.compressed(dtype):
+            wire_dtype = scheme.wire_dtype(dtype).name
+            wire_width = scheme.wire_width(width, dtype)
+        header = frame_header_bytes(wire_dtype, (share * rows.max() / max(msgs.max(), 1),
+                                                 wire_width))
+        out_bytes = rows * share * row + msgs * header
+        in_bytes = in_rows * share * row + in_msgs * header
+        wire = hop_wire_seconds(out_bytes, in_bytes, msgs, in_msgs, latency, bandwidth,
+                                receiver_contention=receiver_contention)
+        wire = wire + host_link_seconds(out_bytes + in_bytes, host_bps)
         return np.where((msgs > 0) | (in_msgs > 0),
                         call_s + np.maximum(wire, copy_s * (out_bytes + in_bytes)), 0.0)
 
@@ -317,7 +400,8 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
                 tl.compute(gemm(n, d_in, d_out))
             if k > 1 and fw:
                 tl.compute(row_moves(sent_rows * fw * b, 0))                   # send rows
-                tl.exchange(f"forward {l}", link(sent_rows, fw, fwd_msgs, back_rows, bwd_msgs))
+                tl.exchange(f"forward {l}", link(sent_rows, fw, fwd_msgs, back_rows, bwd_msgs,
+                                                 train=train))
             tl.compute(passes(n * fw * b))                                     # fresh output
             tl.compute(sparse(fw))
             if not h["transform_first"]:
@@ -383,6 +467,7 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
         per_rank = steps * call_s + np.maximum(steps * latency
                                                + link_seconds(ring + framing, bandwidth),
                                                copy_s * 2 * (ring + framing))
+        per_rank = per_rank + host_link_seconds(2 * (ring + framing), host_bps)
         train.compute(0.0)
         train.exchange("all-reduce", per_rank, kind="allreduce")
         train.compute(passes(np.full(k, size_bytes * (k - 1) / k * 3)))     # chunk adds
@@ -416,7 +501,9 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
         "bottleneck": max(path, key=path.get),
         "compute_parts_s": {kind: float(v.max()) for kind, v in train_parts.items()},
         "counted_compute_s": float(counted["train"].max()),
-        "compute_source": "measured" if measured_compute is not None else "counted",
+        "compute_source": ("measured" if measured_compute is not None
+                           else "roofline" if worker is not None else "counted"),
+        "receiver_contention": bool(receiver_contention),
         "transport_call_s": call_s,
         "transport_copy_s_per_byte": copy_s,
         "compute_stretch": stretch,
@@ -492,4 +579,117 @@ def forecast(survey_dict: dict, *, link_gbps_list, latency_us: float, calibratio
         "plans": plans,
         "fastest": _pick(fastest),
         "fewest_meeting_target": _pick(meeting),
+    }
+
+
+# ---------------------------------------------------------------- described workers
+
+def plan_memory_bytes(plan: dict) -> int | None:
+    """The predicted peak memory of the plan's largest worker (survey.predict_memory)."""
+    per = [s.get("memory_bytes") for s in plan.get("shards", [])]
+    if per and all(isinstance(m, int) for m in per):
+        return int(max(per))
+    m = plan.get("max_memory_bytes")
+    return int(m) if isinstance(m, int) else None
+
+
+def plan_price(workers: int, epoch_s: float, price_per_hour: float | None) -> dict:
+    """Price of one epoch on `workers` workers at `price_per_hour` each, and of 100
+    epochs (None without a price): workers x price per hour x epoch seconds / 3600."""
+    if price_per_hour is None:
+        return {"price_per_epoch": None, "price_per_100_epochs": None}
+    per_epoch = workers * float(price_per_hour) * float(epoch_s) / 3600.0
+    return {"price_per_epoch": per_epoch, "price_per_100_epochs": 100.0 * per_epoch}
+
+
+def _pick_spec(p: dict | None) -> dict | None:
+    if p is None:
+        return None
+    return {key: p[key] for key in ("spec", "method", "workers", "link_gbps", "epoch_s",
+                                    "price_per_epoch", "price_per_100_epochs")}
+
+
+def _fewest_meeting(plans: list[dict], target: float | None) -> dict | None:
+    """Fewest workers meeting the target among the plans that fit in memory; ties go to
+    the cheaper epoch, then the shorter one."""
+    if target is None:
+        return None
+    ok = [p for p in plans if p["fits_memory"] is not False and p["epoch_s"] <= target]
+    if not ok:
+        return None
+    return min(ok, key=lambda p: (p["workers"], p["price_per_epoch"] or 0.0, p["epoch_s"]))
+
+
+def forecast_on_specs(survey_dict: dict, specs, *, calibration: dict,
+                      target_epoch_s: float | None = None, dropout: float = defaults.DROPOUT,
+                      receiver_contention: bool = True) -> dict:
+    """Forecast every plan of a survey on every described worker (`specs.WorkerSpec`):
+    compute on the worker's roofline (`roofline.WorkerRoofs.of_spec`, efficiencies
+    calibrated in `calibration` unless the spec gives them), the spec's network and
+    latency, each plan's predicted peak memory per worker against the spec's memory (the
+    accelerator's when it has one; a plan that does not fit is marked and never chosen),
+    and its price when the spec has one. With `target_epoch_s`, per spec the fewest
+    workers meeting it, and overall the cheapest plan meeting it (by price per epoch;
+    None when no spec has a price)."""
+    from shardtrain.forecast.roofline import WorkerRoofs
+
+    if target_epoch_s is not None:
+        _check_positive("target_epoch_s", target_epoch_s)
+    model = survey_dict["model"]
+    classes = survey_dict.get("graph", {}).get("classes")
+    plans, per_spec, roofs_out = [], [], []
+    for spec in specs:
+        roofs = WorkerRoofs.of_spec(spec, calibration)
+        roofs_out.append(roofs.to_dict())
+        mine = []
+        for plan in survey_dict["plans"]:
+            p = forecast_plan(plan, model, link_gbps=spec.network_gbps,
+                              latency_us=spec.latency_us, calibration=calibration,
+                              dropout=dropout, classes=classes, worker=roofs,
+                              receiver_contention=receiver_contention)
+            memory = plan_memory_bytes(plan)
+            limit = spec.memory_limit_bytes()
+            p.update(spec=spec.name, memory_bytes=memory, memory_limit_bytes=limit,
+                     fits_memory=None if memory is None else memory <= limit,
+                     price_per_hour=spec.price_per_hour,
+                     **plan_price(p["workers"], p["epoch_s"], spec.price_per_hour))
+            mine.append(p)
+        fitting = [p for p in mine if p["fits_memory"] is not False]
+        fastest = min(fitting, key=lambda p: (p["epoch_s"], p["workers"])) if fitting else None
+        meeting = _fewest_meeting(mine, target_epoch_s)
+        for p in mine:
+            p["fastest"] = p is fastest
+            p["meets_target"] = None if target_epoch_s is None else (
+                p["epoch_s"] <= target_epoch_s and p["fits_memory"] is not False)
+            p["fewest_meeting_target"] = p is meeting
+        per_spec.append({"spec": spec.name, "fastest": _pick_spec(fastest),
+                         "fewest_meeting_target": _pick_spec(meeting),
+                         "plans_fitting_memory": len(fitting), "plans": len(mine)})
+        plans += mine
+    fitting = [p for p in plans if p["fits_memory"] is not False]
+    fastest = min(fitting, key=lambda p: (p["epoch_s"], p["workers"])) if fitting else None
+    priced = [p for p in plans if p["meets_target"] and p["price_per_epoch"] is not None]
+    cheapest = min(priced, key=lambda p: (p["price_per_epoch"], p["epoch_s"])) \
+        if priced else None
+    for p in plans:
+        p["cheapest_meeting_target"] = p is cheapest
+    return {
+        "kind": "forecast",
+        "graph": survey_dict.get("graph", {}),
+        "model": model,
+        "target_epoch_s": target_epoch_s,
+        "dropout": dropout,
+        "calibration": {key: calibration.get(key) for key in
+                        ("dtype", "threads", "calibration_s", "from_flops", "sparse_source")
+                        if key in calibration},
+        "includes_eval": False,
+        "compute_measured": False,
+        "receiver_contention": bool(receiver_contention),
+        "worker_specs": [s.to_dict() for s in specs],
+        "roofs": roofs_out,
+        "plans": plans,
+        "fastest": _pick_spec(fastest),
+        "fewest_meeting_target": _pick_spec(_fewest_meeting(plans, target_epoch_s)),
+        "per_spec": per_spec,
+        "cheapest_meeting_target": _pick_spec(cheapest),
     }

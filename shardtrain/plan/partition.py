@@ -264,14 +264,23 @@ def fennel(graph: Graph, k: int, *, seed: int = 0, imbalance: float = 0.03,
     n = graph.num_vertices
     if k == 1:
         return np.zeros(n, dtype=owner_dtype(k))
+    return _restream(graph, k, fennel_score(k, graph.num_edges, n), seed=seed,
+                     imbalance=imbalance, passes=passes, on_pass=on_pass)
+
+
+def fennel_score(k: int, num_edges: int, num_vertices: int):
+    """Fennel's score of a batch (Tsourakakis et al., WSDM 2014, from memory): for counts
+    (b, k) of placed neighbours per part and part sizes (k,), counts_i - alpha * gamma *
+    |P_i|^(gamma - 1) with gamma = 1.5 and alpha = sqrt(k) m / n^1.5 (m edges, n vertices of
+    the graph being placed). Shared by `fennel` and the placement of new vertices
+    (`place_vertices`)."""
     gamma = 1.5
-    alpha = np.sqrt(k) * max(graph.num_edges, 1) / n ** 1.5
+    alpha = np.sqrt(k) * max(num_edges, 1) / num_vertices ** 1.5
 
     def score(counts: np.ndarray, sizes: np.ndarray, capacity: int) -> np.ndarray:
         return counts - alpha * gamma * np.sqrt(sizes)
 
-    return _restream(graph, k, score, seed=seed, imbalance=imbalance, passes=passes,
-                     on_pass=on_pass)
+    return score
 
 
 def ldg(graph: Graph, k: int, *, seed: int = 0, imbalance: float = 0.03,
@@ -296,40 +305,83 @@ def ldg(graph: Graph, k: int, *, seed: int = 0, imbalance: float = 0.03,
                      on_pass=on_pass)
 
 
+def load_limit(n: int, k: int, imbalance: float) -> int:
+    """The hard load limit of the streaming methods: max(ceil(n/k), (1+imbalance) n/k)."""
+    return max(int(np.ceil(n / k)), int((1.0 + imbalance) * n / k))
+
+
+def stream_batch(n: int, k: int, imbalance: float) -> int:
+    """Vertices placed together by a streaming pass (see `fennel`)."""
+    return int(min(max(8, imbalance * n / (2 * k)), 65536))
+
+
+def _stream_pass(indptr, indices, part: np.ndarray, stream: np.ndarray, k: int, score,
+                 sizes: np.ndarray, capacity: int, batch: int) -> None:
+    """One greedy pass: the vertices of `stream`, `batch` at a time, each batch scored on
+    its neighbours already placed in `part` (-1: not placed) and the part `sizes` at its
+    start, go to the best part with room; `part` and `sizes` are updated in place."""
+    n = stream.shape[0]
+    for start in range(0, n, batch):        # a loop over batches, not over vertices
+        vertices = stream[start:start + batch]
+        b = vertices.shape[0]
+        starts = indptr[vertices]
+        degree = indptr[vertices + 1] - starts
+        row = np.repeat(np.arange(b, dtype=np.int64), degree)
+        edge = np.arange(row.shape[0], dtype=np.int64) + np.repeat(
+            starts - (np.cumsum(degree) - degree), degree)
+        nbr_part = part[indices[edge]]
+        placed = nbr_part >= 0
+        counts = np.bincount(row[placed] * k + nbr_part[placed], minlength=b * k)
+        scores = score(counts.reshape(b, k), sizes, capacity)
+        part[vertices] = _choose_within_capacity(scores, sizes, capacity)
+
+
 def _restream(graph: Graph, k: int, score, *, seed: int, imbalance: float, passes: int,
               on_pass=None) -> np.ndarray:
     """The restreamed, batched greedy pass shared by `fennel` and `ldg`:
     `score(counts (b, k), sizes (k,), capacity)` -> (b, k) scores of a batch."""
     n = graph.num_vertices
     small = owner_dtype(k)           # the assignment: 2 bytes per vertex up to 32767 parts
-    capacity = max(int(np.ceil(n / k)), int((1.0 + imbalance) * n / k))   # hard load limit
-    batch = int(min(max(8, imbalance * n / (2 * k)), 65536))
+    capacity = load_limit(n, k, imbalance)
+    batch = stream_batch(n, k, imbalance)
     # the same seeded order at any size, held as int32 where the ids fit (half the memory)
     stream = np.random.default_rng(seed).permutation(n).astype(
         np.int32 if n < 2**31 else np.int64)
     part = np.full(n, -1, dtype=small)          # the previous pass's answer (-1: none yet)
-    indptr, indices = graph.indptr, graph.indices
     for _pass in range(passes):
         previous = part.copy()
         sizes = np.zeros(k, dtype=np.float64)
-        for start in range(0, n, batch):        # a loop over batches, not over vertices
-            vertices = stream[start:start + batch]
-            b = vertices.shape[0]
-            starts = indptr[vertices]
-            degree = indptr[vertices + 1] - starts
-            row = np.repeat(np.arange(b, dtype=np.int64), degree)
-            edge = np.arange(row.shape[0], dtype=np.int64) + np.repeat(
-                starts - (np.cumsum(degree) - degree), degree)
-            nbr_part = part[indices[edge]]
-            placed = nbr_part >= 0
-            counts = np.bincount(row[placed] * k + nbr_part[placed], minlength=b * k)
-            scores = score(counts.reshape(b, k), sizes, capacity)
-            part[vertices] = _choose_within_capacity(scores, sizes, capacity)
+        _stream_pass(graph.indptr, graph.indices, part, stream, k, score, sizes, capacity,
+                     batch)
         if on_pass is not None:
             on_pass(_pass)
         if np.array_equal(part, previous):
             break
     return part
+
+
+def place_vertices(graph: Graph, assignment: np.ndarray, new: np.ndarray, k: int, *,
+                   imbalance: float = defaults.IMBALANCE) -> np.ndarray:
+    """The assignment of `graph` with the vertices `new` (ascending ids) placed, the others
+    keeping their worker: one Fennel pass (`fennel_score` on this graph, the `fennel` load
+    limit of its n vertices, part sizes counted from the kept vertices) streaming the new
+    vertices in id order, `stream_batch` at a time; a batch sees the kept vertices and the
+    new ones of earlier batches. `assignment` holds any value at the new ids (ignored)."""
+    n = graph.num_vertices
+    part = np.asarray(assignment).astype(owner_dtype(k), copy=True)
+    new = np.asarray(new, dtype=np.int64)
+    part[new] = -1
+    if new.size == 0:
+        return part.astype(np.int64)
+    if k == 1:
+        part[new] = 0
+        return part.astype(np.int64)
+    kept = part[part >= 0]
+    sizes = np.bincount(kept, minlength=k).astype(np.float64)
+    _stream_pass(graph.indptr, graph.indices, part, new, k,
+                 fennel_score(k, graph.num_edges, n), sizes, load_limit(n, k, imbalance),
+                 stream_batch(n, k, imbalance))
+    return part.astype(np.int64)
 
 
 def owner_dtype(k: int) -> np.dtype:

@@ -128,7 +128,8 @@ def _locality_perm(indptr: np.ndarray, inside: np.ndarray, local_cols: np.ndarra
 
 
 def _halo(nbr_out: np.ndarray, owner: np.ndarray, n: int) -> np.ndarray:
-    """Distinct outside neighbours sorted by (owner, global id)."""
+    """Distinct outside neighbours sorted by (owner, global id), int64 whichever branch
+    finds them (a shard's arrays then do not depend on n, which an update changes)."""
     if 4 * nbr_out.shape[0] >= n:
         # dense marks: O(n) work, which is O(this worker's edges) on this branch
         mark = np.zeros(n, dtype=bool)
@@ -136,7 +137,8 @@ def _halo(nbr_out: np.ndarray, owner: np.ndarray, n: int) -> np.ndarray:
         ids = np.flatnonzero(mark)
     else:
         ids = _unique_sorted(nbr_out)
-    return ids[np.argsort(owner[ids], kind="stable")]   # radix sort on small ints, keeps id order
+    ids = ids[np.argsort(owner[ids], kind="stable")]   # radix sort on small ints, keeps id order
+    return ids.astype(np.int64, copy=False)
 
 
 def _local_csr(rows_new: np.ndarray, lengths: np.ndarray, cols: np.ndarray, n_own: int,
@@ -212,12 +214,13 @@ def _build_one(graph: Graph, structure: sp.csr_matrix, owner: np.ndarray, k: int
     return shard, new_of
 
 
-def _fill_send_lists(shards: list[Shard], new_of: list[np.ndarray], pos: np.ndarray,
+def _fill_send_lists(shards: list[Shard], new_of: list, pos: np.ndarray,
                      n: int) -> None:
     """Send lists from the halos: what q lists in its halo group for p is what p sends q.
 
     One global sort of all halo entries by (owner, receiver, id); each worker then takes
-    its slice, so the order inside a group is exactly the receiver's halo order.
+    its slice, so the order inside a group is exactly the receiver's halo order. A worker
+    whose `new_of` entry is None keeps the send lists it has (`rebuild_shards`).
     """
     k = len(shards)
     receiver = np.repeat(np.arange(k, dtype=np.int32), [s.num_halo for s in shards])
@@ -230,6 +233,8 @@ def _fill_send_lists(shards: list[Shard], new_of: list[np.ndarray], pos: np.ndar
     receiver, vertex = receiver[order], vertex[order]
     sender_ptr = _ptr_by_group(sender[order], k)
     for s in shards:
+        if new_of[s.worker] is None:
+            continue
         lo, hi = sender_ptr[s.worker], sender_ptr[s.worker + 1]
         s.send_ptr = _ptr_by_group(receiver[lo:hi], k)
         s.send_idx = new_of[s.worker][pos[vertex[lo:hi]]].astype(np.int64)
@@ -259,10 +264,25 @@ def build_shards(graph: Graph, assignment: np.ndarray, k: int, *, with_vertex_da
     small sorts and never O(n) more than a small multiple of its edges; send lists come
     from one radix sort of all halo entries.
     """
+    return rebuild_shards(graph, assignment, k, range(k), {},
+                          with_vertex_data=with_vertex_data, order=order)
+
+
+def rebuild_shards(graph: Graph, assignment: np.ndarray, k: int, workers, kept: dict, *,
+                   with_vertex_data: bool = True, order: str = "locality") -> list[Shard]:
+    """`build_shards`, building only the shards of `workers` and taking every other
+    worker's shard from `kept` (worker -> Shard, used as it is: the caller vouches that
+    building it again would give the same arrays). The built shards equal those of
+    `build_shards` on the same graph and assignment: a kept shard's halo is all its send
+    lists need from it."""
     if order not in ORDERS:
         raise InputError(f"order: expected one of {', '.join(ORDERS)}, got {order!r}")
     n = graph.num_vertices
     a = check_assignment(assignment, n, k)
+    build = sorted(set(int(w) for w in workers))
+    missing = sorted(set(range(k)) - set(build) - set(kept))
+    if missing:
+        raise InputError(f"workers: neither built nor kept: {missing}")
     owner = a.astype(np.int16 if k < 2**15 else np.int32)   # small: cheaper random reads
     by_owner = np.argsort(owner, kind="stable")              # ascending ids within each owner
     owner_ptr = np.zeros(k + 1, dtype=np.int64)
@@ -274,8 +294,13 @@ def build_shards(graph: Graph, assignment: np.ndarray, k: int, *, with_vertex_da
     colmap = np.empty(n, dtype=ix)
     inv_sqrt = 1.0 / np.sqrt(gcn_degrees(graph))
     num_train = 0 if graph.train_mask is None else int(np.count_nonzero(graph.train_mask))
-    shards, new_of = [], []
+    shards: list[Shard] = []
+    new_of: list = []
     for p in range(k):
+        if p not in build:
+            shards.append(kept[p])
+            new_of.append(None)
+            continue
         shard, local = _build_one(graph, structure, owner, k, p,
                                   by_owner[owner_ptr[p]:owner_ptr[p + 1]], colmap, inv_sqrt,
                                   num_train, with_vertex_data, order)

@@ -166,6 +166,11 @@ def save_shards_streaming(path, gd, assignment: np.ndarray, k: int, *, meta: dic
                             **shard_arrays(s, input_dim, num_classes, split_id))
             if on_shard is not None:
                 on_shard("write", s.worker)
+        ids = gd.manifest.get("vertex_ids")
+        if ids is not None:      # the original ids travel with the shards (train names them)
+            from shardtrain.data.graphdir import copy_vertex_ids
+            copy_vertex_ids(gd.path, tmp, ids)
+            manifest["meta"]["vertex_ids"] = ids
         write_json_atomic(tmp / SHARDS_MANIFEST, manifest)
     return {**manifest, "stats": {"owned": owned, "halo": halo,
                                   "edge_cut": cut_entries // 2}}

@@ -24,6 +24,7 @@ import time
 import numpy as np
 
 from shardtrain.data.memory import default_memory_budget
+from shardtrain.errors import ParameterError
 from shardtrain.plan.streaming import (
     chunk_entries,
     require_metis_fits,
@@ -204,6 +205,12 @@ def check_stream_survey(gd, methods: list[str], workers_list: list[int],
     """Every check `stream_survey` makes before its first plan (InputError naming the
     parameter); returns the memory budget in bytes."""
     check_plans(_Shape(gd), [] if assignment is not None else methods, workers_list, settings)
+    from shardtrain.plan.schemes import scheme_of
+    scheme = scheme_of(settings)
+    if not scheme.exact(np.dtype(settings.dtype)):
+        raise ParameterError("halo_keep" if scheme.sampled else "halo_format",
+                             "not available in the survey of a graph directory (survey a "
+                             "graph file to replay a halo scheme)")
     budget = default_memory_budget() if memory_budget is None else int(memory_budget)
     if assignment is None and max(workers_list) > 1:
         for method in methods:                 # refused before any plan is made

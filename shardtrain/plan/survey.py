@@ -52,6 +52,10 @@ class SurveySettings:
     seed: int = defaults.SEED
     model: str = defaults.MODEL     # schedule.MODELS
     heads: int = defaults.HEADS     # GAT heads per hidden layer
+    # halo scheme (plan.schemes.HaloScheme) and the epochs its payload is replayed over
+    halo_keep: float = defaults.HALO_KEEP
+    halo_format: str | None = defaults.HALO_FORMAT
+    epochs: int = defaults.EPOCHS
 
 
 @dataclass(kw_only=True)
@@ -156,7 +160,12 @@ def predict_traffic_of_rows(send_rows: np.ndarray, halo_rows: np.ndarray,
 
 
 def epoch_payload_bytes(traffic: dict) -> int:
-    """Payload of one training step: forward + backward halo exchanges + all-reduce."""
+    """Payload of one training step: forward + backward halo exchanges + all-reduce (under
+    a halo scheme, the expected halo payload of an epoch, rounded)."""
+    scheme = traffic.get("halo_scheme")
+    if scheme is not None:
+        return int(round(scheme["expected_forward_bytes"] + scheme["expected_backward_bytes"])
+                   + traffic["allreduce_bytes"])
     return int(traffic["forward_bytes"] + traffic["backward_bytes"] + traffic["allreduce_bytes"])
 
 
@@ -173,7 +182,14 @@ def predict_run_payload(traffic: dict, epochs: int, evals: int, stop_votes: int 
     """Payload of a whole run: `epochs` training steps, `evals` evaluation forwards and
     `stop_votes` early-stopping votes (one per epoch run with --early-stop, else 0).
     This is the number the trainer compares with what it measured."""
-    total = epochs * epoch_payload_bytes(traffic) + evals * traffic["eval_forward_bytes"]
+    scheme = traffic.get("halo_scheme")
+    if scheme is not None and len(scheme.get("forward_bytes_per_epoch", ())) >= epochs:
+        # the replayed payload of epochs 1..epochs: exact, not the expectation
+        total = (sum(scheme["forward_bytes_per_epoch"][:epochs])
+                 + sum(scheme["backward_bytes_per_epoch"][:epochs])
+                 + epochs * traffic["allreduce_bytes"] + evals * traffic["eval_forward_bytes"])
+    else:
+        total = epochs * epoch_payload_bytes(traffic) + evals * traffic["eval_forward_bytes"]
     if stop_votes:
         total += stop_votes * int(stop_vote_bytes(len(traffic["allreduce_bytes_per_worker"]))
                                   .sum())
@@ -356,11 +372,15 @@ def _max_over_mean(values: np.ndarray) -> dict:
 
 def survey_plan(graph, method: str, k: int, *, hops: list[LayerHop], itemsize: int,
                 seed: int, imbalance: float, assignment: np.ndarray | None = None,
-                bias: bool = False) -> dict:
+                bias: bool = False, scheme=None, epochs: int = defaults.EPOCHS) -> dict:
     """Partition (or take `assignment`), build the shards without vertex data, and report
     the plan: edge cut, replication factor, per-worker sizes, memory and bytes, traffic per
-    epoch, and max/mean imbalances. Shards are freed before returning."""
-    from shardtrain.plan.shards import build_shards, shard_stats
+    epoch, and max/mean imbalances. Shards are freed before returning.
+    Under a halo `scheme` (`plan.schemes.HaloScheme`, not exact for the dtype of
+    `itemsize`), `traffic["halo_scheme"]` is `schemes.plan_scheme_traffic` (every epoch's
+    halo payload for `seed` and `epochs`, and the expectation per epoch) and the plan's
+    `epoch_payload_bytes` uses the expectation."""
+    from shardtrain.plan.shards import build_shards
 
     t0, c0 = time.perf_counter(), time.process_time()
     details = {"method": method}             # how the plan was made (METIS: scheme, balance)
@@ -374,21 +394,44 @@ def survey_plan(graph, method: str, k: int, *, hops: list[LayerHop], itemsize: i
     # (tests/test_survey.py checks the prediction against a trained run's measurement).
     shards = build_shards(graph, assignment, k, with_vertex_data=False, order="id")
     t2, c2 = time.perf_counter(), time.process_time()
+    fsize = None if graph.features is None else graph.features.dtype.itemsize
+    plan = plan_of_shards(shards, method, graph.num_vertices, hops=hops, itemsize=itemsize,
+                          bias=bias, feature_itemsize=fsize, details=details,
+                          scheme=scheme, seed=seed, epochs=epochs,
+                          times={"partition_s": t1 - t0, "build_s": t2 - t1,
+                                 "partition_cpu_s": c1 - c0, "build_cpu_s": c2 - c1})
+    del shards            # refcounting frees them now: the next plan starts clean
+    return plan
+
+
+def plan_of_shards(shards, method: str, num_vertices: int, *, hops: list[LayerHop],
+                   itemsize: int, bias: bool, feature_itemsize: int | None, details: dict,
+                   times: dict, scheme=None, seed: int = 0,
+                   epochs: int = defaults.EPOCHS) -> dict:
+    """The survey's plan record of a full list of built shards, in any local order (every
+    count read is order-invariant): `survey_plan`'s, and `update`'s of the shards it
+    holds or builds anyway. `scheme`, `seed`, `epochs`: as `survey_plan`'s."""
+    from shardtrain.plan.shards import shard_stats
+
+    k = len(shards)
     params = parameter_elements(hops, bias=bias)
     traffic = predict_traffic(shards, hops, itemsize, param_elements=params)
+    dtype = np.dtype(f"f{itemsize}")
+    if scheme is not None and not scheme.exact(dtype):
+        from shardtrain.plan.schemes import plan_scheme_traffic
+
+        traffic["halo_scheme"] = plan_scheme_traffic(
+            [s.halo for s in shards], [s.halo_ptr for s in shards], hops, dtype, scheme,
+            seed=seed, epochs=epochs)
     stats = shard_stats(shards)
     # entries of the local Â in halo columns: each cut edge appears once on either side
     cut_entries = np.array([np.count_nonzero(s.adj.indices >= s.num_owned) for s in shards])
     owned, halo, local_edges = stats["owned"], stats["halo"], stats["local_edges"]
-    fsize = None if graph.features is None else graph.features.dtype.itemsize
     memory = np.array([predict_memory(s, hops, itemsize, param_elements=params,
-                                      input_dim=hops[0].d_in, feature_itemsize=fsize)
+                                      input_dim=hops[0].d_in, feature_itemsize=feature_itemsize)
                        for s in shards])
-    del shards            # refcounting frees them now: the next plan starts clean
-    return plan_record(method, k, graph.num_vertices, owned, halo, local_edges, cut_entries,
-                       memory, traffic, details,
-                       {"partition_s": t1 - t0, "build_s": t2 - t1,
-                        "partition_cpu_s": c1 - c0, "build_cpu_s": c2 - c1})
+    return plan_record(method, k, num_vertices, owned, halo, local_edges, cut_entries,
+                       memory, traffic, details, times)
 
 
 def plan_record(method: str, k: int, num_vertices: int, owned, halo, local_edges,
@@ -480,6 +523,10 @@ def check_plans(graph, methods: list[str], workers_list: list[int],
     if not 1 <= settings.heads <= MAX_HEADS:
         raise ParameterError("heads", f"must be an integer in 1..{MAX_HEADS} (got "
                                       f"{settings.heads})")
+    if not (isinstance(settings.epochs, int) and settings.epochs >= 1):
+        raise ParameterError("epochs", f"must be an integer >= 1, got {settings.epochs!r}")
+    from shardtrain.plan.schemes import scheme_of
+    scheme_of(settings)
     model_shape(graph, settings)
 
 
@@ -491,12 +538,15 @@ def survey(graph, methods: list[str], workers_list: list[int], settings: SurveyS
     check_plans(graph, [] if assignment is not None else methods, workers_list, settings)
     dims, hops = model_shape(graph, settings)
     itemsize = np.dtype(settings.dtype).itemsize
+    from shardtrain.plan.schemes import scheme_of
+    scheme = scheme_of(settings)
     plans = []
     for method in methods:
         for k in workers_list:
             plan = survey_plan(graph, method, k, hops=hops, itemsize=itemsize,
                                seed=settings.seed, imbalance=settings.imbalance,
-                               assignment=assignment, bias=settings.bias)
+                               assignment=assignment, bias=settings.bias,
+                               scheme=scheme, epochs=settings.epochs)
             plans.append(plan)
             if on_plan is not None:
                 on_plan(plan)
@@ -523,6 +573,18 @@ def survey_document(num_vertices: int, num_edges: int, structure: str,
                             "backward_width": h.backward_width,
                             **({} if h.model == "gcn" else
                                {"model": h.model, "heads": h.heads, "inner": h.inner})}
-                           for h in hops]},
+                           for h in hops]}
+        | _scheme_entry(settings),
         "plans": plans,
     }
+
+
+def _scheme_entry(settings) -> dict:
+    """{"halo_scheme": {...}} of the model entry when a halo scheme is on, else {}."""
+    from shardtrain.plan.schemes import scheme_of
+
+    scheme = scheme_of(settings)
+    if scheme.exact(np.dtype(settings.dtype)):
+        return {}
+    return {"halo_scheme": {**scheme.to_dict(), "epochs": int(settings.epochs),
+                            "seed": int(settings.seed)}}

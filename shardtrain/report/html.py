@@ -15,7 +15,7 @@ from typing import Any, Callable
 from shardtrain.errors import InputError
 from shardtrain.units import human_bytes, human_seconds
 
-KINDS = ("survey", "run", "forecast")
+KINDS = ("survey", "run", "forecast", "sweep")
 
 CSS = """
 body { font: 15px/1.45 Georgia, 'DejaVu Serif', serif; color: #1d2330; background: #fbfaf7;
@@ -181,7 +181,15 @@ CAPTIONS = {
                            "panel per link speed, one line per partition method.",
     "forecast_worker_times": "Forecast split of one training epoch of the fastest plan, per "
                              "worker.",
+    "drift": "Payload per training epoch of the updated plan (vertices kept on their "
+             "workers, new ones placed by the Fennel score) and of a fresh partition of each "
+             "week's network by the same method; labels: the updated plan's excess.",
 }
+
+
+def figures_html(paths: list[str]) -> str:
+    """The pictures as embedded <figure>s with their captions (`CAPTIONS` by file stem)."""
+    return _figures(paths)
 
 
 def _figures(paths: list[str]) -> str:
@@ -305,9 +313,79 @@ def run_section(doc: dict, plot_dir: Path) -> str:
     return "".join(out)
 
 
+def _money(v) -> str:
+    return "-" if v is None else f"{v:.4g}"
+
+
+def forecast_specs_section(doc: dict, plot_dir: Path) -> str:
+    """A forecast on described workers (`forecast --worker-spec`): the answer first (per
+    worker kind the fewest workers meeting the target and its price; the cheapest plan
+    meeting it), then every plan with its memory fit and price."""
+    from shardtrain.report.plots import forecast_plots
+
+    target = doc.get("target_epoch_s")
+    facts = [("worker specs", doc.get("worker_spec_file")),
+             ("target epoch", human_seconds(target) if target else None),
+             ("receiver contention", "modelled" if doc.get("receiver_contention") else None)]
+    answer: list[tuple[str, object]] = []
+    for s in doc.get("per_spec", []):
+        m = s.get("fewest_meeting_target") if target else s.get("fastest")
+        if s.get("plans_fitting_memory") == 0:
+            text = "no plan fits in its memory"
+        elif m is None:
+            text = f"no plan meets {human_seconds(target)}"
+        else:
+            text = (f"{m['workers']} workers ({m['method']}), {human_seconds(m['epoch_s'])}"
+                    f" per epoch" + ("" if m.get("price_per_epoch") is None else
+                                     f", {_money(m['price_per_epoch'])} per epoch, "
+                                     f"{_money(m['price_per_100_epochs'])} per 100 epochs"))
+        answer.append((f"{s['spec']}: " + ("fewest meeting target" if target else "fastest"),
+                       text))
+    c = doc.get("cheapest_meeting_target")
+    if target:
+        answer.append(("cheapest meeting target",
+                       f"{c['workers']} x {c['spec']} ({c['method']}), "
+                       f"{human_seconds(c['epoch_s'])}, {_money(c['price_per_epoch'])} per "
+                       f"epoch, {_money(c['price_per_100_epochs'])} per 100 epochs"
+                       if c else "none (no plan meets it, or no price given)"))
+    rows = []
+    for p in doc["plans"]:
+        marks = []
+        if p.get("fits_memory") is False:
+            marks.append("does not fit in memory")
+        for key, word in (("fastest", "fastest"), ("fewest_meeting_target",
+                                                   "fewest meeting target"),
+                          ("cheapest_meeting_target", "cheapest meeting target")):
+            if p.get(key):
+                marks.append(word)
+        mem = p.get("memory_bytes")
+        rows.append(dict(p, mark=", ".join(m for m in marks),
+                         marked=bool(marks) and p.get("fits_memory") is not False,
+                         memory="-" if mem is None else
+                         f"{human_bytes(mem)} of {human_bytes(p['memory_limit_bytes'])}",
+                         price=_money(p.get("price_per_epoch")),
+                         price_100=_money(p.get("price_per_100_epochs"))))
+    cols = [("spec", "worker", None), ("method", "method", None),
+            ("workers", "workers", _fmt_int), ("epoch_s", "epoch", human_seconds),
+            ("compute_s", "compute", human_seconds), ("exchange_s", "exchange", human_seconds),
+            ("allreduce_s", "all-reduce", human_seconds), ("memory", "memory/worker", None),
+            ("price", "price/epoch", None), ("price_100", "per 100 epochs", None),
+            ("mark", "", None)]
+    return (_facts(facts) + "<h3>The answer</h3>" + _facts(answer)
+            + '<p class="note">Compute: each kernel on the worker\'s roofline, max(bytes / '
+              "achieved bandwidth, flops / achieved flop rate) + a per-call cost, the "
+              "efficiencies calibrated on the machine that ran the forecast. A hop: the "
+              "slowest worker's latency + max(bytes sent, bytes received) x 8 / bandwidth. "
+              "A plan whose predicted peak memory per worker exceeds the worker's memory "
+              "(its accelerator's, when it has one) is never chosen.</p>"
+            + _table(rows, cols, mark_key="marked") + _figures(forecast_plots(doc, plot_dir)))
+
+
 def forecast_section(doc: dict, plot_dir: Path) -> str:
     from shardtrain.report.plots import forecast_plots
 
+    if doc.get("per_spec") is not None:
+        return forecast_specs_section(doc, plot_dir)
     rows = []
     for p in doc["plans"]:
         marks = []
@@ -346,10 +424,44 @@ def forecast_section(doc: dict, plot_dir: Path) -> str:
             + _table(rows, cols, mark_key="marked") + _figures(forecast_plots(doc, plot_dir)))
 
 
+def sweep_section(doc: dict, plot_dir: Path) -> str:
+    """A `shardtrain sweep`'s rows: each halo scheme against the exact one."""
+    from shardtrain.report.plots import scheme_label, sweep_plots
+
+    def points(v):
+        return "" if v is None else f"{v:+.1f}"
+
+    def ratio(v):
+        return "" if v is None else f"{v:.3f}"
+
+    rows = [dict(r, label=scheme_label(r["scheme"]),
+                 payload_ratio=ratio(r.get("halo_payload_ratio")),
+                 time_ratio=ratio(r.get("epoch_s_ratio")),
+                 final_points=points(r.get("final_test_acc_points")),
+                 best_points=points(r.get("test_acc_at_best_val_points")))
+            for r in doc["rows"]]
+    cols = [("label", "scheme", None), ("halo_payload_per_epoch", "halo/epoch", human_bytes),
+            ("payload_ratio", "x exact", None), ("epoch_s", "epoch", human_seconds),
+            ("time_ratio", "x exact", None),
+            ("final_test_acc", "test acc", lambda v: "" if v is None else f"{v:.3f}"),
+            ("final_points", "points", None),
+            ("test_acc_at_best_val", "test @ best val",
+             lambda v: "" if v is None else f"{v:.3f}"), ("best_points", "points", None)]
+    facts = [("workers", doc.get("workers")), ("method", doc.get("method")),
+             ("epochs", doc.get("epochs")), ("emulated link", doc.get("emulated_link"))]
+    return (_facts(facts)
+            + '<p class="note">Each halo scheme trained in turn; halo payload: the measured '
+              "training exchanges (forward and backward) per epoch, equal to the survey's "
+              "prediction; epoch: the median measured training step; accuracy points "
+              "against the exact scheme.</p>"
+            + _table(rows, cols) + _figures(sweep_plots(doc, plot_dir)))
+
+
 SECTIONS: dict[str, tuple[str, Callable[..., str]]] = {   # survey's takes the plan too
     "survey": ("Survey of partition plans", survey_section),
     "run": ("Training run", run_section),
-    "forecast": ("Forecast", forecast_section)}
+    "forecast": ("Forecast", forecast_section),
+    "sweep": ("Halo schemes compared", sweep_section)}
 
 
 def run_plan(documents: list[tuple[str, str, dict]]) -> dict | None:

@@ -333,7 +333,12 @@ def forecast_plots(forecast: dict, out_dir) -> list[str]:
     paths: list[str] = []
     if not plans:
         return paths
-    links = sorted({p["link_gbps"] for p in plans})
+    # one panel per link speed; per described worker kind when the forecast has them
+    def panel(p):
+        return p.get("spec") or p["link_gbps"]
+
+    links = list(dict.fromkeys(panel(p) for p in plans)) if plans[0].get("spec") \
+        else sorted({p["link_gbps"] for p in plans})
     methods = list(dict.fromkeys(p["method"] for p in plans))
     styles = method_styles(methods)
     n = len(links)
@@ -347,16 +352,16 @@ def forecast_plots(forecast: dict, out_dir) -> list[str]:
     for i, g in enumerate(links):
         ax = axes[i // cols][i % cols]
         for m in methods:
-            ps = sorted((p for p in plans if p["link_gbps"] == g and p["method"] == m),
+            ps = sorted((p for p in plans if panel(p) == g and p["method"] == m),
                         key=lambda p: p["workers"])
             if ps:
                 ax.plot([p["workers"] for p in ps], [p["epoch_s"] for p in ps], label=m,
                         **styles[m])
         for p in plans:
-            if p["link_gbps"] == g and p.get("fastest"):
+            if panel(p) == g and p.get("fastest"):
                 ax.plot(p["workers"], p["epoch_s"], marker="*", markersize=16, color="gold",
                         markeredgecolor="black", linestyle="none", label="fastest")
-            if p["link_gbps"] == g and p.get("fewest_meeting_target"):
+            if panel(p) == g and p.get("fewest_meeting_target"):
                 ax.plot(p["workers"], p["epoch_s"], marker="D", markersize=11,
                         markerfacecolor="none", markeredgecolor="crimson",
                         markeredgewidth=2, linestyle="none",
@@ -368,7 +373,7 @@ def forecast_plots(forecast: dict, out_dir) -> list[str]:
         ax.set_ylim(lo / 1.5, max(hi, target or 0) * 1.5)
         _log_seconds_axis(ax.yaxis)
         _workers_axis(ax, [p["workers"] for p in plans])
-        ax.set_title(f"link {g:g} Gbit/s", fontsize=10)
+        ax.set_title(f"link {g:g} Gbit/s" if isinstance(g, float) else str(g), fontsize=10)
         ax.grid(True, which="major", alpha=0.3)
         if i % cols == 0:
             ax.set_ylabel("forecast time of one training epoch")
@@ -393,3 +398,77 @@ def forecast_plots(forecast: dict, out_dir) -> list[str]:
                                f"{fastest['workers']} workers, {fastest['link_gbps']:g} Gbit/s",
                                out_dir, "forecast_worker_times.png"))
     return paths
+
+
+def scheme_label(scheme: dict) -> str:
+    """'keep 0.1, int8' for a sweep row's scheme; 'exact' when every setting is default."""
+    parts = []
+    if scheme.get("halo_keep", 1.0) != 1.0:
+        parts.append(f"keep {scheme['halo_keep']:g}")
+    if scheme.get("halo_format") is not None:
+        parts.append(str(scheme["halo_format"]))
+    parts += [f"{k} {v}" for k, v in scheme.items() if k not in ("halo_keep", "halo_format")]
+    return ", ".join(parts) or "exact"
+
+
+def sweep_plots(doc: dict, out_dir) -> list[str]:
+    """A sweep's test accuracy against halo payload per epoch, and its epoch time against
+    halo payload per epoch: one point per scheme, labelled."""
+    Path(out_dir).mkdir(parents=True, exist_ok=True)
+    rows = doc["rows"]
+    paths: list[str] = []
+    if not rows:
+        return paths
+    x = [max(r["halo_payload_per_epoch"], 1.0) for r in rows]
+    for key, ylabel, name in (
+            ("final_test_acc", "final test accuracy", "sweep_accuracy.png"),
+            ("epoch_s", "measured time of one training epoch", "sweep_epoch_time.png")):
+        fig, ax = plt.subplots(figsize=(6.2, 4.2))
+        y = [np.nan if r[key] is None else r[key] for r in rows]
+        ax.scatter(x, y, color="#4c72b0", zorder=3)
+        for xi, yi, r in zip(x, y, rows):
+            ax.annotate(scheme_label(r["scheme"]), (xi, yi), textcoords="offset points",
+                        xytext=(5, 4), fontsize=8)
+        ax.set_xscale("log")
+        _log_bytes_axis(ax.xaxis)
+        if key == "epoch_s":
+            ax.set_yscale("log")
+            _log_seconds_axis(ax.yaxis)
+        ax.set_xlabel("measured halo payload per training epoch (forward + backward)")
+        ax.set_ylabel(ylabel)
+        ax.grid(True, which="major", alpha=0.3)
+        ax.set_title(f"halo schemes, {doc.get('workers')} workers, {doc.get('epochs')} "
+                     f"epochs", fontsize=10)
+        fig.tight_layout()
+        paths.append(_save(fig, out_dir, name))
+    return paths
+
+
+def drift_plot(weeks: list[dict], out_dir, name: str = "drift.png") -> str:
+    """Payload per training epoch of the updated plan and of a fresh partition of each
+    week's network (`update` reports, in week order), and the updated plan's excess."""
+    Path(out_dir).mkdir(parents=True, exist_ok=True)
+    x = [w["week"] for w in weeks]
+    fig, ax = plt.subplots(figsize=(5.2, 3.2))
+    ax.plot(x, [w["after"]["epoch_payload_bytes"] for w in weeks], marker="o",
+            label="updated plan")
+    fresh = [(w["week"], w["fresh"]["epoch_payload_bytes"]) for w in weeks if w.get("fresh")]
+    if fresh:
+        ax.plot([f[0] for f in fresh], [f[1] for f in fresh], marker="s", linestyle="--",
+                label="fresh partition")
+    for w in weeks:
+        if w.get("payload_excess_percent") is not None:
+            ax.annotate(f"{w['payload_excess_percent']:+.1f} %",
+                        (w["week"], w["after"]["epoch_payload_bytes"]),
+                        textcoords="offset points", xytext=(0, 7), ha="center", fontsize=8)
+    top = max(w["after"]["epoch_payload_bytes"] for w in weeks)
+    _linear_bytes_axis(ax.yaxis, top * 1.15)
+    ax.set_ylim(0, top * 1.15)
+    ax.xaxis.set_major_locator(MultipleLocator(1))
+    ax.set_xlabel("week")
+    ax.set_ylabel("payload per training epoch")
+    ax.set_title("drift of the plan as the network grows", fontsize=10)
+    ax.grid(True, alpha=0.3)
+    ax.legend(fontsize=8, loc="lower right")
+    fig.tight_layout()
+    return _save(fig, out_dir, name)

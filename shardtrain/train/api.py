@@ -23,6 +23,8 @@ write and print its outputs. Nothing here prints.
 from __future__ import annotations
 
 import math
+import sys
+import time
 from contextlib import ExitStack, nullcontext
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -39,7 +41,7 @@ from shardtrain.train.mpi_driver import JobStopped
 from shardtrain.train.settings import TrainSettings
 
 TRANSPORTS = ("pipes", "mpi")
-MODES = ("partitioned", "reference")
+MODES = ("partitioned", "reference", "single-process")
 MAX_TIMEOUT_S = 1e6          # poll(2) takes a C int of milliseconds: 2**31 ms is ~2.1e6 s
 MAX_SLOW_FACTOR = 1000.0     # a straggler's sleep must stay within what time.sleep takes
 MPI_STOP_TIMEOUT_S = 60.0    # how long rank 0 waits for the others to take a stop message
@@ -59,15 +61,21 @@ class RunConfig:
     source: a graph file (.npz, .mtx, edge list) or a shard directory; graph: an
     in-memory `Graph` instead of a file (source is then only its label in the run JSON).
     features, labels, input_dim: how to read a graph file (`readers.load_graph`).
-    mode: "partitioned" or "reference" (single-process; graph sources only).
+    mode: "partitioned", "reference" (single-process; graph sources only) or
+    "single-process" (graph sources only): one process computing exactly what the run
+    partitioned by workers/method or assignment computes under `settings`' halo scheme
+    (`single_process.SchemeProducts`; with every scheme off it is the reference).
     workers, method, assignment (a vertex -> worker file), imbalance: the partition of a
     graph source (a shard directory brings its own; `workers`, if given, must agree).
     checkpoint, checkpoint_every, resume: checkpoint folder, epochs between checkpoints
-    (default 10, or the resumed run's), a folder to resume from. init_weights: an .npz of
-    weights to start from. timeout_s: deadline of every receive; max_frame_bytes: the
-    largest halo/all-reduce frame accepted (None: 2 GiB); link: a `transport.link.LinkModel`
-    to emulate; slow_workers: {worker: factor >= 1} stragglers. The BLAS threads per
-    process are `settings.threads`.
+    (default 10, or the resumed run's), a folder to resume from. warm_start: a checkpoint
+    folder of a run on another graph (an older version of this one) to continue from: its
+    weights and Adam state, the epochs numbered on after its epoch (`settings.epochs` more
+    of them), early stopping started afresh; the model shape must be the same.
+    init_weights: an .npz of weights to start from. timeout_s: deadline of every receive;
+    max_frame_bytes: the largest halo/all-reduce frame accepted (None: 2 GiB); link: a
+    `transport.link.LinkModel` to emulate; slow_workers: {worker: factor >= 1} stragglers.
+    The BLAS threads per process are `settings.threads`.
     """
 
     source: str
@@ -84,6 +92,7 @@ class RunConfig:
     checkpoint: str | None = None
     checkpoint_every: int | None = None
     resume: str | None = None
+    warm_start: str | None = None
     init_weights: str | None = None
     timeout_s: float = defaults.TIMEOUT_S
     max_frame_bytes: int | None = None
@@ -93,6 +102,10 @@ class RunConfig:
     @property
     def reference(self) -> bool:
         return self.mode == "reference"
+
+    @property
+    def single_process(self) -> bool:
+        return self.mode == "single-process"
 
 
 @dataclass
@@ -151,6 +164,13 @@ def check_config(config: RunConfig, transport: str = defaults.TRANSPORT) -> bool
                              f"one with `shardtrain split`; every rank must see it at this "
                              f"path)", value="mpi")
     settings = config.settings.validate()
+    if config.single_process:
+        _check_single_process(config, transport)
+    if config.reference and not settings.scheme.exact(settings.np_dtype):
+        name = "halo_keep" if settings.scheme.sampled else "halo_format"
+        raise ParameterError(name, f"not available with {option('reference')} (no halo; "
+                                   f"{option('single_process')} with {option('workers')} "
+                                   f"computes a scheme's run in one process)")
     for name, top, why in LIMITS:
         value = getattr(settings if name == "epochs" else config, name)
         if value is not None and value > top:
@@ -167,7 +187,9 @@ def check_config(config: RunConfig, transport: str = defaults.TRANSPORT) -> bool
     if config.graph is None and not Path(config.source).exists():
         raise InputError(f"{config.source}: no such file or directory")
     if from_shards:
-        for name, given in (("reference", config.reference), ("method", config.method),
+        for name, given in (("reference", config.reference),
+                            ("single_process", config.single_process),
+                            ("method", config.method),
                             ("assignment", config.assignment),
                             ("features", config.features), ("labels", config.labels)):
             if given:
@@ -205,6 +227,19 @@ def check_config(config: RunConfig, transport: str = defaults.TRANSPORT) -> bool
     return from_shards
 
 
+def _check_single_process(config: RunConfig, transport: str) -> None:
+    """The single-process mode: pipes only, no checkpoints, links or stragglers."""
+    if transport == "mpi":
+        raise ParameterError("single_process", f"not available with {_MPI} (one process)")
+    for name, given in (("checkpoint", config.checkpoint), ("resume", config.resume),
+                        ("checkpoint_every", config.checkpoint_every),
+                        ("warm_start", config.warm_start),
+                        ("slow_workers", config.slow_workers),
+                        ("max_frame_bytes", config.max_frame_bytes), ("link", config.link)):
+        if given:
+            raise ParameterError(name, f"not available with {option('single_process')}")
+
+
 def _check_run_options(config: RunConfig, transport: str) -> None:
     """checkpoint, checkpoint_every, resume, slow_workers, max_frame_bytes."""
     extras = [name for name, given in (
@@ -229,6 +264,15 @@ def _check_run_options(config: RunConfig, transport: str) -> None:
     if config.resume and config.init_weights:
         raise ParameterError("init_weights", f"not allowed with {option('resume')} (the "
                              f"checkpoint holds the weights)")
+    if config.warm_start is not None:
+        if transport == "mpi":
+            raise ParameterError("warm_start", f"not available with {_MPI}")
+        for name, given in (("resume", config.resume), ("init_weights", config.init_weights)):
+            if given:
+                raise ParameterError(name, f"not allowed with {option('warm_start')} (the "
+                                           f"checkpoint holds the weights)")
+        if not Path(config.warm_start).is_dir():
+            raise ParameterError("warm_start", "no such folder", value=config.warm_start)
 
 
 def check_slow_range(slow: dict[int, float], workers: int) -> None:
@@ -256,6 +300,45 @@ def check_model_fits(dims, settings: TrainSettings) -> None:
         raise InputError(f"{option('hidden')} {settings.hidden} {option('layers')} "
                          f"{settings.layers}: the weights and optimiser state alone need "
                          f"{human_bytes(need)}, this machine has {human_bytes(have)}")
+
+
+def read_warm_start(folder, settings: TrainSettings):
+    """(the checkpoint in `folder` with its early-stopping state left out, the settings
+    with `epochs` counted on from its epoch)."""
+    import dataclasses
+
+    from shardtrain.train import checkpoint
+
+    ckpt = checkpoint.read_checkpoint(folder, param="warm_start")
+    total = ckpt.epoch + settings.epochs
+    top = dict((name, limit) for name, limit, _ in LIMITS)["epochs"]
+    if total > top:
+        raise ParameterError("epochs", f"the checkpoint in {folder} is at epoch {ckpt.epoch}: "
+                                       f"{ckpt.epoch} + {settings.epochs} is above {top:,}",
+                             value=settings.epochs)
+    return (dataclasses.replace(ckpt, early={}),
+            dataclasses.replace(settings, epochs=total))
+
+
+def check_warm_start(ckpt, dims, settings: TrainSettings) -> None:
+    """Refuse (one line naming warm_start) a checkpoint of another model shape: layers and
+    widths (feature width, hidden, classes), bias, or dtype."""
+    from shardtrain.train import model
+
+    theirs = [list(map(int, d)) for d in ckpt.doc["dims"]]
+    mine = [list(map(int, d)) for d in dims]
+    if theirs != mine:
+        raise ParameterError("warm_start", f"the checkpoint's model has layers {theirs}, this "
+                                           f"run's has {mine} (another feature width, hidden "
+                                           f"width, layer count or class count)",
+                             value=ckpt.folder)
+    their_dtype = ckpt.doc["settings"].get("dtype")
+    if their_dtype != settings.dtype:
+        raise ParameterError("warm_start", f"the checkpoint was trained in {their_dtype}, this "
+                                           f"run asks for {settings.dtype}",
+                             value=ckpt.folder)
+    model.params_from_arrays(ckpt.params, dims, settings.bias, settings.np_dtype,
+                             source=f"{option('warm_start')} {ckpt.folder}")
 
 
 def load_init_weights(path, dims, settings: TrainSettings):
@@ -342,6 +425,10 @@ def _run_pipes(config, transport, sess, on_epoch, on_ready, check, deliver) -> R
                                      config.resume)
     settings = config.settings
     done = ckpts.resumed.epoch if ckpts.resumed is not None else 0
+    warm = None
+    if config.warm_start is not None:
+        warm, settings = read_warm_start(config.warm_start, settings)
+        done = warm.epoch
     with ExitStack() as stack:
         labels = None
         graph = None
@@ -363,6 +450,8 @@ def _run_pipes(config, transport, sess, on_epoch, on_ready, check, deliver) -> R
             ensure_descriptors(facts.workers)
             dims = model_dims_of(facts, settings)
             check_model_fits(dims, settings)
+            if warm is not None:
+                check_warm_start(warm, dims, settings)
             init = (load_init_weights(config.init_weights, dims, settings)
                     if config.init_weights else None)
             graph_doc = rundoc.graph_of_shards(config.source, facts)
@@ -387,6 +476,8 @@ def _run_pipes(config, transport, sess, on_epoch, on_ready, check, deliver) -> R
             check_early_stop(graph, settings)
             dims = model_dims(graph, settings)
             check_model_fits(dims, settings)
+            if warm is not None:
+                check_warm_start(warm, dims, settings)
             init = (load_init_weights(config.init_weights, dims, settings)
                     if config.init_weights else None)
             assignment = None
@@ -401,12 +492,19 @@ def _run_pipes(config, transport, sess, on_epoch, on_ready, check, deliver) -> R
             elif not config.reference:
                 from shardtrain.plan.partition import check_workers
                 check_workers(workers, graph.num_vertices)
+            if config.single_process and assignment is None:
+                from shardtrain.plan.partition import partition_plan
+
+                sess.phase = "partitioning"        # as session.build_shard_dir does
+                assert workers is not None and config.method is not None
+                assignment, _ = partition_plan(graph, config.method, workers,
+                                               seed=settings.seed, imbalance=config.imbalance)
             if on_ready is not None:
                 on_ready(Ready(settings.epochs, done, graph=graph))
             labels = graph.labels
             graph_fp = fingerprint(graph)
             shard_dir = None
-            if not config.reference:
+            if not (config.reference or config.single_process):
                 from shardtrain.train.processes import ensure_descriptors
 
                 assert workers is not None      # checked above or set by the assignment
@@ -416,7 +514,7 @@ def _run_pipes(config, transport, sess, on_epoch, on_ready, check, deliver) -> R
                                         assignment=assignment, seed=settings.seed,
                                         imbalance=config.imbalance, dims=dims,
                                         shard_dir=shard_dir)
-        if not config.reference:
+        if not (config.reference or config.single_process):
             from shardtrain.train.accounting import shard_dir_facts
 
             workers = shard_dir_facts(shard_dir).workers
@@ -429,13 +527,18 @@ def _run_pipes(config, transport, sess, on_epoch, on_ready, check, deliver) -> R
         pause_point("training")
         if config.reference:
             result = session.train_reference_checkpointed(graph, settings, init, schedule,
-                                                          ckpts.resumed, on_epoch)
+                                                          ckpts.resumed or warm, on_epoch)
+        elif config.single_process:
+            from shardtrain.train.single_process import train_single_process
+            assert graph is not None and assignment is not None   # a graph source, split
+            result = train_single_process(graph, settings, assignment, init_params=init,
+                                          on_epoch=on_epoch)
         else:
             from shardtrain.train.coordinator import train_partitioned
             result = train_partitioned(shard_dir, settings, timeout_s=config.timeout_s,
                                        init_params=init, on_epoch=on_epoch,
                                        max_frame_bytes=config.max_frame_bytes,
-                                       checkpoint=schedule, resume=ckpts.resumed,
+                                       checkpoint=schedule, resume=ckpts.resumed or warm,
                                        slow=dict(config.slow_workers), link=config.link)
             if labels is None:
                 labels = result.labels
@@ -444,6 +547,10 @@ def _run_pipes(config, transport, sess, on_epoch, on_ready, check, deliver) -> R
     if ckpts.resumed is not None:
         extra["resumed_from"] = {"folder": str(config.resume),
                                  "epoch": ckpts.resumed.epoch}
+    if warm is not None:
+        extra["warm_start"] = {"folder": str(config.warm_start), "epoch": warm.epoch,
+                               "graph_fingerprint": warm.doc.get("graph_fingerprint"),
+                               "shards_fingerprint": warm.doc.get("shards_fingerprint")}
     if schedule is not None:
         extra["checkpoint"] = {"folder": schedule["folder"], "every": schedule["every"]}
     if config.slow_workers:
@@ -451,7 +558,7 @@ def _run_pipes(config, transport, sess, on_epoch, on_ready, check, deliver) -> R
     if config.link is not None:
         extra["emulated_link"] = {"gbps": config.link.gbps,
                                   "latency_us": config.link.latency_us}
-    mode = "reference" if config.reference else "partitioned"
+    mode = config.mode
     doc = rundoc.run_document(settings, graph_doc, result, mode=mode, **extra)
     outcome = RunOutcome(result, doc, labels, mode, transport)
     if deliver is not None:
@@ -531,8 +638,18 @@ def mpi_rank_and_size() -> tuple[int, int]:
     return comm.Get_rank(), comm.Get_size()
 
 
+# The launcher forwards a rank's stderr on its own schedule and Abort ends the forwarder too.
+MPI_ABORT_GRACE_S = 0.5
+
+
 def abort_mpi_job(code: int) -> None:
-    """End every rank of the MPI job with exit status `code` (after reporting the error)."""
+    """End every rank of the MPI job with exit status `code` (after reporting the error).
+
+    The error line has been written and flushed; the pause lets the launcher pass it on
+    before the job is torn down (without it the line was sometimes lost).
+    """
     from shardtrain.train import mpi_driver
 
+    sys.stderr.flush()
+    time.sleep(MPI_ABORT_GRACE_S)
     mpi_driver.abort_job(mpi_driver.world(), code)

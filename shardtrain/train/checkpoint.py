@@ -46,8 +46,10 @@ INDEX = "checkpoint.json"
 _STATE_RE = re.compile(r"state-\d{6}\.npz")
 # settings a resume may change: how long the run goes on, how many BLAS threads it uses
 _FREE_SETTINGS = ("epochs", "threads")
-# settings older checkpoints do not record (what they trained with: GCN, where heads is moot)
-_ABSENT_MEANS = {"early_stop": 0, "model": defaults.MODEL, "heads": defaults.HEADS}
+# settings older checkpoints do not record (what they trained with: GCN, where heads is moot;
+# every halo row, exact)
+_ABSENT_MEANS = {"early_stop": 0, "model": defaults.MODEL, "heads": defaults.HEADS,
+                 "halo_keep": 1.0, "halo_format": None}
 
 
 def state_file_name(epoch: int) -> str:

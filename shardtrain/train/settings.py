@@ -17,6 +17,7 @@ import numpy as np
 from shardtrain import defaults
 from shardtrain.errors import InputError, ParameterError
 from shardtrain.plan.schedule import MAX_HEADS, MODELS, LayerHop, layer_dims, model_hops
+from shardtrain.plan.schemes import HaloScheme, scheme_of
 
 DTYPES = ("float32", "float64")
 
@@ -36,6 +37,8 @@ class TrainSettings:
     threads: int = defaults.THREADS
     model: str = defaults.MODEL
     heads: int = defaults.HEADS
+    halo_keep: float = defaults.HALO_KEEP          # plan.schemes.HaloScheme
+    halo_format: str | None = defaults.HALO_FORMAT
 
     def validate(self) -> "TrainSettings":
         """Raise a ParameterError naming the first bad setting (the CLI names its option)."""
@@ -64,6 +67,7 @@ class TrainSettings:
         need(self.model in MODELS, "model", "one of " + ", ".join(MODELS), self.model)
         need(_is_int(self.heads) and 1 <= self.heads <= MAX_HEADS, "heads",
              f"an integer in 1..{MAX_HEADS}", self.heads)
+        scheme_of(self)
         return self
 
     def hops(self, dims: list[tuple[int, int]]) -> list[LayerHop]:
@@ -74,6 +78,11 @@ class TrainSettings:
         """(d_in, d_out) per layer of this model (GAT: d_out per head)."""
         return layer_dims(int(input_dim), self.hidden, int(classes), self.layers,
                           model=self.model, heads=self.heads)
+
+    @property
+    def scheme(self) -> HaloScheme:
+        """The halo scheme of the training exchanges (`plan.schemes`)."""
+        return HaloScheme(self.halo_keep, self.halo_format)
 
     @property
     def np_dtype(self) -> np.dtype:

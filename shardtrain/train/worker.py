@@ -16,7 +16,7 @@ from typing import Callable
 import numpy as np
 
 from shardtrain.errors import ParameterError
-from shardtrain.plan import schedule
+from shardtrain.plan import schedule, schemes
 from shardtrain.train import model, stopping
 from shardtrain.train.halo import EVAL, FORWARD, HaloOps
 from shardtrain.train.models.common import local_graph, operator_matrix
@@ -121,11 +121,13 @@ def run_worker(shard, settings: TrainSettings, transport: Transport, profile,
         else np.zeros(shard.num_owned, dtype=bool)
     local = None
     if settings.model == "gcn":
-        ops = HaloOps(shard, transport, profile, dtype)
+        ops = HaloOps(shard, transport, profile, dtype, scheme=settings.scheme,
+                      seed=settings.seed)
     else:
         with profile.phase("compute"):
             operator = operator_matrix(settings.model, shard.adj)
-        ops = HaloOps(shard, transport, profile, dtype, adj=operator)
+        ops = HaloOps(shard, transport, profile, dtype, scheme=settings.scheme,
+                      seed=settings.seed, adj=operator)
     ops.on_phase = on_phase
     propagate_train, propagate_eval = ops.propagate(FORWARD), ops.propagate(EVAL)
     propagate_t = ops.propagate_t
@@ -218,6 +220,9 @@ def run_worker(shard, settings: TrainSettings, transport: Transport, profile,
         "send_ptr": [int(v) for v in shard.send_ptr],
         "halo_ptr": [int(v) for v in shard.halo_ptr],
         "epochs_run": epochs_run,
+        "halo_kept": schemes.worker_kept_rows(
+            shard.halo, shard.halo_ptr, shard.worker, settings.scheme, settings.seed,
+            range(epochs.start, epochs.start + epochs_run)).tolist(),
         "extra_evals": extra_evals,
         "early_stop": None if early is None else early.summary(),
     }

@@ -15,7 +15,9 @@ Two uses, chosen at construction:
 Either way the arguments are checked as the other transports check them (peers in range and
 not `rank`, sendable dtypes, writeable C-contiguous receive buffers), so a worker that runs
 on this transport calls the others correctly too. No call ever waits, so there is no
-deadline to miss and no peer that can die.
+deadline to miss and no peer that can die. `exchange_start` does the whole exchange at once
+and returns a handle that is already done (nothing is in flight, so nothing is hidden);
+its `wait()` raises RunError only when the transport was closed before it.
 """
 from __future__ import annotations
 
@@ -23,9 +25,35 @@ from collections.abc import Mapping
 
 import numpy as np
 
+from shardtrain.errors import RunError
 from shardtrain.transport import frames
 from shardtrain.transport.meter import Profile
 from shardtrain.transport.wire import check_receive_buffer
+
+
+class LoopbackHandle:
+    """A started exchange of a loopback transport: done from the start."""
+
+    def __init__(self, transport: LoopbackTransport, key: tuple):
+        self._transport, self._key = transport, key
+        self._waited = False
+
+    def done(self) -> bool:
+        return True
+
+    def wait(self) -> None:
+        if self._waited:
+            return
+        self._waited = True
+        if self._key not in self._transport._outstanding:
+            what = frames.describe(dict(zip(_KEY, self._key)))
+            raise RunError(f"worker {self._transport.rank}: the transport was closed with an "
+                           f"exchange outstanding ({what})")
+        self._transport._outstanding.discard(self._key)
+        self._transport.profile.add_overlap(0.0, 0.0)
+
+
+_KEY = ("kind", "epoch", "layer", "direction")
 
 
 class LoopbackTransport:
@@ -41,6 +69,7 @@ class LoopbackTransport:
         self.rank, self.size = int(rank), int(size)
         self.profile = profile if profile is not None else Profile(self.rank)
         self.absent_peers = bool(absent_peers)
+        self._outstanding: set[tuple] = set()
 
     def exchange(self, outgoing: Mapping[int, np.ndarray], incoming: Mapping[int, np.ndarray],
                  *, kind: str, epoch: int, layer: int, direction: str) -> None:
@@ -56,6 +85,19 @@ class LoopbackTransport:
         for dest in incoming.values():
             dest[...] = 0
 
+    def exchange_start(self, outgoing: Mapping[int, np.ndarray],
+                       incoming: Mapping[int, np.ndarray], *, kind: str, epoch: int,
+                       layer: int, direction: str) -> LoopbackHandle:
+        """`exchange`, done at once; the handle's `wait()` only closes the bookkeeping."""
+        key = (str(kind), int(epoch), int(layer), str(direction))
+        if key in self._outstanding:
+            raise ValueError(f"worker {self.rank} already has an exchange "
+                             f"({frames.describe(dict(zip(_KEY, key)))}) outstanding")
+        self.exchange(outgoing, incoming, kind=kind, epoch=epoch, layer=layer,
+                      direction=direction)
+        self._outstanding.add(key)
+        return LoopbackHandle(self, key)
+
     def allreduce_sum(self, buf: np.ndarray, *, epoch: int) -> None:
         """The sum over this rank alone: `buf` is left as it is."""
         if buf.ndim != 1 or not buf.flags.c_contiguous or not buf.flags.writeable:
@@ -63,4 +105,5 @@ class LoopbackTransport:
         frames.dtype_name(buf.dtype)
 
     def close(self) -> None:
-        """Nothing to release."""
+        """Nothing to release; handles not yet waited for will raise RunError."""
+        self._outstanding.clear()

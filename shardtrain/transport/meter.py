@@ -12,6 +12,17 @@ transport spends blocked with nothing to read or write is reported through `add_
 moved out of the phase it happened in into "wait", so compute + exchange + allreduce + wait
 add up to the wall time spent inside phases.
 
+Overlap: an exchange started with `exchange_start` and waited for later reports, through
+`add_overlap`, its time in flight (from the start to the moment its last byte had moved,
+as far as the transport saw it) and the time the caller spent blocked in its `wait()`.
+What it was in flight and the caller was not blocked is HIDDEN exchange time: compute (or
+anything else) ran meanwhile. `to_dict()["overlap"]` sums them over the handles:
+{"handles", "in_flight_s", "blocked_s", "hidden_s"} with, per handle,
+hidden = max(in_flight - blocked, 0). A blocking `exchange` adds nothing here (nothing of it
+is hidden). The blocked time is also in "wait" (see above), except the part the emulated
+link still held the handle's own sends back, which stays in the enclosing phase as it does
+for a blocking exchange (see `link.py`).
+
 Why process_time and not thread_time: process_time counts every thread of the worker
 (BLAS threads if they were not pinned, logging helpers), which is what the worker would cost
 on a machine of its own; the transport itself is single-threaded, so nothing is hidden by
@@ -38,6 +49,7 @@ class Profile:
         self._cpu: dict[str, float] = {}
         self._wait = 0.0
         self._stack: list[list] = []               # [name, wall_start, cpu_start, wait_inside]
+        self._overlap = [0, 0.0, 0.0, 0.0]          # handles, in flight, blocked, hidden
 
     # -- bytes -------------------------------------------------------------------------
     def count(self, src: int, dst: int, kind: str, layer: int, direction: str,
@@ -84,6 +96,16 @@ class Profile:
         else:
             self._wait += seconds
 
+    def add_overlap(self, in_flight_s: float, blocked_s: float) -> None:
+        """One started exchange: its seconds in flight, and those its caller was blocked in
+        `wait()`; the difference (not below 0) is hidden exchange time."""
+        in_flight, blocked = max(float(in_flight_s), 0.0), max(float(blocked_s), 0.0)
+        ov = self._overlap
+        ov[0] += 1
+        ov[1] += in_flight
+        ov[2] += blocked
+        ov[3] += max(in_flight - blocked, 0.0)
+
     # -- output ------------------------------------------------------------------------
     def to_dict(self) -> dict:
         """A msgpack/JSON-friendly snapshot (open phases are not included until they end)."""
@@ -94,8 +116,11 @@ class Profile:
                        if r["dst"] == self.rank)
         phases = {name: {"wall_s": self._wall[name], "cpu_s": self._cpu[name]}
                   for name in sorted(self._wall)}
+        handles, in_flight, blocked, hidden = self._overlap
+        overlap = {"handles": handles, "in_flight_s": in_flight, "blocked_s": blocked,
+                   "hidden_s": hidden}
         return {"rank": self.rank, "phases": phases, "wait_s": self._wait, "bytes": rows,
-                "bytes_sent": sent, "bytes_received": received}
+                "bytes_sent": sent, "bytes_received": received, "overlap": overlap}
 
 
 def merge(dicts: Iterable[dict]) -> dict:
@@ -110,7 +135,7 @@ def merge(dicts: Iterable[dict]) -> dict:
     "pair_payload_bytes": k x k list (row = src, column = dst),
     "by_layer_direction": [{kind, layer, direction, payload_bytes, framing_bytes, frames}],
     "per_worker": [{"rank", "compute_s", "exchange_s", "allreduce_s", "wait_s", "cpu_s",
-                    "bytes_sent", "bytes_received", "phases"}],
+                    "hidden_exchange_s", "bytes_sent", "bytes_received", "phases"}],
     "consistent": bool, "mismatches": [...]}.
     """
     dicts = sorted(dicts, key=lambda d: d["rank"])
@@ -156,6 +181,7 @@ def merge(dicts: Iterable[dict]) -> dict:
             "allreduce_s": ph.get("allreduce", {}).get("wall_s", 0.0),
             "wait_s": d["wait_s"],
             "cpu_s": sum(p["cpu_s"] for p in ph.values()),
+            "hidden_exchange_s": d.get("overlap", {}).get("hidden_s", 0.0),
             "bytes_sent": d["bytes_sent"],
             "bytes_received": d["bytes_received"],
             "phases": ph,

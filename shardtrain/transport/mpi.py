@@ -32,6 +32,16 @@ what is counted. MPI's all-reduce is not promised to give identical bits on ever
 MPICH's algorithms for a commutative sum do (tests check it for 2 and 3 ranks); "ring"
 guarantees it by construction.
 
+Started exchanges (`exchange_start`): the same Irecv/Isend requests are posted at once and
+the handle keeps them; `handle.wait()` is the wait above (same deadline, same checks and
+counts), `handle.done()` one Testsome over them. MPI matches messages of the same source
+and tag in the order they were posted, so frames stay apart as long as every rank starts
+and calls in the same order (the contract). Overlap: small messages travel eagerly when
+posted; a large one may move only while the library is entered (MPICH has no progress
+thread unless MPIR_CVAR_ASYNC_PROGRESS=1 is set for the job), so a caller that wants the
+bytes to move during a long compute calls `done()` now and then; the handle's time in flight
+is measured to the test that saw it complete.
+
 Wait time: the time spent waiting for requests to complete, which with MPI includes the
 copying itself (MPI moves data inside the wait). MPICH's progress engine spins while it
 waits, so the spinning part of a wait counts as CPU time too.
@@ -55,6 +65,7 @@ from shardtrain.transport.wire import (
     check_frame_size,
     check_receive_buffer,
     name_workers,
+    outgoing_guard,
     wire_array,
 )
 
@@ -69,6 +80,43 @@ NAP_MAX_S = 1e-3       # ... up to this (the worst added latency once data arriv
 def _mpi():
     from mpi4py import MPI  # imported late: the pipes path must not need mpi4py
     return MPI
+
+
+class _MpiOp:
+    """One posted exchange: its requests, their statuses so far, the buffers they use."""
+
+    def __init__(self, meta, incoming, heads, prepared, sent, reqs, owners):
+        self.meta, self.incoming, self.heads = meta, incoming, heads
+        self.prepared, self.sent = prepared, sent       # `prepared` keeps the buffers alive
+        self.reqs, self.owners = reqs, owners
+        self.statuses: list = [None] * len(reqs)
+        self.key = tuple(meta[k] for k in ("kind", "epoch", "layer", "direction"))
+        self.started = time.perf_counter()
+        self.finished: float | None = None if reqs else self.started
+        self.closed = False
+
+
+class MpiHandle:
+    """A started exchange of an `MpiTransport` (see `base.ExchangeHandle`)."""
+
+    def __init__(self, transport: MpiTransport, op: _MpiOp):
+        self._transport, self._op = transport, op
+        self._waited = False
+        self._guard = outgoing_guard({q: a for q, a, _h in op.prepared}, op.meta)
+
+    def done(self) -> bool:
+        """One test of the requests (this also lets MPI move the data)."""
+        return self._transport._test(self._op)
+
+    def wait(self) -> None:
+        """Wait with the transport's deadline, check the frames, count them."""
+        if self._waited:
+            return
+        self._waited = True
+        guard, self._guard = self._guard, None
+        self._transport._complete(self._op, started=True)
+        if guard is not None:
+            guard()
 
 
 class MpiTransport:
@@ -87,6 +135,7 @@ class MpiTransport:
         self.timeout_s = float(timeout_s)
         self.max_frame_bytes = int(max_frame_bytes)
         self.allreduce = allreduce
+        self._ops: list[_MpiOp] = []        # started and not yet waited for
 
     # -- public API --------------------------------------------------------------------
     def exchange(self, outgoing: Mapping[int, np.ndarray], incoming: Mapping[int, np.ndarray],
@@ -95,6 +144,21 @@ class MpiTransport:
         meta = {"kind": kind, "epoch": int(epoch), "layer": int(layer), "direction": direction}
         self._transfer({q: outgoing[q] for q in sorted(outgoing)},
                        {q: incoming[q] for q in sorted(incoming)}, meta)
+
+    def exchange_start(self, outgoing: Mapping[int, np.ndarray],
+                       incoming: Mapping[int, np.ndarray], *, kind: str, epoch: int,
+                       layer: int, direction: str) -> MpiHandle:
+        """Post the exchange's requests and return; `outgoing` arrays are sent in place:
+        do not modify them before `wait()` returns."""
+        meta = {"kind": kind, "epoch": int(epoch), "layer": int(layer), "direction": direction}
+        key = (meta["kind"], meta["epoch"], meta["layer"], meta["direction"])
+        if any(op.key == key for op in self._ops):
+            raise ValueError(f"rank {self.rank} already has an exchange "
+                             f"({frames.describe(meta)}) outstanding")
+        op = self._post({q: outgoing[q] for q in sorted(outgoing)},
+                        {q: incoming[q] for q in sorted(incoming)}, meta)
+        self._ops.append(op)
+        return MpiHandle(self, op)
 
     def allreduce_sum(self, buf: np.ndarray, *, epoch: int) -> None:
         """Sum the 1-D contiguous `buf` over all ranks in place."""
@@ -120,7 +184,20 @@ class MpiTransport:
         self.comm.Abort(code)
 
     def close(self) -> None:
-        """Nothing to release: the communicator belongs to the caller."""
+        """Nothing to release (the communicator belongs to the caller); a handle not yet
+        waited for raises RunError from its `wait()` (its requests are left to MPI)."""
+        for op in self._ops:
+            op.closed = True
+            n_recv = 2 * len(op.incoming)          # receives never matched would keep
+            pending = [r for r, st in zip(op.reqs[:n_recv], op.statuses) if st is None]
+            for req in pending:                    # the job from finishing: cancel them
+                try:
+                    req.Cancel()
+                except self.MPI.Exception:
+                    pass
+            if pending:
+                self.MPI.Request.Waitall(pending)
+        self._ops.clear()
 
     # -- internals ---------------------------------------------------------------------
     def _count_ring(self, buf: np.ndarray, epoch: int) -> None:
@@ -136,6 +213,9 @@ class MpiTransport:
                                    framing)
 
     def _transfer(self, outgoing: dict, incoming: dict, meta: dict) -> None:
+        self._complete(self._post(outgoing, incoming, meta), started=False)
+
+    def _post(self, outgoing: dict, incoming: dict, meta: dict) -> _MpiOp:
         MPI = self.MPI
         for q in (*outgoing, *incoming):
             if not 0 <= q < self.size or q == self.rank:
@@ -164,9 +244,40 @@ class MpiTransport:
                                              tag=TAG_PAYLOAD))
             owners += [q, q]
             sent.append((q, array.nbytes, len(header)))
-        reqs = recv_reqs + send_reqs
-        statuses = self._wait(reqs, lambda pending: name_workers([owners[i] for i in pending]),
-                              meta)
+        return _MpiOp(meta, incoming, heads, prepared, sent, recv_reqs + send_reqs, owners)
+
+    def _test(self, op: _MpiOp) -> bool:
+        """Collect what has completed of `op`, without waiting; True when all has."""
+        if op.finished is not None or op.closed:
+            return True
+        MPI = self.MPI
+        scratch = [MPI.Status() for _ in op.reqs]
+        try:
+            indices = MPI.Request.Testsome(op.reqs, scratch)
+        except MPI.Exception:
+            return True                       # wait() reports it, with its deadline message
+        for k, i in enumerate(indices or ()):
+            op.statuses[i] = MPI.Status(scratch[k])
+        if indices is None or all(st is not None for st in op.statuses):
+            op.finished = time.perf_counter()
+        return op.finished is not None
+
+    def _complete(self, op: _MpiOp, *, started: bool) -> None:
+        """Wait for `op` (deadline timeout_s), check its frames, count them."""
+        MPI = self.MPI
+        meta, incoming, heads, owners = op.meta, op.incoming, op.heads, op.owners
+        if op in self._ops:
+            self._ops.remove(op)
+        if op.closed:
+            raise RunError(f"worker {self.rank}: the transport was closed with an exchange "
+                           f"outstanding ({frames.describe(meta)})")
+        t0 = time.perf_counter()
+        if op.finished is None:
+            self._wait(op.reqs, lambda pending: name_workers([owners[i] for i in pending]),
+                       meta, op.statuses)
+            op.finished = time.perf_counter()
+        t1 = time.perf_counter()
+        statuses = op.statuses
         for i, (q, dest) in enumerate(incoming.items()):
             got_head = statuses[2 * i].Get_count(MPI.BYTE)
             got_pay = statuses[2 * i + 1].Get_count(MPI.BYTE)
@@ -183,16 +294,21 @@ class MpiTransport:
                                     f"payload bytes")
             self.profile.count(q, self.rank, meta["kind"], meta["layer"], meta["direction"],
                                got_pay, got_head)
-        for q, nbytes, framing in sent:
+        for q, nbytes, framing in op.sent:
             self.profile.count(self.rank, q, meta["kind"], meta["layer"], meta["direction"],
                                nbytes, framing)
-        del prepared
+        op.prepared = []
+        if started:
+            self.profile.add_overlap(op.finished - op.started,
+                                     max(min(op.finished, t1) - t0, 0.0))
 
-    def _wait(self, reqs: list, who, meta: dict) -> list:
-        """Test until every request is done (statuses in request order); deadline timeout_s
-        without any completion. See the module docstring for the backoff."""
+    def _wait(self, reqs: list, who, meta: dict, statuses: list | None = None) -> list:
+        """Test until every request is done (statuses in request order, `statuses` filled
+        in when given); deadline timeout_s without any completion. See the module docstring
+        for the backoff."""
         MPI = self.MPI
-        statuses: list = [None] * len(reqs)
+        if statuses is None:
+            statuses = [None] * len(reqs)
         scratch = [MPI.Status() for _ in reqs]
         t_start = last = time.perf_counter()
         nap = 0.0

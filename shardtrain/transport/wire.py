@@ -8,7 +8,9 @@ same three names, so a measured row and a predicted one have the same key.
 """
 from __future__ import annotations
 
-from collections.abc import Iterable
+import os
+import zlib
+from collections.abc import Callable, Iterable, Mapping
 
 import numpy as np
 
@@ -18,6 +20,14 @@ from shardtrain.transport import frames
 KIND_HALO = "halo"              # boundary rows between workers (every layer, every direction)
 KIND_ALLREDUCE = "allreduce"    # the gradient sum (and the early-stopping vote)
 NO_LAYER = -1                   # the layer of a frame that belongs to none (the all-reduce)
+
+# Debug check of started exchanges (`exchange_start`): their outgoing arrays are sent in
+# place, so the caller must not modify them before `wait()` returns. With this set (the
+# environment variable SHARDTRAIN_CHECK_OUTGOING=1 when the module is imported, or the
+# attribute itself), each outgoing array's CRC-32 is taken at the start and compared in
+# `wait()`, which raises RunError naming the worker it went to. It reads every byte twice:
+# for debugging only.
+CHECK_OUTGOING = os.environ.get("SHARDTRAIN_CHECK_OUTGOING") == "1"
 
 
 def bytes_view(array: np.ndarray) -> memoryview:
@@ -58,3 +68,20 @@ def name_workers(peers: Iterable[int]) -> str:
     if len(unique) == 1:
         return f"worker {unique[0]}"
     return "workers " + ", ".join(map(str, unique))
+
+
+def outgoing_guard(arrays: Mapping[int, np.ndarray], meta: dict
+                   ) -> Callable[[], None] | None:
+    """With `CHECK_OUTGOING`, a function that raises RunError when one of the (wire-ready,
+    C-contiguous) `arrays` has changed since this call; None otherwise."""
+    if not CHECK_OUTGOING:
+        return None
+    sums = {q: zlib.crc32(bytes_view(a)) for q, a in arrays.items()}
+
+    def check() -> None:
+        changed = [q for q, a in arrays.items() if zlib.crc32(bytes_view(a)) != sums[q]]
+        if changed:
+            raise RunError(f"the outgoing array to {name_workers(changed)} was modified before "
+                           f"wait() returned ({frames.describe(meta)}): a started exchange "
+                           f"sends it in place")
+    return check
