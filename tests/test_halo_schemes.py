@@ -392,3 +392,19 @@ def test_a_resumed_scheme_run_ends_on_the_uninterrupted_runs_bits(tmp_path, grap
             np.testing.assert_array_equal(a[name], b[name])
     other = [a if a != "0.3" else "0.5" for a in common]
     assert main([*other, "--epochs", "4", "--resume", str(tmp_path / "ck")]) == 2
+
+
+def test_a_halo_scheme_is_refused_for_models_other_than_gcn():
+    """The schemes' single-process formulation is written for GCN's Â: another model with a
+    scheme is refused at the door, naming the scheme's parameter (common practice: refuse
+    what has no oracle rather than run it unchecked)."""
+    from shardtrain.errors import ParameterError
+    from shardtrain.train.settings import TrainSettings
+
+    for kw, param in (({"halo_keep": 0.5}, "halo_keep"), ({"halo_format": "int8"},
+                                                          "halo_format")):
+        with pytest.raises(ParameterError) as err:
+            TrainSettings(model="sage", **kw).validate()
+        assert err.value.param == param
+    TrainSettings(model="sage", halo_format="float32").validate()     # exact: allowed
+    TrainSettings(model="gcn", halo_keep=0.5).validate()
