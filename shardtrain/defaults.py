@@ -20,6 +20,9 @@ DTYPE = "float32"
 BIAS = False
 EARLY_STOP = 0
 THREADS = 1
+# halo schemes (plan.schemes.HaloScheme): every halo row kept, in the training dtype (exact)
+HALO_KEEP = 1.0
+HALO_FORMAT: str | None = None
 
 # a training run (train.api.RunConfig, train.session, cli/train.py)
 TRANSPORT = "pipes"                    # worker processes on this machine

@@ -368,7 +368,8 @@ RUN_WORKER = Obj(required={"worker": Int(min=0, max=MAX_WORKERS)},
 RUN = Obj(optional={"epochs": List(EPOCH),
                     "settings": Obj(optional={"epochs": Int(min=0), "layers": Int(min=1),
                                               "hidden": Int(min=1)}),
-                    "graph": GRAPH_FACTS, "mode": Str(choices=("reference", "partitioned")),
+                    "graph": GRAPH_FACTS,
+                    "mode": Str(choices=("reference", "partitioned", "single-process")),
                     "workers": List(RUN_WORKER, max_len=MAX_WORKERS),
                     "traffic": Obj(optional={"measured_payload_bytes": COUNT,
                                              "predicted_payload_bytes": COUNT,
@@ -417,7 +418,9 @@ CALIBRATION = Obj(required={
 _SETTINGS = Obj(required={"seed": Int()},
                 optional={"layers": Int(min=1), "hidden": Int(min=1),
                           "dropout": Num(min=0, max=1), "lr": Num(min=0),
-                          "weight_decay": Num(min=0), "dtype": DTYPE, "bias": Bool()})
+                          "weight_decay": Num(min=0), "dtype": DTYPE, "bias": Bool(),
+                          "halo_keep": Num(min=0, max=1),
+                          "halo_format": Str(nullable=True, max_len=16)})
 CHECKPOINT = Obj(required={
     "format": Str(choices=("shardtrain-checkpoint",)), "version": Int(),
     "epoch": Int(min=1, max=1 << 40),

@@ -423,3 +423,25 @@ def test_cli_measure_compute_refuses_a_survey_json(run_cli, survey_json):
     r = run_cli("forecast", survey_json, "--measure-compute", "--flops-per-worker", "1e9")
     assert r.returncode == 2 and len(r.stderr.strip().splitlines()) == 1
     assert "--measure-compute" in r.stderr
+
+
+def test_hand_worked_plan_under_a_halo_scheme(monkeypatch):
+    """The two-worker plan above with int8 halo rows (plan/schemes.py: a row of width w is
+    w + 4 bytes): worker 0's forward frame is 30 x (2 + 4) = 180 payload bytes + one int8
+    header, and so is worker 1's backward frame; the evaluation forward stays float32
+    (240 bytes). With P = 0.5 the training frames carry half the rows (the expectation)."""
+    _no_overhead(monkeypatch)
+    plan = hand_plan([[0, 30], [10, 0]], owned=[100, 100], local_edges=[300, 300], params=16)
+    gbps, lat = 0.01, 50.0
+    exact = fc.forecast_plan(plan, model_doc([(8, 2)]), link_gbps=gbps, latency_us=lat,
+                             calibration=FAST, dropout=0.0)
+    for keep in (1.0, 0.5):
+        model = dict(model_doc([(8, 2)]), halo_scheme={"halo_keep": keep,
+                                                       "halo_format": "int8"})
+        out = fc.forecast_plan(plan, model, link_gbps=gbps, latency_us=lat,
+                               calibration=FAST, dropout=0.0)
+        hdr = frame_header_bytes("int8", (30 * keep, 6))
+        one_hop = lat * 1e-6 + (keep * 180 + hdr) * 8 / (gbps * 1e9)
+        assert out["exchange_s"] == pytest.approx(2 * one_hop, rel=1e-12)
+        assert out["eval_s"] == pytest.approx(exact["eval_s"], rel=1e-12)
+        assert out["allreduce_s"] == pytest.approx(exact["allreduce_s"], rel=1e-12)

@@ -78,7 +78,7 @@ def test_header_length_outside_limits_is_refused(n):
 
 @pytest.mark.parametrize("header,message", [
     (_good_header(dtype="object"), r"dtype 'object' not allowed"),
-    (_good_header(dtype="float16", nbytes=24), r"dtype 'float16' not allowed"),
+    (_good_header(dtype="bfloat16", nbytes=24), r"dtype 'bfloat16' not allowed"),
     (_good_header(shape=[3, 5]), r"shape \[3, 5\] of float32 is 60 bytes but the header says 48"),
     (_good_header(shape=[3, -4]), r"is not a list of at most 8 non-negative integers"),
     (_good_header(shape="3x4"), r"is not a list"),

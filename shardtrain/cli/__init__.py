@@ -25,6 +25,7 @@ COMMANDS = {
     "split": "split",
     "train": "train",
     "forecast": "forecast",
+    "sweep": "sweep",
     "report": "report",
 }
 

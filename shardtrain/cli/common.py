@@ -178,3 +178,25 @@ def terminal_progress():
     from shardtrain.data.ingest import no_progress
 
     return _Bar if sys.stderr.isatty() else no_progress
+
+
+def add_scheme_arguments(parser: argparse.ArgumentParser) -> None:
+    """--halo-keep and --halo-format (`plan.schemes.HaloScheme`; checked by the library)."""
+    from shardtrain.plan.schemes import FORMATS
+
+    parser.add_argument("--halo-keep", type=float_type("--halo-keep"),
+                        default=defaults.HALO_KEEP, metavar="P",
+                        help="boundary-node sampling (Wan et al., BNS-GCN, MLSys 2022): each "
+                             "epoch every worker keeps a random fraction P of its halo "
+                             "vertices, 0 < P <= 1, and only their rows cross the wire in "
+                             "training; evaluation uses the full halo (default "
+                             f"{defaults.HALO_KEEP:g}: every row)")
+    parser.add_argument("--halo-format", metavar="F", default=defaults.HALO_FORMAT,
+                        help=f"wire format of training halo rows: {', '.join(FORMATS)} "
+                             "(int8: a float32 scale per row, stochastic rounding); default: "
+                             "the training dtype (exact)")
+
+
+def scheme_settings(args: argparse.Namespace) -> dict:
+    """The settings fields of the scheme options."""
+    return {"halo_keep": args.halo_keep, "halo_format": args.halo_format}

@@ -20,6 +20,8 @@ FLAGS = {
     "dropout": "--dropout", "lr": "--lr", "weight_decay": "--weight-decay",
     "epochs": "--epochs", "dtype": "--dtype", "bias": "--bias",
     "early_stop": "--early-stop", "threads": "--threads",
+    # halo schemes (plan.schemes.HaloScheme; train, survey, forecast, sweep)
+    "halo_keep": "--halo-keep", "halo_format": "--halo-format",
     # a training run (train.api.RunConfig, api.run's transport)
     "transport": "--transport", "timeout_s": "--timeout", "init_weights": "--init-weights",
     "checkpoint_every": "--checkpoint-every", "max_frame_bytes": "--max-frame-bytes",
@@ -38,6 +40,7 @@ FLAGS = {
     # outputs and folders
     "plot": "--plot", "out": "--out", "overwrite": "--overwrite",
     "checkpoint": "--checkpoint", "resume": "--resume", "reference": "--reference",
+    "single_process": "--single-process",
     "emulate_link": "--emulate-link",
 }
 

@@ -19,9 +19,11 @@ from shardtrain import defaults
 from shardtrain.cli.common import (
     add_graph_arguments,
     add_plan_shape_arguments,
+    add_scheme_arguments,
     load_graph_from_args,
     parse_int_list,
     parse_name_list,
+    scheme_settings,
 )
 from shardtrain.errors import InputError
 from shardtrain.report.tables import format_table
@@ -61,6 +63,7 @@ def add_arguments(parser) -> None:
     add("--dropout", type=float, default=defaults.DROPOUT,
         help=f"dropout rate of training (default {defaults.DROPOUT:g})")
     add_plan_shape_arguments(parser)
+    add_scheme_arguments(parser)
     add("--json", default=None, metavar="OUT.json", help="write the forecast as JSON")
     add("--plot", default=None, metavar="DIR", help="write PNG pictures of the forecast to DIR")
 
@@ -245,6 +248,9 @@ def run(args) -> int:
         if args.measure_compute:
             raise InputError("--measure-compute: needs the graph (its shards are trained), "
                              f"not a survey JSON ({source})")
+        if (args.halo_keep, args.halo_format) != (defaults.HALO_KEEP, defaults.HALO_FORMAT):
+            raise InputError(f"--halo-keep/--halo-format: {source} is a survey, which carries "
+                             f"its own halo scheme (give them to `survey`)")
         survey_dict = _select(read_survey_json(source), workers, methods, source)
     cached = None
     if args.flops_per_worker is None and args.calibration:   # a bad file costs no work
@@ -257,7 +263,8 @@ def run(args) -> int:
 
         settings = SurveySettings(layers=args.layers, hidden=args.hidden, dtype=args.dtype,
                                   classes=args.classes, input_dim=args.input_dim,
-                                  bias=args.bias, imbalance=args.imbalance, seed=args.seed)
+                                  bias=args.bias, imbalance=args.imbalance, seed=args.seed,
+                                  epochs=1, **scheme_settings(args))
         workers = workers or parse_int_list(DEFAULT_WORKERS, "--workers")
         methods = methods or parse_name_list(DEFAULT_METHODS, "--method")
         loaded = load_graph_from_args(args)

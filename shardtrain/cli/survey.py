@@ -19,9 +19,12 @@ from shardtrain.cli.common import (
     add_graph_arguments,
     add_memory_budget_argument,
     add_plan_shape_arguments,
+    add_scheme_arguments,
     load_graph_from_args,
     parse_int_list,
     parse_name_list,
+    positive_int_type,
+    scheme_settings,
 )
 from shardtrain.data.graphdir import is_graph_dir
 from shardtrain.errors import InputError, RunError
@@ -41,8 +44,10 @@ CSV_COLUMNS = [
     ("replication_factor", lambda p: f"{p['replication_factor']:.6f}"),
     ("halo_max", lambda p: int(p["imbalance"]["halo"]["max"])),
     ("halo_mean", lambda p: f"{p['imbalance']['halo']['mean']:.3f}"),
-    ("forward_bytes", lambda p: p["traffic"]["forward_bytes"]),
-    ("backward_bytes", lambda p: p["traffic"]["backward_bytes"]),
+    ("forward_bytes", lambda p: _halo(p, "forward")),
+    ("backward_bytes", lambda p: _halo(p, "backward")),
+    ("training_halo_bytes_of_run",
+     lambda p: p["traffic"].get("halo_scheme", {}).get("training_halo_bytes", "")),
     ("allreduce_bytes", lambda p: p["traffic"]["allreduce_bytes"]),
     ("eval_forward_bytes", lambda p: p["traffic"]["eval_forward_bytes"]),
     ("epoch_payload_bytes", lambda p: p["epoch_payload_bytes"]),
@@ -100,6 +105,10 @@ def add_arguments(parser) -> None:
              "order) in place of --method; the worker count follows from it (--workers, "
              "if given, must agree)")
     add_plan_shape_arguments(parser)
+    add_scheme_arguments(parser)
+    add("--epochs", type=positive_int_type("--epochs"), default=defaults.EPOCHS,
+        help=f"training epochs a halo scheme's payload is replayed over (default "
+             f"{defaults.EPOCHS}; with --seed, the run's exact payload)")
     add_memory_budget_argument(
         parser, help="memory a survey of a graph directory may use, e.g. 512M or 4G (default "
                      "a quarter of this machine's memory): sets the chunk of rows read at a "
@@ -123,7 +132,8 @@ def _check_output(path: str | None, option: str) -> None:
 def _settings(args) -> SurveySettings:
     return SurveySettings(layers=args.layers, hidden=args.hidden, dtype=args.dtype,
                           classes=args.classes, input_dim=args.input_dim, bias=args.bias,
-                          imbalance=args.imbalance, seed=args.seed)
+                          imbalance=args.imbalance, seed=args.seed, epochs=args.epochs,
+                          **scheme_settings(args))
 
 
 def table_rows(result: dict) -> list[dict]:
@@ -134,8 +144,8 @@ def table_rows(result: dict) -> list[dict]:
             "method": p["method"], "workers": p["workers"], "edge_cut": p["edge_cut"],
             "replication": p["replication_factor"],
             "halo": f"{imb['halo']['max']:,.0f}/{imb['halo']['mean']:,.0f}",
-            "forward": p["traffic"]["forward_bytes"],
-            "backward": p["traffic"]["backward_bytes"],
+            "forward": _halo(p, "forward"),
+            "backward": _halo(p, "backward"),
             "allreduce": p["traffic"]["allreduce_bytes"],
             "memory": p["max_memory_bytes"],
             "owned_imb": imb["owned"]["max_over_mean"],
@@ -144,6 +154,14 @@ def table_rows(result: dict) -> list[dict]:
             "scheme": _scheme_note(p.get("partition", {})),
         })
     return rows
+
+
+def _halo(plan: dict, direction: str):
+    """A plan's halo payload per training epoch: under a halo scheme its expectation."""
+    scheme = plan["traffic"].get("halo_scheme")
+    if scheme is not None:
+        return int(round(scheme[f"expected_{direction}_bytes"]))
+    return plan["traffic"][f"{direction}_bytes"]
 
 
 def csv_text(result: dict) -> str:
@@ -240,6 +258,10 @@ def _run(args, group=None, agree=None) -> int:
     settings = _settings(args)
     budget = args.memory_budget
     if is_graph_dir(args.graph):
+        if (settings.halo_keep, settings.halo_format) != (defaults.HALO_KEEP,
+                                                          defaults.HALO_FORMAT):
+            raise InputError(f"--halo-keep/--halo-format: not available for a graph "
+                             f"directory ({args.graph}): survey a graph file")
         return _run_graph_dir(args, methods, workers, settings, budget, group, agree)
     loaded = load_graph_from_args(args)
     graph = loaded.graph
@@ -336,5 +358,14 @@ def _report(args, result: dict) -> None:
     print(f"{result['graph']['vertices']:,} vertices, {result['graph']['edges']:,} edges; "
           f"GCN {' -> '.join(str(d) for d in [m['dims'][0][0]] + [d[1] for d in m['dims']])} "
           f"({m['dtype']}); traffic is payload per training epoch")
+    scheme = m.get("halo_scheme")
+    if scheme is not None:
+        print(f"halo scheme: keep {scheme['halo_keep']:g}, format "
+              f"{scheme['halo_format'] or m['dtype']}: fwd/bwd are the expected halo payload "
+              f"of a training epoch; the {scheme['epochs']}-epoch run with seed "
+              f"{scheme['seed']} sends exactly (training halo rows, all epochs):")
+        for p in result["plans"]:
+            print(f"  {p['method']:<14} k={p['workers']:<5} "
+                  f"{p['traffic']['halo_scheme']['training_halo_bytes']:,} bytes")
     print(format_table(table_rows(result), TABLE_COLUMNS))
     _write_outputs(args, result)

@@ -26,7 +26,12 @@ from pathlib import Path
 import numpy as np
 
 from shardtrain import defaults
-from shardtrain.cli.common import add_graph_arguments, positive_int_type
+from shardtrain.cli.common import (
+    add_graph_arguments,
+    add_scheme_arguments,
+    positive_int_type,
+    scheme_settings,
+)
 from shardtrain.errors import (
     EXIT_BAD_INPUT,
     EXIT_INTERRUPTED,
@@ -115,6 +120,12 @@ def add_arguments(parser) -> None:
                         f"reference's one process, each worker (default {defaults.THREADS}: "
                         f"the workers are the parallelism, and the reference then gets the "
                         f"CPU of one worker; at most {max_threads()})")
+    add_scheme_arguments(parser)
+    parser.add_argument("--single-process", action="store_true",
+                        help="with --workers K --method M (or --assignment): compute in ONE "
+                             "process exactly what the K-worker run computes under the halo "
+                             "scheme (the same sampled halos and rounding); with every "
+                             "scheme off it equals --reference")
     parser.add_argument("--timeout", type=_number("--timeout", float),
                         default=defaults.TIMEOUT_S, metavar="S",
                         help=f"deadline of every halo/all-reduce receive (default "
@@ -335,10 +346,16 @@ def config_of(args) -> api.RunConfig:
     settings = TrainSettings(layers=args.layers, hidden=args.hidden, dropout=args.dropout,
                              lr=args.lr, weight_decay=args.weight_decay, epochs=args.epochs,
                              seed=args.seed, dtype=args.dtype, bias=bool(args.bias),
-                             early_stop=args.early_stop, threads=args.threads)
+                             early_stop=args.early_stop, threads=args.threads,
+                             **scheme_settings(args))
+    mode = "reference" if args.reference else "partitioned"
+    if args.single_process:
+        if args.reference:
+            raise InputError("--single-process: not allowed with --reference (give "
+                             "--workers K --method M or --assignment FILE)")
+        mode = "single-process"
     return api.RunConfig(
-        source=args.graph, settings=settings,
-        mode="reference" if args.reference else "partitioned",
+        source=args.graph, settings=settings, mode=mode,
         features=args.features, labels=args.labels, input_dim=args.input_dim,
         workers=args.workers, method=args.method, assignment=args.assignment,
         imbalance=args.imbalance, checkpoint=args.checkpoint,

@@ -186,6 +186,10 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
     up to its measured CPU seconds of a training step (and of an evaluation forward),
     keeping the counted split between exchanges. The calibration's `exchange_call` (when
     present) adds its fixed cost to every transport call.
+    A halo scheme in `model["halo_scheme"]` (the survey's, `plan.schemes`) shrinks the
+    TRAINING exchanges: a fraction P of the halo rows (the expectation), each of
+    `HaloScheme.row_bytes` on the wire; the evaluation forward stays exact. (The row
+    selection and the codec's own CPU are not modelled.)
     Returns the plan-level critical path and a per-worker split.
     """
     _check_positive("link_gbps", link_gbps)
@@ -201,6 +205,12 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
     n = np.array([s["owned"] for s in shards], dtype=np.float64)
     halo = np.array([s["halo"] for s in shards], dtype=np.float64)
     nnz = np.array([s["local_edges"] for s in shards], dtype=np.float64) + n  # + self-loops
+    from shardtrain.plan.schemes import KEEP_ONE, HaloScheme, keep_threshold
+
+    entry = model.get("halo_scheme") or {}
+    scheme = HaloScheme(entry.get("halo_keep", defaults.HALO_KEEP),
+                        entry.get("halo_format", defaults.HALO_FORMAT)).check()
+    kept = keep_threshold(scheme.keep) / KEEP_ONE
     S = _send_rows(plan, hops, b)
     sent_rows = S.sum(axis=1)          # rows p sends, summed over its peers
     back_rows = S.sum(axis=0)          # p's halo rows: gradients p sends back to owners
@@ -252,15 +262,22 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
     def draw_masks(elements):
         return count("dropout_masks", elements / masks * slow)
 
-    def link(rows, width, msgs, in_rows, in_msgs):
+    def link(rows, width, msgs, in_rows, in_msgs, train=True):
         """Each worker's part of one exchange: it sends `rows` in `msgs` frames and receives
         `in_rows` in `in_msgs`; done when the link has carried its frames AND it has copied
-        what it sent and received (its own CPU, overlapping the link's time)."""
+        what it sent and received (its own CPU, overlapping the link's time). A training
+        exchange under a halo scheme sends the kept fraction of rows in its wire format."""
         if k == 1:
             return np.zeros(k)
-        header = frame_header_bytes(dtype, (rows.max() / max(msgs.max(), 1), width))
-        out_bytes = rows * width * b + msgs * header
-        in_bytes = in_rows * width * b + in_msgs * header
+        share, row = (kept, scheme.row_bytes(width, dtype)) if train else (1.0, width * b)
+        wire_dtype, wire_width = dtype, width
+        if train and scheme.compressed(dtype):
+            wire_dtype = scheme.wire_dtype(dtype).name
+            wire_width = scheme.wire_width(width, dtype)
+        header = frame_header_bytes(wire_dtype, (share * rows.max() / max(msgs.max(), 1),
+                                                 wire_width))
+        out_bytes = rows * share * row + msgs * header
+        in_bytes = in_rows * share * row + in_msgs * header
         wire = np.where(msgs > 0, latency + link_seconds(out_bytes, bandwidth), 0.0)
         return np.where((msgs > 0) | (in_msgs > 0),
                         call_s + np.maximum(wire, copy_s * (out_bytes + in_bytes)), 0.0)
@@ -274,7 +291,8 @@ def forecast_plan(plan: dict, model: dict, *, link_gbps: float, latency_us: floa
                 tl.compute(gemm(n, d_in, d_out))
             if k > 1 and fw:
                 tl.compute(row_moves(sent_rows * fw * b, 0))                   # send rows
-                tl.exchange(f"forward {l}", link(sent_rows, fw, fwd_msgs, back_rows, bwd_msgs))
+                tl.exchange(f"forward {l}", link(sent_rows, fw, fwd_msgs, back_rows, bwd_msgs,
+                                                 train=train))
             tl.compute(passes(n * fw * b))                                     # fresh output
             tl.compute(sparse(fw))
             if not h["transform_first"]:

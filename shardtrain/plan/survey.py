@@ -42,6 +42,10 @@ class SurveySettings:
     bias: bool = defaults.BIAS
     imbalance: float = defaults.IMBALANCE
     seed: int = defaults.SEED
+    # halo scheme (plan.schemes.HaloScheme) and the epochs its payload is replayed over
+    halo_keep: float = defaults.HALO_KEEP
+    halo_format: str | None = defaults.HALO_FORMAT
+    epochs: int = defaults.EPOCHS
 
 
 @dataclass(kw_only=True)
@@ -144,7 +148,12 @@ def predict_traffic_of_rows(send_rows: np.ndarray, halo_rows: np.ndarray,
 
 
 def epoch_payload_bytes(traffic: dict) -> int:
-    """Payload of one training step: forward + backward halo exchanges + all-reduce."""
+    """Payload of one training step: forward + backward halo exchanges + all-reduce (under
+    a halo scheme, the expected halo payload of an epoch, rounded)."""
+    scheme = traffic.get("halo_scheme")
+    if scheme is not None:
+        return int(round(scheme["expected_forward_bytes"] + scheme["expected_backward_bytes"])
+                   + traffic["allreduce_bytes"])
     return int(traffic["forward_bytes"] + traffic["backward_bytes"] + traffic["allreduce_bytes"])
 
 
@@ -161,7 +170,14 @@ def predict_run_payload(traffic: dict, epochs: int, evals: int, stop_votes: int 
     """Payload of a whole run: `epochs` training steps, `evals` evaluation forwards and
     `stop_votes` early-stopping votes (one per epoch run with --early-stop, else 0).
     This is the number the trainer compares with what it measured."""
-    total = epochs * epoch_payload_bytes(traffic) + evals * traffic["eval_forward_bytes"]
+    scheme = traffic.get("halo_scheme")
+    if scheme is not None and len(scheme.get("forward_bytes_per_epoch", ())) >= epochs:
+        # the replayed payload of epochs 1..epochs: exact, not the expectation
+        total = (sum(scheme["forward_bytes_per_epoch"][:epochs])
+                 + sum(scheme["backward_bytes_per_epoch"][:epochs])
+                 + epochs * traffic["allreduce_bytes"] + evals * traffic["eval_forward_bytes"])
+    else:
+        total = epochs * epoch_payload_bytes(traffic) + evals * traffic["eval_forward_bytes"]
     if stop_votes:
         total += stop_votes * int(stop_vote_bytes(len(traffic["allreduce_bytes_per_worker"]))
                                   .sum())
@@ -304,10 +320,14 @@ def _max_over_mean(values: np.ndarray) -> dict:
 
 def survey_plan(graph, method: str, k: int, *, hops: list[LayerHop], itemsize: int,
                 seed: int, imbalance: float, assignment: np.ndarray | None = None,
-                bias: bool = False) -> dict:
+                bias: bool = False, scheme=None, epochs: int = defaults.EPOCHS) -> dict:
     """Partition (or take `assignment`), build the shards without vertex data, and report
     the plan: edge cut, replication factor, per-worker sizes, memory and bytes, traffic per
-    epoch, and max/mean imbalances. Shards are freed before returning."""
+    epoch, and max/mean imbalances. Shards are freed before returning.
+    Under a halo `scheme` (`plan.schemes.HaloScheme`, not exact for the dtype of
+    `itemsize`), `traffic["halo_scheme"]` is `schemes.plan_scheme_traffic` (every epoch's
+    halo payload for `seed` and `epochs`, and the expectation per epoch) and the plan's
+    `epoch_payload_bytes` uses the expectation."""
     from shardtrain.plan.shards import build_shards, shard_stats
 
     t0, c0 = time.perf_counter(), time.process_time()
@@ -324,6 +344,13 @@ def survey_plan(graph, method: str, k: int, *, hops: list[LayerHop], itemsize: i
     t2, c2 = time.perf_counter(), time.process_time()
     params = parameter_elements(hops, bias=bias)
     traffic = predict_traffic(shards, hops, itemsize, param_elements=params)
+    dtype = np.dtype(f"f{itemsize}")
+    if scheme is not None and not scheme.exact(dtype):
+        from shardtrain.plan.schemes import plan_scheme_traffic
+
+        traffic["halo_scheme"] = plan_scheme_traffic(
+            [s.halo for s in shards], [s.halo_ptr for s in shards], hops, dtype, scheme,
+            seed=seed, epochs=epochs)
     stats = shard_stats(shards)
     # entries of the local Â in halo columns: each cut edge appears once on either side
     cut_entries = np.array([np.count_nonzero(s.adj.indices >= s.num_owned) for s in shards])
@@ -420,6 +447,10 @@ def check_plans(graph, methods: list[str], workers_list: list[int],
         raise ParameterError("dtype", f"must be float32 or float64, got {settings.dtype!r}")
     if not 0.0 <= settings.imbalance < 1.0:
         raise ParameterError("imbalance", f"must be in [0, 1), got {settings.imbalance}")
+    if not (isinstance(settings.epochs, int) and settings.epochs >= 1):
+        raise ParameterError("epochs", f"must be an integer >= 1, got {settings.epochs!r}")
+    from shardtrain.plan.schemes import scheme_of
+    scheme_of(settings)
     model_shape(graph, settings)
 
 
@@ -431,12 +462,15 @@ def survey(graph, methods: list[str], workers_list: list[int], settings: SurveyS
     check_plans(graph, [] if assignment is not None else methods, workers_list, settings)
     dims, hops = model_shape(graph, settings)
     itemsize = np.dtype(settings.dtype).itemsize
+    from shardtrain.plan.schemes import scheme_of
+    scheme = scheme_of(settings)
     plans = []
     for method in methods:
         for k in workers_list:
             plan = survey_plan(graph, method, k, hops=hops, itemsize=itemsize,
                                seed=settings.seed, imbalance=settings.imbalance,
-                               assignment=assignment, bias=settings.bias)
+                               assignment=assignment, bias=settings.bias,
+                               scheme=scheme, epochs=settings.epochs)
             plans.append(plan)
             if on_plan is not None:
                 on_plan(plan)
@@ -458,6 +492,18 @@ def survey_document(num_vertices: int, num_edges: int, structure: str,
                   "hops": [{"layer": h.layer, "d_in": h.d_in, "d_out": h.d_out,
                             "transform_first": h.transform_first,
                             "forward_width": h.forward_width,
-                            "backward_width": h.backward_width} for h in hops]},
+                            "backward_width": h.backward_width} for h in hops]}
+        | _scheme_entry(settings),
         "plans": plans,
     }
+
+
+def _scheme_entry(settings) -> dict:
+    """{"halo_scheme": {...}} of the model entry when a halo scheme is on, else {}."""
+    from shardtrain.plan.schemes import scheme_of
+
+    scheme = scheme_of(settings)
+    if scheme.exact(np.dtype(settings.dtype)):
+        return {}
+    return {"halo_scheme": {**scheme.to_dict(), "epochs": int(settings.epochs),
+                            "seed": int(settings.seed)}}

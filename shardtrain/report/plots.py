@@ -393,3 +393,47 @@ def forecast_plots(forecast: dict, out_dir) -> list[str]:
                                f"{fastest['workers']} workers, {fastest['link_gbps']:g} Gbit/s",
                                out_dir, "forecast_worker_times.png"))
     return paths
+
+
+def scheme_label(scheme: dict) -> str:
+    """'keep 0.1, int8' for a sweep row's scheme; 'exact' when every setting is default."""
+    parts = []
+    if scheme.get("halo_keep", 1.0) != 1.0:
+        parts.append(f"keep {scheme['halo_keep']:g}")
+    if scheme.get("halo_format") is not None:
+        parts.append(str(scheme["halo_format"]))
+    parts += [f"{k} {v}" for k, v in scheme.items() if k not in ("halo_keep", "halo_format")]
+    return ", ".join(parts) or "exact"
+
+
+def sweep_plots(doc: dict, out_dir) -> list[str]:
+    """A sweep's test accuracy against halo payload per epoch, and its epoch time against
+    halo payload per epoch: one point per scheme, labelled."""
+    Path(out_dir).mkdir(parents=True, exist_ok=True)
+    rows = doc["rows"]
+    paths: list[str] = []
+    if not rows:
+        return paths
+    x = [max(r["halo_payload_per_epoch"], 1.0) for r in rows]
+    for key, ylabel, name in (
+            ("final_test_acc", "final test accuracy", "sweep_accuracy.png"),
+            ("epoch_s", "measured time of one training epoch", "sweep_epoch_time.png")):
+        fig, ax = plt.subplots(figsize=(6.2, 4.2))
+        y = [np.nan if r[key] is None else r[key] for r in rows]
+        ax.scatter(x, y, color="#4c72b0", zorder=3)
+        for xi, yi, r in zip(x, y, rows):
+            ax.annotate(scheme_label(r["scheme"]), (xi, yi), textcoords="offset points",
+                        xytext=(5, 4), fontsize=8)
+        ax.set_xscale("log")
+        _log_bytes_axis(ax.xaxis)
+        if key == "epoch_s":
+            ax.set_yscale("log")
+            _log_seconds_axis(ax.yaxis)
+        ax.set_xlabel("measured halo payload per training epoch (forward + backward)")
+        ax.set_ylabel(ylabel)
+        ax.grid(True, which="major", alpha=0.3)
+        ax.set_title(f"halo schemes, {doc.get('workers')} workers, {doc.get('epochs')} "
+                     f"epochs", fontsize=10)
+        fig.tight_layout()
+        paths.append(_save(fig, out_dir, name))
+    return paths

@@ -118,7 +118,8 @@ def assemble_result(records, summaries, facts: ShardDirFacts, settings: TrainSet
                               [s["send_ptr"] for s in summaries],
                               [s["halo_ptr"] for s in summaries], dims, settings,
                               epochs=epochs_run, evals=evals,
-                              stop_votes=epochs_run if early_stop else 0)
+                              stop_votes=epochs_run if early_stop else 0,
+                              halo_kept=[s.get("halo_kept") for s in summaries])
     rows = []
     for row, s in zip(merged["per_worker"], summaries):
         rows.append({"worker": row["rank"], "compute_s": row["compute_s"],
@@ -140,14 +141,18 @@ def model_dims_of(facts: ShardDirFacts, settings: TrainSettings) -> list[tuple[i
 
 def traffic_account(merged: dict, profiles: list[dict], send_ptrs: list, halo_ptrs: list,
                     dims, settings: TrainSettings, epochs: int | None = None,
-                    evals: int | None = None, stop_votes: int = 0) -> dict:
+                    evals: int | None = None, stop_votes: int = 0,
+                    halo_kept: list | None = None) -> dict:
     """Measured payload and framing (from the merged profile) against the survey's
     prediction, in total and per (src, dst, kind, layer, direction). The prediction reads
     every worker's `send_ptr` and `halo_ptr` (in worker order). The all-reduce is
     compared per (src, dst): its steps' direction names are the transport's own.
     `epochs`: the epochs this run did (fewer than settings.epochs after a resume or an
     early stop); `evals`: its evaluation forwards (default `epochs`); `stop_votes`: its
-    early-stopping votes (see `survey.stop_vote_bytes`)."""
+    early-stopping votes (see `survey.stop_vote_bytes`). Under a halo scheme
+    (`settings.scheme` not exact) the halo rows of the training exchanges are
+    `schemes.scheme_payload_breakdown` of `halo_kept` (each worker's
+    `schemes.worker_kept_rows` replay, from its summary) and the total is the breakdown's."""
     from shardtrain.plan import survey
     from shardtrain.plan.schedule import layer_hops
 
@@ -163,6 +168,21 @@ def traffic_account(merged: dict, profiles: list[dict], send_ptrs: list, halo_pt
     breakdown_pred = survey.predict_payload_breakdown_of_rows(
         send_rows, halo_rows, hops, itemsize, param_elements=elements, epochs=epochs,
         evals=evals, stop_votes=stop_votes)
+    scheme = settings.scheme
+    if not scheme.exact(settings.np_dtype):
+        from shardtrain.plan import schemes
+
+        if halo_kept is None or any(h is None for h in halo_kept):
+            raise RunError("a worker's summary lacks its kept halo rows (halo_kept)")
+        kept = np.stack([np.asarray(h, dtype=np.int64).reshape(-1, len(send_ptrs))
+                         for h in halo_kept], axis=1)
+        breakdown_pred = {key: b for key, b in breakdown_pred.items() if key[2] != KIND_HALO}
+        breakdown_pred.update(schemes.scheme_payload_breakdown(
+            kept, halo_rows, hops, settings.np_dtype, scheme, evals=evals))
+        predicted_total = int(sum(breakdown_pred.values()))
+        predicted = dict(predicted, halo_scheme=dict(
+            scheme.to_dict(), **schemes.expected_epoch_halo_bytes(
+                halo_rows, hops, settings.np_dtype, scheme)))
 
     def key_of(src, dst, kind, layer, direction):
         if kind == KIND_ALLREDUCE:

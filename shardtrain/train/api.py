@@ -41,7 +41,7 @@ from shardtrain.train.mpi_driver import JobStopped
 from shardtrain.train.settings import TrainSettings
 
 TRANSPORTS = ("pipes", "mpi")
-MODES = ("partitioned", "reference")
+MODES = ("partitioned", "reference", "single-process")
 MAX_TIMEOUT_S = 1e6          # poll(2) takes a C int of milliseconds: 2**31 ms is ~2.1e6 s
 MAX_SLOW_FACTOR = 1000.0     # a straggler's sleep must stay within what time.sleep takes
 MPI_STOP_TIMEOUT_S = 60.0    # how long rank 0 waits for the others to take a stop message
@@ -61,7 +61,10 @@ class RunConfig:
     source: a graph file (.npz, .mtx, edge list) or a shard directory; graph: an
     in-memory `Graph` instead of a file (source is then only its label in the run JSON).
     features, labels, input_dim: how to read a graph file (`readers.load_graph`).
-    mode: "partitioned" or "reference" (single-process; graph sources only).
+    mode: "partitioned", "reference" (single-process; graph sources only) or
+    "single-process" (graph sources only): one process computing exactly what the run
+    partitioned by workers/method or assignment computes under `settings`' halo scheme
+    (`single_process.SchemeProducts`; with every scheme off it is the reference).
     workers, method, assignment (a vertex -> worker file), imbalance: the partition of a
     graph source (a shard directory brings its own; `workers`, if given, must agree).
     checkpoint, checkpoint_every, resume: checkpoint folder, epochs between checkpoints
@@ -95,6 +98,10 @@ class RunConfig:
     @property
     def reference(self) -> bool:
         return self.mode == "reference"
+
+    @property
+    def single_process(self) -> bool:
+        return self.mode == "single-process"
 
 
 @dataclass
@@ -153,6 +160,13 @@ def check_config(config: RunConfig, transport: str = defaults.TRANSPORT) -> bool
                              f"one with `shardtrain split`; every rank must see it at this "
                              f"path)", value="mpi")
     settings = config.settings.validate()
+    if config.single_process:
+        _check_single_process(config, transport)
+    if config.reference and not settings.scheme.exact(settings.np_dtype):
+        name = "halo_keep" if settings.scheme.sampled else "halo_format"
+        raise ParameterError(name, f"not available with {option('reference')} (no halo; "
+                                   f"{option('single_process')} with {option('workers')} "
+                                   f"computes a scheme's run in one process)")
     for name, top, why in LIMITS:
         value = getattr(settings if name == "epochs" else config, name)
         if value is not None and value > top:
@@ -169,7 +183,9 @@ def check_config(config: RunConfig, transport: str = defaults.TRANSPORT) -> bool
     if config.graph is None and not Path(config.source).exists():
         raise InputError(f"{config.source}: no such file or directory")
     if from_shards:
-        for name, given in (("reference", config.reference), ("method", config.method),
+        for name, given in (("reference", config.reference),
+                            ("single_process", config.single_process),
+                            ("method", config.method),
                             ("assignment", config.assignment),
                             ("features", config.features), ("labels", config.labels)):
             if given:
@@ -205,6 +221,18 @@ def check_config(config: RunConfig, transport: str = defaults.TRANSPORT) -> bool
         require_regular_file(config.assignment, param="assignment")
     _check_run_options(config, transport)
     return from_shards
+
+
+def _check_single_process(config: RunConfig, transport: str) -> None:
+    """The single-process mode: pipes only, no checkpoints, links or stragglers."""
+    if transport == "mpi":
+        raise ParameterError("single_process", f"not available with {_MPI} (one process)")
+    for name, given in (("checkpoint", config.checkpoint), ("resume", config.resume),
+                        ("checkpoint_every", config.checkpoint_every),
+                        ("slow_workers", config.slow_workers),
+                        ("max_frame_bytes", config.max_frame_bytes), ("link", config.link)):
+        if given:
+            raise ParameterError(name, f"not available with {option('single_process')}")
 
 
 def _check_run_options(config: RunConfig, transport: str) -> None:
@@ -368,12 +396,19 @@ def _run_pipes(config, transport, sess, on_epoch, on_ready, check, deliver) -> R
             elif not config.reference:
                 from shardtrain.plan.partition import check_workers
                 check_workers(workers, graph.num_vertices)
+            if config.single_process and assignment is None:
+                from shardtrain.plan.partition import partition_plan
+
+                sess.phase = "partitioning"        # as session.build_shard_dir does
+                assert workers is not None and config.method is not None
+                assignment, _ = partition_plan(graph, config.method, workers,
+                                               seed=settings.seed, imbalance=config.imbalance)
             if on_ready is not None:
                 on_ready(Ready(settings.epochs, done, graph=graph))
             labels = graph.labels
             graph_fp = fingerprint(graph)
             shard_dir = None
-            if not config.reference:
+            if not (config.reference or config.single_process):
                 from shardtrain.train.processes import ensure_descriptors
 
                 assert workers is not None      # checked above or set by the assignment
@@ -383,7 +418,7 @@ def _run_pipes(config, transport, sess, on_epoch, on_ready, check, deliver) -> R
                                         assignment=assignment, seed=settings.seed,
                                         imbalance=config.imbalance, dims=dims,
                                         shard_dir=shard_dir)
-        if not config.reference:
+        if not (config.reference or config.single_process):
             from shardtrain.train.accounting import shard_dir_facts
 
             workers = shard_dir_facts(shard_dir).workers
@@ -397,6 +432,11 @@ def _run_pipes(config, transport, sess, on_epoch, on_ready, check, deliver) -> R
         if config.reference:
             result = session.train_reference_checkpointed(graph, settings, init, schedule,
                                                           ckpts.resumed, on_epoch)
+        elif config.single_process:
+            from shardtrain.train.single_process import train_single_process
+            assert graph is not None and assignment is not None   # a graph source, split
+            result = train_single_process(graph, settings, assignment, init_params=init,
+                                          on_epoch=on_epoch)
         else:
             from shardtrain.train.coordinator import train_partitioned
             result = train_partitioned(shard_dir, settings, timeout_s=config.timeout_s,
@@ -418,7 +458,7 @@ def _run_pipes(config, transport, sess, on_epoch, on_ready, check, deliver) -> R
     if config.link is not None:
         extra["emulated_link"] = {"gbps": config.link.gbps,
                                   "latency_us": config.link.latency_us}
-    mode = "reference" if config.reference else "partitioned"
+    mode = config.mode
     doc = rundoc.run_document(settings, graph_doc, result, mode=mode, **extra)
     outcome = RunOutcome(result, doc, labels, mode, transport)
     if deliver is not None:

@@ -45,7 +45,8 @@ INDEX = "checkpoint.json"
 _STATE_RE = re.compile(r"state-\d{6}\.npz")
 # settings a resume may change: how long the run goes on, how many BLAS threads it uses
 _FREE_SETTINGS = ("epochs", "threads")
-_ABSENT_MEANS = {"early_stop": 0}     # settings older checkpoints do not record
+# settings older checkpoints do not record
+_ABSENT_MEANS = {"early_stop": 0, "halo_keep": 1.0, "halo_format": None}
 
 
 def state_file_name(epoch: int) -> str:

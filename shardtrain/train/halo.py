@@ -8,6 +8,11 @@ in `shardtrain/plan/shards.py`) and the transport:
 - propagate_t(l, G): Â_Pᵀ G has a row per owned AND halo column; the halo rows belong to
   their owners, so send (A_ohᵀ G)[halo_from(q)] back to q and add what each peer sends for
   my send rows at send_to(q) (indices are unique per peer) to A_ooᵀ G.
+Under a halo scheme (`plan.schemes.HaloScheme`, not exact) the TRAINING exchanges go
+through `_scheme_forward` / `_scheme_backward`: only the halo rows the receiver keeps this
+epoch cross the wire (the sender derives them from the receiver's key), kept halo columns
+are scaled by 1/P, and rows travel in the scheme's wire format (`train.compress`). The
+evaluation forward is always the exact exchange.
 """
 from __future__ import annotations
 
@@ -17,6 +22,8 @@ import numpy as np
 import scipy.sparse as sp
 
 from shardtrain.compat import add_csr_product
+from shardtrain.plan.schemes import HaloScheme, halo_keep_mask, keep_scale
+from shardtrain.train import compress
 from shardtrain.transport.base import Transport
 from shardtrain.transport.wire import KIND_HALO
 
@@ -36,7 +43,8 @@ class HaloOps:
       and the peers' contributions are added at the send rows.
     """
 
-    def __init__(self, shard, transport: Transport, profile, dtype):
+    def __init__(self, shard, transport: Transport, profile, dtype,
+                 scheme: HaloScheme | None = None, seed: int = 0):
         self.shard, self.transport, self.profile = shard, transport, profile
         self.n_owned = shard.num_owned
         self.n_local = shard.num_owned + shard.num_halo
@@ -58,6 +66,11 @@ class HaloOps:
             self.scatter = {q: selection_matrix(self.send_idx[q], self.n_owned, self.dtype)
                             for q in self.peers}
         self.epoch = 0
+        self.scheme = scheme if scheme is not None else HaloScheme()
+        self.seed = int(seed)
+        self.exact = self.scheme.exact(self.dtype)
+        self.format = str(self.scheme.format) if self.scheme.compressed(self.dtype) else None
+        self._chosen: tuple | None = None        # (epoch, send rows, halo positions)
         self._blocks: dict[tuple, np.ndarray] = {}
         self.on_phase: Callable[[str], None] = lambda text: None
 
@@ -68,6 +81,9 @@ class HaloOps:
         return buf
 
     def propagate(self, direction: str) -> Callable[[int, np.ndarray], np.ndarray]:
+        if direction == FORWARD and not self.exact:
+            return self._scheme_forward
+
         def propagate(layer: int, m: np.ndarray) -> np.ndarray:
             self.on_phase(f"epoch {self.epoch} {direction} exchange, layer {layer}")
             width = m.shape[1]
@@ -93,6 +109,8 @@ class HaloOps:
         return propagate
 
     def propagate_t(self, layer: int, g: np.ndarray) -> np.ndarray:
+        if not self.exact:
+            return self._scheme_backward(layer, g)
         self.on_phase(f"epoch {self.epoch} backward exchange, layer {layer}")
         width = g.shape[1]
         with self.profile.phase("compute"):
@@ -112,6 +130,88 @@ class HaloOps:
             add_csr_product(self.adj_own_t, g, out)
             for q in self.peers:
                 add_csr_product(self.scatter[q], incoming[q], out)
+            return out
+
+
+    # ------------------------------------------------------------ under a halo scheme
+
+    def _choice(self) -> tuple[dict, dict]:
+        """This epoch's (send rows to q that q keeps, positions in my halo I keep from q)."""
+        if self._chosen is None or self._chosen[0] != self.epoch:
+            sh, keep = self.shard, self.scheme.keep
+            send = {}
+            kept = {}
+            for q in self.peers:
+                idx = self.send_idx[q]
+                send[q] = idx[halo_keep_mask(self.seed, self.epoch, q, sh.owned[idx], keep)]
+                sl = self.halo_rows[q]
+                pos = np.arange(sl.start, sl.stop)
+                kept[q] = pos[halo_keep_mask(self.seed, self.epoch, sh.worker, sh.halo[pos],
+                                             keep)]
+            self._chosen = (self.epoch, send, kept)
+        return self._chosen[1], self._chosen[2]
+
+    def _encode(self, rows: np.ndarray, layer: int, direction: str, ids: np.ndarray):
+        if self.format is None:
+            return rows
+        return compress.encode(rows, self.format, compress.RowKey(
+            self.seed, self.epoch, layer, direction, self.shard.worker, ids))
+
+    def _recv_block(self, rows: int, width: int) -> np.ndarray:
+        if self.format is None:
+            return np.empty((rows, width), dtype=self.dtype)
+        return compress.wire_array(rows, width, self.format)
+
+    def _decode(self, wire: np.ndarray, width: int) -> np.ndarray:
+        if self.format is None:
+            return wire
+        return compress.decode(wire, self.format, width, self.dtype)
+
+    def _scheme_forward(self, layer: int, m: np.ndarray) -> np.ndarray:
+        self.on_phase(f"epoch {self.epoch} {FORWARD} exchange, layer {layer}")
+        width = m.shape[1]
+        with self.profile.phase("compute"):
+            m = np.ascontiguousarray(m, dtype=self.dtype)
+            send, kept = self._choice()
+            owned = self.shard.owned
+            outgoing = {q: self._encode(np.take(m, send[q], axis=0), layer, FORWARD,
+                                        owned[send[q]]) for q in self.peers}
+            incoming = {q: self._recv_block(kept[q].shape[0], width) for q in self.peers}
+        with self.profile.phase("exchange"):
+            self.transport.exchange(outgoing, incoming, kind=KIND_HALO, epoch=self.epoch,
+                                    layer=layer, direction=FORWARD)
+        self.on_phase(f"epoch {self.epoch} compute")
+        with self.profile.phase("compute"):
+            halo = np.zeros((self.n_local - self.n_owned, width), dtype=self.dtype)
+            scale = self.dtype.type(keep_scale(self.scheme.keep))
+            for q in self.peers:
+                halo[kept[q]] = self._decode(incoming[q], width) * scale
+            z = np.zeros((self.n_owned, width), dtype=self.dtype)
+            add_csr_product(self.adj_own, m, z)
+            add_csr_product(self.adj_halo, halo, z)
+            return z
+
+    def _scheme_backward(self, layer: int, g: np.ndarray) -> np.ndarray:
+        self.on_phase(f"epoch {self.epoch} {BACKWARD} exchange, layer {layer}")
+        width = g.shape[1]
+        with self.profile.phase("compute"):
+            g = np.ascontiguousarray(g, dtype=self.dtype)
+            send, kept = self._choice()
+            halo = np.zeros((self.n_local - self.n_owned, width), dtype=self.dtype)
+            add_csr_product(self.adj_halo_t, g, halo)
+            scale = self.dtype.type(keep_scale(self.scheme.keep))
+            outgoing = {q: self._encode(halo[kept[q]] * scale, layer, BACKWARD,
+                                        self.shard.halo[kept[q]]) for q in self.peers}
+            incoming = {q: self._recv_block(send[q].shape[0], width) for q in self.peers}
+        with self.profile.phase("exchange"):
+            self.transport.exchange(outgoing, incoming, kind=KIND_HALO, epoch=self.epoch,
+                                    layer=layer, direction=BACKWARD)
+        self.on_phase(f"epoch {self.epoch} compute")
+        with self.profile.phase("compute"):
+            out = np.zeros((self.n_owned, width), dtype=self.dtype)
+            add_csr_product(self.adj_own_t, g, out)
+            for q in self.peers:
+                out[send[q]] += self._decode(incoming[q], width)   # unique rows per peer
             return out
 
 

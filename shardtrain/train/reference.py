@@ -64,7 +64,8 @@ def train_reference(graph: Graph, settings: TrainSettings, *, init_params=None,
                     init_adam: dict | None = None, first_epoch: int = 1,
                     on_epoch: Callable[[dict], None] | None = None,
                     on_epoch_end: Callable | None = None,
-                    reorder: bool = True, init_early: dict | None = None) -> RunResult:
+                    reorder: bool = True, init_early: dict | None = None,
+                    training_products: Callable | None = None) -> RunResult:
     """Train epochs first_epoch..settings.epochs; record the loss and accuracies of each.
 
     loss = the objective of that step's forward pass (cross-entropy + weight-decay penalty
@@ -83,6 +84,9 @@ def train_reference(graph: Graph, settings: TrainSettings, *, init_params=None,
     stopping it is called as `on_epoch_end(epoch, params, adam, early=EarlyStop,
     last=bool)` (`checkpoint.epoch_writer` takes both).
     `reorder=False` keeps rows in id order (same maths, slower products).
+    `training_products(epoch)` -> (propagate, propagate_t), rows in id order (so it implies
+    `reorder=False`): the products of that epoch's training step instead of Â's
+    (`single_process.SchemeProducts.epoch`, a halo scheme); the evaluation stays Â.
     """
     from threadpoolctl import threadpool_limits
 
@@ -92,7 +96,8 @@ def train_reference(graph: Graph, settings: TrainSettings, *, init_params=None,
         raise ValueError(f"first_epoch {first_epoch} is not in 1..{settings.epochs}")
     with threadpool_limits(limits=settings.threads):
         return _train(graph, settings, init_params, init_adam, first_epoch, on_epoch,
-                      on_epoch_end, reorder, init_early)
+                      on_epoch_end, reorder and training_products is None, init_early,
+                      training_products)
 
 
 def check_early_stop(graph: Graph, settings: TrainSettings) -> None:
@@ -105,7 +110,7 @@ def check_early_stop(graph: Graph, settings: TrainSettings) -> None:
 
 
 def _train(graph, settings, init_params, init_adam, first_epoch, on_epoch, on_epoch_end,
-           reorder, init_early) -> RunResult:
+           reorder, init_early, training_products=None) -> RunResult:
     check_early_stop(graph, settings)
     dtype = settings.np_dtype
     n = graph.num_vertices
@@ -153,8 +158,10 @@ def _train(graph, settings, init_params, init_adam, first_epoch, on_epoch, on_ep
         start = time.perf_counter()
         penalty = model.weight_decay_penalty(params, settings.weight_decay)
         drop = model.Dropout(settings.seed, epoch, settings.dropout, global_ids)
+        step, step_t = (propagate, propagate_t) if training_products is None \
+            else training_products(epoch)
         loss_part = model.train_step(params, adam, x, labels, masks[0], n_train, hops,
-                                     propagate, propagate_t, drop, _noop_allreduce,
+                                     step, step_t, drop, _noop_allreduce,
                                      settings.weight_decay)
         epoch_s = time.perf_counter() - start
         logits, _ = model.forward(params, x, hops, propagate, model.no_dropout)

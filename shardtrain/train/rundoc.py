@@ -4,7 +4,7 @@ One layout for every producer (pipes, MPI, the demo) and one naming of the graph
 for every JSON we write: `graph.vertices` and `graph.edges`, as the survey has them.
 
     {"settings": {...}, "graph": {"source" | "shard_dir", "vertices", ["edges"], ...},
-     "mode": "reference" | "partitioned", "epochs": [...],
+     "mode": "reference" | "partitioned" | "single-process", "epochs": [...],
      "early_stop": null | {"patience", "best_epoch", "best_val_loss", "stopped_at",
                            "weights": "best epoch"},
      partitioned only: "traffic", "workers", "profile";
@@ -14,7 +14,7 @@ from __future__ import annotations
 
 from shardtrain.data.graph import structure_fingerprint
 
-MODES = ("reference", "partitioned")
+MODES = ("reference", "partitioned", "single-process")
 
 
 def graph_of_file(source, graph, notes=()) -> dict:

@@ -16,6 +16,7 @@ import numpy as np
 
 from shardtrain import defaults
 from shardtrain.errors import InputError, ParameterError
+from shardtrain.plan.schemes import HaloScheme
 
 DTYPES = ("float32", "float64")
 
@@ -33,6 +34,8 @@ class TrainSettings:
     bias: bool = defaults.BIAS
     early_stop: int = defaults.EARLY_STOP
     threads: int = defaults.THREADS
+    halo_keep: float = defaults.HALO_KEEP          # plan.schemes.HaloScheme
+    halo_format: str | None = defaults.HALO_FORMAT
 
     def validate(self) -> "TrainSettings":
         """Raise a ParameterError naming the first bad setting (the CLI names its option)."""
@@ -58,7 +61,13 @@ class TrainSettings:
              "an integer >= 0 (0: off)", self.early_stop)
         need(_is_int(self.threads) and 1 <= self.threads <= max_threads(), "threads",
              f"an integer in 1..{max_threads()} (4 x this machine's cores)", self.threads)
+        HaloScheme(self.halo_keep, self.halo_format).check()
         return self
+
+    @property
+    def scheme(self) -> HaloScheme:
+        """The halo scheme of the training exchanges (`plan.schemes`)."""
+        return HaloScheme(self.halo_keep, self.halo_format)
 
     @property
     def np_dtype(self) -> np.dtype:

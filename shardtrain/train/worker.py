@@ -16,7 +16,7 @@ from typing import Callable
 import numpy as np
 
 from shardtrain.errors import ParameterError
-from shardtrain.plan import schedule
+from shardtrain.plan import schedule, schemes
 from shardtrain.plan.schedule import layer_dims, layer_hops
 from shardtrain.train import model, stopping
 from shardtrain.train.halo import EVAL, FORWARD, HaloOps
@@ -120,7 +120,8 @@ def run_worker(shard, settings: TrainSettings, transport: Transport, profile,
     totals = [0 if m is None else int(np.count_nonzero(m)) for m in masks]
     train_mask = shard.train_mask if shard.train_mask is not None \
         else np.zeros(shard.num_owned, dtype=bool)
-    ops = HaloOps(shard, transport, profile, dtype)
+    ops = HaloOps(shard, transport, profile, dtype, scheme=settings.scheme,
+                  seed=settings.seed)
     ops.on_phase = on_phase
     propagate_train, propagate_eval = ops.propagate(FORWARD), ops.propagate(EVAL)
 
@@ -203,6 +204,9 @@ def run_worker(shard, settings: TrainSettings, transport: Transport, profile,
         "send_ptr": [int(v) for v in shard.send_ptr],
         "halo_ptr": [int(v) for v in shard.halo_ptr],
         "epochs_run": epochs_run,
+        "halo_kept": schemes.worker_kept_rows(
+            shard.halo, shard.halo_ptr, shard.worker, settings.scheme, settings.seed,
+            range(epochs.start, epochs.start + epochs_run)).tolist(),
         "extra_evals": extra_evals,
         "early_stop": None if early is None else early.summary(),
     }

@@ -24,8 +24,10 @@ MAX_HEADER_BYTES = 4096          # a header is ~100 bytes; anything larger is ga
 DEFAULT_MAX_FRAME_BYTES = 1 << 31
 MAX_NAME_CHARS = 64
 MAX_DIMS = 8
+# float16, uint16 and int8 carry compressed halo rows (bfloat16 travels as its uint16 bits)
 DTYPES: dict[str, np.dtype] = {"float32": np.dtype("<f4"), "float64": np.dtype("<f8"),
-                               "int64": np.dtype("<i8")}
+                               "int64": np.dtype("<i8"), "float16": np.dtype("<f2"),
+                               "uint16": np.dtype("<u2"), "int8": np.dtype("i1")}
 HEADER_KEYS = ("kind", "epoch", "layer", "direction", "source", "dtype", "shape", "nbytes")
 
 
