@@ -22,6 +22,7 @@ FLAGS = {
     "early_stop": "--early-stop", "threads": "--threads",
     # halo schemes (plan.schemes.HaloScheme; train, survey, forecast, sweep)
     "halo_keep": "--halo-keep", "halo_format": "--halo-format",
+    "halo_stale": "--halo-stale", "halo_smooth": "--halo-smooth",
     # a training run (train.api.RunConfig, api.run's transport)
     "transport": "--transport", "timeout_s": "--timeout", "init_weights": "--init-weights",
     "checkpoint_every": "--checkpoint-every", "max_frame_bytes": "--max-frame-bytes",

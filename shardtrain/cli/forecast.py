@@ -248,8 +248,11 @@ def run(args) -> int:
         if args.measure_compute:
             raise InputError("--measure-compute: needs the graph (its shards are trained), "
                              f"not a survey JSON ({source})")
-        if (args.halo_keep, args.halo_format) != (defaults.HALO_KEEP, defaults.HALO_FORMAT):
-            raise InputError(f"--halo-keep/--halo-format: {source} is a survey, which carries "
+        if (args.halo_keep, args.halo_format, args.halo_stale, args.halo_smooth) != (
+                defaults.HALO_KEEP, defaults.HALO_FORMAT, defaults.HALO_STALE,
+                defaults.HALO_SMOOTH):
+            raise InputError(f"--halo-keep/--halo-format/--halo-stale: {source} is a survey, "
+                             f"which carries "
                              f"its own halo scheme (give them to `survey`)")
         survey_dict = _select(read_survey_json(source), workers, methods, source)
     cached = None

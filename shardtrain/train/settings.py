@@ -36,6 +36,8 @@ class TrainSettings:
     threads: int = defaults.THREADS
     halo_keep: float = defaults.HALO_KEEP          # plan.schemes.HaloScheme
     halo_format: str | None = defaults.HALO_FORMAT
+    halo_stale: bool = defaults.HALO_STALE
+    halo_smooth: float = defaults.HALO_SMOOTH
 
     def validate(self) -> "TrainSettings":
         """Raise a ParameterError naming the first bad setting (the CLI names its option)."""
@@ -61,13 +63,13 @@ class TrainSettings:
              "an integer >= 0 (0: off)", self.early_stop)
         need(_is_int(self.threads) and 1 <= self.threads <= max_threads(), "threads",
              f"an integer in 1..{max_threads()} (4 x this machine's cores)", self.threads)
-        HaloScheme(self.halo_keep, self.halo_format).check()
+        self.scheme.check()
         return self
 
     @property
     def scheme(self) -> HaloScheme:
         """The halo scheme of the training exchanges (`plan.schemes`)."""
-        return HaloScheme(self.halo_keep, self.halo_format)
+        return HaloScheme(self.halo_keep, self.halo_format, self.halo_stale, self.halo_smooth)
 
     @property
     def np_dtype(self) -> np.dtype:
