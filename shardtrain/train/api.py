@@ -163,9 +163,9 @@ def check_config(config: RunConfig, transport: str = defaults.TRANSPORT) -> bool
     if config.single_process:
         _check_single_process(config, transport)
     if settings.halo_stale:
-        for option_name, given in (("checkpoint", config.checkpoint),
-                                   ("resume", config.resume)):
-            if given:
+        for option_name, path in (("checkpoint", config.checkpoint),
+                                  ("resume", config.resume)):
+            if path:
                 raise ParameterError(option_name, f"not available with "
                                                   f"{option('halo_stale')} (a "
                                            f"checkpoint does not hold the stale halo rows "
