@@ -99,8 +99,9 @@ def _stales(text: str | None) -> list[bool]:
 
 
 def axes_of(args) -> dict[str, list]:
-    axes = {"halo_keep": _keeps(args.halo_keep),
-            "halo_format": list(dict.fromkeys(_formats(args.halo_format, args.dtype)))}
+    axes: dict[str, list] = {
+        "halo_keep": _keeps(args.halo_keep),
+        "halo_format": list(dict.fromkeys(_formats(args.halo_format, args.dtype)))}
     if args.halo_stale is not None:
         axes["halo_stale"] = _stales(args.halo_stale)
     return axes
