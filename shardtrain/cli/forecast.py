@@ -217,6 +217,10 @@ def table_rows(result: dict) -> list[dict]:
 
 def summary_lines(result: dict) -> list[str]:
     out = []
+    if (result.get("model", {}).get("halo_scheme") or {}).get("halo_stale"):
+        out.append("stale halos: each worker's epoch is the larger of its compute and its "
+                   "halo exchanges (which overlap), plus the all-reduce; epoch 1 (the "
+                   "synchronous warm-up) costs the plan's 'stale.synchronous_epoch_s'")
     f = result["fastest"]
     if f:
         out.append(f"fastest: {f['method']} on {f['workers']} workers at "
