@@ -111,6 +111,18 @@ def test_stale_with_the_other_schemes_equals_its_single_process_formulation(
         stale=False, keep=keep, fmt=fmt), a), first=1) > 1e-6
 
 
+def test_an_early_stop_waits_for_the_exchanges_it_started(tmp_path, graph):
+    # the run stops after the epoch it decided on; that epoch's started exchanges are
+    # waited for and counted, so the payload still equals the prediction
+    s = settings(keep=0.5, early_stop=1, epochs=30, lr=0.2)
+    a = assignment(graph, 3, "random")
+    run, _ = run_partitioned(tmp_path, graph, a, 3, s)
+    single = train_single_process(graph, s, a)
+    assert len(run.epochs) < 30
+    assert_same_run(run, single)
+    check_payload(run)
+
+
 def test_a_formulation_with_the_wrong_keep_epoch_is_told_apart(tmp_path, graph, monkeypatch):
     # the check can fail: a single-process formulation propagating with epoch t's keep set
     # (instead of the stale rows' epoch t-1) differs from the workers'
@@ -299,7 +311,6 @@ def test_the_library_names_the_parameter():
 
 # ---------------------------------------------------------------- the sweep
 
-@pytest.mark.slow
 def test_sweep_compares_stale_off_and_on(tmp_path, graph):
     path = tmp_path / "g.npz"
     save_graph(path, graph)
