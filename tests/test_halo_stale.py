@@ -309,6 +309,30 @@ def test_the_library_names_the_parameter():
         assert err.value.param == param
 
 
+# ---------------------------------------------------------------- accuracy, external anchor
+
+@pytest.mark.slow
+def test_stale_halos_still_beat_the_edgeless_model_on_digits():
+    # scikit-learn's digits as a 10-NN graph (helpers.digits_graphs, as in
+    # tests/test_model_accuracy.py): the GCN under stale halos, alone and with sampling and
+    # int8 rows, still beats the same network without edges by >= 5 points
+    from helpers import digits_graphs
+
+    from shardtrain.plan.partition import partition
+
+    gcn_graph, mlp_graph = digits_graphs()
+    mlp = train_reference(mlp_graph, TrainSettings(seed=0)).epochs[-1]["test_acc"]
+    a = np.asarray(partition(gcn_graph, "metis", 4, seed=0, imbalance=0.03))
+    for keep, fmt, smooth in [(1.0, None, 0.0), (1.0, None, 0.9), (0.1, "int8", 0.0)]:
+        s = TrainSettings(seed=0, halo_keep=keep, halo_format=fmt, halo_stale=True,
+                          halo_smooth=smooth)               # GCN paper settings otherwise
+        acc = train_single_process(gcn_graph, s, a).epochs[-1]["test_acc"]
+        print(f"digits, stale, keep {keep}, format {fmt}, smooth {smooth}: GCN {acc:.3f}, "
+              f"edgeless {mlp:.3f}")
+        # margin of 0.05 as in tests/test_model_accuracy.py (common practice)
+        assert acc >= mlp + 0.05, (keep, fmt, smooth)
+
+
 # ---------------------------------------------------------------- the sweep
 
 def test_sweep_compares_stale_off_and_on(tmp_path, graph):
