@@ -18,6 +18,10 @@ training exchanges go through `_stale_forward` / `_stale_backward`: epoch t's ro
 with `exchange_start` as soon as they are computed and the handle is waited for when epoch
 t+1 needs them; epoch t computes with the rows epoch t-1 sent (the first epoch exchanges
 synchronously and keeps its rows for the next). `finish()` waits for the last epoch's.
+Every stale product first calls `done()` on the outstanding handles (`_poll`): under MPI a
+large message moves only while the library is entered, so this lets it progress between
+the model's kernels (setting MPIR_CVAR_ASYNC_PROGRESS=1 in mpich's environment gives it a
+thread of its own instead).
 """
 from __future__ import annotations
 
