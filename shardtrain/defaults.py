@@ -25,6 +25,8 @@ HEADS = 8                              # GAT heads per hidden layer (Velickovic 
 # halo schemes (plan.schemes.HaloScheme): every halo row kept, in the training dtype (exact)
 HALO_KEEP = 1.0
 HALO_FORMAT: str | None = None
+HALO_STALE = False          # synchronous halo exchanges
+HALO_SMOOTH = 0.0           # no moving average of stale halo rows
 
 # a training run (train.api.RunConfig, train.session, cli/train.py)
 TRANSPORT = "pipes"                    # worker processes on this machine

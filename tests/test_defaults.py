@@ -20,12 +20,14 @@ def test_training_defaults_are_the_gcn_papers():
         "layers": d.LAYERS, "hidden": d.HIDDEN, "dropout": d.DROPOUT, "lr": d.LR,
         "weight_decay": d.WEIGHT_DECAY, "epochs": d.EPOCHS, "seed": d.SEED, "dtype": d.DTYPE,
         "bias": d.BIAS, "early_stop": d.EARLY_STOP, "threads": d.THREADS, "model": d.MODEL,
-        "heads": d.HEADS, "halo_keep": d.HALO_KEEP, "halo_format": d.HALO_FORMAT}
+        "heads": d.HEADS, "halo_keep": d.HALO_KEEP, "halo_format": d.HALO_FORMAT,
+        "halo_stale": d.HALO_STALE, "halo_smooth": d.HALO_SMOOTH}
     # the model family's defaults: GCN as before; GAT's 8 heads on hidden layers
     # (Velickovic et al., ICLR 2018, transductive setup, from memory)
     assert (d.MODEL, d.HEADS) == ("gcn", 8)
-    # halo schemes off by default: every halo row, in the training dtype (exact)
-    assert (d.HALO_KEEP, d.HALO_FORMAT) == (1.0, None)
+    # halo schemes off by default: every halo row, in the training dtype, synchronous
+    assert (d.HALO_KEEP, d.HALO_FORMAT, d.HALO_STALE, d.HALO_SMOOTH) == (1.0, None, False,
+                                                                         0.0)
 
 
 def test_settings_values_read_the_defaults():

@@ -199,8 +199,19 @@ def add_scheme_arguments(parser: argparse.ArgumentParser) -> None:
                         help=f"wire format of training halo rows: {', '.join(FORMATS)} "
                              "(int8: a float32 scale per row, stochastic rounding); default: "
                              "the training dtype (exact)")
+    parser.add_argument("--halo-stale", action="store_true",
+                        help="stale halos with an overlapped exchange (Wan et al., PipeGCN, "
+                             "ICLR 2022): epoch t uses the halo rows and gradients of epoch "
+                             "t-1, so each epoch's exchange runs while the next computes; "
+                             "epoch 1 exchanges synchronously")
+    parser.add_argument("--halo-smooth", type=float_type("--halo-smooth"),
+                        default=defaults.HALO_SMOOTH, metavar="GAMMA",
+                        help="with --halo-stale: use a moving average of the stale rows, "
+                             "U = GAMMA U + (1 - GAMMA) rows, 0 <= GAMMA < 1 (default "
+                             f"{defaults.HALO_SMOOTH:g}: none)")
 
 
 def scheme_settings(args: argparse.Namespace) -> dict:
     """The settings fields of the scheme options."""
-    return {"halo_keep": args.halo_keep, "halo_format": args.halo_format}
+    return {"halo_keep": args.halo_keep, "halo_format": args.halo_format,
+            "halo_stale": bool(args.halo_stale), "halo_smooth": args.halo_smooth}

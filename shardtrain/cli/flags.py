@@ -23,6 +23,7 @@ FLAGS = {
     "heads": "--heads",
     # halo schemes (plan.schemes.HaloScheme; train, survey, forecast, sweep)
     "halo_keep": "--halo-keep", "halo_format": "--halo-format",
+    "halo_stale": "--halo-stale", "halo_smooth": "--halo-smooth",
     # a training run (train.api.RunConfig, api.run's transport)
     "transport": "--transport", "timeout_s": "--timeout", "init_weights": "--init-weights",
     "checkpoint_every": "--checkpoint-every", "max_frame_bytes": "--max-frame-bytes",

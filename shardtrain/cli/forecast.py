@@ -242,6 +242,10 @@ def table_rows(result: dict) -> list[dict]:
 
 def summary_lines(result: dict) -> list[str]:
     out = []
+    if (result.get("model", {}).get("halo_scheme") or {}).get("halo_stale"):
+        out.append("stale halos: each worker's epoch is the larger of its compute and its "
+                   "halo exchanges (which overlap), plus the all-reduce; epoch 1 (the "
+                   "synchronous warm-up) costs the plan's 'stale.synchronous_epoch_s'")
     f = result["fastest"]
     if f:
         out.append(f"fastest: {f['method']} on {f['workers']} workers at "
@@ -349,8 +353,11 @@ def run(args) -> int:
         if args.measure_compute:
             raise InputError("--measure-compute: needs the graph (its shards are trained), "
                              f"not a survey JSON ({source})")
-        if (args.halo_keep, args.halo_format) != (defaults.HALO_KEEP, defaults.HALO_FORMAT):
-            raise InputError(f"--halo-keep/--halo-format: {source} is a survey, which carries "
+        if (args.halo_keep, args.halo_format, args.halo_stale, args.halo_smooth) != (
+                defaults.HALO_KEEP, defaults.HALO_FORMAT, defaults.HALO_STALE,
+                defaults.HALO_SMOOTH):
+            raise InputError(f"--halo-keep/--halo-format/--halo-stale: {source} is a survey, "
+                             f"which carries "
                              f"its own halo scheme (give them to `survey`)")
         survey_dict = _select(read_survey_json(source), workers, methods, source)
     cached = None

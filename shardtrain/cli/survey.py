@@ -265,10 +265,11 @@ def _run(args, group=None, agree=None) -> int:
     if is_shard_dir(args.graph):
         return _run_shard_dir(args, settings)
     if is_graph_dir(args.graph):
-        if (settings.halo_keep, settings.halo_format) != (defaults.HALO_KEEP,
-                                                          defaults.HALO_FORMAT):
-            raise InputError(f"--halo-keep/--halo-format: not available for a graph "
-                             f"directory ({args.graph}): survey a graph file")
+        if (settings.halo_keep, settings.halo_format, settings.halo_stale,
+                settings.halo_smooth) != (defaults.HALO_KEEP, defaults.HALO_FORMAT,
+                                          defaults.HALO_STALE, defaults.HALO_SMOOTH):
+            raise InputError(f"--halo-keep/--halo-format/--halo-stale: not available for a "
+                             f"graph directory ({args.graph}): survey a graph file")
         return _run_graph_dir(args, methods, workers, settings, budget, group, agree)
     loaded = load_graph_from_args(args)
     graph = loaded.graph
@@ -404,7 +405,9 @@ def _report(args, result: dict) -> None:
     scheme = m.get("halo_scheme")
     if scheme is not None:
         print(f"halo scheme: keep {scheme['halo_keep']:g}, format "
-              f"{scheme['halo_format'] or m['dtype']}: fwd/bwd are the expected halo payload "
+              f"{scheme['halo_format'] or m['dtype']}"
+              f"{', stale' if scheme.get('halo_stale') else ''}: fwd/bwd are the expected "
+              f"halo payload "
               f"of a training epoch; the {scheme['epochs']}-epoch run with seed "
               f"{scheme['seed']} sends exactly (training halo rows, all epochs):")
         for p in result["plans"]:

@@ -41,6 +41,9 @@ def add_arguments(parser) -> None:
     add("--halo-format", default=None, metavar="F,F,...",
         help="wire formats of training halo rows to compare (float32, float16, bfloat16, "
              "int8; default: the training dtype, exact)")
+    add("--halo-stale", default=None, metavar="off,on",
+        help="synchronous (off) and/or stale halos with an overlapped exchange (on) to "
+             "compare (default: off)")
     add("--epochs", type=positive_int_type("--epochs"), default=defaults.EPOCHS,
         help=f"training epochs of every run (default {defaults.EPOCHS})")
     add("--layers", type=positive_int_type("--layers"), default=defaults.LAYERS,
@@ -81,9 +84,27 @@ def _formats(text: str | None, dtype: str) -> list[str | None]:
     return [None if f == dtype else f for f in parse_name_list(text, "--halo-format")]
 
 
+STALE_WORDS = {"off": False, "on": True}
+
+
+def _stales(text: str | None) -> list[bool]:
+    if text is None:
+        return [defaults.HALO_STALE]
+    out = []
+    for item in parse_name_list(text, "--halo-stale"):
+        if item not in STALE_WORDS:
+            raise InputError(f"--halo-stale {item!r}: expected off or on")
+        out.append(STALE_WORDS[item])
+    return list(dict.fromkeys(out))
+
+
 def axes_of(args) -> dict[str, list]:
-    return {"halo_keep": _keeps(args.halo_keep),
-            "halo_format": list(dict.fromkeys(_formats(args.halo_format, args.dtype)))}
+    axes: dict[str, list] = {
+        "halo_keep": _keeps(args.halo_keep),
+        "halo_format": list(dict.fromkeys(_formats(args.halo_format, args.dtype)))}
+    if args.halo_stale is not None:
+        axes["halo_stale"] = _stales(args.halo_stale)
+    return axes
 
 
 def config_of(args) -> api.RunConfig:

@@ -352,6 +352,12 @@ def _worker_table(rows: list[dict]) -> str:
     cols = [(key, head, human_bytes if key in ("bytes_sent", "bytes_received",
                                                "peak_rss_bytes") else fmt)
             for key, head, fmt in WORKER_COLUMNS]
+    if any(r.get("exchange_in_flight_s") for r in rows):
+        # started exchanges (--halo-stale): their time in flight and the part hidden
+        # behind the worker's compute (transport.meter.Profile "overlap")
+        at = [c[0] for c in cols].index("wait_s") + 1
+        cols[at:at] = [("exchange_in_flight_s", "in flight s", "{:.3f}"),
+                       ("hidden_exchange_s", "hidden s", "{:.3f}")]
     return format_table(rows, cols)
 
 

@@ -33,8 +33,37 @@ bfloat16 or int8 (`FORMATS`); None means the training dtype (exact). The codecs 
 `row_bytes(width)` = width * 4 (float32), width * 2 (float16, bfloat16: uint16 on the
 wire), width + 4 (int8: one byte per entry plus a float32 scale per row).
 
-Room for later schemes: a stale-halo setting becomes one more field of `HaloScheme`
-(validated in `check`), read where the exchange is made.
+Stale halos with an overlapped exchange (`stale`): Wan et al., "PipeGCN: Efficient
+Full-Graph Training of Graph Convolutional Networks with Pipelined Feature Communication",
+ICLR 2022. Definition implemented (from memory of the paper; the warm-up and the rule under
+sampling are ours, stated here): training epoch t uses, for every layer, the halo rows and
+the halo gradients that epoch t-1 computed, so the exchange of epoch t's rows is started as
+soon as they are computed and only has to complete before epoch t+1 needs them: it runs
+while the rest of epoch t (and its evaluation) computes. Per layer l of epoch t >= 2, on
+worker p:
+- forward:  Z = A_oo M(t) + A_oh H(t-1), H(t-1) the rows of M(t-1) its owners sent in
+  epoch t-1; the rows of M(t) are sent now, for epoch t+1;
+- backward: out = A_ooᵀ G(t) + Σ_q (the gradients q computed for p's rows in epoch t-1);
+  p's own halo gradients (A_ohᵀ G(t)) are sent now, for epoch t+1.
+So the step is NOT the gradient of its own forward (stale gradients, as in the paper).
+Epoch 1 (the warm-up) exchanges synchronously, exactly, and its rows serve epoch 1 and
+again epoch 2: the paper starts its pipeline the same way (from memory), and zeros instead
+would make epoch 1 a model without edges between shards, a large spurious error. Every
+epoch (the last one too, its rows then unused; it is waited for after the loop) exchanges
+its rows once, so without sampling the payload of every epoch is the synchronous run's.
+Under sampling (`keep` < 1) the halo of epoch t-1 is used whole: the halo vertices kept,
+their 1/P scale AND their rows. The forward exchange of epoch t carries the rows kept under
+epoch t's key (as the synchronous run); epoch t's propagation uses the sampled Â_P of
+epoch s(t) = max(t-1, 1) (the keep set of the rows it holds), forward and backward; so the
+BACKWARD exchange of epoch t carries the gradients of the halo columns kept in epoch s(t):
+epochs 1 and 2 both send epoch 1's kept rows, epoch t >= 2 sends epoch t-1's
+(`backward_keep_epochs`). Compressed rows are encoded under the key of the epoch that
+sends them.
+Smoothing (`smooth` = γ > 0, the paper's smoothing variant, from memory): what epoch t uses
+is an exponential moving average of the stale rows, U(1) = R(1) (the warm-up's rows), U(t)
+= γ U(t-1) + (1 - γ) R(t-1) for t >= 2, R the received rows (decoded), kept per halo row
+forward and per (owner row, sending peer) backward. It needs `stale` and every halo row
+(keep 1: a sampled row has no running average). 0 <= γ < 1; 0 is plain stale.
 """
 from __future__ import annotations
 
@@ -63,10 +92,14 @@ DIRECTION_CODES = {"forward": 1, "backward": 2}
 @dataclass(frozen=True)
 class HaloScheme:
     """keep: fraction P of halo vertices each worker keeps per epoch (0 < P <= 1);
-    format: wire format of training halo rows (None: the training dtype, exact)."""
+    format: wire format of training halo rows (None: the training dtype, exact);
+    stale: epoch t uses epoch t-1's halo rows and gradients, exchanged meanwhile;
+    smooth: γ of the moving average of stale rows (0: none)."""
 
     keep: float = defaults.HALO_KEEP
     format: str | None = defaults.HALO_FORMAT
+    stale: bool = defaults.HALO_STALE
+    smooth: float = defaults.HALO_SMOOTH
 
     def check(self) -> "HaloScheme":
         """ParameterError naming `halo_keep` or `halo_format`."""
@@ -78,6 +111,19 @@ class HaloScheme:
         if self.format is not None and self.format not in FORMATS:
             raise ParameterError("halo_format", f"expected one of {', '.join(FORMATS)}",
                                  value=repr(self.format))
+        if not isinstance(self.stale, (bool, np.bool_)):
+            raise ParameterError("halo_stale", "must be true or false", value=repr(self.stale))
+        g = self.smooth
+        if (isinstance(g, bool) or not isinstance(g, (int, float, np.integer, np.floating))
+                or not np.isfinite(g) or not 0 <= g < 1):
+            raise ParameterError("halo_smooth", "must be a factor γ with 0 <= γ < 1",
+                                 value=repr(g))
+        if g and not self.stale:
+            raise ParameterError("halo_smooth", "smooths stale halo rows: give "
+                                 "halo_stale as well", value=repr(g))
+        if g and self.sampled:
+            raise ParameterError("halo_smooth", "needs every halo row kept (halo_keep 1): "
+                                 "a sampled row has no running average", value=repr(g))
         return self
 
     @property
@@ -89,7 +135,7 @@ class HaloScheme:
         return self.format is not None and self.format != np.dtype(dtype).name
 
     def exact(self, dtype) -> bool:
-        return not self.sampled and not self.compressed(dtype)
+        return not self.sampled and not self.compressed(dtype) and not self.stale
 
     def wire_dtype(self, dtype) -> np.dtype:
         return np.dtype(dtype) if not self.compressed(dtype) else WIRE_DTYPES[str(self.format)]
@@ -109,21 +155,45 @@ class HaloScheme:
         return int(width)
 
     def to_dict(self) -> dict:
-        return {"halo_keep": float(self.keep), "halo_format": self.format}
+        return {"halo_keep": float(self.keep), "halo_format": self.format,
+                "halo_stale": bool(self.stale), "halo_smooth": float(self.smooth)}
 
 
 def scheme_of(settings) -> HaloScheme:
     """The scheme a TrainSettings (or SurveySettings) describes, checked. The schemes and
     their single-process formulation are written for GCN's Â: another model refuses one."""
     scheme = HaloScheme(getattr(settings, "halo_keep", defaults.HALO_KEEP),
-                        getattr(settings, "halo_format", defaults.HALO_FORMAT)).check()
+                        getattr(settings, "halo_format", defaults.HALO_FORMAT),
+                        bool(getattr(settings, "halo_stale", defaults.HALO_STALE)),
+                        getattr(settings, "halo_smooth", defaults.HALO_SMOOTH)).check()
     model = getattr(settings, "model", defaults.MODEL)
     dtype = np.dtype(getattr(settings, "dtype", defaults.DTYPE))
     if model != "gcn" and not scheme.exact(dtype):
-        param = "halo_keep" if scheme.sampled else "halo_format"
+        param = ("halo_keep" if scheme.sampled else
+                 "halo_stale" if scheme.stale else "halo_format")
         raise ParameterError(param, f"a halo scheme is available with {option('model')} gcn "
                                     f"only (got {option('model')} {model})")
     return scheme
+
+
+def scheme_of_entry(entry: dict | None) -> HaloScheme:
+    """The scheme of a document's "halo_scheme" entry (a survey's, a run's), checked."""
+    entry = entry or {}
+    return HaloScheme(entry.get("halo_keep", defaults.HALO_KEEP),
+                      entry.get("halo_format", defaults.HALO_FORMAT),
+                      bool(entry.get("halo_stale", defaults.HALO_STALE)),
+                      entry.get("halo_smooth", defaults.HALO_SMOOTH)).check()
+
+
+def keep_epoch_used(epoch: int, stale: bool, first: int = 1) -> int:
+    """The epoch whose keep set (and, stale, rows) training `epoch` propagates with:
+    itself, or under `stale` s(t) = max(t - 1, first)."""
+    return max(epoch - 1, first) if stale else epoch
+
+
+def backward_keep_epochs(epochs: range, stale: bool) -> list[int]:
+    """The keep epoch of each epoch's BACKWARD exchange (see the module text)."""
+    return [keep_epoch_used(e, stale, epochs.start) for e in epochs]
 
 
 # ---------------------------------------------------------------- keyed hashes
@@ -206,23 +276,34 @@ def kept_halo_rows(halos: list[np.ndarray], halo_ptrs: list, scheme: HaloScheme,
                      for p, (h, ptr) in enumerate(zip(halos, halo_ptrs))], axis=1)
 
 
+def backward_kept(kept: np.ndarray, scheme: HaloScheme) -> np.ndarray:
+    """The kept rows of each epoch's BACKWARD exchange, from `kept` of the epochs
+    start.. (axis 0) of a run that started at epoch 1: `kept` itself, or under `stale`
+    row i = kept[max(i - 1, 0)] (`backward_keep_epochs`)."""
+    if not scheme.stale or kept.shape[0] == 0:
+        return kept
+    return kept[[max(i - 1, 0) for i in range(kept.shape[0])]]
+
+
 def scheme_payload_breakdown(kept: np.ndarray, halo_rows: np.ndarray, hops: list[LayerHop],
                              dtype, scheme: HaloScheme, *, evals: int) -> dict:
     """Predicted halo payload of a run under `scheme` per (src, dst, kind, layer,
     direction), the trainer's counter keys: training epoch e sends, forward, q -> p
-    kept[e, p, q] rows of `forward_width` and, backward, p -> q as many rows of
-    `backward_width`, each of `scheme.row_bytes`; every evaluation forward sends the full
-    halo (`halo_rows[p, q]` rows q -> p) in the training dtype. Halo keys only (the
-    all-reduce is the survey's own); pairs with nothing sent are left out."""
+    kept[e, p, q] rows of `forward_width` and, backward, p -> q `backward_kept`'s rows
+    of `backward_width` (stale: those of epoch s(e)), each of `scheme.row_bytes`; every
+    evaluation forward sends the full halo (`halo_rows[p, q]` rows q -> p) in the
+    training dtype. Halo keys only (the all-reduce is the survey's own); pairs with
+    nothing sent are left out."""
     itemsize = np.dtype(dtype).itemsize
     rows = kept.sum(axis=0)                    # (k, k): p's kept halo rows owned by q
+    rows_b = backward_kept(kept, scheme).sum(axis=0)
     out: dict[tuple, int] = {}
     k = halo_rows.shape[0]
     for p in range(k):
         for q in np.flatnonzero(halo_rows[p] > 0).tolist():
             for h in hops:
                 fwd = int(rows[p, q]) * scheme.row_bytes(h.forward_width, dtype)
-                bwd = int(rows[p, q]) * scheme.row_bytes(h.backward_width, dtype)
+                bwd = int(rows_b[p, q]) * scheme.row_bytes(h.backward_width, dtype)
                 ev = evals * int(halo_rows[p, q]) * h.forward_width * itemsize
                 if fwd:
                     out[(q, p, KIND_HALO, h.layer, "forward")] = fwd
@@ -251,12 +332,13 @@ def plan_scheme_traffic(halos: list[np.ndarray], halo_ptrs: list, hops: list[Lay
     their sum, and the per-epoch expectation (`expected_epoch_halo_bytes`)."""
     kept = kept_halo_rows(halos, halo_ptrs, scheme, seed, range(1, epochs + 1))
     per_epoch_rows = kept.sum(axis=(1, 2))                      # (epochs,)
+    per_epoch_back = backward_kept(kept, scheme).sum(axis=(1, 2))
     fwd_row = sum(scheme.row_bytes(h.forward_width, dtype) for h in hops)
     bwd_row = sum(scheme.row_bytes(h.backward_width, dtype) for h in hops)
     halo_rows = np.stack([np.diff(np.asarray(p, dtype=np.int64)) for p in halo_ptrs])
     expected = expected_epoch_halo_bytes(halo_rows, hops, dtype, scheme)
     forward = (per_epoch_rows * fwd_row).astype(np.int64)
-    backward = (per_epoch_rows * bwd_row).astype(np.int64)
+    backward = (per_epoch_back * bwd_row).astype(np.int64)
     return {**scheme.to_dict(), "seed": int(seed), "epochs": int(epochs),
             "kept_fraction": keep_threshold(scheme.keep) / KEEP_ONE,
             "expected_forward_bytes": float(expected["forward_bytes"]),

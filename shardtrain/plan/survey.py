@@ -55,6 +55,8 @@ class SurveySettings:
     # halo scheme (plan.schemes.HaloScheme) and the epochs its payload is replayed over
     halo_keep: float = defaults.HALO_KEEP
     halo_format: str | None = defaults.HALO_FORMAT
+    halo_stale: bool = defaults.HALO_STALE
+    halo_smooth: float = defaults.HALO_SMOOTH
     epochs: int = defaults.EPOCHS
 
 

@@ -407,7 +407,10 @@ def scheme_label(scheme: dict) -> str:
         parts.append(f"keep {scheme['halo_keep']:g}")
     if scheme.get("halo_format") is not None:
         parts.append(str(scheme["halo_format"]))
-    parts += [f"{k} {v}" for k, v in scheme.items() if k not in ("halo_keep", "halo_format")]
+    if scheme.get("halo_stale"):
+        parts.append("stale")
+    parts += [f"{k} {v}" for k, v in scheme.items()
+              if k not in ("halo_keep", "halo_format", "halo_stale")]
     return ", ".join(parts) or "exact"
 
 

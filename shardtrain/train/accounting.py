@@ -127,7 +127,12 @@ def assemble_result(records, summaries, facts: ShardDirFacts, settings: TrainSet
                      "exchange_s": row["exchange_s"], "allreduce_s": row["allreduce_s"],
                      "wait_s": row["wait_s"], "bytes_sent": row["bytes_sent"],
                      "bytes_received": row["bytes_received"], "cpu_s": row["cpu_s"],
-                     "process_cpu_s": s["cpu_s"], "peak_rss_bytes": s["peak_rss_bytes"]})
+                     "process_cpu_s": s["cpu_s"], "peak_rss_bytes": s["peak_rss_bytes"],
+                     # started exchanges (a stale scheme): time in flight, and the part of
+                     # it the worker computed through (meter.Profile "overlap")
+                     "exchange_in_flight_s": s["profile"].get("overlap", {}).get(
+                         "in_flight_s", 0.0),
+                     "hidden_exchange_s": row["hidden_exchange_s"]})
     assert len(rows) == k
     profile = {key: v for key, v in merged.items() if key != "per_worker"}
     return PartitionedRunResult(records, params, predictions, traffic, rows, profile, labels,

@@ -166,8 +166,17 @@ def check_config(config: RunConfig, transport: str = defaults.TRANSPORT) -> bool
     settings = config.settings.validate()
     if config.single_process:
         _check_single_process(config, transport)
+    if settings.halo_stale:
+        for option_name, path in (("checkpoint", config.checkpoint),
+                                  ("resume", config.resume)):
+            if path:
+                raise ParameterError(option_name, f"not available with "
+                                                  f"{option('halo_stale')} (a "
+                                           f"checkpoint does not hold the stale halo rows "
+                                           f"the next epoch would use)")
     if config.reference and not settings.scheme.exact(settings.np_dtype):
-        name = "halo_keep" if settings.scheme.sampled else "halo_format"
+        name = ("halo_stale" if settings.scheme.stale else
+                "halo_keep" if settings.scheme.sampled else "halo_format")
         raise ParameterError(name, f"not available with {option('reference')} (no halo; "
                                    f"{option('single_process')} with {option('workers')} "
                                    f"computes a scheme's run in one process)")

@@ -47,9 +47,10 @@ _STATE_RE = re.compile(r"state-\d{6}\.npz")
 # settings a resume may change: how long the run goes on, how many BLAS threads it uses
 _FREE_SETTINGS = ("epochs", "threads")
 # settings older checkpoints do not record (what they trained with: GCN, where heads is moot;
-# every halo row, exact)
+# every halo row, exact, synchronous)
 _ABSENT_MEANS = {"early_stop": 0, "model": defaults.MODEL, "heads": defaults.HEADS,
-                 "halo_keep": 1.0, "halo_format": None}
+                 "halo_keep": 1.0, "halo_format": None, "halo_stale": False,
+                 "halo_smooth": 0.0}
 
 
 def state_file_name(epoch: int) -> str:

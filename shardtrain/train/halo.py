@@ -13,6 +13,15 @@ through `_scheme_forward` / `_scheme_backward`: only the halo rows the receiver 
 epoch cross the wire (the sender derives them from the receiver's key), kept halo columns
 are scaled by 1/P, and rows travel in the scheme's wire format (`train.compress`). The
 evaluation forward is always the exact exchange.
+Under a stale scheme (`HaloScheme.stale`, PipeGCN; definition in `plan/schemes.py`) the
+training exchanges go through `_stale_forward` / `_stale_backward`: epoch t's rows leave
+with `exchange_start` as soon as they are computed and the handle is waited for when epoch
+t+1 needs them; epoch t computes with the rows epoch t-1 sent (the first epoch exchanges
+synchronously and keeps its rows for the next). `finish()` waits for the last epoch's.
+Every stale product first calls `done()` on the outstanding handles (`_poll`): under MPI a
+large message moves only while the library is entered, so this lets it progress between
+the model's kernels (setting MPIR_CVAR_ASYNC_PROGRESS=1 in mpich's environment gives it a
+thread of its own instead).
 """
 from __future__ import annotations
 
@@ -22,7 +31,7 @@ import numpy as np
 import scipy.sparse as sp
 
 from shardtrain.compat import add_csr_product
-from shardtrain.plan.schemes import HaloScheme, halo_keep_mask, keep_scale
+from shardtrain.plan.schemes import HaloScheme, halo_keep_mask, keep_epoch_used, keep_scale
 from shardtrain.train import compress
 from shardtrain.transport.base import Transport
 from shardtrain.transport.wire import KIND_HALO
@@ -74,9 +83,15 @@ class HaloOps:
         self.seed = int(seed)
         self.exact = self.scheme.exact(self.dtype)
         self.format = str(self.scheme.format) if self.scheme.compressed(self.dtype) else None
-        self._chosen: tuple | None = None        # (epoch, send rows, halo positions)
+        self._choices: dict[int, tuple[dict, dict]] = {}   # epoch -> keep choices
         self._blocks: dict[tuple, np.ndarray] = {}
         self.on_phase: Callable[[str], None] = lambda text: None
+        # stale halos: (direction, layer) -> the exchange epoch t-1 started (or the
+        # warm-up's finished one), what epoch t uses; smoothing state per (direction, layer)
+        self.first_epoch = 1
+        self._pending: dict[tuple, _Sent] = {}
+        self._smoothed: dict[tuple, object] = {}
+        self._direct = not self.scheme.sampled and self.format is None
 
     def _block(self, key: tuple, rows: int, width: int) -> np.ndarray:
         buf = self._blocks.get(key)
@@ -85,6 +100,8 @@ class HaloOps:
         return buf
 
     def propagate(self, direction: str) -> Callable[[int, np.ndarray], np.ndarray]:
+        if direction == FORWARD and self.scheme.stale:
+            return self._stale_forward
         if direction == FORWARD and not self.exact:
             return self._scheme_forward
 
@@ -113,6 +130,8 @@ class HaloOps:
         return propagate
 
     def propagate_t(self, layer: int, g: np.ndarray) -> np.ndarray:
+        if self.scheme.stale:
+            return self._stale_backward(layer, g)
         if not self.exact:
             return self._scheme_backward(layer, g)
         self.on_phase(f"epoch {self.epoch} backward exchange, layer {layer}")
@@ -186,21 +205,26 @@ class HaloOps:
 
     # ------------------------------------------------------------ under a halo scheme
 
-    def _choice(self) -> tuple[dict, dict]:
-        """This epoch's (send rows to q that q keeps, positions in my halo I keep from q)."""
-        if self._chosen is None or self._chosen[0] != self.epoch:
+    def _choice(self, epoch: int | None = None) -> tuple[dict, dict]:
+        """The keep choices of `epoch` (default this epoch): (send rows to q that q keeps,
+        positions in my halo I keep from q). Those of the last two epochs asked are kept."""
+        epoch = self.epoch if epoch is None else int(epoch)
+        cache = self._choices
+        if epoch not in cache:
             sh, keep = self.shard, self.scheme.keep
             send = {}
             kept = {}
             for q in self.peers:
                 idx = self.send_idx[q]
-                send[q] = idx[halo_keep_mask(self.seed, self.epoch, q, sh.owned[idx], keep)]
+                send[q] = idx[halo_keep_mask(self.seed, epoch, q, sh.owned[idx], keep)]
                 sl = self.halo_rows[q]
                 pos = np.arange(sl.start, sl.stop)
-                kept[q] = pos[halo_keep_mask(self.seed, self.epoch, sh.worker, sh.halo[pos],
+                kept[q] = pos[halo_keep_mask(self.seed, epoch, sh.worker, sh.halo[pos],
                                              keep)]
-            self._chosen = (self.epoch, send, kept)
-        return self._chosen[1], self._chosen[2]
+            cache[epoch] = (send, kept)
+            for old in [e for e in cache if e < epoch - 1]:
+                del cache[old]
+        return cache[epoch]
 
     def _encode(self, rows: np.ndarray, layer: int, direction: str, ids: np.ndarray):
         if self.format is None:
@@ -264,6 +288,142 @@ class HaloOps:
             for q in self.peers:
                 out[send[q]] += self._decode(incoming[q], width)   # unique rows per peer
             return out
+
+
+    # ------------------------------------------------------------ stale halos (PipeGCN)
+
+    def _poll(self) -> None:
+        """Let outstanding exchanges progress (MPI moves large messages only when the
+        library is entered): a done() on each, between kernels."""
+        for sent in self._pending.values():
+            if sent.handle is not None:
+                sent.handle.done()
+
+    def _send_stale(self, key: tuple, outgoing: dict, incoming: dict, layer: int,
+                    direction: str, rows: dict, halo=None) -> "_Sent":
+        """Epoch t's exchange of `key`: synchronous in the first epoch (the warm-up),
+        else started; returns what epoch t itself uses (the warm-up's, or epoch t-1's)."""
+        sync = self.epoch <= self.first_epoch or key not in self._pending
+        with self.profile.phase("exchange"):
+            if sync:
+                self.transport.exchange(outgoing, incoming, kind=KIND_HALO, epoch=self.epoch,
+                                        layer=layer, direction=direction)
+                handle = None
+            else:
+                handle = self.transport.exchange_start(
+                    outgoing, incoming, kind=KIND_HALO, epoch=self.epoch, layer=layer,
+                    direction=direction)
+        mine = _Sent(handle, outgoing, incoming, rows, halo)
+        used = mine if sync else self._pending[key]
+        self._pending[key] = mine
+        if used.handle is not None:
+            with self.profile.phase("exchange"):
+                used.handle.wait()
+            used.handle = None
+        used.outgoing = None              # sent: the arrays may go
+        return used
+
+    def _smooth(self, key: tuple, rows):
+        """The moving average of stale rows (`HaloScheme.smooth`), or the rows themselves."""
+        gamma = self.scheme.smooth
+        if not gamma:
+            return rows
+        state = self._smoothed.get(key)
+        if state is None:
+            self._smoothed[key] = rows
+            return rows
+        g, h = self.dtype.type(gamma), self.dtype.type(1.0 - gamma)
+        if isinstance(rows, dict):
+            out: object = {q: g * state[q] + h * rows[q] for q in rows}   # type: ignore
+        else:
+            out = g * state + h * rows
+        self._smoothed[key] = out
+        return out
+
+    def _stale_forward(self, layer: int, m: np.ndarray) -> np.ndarray:
+        self.on_phase(f"epoch {self.epoch} {FORWARD} exchange, layer {layer}")
+        self._poll()
+        width = m.shape[1]
+        n_halo = self.n_local - self.n_owned
+        with self.profile.phase("compute"):
+            m = np.ascontiguousarray(m, dtype=self.dtype)
+            send, kept = self._choice(self.epoch)
+            owned = self.shard.owned
+            # fresh arrays each epoch: the started exchange sends from them in place
+            outgoing = {q: self._encode(np.take(m, send[q], axis=0), layer, FORWARD,
+                                        owned[send[q]]) for q in self.peers}
+            halo = None
+            if self._direct:
+                halo = np.empty((n_halo, width), dtype=self.dtype)
+                incoming = {q: halo[self.halo_rows[q]] for q in self.peers}
+            else:
+                incoming = {q: self._recv_block(kept[q].shape[0], width) for q in self.peers}
+        used = self._send_stale((FORWARD, layer), outgoing, incoming, layer, FORWARD,
+                                kept, halo)
+        self.on_phase(f"epoch {self.epoch} compute")
+        with self.profile.phase("compute"):
+            if used.halo is not None:
+                rows = used.halo
+            else:
+                rows = np.zeros((n_halo, width), dtype=self.dtype)
+                scale = self.dtype.type(keep_scale(self.scheme.keep))
+                for q in self.peers:
+                    rows[used.rows[q]] = self._decode(used.incoming[q], width) * scale
+            rows = self._smooth((FORWARD, layer), rows)
+            z = np.zeros((self.n_owned, width), dtype=self.dtype)
+            add_csr_product(self.adj_own, m, z)
+            add_csr_product(self.adj_halo, rows, z)
+            return z
+
+    def _stale_backward(self, layer: int, g: np.ndarray) -> np.ndarray:
+        self.on_phase(f"epoch {self.epoch} {BACKWARD} exchange, layer {layer}")
+        self._poll()
+        width = g.shape[1]
+        with self.profile.phase("compute"):
+            g = np.ascontiguousarray(g, dtype=self.dtype)
+            # the halo this epoch's forward used: the keep set of epoch s(t)
+            send, kept = self._choice(keep_epoch_used(self.epoch, True, self.first_epoch))
+            halo = np.zeros((self.n_local - self.n_owned, width), dtype=self.dtype)
+            add_csr_product(self.adj_halo_t, g, halo)
+            if self._direct:
+                outgoing = {q: halo[self.halo_rows[q]] for q in self.peers}
+            else:
+                scale = self.dtype.type(keep_scale(self.scheme.keep))
+                outgoing = {q: self._encode(halo[kept[q]] * scale, layer, BACKWARD,
+                                            self.shard.halo[kept[q]]) for q in self.peers}
+            incoming = {q: self._recv_block(send[q].shape[0], width) for q in self.peers}
+        used = self._send_stale((BACKWARD, layer), outgoing, incoming, layer, BACKWARD, send)
+        self.on_phase(f"epoch {self.epoch} compute")
+        with self.profile.phase("compute"):
+            got = {q: self._decode(used.incoming[q], width) for q in self.peers}
+            got = self._smooth((BACKWARD, layer), got)
+            out = np.zeros((self.n_owned, width), dtype=self.dtype)
+            add_csr_product(self.adj_own_t, g, out)
+            for q in self.peers:
+                if self._direct:
+                    add_csr_product(self.scatter[q], got[q], out)
+                else:
+                    out[used.rows[q]] += got[q]             # unique rows per peer
+            return out
+
+    def finish(self) -> None:
+        """Wait for the exchanges the last epoch started (their rows go unused)."""
+        pending, self._pending = self._pending, {}
+        with self.profile.phase("exchange"):
+            for sent in pending.values():
+                if sent.handle is not None:
+                    sent.handle.wait()
+
+
+class _Sent:
+    """One stale exchange: its handle (None once finished), the arrays it sends from (kept
+    alive until it is waited for), its receive buffers and the keep choice they follow
+    (`rows`: forward, my kept halo positions per peer; backward, my send rows per peer);
+    `halo`: the halo block the receives are views of (every row kept, no codec)."""
+
+    def __init__(self, handle, outgoing, incoming, rows, halo=None):
+        self.handle, self.outgoing, self.incoming = handle, outgoing, incoming
+        self.rows, self.halo = rows, halo
 
 
 def selection_matrix(rows: np.ndarray, n: int, dtype):

@@ -39,6 +39,8 @@ class TrainSettings:
     heads: int = defaults.HEADS
     halo_keep: float = defaults.HALO_KEEP          # plan.schemes.HaloScheme
     halo_format: str | None = defaults.HALO_FORMAT
+    halo_stale: bool = defaults.HALO_STALE
+    halo_smooth: float = defaults.HALO_SMOOTH
 
     def validate(self) -> "TrainSettings":
         """Raise a ParameterError naming the first bad setting (the CLI names its option)."""
@@ -82,7 +84,7 @@ class TrainSettings:
     @property
     def scheme(self) -> HaloScheme:
         """The halo scheme of the training exchanges (`plan.schemes`)."""
-        return HaloScheme(self.halo_keep, self.halo_format)
+        return HaloScheme(self.halo_keep, self.halo_format, self.halo_stale, self.halo_smooth)
 
     @property
     def np_dtype(self) -> np.dtype:

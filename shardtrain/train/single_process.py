@@ -26,6 +26,15 @@ float16 rounding boundary, an int8 level, its float32 scale's rounding) could ro
 other way. For float64 rows that happens with a probability of about 2^-52 relative to
 the step, per entry (the scale: about 2^-28 per row, and then it moves the row by one
 float32 ulp only); the tests' runs never meet one.
+
+Stale halos (`HaloScheme.stale`, definition in `plan/schemes.py`): the halo part of epoch t
+reads epoch t-1's values. With s(t) = max(t-1, 1) and, per layer, the pair rows
+F(t) = R_f,t(M(t)[j of each pair]) (keyed by the sending epoch t) and the sent gradients
+B(t) = R_b,t(Ã_halo(s(t))ᵀ G(t)):
+- forward:  Z = Â_own M(t) + Ã_halo(s(t)) F(t-1), F(0) := F(1) (the warm-up);
+- backward: Â_ownᵀ G(t) + gather B(t-1), B(0) := B(1);
+with smoothing γ, F(t-1) and B(t-1) are replaced by their moving averages U(t) = γ U(t-1)
++ (1 - γ) F(t-1), U(1) = F(1) (the same for B), elementwise per pair row.
 """
 from __future__ import annotations
 
@@ -35,7 +44,7 @@ import numpy as np
 import scipy.sparse as sp
 
 from shardtrain.data.graph import Graph, normalized_adjacency
-from shardtrain.plan.schemes import HaloScheme, halo_keep_mask, keep_scale
+from shardtrain.plan.schemes import HaloScheme, halo_keep_mask, keep_epoch_used, keep_scale
 from shardtrain.train import compress
 
 Products = tuple[Callable[[int, np.ndarray], np.ndarray], Callable[[int, np.ndarray], np.ndarray]]
@@ -85,40 +94,89 @@ class SchemeProducts:
                                          self.scheme.keep)
         return kept
 
-    def epoch(self, epoch: int) -> Products:
+    def halo_matrix(self, epoch: int):
+        """Ã_halo(epoch): the kept pairs' columns scaled by 1/P, the others zero."""
         kept = self.kept_pairs(epoch)
         scale = keep_scale(self.scheme.keep)
         entry_kept = kept[self.entry_col]
-        halo = sp.csr_matrix((self.entry_val[entry_kept] * scale,
+        return sp.csr_matrix((self.entry_val[entry_kept] * scale,
                               (self.entry_row[entry_kept], self.entry_col[entry_kept])),
                              shape=(self.n, self.n_pairs)).astype(self.dtype)
+
+    def epoch(self, epoch: int) -> Products:
+        if self.scheme.stale:
+            return self._stale_epoch(epoch)
+        halo = self.halo_matrix(epoch)
         if self.format is None:
             full = (self.own + halo @ self.gather.T).tocsr()
             full_t = full.T.tocsr()
             return (lambda layer, m: full @ m), (lambda layer, g: full_t @ g)
         halo_t = halo.T.tocsr()
-        fmt = self.format
-        pair_vertex, owner = self.pair_vertex, self.assignment[self.pair_vertex]
 
         def propagate(layer: int, m: np.ndarray) -> np.ndarray:
-            rows = np.empty((self.n_pairs, m.shape[1]), dtype=self.dtype)
-            for q in np.unique(owner).tolist():             # the sending owners
-                sel = np.flatnonzero(owner == q)
-                key = compress.RowKey(self.seed, epoch, layer, "forward", q, pair_vertex[sel])
-                rows[sel] = compress.roundtrip(np.asarray(m[pair_vertex[sel]],
-                                                          dtype=self.dtype), fmt, key)
+            return self.own @ m + halo @ self.forward_rows(epoch, layer, m)
+
+        def propagate_t(layer: int, g: np.ndarray) -> np.ndarray:
+            return self.own_t @ g + self.gather @ self.backward_rows(epoch, layer, halo_t @ g)
+        return propagate, propagate_t
+
+    def forward_rows(self, epoch: int, layer: int, m: np.ndarray) -> np.ndarray:
+        """(pairs, w): M's row of each pair's vertex as its owner sends it in `epoch`
+        (through the forward codec)."""
+        rows = np.asarray(m[self.pair_vertex], dtype=self.dtype)
+        if self.format is None:
+            return rows
+        owner = self.assignment[self.pair_vertex]
+        for q in np.unique(owner).tolist():             # the sending owners
+            sel = np.flatnonzero(owner == q)
+            key = compress.RowKey(self.seed, epoch, layer, "forward", q, self.pair_vertex[sel])
+            rows[sel] = compress.roundtrip(rows[sel], self.format, key)
+        return rows
+
+    def backward_rows(self, epoch: int, layer: int, sent: np.ndarray) -> np.ndarray:
+        """(pairs, w): each worker p's halo gradients `sent` as p sends them in `epoch`
+        (through the backward codec)."""
+        if self.format is None:
+            return sent
+        for p in range(self.worker_ptr.shape[0] - 1):
+            lo, hi = self.worker_ptr[p], self.worker_ptr[p + 1]
+            if hi > lo:
+                key = compress.RowKey(self.seed, epoch, layer, "backward", p,
+                                      self.pair_vertex[lo:hi])
+                sent[lo:hi] = compress.roundtrip(np.asarray(sent[lo:hi], dtype=self.dtype),
+                                                 self.format, key)
+        return sent
+
+    def _stale_epoch(self, epoch: int) -> Products:
+        """The products of training epoch `epoch` under stale halos (module text); the
+        rows each layer sends are kept for the next epoch in `self._stale`."""
+        if epoch == 1:
+            self._stale: dict[tuple, np.ndarray] = {}
+            self._average: dict[tuple, np.ndarray] = {}
+        elif (epoch - 1) not in getattr(self, "_stale_epochs", ()):
+            raise ValueError(f"stale halos: epoch {epoch} needs epoch {epoch - 1}'s rows")
+        self._stale_epochs = {epoch}
+        halo = self.halo_matrix(keep_epoch_used(epoch, True))
+        halo_t = halo.T.tocsr()
+        gamma = self.scheme.smooth
+
+        def used(key: tuple, now: np.ndarray) -> np.ndarray:
+            rows = self._stale.get(key, now) if epoch > 1 else now
+            self._stale[key] = now
+            if gamma:
+                avg = self._average.get(key)
+                rows = rows if avg is None else (self.dtype.type(gamma) * avg
+                                                 + self.dtype.type(1.0 - gamma) * rows)
+                self._average[key] = rows
+            return rows
+
+        def propagate(layer: int, m: np.ndarray) -> np.ndarray:
+            rows = used(("forward", layer), self.forward_rows(epoch, layer, m))
             return self.own @ m + halo @ rows
 
         def propagate_t(layer: int, g: np.ndarray) -> np.ndarray:
-            sent = halo_t @ g                               # (pairs, w): rows each p sends
-            for p in range(self.worker_ptr.shape[0] - 1):
-                lo, hi = self.worker_ptr[p], self.worker_ptr[p + 1]
-                if hi > lo:
-                    key = compress.RowKey(self.seed, epoch, layer, "backward", p,
-                                          pair_vertex[lo:hi])
-                    sent[lo:hi] = compress.roundtrip(np.asarray(sent[lo:hi],
-                                                                dtype=self.dtype), fmt, key)
-            return self.own_t @ g + self.gather @ sent
+            rows = used(("backward", layer), self.backward_rows(epoch, layer, halo_t @ g))
+            return self.own_t @ g + self.gather @ rows
         return propagate, propagate_t
 
 

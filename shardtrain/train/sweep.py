@@ -25,7 +25,8 @@ from shardtrain import defaults
 from shardtrain.errors import ParameterError
 
 # settings field -> its default (the exact scheme)
-AXES: dict[str, object] = {"halo_keep": defaults.HALO_KEEP, "halo_format": defaults.HALO_FORMAT}
+AXES: dict[str, object] = {"halo_keep": defaults.HALO_KEEP, "halo_format": defaults.HALO_FORMAT,
+                           "halo_stale": defaults.HALO_STALE}
 
 
 def combinations(axes: dict[str, list]) -> list[dict]:

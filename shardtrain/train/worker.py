@@ -129,6 +129,7 @@ def run_worker(shard, settings: TrainSettings, transport: Transport, profile,
         ops = HaloOps(shard, transport, profile, dtype, scheme=settings.scheme,
                       seed=settings.seed, adj=operator)
     ops.on_phase = on_phase
+    ops.first_epoch = epochs.start        # a stale scheme's warm-up epoch
     propagate_train, propagate_eval = ops.propagate(FORWARD), ops.propagate(EVAL)
     propagate_t = ops.propagate_t
     if settings.model == "gat":
@@ -192,6 +193,7 @@ def run_worker(shard, settings: TrainSettings, transport: Transport, profile,
                 "step_s": step_s, "eval_s": eval_s, **(extra or {})})
         if stop:
             break
+    ops.finish()                          # a stale scheme: the last epoch's exchanges
 
     extra_evals = 0
     if early is not None and early.best_params is not None:
