@@ -164,7 +164,7 @@ def scheme_of(settings) -> HaloScheme:
     their single-process formulation are written for GCN's Â: another model refuses one."""
     scheme = HaloScheme(getattr(settings, "halo_keep", defaults.HALO_KEEP),
                         getattr(settings, "halo_format", defaults.HALO_FORMAT),
-                        bool(getattr(settings, "halo_stale", defaults.HALO_STALE)),
+                        getattr(settings, "halo_stale", defaults.HALO_STALE),
                         getattr(settings, "halo_smooth", defaults.HALO_SMOOTH)).check()
     model = getattr(settings, "model", defaults.MODEL)
     dtype = np.dtype(getattr(settings, "dtype", defaults.DTYPE))
