@@ -109,12 +109,12 @@ def test_attention_dropout_is_the_same_on_every_shard_layout():
     n = g.num_vertices
     drop = model.Dropout(seed=2, epoch=3, rate=0.5, global_ids=np.arange(n))
     full = local_graph(normalized_adjacency(g), np.arange(n))
-    whole = gat._edge_scale(drop, 1, 2, full)
+    whole = gat._edge_keep(drop, 1, 2, full)
     order = np.random.default_rng(0).permutation(n)
     a = sp.csr_matrix(normalized_adjacency(g))[order][:, order]
     a.sort_indices()
     part = local_graph(a, order)
-    shuffled = gat._edge_scale(model.Dropout(2, 3, 0.5, order), 1, 2, part)
+    shuffled = gat._edge_keep(model.Dropout(2, 3, 0.5, order), 1, 2, part)
     key_full = full.col_ids[full.rows] * n + full.col_ids[full.indices]
     key_part = part.col_ids[part.rows] * n + part.col_ids[part.indices]
     np.testing.assert_array_equal(whole[np.argsort(key_full)], shuffled[np.argsort(key_part)])

@@ -125,13 +125,17 @@ def local_graph(adj_hat, col_ids: np.ndarray) -> LocalGraph:
                       np.asarray(col_ids, dtype=np.int64))
 
 
-def _mix64(x: np.ndarray) -> np.ndarray:
-    """SplitMix64's finaliser (Steele, Lea & Flood 2014), on uint64 arrays, in place."""
-    x ^= x >> np.uint64(30)
+def _mix64(x: np.ndarray, t: np.ndarray) -> np.ndarray:
+    """SplitMix64's finaliser (Steele, Lea & Flood 2014), on uint64 arrays, in place; t is
+    scratch of x's shape."""
+    np.right_shift(x, np.uint64(30), out=t)
+    x ^= t
     x *= np.uint64(0xBF58476D1CE4E5B9)
-    x ^= x >> np.uint64(27)
+    np.right_shift(x, np.uint64(27), out=t)
+    x ^= t
     x *= np.uint64(0x94D049BB133111EB)
-    x ^= x >> np.uint64(31)
+    np.right_shift(x, np.uint64(31), out=t)
+    x ^= t
     return x
 
 
@@ -154,16 +158,42 @@ def edge_keep_mask(seed: int, epoch: int, layer: int, heads: int, src_ids: np.nd
     draws the same. Key of (seed, epoch, layer, head) by chained SplitMix64; per entry the
     SplitMix64 finaliser of key + dst * golden + src * (another odd constant); kept when
     its top 16 bits are >= `threshold` (the vertex masks' rule: P(kept) = 1 - threshold /
-    2^16).
+    2^16), i.e. when the 64-bit value is >= threshold * 2^48.
+    Computed in blocks of edges small enough that the hash passes stay in cache (the loop
+    runs over blocks, not edges).
     """
     base = _mix_int(_mix_int(_mix_int(_mix_int(int(seed) & _MASK64) ^ EDGE_DOMAIN)
                              ^ (int(epoch) & _MASK64)) ^ (int(layer) & _MASK64))
     head_keys = np.array([_mix_int(base ^ h) for h in range(heads)], dtype=np.uint64)
-    pair = np.asarray(dst_ids).astype(np.uint64) * np.uint64(0x9E3779B97F4A7C15)
-    pair += np.asarray(src_ids).astype(np.uint64) * np.uint64(0xD1B54A32D192ED03)
-    x = pair[:, None] + head_keys[None, :]
-    _mix64(x)
-    return (x >> np.uint64(48)).astype(np.uint32) >= np.uint32(threshold)
+    dst = np.asarray(dst_ids)
+    src = np.asarray(src_ids)
+    n = dst.shape[0]
+    keep = np.empty((n, heads), dtype=bool)
+    if threshold >= 1 << 16:
+        keep[...] = False
+        return keep
+    bound = np.uint64(int(threshold) << 48)
+    block = max(1, _EDGE_BLOCK_WORDS // max(heads, 1))
+    x = np.empty((min(block, n), heads), dtype=np.uint64)
+    t = np.empty_like(x)
+    pair = np.empty(min(block, n), dtype=np.uint64)
+    p2 = np.empty_like(pair)
+    for start in range(0, n, block):
+        stop = min(start + block, n)
+        xs, ts, ps, qs = x[:stop - start], t[:stop - start], pair[:stop - start], \
+            p2[:stop - start]
+        ps[...] = dst[start:stop].astype(np.uint64, copy=False)
+        ps *= np.uint64(0x9E3779B97F4A7C15)
+        qs[...] = src[start:stop].astype(np.uint64, copy=False)
+        qs *= np.uint64(0xD1B54A32D192ED03)
+        ps += qs
+        np.add(ps[:, None], head_keys[None, :], out=xs)
+        _mix64(xs, ts)
+        np.greater_equal(xs, bound, out=keep[start:stop])
+    return keep
+
+
+_EDGE_BLOCK_WORDS = 1 << 15      # uint64 words per block of the edge hash (256 KiB)
 
 
 def elu(z: np.ndarray) -> np.ndarray:

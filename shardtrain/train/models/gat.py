@@ -29,16 +29,54 @@ from shardtrain.train.models.common import edge_keep_mask, elu, elu_grad, params
 SLOPE = 0.2      # LeakyReLU's negative slope in the paper
 
 
-def _edge_scale(drop, layer: int, heads: int, local):
-    """(E, heads) inverted-dropout factors of the attention, or None (no dropout)."""
+def _edge_keep(drop, layer: int, heads: int, local):
+    """(E, heads) booleans: the attention coefficients the dropout keeps, or None (no
+    dropout). A kept coefficient is multiplied by the inverted-dropout scale
+    (`model.mask_scale` in the dtype at hand), a dropped one by 0 (`_dropped`)."""
     rate = getattr(drop, "rate", 0.0)
     if not rate:
         return None
-    from shardtrain.train.model import _threshold, mask_scale
-    keep = edge_keep_mask(drop.seed, drop.epoch, layer, heads,
+    from shardtrain.train.model import _threshold
+    return edge_keep_mask(drop.seed, drop.epoch, layer, heads,
                           local.col_ids[local.indices], drop.global_ids[local.rows],
                           _threshold(rate))
-    return keep * mask_scale(rate, np.float64)
+
+
+def _dropped(values: np.ndarray, keep, rate: float) -> np.ndarray:
+    """values * keep * scale (a fresh array; `values` itself when keep is None)."""
+    if keep is None:
+        return values
+    from shardtrain.train.model import mask_scale
+    out = np.multiply(values, keep)
+    out *= mask_scale(rate, values.dtype)
+    return out
+
+
+_DOT_BLOCK_WORDS = 1 << 16       # floats per gathered block of the per-edge dot products
+
+
+def _edge_dots(dz3: np.ndarray, t_loc: np.ndarray, local) -> np.ndarray:
+    """(E, K): dOut_h[v] · T_h[u] for every entry (v, u) and head h; dz3 (n_rows, K, d),
+    t_loc (n_cols, K, d). Both rows gathered for all heads at once, in blocks of rows
+    (about _DOT_BLOCK_WORDS floats each; the loop runs over blocks, not vertices), each
+    head's dot product over d as einsum("ed,ed->e") computes it."""
+    n_rows, k, d = dz3.shape
+    out = np.empty((local.indices.shape[0], k), dtype=np.result_type(dz3, t_loc))
+    if n_rows == 0 or out.shape[0] == 0:
+        return out
+    per_block = max(1, _DOT_BLOCK_WORDS // max(k * d, 1))
+    cuts = np.searchsorted(local.indptr, np.arange(0, local.indptr[-1], per_block),
+                           side="right") - 1
+    bounds = np.unique(np.concatenate([cuts, [n_rows]]))
+    counts = local.counts
+    for r0, r1 in zip(bounds[:-1], bounds[1:]):
+        e0, e1 = local.indptr[r0], local.indptr[r1]
+        if e0 == e1:
+            continue
+        a = np.repeat(dz3[r0:r1], counts[r0:r1], axis=0).reshape(-1, d)
+        b = t_loc[local.indices[e0:e1]].reshape(-1, d)
+        out[e0:e1] = np.einsum("ed,ed->e", a, b).reshape(-1, k)
+    return out
 
 
 def attention(t_loc: np.ndarray, t_own: np.ndarray, att_src: np.ndarray,
@@ -72,8 +110,8 @@ def forward(params, x, hops, propagate, drop, local=None):
         t = hd @ w
         t_loc = propagate(l, t).reshape(-1, k, d)
         alpha, pre = attention(t_loc, t.reshape(-1, k, d), att_src, att_dst, local)
-        scale = _edge_scale(drop, l, k, local)
-        coef = alpha if scale is None else alpha * scale.astype(alpha.dtype)
+        keep = _edge_keep(drop, l, k, local)
+        coef = _dropped(alpha, keep, getattr(drop, "rate", 0.0))
         z = np.empty((local.num_rows, k, d), dtype=t.dtype)
         for head in range(k):           # a loop over heads, not vertices
             z[:, head, :] = local.product(np.ascontiguousarray(coef[:, head]),
@@ -82,7 +120,7 @@ def forward(params, x, hops, propagate, drop, local=None):
         if b is not None:
             z += b
         cache["layers"].append({"h": h, "hd": hd, "t_loc": t_loc, "alpha": alpha,
-                                "pre": pre, "scale": scale, "coef": coef, "z": z})
+                                "pre": pre, "keep": keep, "coef": coef, "z": z})
         h = elu(z) if l < last else z
     return h, cache
 
@@ -106,27 +144,29 @@ def backward(params, cache, dlogits, hops, propagate_t):
         db = dz.sum(axis=0) if b is not None else None
         dz3 = np.ascontiguousarray(dz).reshape(n_rows, k, d)
         dt_loc = np.empty_like(t_loc)
-        dcoef = np.empty_like(alpha)
         counts = local.counts
         for head in range(k):
             dz_h = np.ascontiguousarray(dz3[:, head, :])
-            t_h = np.ascontiguousarray(t_loc[:, head, :])
             dt_loc[:, head, :] = local.product_t(np.ascontiguousarray(coef[:, head]), dz_h)
-            dcoef[:, head] = np.einsum("ed,ed->e", np.repeat(dz_h, counts, axis=0),
-                                       t_h[local.indices])
-        dalpha = dcoef if c["scale"] is None else dcoef * c["scale"].astype(dcoef.dtype)
+        dcoef = _edge_dots(dz3, t_loc, local)
+        dalpha = _dropped(dcoef, c["keep"], getattr(drop, "rate", 0.0))
         weighted = alpha * dalpha
         if n_rows:
             row_sums = np.repeat(np.add.reduceat(weighted, local.indptr[:-1], axis=0),
                                  counts, axis=0)
         else:
-            row_sums = weighted
+            row_sums = weighted.copy()
+        np.multiply(alpha, row_sums, out=row_sums)
         de = weighted
-        de -= alpha * row_sums
-        dpre = np.where(c["pre"] > 0, de, SLOPE * de)
-        ds_src = np.stack([np.bincount(local.indices, weights=dpre[:, head],
-                                       minlength=local.num_cols) for head in range(k)],
-                          axis=1).astype(dpre.dtype)
+        de -= row_sums
+        del row_sums
+        dpre = de                                 # LeakyReLU': 1 where pre > 0, else SLOPE
+        np.multiply(de, SLOPE, out=dpre, where=~(c["pre"] > 0))
+        # one bincount over (column, head) bins: each bin sums its entries in edge order,
+        # as one bincount per head does
+        bins = (local.indices[:, None] * k + np.arange(k)).reshape(-1)
+        ds_src = np.bincount(bins, weights=dpre.reshape(-1), minlength=local.num_cols * k) \
+            .reshape(local.num_cols, k).astype(dpre.dtype)
         ds_dst = (np.add.reduceat(dpre, local.indptr[:-1], axis=0) if n_rows
                   else np.zeros((0, k), dtype=dpre.dtype))
         t_own = t_loc[:n_rows]
