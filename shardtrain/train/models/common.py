@@ -85,6 +85,46 @@ class LocalGraph:
             self._by_col = (perm, col_ptr, self.rows[perm])
         return self._by_col
 
+    def row_blocks(self, entries: int) -> list[tuple[int, int, int, int]]:
+        """(r0, r1, e0, e1) per block of consecutive rows holding about `entries` entries
+        (a row is never split; e0, e1 its entry range): the blocks the per-edge passes run
+        over so their arrays stay in cache (a loop over blocks, not vertices)."""
+        n = self.num_rows
+        if n == 0:
+            return []
+        cuts = np.searchsorted(self.indptr, np.arange(0, int(self.indptr[-1]),
+                                                      max(1, entries)), side="right") - 1
+        bounds = np.unique(np.concatenate([np.clip(cuts, 0, n), [0, n]]))
+        return [(int(r0), int(r1), int(self.indptr[r0]), int(self.indptr[r1]))
+                for r0, r1 in zip(bounds[:-1], bounds[1:])]
+
+    def product_heads(self, values: np.ndarray, x: np.ndarray) -> np.ndarray:
+        """(rows, K, d): per head h, (the matrix with values[:, h]) @ x[:, h, :]; values
+        (E, K), x (num_cols, K, d). Each head one `product`'s kernel call on head-major
+        copies (one transpose of each operand rather than K strided copies)."""
+        k = values.shape[1]
+        vt = np.ascontiguousarray(values.T.astype(x.dtype, copy=False))
+        xt = np.ascontiguousarray(x.transpose(1, 0, 2))
+        out = np.zeros((k, self.num_rows, x.shape[2]), dtype=x.dtype)
+        for head in range(k):            # a loop over heads, not vertices
+            add_csr_product(_Csr(self.indptr, self.indices, vt[head],
+                                 (self.num_rows, self.num_cols)), xt[head], out[head])
+        return out.transpose(1, 0, 2)
+
+    def product_t_heads(self, values: np.ndarray, g: np.ndarray) -> np.ndarray:
+        """(num_cols, K, d): per head h, (the same matrix)ᵀ @ g[:, h, :]; g (rows, K, d);
+        `product_t`'s kernel per head on head-major copies."""
+        perm, col_ptr, rows = self.by_column()
+        k = values.shape[1]
+        vt = np.ascontiguousarray(values.T.astype(g.dtype, copy=False))
+        vt = np.take(vt, perm, axis=1)
+        gt = np.ascontiguousarray(g.transpose(1, 0, 2))
+        out = np.zeros((k, self.num_cols, g.shape[2]), dtype=g.dtype)
+        for head in range(k):
+            add_csr_product(_Csr(col_ptr, rows, vt[head], (self.num_cols, self.num_rows)),
+                            gt[head], out[head])
+        return out.transpose(1, 0, 2)
+
     def product(self, values: np.ndarray, x: np.ndarray) -> np.ndarray:
         """(rows x cols matrix with `values` at the entries) @ x, x (num_cols, w)."""
         out = np.zeros((self.num_rows, x.shape[1]), dtype=x.dtype)
