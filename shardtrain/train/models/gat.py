@@ -159,9 +159,10 @@ def backward(params, cache, dlogits, hops, propagate_t):
         db = dz.sum(axis=0) if b is not None else None
         dz3 = np.ascontiguousarray(dz).reshape(n_rows, k, d)
         dt_loc = np.ascontiguousarray(local.product_t_heads(coef, dz3))
-        dcoef = _edge_dots(dz3, t_loc, local)
-        dalpha = _dropped(dcoef, c["keep"], getattr(drop, "rate", 0.0))
+        dalpha = _edge_dots(dz3, t_loc, local)         # dα' (one E x K array alive)
+        dalpha = _dropped(dalpha, c["keep"], getattr(drop, "rate", 0.0))
         dpre, ds_dst = _score_grads(alpha, dalpha, c["pre"], local)
+        del dalpha
         ds_src = np.stack([np.bincount(local.indices, weights=dpre[:, head],
                                        minlength=local.num_cols) for head in range(k)],
                           axis=1).astype(dpre.dtype)
