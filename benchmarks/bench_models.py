@@ -22,7 +22,8 @@ Goals (issue 13): each model's 2-worker epoch >= 1.7x faster than its 1-worker e
 cores, and no slower than the peer. On a shared machine the wall figures measure the
 neighbours too, so beside every figure sit the 1-minute load average before and after,
 the CPU seconds the run itself used, and the other processes' busy CPU over the run
-(machine busy CPU from /proc/stat minus this process and its children, in cores).
+(machine busy CPU from /proc/stat minus this process, its waited-for children and the
+workers' own profiled CPU, in cores; the workers' shard loading counts as "others").
 """
 from __future__ import annotations
 
@@ -57,6 +58,8 @@ def _own_cpu_s() -> float:
 class _Load:
     """The machine's load over one measured run (see the module docstring)."""
 
+    workers_cpu_s = 0.0      # CPU of processes that are not our waited-for children
+
     def __enter__(self):
         self.load, self.busy, self.own = os.getloadavg()[0], _busy_cpu_s(), _own_cpu_s()
         self.start = time.perf_counter()
@@ -64,7 +67,7 @@ class _Load:
 
     def __exit__(self, *exc):
         wall = time.perf_counter() - self.start
-        own = _own_cpu_s() - self.own
+        own = _own_cpu_s() - self.own + self.workers_cpu_s
         others = max(0.0, _busy_cpu_s() - self.busy - own)
         self.figures = {"load_before": self.load, "load_after": os.getloadavg()[0],
                         "wall_s": wall, "own_cpu_s": own, "others_cpu_s": others,
@@ -182,6 +185,9 @@ def _ours(shard_dir, settings, epochs: int) -> dict:
     from shardtrain.train.coordinator import train_partitioned
     with _Load() as load:
         result = train_partitioned(shard_dir, settings, timeout_s=1800)
+        # the workers are not this process's children (os.times misses them): their own
+        # profiled CPU (every phase but loading the shard) stands for it
+        load.workers_cpu_s = sum(w["cpu_s"] for w in result.workers)
     cpu = [w["cpu_s"] / epochs for w in result.workers]
     return {"epoch_s": _median_epoch(result.epochs),
             "epoch_s_all": [e["epoch_s"] for e in result.epochs],
