@@ -109,12 +109,71 @@ def test_attention_dropout_is_the_same_on_every_shard_layout():
     n = g.num_vertices
     drop = model.Dropout(seed=2, epoch=3, rate=0.5, global_ids=np.arange(n))
     full = local_graph(normalized_adjacency(g), np.arange(n))
-    whole = gat._edge_scale(drop, 1, 2, full)
+    whole = gat._edge_keep(drop, 1, 2, full)
     order = np.random.default_rng(0).permutation(n)
     a = sp.csr_matrix(normalized_adjacency(g))[order][:, order]
     a.sort_indices()
     part = local_graph(a, order)
-    shuffled = gat._edge_scale(model.Dropout(2, 3, 0.5, order), 1, 2, part)
+    shuffled = gat._edge_keep(model.Dropout(2, 3, 0.5, order), 1, 2, part)
     key_full = full.col_ids[full.rows] * n + full.col_ids[full.indices]
     key_part = part.col_ids[part.rows] * n + part.col_ids[part.indices]
     np.testing.assert_array_equal(whole[np.argsort(key_full)], shuffled[np.argsort(key_part)])
+
+
+def _gat_step(g, dtype, heads=3):
+    """Logits and gradients of one GAT training forward + backward (dropout on)."""
+    n = g.num_vertices
+    dims = layer_dims(5, 4, 3, 2, model="gat", heads=heads)
+    hops = model_hops(dims, "gat", hidden=4, heads=heads)
+    params = model.glorot_init(dims, 1, dtype, True, hops=hops)
+    local = local_graph(normalized_adjacency(g), np.arange(n))
+    drop = model.Dropout(seed=4, epoch=2, rate=0.4, global_ids=np.arange(n))
+    x = g.features.astype(dtype)
+    logits, cache = model.forward(params, x, hops, lambda l, m: m, drop, local)
+    dlogits = np.random.default_rng(3).normal(size=logits.shape).astype(dtype)
+    grads = model.backward(params, cache, dlogits, hops, lambda l, m: m)
+    return logits, grads
+
+
+def test_blocked_passes_give_the_bits_of_one_block(monkeypatch):
+    # the per-edge passes run over blocks of whole rows; blocks of a few entries (many
+    # rows split across blocks' edges) must give exactly the one-block result, which the
+    # per-vertex loop above checks
+    g = _small_graph(n=40, seed=6)
+    for dtype in (np.float64, np.float32):
+        whole = _gat_step(g, dtype)
+        monkeypatch.setattr(gat, "_BLOCK_WORDS", 7)
+        blocked = _gat_step(g, dtype)
+        monkeypatch.undo()
+        assert whole[0].tobytes() == blocked[0].tobytes()
+        for gw, gb in zip(whole[1], blocked[1]):
+            for a, b in zip(gw, gb):
+                assert (a is None and b is None) or a.tobytes() == b.tobytes()
+
+
+def test_row_blocks_cover_every_row_once():
+    g = _small_graph(n=40, seed=6)
+    local = local_graph(normalized_adjacency(g), np.arange(g.num_vertices))
+    for entries in (1, 5, 13, 10**6):
+        blocks = local.row_blocks(entries)
+        rows = np.concatenate([np.arange(r0, r1) for r0, r1, _, _ in blocks])
+        np.testing.assert_array_equal(rows, np.arange(local.num_rows))
+        for r0, r1, e0, e1 in blocks:
+            assert (e0, e1) == (local.indptr[r0], local.indptr[r1])
+        assert (len(blocks) > 1) if entries < local.indptr[-1] else (len(blocks) == 1)
+
+
+def test_head_products_equal_scipy_per_head():
+    # scipy's sparse product per head, the definition of out_h = A_h T_h (and A_hᵀ G_h)
+    g = _small_graph(n=30, seed=8)
+    local = local_graph(normalized_adjacency(g), np.arange(g.num_vertices))
+    rng = np.random.default_rng(5)
+    values = rng.random((local.indices.size, 3))
+    x = rng.normal(size=(local.num_cols, 3, 2))
+    out = local.product_heads(values, x)
+    out_t = local.product_t_heads(np.asfortranarray(values), x)
+    for h in range(3):
+        a = sp.csr_matrix((values[:, h], local.indices, local.indptr),
+                          shape=(local.num_rows, local.num_cols))
+        np.testing.assert_allclose(out[:, h, :], a @ x[:, h, :], rtol=1e-13)
+        np.testing.assert_allclose(out_t[:, h, :], a.T @ x[:, h, :], rtol=1e-13)

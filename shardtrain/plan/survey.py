@@ -265,14 +265,15 @@ def predict_memory(shard, hops: list[LayerHop], itemsize: int, *, param_elements
       `dropout` the dropped-out input (n x d_in x b) with its boolean keep mask (n x d_in,
       kept for layers > 0, alive while applied for layer 0), Â[H] in aggregate-first order
       (n x d_in x b); the logits and their gradient, 2 x n x classes x b;
-    - the backward working set, the largest over layers of the owned rows of Âᵀ G (n x fw)
-      and dZ (n x d_out), plus for layers > 0 the input gradient dH, its dropped-out copy
-      and the ReLU-masked product (3 x n x d_in, times b) and the ReLU mask (n x d_in x 1);
+    - the backward working set (`_backward_peak`), the largest over layers of dZ, the
+      layer above's dH and dT, the owned rows of Âᵀ G (n x fw), and for layers > 0 the
+      input gradient dH, its dropped-out copy (which the ReLU-masked product reuses: 2 x n
+      x d_in, times b) and the ReLU mask (n x d_in x 1); GAT's own instead (below);
     - parameters, Adam m and v, the per-layer gradients and their flat copy: 5 x P x b.
 
     Checked against a real worker's peak RSS in benchmarks/bench_survey.py (the prediction
-    falls a little short: the rest is short-lived temporaries of the products and the loss,
-    not modelled term by term).
+    falls a little short: the rest is the interpreter's and the allocator's memory beyond
+    the baseline and short-lived temporaries of the products, not modelled term by term).
     """
     adj = shard.adj
     return predict_memory_counts(
@@ -310,7 +311,6 @@ def predict_memory_counts(n: int, h: int, s: int, nnz: int, nnz_halo: int, peers
     total += (h + 1) * ip + nnz_halo * (ix + b)      # the halo block's transpose
     total += peers * (n + 1) * 4 + s * (4 + b)       # selection matrices (scatter-add)
     total += n * input_dim * b + (n * input_dim * fb if fb != b else 0) + n * 8 + 3 * n
-    backward_peak = 0
     for hop in hops:
         fw, bw = hop.forward_width, hop.backward_width
         total += (h * fw + s * fw + h * bw + s * bw) * b             # halo, send, recv
@@ -318,12 +318,47 @@ def predict_memory_counts(n: int, h: int, s: int, nnz: int, nnz_halo: int, peers
         # is applied for layer 0), plus the input itself for layers > 0
         cache = n * hop.d_in * ((hop.layer > 0) * b + dropout * (b + 1))
         total += cache + (not hop.transform_first) * n * hop.d_in * b
-        d_h = 3 * n * hop.d_in * b + n * hop.d_in if hop.layer > 0 else 0
-        backward_peak = max(backward_peak, (n * fw + n * hop.d_out) * b + d_h)
-    total += 2 * n * output_width(hops[-1]) * b + backward_peak
+    model = hops[0].model if hops else "gcn"
+    total += 2 * n * output_width(hops[-1]) * b
+    total += _backward_peak(n, hops, b) if model != "gat" else 0
     total += 5 * param_elements * b
     total += _model_memory(n, h, s, nnz, nnz_halo, hops, b, ip, ix)
     return int(total)
+
+
+def _backward_peak(n: int, hops: list[LayerHop], b: int) -> int:
+    """The largest working set of `model.backward` (GCN's order of products, which
+    GraphSAGE's and GIN's follow) over the layers, beyond the cache and dlogits. At layer
+    l, alive: dZ_l (n x d_out; dlogits itself on the last layer, counted apart) and, below
+    the last layer, the layer above's dH and dT (still bound until rebound here); then
+    transform-first dT = Âᵀ dZ (n x fw), and for l > 0 dH = dT Wᵀ; for l > 0 the
+    dropped-out dH and the ReLU mask (n x d_in x 1), the product reusing the dropped-out
+    temporary's buffer (numpy elides it). Aggregate-first: dZ Wᵀ and its product, then
+    the same dropout and mask. GIN holds its MLP's dP1 (n x hidden) beside them."""
+    peak = 0
+    last = len(hops) - 1
+    for i, hop in enumerate(hops):
+        l = hop.layer
+        d_in = n * hop.d_in * b
+        dz = 0 if i == last else n * hop.d_out * b
+        above = 0
+        if i < last:
+            nxt = hops[i + 1]
+            above = n * hop.d_out * b + (n * nxt.forward_width * b if nxt.transform_first
+                                         else 0)
+        if hop.transform_first:
+            dt = n * hop.forward_width * b
+            need = dz + above + dt + (d_in if l > 0 else 0)
+            if l > 0:
+                need = max(need, dz + dt + 2 * d_in + n * hop.d_in)
+        else:
+            need = dz + above
+            if l > 0:
+                need = max(dz + above + 2 * d_in, dz + 2 * d_in + n * hop.d_in)
+        if hop.model == "gin":
+            need += n * hop.inner * b              # dP1, the MLP's gradient, alive too
+        peak = max(peak, need)
+    return peak
 
 
 def _model_memory(n: int, h: int, s: int, nnz: int, nnz_halo: int, hops: list[LayerHop],
@@ -333,12 +368,15 @@ def _model_memory(n: int, h: int, s: int, nnz: int, nnz_halo: int, hops: list[La
     - sage: its operator D⁻¹A in float64 (int64 indptr; nnz - n entries), and the owned
       block's transpose (D⁻¹A is not symmetric);
     - gin: its operator A + I in float64, and per layer the MLP's P1 and Q (n x hidden);
-    - gat: the local structure (indptr, indices, rows, column ids: int64); per layer T of
-      every local column ((n + h) x K·d), the attention α, scores, dropped-out α
-      (E x K x b) and the dropout factors (E x K x 8, float64), the output before ELU
-      (n x K·d); the backward working set: dT of the local columns, six E x K arrays of
-      the softmax's gradient, the attention-source gradients ((n + h) x K x 8); without
-      GCN's halo receive buffers (the gather writes into its fresh output)."""
+    - gat: the local structure (indptr, indices, rows, column ids: int64) and its column
+      order (kept once the first backward built it); per layer T of every local column
+      ((n + h) x K·d), the attention α, scores and dropped-out α (E x K x b), the boolean
+      dropout mask (E x K x 1), the output before ELU (n x K·d); instead of GCN's backward
+      working set, the largest over layers of: below the last layer dZ and the layer
+      above's dH (2 x n x K·d), dT of the local columns, one E x K array of the softmax's
+      gradient, the exchanged dT and one n x K·d temporary, the attention-source gradients
+      ((n + h) x K, float64 and cast); without GCN's halo receive buffers (the gather
+      writes into its fresh output)."""
     model = hops[0].model if hops else "gcn"
     if model == "gcn":
         return 0
@@ -353,14 +391,16 @@ def _model_memory(n: int, h: int, s: int, nnz: int, nnz_halo: int, hops: list[La
         extra += sum(2 * n * hop.inner * b for hop in hops)
     elif model == "gat":
         extra += (n + 1) * 8 + 2 * nnz * 8 + (n + h) * 8
+        extra += 2 * nnz * 8 + (n + h + 1) * 8          # the column order, kept once built
         peak = 0
-        for hop in hops:
-            kd = hop.heads * hop.d_out
-            extra += (n + h) * kd * b + 3 * nnz * hop.heads * b + nnz * hop.heads * 8
-            extra += n * kd * b
+        last = len(hops) - 1
+        for i, hop in enumerate(hops):
+            kd, k = hop.heads * hop.d_out, hop.heads
+            extra += (n + h) * kd * b + 3 * nnz * k * b + nnz * k + n * kd * b
             extra -= (h * hop.forward_width + h * hop.backward_width) * b
-            peak = max(peak, (n + h) * kd * b + 6 * nnz * hop.heads * b
-                       + (n + h) * hop.heads * 8)
+            carried = 2 * n * kd * b if i < last else 0
+            peak = max(peak, carried + (n + h) * kd * b + nnz * k * b + 2 * n * kd * b
+                       + (n + h) * k * (8 + b))
         extra += peak
     return extra
 

@@ -85,6 +85,46 @@ class LocalGraph:
             self._by_col = (perm, col_ptr, self.rows[perm])
         return self._by_col
 
+    def row_blocks(self, entries: int) -> list[tuple[int, int, int, int]]:
+        """(r0, r1, e0, e1) per block of consecutive rows holding about `entries` entries
+        (a row is never split; e0, e1 its entry range): the blocks the per-edge passes run
+        over so their arrays stay in cache (a loop over blocks, not vertices)."""
+        n = self.num_rows
+        if n == 0:
+            return []
+        cuts = np.searchsorted(self.indptr, np.arange(0, int(self.indptr[-1]),
+                                                      max(1, entries)), side="right") - 1
+        bounds = np.unique(np.concatenate([np.clip(cuts, 0, n), [0, n]]))
+        return [(int(r0), int(r1), int(self.indptr[r0]), int(self.indptr[r1]))
+                for r0, r1 in zip(bounds[:-1], bounds[1:])]
+
+    def product_heads(self, values: np.ndarray, x: np.ndarray) -> np.ndarray:
+        """(rows, K, d): per head h, (the matrix with values[:, h]) @ x[:, h, :]; values
+        (E, K), x (num_cols, K, d). Each head one `product`'s kernel call on head-major
+        copies (one transpose of each operand rather than K strided copies)."""
+        k = values.shape[1]
+        vt = np.ascontiguousarray(values.T.astype(x.dtype, copy=False))
+        xt = np.ascontiguousarray(x.transpose(1, 0, 2))
+        out = np.zeros((k, self.num_rows, x.shape[2]), dtype=x.dtype)
+        for head in range(k):            # a loop over heads, not vertices
+            add_csr_product(_Csr(self.indptr, self.indices, vt[head],
+                                 (self.num_rows, self.num_cols)), xt[head], out[head])
+        return out.transpose(1, 0, 2)
+
+    def product_t_heads(self, values: np.ndarray, g: np.ndarray) -> np.ndarray:
+        """(num_cols, K, d): per head h, (the same matrix)ᵀ @ g[:, h, :]; g (rows, K, d);
+        `product_t`'s kernel per head on head-major copies."""
+        perm, col_ptr, rows = self.by_column()
+        k = values.shape[1]
+        vt = np.ascontiguousarray(values.T.astype(g.dtype, copy=False))
+        vt = np.take(vt, perm, axis=1)
+        gt = np.ascontiguousarray(g.transpose(1, 0, 2))
+        out = np.zeros((k, self.num_cols, g.shape[2]), dtype=g.dtype)
+        for head in range(k):
+            add_csr_product(_Csr(col_ptr, rows, vt[head], (self.num_cols, self.num_rows)),
+                            gt[head], out[head])
+        return out.transpose(1, 0, 2)
+
     def product(self, values: np.ndarray, x: np.ndarray) -> np.ndarray:
         """(rows x cols matrix with `values` at the entries) @ x, x (num_cols, w)."""
         out = np.zeros((self.num_rows, x.shape[1]), dtype=x.dtype)
@@ -125,13 +165,17 @@ def local_graph(adj_hat, col_ids: np.ndarray) -> LocalGraph:
                       np.asarray(col_ids, dtype=np.int64))
 
 
-def _mix64(x: np.ndarray) -> np.ndarray:
-    """SplitMix64's finaliser (Steele, Lea & Flood 2014), on uint64 arrays, in place."""
-    x ^= x >> np.uint64(30)
+def _mix64(x: np.ndarray, t: np.ndarray) -> np.ndarray:
+    """SplitMix64's finaliser (Steele, Lea & Flood 2014), on uint64 arrays, in place; t is
+    scratch of x's shape."""
+    np.right_shift(x, np.uint64(30), out=t)
+    x ^= t
     x *= np.uint64(0xBF58476D1CE4E5B9)
-    x ^= x >> np.uint64(27)
+    np.right_shift(x, np.uint64(27), out=t)
+    x ^= t
     x *= np.uint64(0x94D049BB133111EB)
-    x ^= x >> np.uint64(31)
+    np.right_shift(x, np.uint64(31), out=t)
+    x ^= t
     return x
 
 
@@ -154,16 +198,42 @@ def edge_keep_mask(seed: int, epoch: int, layer: int, heads: int, src_ids: np.nd
     draws the same. Key of (seed, epoch, layer, head) by chained SplitMix64; per entry the
     SplitMix64 finaliser of key + dst * golden + src * (another odd constant); kept when
     its top 16 bits are >= `threshold` (the vertex masks' rule: P(kept) = 1 - threshold /
-    2^16).
+    2^16), i.e. when the 64-bit value is >= threshold * 2^48.
+    Computed in blocks of edges small enough that the hash passes stay in cache (the loop
+    runs over blocks, not edges).
     """
     base = _mix_int(_mix_int(_mix_int(_mix_int(int(seed) & _MASK64) ^ EDGE_DOMAIN)
                              ^ (int(epoch) & _MASK64)) ^ (int(layer) & _MASK64))
     head_keys = np.array([_mix_int(base ^ h) for h in range(heads)], dtype=np.uint64)
-    pair = np.asarray(dst_ids).astype(np.uint64) * np.uint64(0x9E3779B97F4A7C15)
-    pair += np.asarray(src_ids).astype(np.uint64) * np.uint64(0xD1B54A32D192ED03)
-    x = pair[:, None] + head_keys[None, :]
-    _mix64(x)
-    return (x >> np.uint64(48)).astype(np.uint32) >= np.uint32(threshold)
+    dst = np.asarray(dst_ids)
+    src = np.asarray(src_ids)
+    n = dst.shape[0]
+    keep = np.empty((n, heads), dtype=bool)
+    if threshold >= 1 << 16:
+        keep[...] = False
+        return keep
+    bound = np.uint64(int(threshold) << 48)
+    block = max(1, _EDGE_BLOCK_WORDS // max(heads, 1))
+    x = np.empty((min(block, n), heads), dtype=np.uint64)
+    t = np.empty_like(x)
+    pair = np.empty(min(block, n), dtype=np.uint64)
+    p2 = np.empty_like(pair)
+    for start in range(0, n, block):
+        stop = min(start + block, n)
+        xs, ts, ps, qs = x[:stop - start], t[:stop - start], pair[:stop - start], \
+            p2[:stop - start]
+        ps[...] = dst[start:stop].astype(np.uint64, copy=False)
+        ps *= np.uint64(0x9E3779B97F4A7C15)
+        qs[...] = src[start:stop].astype(np.uint64, copy=False)
+        qs *= np.uint64(0xD1B54A32D192ED03)
+        ps += qs
+        np.add(ps[:, None], head_keys[None, :], out=xs)
+        _mix64(xs, ts)
+        np.greater_equal(xs, bound, out=keep[start:stop])
+    return keep
+
+
+_EDGE_BLOCK_WORDS = 1 << 15      # uint64 words per block of the edge hash (256 KiB)
 
 
 def elu(z: np.ndarray) -> np.ndarray:

@@ -29,34 +29,91 @@ from shardtrain.train.models.common import edge_keep_mask, elu, elu_grad, params
 SLOPE = 0.2      # LeakyReLU's negative slope in the paper
 
 
-def _edge_scale(drop, layer: int, heads: int, local):
-    """(E, heads) inverted-dropout factors of the attention, or None (no dropout)."""
+def _edge_keep(drop, layer: int, heads: int, local):
+    """(E, heads) booleans: the attention coefficients the dropout keeps, or None (no
+    dropout). A kept coefficient is multiplied by the inverted-dropout scale
+    (`model.mask_scale` in the dtype at hand), a dropped one by 0 (`_dropped`)."""
     rate = getattr(drop, "rate", 0.0)
     if not rate:
         return None
-    from shardtrain.train.model import _threshold, mask_scale
-    keep = edge_keep_mask(drop.seed, drop.epoch, layer, heads,
+    from shardtrain.train.model import _threshold
+    return edge_keep_mask(drop.seed, drop.epoch, layer, heads,
                           local.col_ids[local.indices], drop.global_ids[local.rows],
                           _threshold(rate))
-    return keep * mask_scale(rate, np.float64)
+
+
+def _dropped(values: np.ndarray, keep, rate: float) -> np.ndarray:
+    """values * keep * scale (a fresh array, column-major so that each head's values are
+    contiguous for `LocalGraph.product_heads`; `values` itself when keep is None)."""
+    if keep is None:
+        return values
+    from shardtrain.train.model import mask_scale
+    out = np.empty(values.shape[::-1], dtype=values.dtype).T     # column-major
+    np.multiply(values, keep, out=out)
+    out *= mask_scale(rate, values.dtype)
+    return out
+
+
+_BLOCK_WORDS = 1 << 16        # values per block of the per-edge passes (in cache)
+
+
+def _edge_dots(dz3: np.ndarray, t_loc: np.ndarray, local) -> np.ndarray:
+    """(E, K): dOut_h[v] · T_h[u] for every entry (v, u) and head h; dz3 (n_rows, K, d),
+    t_loc (n_cols, K, d). Both rows gathered for all heads at once, in blocks of rows
+    (`LocalGraph.row_blocks`), each head's dot product over d as einsum("ed,ed->e")
+    computes it."""
+    n_rows, k, d = dz3.shape
+    out = np.empty((local.indices.shape[0], k), dtype=np.result_type(dz3, t_loc))
+    counts = local.counts
+    for r0, r1, e0, e1 in local.row_blocks(_BLOCK_WORDS // max(k * d, 1)):
+        a = np.repeat(dz3[r0:r1], counts[r0:r1], axis=0).reshape(-1, d)
+        b = t_loc[local.indices[e0:e1]].reshape(-1, d)
+        out[e0:e1] = np.einsum("ed,ed->e", a, b).reshape(-1, k)
+    return out
+
+
+def _score_grads(alpha: np.ndarray, dalpha: np.ndarray, pre: np.ndarray,
+                 local) -> tuple[np.ndarray, np.ndarray]:
+    """(dpre (E, K), ds_dst (n_rows, K)) from dα (a fresh array, overwritten): the
+    softmax's de_vu = α_vu dα_vu - α_vu Σ_u' α_vu' dα_vu', the LeakyReLU's dpre = de (pre
+    > 0) or SLOPE de, ds_dst[v] = Σ_u dpre_vu; over blocks of whole rows."""
+    counts = local.counts
+    k = alpha.shape[1]
+    dpre = np.multiply(alpha, dalpha, out=dalpha)
+    ds_dst = np.zeros((local.num_rows, k), dtype=dpre.dtype)
+    for r0, r1, e0, e1 in local.row_blocks(_BLOCK_WORDS // max(k, 1)):
+        w, cnt = dpre[e0:e1], counts[r0:r1]
+        starts = local.indptr[r0:r1] - e0
+        sums = np.repeat(np.add.reduceat(w, starts, axis=0), cnt, axis=0)
+        sums *= alpha[e0:e1]
+        w -= sums
+        np.multiply(w, SLOPE, out=w, where=~(pre[e0:e1] > 0))
+        ds_dst[r0:r1] = np.add.reduceat(w, starts, axis=0)
+    return dpre, ds_dst
 
 
 def attention(t_loc: np.ndarray, t_own: np.ndarray, att_src: np.ndarray,
               att_dst: np.ndarray, local) -> tuple[np.ndarray, np.ndarray]:
     """(α, pre): α (E, K) the softmax per row and head, pre (E, K) the scores before the
-    LeakyReLU. t_loc (n_cols, K, d), t_own (n_rows, K, d)."""
+    LeakyReLU. t_loc (n_cols, K, d), t_own (n_rows, K, d). The per-edge passes run over
+    blocks of whole rows (`LocalGraph.row_blocks`), each row's max and sum taken in its
+    entry order."""
     s_src = np.einsum("ckd,kd->ck", t_loc, att_src)
     s_dst = np.einsum("rkd,kd->rk", t_own, att_dst)
     counts = local.counts
-    pre = s_src[local.indices]
-    pre += np.repeat(s_dst, counts, axis=0)
-    e = np.maximum(pre, SLOPE * pre)          # LeakyReLU (slope < 1)
-    if local.num_rows == 0:
-        return e, pre
-    starts = local.indptr[:-1]
-    e -= np.repeat(np.maximum.reduceat(e, starts, axis=0), counts, axis=0)
-    np.exp(e, out=e)
-    e /= np.repeat(np.add.reduceat(e, starts, axis=0), counts, axis=0)
+    k = s_src.shape[1]
+    pre = np.empty((local.indices.shape[0], k), dtype=s_src.dtype)
+    e = np.empty_like(pre)
+    for r0, r1, e0, e1 in local.row_blocks(_BLOCK_WORDS // max(k, 1)):
+        p, x, cnt = pre[e0:e1], e[e0:e1], counts[r0:r1]
+        np.take(s_src, local.indices[e0:e1], axis=0, out=p)
+        p += np.repeat(s_dst[r0:r1], cnt, axis=0)
+        np.multiply(p, SLOPE, out=x)
+        np.maximum(p, x, out=x)               # LeakyReLU (slope < 1)
+        starts = local.indptr[r0:r1] - e0
+        x -= np.repeat(np.maximum.reduceat(x, starts, axis=0), cnt, axis=0)
+        np.exp(x, out=x)
+        x /= np.repeat(np.add.reduceat(x, starts, axis=0), cnt, axis=0)
     return e, pre
 
 
@@ -72,17 +129,13 @@ def forward(params, x, hops, propagate, drop, local=None):
         t = hd @ w
         t_loc = propagate(l, t).reshape(-1, k, d)
         alpha, pre = attention(t_loc, t.reshape(-1, k, d), att_src, att_dst, local)
-        scale = _edge_scale(drop, l, k, local)
-        coef = alpha if scale is None else alpha * scale.astype(alpha.dtype)
-        z = np.empty((local.num_rows, k, d), dtype=t.dtype)
-        for head in range(k):           # a loop over heads, not vertices
-            z[:, head, :] = local.product(np.ascontiguousarray(coef[:, head]),
-                                          np.ascontiguousarray(t_loc[:, head, :]))
-        z = z.reshape(local.num_rows, k * d)
+        keep = _edge_keep(drop, l, k, local)
+        coef = _dropped(alpha, keep, getattr(drop, "rate", 0.0))
+        z = local.product_heads(coef, t_loc).reshape(local.num_rows, k * d)
         if b is not None:
             z += b
         cache["layers"].append({"h": h, "hd": hd, "t_loc": t_loc, "alpha": alpha,
-                                "pre": pre, "scale": scale, "coef": coef, "z": z})
+                                "pre": pre, "keep": keep, "coef": coef, "z": z})
         h = elu(z) if l < last else z
     return h, cache
 
@@ -105,30 +158,14 @@ def backward(params, cache, dlogits, hops, propagate_t):
         n_rows = local.num_rows
         db = dz.sum(axis=0) if b is not None else None
         dz3 = np.ascontiguousarray(dz).reshape(n_rows, k, d)
-        dt_loc = np.empty_like(t_loc)
-        dcoef = np.empty_like(alpha)
-        counts = local.counts
-        for head in range(k):
-            dz_h = np.ascontiguousarray(dz3[:, head, :])
-            t_h = np.ascontiguousarray(t_loc[:, head, :])
-            dt_loc[:, head, :] = local.product_t(np.ascontiguousarray(coef[:, head]), dz_h)
-            dcoef[:, head] = np.einsum("ed,ed->e", np.repeat(dz_h, counts, axis=0),
-                                       t_h[local.indices])
-        dalpha = dcoef if c["scale"] is None else dcoef * c["scale"].astype(dcoef.dtype)
-        weighted = alpha * dalpha
-        if n_rows:
-            row_sums = np.repeat(np.add.reduceat(weighted, local.indptr[:-1], axis=0),
-                                 counts, axis=0)
-        else:
-            row_sums = weighted
-        de = weighted
-        de -= alpha * row_sums
-        dpre = np.where(c["pre"] > 0, de, SLOPE * de)
+        dt_loc = np.ascontiguousarray(local.product_t_heads(coef, dz3))
+        dalpha = _edge_dots(dz3, t_loc, local)         # dα' (one E x K array alive)
+        dalpha = _dropped(dalpha, c["keep"], getattr(drop, "rate", 0.0))
+        dpre, ds_dst = _score_grads(alpha, dalpha, c["pre"], local)
+        del dalpha
         ds_src = np.stack([np.bincount(local.indices, weights=dpre[:, head],
                                        minlength=local.num_cols) for head in range(k)],
                           axis=1).astype(dpre.dtype)
-        ds_dst = (np.add.reduceat(dpre, local.indptr[:-1], axis=0) if n_rows
-                  else np.zeros((0, k), dtype=dpre.dtype))
         t_own = t_loc[:n_rows]
         datt_src = np.einsum("ck,ckd->kd", ds_src, t_loc)
         datt_dst = np.einsum("rk,rkd->kd", ds_dst, t_own)
