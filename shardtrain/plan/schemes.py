@@ -160,19 +160,20 @@ class HaloScheme:
 
 
 def scheme_of(settings) -> HaloScheme:
-    """The scheme a TrainSettings (or SurveySettings) describes, checked. The schemes and
-    their single-process formulation are written for GCN's Â: another model refuses one."""
+    """The scheme a TrainSettings (or SurveySettings) describes, checked. The schemes act on
+    a model's halo product by a fixed operator (GCN's Â, SAGE's D⁻¹A, GIN's A + I); GAT's
+    attention is no fixed operator, and GAT refuses a scheme."""
     scheme = HaloScheme(getattr(settings, "halo_keep", defaults.HALO_KEEP),
                         getattr(settings, "halo_format", defaults.HALO_FORMAT),
                         getattr(settings, "halo_stale", defaults.HALO_STALE),
                         getattr(settings, "halo_smooth", defaults.HALO_SMOOTH)).check()
     model = getattr(settings, "model", defaults.MODEL)
     dtype = np.dtype(getattr(settings, "dtype", defaults.DTYPE))
-    if model != "gcn" and not scheme.exact(dtype):
+    if model == "gat" and not scheme.exact(dtype):
         param = ("halo_keep" if scheme.sampled else
                  "halo_stale" if scheme.stale else "halo_format")
-        raise ParameterError(param, f"a halo scheme is available with {option('model')} gcn "
-                                    f"only (got {option('model')} {model})")
+        raise ParameterError(param, f"a halo scheme is not available with {option('model')} "
+                                    f"gat (its attention is no fixed halo operator)")
     return scheme
 
 

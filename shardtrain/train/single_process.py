@@ -46,6 +46,7 @@ import scipy.sparse as sp
 from shardtrain.data.graph import Graph, normalized_adjacency
 from shardtrain.plan.schemes import HaloScheme, halo_keep_mask, keep_epoch_used, keep_scale
 from shardtrain.train import compress
+from shardtrain.train.models.common import operator_matrix
 
 Products = tuple[Callable[[int, np.ndarray], np.ndarray], Callable[[int, np.ndarray], np.ndarray]]
 
@@ -54,14 +55,16 @@ class SchemeProducts:
     """`epoch(e)` -> (propagate, propagate_t) of training epoch e, rows in global id order."""
 
     def __init__(self, graph: Graph, assignment: np.ndarray, scheme: HaloScheme, seed: int,
-                 dtype):
+                 dtype, model: str = "gcn"):
+        """`model`: whose operator the products multiply by (`models.common.operator_matrix`
+        of Â: gcn Â, sage D⁻¹A, gin A + I), as the workers' `HaloOps(adj=)` do."""
         self.dtype = np.dtype(dtype)
         self.scheme, self.seed = scheme, int(seed)
         self.format = str(scheme.format) if scheme.compressed(self.dtype) else None
         a = np.asarray(assignment, dtype=np.int64)
         self.assignment = a
         n = graph.num_vertices
-        coo = normalized_adjacency(graph).tocoo()
+        coo = operator_matrix(model, normalized_adjacency(graph)).tocoo()
         r, c, v = coo.row.astype(np.int64), coo.col.astype(np.int64), coo.data
         own = a[r] == a[c]
         self.own = sp.csr_matrix((v[own], (r[own], c[own])), shape=(n, n)).astype(self.dtype)
@@ -186,5 +189,5 @@ def train_single_process(graph: Graph, settings, assignment: np.ndarray, **kw):
     from shardtrain.train.reference import train_reference
 
     products = SchemeProducts(graph, assignment, settings.scheme, settings.seed,
-                              settings.np_dtype)
+                              settings.np_dtype, model=settings.model)
     return train_reference(graph, settings, training_products=products.epoch, **kw)
