@@ -170,3 +170,28 @@ def frame_header_bytes(dtype, shape, kind="halo", layer=0, direction="backward")
     return len(encode_header(kind=kind, epoch=0, layer=layer, direction=direction, source=0,
                              dtype=dtype, shape=list(shape)))
 
+
+
+def plan_assignment(graph, k: int, method: str) -> np.ndarray:
+    """A k-worker assignment of `graph`: seeded random ids, or `partition`'s plan."""
+    from shardtrain.plan.partition import partition
+    if method == "random":
+        return np.random.default_rng(k).integers(0, k, graph.num_vertices)
+    return np.asarray(partition(graph, method, k, seed=0, imbalance=0.03))
+
+
+def assert_same_run(run, want, rtol: float = 1e-9) -> None:
+    """Every epoch's loss and validation loss to `rtol` relative, and every final weight
+    array to `rtol` of its largest value (docs/design.md section 1.7)."""
+    import pytest
+
+    from shardtrain.train import model
+    assert len(run.epochs) == len(want.epochs)
+    for got, ref in zip(run.epochs, want.epochs):
+        assert got["loss"] == pytest.approx(ref["loss"], rel=rtol, abs=0)
+        assert got["val_loss"] == pytest.approx(ref["val_loss"], rel=rtol, abs=0)
+    want_w = model.params_to_arrays(want.params)
+    got_w = model.params_to_arrays(run.params)
+    assert sorted(got_w) == sorted(want_w)
+    for name, w in want_w.items():
+        assert np.max(np.abs(got_w[name] - w)) <= rtol * np.max(np.abs(w)), name

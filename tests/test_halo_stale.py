@@ -23,11 +23,10 @@ import sys
 
 import numpy as np
 import pytest
-from helpers import depot_graph, run_partitioned, save_graph
+from helpers import assert_same_run, depot_graph, plan_assignment, run_partitioned, save_graph
 
 from shardtrain.plan import schemes
 from shardtrain.plan.schemes import HaloScheme
-from shardtrain.train import model
 from shardtrain.train.reference import train_reference
 from shardtrain.train.settings import TrainSettings
 from shardtrain.train.single_process import train_single_process
@@ -47,23 +46,7 @@ def graph():
     return depot_graph()
 
 
-def assignment(graph, k: int, method: str) -> np.ndarray:
-    from shardtrain.plan.partition import partition
-    if method == "random":
-        return np.random.default_rng(k).integers(0, k, graph.num_vertices)
-    return np.asarray(partition(graph, method, k, seed=0, imbalance=0.03))
-
-
-def assert_same_run(run, want):
-    assert len(run.epochs) == len(want.epochs)
-    for got, ref in zip(run.epochs, want.epochs):
-        assert got["loss"] == pytest.approx(ref["loss"], rel=RTOL, abs=0)
-        assert got["val_loss"] == pytest.approx(ref["val_loss"], rel=RTOL, abs=0)
-    want_w = model.params_to_arrays(want.params)
-    got_w = model.params_to_arrays(run.params)
-    assert sorted(got_w) == sorted(want_w)
-    for name, w in want_w.items():
-        assert np.max(np.abs(got_w[name] - w)) <= RTOL * np.max(np.abs(w)), name
+assignment = plan_assignment
 
 
 def loss_gap(a, b, first: int = 0) -> float:

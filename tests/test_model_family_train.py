@@ -17,7 +17,7 @@ import sys
 
 import numpy as np
 import pytest
-from helpers import depot_graph, run_partitioned, save_graph
+from helpers import assert_same_run, depot_graph, run_partitioned, save_graph
 
 from shardtrain.plan.schedule import model_hops
 from shardtrain.train import model
@@ -51,16 +51,7 @@ def reference(graph, kind, shape):
     return _REFS[kind, shape]
 
 
-def _assert_same_run(run, ref):
-    assert len(run.epochs) == len(ref.epochs)
-    for got, want in zip(run.epochs, ref.epochs):
-        assert got["loss"] == pytest.approx(want["loss"], rel=RTOL, abs=0)
-        assert got["val_loss"] == pytest.approx(want["val_loss"], rel=RTOL, abs=0)
-    want_w = model.params_to_arrays(ref.params)
-    got_w = model.params_to_arrays(run.params)
-    assert sorted(got_w) == sorted(want_w)
-    for name, w in want_w.items():
-        assert np.max(np.abs(got_w[name] - w)) <= RTOL * np.max(np.abs(w)), name
+_assert_same_run = assert_same_run
 
 
 def _method_cases():

@@ -73,6 +73,9 @@ import numpy as np
 
 from shardtrain import defaults
 from shardtrain.errors import ParameterError, option
+from shardtrain.keys import GOLDEN64 as _GOLDEN64
+from shardtrain.keys import MASK64 as _MASK64
+from shardtrain.keys import splitmix64 as _splitmix64
 from shardtrain.plan.schedule import LayerHop
 from shardtrain.transport.wire import KIND_HALO
 
@@ -199,16 +202,7 @@ def backward_keep_epochs(epochs: range, stale: bool) -> list[int]:
 
 # ---------------------------------------------------------------- keyed hashes
 
-_GOLDEN64 = 0x9E3779B97F4A7C15
-_MASK64 = (1 << 64) - 1
-
-
-def _splitmix64(x: int) -> int:
-    """SplitMix64 finaliser (Steele, Lea & Flood 2014) on a Python int, mod 2^64."""
-    x = (x + _GOLDEN64) & _MASK64
-    x = ((x ^ (x >> 30)) * 0xBF58476D1CE4E5B9) & _MASK64
-    x = ((x ^ (x >> 27)) * 0x94D049BB133111EB) & _MASK64
-    return x ^ (x >> 31)
+# _splitmix64 and its constants: shardtrain.keys (one copy for every stage)
 
 
 def stream_key(*words: int) -> int:

@@ -23,6 +23,9 @@ from typing import Callable, NamedTuple
 import numpy as np
 
 from shardtrain.errors import InputError
+from shardtrain.keys import GOLDEN64 as _GOLDEN64
+from shardtrain.keys import MASK64 as _MASK64
+from shardtrain.keys import splitmix64 as _splitmix64
 from shardtrain.plan.schedule import LayerHop, layer_hops, layer_param_shapes
 from shardtrain.train.models import gat, gin, sage
 
@@ -175,16 +178,7 @@ def params_from_arrays(arrays, dims: list[tuple[int, int]], bias: bool, dtype,
 
 # ---------------------------------------------------------------- dropout masks
 
-_GOLDEN64 = 0x9E3779B97F4A7C15
-_MASK64 = (1 << 64) - 1
-
-
-def _splitmix64(x: int) -> int:
-    """SplitMix64 finaliser (Steele, Lea & Flood 2014) on a Python int, mod 2^64."""
-    x = (x + _GOLDEN64) & _MASK64
-    x = ((x ^ (x >> 30)) * 0xBF58476D1CE4E5B9) & _MASK64
-    x = ((x ^ (x >> 27)) * 0x94D049BB133111EB) & _MASK64
-    return x ^ (x >> 31)
+# _splitmix64 and its constants: shardtrain.keys (one copy for every stage)
 
 
 def _row_keys(seed: int, epoch: int, layer: int, global_ids: np.ndarray) -> np.ndarray:

@@ -7,8 +7,8 @@ import numpy as np
 import scipy.sparse as sp
 
 from shardtrain.compat import add_csr_product
-
-_MASK64 = (1 << 64) - 1
+from shardtrain.keys import MASK64 as _MASK64
+from shardtrain.keys import splitmix64 as _mix_int
 
 
 def params_like(layer, values):
@@ -179,11 +179,6 @@ def _mix64(x: np.ndarray, t: np.ndarray) -> np.ndarray:
     return x
 
 
-def _mix_int(v: int) -> int:
-    v = (v + 0x9E3779B97F4A7C15) & _MASK64
-    v = ((v ^ (v >> 30)) * 0xBF58476D1CE4E5B9) & _MASK64
-    v = ((v ^ (v >> 27)) * 0x94D049BB133111EB) & _MASK64
-    return v ^ (v >> 31)
 
 
 EDGE_DOMAIN = 0x6174746E      # keeps the edge stream apart from the vertex masks' stream
