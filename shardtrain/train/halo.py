@@ -99,6 +99,23 @@ class HaloOps:
             buf = self._blocks[key] = np.empty((rows, width), dtype=self.dtype)
         return buf
 
+    def _send_blocks(self, layer: int, m: np.ndarray) -> dict[int, np.ndarray]:
+        """M's send rows to every peer, gathered into reused (layer, width) buffers."""
+        width = m.shape[1]
+        outgoing = {}
+        for q in self.peers:
+            idx = self.send_idx[q]
+            buf = self._block(("send", layer, width, q), idx.shape[0], width)
+            outgoing[q] = np.take(m, idx, axis=0, out=buf)
+        return outgoing
+
+    def _exchange(self, outgoing: dict, incoming: dict, layer: int, direction: str) -> None:
+        """One blocking halo exchange of this epoch, timed as the exchange phase."""
+        with self.profile.phase("exchange"):
+            self.transport.exchange(outgoing, incoming, kind=KIND_HALO, epoch=self.epoch,
+                                    layer=layer, direction=direction)
+        self.on_phase(f"epoch {self.epoch} compute")
+
     def propagate(self, direction: str) -> Callable[[int, np.ndarray], np.ndarray]:
         if direction == FORWARD and self.scheme.stale:
             return self._stale_forward
@@ -110,18 +127,11 @@ class HaloOps:
             width = m.shape[1]
             with self.profile.phase("compute"):
                 m = np.ascontiguousarray(m, dtype=self.dtype)
-                outgoing = {}
-                for q in self.peers:
-                    idx = self.send_idx[q]
-                    buf = self._block(("send", layer, width, q), idx.shape[0], width)
-                    outgoing[q] = np.take(m, idx, axis=0, out=buf)
+                outgoing = self._send_blocks(layer, m)
                 halo = self._block(("halo", layer, width), self.n_local - self.n_owned,
                                    width)
                 incoming = {q: halo[self.halo_rows[q]] for q in self.peers}
-            with self.profile.phase("exchange"):
-                self.transport.exchange(outgoing, incoming, kind=KIND_HALO, epoch=self.epoch,
-                                        layer=layer, direction=direction)
-            self.on_phase(f"epoch {self.epoch} compute")
+            self._exchange(outgoing, incoming, layer, direction)
             with self.profile.phase("compute"):
                 z = np.zeros((self.n_owned, width), dtype=self.dtype)   # fresh: the model's
                 add_csr_product(self.adj_own, m, z)
@@ -144,10 +154,7 @@ class HaloOps:
             outgoing = {q: halo[self.halo_rows[q]] for q in self.peers}
             incoming = {q: self._block(("recv", layer, width, q), self.send_idx[q].shape[0],
                                        width) for q in self.peers}
-        with self.profile.phase("exchange"):
-            self.transport.exchange(outgoing, incoming, kind=KIND_HALO, epoch=self.epoch,
-                                    layer=layer, direction=BACKWARD)
-        self.on_phase(f"epoch {self.epoch} compute")
+        self._exchange(outgoing, incoming, layer, BACKWARD)
         with self.profile.phase("compute"):
             out = np.zeros((self.n_owned, width), dtype=self.dtype)
             add_csr_product(self.adj_own_t, g, out)
@@ -169,16 +176,9 @@ class HaloOps:
                 out = np.empty((self.n_local, width), dtype=self.dtype)  # fresh: the model's
                 out[:self.n_owned] = m
                 halo = out[self.n_owned:]
-                outgoing = {}
-                for q in self.peers:
-                    idx = self.send_idx[q]
-                    buf = self._block(("send", layer, width, q), idx.shape[0], width)
-                    outgoing[q] = np.take(m, idx, axis=0, out=buf)
+                outgoing = self._send_blocks(layer, m)
                 incoming = {q: halo[self.halo_rows[q]] for q in self.peers}
-            with self.profile.phase("exchange"):
-                self.transport.exchange(outgoing, incoming, kind=KIND_HALO, epoch=self.epoch,
-                                        layer=layer, direction=direction)
-            self.on_phase(f"epoch {self.epoch} compute")
+            self._exchange(outgoing, incoming, layer, direction)
             return out
         return gather
 
@@ -193,10 +193,7 @@ class HaloOps:
             outgoing = {q: halo[self.halo_rows[q]] for q in self.peers}
             incoming = {q: self._block(("recv", layer, width, q), self.send_idx[q].shape[0],
                                        width) for q in self.peers}
-        with self.profile.phase("exchange"):
-            self.transport.exchange(outgoing, incoming, kind=KIND_HALO, epoch=self.epoch,
-                                    layer=layer, direction=BACKWARD)
-        self.on_phase(f"epoch {self.epoch} compute")
+        self._exchange(outgoing, incoming, layer, BACKWARD)
         with self.profile.phase("compute"):
             out = g[:self.n_owned].copy()
             for q in self.peers:
@@ -252,10 +249,7 @@ class HaloOps:
             outgoing = {q: self._encode(np.take(m, send[q], axis=0), layer, FORWARD,
                                         owned[send[q]]) for q in self.peers}
             incoming = {q: self._recv_block(kept[q].shape[0], width) for q in self.peers}
-        with self.profile.phase("exchange"):
-            self.transport.exchange(outgoing, incoming, kind=KIND_HALO, epoch=self.epoch,
-                                    layer=layer, direction=FORWARD)
-        self.on_phase(f"epoch {self.epoch} compute")
+        self._exchange(outgoing, incoming, layer, FORWARD)
         with self.profile.phase("compute"):
             halo = np.zeros((self.n_local - self.n_owned, width), dtype=self.dtype)
             scale = self.dtype.type(keep_scale(self.scheme.keep))
@@ -278,10 +272,7 @@ class HaloOps:
             outgoing = {q: self._encode(halo[kept[q]] * scale, layer, BACKWARD,
                                         self.shard.halo[kept[q]]) for q in self.peers}
             incoming = {q: self._recv_block(send[q].shape[0], width) for q in self.peers}
-        with self.profile.phase("exchange"):
-            self.transport.exchange(outgoing, incoming, kind=KIND_HALO, epoch=self.epoch,
-                                    layer=layer, direction=BACKWARD)
-        self.on_phase(f"epoch {self.epoch} compute")
+        self._exchange(outgoing, incoming, layer, BACKWARD)
         with self.profile.phase("compute"):
             out = np.zeros((self.n_owned, width), dtype=self.dtype)
             add_csr_product(self.adj_own_t, g, out)
