@@ -33,6 +33,9 @@ from pathlib import Path
 
 import numpy as np
 
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from bench_ingest import _tree  # noqa: E402  (the process tree, as bench_ingest walks it)
+
 
 def _size(text: str) -> int:
     text = text.upper()
@@ -51,19 +54,6 @@ def _status(pid: int) -> int:
     except OSError:
         pass
     return total
-
-
-def _tree(pid: int) -> list[int]:
-    pids, todo = [], [pid]
-    while todo:
-        p = todo.pop()
-        pids.append(p)
-        try:
-            with open(f"/proc/{p}/task/{p}/children") as fh:
-                todo += [int(c) for c in fh.read().split()]
-        except OSError:
-            pass
-    return pids
 
 
 def _server_cpu(server_pid: int | None) -> dict[int, float]:
