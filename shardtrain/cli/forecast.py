@@ -333,7 +333,6 @@ def spec_summary_lines(result: dict) -> list[str]:
 
 
 def run(args) -> int:
-    from shardtrain.files import write_json_atomic
     from shardtrain.forecast.calibrate import from_flops, load_or_calibrate
     from shardtrain.forecast.projection import forecast
 
@@ -413,6 +412,13 @@ def run(args) -> int:
     print(format_table(table_rows(result), TABLE_COLUMNS))
     for line in summary_lines(result):
         print(line)
+    return _write_outputs(args, result)
+
+
+def _write_outputs(args, result: dict) -> int:
+    """--json and --plot of a forecast, linked or on worker specs."""
+    from shardtrain.files import write_json_atomic
+
     if args.json:
         write_json_atomic(args.json, result)
     if args.plot:
@@ -424,7 +430,6 @@ def run(args) -> int:
 
 
 def _run_on_specs(args, survey_dict: dict, specs, calibration: dict, source: str) -> int:
-    from shardtrain.files import write_json_atomic
     from shardtrain.forecast.projection import forecast_on_specs
 
     result = forecast_on_specs(survey_dict, specs, calibration=calibration,
@@ -438,11 +443,4 @@ def _run_on_specs(args, survey_dict: dict, specs, calibration: dict, source: str
     print(format_table(spec_table_rows(result), SPEC_COLUMNS))
     for line in spec_summary_lines(result):
         print(line)
-    if args.json:
-        write_json_atomic(args.json, result)
-    if args.plot:
-        from shardtrain.report.plots import forecast_plots
-
-        Path(args.plot).mkdir(parents=True, exist_ok=True)
-        forecast_plots(result, args.plot)
-    return 0
+    return _write_outputs(args, result)
